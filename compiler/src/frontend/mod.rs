@@ -1,0 +1,555 @@
+//! Frontend: reads a graph file (`ingot.graph.v1`) and its safetensors
+//! weights, and validates them once into a checked [`Graph`].
+//!
+//! Every problem becomes a [`LoadError`] naming the file, layer, op and
+//! tensor; nothing is silently fixed.
+
+mod error;
+pub mod format;
+pub mod weights;
+
+pub use error::LoadError;
+pub use format::{GraphFile, InputFile, LayerFile, FORMAT_V1};
+pub use weights::{StoredTensor, TensorStore};
+
+use crate::graph::shape::window_output;
+use crate::graph::{
+    BatchNorm, Color, Conv2d, Graph, InputSpec, Layer, LayerId, Linear, MapId, Op, Padding, Pool2d, Shape, Tensor,
+    Window,
+};
+use serde_json::Value;
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+/// Ops of format version 1.
+pub const OPS: &[&str] = &[
+    "conv2d",
+    "batch_norm",
+    "relu",
+    "relu6",
+    "max_pool2d",
+    "avg_pool2d",
+    "global_avg_pool",
+    "flatten",
+    "linear",
+    "concat",
+    "add",
+    "softmax",
+    "dropout",
+];
+
+/// Loads and validates a graph file and the weights file it names.
+pub fn load(path: &Path) -> Result<Graph, LoadError> {
+    let text = std::fs::read_to_string(path).map_err(|source| LoadError::Io { path: path.to_path_buf(), source })?;
+    let file = parse(&text, path)?;
+    let weights_path = resolve_weights(path, &file.weights);
+    let store = TensorStore::load(&weights_path)?;
+    validate(&file, &store, path)
+}
+
+/// Parses graph JSON; `path` names it in errors.
+pub fn parse(text: &str, path: &Path) -> Result<GraphFile, LoadError> {
+    serde_json::from_str(text).map_err(|e| LoadError::Json {
+        path: path.to_path_buf(),
+        line: e.line(),
+        column: e.column(),
+        message: e.to_string(),
+    })
+}
+
+/// The weights path named in a graph file, relative to the graph file.
+pub fn resolve_weights(graph_path: &Path, weights: &str) -> PathBuf {
+    match graph_path.parent() {
+        Some(dir) => dir.join(weights),
+        None => PathBuf::from(weights),
+    }
+}
+
+/// Validates a parsed graph file against its tensors into a checked graph.
+/// `path` is the graph file's path, used for messages and to resolve the
+/// weights path recorded in the graph.
+pub fn validate(file: &GraphFile, store: &TensorStore, path: &Path) -> Result<Graph, LoadError> {
+    Validator { path, store }.run(file)
+}
+
+struct Validator<'a> {
+    path: &'a Path,
+    store: &'a TensorStore,
+}
+
+/// The layer being validated, for error messages.
+struct Ctx<'a> {
+    layer: &'a str,
+    op: &'a str,
+}
+
+impl Validator<'_> {
+    fn graph_err(&self, message: impl Into<String>) -> LoadError {
+        LoadError::Graph { path: self.path.to_path_buf(), message: message.into() }
+    }
+
+    fn attr_err(&self, cx: &Ctx, attr: &str, message: impl Into<String>) -> LoadError {
+        LoadError::Attribute {
+            path: self.path.to_path_buf(),
+            layer: cx.layer.into(),
+            op: cx.op.into(),
+            attr: attr.into(),
+            message: message.into(),
+        }
+    }
+
+    fn inputs_err(&self, cx: &Ctx, message: impl Into<String>) -> LoadError {
+        LoadError::Inputs { path: self.path.to_path_buf(), layer: cx.layer.into(), op: cx.op.into(), message: message.into() }
+    }
+
+    fn shape_err(&self, cx: &Ctx, message: impl Into<String>) -> LoadError {
+        LoadError::Shape { path: self.path.to_path_buf(), layer: cx.layer.into(), op: cx.op.into(), message: message.into() }
+    }
+
+    fn run(&self, file: &GraphFile) -> Result<Graph, LoadError> {
+        if file.format != FORMAT_V1 {
+            return Err(self.graph_err(format!("`format` is \"{}\"; this version of ingot reads \"{FORMAT_V1}\"", file.format)));
+        }
+        let input = self.input(&file.input)?;
+        let mut names: HashMap<&str, MapId> = HashMap::new();
+        names.insert(&file.input.name, MapId::INPUT);
+        let mut shapes = vec![input.shape];
+        let mut layers: Vec<Layer> = Vec::with_capacity(file.layers.len());
+        // Every layer, including later ones, so a forward reference can be told
+        // apart from a name that does not exist at all.
+        let all_names: HashMap<&str, usize> = file.layers.iter().enumerate().map(|(i, l)| (l.name.as_str(), i)).collect();
+
+        for (i, lf) in file.layers.iter().enumerate() {
+            let cx = Ctx { layer: &lf.name, op: &lf.op };
+            if lf.name.is_empty() {
+                return Err(self.graph_err(format!("layer #{i} has an empty name")));
+            }
+            if names.contains_key(lf.name.as_str()) {
+                return Err(self.inputs_err(&cx, format!("the name `{}` is used twice", lf.name)));
+            }
+            if !OPS.contains(&lf.op.as_str()) {
+                return Err(LoadError::UnknownOp {
+                    path: self.path.to_path_buf(),
+                    layer: lf.name.clone(),
+                    op: lf.op.clone(),
+                    known: OPS.join(", "),
+                });
+            }
+            let input_names = self.input_names(&cx, lf)?;
+            let mut inputs = Vec::with_capacity(input_names.len());
+            for n in &input_names {
+                match names.get(n.as_str()) {
+                    Some(&m) => inputs.push(m),
+                    None if *n == lf.name => {
+                        return Err(self.inputs_err(&cx, format!("reads its own output `{n}` (a cycle)")));
+                    }
+                    None if all_names.contains_key(n.as_str()) => {
+                        return Err(self.inputs_err(
+                            &cx,
+                            format!("reads `{n}`, which comes later in `layers`; layers must be listed in execution order and may not form a cycle"),
+                        ));
+                    }
+                    None => return Err(self.inputs_err(&cx, format!("reads `{n}`, which is neither the input nor a layer"))),
+                }
+            }
+            let in_shapes: Vec<Shape> = inputs.iter().map(|m| shapes[m.index()]).collect();
+            let (op, out) = self.layer(&cx, lf, &in_shapes)?;
+            if out.checked_len().is_none() {
+                return Err(self.shape_err(&cx, format!("output shape {out} overflows")));
+            }
+            if out.is_empty() {
+                return Err(self.shape_err(&cx, format!("output shape {out} is empty")));
+            }
+            names.insert(&lf.name, MapId(i as u32 + 1));
+            shapes.push(out);
+            layers.push(Layer { name: lf.name.clone(), op, inputs });
+        }
+
+        let output = *names
+            .get(file.output.as_str())
+            .ok_or_else(|| self.graph_err(format!("`output` names `{}`, which is not a layer", file.output)))?;
+        if output == MapId::INPUT {
+            return Err(self.graph_err("`output` names the input; the graph computes nothing"));
+        }
+        for (i, l) in layers.iter().enumerate() {
+            if matches!(l.op, Op::Softmax) && MapId(i as u32 + 1) != output {
+                return Err(self.graph_err(format!("layer `{}`: softmax is only supported as the output layer", l.name)));
+            }
+        }
+        let out_shape = shapes[output.index()];
+        let labels = file.labels.clone().unwrap_or_default();
+        if !labels.is_empty() && labels.len() != out_shape.len() {
+            return Err(self.graph_err(format!(
+                "{} labels given but the output `{}` has {} values (shape {out_shape})",
+                labels.len(),
+                file.output,
+                out_shape.len()
+            )));
+        }
+        let mut consumers = vec![Vec::new(); shapes.len()];
+        for (i, l) in layers.iter().enumerate() {
+            for m in &l.inputs {
+                let list: &mut Vec<LayerId> = &mut consumers[m.index()];
+                if list.last() != Some(&LayerId(i as u32)) {
+                    list.push(LayerId(i as u32));
+                }
+            }
+        }
+        Ok(Graph {
+            name: file.name.clone(),
+            source: self.path.to_path_buf(),
+            weights_path: self.store.path.clone(),
+            input,
+            labels,
+            layers,
+            output,
+            shapes,
+            consumers,
+        })
+    }
+
+    fn input(&self, f: &InputFile) -> Result<InputSpec, LoadError> {
+        let bad = |m: String| self.graph_err(format!("input `{}`: {m}", f.name));
+        if f.name.is_empty() {
+            return Err(self.graph_err("the input has an empty name"));
+        }
+        let [c, h, w] = f.shape[..] else {
+            return Err(bad(format!("`shape` must be [C, H, W], got {:?}", f.shape)));
+        };
+        let shape = Shape::new(c, h, w);
+        if shape.checked_len().is_none_or(|n| n == 0) {
+            return Err(bad(format!("`shape` {:?} is empty or overflows", f.shape)));
+        }
+        let color = match f.color.as_deref() {
+            Some("gray") => Color::Gray,
+            Some("rgb") => Color::Rgb,
+            None if c == 3 => Color::Rgb,
+            None => Color::Gray,
+            Some(o) => return Err(bad(format!("`color` is \"{o}\"; use \"gray\" or \"rgb\""))),
+        };
+        let want_c = if color == Color::Gray { 1 } else { 3 };
+        if c != want_c {
+            return Err(bad(format!("color {color:?} needs {want_c} channel(s) but the shape has {c}")));
+        }
+        let per_channel = |v: &Option<Vec<f32>>, name: &str, default: f32| -> Result<Vec<f32>, LoadError> {
+            match v {
+                None => Ok(vec![default; c]),
+                Some(v) if v.len() == c => {
+                    if let Some(x) = v.iter().find(|x| !x.is_finite()) {
+                        return Err(bad(format!("`{name}` holds {x}")));
+                    }
+                    Ok(v.clone())
+                }
+                Some(v) => Err(bad(format!("`{name}` has {} values for {c} channel(s)", v.len()))),
+            }
+        };
+        let mean = per_channel(&f.mean, "mean", 0.0)?;
+        let std = per_channel(&f.std, "std", 1.0)?;
+        if let Some(s) = std.iter().find(|s| **s <= 0.0) {
+            return Err(bad(format!("`std` must be positive, got {s}")));
+        }
+        let pixel_scale = f.pixel_scale.unwrap_or(1.0 / 255.0);
+        if !(pixel_scale.is_finite() && pixel_scale > 0.0) {
+            return Err(bad(format!("`pixel_scale` must be positive, got {pixel_scale}")));
+        }
+        Ok(InputSpec { name: f.name.clone(), shape, pixel_scale, mean, std, color })
+    }
+
+    fn input_names(&self, cx: &Ctx, lf: &LayerFile) -> Result<Vec<String>, LoadError> {
+        let multi = matches!(lf.op.as_str(), "concat" | "add");
+        match (&lf.input, &lf.inputs, multi) {
+            (Some(_), Some(_), _) => Err(self.inputs_err(cx, "give either `input` or `inputs`, not both")),
+            (None, None, false) => Err(self.inputs_err(cx, "missing `input`")),
+            (None, None, true) => Err(self.inputs_err(cx, "missing `inputs`")),
+            (Some(i), None, false) => Ok(vec![i.clone()]),
+            (None, Some(_), false) => Err(self.inputs_err(cx, "takes one map: use `input`, not `inputs`")),
+            (_, _, true) => {
+                let list = match (&lf.input, &lf.inputs) {
+                    (Some(i), None) => vec![i.clone()],
+                    (None, Some(l)) => l.clone(),
+                    _ => unreachable!(),
+                };
+                if list.is_empty() {
+                    return Err(self.inputs_err(cx, "`inputs` is empty"));
+                }
+                if lf.op == "add" && list.len() != 2 {
+                    return Err(self.inputs_err(cx, format!("`add` takes exactly 2 inputs, got {}", list.len())));
+                }
+                Ok(list)
+            }
+        }
+    }
+
+    fn check_attrs(&self, cx: &Ctx, lf: &LayerFile, allowed: &[&str]) -> Result<(), LoadError> {
+        for k in lf.attrs.keys() {
+            if !allowed.contains(&k.as_str()) {
+                return Err(LoadError::UnknownAttribute {
+                    path: self.path.to_path_buf(),
+                    layer: cx.layer.into(),
+                    op: cx.op.into(),
+                    attr: k.clone(),
+                    allowed: if allowed.is_empty() { "none".into() } else { allowed.join(", ") },
+                });
+            }
+        }
+        Ok(())
+    }
+
+    fn tensor(&self, cx: &Ctx, name: &str) -> Result<Tensor, LoadError> {
+        let t = self.store.tensors.get(name).ok_or_else(|| LoadError::MissingTensor {
+            weights: self.store.path.clone(),
+            layer: cx.layer.into(),
+            op: cx.op.into(),
+            tensor: name.into(),
+        })?;
+        if let Some((index, &value)) = t.data.iter().enumerate().find(|(_, v)| !v.is_finite()) {
+            return Err(LoadError::NonFinite {
+                weights: self.store.path.clone(),
+                layer: cx.layer.into(),
+                op: cx.op.into(),
+                tensor: name.into(),
+                index,
+                value,
+            });
+        }
+        Ok(Tensor { name: name.into(), shape: t.shape.clone(), data: t.data.clone() })
+    }
+
+    fn expect_shape(&self, cx: &Ctx, t: &Tensor, ok: bool, expected: impl Into<String>) -> Result<(), LoadError> {
+        if ok {
+            Ok(())
+        } else {
+            Err(LoadError::TensorShape {
+                weights: self.store.path.clone(),
+                layer: cx.layer.into(),
+                op: cx.op.into(),
+                tensor: t.name.clone(),
+                got: t.shape.clone(),
+                expected: expected.into(),
+            })
+        }
+    }
+
+    fn str_attr(&self, cx: &Ctx, lf: &LayerFile, key: &str) -> Result<Option<String>, LoadError> {
+        match lf.attrs.get(key) {
+            None => Ok(None),
+            Some(Value::String(s)) => Ok(Some(s.clone())),
+            Some(v) => Err(self.attr_err(cx, key, format!("expected a tensor name (string), got {v}"))),
+        }
+    }
+
+    fn uint(&self, cx: &Ctx, key: &str, v: &Value) -> Result<usize, LoadError> {
+        v.as_u64()
+            .and_then(|n| usize::try_from(n).ok())
+            .ok_or_else(|| self.attr_err(cx, key, format!("expected a non-negative integer, got {v}")))
+    }
+
+    /// An int or `[h, w]` attribute; `positive` refuses zero.
+    fn pair(&self, cx: &Ctx, lf: &LayerFile, key: &str, default: Option<[usize; 2]>, positive: bool) -> Result<[usize; 2], LoadError> {
+        let v = match lf.attrs.get(key) {
+            None => return default.ok_or_else(|| self.attr_err(cx, key, "missing")),
+            Some(v) => v,
+        };
+        let p = match v {
+            Value::Array(a) if a.len() == 2 => [self.uint(cx, key, &a[0])?, self.uint(cx, key, &a[1])?],
+            Value::Array(a) => return Err(self.attr_err(cx, key, format!("expected an integer or [h, w], got {} values", a.len()))),
+            v => {
+                let n = self.uint(cx, key, v)?;
+                [n, n]
+            }
+        };
+        if positive && (p[0] == 0 || p[1] == 0) {
+            return Err(self.attr_err(cx, key, format!("must be at least 1, got {v}")));
+        }
+        Ok(p)
+    }
+
+    fn padding(&self, cx: &Ctx, lf: &LayerFile, input: Shape, kernel: [usize; 2], stride: [usize; 2], dilation: [usize; 2]) -> Result<Padding, LoadError> {
+        let key = "padding";
+        match lf.attrs.get(key) {
+            None => Ok(Padding::default()),
+            Some(Value::String(s)) if s == "valid" => Ok(Padding::default()),
+            Some(Value::String(s)) if s == "same" => {
+                let (top, bottom) = Window::same_padding(input.h, kernel[0], stride[0], dilation[0])
+                    .ok_or_else(|| self.attr_err(cx, key, "\"same\" padding cannot be computed for these sizes"))?;
+                let (left, right) = Window::same_padding(input.w, kernel[1], stride[1], dilation[1])
+                    .ok_or_else(|| self.attr_err(cx, key, "\"same\" padding cannot be computed for these sizes"))?;
+                Ok(Padding { top, left, bottom, right })
+            }
+            Some(Value::Array(a)) if a.len() == 4 => Ok(Padding {
+                top: self.uint(cx, key, &a[0])?,
+                left: self.uint(cx, key, &a[1])?,
+                bottom: self.uint(cx, key, &a[2])?,
+                right: self.uint(cx, key, &a[3])?,
+            }),
+            Some(Value::Array(a)) if a.len() == 2 => {
+                let (h, w) = (self.uint(cx, key, &a[0])?, self.uint(cx, key, &a[1])?);
+                Ok(Padding { top: h, left: w, bottom: h, right: w })
+            }
+            Some(v @ Value::Number(_)) => Ok(Padding::uniform(self.uint(cx, key, v)?)),
+            Some(v) => Err(self.attr_err(cx, key, format!("expected an integer, [h, w], [top, left, bottom, right], \"same\" or \"valid\"; got {v}"))),
+        }
+    }
+
+    fn one_input(&self, cx: &Ctx, ins: &[Shape]) -> Shape {
+        debug_assert_eq!(ins.len(), 1, "layer {} has one input", cx.layer);
+        ins[0]
+    }
+
+    fn layer(&self, cx: &Ctx, lf: &LayerFile, ins: &[Shape]) -> Result<(Op, Shape), LoadError> {
+        match lf.op.as_str() {
+            "conv2d" => {
+                self.check_attrs(cx, lf, &["weight", "bias", "stride", "padding", "dilation", "groups"])?;
+                let x = self.one_input(cx, ins);
+                let wname = self.str_attr(cx, lf, "weight")?.ok_or_else(|| self.attr_err(cx, "weight", "missing"))?;
+                let weight = self.tensor(cx, &wname)?;
+                let groups = match lf.attrs.get("groups") {
+                    None => 1,
+                    Some(v) => self.uint(cx, "groups", v)?,
+                };
+                if groups == 0 {
+                    return Err(self.attr_err(cx, "groups", "must be at least 1"));
+                }
+                self.expect_shape(cx, &weight, weight.shape.len() == 4, "4 dimensions [O, I/groups, kH, kW]")?;
+                let (o, ig, kh, kw) = (weight.shape[0], weight.shape[1], weight.shape[2], weight.shape[3]);
+                if x.c % groups != 0 {
+                    return Err(self.shape_err(cx, format!("input {x} has {} channels, not divisible by groups = {groups}", x.c)));
+                }
+                self.expect_shape(
+                    cx,
+                    &weight,
+                    ig == x.c / groups && o % groups == 0 && o > 0 && kh > 0 && kw > 0,
+                    format!("[O, {}, kH, kW] with O divisible by groups = {groups} (input {x})", x.c / groups),
+                )?;
+                let bias = match self.str_attr(cx, lf, "bias")? {
+                    None => None,
+                    Some(b) => {
+                        let t = self.tensor(cx, &b)?;
+                        self.expect_shape(cx, &t, t.shape == [o], format!("[{o}]"))?;
+                        Some(t)
+                    }
+                };
+                let stride = self.pair(cx, lf, "stride", Some([1, 1]), true)?;
+                let dilation = self.pair(cx, lf, "dilation", Some([1, 1]), true)?;
+                let kernel = [kh, kw];
+                let padding = self.padding(cx, lf, x, kernel, stride, dilation)?;
+                let (oh, ow) = window_output(x.h, x.w, kernel, stride, dilation, padding).ok_or_else(|| {
+                    self.shape_err(cx, format!("kernel {kh}x{kw} (dilation {dilation:?}, padding {padding:?}) does not fit input {x}"))
+                })?;
+                let conv = Conv2d { weight, bias, out_channels: o, in_channels: x.c, kernel, stride, padding, dilation, groups };
+                Ok((Op::Conv2d(conv), Shape::new(o, oh, ow)))
+            }
+            "batch_norm" => {
+                self.check_attrs(cx, lf, &["prefix", "eps", "momentum"])?;
+                let x = self.one_input(cx, ins);
+                let prefix = self.str_attr(cx, lf, "prefix")?.ok_or_else(|| self.attr_err(cx, "prefix", "missing"))?;
+                let eps = match lf.attrs.get("eps") {
+                    None => 1e-5,
+                    Some(v) => v
+                        .as_f64()
+                        .filter(|e| e.is_finite() && *e >= 0.0)
+                        .ok_or_else(|| self.attr_err(cx, "eps", format!("expected a non-negative number, got {v}")))?
+                        as f32,
+                };
+                let get = |suffix: &str| -> Result<Tensor, LoadError> {
+                    let t = self.tensor(cx, &format!("{prefix}.{suffix}"))?;
+                    self.expect_shape(cx, &t, t.shape == [x.c], format!("[{}] (one per channel of input {x})", x.c))?;
+                    Ok(t)
+                };
+                let (gamma, beta, mean, var) = (get("weight")?, get("bias")?, get("running_mean")?, get("running_var")?);
+                if let Some((i, v)) = var.data.iter().enumerate().find(|(_, v)| **v + eps <= 0.0) {
+                    return Err(LoadError::TensorShape {
+                        weights: self.store.path.clone(),
+                        layer: cx.layer.into(),
+                        op: cx.op.into(),
+                        tensor: var.name.clone(),
+                        got: var.shape.clone(),
+                        expected: format!("variances + eps > 0 (channel {i} has {v})"),
+                    });
+                }
+                Ok((Op::BatchNorm(BatchNorm { prefix, gamma, beta, mean, var, eps }), x))
+            }
+            "relu" | "relu6" | "flatten" | "softmax" | "global_avg_pool" => {
+                self.check_attrs(cx, lf, &[])?;
+                let x = self.one_input(cx, ins);
+                Ok(match lf.op.as_str() {
+                    "relu" => (Op::Relu, x),
+                    "relu6" => (Op::Relu6, x),
+                    "flatten" => (Op::Flatten, Shape::flat(x.len())),
+                    "softmax" => (Op::Softmax, x),
+                    _ => (Op::GlobalAvgPool, Shape::new(x.c, 1, 1)),
+                })
+            }
+            "dropout" => {
+                self.check_attrs(cx, lf, &["p"])?;
+                Ok((Op::Dropout, self.one_input(cx, ins)))
+            }
+            "max_pool2d" | "avg_pool2d" => {
+                self.check_attrs(cx, lf, &["kernel", "stride", "padding"])?;
+                let x = self.one_input(cx, ins);
+                let kernel = self.pair(cx, lf, "kernel", None, true)?;
+                let stride = self.pair(cx, lf, "stride", Some(kernel), true)?;
+                let padding = self.padding(cx, lf, x, kernel, stride, [1, 1])?;
+                if padding.top.max(padding.bottom) >= kernel[0] || padding.left.max(padding.right) >= kernel[1] {
+                    return Err(self.attr_err(cx, "padding", format!("{padding:?} must be smaller than the kernel {kernel:?}")));
+                }
+                let (oh, ow) = window_output(x.h, x.w, kernel, stride, [1, 1], padding)
+                    .ok_or_else(|| self.shape_err(cx, format!("window {kernel:?} does not fit input {x}")))?;
+                let p = Pool2d { kernel, stride, padding };
+                let op = if lf.op == "max_pool2d" { Op::MaxPool2d(p) } else { Op::AvgPool2d(p) };
+                Ok((op, Shape::new(x.c, oh, ow)))
+            }
+            "linear" => {
+                self.check_attrs(cx, lf, &["weight", "bias"])?;
+                let x = self.one_input(cx, ins);
+                let n = x.len();
+                if x.h != 1 || x.w != 1 {
+                    return Err(self.shape_err(cx, format!("input {x} is not flat; add a `flatten` or `global_avg_pool` layer before it")));
+                }
+                let wname = self.str_attr(cx, lf, "weight")?.ok_or_else(|| self.attr_err(cx, "weight", "missing"))?;
+                let weight = self.tensor(cx, &wname)?;
+                self.expect_shape(cx, &weight, weight.shape.len() == 2 && weight.shape[1] == n && weight.shape[0] > 0, format!("[out, {n}] (input {x})"))?;
+                let o = weight.shape[0];
+                let bias = match self.str_attr(cx, lf, "bias")? {
+                    None => None,
+                    Some(b) => {
+                        let t = self.tensor(cx, &b)?;
+                        self.expect_shape(cx, &t, t.shape == [o], format!("[{o}]"))?;
+                        Some(t)
+                    }
+                };
+                Ok((Op::Linear(Linear { weight, bias, out_features: o, in_features: n }), Shape::flat(o)))
+            }
+            "concat" => {
+                self.check_attrs(cx, lf, &["axis"])?;
+                if let Some(v) = lf.attrs.get("axis") {
+                    if v.as_u64() != Some(0) {
+                        return Err(self.attr_err(cx, "axis", format!("only channel concatenation (axis 0 of [C, H, W]) is supported, got {v}")));
+                    }
+                }
+                let first = ins[0];
+                let mut c = 0usize;
+                for (k, s) in ins.iter().enumerate() {
+                    if (s.h, s.w) != (first.h, first.w) {
+                        return Err(self.shape_err(cx, format!("input {k} has shape {s} but input 0 has {first}; concatenated maps need the same height and width")));
+                    }
+                    c = c.checked_add(s.c).ok_or_else(|| self.shape_err(cx, "channel count overflows"))?;
+                }
+                Ok((Op::Concat, Shape::new(c, first.h, first.w)))
+            }
+            "add" => {
+                self.check_attrs(cx, lf, &[])?;
+                if ins[0] != ins[1] {
+                    return Err(self.shape_err(cx, format!("inputs have shapes {} and {}; `add` needs equal shapes", ins[0], ins[1])));
+                }
+                Ok((Op::Add, ins[0]))
+            }
+            other => unreachable!("op {other} is in OPS but not handled"),
+        }
+    }
+}
+
+/// Finds a layer by name in a graph file, for tools that edit files.
+pub fn layer_index(file: &GraphFile, name: &str) -> Option<usize> {
+    file.layers.iter().position(|l| l.name == name)
+}

@@ -1,0 +1,12 @@
+//! `ingot-compiler`: turns a trained float CNN into a fixed-point `no_std`
+//! Rust module for microcontrollers.
+//!
+//! The pipeline follows the folders: [`frontend`] loads and validates a graph
+//! into a checked [`graph::Graph`]; [`reference`] runs it in f32.
+
+pub mod frontend;
+pub mod graph;
+pub mod util;
+
+pub use frontend::{load, LoadError};
+pub use graph::{Graph, LayerId, MapId, Op, Shape};
