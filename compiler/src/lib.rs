@@ -6,6 +6,7 @@
 
 pub mod frontend;
 pub mod graph;
+pub mod lower;
 pub mod util;
 
 pub use frontend::{load, LoadError};
