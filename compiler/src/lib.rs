@@ -4,6 +4,7 @@
 //! The pipeline follows the folders: [`frontend`] loads and validates a graph
 //! into a checked [`graph::Graph`]; [`reference`] runs it in f32.
 
+pub mod calibrate;
 pub mod frontend;
 pub mod graph;
 pub mod lower;
