@@ -7,6 +7,7 @@
 pub mod frontend;
 pub mod graph;
 pub mod util;
+pub mod zoo;
 
 pub use frontend::{load, LoadError};
 pub use graph::{Graph, LayerId, MapId, Op, Shape};
