@@ -6,6 +6,7 @@
 
 pub mod frontend;
 pub mod graph;
+pub mod inspect;
 pub mod reference;
 pub mod util;
 pub mod zoo;

@@ -38,8 +38,16 @@ fn densenet121_parameters_and_macs() {
     // 2017, computed by hand), so 83,648 buffer values.
     assert_eq!(t.buffers, 83_648);
     // 120 convolutions + 1 linear layer = the "121" of the name.
-    let convs = g.layers().iter().filter(|l| matches!(l.op, Op::Conv2d(_))).count();
-    let linears = g.layers().iter().filter(|l| matches!(l.op, Op::Linear(_))).count();
+    let convs = g
+        .layers()
+        .iter()
+        .filter(|l| matches!(l.op, Op::Conv2d(_)))
+        .count();
+    let linears = g
+        .layers()
+        .iter()
+        .filter(|l| matches!(l.op, Op::Linear(_)))
+        .count();
     assert_eq!((convs, linears), (120, 1));
     // Huang et al. 2017, table 1: the last dense block ends at 7x7 with
     // 1024 channels.
@@ -52,7 +60,8 @@ fn densenet121_parameters_and_macs() {
 fn densenet121_json_round_trips() {
     let net = zoo::densenet121(1);
     let json = serde_json::to_string_pretty(&net.file).unwrap();
-    let back: GraphFile = frontend::parse(&json, std::path::Path::new("densenet121.graph.json")).unwrap();
+    let back: GraphFile =
+        frontend::parse(&json, std::path::Path::new("densenet121.graph.json")).unwrap();
     assert_eq!(back, net.file);
     assert_eq!(serde_json::to_string_pretty(&back).unwrap(), json);
     // One concat per dense layer plus one closing each block.
