@@ -7,8 +7,8 @@
 pub mod calibrate;
 pub mod frontend;
 pub mod graph;
-pub mod lower;
 pub mod inspect;
+pub mod lower;
 pub mod reference;
 pub mod util;
 pub mod zoo;
