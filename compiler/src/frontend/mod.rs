@@ -391,6 +391,26 @@ impl Validator<'_> {
         }
     }
 
+    /// Why a window does not fit: overflowing size arithmetic (huge padding
+    /// or dilation), or a kernel larger than the padded input.
+    fn window_err(&self, cx: &Ctx, x: Shape, kernel: [usize; 2], dilation: [usize; 2], padding: Padding) -> LoadError {
+        let padded = |i: usize, lo: usize, hi: usize| i.checked_add(lo).and_then(|v| v.checked_add(hi));
+        let extent = |k: usize, d: usize| d.checked_mul(k.saturating_sub(1)).and_then(|v| v.checked_add(1));
+        let overflow = padded(x.h, padding.top, padding.bottom).is_none()
+            || padded(x.w, padding.left, padding.right).is_none()
+            || extent(kernel[0], dilation[0]).is_none()
+            || extent(kernel[1], dilation[1]).is_none();
+        let [kh, kw] = kernel;
+        if overflow {
+            self.shape_err(
+                cx,
+                format!("padding {padding} or dilation {dilation:?} on input {x} makes the window size arithmetic overflow"),
+            )
+        } else {
+            self.shape_err(cx, format!("kernel {kh}x{kw} (dilation {dilation:?}, padding {padding}) does not fit input {x}"))
+        }
+    }
+
     fn one_input(&self, cx: &Ctx, ins: &[Shape]) -> Shape {
         debug_assert_eq!(ins.len(), 1, "layer {} has one input", cx.layer);
         ins[0]
@@ -433,9 +453,8 @@ impl Validator<'_> {
                 let dilation = self.pair(cx, lf, "dilation", Some([1, 1]), true)?;
                 let kernel = [kh, kw];
                 let padding = self.padding(cx, lf, x, kernel, stride, dilation)?;
-                let (oh, ow) = window_output(x.h, x.w, kernel, stride, dilation, padding).ok_or_else(|| {
-                    self.shape_err(cx, format!("kernel {kh}x{kw} (dilation {dilation:?}, padding {padding:?}) does not fit input {x}"))
-                })?;
+                let (oh, ow) = window_output(x.h, x.w, kernel, stride, dilation, padding)
+                    .ok_or_else(|| self.window_err(cx, x, kernel, dilation, padding))?;
                 let conv = Conv2d { weight, bias, out_channels: o, in_channels: x.c, kernel, stride, padding, dilation, groups };
                 Ok((Op::Conv2d(conv), Shape::new(o, oh, ow)))
             }
@@ -491,10 +510,10 @@ impl Validator<'_> {
                 let stride = self.pair(cx, lf, "stride", Some(kernel), true)?;
                 let padding = self.padding(cx, lf, x, kernel, stride, [1, 1])?;
                 if padding.top.max(padding.bottom) >= kernel[0] || padding.left.max(padding.right) >= kernel[1] {
-                    return Err(self.attr_err(cx, "padding", format!("{padding:?} must be smaller than the kernel {kernel:?}")));
+                    return Err(self.attr_err(cx, "padding", format!("{padding} must be smaller than the kernel {kernel:?}")));
                 }
                 let (oh, ow) = window_output(x.h, x.w, kernel, stride, [1, 1], padding)
-                    .ok_or_else(|| self.shape_err(cx, format!("window {kernel:?} does not fit input {x}")))?;
+                    .ok_or_else(|| self.window_err(cx, x, kernel, [1, 1], padding))?;
                 let p = Pool2d { kernel, stride, padding };
                 let op = if lf.op == "max_pool2d" { Op::MaxPool2d(p) } else { Op::AvgPool2d(p) };
                 Ok((op, Shape::new(x.c, oh, ow)))

@@ -84,6 +84,13 @@ impl Padding {
     }
 }
 
+impl fmt::Display for Padding {
+    /// `[top, left, bottom, right]`, the order of the graph format.
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "[{}, {}, {}, {}]", self.top, self.left, self.bottom, self.right)
+    }
+}
+
 /// A sliding window over one spatial axis.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct Window {
