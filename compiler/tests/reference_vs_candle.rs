@@ -216,8 +216,9 @@ fn graph(
 #[test]
 fn conv2d_matches_candle() {
     // (in, out, kernel, stride, dilation, padding [t, l, b, r], groups, bias)
+    type Case = (usize, usize, usize, usize, usize, [usize; 4], usize, bool);
     #[rustfmt::skip]
-    let cases: &[(usize, usize, usize, usize, usize, [usize; 4], usize, bool)] = &[
+    let cases: &[Case] = &[
         (3, 8, 3, 1, 1, [1, 1, 1, 1], 1, true),
         (4, 6, 3, 2, 1, [1, 1, 1, 1], 1, false),
         (5, 4, 1, 1, 1, [0, 0, 0, 0], 1, true),   // 1x1: the direct GEMM path

@@ -4,6 +4,11 @@
 //! Every problem becomes a [`LoadError`] naming the file, layer, op and
 //! tensor; nothing is silently fixed.
 
+// `LoadError` is large (file, layer, op, tensor and shapes, so a user can fix
+// the input); it is built at most once per load, far off any hot path, so
+// boxing it would cost readability for nothing.
+#![allow(clippy::result_large_err)]
+
 mod error;
 pub mod format;
 pub mod weights;
