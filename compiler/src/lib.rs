@@ -7,8 +7,11 @@
 pub mod calibrate;
 pub mod frontend;
 pub mod graph;
+pub mod inspect;
 pub mod lower;
+pub mod reference;
 pub mod util;
+pub mod zoo;
 
 pub use frontend::{load, LoadError};
 pub use graph::{Graph, LayerId, MapId, Op, Shape};
