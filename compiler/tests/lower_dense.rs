@@ -121,7 +121,7 @@ fn lowering_is_deterministic() {
 }
 
 #[test]
-fn input_transform_fusion_ram_saved_on_dense_networks() {
+fn input_transform_fusion_ram_saved_on_bottleneck_dense_network() {
     let small = dense_net(&DenseSpec::small(), 7);
     let q = lower(&small, &flat_ranges(&small, -2.0, 2.0), &LowerOptions::default()).unwrap();
     let s = fusion_savings(&q);
@@ -129,12 +129,4 @@ fn input_transform_fusion_ram_saved_on_dense_networks() {
     // Largest: the transition's input, 8 + 3·4 = 20 channels at 12×12.
     assert_eq!((s.fused, s.largest), (6, 20 * 12 * 12));
 
-    let g = dense_net(&DenseSpec::densenet121(), 1);
-    let q = lower(&g, &flat_ranges(&g, -2.0, 2.0), &LowerOptions::default()).unwrap();
-    let s = fusion_savings(&q);
-    eprintln!("DenseNet-121 [3,224,224]: {} fused convolutions, largest avoided map {} B, total {} B", s.fused, s.largest, s.total);
-    // 58 dense layers + 3 transitions; the largest is the first transition's
-    // input: 64 + 6·32 = 256 channels at 56×56 (Huang et al. 2017, Table 1).
-    assert_eq!(s.fused, 58 + 3);
-    assert_eq!(s.largest, 256 * 56 * 56);
 }

@@ -415,6 +415,9 @@ pub struct FusionSavings {
     pub largest: usize,
     /// Bytes of all avoided maps together.
     pub total: usize,
+    /// Input channels transformed, summed over the fused convolutions (each
+    /// has per-channel coefficients in flash).
+    pub channels: usize,
 }
 
 /// Measures [`FusionSavings`] of a lowered graph. Each fused transform
@@ -431,6 +434,7 @@ pub fn fusion_savings(q: &QGraph) -> FusionSavings {
                 s.fused += 1;
                 s.largest = s.largest.max(bytes);
                 s.total += bytes;
+                s.channels += c.in_channels;
             }
         }
     }

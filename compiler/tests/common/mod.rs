@@ -143,11 +143,6 @@ pub struct DenseSpec {
 }
 
 impl DenseSpec {
-    /// DenseNet-121 (Huang et al. 2017, Table 1): 224×224 RGB, blocks of
-    /// 6/12/24/16 layers, growth 32, bottleneck 4·32, compression 0.5.
-    pub fn densenet121() -> Self {
-        DenseSpec { input: [3, 224, 224], stem: 64, stem_k: 7, stem_stride: 2, stem_pool: true, blocks: vec![6, 12, 24, 16], growth: 32, bottleneck: Some(128), classes: 1000 }
-    }
     /// A small two-block version for simulation tests.
     pub fn small() -> Self {
         DenseSpec { input: [3, 12, 12], stem: 8, stem_k: 3, stem_stride: 1, stem_pool: false, blocks: vec![3, 2], growth: 4, bottleneck: Some(8), classes: 5 }
