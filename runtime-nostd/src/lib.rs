@@ -1,4 +1,157 @@
-//! `ingot-rt`: the int8 kernels that ingot-generated firmware modules call.
+//! `ingot-rt`: the int8 kernels that ingot-generated firmware modules call,
+//! and that the ingot compiler runs as its bit-exact integer simulator.
+//!
+//! `#![no_std]`, no `alloc`, no dependencies, no `unsafe`, no statics, no
+//! internal buffers, and no floating point on the inference path (the only
+//! float code is marked *host-side*: [`Requant::from_real`],
+//! [`Requant::to_real`], [`AddParams::from_scales`] and [`dequantize`]).
+//! Nothing assumes a 64-bit `usize`; 64-bit arithmetic is `i64`, which
+//! 32-bit Cortex-M does with `SMULL`/`SMLAL` and register pairs.
+//!
+//! # Layout: channels-last (HWC), one arena
+//!
+//! Every feature map of one image is stored channels-last: the channels of
+//! a pixel are adjacent, pixels follow row by row. All maps live in **one
+//! caller-owned arena** `&mut [i8]` and are addressed by a [`MapRef`]:
+//!
+//! ```text
+//! element (y, x, ch)  at  arena[offset + (y * w + x) * stride + ch]
+//! ```
+//!
+//! HWC is chosen because a convolution's receptive field is then `kh·kw`
+//! runs of contiguous channels, and the weights are stored
+//! `[C_out][kh][kw][C_in/groups]` with the same channel-innermost order: the
+//! multiply-accumulate loop walks two contiguous arrays.
+//!
+//! # The stride convention and in-place concatenation
+//!
+//! `MapRef::stride >= c` is the **pixel stride**: the channel count of the
+//! region the map lives in. A plain map has `stride == c`. A concatenation
+//! of `C_total` channels is one region; the producer of channels
+//! `[c0, c0 + C)` writes through `MapRef { offset: region + c0, c: C,
+//! stride: C_total, .. }` and a consumer of the first `k` channels reads
+//! `MapRef { offset: region, c: k, stride: C_total, .. }`
+//! ([`MapRef::channels`] builds such views). So concatenation costs no copy,
+//! and a densely connected layer reads channels `[0, k)` and writes
+//! `[k, k + g)` of the *same* region in one call: its reader and writer
+//! interleave byte by byte.
+//!
+//! Safe Rust cannot hand out a `&[i8]` and a `&mut [i8]` to interleaved
+//! bytes, so kernels never take per-map slices: they take the single arena
+//! plus `MapRef`s, read into registers or scratch, and write back by index.
+//! That keeps the crate free of `unsafe`. Each kernel validates its maps up
+//! front ([`MapRef::fits`], [`MapRef::is_disjoint`]) and returns an
+//! [`Error`] instead of writing anything when they are wrong.
+//!
+//! Aliasing rules: convolution, linear and pooling outputs must not share
+//! elements with their inputs (interleaved channel views of one region are
+//! fine; pooling in place is **not** supported). [`add`] may write in place:
+//! the output may be exactly one of the inputs (same `MapRef`).
+//!
+//! # Quantization and the rounding rule
+//!
+//! Values follow Jacob et al. (2018), *Quantization and Training of Neural
+//! Networks for Efficient Integer-Arithmetic-Only Inference*, Section 2:
+//! `real = scale · (q − zero_point)`. Weights are symmetric per output
+//! channel (zero point 0, values in `[-127, 127]`); the bias is folded with
+//! the input zero point by the compiler
+//! (`bias_folded[o] = bias_q[o] − z_in · Σ w[o]`), so kernels accumulate
+//! `acc = bias_folded[o] + Σ w·x` over raw int8 `x`, and padded taps equal to
+//! `z_in` keep that exact.
+//!
+//! The real multiplier `M = s_in·s_w / s_out` is a [`Requant`]: a Q31
+//! mantissa `mult` with `|mult|` in `[2^30, 2^31)` and a `shift`, so that
+//! `M ≈ mult · 2^-(31 + shift)`, total shift `t = 31 + shift` in `1..=62`.
+//! Requantization is
+//!
+//! ```text
+//! out = clamp(z_out + ((acc as i64 * mult as i64 + (1 << (t - 1))) >> t), min, max)
+//! ```
+//!
+//! i.e. round to nearest, **ties toward +∞**, with a **single rounding**.
+//! The full 62-bit product is kept and rounded once; the common two-step
+//! alternative (a rounding doubling high-multiply followed by a rounding
+//! right shift) rounds twice and can be off by one step on ties. Here the
+//! result is always the correctly rounded `acc · mult / 2^t`. The fused
+//! activation is the clamp: none = `[-128, 127]`, ReLU = `[z_out, 127]`,
+//! ReLU6 = `[z_out, min(127, z_out + round(6 / s_out))]` ([`OutputQuant`]).
+//!
+//! # Accumulator bound
+//!
+//! Accumulators are i32 and add with wrapping arithmetic. For every output
+//! channel `|acc| <= |bias| + 255 · Σ|w|` ([`acc_worst_case`]); the compiler
+//! checks that this stays below `2^31` ([`acc_fits`]). With `|w| <= 127`
+//! that allows about 66 000 taps per output even with a zero bias, far more
+//! than any layer this crate targets.
+//!
+//! # Hot loops and what they should compile to
+//!
+//! A convolution handles one output pixel at a time: it gathers the
+//! receptive field into the caller's `patch` (the im2col buffer of one
+//! pixel, sized by [`conv_patch_len`]), applying padding and any fused input
+//! transform once, then runs every output channel's dot product over the
+//! contiguous patch and the contiguous weight row. The patch is stored
+//! **widened to 16 bits** (two little-endian bytes per element): it is reused
+//! by all `C_out` rows, so widening it once per pixel removes half of the
+//! sign extensions from the inner loop.
+//!
+//! The inner loop therefore runs over *contiguous input channels* (the
+//! innermost axis of both the HWC patch and the `[O][kh][kw][I]` weights),
+//! never over the kernel window or over output channels: contiguous runs
+//! are what allow wide loads and multiply-accumulate over channel pairs.
+//! It is written as fixed-width chunks (`chunks_exact` of 32 then 16 lanes,
+//! a lane-array accumulator, one horizontal sum at the end), which has no
+//! bounds checks and no loop-carried dependency between lanes.
+//!
+//! * On x86-64 (baseline SSE2) LLVM vectorizes it to `movdqu` loads,
+//!   `punpck*bw`/`psraw` to sign-extend the weights, `pmaddwd` (eight 16-bit
+//!   products summed in pairs into four i32 lanes) and `paddd`: about 0.8
+//!   instructions per MAC in the loop.
+//! * On Cortex-M4/M7 (`thumbv7em`) the intended shape is the same pairing:
+//!   one 32-bit load brings a channel pair of the widened patch, one 32-bit
+//!   load brings four weights that `SXTB16` (with `ROR #8` for the odd ones)
+//!   splits into two 16-bit pairs, and `SMLAD` does two 16×16 MACs into the
+//!   32-bit accumulator per instruction. Pairing consecutive channels is
+//!   exactly the `acc += x[2k]·w[2k] + x[2k+1]·w[2k+1]` the loop expresses,
+//!   and it is only possible because channels are innermost and contiguous.
+//!
+//! The 1×1 pointwise path skips the window logic (the patch is the input
+//! pixel, widened). The depthwise path (`groups == C_in`) gathers each
+//! channel's window into its own contiguous segment so it uses the same dot
+//! product. [`linear`] reads the input directly from the arena with an
+//! all-int8 dot product (each weight is used once, so there is nothing to
+//! amortize a widening over).
+//!
+//! # Kernels
+//!
+//! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
+//! [`global_avg_pool`], [`add`], [`channel_transform`], [`copy_channels`], [`quantize_pixels`], [`copy_in`],
+//! [`copy_out`], [`argmax`], [`dequantize`].
 #![no_std]
 #![forbid(unsafe_code)]
 #![deny(missing_docs)]
+
+mod channel;
+mod conv;
+mod dot;
+mod eltwise;
+mod error;
+mod io;
+mod linear;
+mod map;
+mod pool;
+mod requant;
+mod transform;
+
+pub use channel::{channel_transform, copy_channels};
+pub use conv::{conv2d, conv_patch_len, window_out_len, ConvParams, Padding, Window};
+pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
+pub use error::Error;
+pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
+pub use linear::linear;
+pub use map::MapRef;
+pub use pool::{avg_pool2d, div_round, global_avg_pool, max_pool2d, PoolQuant};
+pub use requant::{
+    acc_fits, acc_worst_case, sat_i8, OutputQuant, Requant, MAX_TOTAL_SHIFT, MIN_TOTAL_SHIFT,
+};
+pub use transform::{AffineTransform, InputTransform};

@@ -1,0 +1,182 @@
+//! Calibrated value ranges of every float map, and their file format
+//! `ingot.ranges.v1` (documented in `docs/ranges-format.md`).
+//!
+//! A ranges file lets `ingot build` and build scripts reuse a calibration
+//! instead of reading images again. It records which graph it belongs to
+//! (name and a hash of the graph file and weights) so a stale file is
+//! refused rather than silently applied to a changed model.
+
+use crate::graph::{Graph, MapId};
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+use std::path::Path;
+
+/// Format string of ranges files.
+pub const RANGES_V1: &str = "ingot.ranges.v1";
+
+/// The real interval `[min, max]` chosen for one map.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct MapRange {
+    /// Lower end (at most 0 after [`MapRange::with_zero`]).
+    pub min: f32,
+    /// Upper end.
+    pub max: f32,
+}
+
+impl MapRange {
+    /// The range widened to contain 0, as affine int8 quantization needs
+    /// (real zero must be exactly representable; Jacob et al. 2018, §2.1).
+    pub fn with_zero(self) -> MapRange {
+        MapRange { min: self.min.min(0.0), max: self.max.max(0.0) }
+    }
+}
+
+/// Ranges of all maps of one graph: a side table indexed by [`MapId`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct Ranges {
+    /// Graph name.
+    pub graph: String,
+    /// Hash of the graph and weights files the ranges were computed for.
+    pub graph_hash: String,
+    /// Range-selection method, e.g. `minmax`, `percentile:99.99`, `mse`, `kl`.
+    pub method: String,
+    /// Number of images observed.
+    pub images: usize,
+    /// One range per map of the graph.
+    pub maps: Vec<MapRange>,
+}
+
+impl Ranges {
+    /// The range of one map.
+    pub fn get(&self, m: MapId) -> MapRange {
+        self.maps[m.index()]
+    }
+}
+
+/// The JSON form: maps keyed by name so a file is readable and diffable.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RangesFile {
+    /// [`RANGES_V1`].
+    pub format: String,
+    /// Graph name.
+    pub graph: String,
+    /// Hash of graph and weights (see [`crate::calibrate::ranges::graph_hash`]).
+    pub graph_hash: String,
+    /// Method used.
+    pub method: String,
+    /// Images observed.
+    pub images: usize,
+    /// Range per map name (the input's name or a layer name).
+    pub maps: BTreeMap<String, MapRange>,
+}
+
+/// Why a ranges file could not be used.
+#[derive(Debug, thiserror::Error)]
+pub enum RangesError {
+    /// Unreadable file.
+    #[error("{path}: cannot read: {source}")]
+    Io {
+        /// The file.
+        path: String,
+        /// The OS error.
+        source: std::io::Error,
+    },
+    /// Not valid JSON of this format.
+    #[error("{path}: {message}")]
+    Format {
+        /// The file.
+        path: String,
+        /// What is wrong.
+        message: String,
+    },
+    /// Written for another graph or another version of its weights.
+    #[error("{path}: ranges were computed for graph `{file_graph}` (hash {file_hash}) but the graph is `{graph}` (hash {hash}); recalibrate")]
+    Stale {
+        /// The file.
+        path: String,
+        /// Graph named in the file.
+        file_graph: String,
+        /// Hash in the file.
+        file_hash: String,
+        /// Current graph.
+        graph: String,
+        /// Current hash.
+        hash: String,
+    },
+    /// A map of the graph has no range, or a range is not usable.
+    #[error("{path}: map `{map}`: {message}")]
+    Map {
+        /// The file.
+        path: String,
+        /// Map name.
+        map: String,
+        /// What is wrong.
+        message: String,
+    },
+}
+
+/// FNV-1a 64 of the graph file and weights file bytes, as 16 hex digits:
+/// identifies the exact model a calibration or a generated module came from.
+pub fn graph_hash(g: &Graph) -> std::io::Result<String> {
+    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    for p in [g.source(), g.weights_path()] {
+        for b in std::fs::read(p)? {
+            h ^= b as u64;
+            h = h.wrapping_mul(0x0000_0100_0000_01b3);
+        }
+    }
+    Ok(format!("{h:016x}"))
+}
+
+impl Ranges {
+    /// The file form.
+    pub fn to_file(&self, g: &Graph) -> RangesFile {
+        RangesFile {
+            format: RANGES_V1.into(),
+            graph: self.graph.clone(),
+            graph_hash: self.graph_hash.clone(),
+            method: self.method.clone(),
+            images: self.images,
+            maps: (0..g.map_count()).map(|i| (g.map_name(MapId(i as u32)).to_string(), self.maps[i])).collect(),
+        }
+    }
+
+    /// Writes the file atomically.
+    pub fn save(&self, g: &Graph, path: &Path) -> std::io::Result<()> {
+        let text = serde_json::to_string_pretty(&self.to_file(g)).expect("ranges serialise") + "\n";
+        crate::util::write_atomic(path, text.as_bytes())
+    }
+
+    /// Reads a ranges file and matches it to `g`. `hash` is the current
+    /// [`graph_hash`] of `g`; pass `None` to skip the staleness check.
+    pub fn load(g: &Graph, path: &Path, hash: Option<&str>) -> Result<Ranges, RangesError> {
+        let p = path.display().to_string();
+        let text = std::fs::read_to_string(path).map_err(|source| RangesError::Io { path: p.clone(), source })?;
+        let f: RangesFile = serde_json::from_str(&text).map_err(|e| RangesError::Format { path: p.clone(), message: e.to_string() })?;
+        if f.format != RANGES_V1 {
+            return Err(RangesError::Format { path: p, message: format!("`format` is \"{}\", expected \"{RANGES_V1}\"", f.format) });
+        }
+        if let Some(h) = hash {
+            if f.graph_hash != h || f.graph != g.name() {
+                return Err(RangesError::Stale {
+                    path: p,
+                    file_graph: f.graph,
+                    file_hash: f.graph_hash,
+                    graph: g.name().into(),
+                    hash: h.into(),
+                });
+            }
+        }
+        let mut maps = Vec::with_capacity(g.map_count());
+        for i in 0..g.map_count() {
+            let name = g.map_name(MapId(i as u32));
+            let r = *f.maps.get(name).ok_or_else(|| RangesError::Map { path: p.clone(), map: name.into(), message: "no range in the file".into() })?;
+            if !(r.min.is_finite() && r.max.is_finite() && r.min <= r.max) {
+                return Err(RangesError::Map { path: p.clone(), map: name.into(), message: format!("invalid range [{}, {}]", r.min, r.max) });
+            }
+            maps.push(r);
+        }
+        Ok(Ranges { graph: f.graph, graph_hash: f.graph_hash, method: f.method, images: f.images, maps })
+    }
+}

@@ -1,0 +1,360 @@
+//! The lowered int8 graph: what the planner, the integer simulator and the
+//! code generator take.
+//!
+//! Compared with the float [`Graph`](crate::graph::Graph): batch norm is folded
+//! into convolutions or fused into a convolution's input read, ReLU/ReLU6 are
+//! clamps, `flatten` and `dropout` are gone (the linear layer's weights are
+//! permuted to the HWC order instead), softmax is dropped (it does not change
+//! the arg-max; [`QGraph::softmax_dropped`] says so), and every map carries
+//! int8 quantization parameters. Maps are laid out channels-last (HWC), as
+//! `ingot-rt` expects.
+//!
+//! Quantities are stored as plain integers in the conventions of `ingot-rt`
+//! (a [`Multiplier`] is an `ingot_rt::Requant`), so the simulator and the
+//! generated code apply exactly the same arithmetic.
+
+use crate::graph::{LayerId, MapId, Padding, Shape};
+use serde::Serialize;
+
+/// Index of a map in [`QGraph::maps`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize)]
+pub struct QMapId(pub u32);
+
+/// Index of a step in [`QGraph::steps`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize)]
+pub struct StepId(pub u32);
+
+impl QMapId {
+    /// The index as `usize`.
+    pub fn index(self) -> usize {
+        self.0 as usize
+    }
+}
+
+impl StepId {
+    /// The index as `usize`.
+    pub fn index(self) -> usize {
+        self.0 as usize
+    }
+}
+
+/// Affine int8 quantization of one map: `real = scale * (q - zero_point)`.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct QParams {
+    /// Real value of one step.
+    pub scale: f32,
+    /// The int8 code of real zero, in `-128..=127`.
+    pub zero_point: i32,
+}
+
+/// A real multiplier `M ≈ mult · 2^-(31 + shift)` with `mult` in
+/// `[2^30, 2^31)`; the convention of `ingot_rt::Requant`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
+pub struct Multiplier {
+    /// Q31 mantissa.
+    pub mult: i32,
+    /// Extra right shift (negative: left).
+    pub shift: i32,
+}
+
+/// Output clamp in int8 codes: the fused activation.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
+pub struct Clamp {
+    /// Smallest code written.
+    pub min: i8,
+    /// Largest code written.
+    pub max: i8,
+}
+
+/// A per-channel int8 → int8 map applied while reading a map (batch norm and
+/// ReLU of pre-activation networks), or as a step of its own.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub enum ChannelTransform {
+    /// `q' = clamp(zp_out + ((x - zp_in) * mul[c] + add[c] + round) >> shift)`.
+    Affine {
+        /// Per-channel multiplier.
+        mul: Vec<i32>,
+        /// Per-channel additive term in units of `2^-shift` output steps.
+        add: Vec<i32>,
+        /// Common right shift.
+        shift: u32,
+        /// Zero point of the stored input.
+        zp_in: i32,
+        /// Zero point of the transformed values.
+        zp_out: i32,
+        /// Clamp of the transformed values.
+        clamp: Clamp,
+    },
+    /// `q' = table[c * 256 + (x as u8)]`, 256 entries per channel.
+    Table(Vec<i8>),
+}
+
+/// A convolution with int8 weights.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QConv {
+    /// Output channels.
+    pub out_channels: usize,
+    /// Input channels.
+    pub in_channels: usize,
+    /// `[kH, kW]`.
+    pub kernel: [usize; 2],
+    /// `[sH, sW]`.
+    pub stride: [usize; 2],
+    /// `[dH, dW]`.
+    pub dilation: [usize; 2],
+    /// Explicit padding.
+    pub padding: Padding,
+    /// Channel groups.
+    pub groups: usize,
+    /// Weights `[O][kH][kW][I/groups]`, symmetric per output channel in `-127..=127`.
+    pub weights: Vec<i8>,
+    /// Real scale of each output channel's weights.
+    pub weight_scales: Vec<f32>,
+    /// Bias at scale `s_in * s_w[o]`, already folded with the input zero
+    /// point: `bias_q[o] - zp_in * Σ w[o]`.
+    pub bias: Vec<i32>,
+    /// Per output channel `s_in * s_w[o] / s_out`.
+    pub requant: Vec<Multiplier>,
+    /// Zero point of the convolution's input domain (after `transform`, if
+    /// any): the value padded taps take.
+    pub input_zp: i32,
+    /// Fused activation.
+    pub clamp: Clamp,
+    /// Batch norm (+ ReLU) applied on the input read, if fused here.
+    pub transform: Option<ChannelTransform>,
+}
+
+/// A fully connected layer with int8 weights.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QLinear {
+    /// Output features.
+    pub out_features: usize,
+    /// Input features.
+    pub in_features: usize,
+    /// Weights `[out][in]`, the input in HWC order of the producer's map.
+    pub weights: Vec<i8>,
+    /// Real scale of each output row's weights.
+    pub weight_scales: Vec<f32>,
+    /// Folded bias, as for [`QConv::bias`].
+    pub bias: Vec<i32>,
+    /// Per output feature `s_in * s_w[o] / s_out`.
+    pub requant: Vec<Multiplier>,
+    /// Fused activation.
+    pub clamp: Clamp,
+}
+
+/// A pooling window (max or average) or the global average.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QPool {
+    /// `[kH, kW]` (the whole map for the global average).
+    pub kernel: [usize; 2],
+    /// `[sH, sW]`.
+    pub stride: [usize; 2],
+    /// Explicit padding.
+    pub padding: Padding,
+    /// Rescaling (for averages it includes the `1 / count`); `None` when
+    /// input and output quantization are equal (max pooling only).
+    pub requant: Option<Multiplier>,
+    /// Fused activation.
+    pub clamp: Clamp,
+}
+
+/// Element-wise sum of two maps with their own scales.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QAdd {
+    /// Input `a` to the shared scale.
+    pub a: Multiplier,
+    /// Input `b` to the shared scale.
+    pub b: Multiplier,
+    /// Shared scale to the output.
+    pub out: Multiplier,
+    /// Headroom shift applied before the input multipliers.
+    pub left_shift: u32,
+    /// Fused activation.
+    pub clamp: Clamp,
+}
+
+/// What a step computes.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub enum QKernel {
+    /// Convolution.
+    Conv2d(QConv),
+    /// Fully connected.
+    Linear(QLinear),
+    /// Max pooling.
+    MaxPool(QPool),
+    /// Average pooling.
+    AvgPool(QPool),
+    /// Global average pooling to `[C, 1, 1]`.
+    GlobalAvgPool(QPool),
+    /// Element-wise add.
+    Add(QAdd),
+    /// Channel concatenation. Inputs share the output's quantization, so it
+    /// is a plain copy, and free when the planner lets producers write into
+    /// the output directly.
+    Concat,
+    /// A per-channel transform as a step of its own (batch norm or ReLU that
+    /// could not be fused). Element-wise: may run in place.
+    Channel(ChannelTransform),
+}
+
+impl QKernel {
+    /// Short name for reports.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            QKernel::Conv2d(c) if c.groups > 1 && c.groups == c.in_channels => "depthwise",
+            QKernel::Conv2d(c) if c.kernel == [1, 1] => "pointwise",
+            QKernel::Conv2d(_) => "conv2d",
+            QKernel::Linear(_) => "linear",
+            QKernel::MaxPool(_) => "max_pool",
+            QKernel::AvgPool(_) => "avg_pool",
+            QKernel::GlobalAvgPool(_) => "global_avg_pool",
+            QKernel::Add(_) => "add",
+            QKernel::Concat => "concat",
+            QKernel::Channel(_) => "channel_transform",
+        }
+    }
+}
+
+/// One int8 map.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QMap {
+    /// Name (of the float layer whose value it holds, or the input's).
+    pub name: String,
+    /// `[C, H, W]`; stored HWC.
+    pub shape: Shape,
+    /// Quantization.
+    pub qp: QParams,
+    /// The float map it approximates (for error reports).
+    pub float_map: MapId,
+}
+
+/// One kernel call of the schedule.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QStep {
+    /// Name (of the float layer that produces the output).
+    pub name: String,
+    /// Float layers folded into this step, first the main one.
+    pub layers: Vec<LayerId>,
+    /// Maps read, in order.
+    pub inputs: Vec<QMapId>,
+    /// Map written.
+    pub output: QMapId,
+    /// The computation.
+    pub kernel: QKernel,
+}
+
+/// The lowered int8 network.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct QGraph {
+    /// Network name.
+    pub name: String,
+    /// Class names.
+    pub labels: Vec<String>,
+    /// All maps; side tables of later passes are indexed by [`QMapId`].
+    pub maps: Vec<QMap>,
+    /// Steps in a valid execution order.
+    pub steps: Vec<QStep>,
+    /// The input map.
+    pub input: QMapId,
+    /// Camera bytes to input codes: 256 entries per input channel, folding
+    /// pixel scale, mean, std and the input quantization.
+    pub pixel_table: Vec<i8>,
+    /// The output map.
+    pub output: QMapId,
+    /// True when the float graph ended in a softmax that was dropped: the
+    /// module returns the logits before it.
+    pub softmax_dropped: bool,
+}
+
+impl QGraph {
+    /// One map.
+    pub fn map(&self, id: QMapId) -> &QMap {
+        &self.maps[id.index()]
+    }
+
+    /// One step.
+    pub fn step(&self, id: StepId) -> &QStep {
+        &self.steps[id.index()]
+    }
+
+    /// Ids of all steps in schedule order.
+    pub fn step_ids(&self) -> impl ExactSizeIterator<Item = StepId> {
+        (0..self.steps.len() as u32).map(StepId)
+    }
+
+    /// The step writing each map (`None` for the input), indexed by `QMapId`.
+    pub fn producers(&self) -> Vec<Option<StepId>> {
+        let mut p = vec![None; self.maps.len()];
+        for (i, s) in self.steps.iter().enumerate() {
+            p[s.output.index()] = Some(StepId(i as u32));
+        }
+        p
+    }
+
+    /// Structural checks every pass may rely on; run between passes in debug
+    /// builds. Returns the first inconsistency found.
+    pub fn verify(&self) -> Result<(), String> {
+        let n = self.maps.len();
+        let mut written = vec![false; n];
+        if self.input.index() >= n || self.output.index() >= n {
+            return Err("input or output map out of range".into());
+        }
+        written[self.input.index()] = true;
+        if self.pixel_table.len() != 256 * self.map(self.input).shape.c {
+            return Err("pixel table is not 256 entries per input channel".into());
+        }
+        for s in &self.steps {
+            for m in s.inputs.iter().chain([&s.output]) {
+                if m.index() >= n {
+                    return Err(format!("step `{}`: map {} out of range", s.name, m.0));
+                }
+            }
+            if let Some(m) = s.inputs.iter().find(|m| !written[m.index()]) {
+                return Err(format!("step `{}` reads `{}` before it is written", s.name, self.map(*m).name));
+            }
+            if written[s.output.index()] {
+                return Err(format!("step `{}` writes `{}` a second time", s.name, self.map(s.output).name));
+            }
+            written[s.output.index()] = true;
+            let out = self.map(s.output);
+            for m in s.inputs.iter().map(|&m| self.map(m)) {
+                if !(-128..=127).contains(&m.qp.zero_point) || !(m.qp.scale > 0.0) {
+                    return Err(format!("map `{}` has invalid quantization {:?}", m.name, m.qp));
+                }
+            }
+            match &s.kernel {
+                QKernel::Conv2d(c) => {
+                    let per = c.kernel[0] * c.kernel[1] * (c.in_channels / c.groups);
+                    if c.weights.len() != c.out_channels * per
+                        || c.bias.len() != c.out_channels
+                        || c.requant.len() != c.out_channels
+                        || out.shape.c != c.out_channels
+                    {
+                        return Err(format!("step `{}`: convolution tensors do not match its shape", s.name));
+                    }
+                }
+                QKernel::Linear(l) => {
+                    if l.weights.len() != l.out_features * l.in_features
+                        || l.bias.len() != l.out_features
+                        || l.requant.len() != l.out_features
+                        || out.shape.len() != l.out_features
+                    {
+                        return Err(format!("step `{}`: linear tensors do not match its shape", s.name));
+                    }
+                }
+                QKernel::Concat => {
+                    let c: usize = s.inputs.iter().map(|&m| self.map(m).shape.c).sum();
+                    if c != out.shape.c || s.inputs.iter().any(|&m| self.map(m).qp != out.qp) {
+                        return Err(format!("step `{}`: concat inputs must add up to the output and share its quantization", s.name));
+                    }
+                }
+                _ => {}
+            }
+        }
+        if !written[self.output.index()] {
+            return Err("output map is never written".into());
+        }
+        Ok(())
+    }
+}

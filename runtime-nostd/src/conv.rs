@@ -1,0 +1,475 @@
+//! 2-D convolution over HWC maps: im2col of one output pixel into the
+//! widened patch, then contiguous dot products per output channel.
+
+use crate::dot::{dot2_wide, dot4_wide, dot_wide, tail_wide, widen_into};
+use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
+
+/// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct Padding {
+    /// Rows added above the input.
+    pub top: usize,
+    /// Columns added left of the input.
+    pub left: usize,
+    /// Rows added below the input.
+    pub bottom: usize,
+    /// Columns added right of the input.
+    pub right: usize,
+}
+
+impl Padding {
+    /// No padding.
+    pub const NONE: Padding = Padding {
+        top: 0,
+        left: 0,
+        bottom: 0,
+        right: 0,
+    };
+
+    /// The same amount on all four sides.
+    pub const fn same(p: usize) -> Self {
+        Padding {
+            top: p,
+            left: p,
+            bottom: p,
+            right: p,
+        }
+    }
+}
+
+/// A sliding window: kernel size, step ("stride" of the convolution, not to
+/// be confused with [`MapRef::stride`]), dilation and padding.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Window {
+    /// Kernel height.
+    pub kh: usize,
+    /// Kernel width.
+    pub kw: usize,
+    /// Vertical step between output rows, in input rows.
+    pub step_y: usize,
+    /// Horizontal step between output columns, in input columns.
+    pub step_x: usize,
+    /// Vertical dilation (1 = dense kernel).
+    pub dilation_y: usize,
+    /// Horizontal dilation (1 = dense kernel).
+    pub dilation_x: usize,
+    /// Padding on each side.
+    pub pad: Padding,
+}
+
+/// Output length along one axis: `(n + pa + pb - d·(k-1) - 1) / s + 1`, or
+/// `None` when the dilated kernel does not fit the padded input or a
+/// parameter is zero.
+pub const fn window_out_len(
+    n: usize,
+    k: usize,
+    step: usize,
+    dilation: usize,
+    pad_a: usize,
+    pad_b: usize,
+) -> Option<usize> {
+    if k == 0 || step == 0 || dilation == 0 {
+        return None;
+    }
+    let padded = n + pad_a + pad_b;
+    let span = dilation * (k - 1) + 1;
+    if padded < span {
+        return None;
+    }
+    Some((padded - span) / step + 1)
+}
+
+impl Window {
+    /// A square `k×k` window with equal step, dilation 1 and symmetric
+    /// padding `pad`.
+    pub const fn square(k: usize, step: usize, pad: usize) -> Self {
+        Window {
+            kh: k,
+            kw: k,
+            step_y: step,
+            step_x: step,
+            dilation_y: 1,
+            dilation_x: 1,
+            pad: Padding::same(pad),
+        }
+    }
+
+    /// Number of taps `kh · kw`.
+    pub const fn taps(&self) -> usize {
+        self.kh * self.kw
+    }
+
+    /// Output height for an input of height `h`.
+    pub const fn out_h(&self, h: usize) -> Option<usize> {
+        window_out_len(
+            h,
+            self.kh,
+            self.step_y,
+            self.dilation_y,
+            self.pad.top,
+            self.pad.bottom,
+        )
+    }
+
+    /// Output width for an input of width `w`.
+    pub const fn out_w(&self, w: usize) -> Option<usize> {
+        window_out_len(
+            w,
+            self.kw,
+            self.step_x,
+            self.dilation_x,
+            self.pad.left,
+            self.pad.right,
+        )
+    }
+
+    /// True when an `out_h × out_w` output matches an `h × w` input.
+    pub const fn matches(&self, h: usize, w: usize, out_h: usize, out_w: usize) -> bool {
+        match (self.out_h(h), self.out_w(w)) {
+            (Some(a), Some(b)) => a == out_h && b == out_w,
+            _ => false,
+        }
+    }
+}
+
+/// Parameters of one convolution call.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct ConvParams {
+    /// Kernel geometry.
+    pub window: Window,
+    /// Number of groups; `C_in` and `C_out` must be multiples of it.
+    /// `groups == C_in` is depthwise (with channel multiplier
+    /// `C_out / C_in`).
+    pub groups: usize,
+    /// Input zero point: the value padded taps take. With an input transform
+    /// this is the transform's output zero point. The folded bias assumes it.
+    pub input_zp: i8,
+    /// Output zero point and activation clamp.
+    pub out: OutputQuant,
+}
+
+/// Length (in `i16` elements) of the `patch` scratch a convolution needs:
+/// `kh · kw · C_in`.
+///
+/// The patch holds one output pixel's receptive field, every element
+/// widened to `i16`, laid out as `[group][ky][kx][channel within group]`.
+pub const fn conv_patch_len(kh: usize, kw: usize, c_in: usize) -> usize {
+    kh * kw * c_in
+}
+
+/// Checks shared by the convolution paths; returns `(taps, cpg, opg)`.
+#[allow(clippy::too_many_arguments)]
+fn check_conv(
+    arena_len: usize,
+    input: &MapRef,
+    output: &MapRef,
+    weights: &[i8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch_len: usize,
+) -> Result<(usize, usize, usize), Error> {
+    input.check(arena_len)?;
+    output.check(arena_len)?;
+    if !input.is_disjoint(output) {
+        return Err(Error::Overlap);
+    }
+    let w = &p.window;
+    if p.groups == 0 || !p.out.is_valid() {
+        return Err(Error::BadParams);
+    }
+    if w.out_h(input.h).is_none() || w.out_w(input.w).is_none() {
+        return Err(Error::BadParams);
+    }
+    if !w.matches(input.h, input.w, output.h, output.w)
+        || input.c % p.groups != 0
+        || output.c % p.groups != 0
+        || input.c == 0
+    {
+        return Err(Error::ShapeMismatch);
+    }
+    let taps = w.taps();
+    let cpg = input.c / p.groups;
+    let opg = output.c / p.groups;
+    let need_w = output
+        .c
+        .checked_mul(taps)
+        .and_then(|v| v.checked_mul(cpg))
+        .ok_or(Error::BadParams)?;
+    if weights.len() < need_w
+        || bias.len() < output.c
+        || requant.len() < output.c
+        || patch_len < conv_patch_len(w.kh, w.kw, input.c)
+    {
+        return Err(Error::BufferTooSmall);
+    }
+    if !requant[..output.c].iter().all(Requant::is_valid) {
+        return Err(Error::BadParams);
+    }
+    if let Some(t) = transform {
+        if !t.is_valid_for(input.c, p.input_zp) {
+            return Err(Error::BadParams);
+        }
+    }
+    Ok((taps, cpg, opg))
+}
+
+/// 2-D convolution (any kernel, step, dilation, asymmetric padding, groups,
+/// depthwise with channel multiplier), per-output-channel requantization,
+/// fused clamp, optional fused input transform.
+///
+/// For every output pixel the receptive field is gathered into `patch`
+/// (widened, see [`conv_patch_len`]); padded taps take `p.input_zp`; with a
+/// `transform` each in-bounds value is transformed on the way. Then for
+/// output channel `o` in group `g`:
+///
+/// ```text
+/// acc = bias[o] + Σ_{ky,kx,i} w[o][ky][kx][i] · patch[g][ky][kx][i]   (i32)
+/// out = clamp(z_out + requant[o].scale(acc), min, max)
+/// ```
+///
+/// `weights` is `[C_out][kh][kw][C_in / groups]`, `bias` is folded with the
+/// input zero point. `output` must not share elements with `input`
+/// (interleaved channel views of one concatenation region are fine).
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[i8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+) -> Result<(), Error> {
+    let (taps, cpg, opg) = check_conv(
+        arena.len(),
+        &input,
+        &output,
+        weights,
+        bias,
+        requant,
+        p,
+        transform,
+        patch.len(),
+    )?;
+    let w = &p.window;
+    let seg = taps * cpg; // elements per group segment and per weight row
+    let patch = &mut patch[..taps * input.c];
+    let weights = &weights[..output.c * seg];
+    let pointwise = w.kh == 1
+        && w.kw == 1
+        && w.step_y == 1
+        && w.step_x == 1
+        && w.pad == Padding::NONE
+        && p.groups == 1
+        && transform.is_none();
+
+    // Depthwise (one input channel per group): gather the window tap-major
+    // like a dense convolution (`patch[t][c]`, whole kernel rows copied at
+    // once), then each output channel walks its input channel's column.
+    let depthwise = cpg == 1 && p.groups > 1;
+    for oy in 0..output.h {
+        for ox in 0..output.w {
+            if pointwise {
+                // 1×1 fast path: the patch is the input pixel, widened.
+                let src = input.pixel(oy, ox);
+                widen_into(patch, &arena[src..src + input.c]);
+            } else if depthwise {
+                gather(arena, &input, w, p, transform, 1, oy, ox, input.c, seg * input.c, patch);
+            } else {
+                gather(arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch);
+            }
+            let dst = output.pixel(oy, ox);
+            let out = &mut arena[dst..dst + output.c];
+            if depthwise {
+                for (o, (((y, row), &b), rq)) in out
+                    .iter_mut()
+                    .zip(weights.chunks_exact(taps))
+                    .zip(bias)
+                    .zip(requant)
+                    .enumerate()
+                {
+                    let col = &patch[o / opg..];
+                    let mut acc = b;
+                    for (x, &wv) in col.iter().step_by(input.c).zip(row) {
+                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+                    }
+                    *y = rq.apply(acc, p.out);
+                }
+            } else {
+                for (g, xw) in patch.chunks_exact(seg).enumerate() {
+                    let o0 = g * opg;
+                    channel_rows(
+                        xw,
+                        &weights[o0 * seg..(o0 + opg) * seg],
+                        &bias[o0..o0 + opg],
+                        &requant[o0..o0 + opg],
+                        p.out,
+                        &mut out[o0..o0 + opg],
+                    );
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Output channels of one group for one pixel: four (then two, then one)
+/// weight rows per pass over the patch.
+#[inline]
+fn channel_rows(
+    xw: &[i16],
+    weights: &[i8],
+    bias: &[i32],
+    requant: &[Requant],
+    out_q: OutputQuant,
+    out: &mut [i8],
+) {
+    let seg = xw.len();
+    if seg == 0 {
+        return;
+    }
+    if seg < 16 {
+        // Short windows (first layer on a gray image, tiny kernels): plain
+        // scalar rows.
+        for (((o, row), &b), rq) in out
+            .iter_mut()
+            .zip(weights.chunks_exact(seg))
+            .zip(bias)
+            .zip(requant)
+        {
+            let mut acc = b;
+            for (&x, &w) in xw.iter().zip(row) {
+                acc = acc.wrapping_add((x as i32).wrapping_mul(w as i32));
+            }
+            *o = rq.apply(acc, out_q);
+        }
+        return;
+    }
+    let tail = seg - seg % 16;
+    let mut quads = weights.chunks_exact(4 * seg);
+    let mut outs = out.chunks_exact_mut(4);
+    let mut k = 0;
+    for (rows, o) in (&mut quads).zip(&mut outs) {
+        let (a, r) = rows.split_at(seg);
+        let (b, r) = r.split_at(seg);
+        let (c, d) = r.split_at(seg);
+        let mut acc = dot4_wide([xw, xw, xw, xw], [a, b, c, d]);
+        if tail < seg {
+            for (v, w) in acc.iter_mut().zip([a, b, c, d]) {
+                *v = v.wrapping_add(tail_wide(&xw[tail..], &w[tail..]));
+            }
+        }
+        for j in 0..4 {
+            o[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[j]), out_q);
+        }
+        k += 4;
+    }
+    let rest = quads.remainder();
+    let out = outs.into_remainder();
+    let mut j = 0;
+    while j + 2 <= out.len() {
+        let (a, b) = rest[j * seg..(j + 2) * seg].split_at(seg);
+        let mut acc = dot2_wide(xw, xw, a, b);
+        if tail < seg {
+            acc[0] = acc[0].wrapping_add(tail_wide(&xw[tail..], &a[tail..]));
+            acc[1] = acc[1].wrapping_add(tail_wide(&xw[tail..], &b[tail..]));
+        }
+        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[0]), out_q);
+        out[j + 1] = requant[k + j + 1].apply(bias[k + j + 1].wrapping_add(acc[1]), out_q);
+        j += 2;
+    }
+    if j < out.len() {
+        let a = &rest[j * seg..(j + 1) * seg];
+        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
+    }
+}
+
+/// Gathers the receptive field of output pixel `(oy, ox)` into `patch`,
+/// laid out `[group][ky][kx][ci]`, widened.
+#[allow(clippy::too_many_arguments)]
+#[inline]
+fn gather(
+    arena: &[i8],
+    input: &MapRef,
+    w: &Window,
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    groups: usize,
+    oy: usize,
+    ox: usize,
+    cpg: usize,
+    seg: usize,
+    patch: &mut [i16],
+) {
+    let base_y = oy * w.step_y;
+    let base_x = ox * w.step_x;
+    // A whole kernel row is one contiguous run of the arena when the
+    // channels are dense, the kernel is not dilated horizontally and the
+    // row lies inside the map horizontally.
+    let dense_row = groups == 1
+        && transform.is_none()
+        && w.dilation_x == 1
+        && input.stride == input.c
+        && base_x >= w.pad.left
+        && base_x - w.pad.left + w.kw <= input.w;
+    for ky in 0..w.kh {
+        let yy = base_y + ky * w.dilation_y; // padded coordinate
+        let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
+        if dense_row && row_in {
+            let run = w.kw * cpg;
+            let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
+            widen_into(&mut patch[ky * run..(ky + 1) * run], &arena[src..src + run]);
+            continue;
+        }
+        for kx in 0..w.kw {
+            let t = ky * w.kw + kx;
+            let xx = base_x + kx * w.dilation_x;
+            let inside = row_in && xx >= w.pad.left && xx - w.pad.left < input.w;
+            if groups == 1 {
+                let dst = &mut patch[t * cpg..(t + 1) * cpg];
+                if !inside {
+                    dst.fill(p.input_zp as i16);
+                    continue;
+                }
+                let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
+                let src = &arena[src..src + cpg];
+                match transform {
+                    None => widen_into(dst, src),
+                    Some(tr) => {
+                        for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                            *d = tr.apply(ch, v) as i16;
+                        }
+                    }
+                }
+            } else {
+                let src = if inside {
+                    input.pixel(yy - w.pad.top, xx - w.pad.left)
+                } else {
+                    0
+                };
+                for g in 0..groups {
+                    let at = g * seg + t * cpg;
+                    let dst = &mut patch[at..at + cpg];
+                    if !inside {
+                        dst.fill(p.input_zp as i16);
+                        continue;
+                    }
+                    let c0 = g * cpg;
+                    let src = &arena[src + c0..src + c0 + cpg];
+                    match transform {
+                        None => widen_into(dst, src),
+                        Some(tr) => {
+                            for (ci, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                                *d = tr.apply(c0 + ci, v) as i16;
+                            }
+                        }
+                    }
+                }
+            }
+        }
+    }
+}

@@ -1,0 +1,188 @@
+//! Max, average and global average pooling.
+//!
+//! Pooling output must not share elements with its input (the kernels
+//! return [`Error::Overlap`]); write to another buffer or region.
+
+use crate::{Error, MapRef, OutputQuant, Requant, Window};
+
+/// Quantization parameters of a pooling layer.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct PoolQuant {
+    /// Input zero point.
+    pub in_zp: i32,
+    /// Rescaling, see each kernel. `None` means "same scale", and for max
+    /// pooling also "same zero point".
+    pub requant: Option<Requant>,
+    /// Output zero point and clamp.
+    pub out: OutputQuant,
+}
+
+impl PoolQuant {
+    fn is_valid(&self) -> bool {
+        self.out.is_valid()
+            && (-128..=127).contains(&self.in_zp)
+            && self.requant.is_none_or(|r| r.is_valid())
+    }
+}
+
+fn check_pool(arena_len: usize, input: &MapRef, output: &MapRef, q: &PoolQuant) -> Result<(), Error> {
+    input.check(arena_len)?;
+    output.check(arena_len)?;
+    if !input.is_disjoint(output) {
+        return Err(Error::Overlap);
+    }
+    if !q.is_valid() {
+        return Err(Error::BadParams);
+    }
+    if input.c != output.c {
+        return Err(Error::ShapeMismatch);
+    }
+    Ok(())
+}
+
+/// Rounded division `round(s / n)` with ties toward +∞:
+/// `floor((2s + n) / (2n))`, `n > 0`.
+#[inline(always)]
+pub const fn div_round(s: i64, n: i64) -> i64 {
+    (2 * s + n).div_euclid(2 * n)
+}
+
+/// Max pooling. Padded taps are ignored (they never win); a window that
+/// covers only padding yields the real value 0 (`in_zp`).
+///
+/// With `q.requant == None` the output is the maximum itself, clamped to
+/// `[min, max]` (same scale and zero point). With `Some(r)`
+/// (`M = s_in / s_out > 0`, monotone, so taking the maximum first is exact):
+/// `out = clamp(z_out + r.scale(max - in_zp))`.
+pub fn max_pool2d(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    window: &Window,
+    q: &PoolQuant,
+) -> Result<(), Error> {
+    check_pool(arena.len(), &input, &output, q)?;
+    if window.dilation_y == 0 || window.dilation_x == 0 {
+        return Err(Error::BadParams);
+    }
+    if !window.matches(input.h, input.w, output.h, output.w) {
+        return Err(Error::ShapeMismatch);
+    }
+    let w = window;
+    for oy in 0..output.h {
+        for ox in 0..output.w {
+            let dst = output.pixel(oy, ox);
+            for ch in 0..input.c {
+                let mut m: i32 = i32::MIN;
+                for ky in 0..w.kh {
+                    let yy = oy * w.step_y + ky * w.dilation_y;
+                    if yy < w.pad.top || yy - w.pad.top >= input.h {
+                        continue;
+                    }
+                    for kx in 0..w.kw {
+                        let xx = ox * w.step_x + kx * w.dilation_x;
+                        if xx < w.pad.left || xx - w.pad.left >= input.w {
+                            continue;
+                        }
+                        let v = arena[input.index(yy - w.pad.top, xx - w.pad.left, ch)] as i32;
+                        if v > m {
+                            m = v;
+                        }
+                    }
+                }
+                if m == i32::MIN {
+                    m = q.in_zp;
+                }
+                arena[dst + ch] = match q.requant {
+                    None => q.out.finish(m as i64 - q.out.zero_point as i64),
+                    Some(r) => q.out.finish(r.scale(m - q.in_zp)),
+                };
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Average pooling. Every one of the `kh·kw` taps counts; padded taps are
+/// real zeros (contribute `0` to the centred sum). With
+/// `S = Σ (x - in_zp)` over in-bounds taps:
+///
+/// * `q.requant == None`: `out = clamp(z_out + div_round(S, kh·kw))`
+///   (same scale; ties toward +∞).
+/// * `Some(r)` where `r ≈ s_in / (s_out · kh · kw)`:
+///   `out = clamp(z_out + r.scale(S))` (one rounding).
+pub fn avg_pool2d(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    window: &Window,
+    q: &PoolQuant,
+) -> Result<(), Error> {
+    check_pool(arena.len(), &input, &output, q)?;
+    if window.dilation_y == 0 || window.dilation_x == 0 {
+        return Err(Error::BadParams);
+    }
+    if !window.matches(input.h, input.w, output.h, output.w) {
+        return Err(Error::ShapeMismatch);
+    }
+    let w = window;
+    let n = w.taps() as i64;
+    for oy in 0..output.h {
+        for ox in 0..output.w {
+            let dst = output.pixel(oy, ox);
+            for ch in 0..input.c {
+                let mut s: i32 = 0;
+                for ky in 0..w.kh {
+                    let yy = oy * w.step_y + ky * w.dilation_y;
+                    if yy < w.pad.top || yy - w.pad.top >= input.h {
+                        continue;
+                    }
+                    for kx in 0..w.kw {
+                        let xx = ox * w.step_x + kx * w.dilation_x;
+                        if xx < w.pad.left || xx - w.pad.left >= input.w {
+                            continue;
+                        }
+                        let v = arena[input.index(yy - w.pad.top, xx - w.pad.left, ch)] as i32;
+                        s = s.wrapping_add(v - q.in_zp);
+                    }
+                }
+                arena[dst + ch] = match q.requant {
+                    None => q.out.finish(div_round(s as i64, n)),
+                    Some(r) => q.out.finish(r.scale(s)),
+                };
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Global average pooling to a `1×1×C` output: average pooling with the
+/// window equal to the whole map, divisor `h·w` (same formulas as
+/// [`avg_pool2d`], `r ≈ s_in / (s_out · h · w)`). `h·w` must stay below
+/// `2^23` so the centred sum fits in i32.
+pub fn global_avg_pool(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    q: &PoolQuant,
+) -> Result<(), Error> {
+    check_pool(arena.len(), &input, &output, q)?;
+    if output.h != 1 || output.w != 1 || input.pixels() == 0 {
+        return Err(Error::ShapeMismatch);
+    }
+    if input.pixels() >= 1 << 23 {
+        return Err(Error::BadParams);
+    }
+    let n = input.pixels() as i64;
+    for ch in 0..input.c {
+        let mut s: i32 = 0;
+        for px in 0..input.pixels() {
+            s += arena[input.offset + px * input.stride + ch] as i32 - q.in_zp;
+        }
+        arena[output.offset + ch] = match q.requant {
+            None => q.out.finish(div_round(s as i64, n)),
+            Some(r) => q.out.finish(r.scale(s)),
+        };
+    }
+    Ok(())
+}

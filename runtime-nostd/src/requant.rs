@@ -1,0 +1,262 @@
+//! Fixed-point requantization (Jacob et al. 2018, Section 2) and the fused
+//! output clamp.
+
+/// A real multiplier `M` in fixed point: `M ≈ mult · 2^-(31 + shift)`.
+///
+/// `mult` is a Q31 mantissa with `|mult|` in `[2^30, 2^31)`, i.e. `|M|`'s
+/// mantissa in `[0.5, 1)`; `shift` may be negative for `|M| >= 1`. The total
+/// right shift `31 + shift` must lie in `1..=62`. A negative mantissa
+/// (in `(-2^31, -2^30]`) encodes a negative multiplier, which only the
+/// input transform needs. `mult == 0` encodes `M = 0` (any valid shift).
+///
+/// Applying it to an integer `x` (see [`Requant::scale`]):
+///
+/// ```text
+/// t = 31 + shift
+/// scale(x) = (x as i64 * mult as i64 + (1 << (t - 1))) >> t     (arithmetic shift)
+/// ```
+///
+/// which is `x · M` rounded to the nearest integer, ties toward +∞, with a
+/// single rounding step.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Requant {
+    /// Signed Q31 mantissa.
+    pub mult: i32,
+    /// Exponent: the value is `mult · 2^-(31 + shift)`.
+    pub shift: i32,
+}
+
+/// Smallest allowed total right shift `31 + shift`.
+pub const MIN_TOTAL_SHIFT: i32 = 1;
+/// Largest allowed total right shift `31 + shift`.
+pub const MAX_TOTAL_SHIFT: i32 = 62;
+
+impl Requant {
+    /// The multiplier 1.0 (`2^30 · 2^-30`).
+    pub const ONE: Requant = Requant {
+        mult: 1 << 30,
+        shift: -1,
+    };
+
+    /// Builds a multiplier from its parts, or `None` if they violate the
+    /// invariants listed on [`Requant`].
+    pub const fn new(mult: i32, shift: i32) -> Option<Requant> {
+        let r = Requant { mult, shift };
+        if r.is_valid() {
+            Some(r)
+        } else {
+            None
+        }
+    }
+
+    /// True when the mantissa is normalised (or zero) and the total shift is
+    /// in `1..=62`.
+    pub const fn is_valid(&self) -> bool {
+        let total = 31i64 + self.shift as i64;
+        if total < MIN_TOTAL_SHIFT as i64 || total > MAX_TOTAL_SHIFT as i64 {
+            return false;
+        }
+        let m = self.mult as i64;
+        m == 0 || (m >= 1 << 30) || (m <= -(1 << 30) && m > i32::MIN as i64)
+    }
+
+    /// The total right shift `31 + shift` (meaningful only when valid).
+    pub const fn total_shift(&self) -> u32 {
+        (31 + self.shift) as u32
+    }
+
+    /// `x · M`, rounded to nearest with ties toward +∞, in one step:
+    /// `(x·mult + 2^(t-1)) >> t` evaluated in i64 (`t = 31 + shift`).
+    ///
+    /// Cannot overflow: `|x·mult| < 2^31 · 2^31 = 2^62` and the rounding term
+    /// is at most `2^61`. The caller must have checked [`is_valid`](Self::is_valid).
+    #[inline(always)]
+    pub const fn scale(&self, x: i32) -> i64 {
+        // floor((p + 2^(t-1)) / 2^t) == (floor(p / 2^(t-1)) + 1) >> 1,
+        // which avoids materialising the rounding constant.
+        let prod = x as i64 * self.mult as i64;
+        ((prod >> (30 + self.shift)) + 1) >> 1
+    }
+
+    /// Full requantization of an accumulator: `clamp(z_out + scale(acc))`
+    /// into the output's activation range.
+    #[inline(always)]
+    pub const fn apply(&self, acc: i32, out: OutputQuant) -> i8 {
+        out.finish(self.scale(acc))
+    }
+
+    /// Host-side constructor from a real multiplier.
+    ///
+    /// **Uses floating point: runs in the compiler, never on the inference
+    /// path.** Decomposes `m = f · 2^e` with `|f|` in `[0.5, 1)` (exact
+    /// power-of-two steps), sets `mult = round(f · 2^31)` (renormalising if
+    /// the rounding reaches `2^31`) and `shift = -e`. Returns `None` for
+    /// non-finite `m` or when `31 + shift` falls outside `1..=62` (`|m|`
+    /// at or above `2^30`, or below about `2^-32`). `m == 0.0` gives
+    /// `mult = 0, shift = 0`.
+    pub fn from_real(m: f64) -> Option<Requant> {
+        if !m.is_finite() {
+            return None;
+        }
+        if m == 0.0 {
+            return Some(Requant { mult: 0, shift: 0 });
+        }
+        let neg = m < 0.0;
+        let mut f = if neg { -m } else { m };
+        let mut e: i32 = 0;
+        while f >= 1.0 {
+            f *= 0.5;
+            e += 1;
+            if e > 2000 {
+                return None;
+            }
+        }
+        while f < 0.5 {
+            f *= 2.0;
+            e -= 1;
+            if e < -2000 {
+                return None;
+            }
+        }
+        // f in [0.5, 1): f * 2^31 in [2^30, 2^31); round half up (f > 0).
+        let mut q = (f * 2147483648.0 + 0.5) as i64;
+        if q == 1i64 << 31 {
+            q = 1 << 30;
+            e += 1;
+        }
+        let mult = if neg { -q } else { q } as i32;
+        Requant::new(mult, -e)
+    }
+
+    /// Host-side: the real value `mult · 2^-(31 + shift)`.
+    ///
+    /// **Floating point; for the compiler and for reports, not for firmware.**
+    pub fn to_real(&self) -> f64 {
+        let mut v = self.mult as f64;
+        let mut t = 31 + self.shift;
+        while t > 0 {
+            v *= 0.5;
+            t -= 1;
+        }
+        while t < 0 {
+            v *= 2.0;
+            t += 1;
+        }
+        v
+    }
+}
+
+/// Output zero point and fused activation clamp.
+///
+/// Every kernel finishes an output value as
+/// `clamp(zero_point + v, min, max)` where `v` is the requantized value in
+/// i64. The fused activation *is* this clamp:
+///
+/// | activation | `min` | `max` |
+/// |---|---|---|
+/// | none | -128 | 127 |
+/// | ReLU | `z_out` | 127 |
+/// | ReLU6 | `z_out` | `min(127, z_out + round(6 / s_out))` |
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct OutputQuant {
+    /// Output zero point, in `[-128, 127]`.
+    pub zero_point: i32,
+    /// Lower clamp bound.
+    pub min: i8,
+    /// Upper clamp bound (`min <= max`).
+    pub max: i8,
+}
+
+impl OutputQuant {
+    /// No activation: clamp to the full int8 range.
+    pub const fn linear(zero_point: i32) -> Self {
+        OutputQuant {
+            zero_point,
+            min: i8::MIN,
+            max: i8::MAX,
+        }
+    }
+
+    /// ReLU: clamp to `[z_out, 127]`.
+    pub const fn relu(zero_point: i32) -> Self {
+        OutputQuant {
+            zero_point,
+            min: sat_i8(zero_point as i64),
+            max: i8::MAX,
+        }
+    }
+
+    /// ReLU6: clamp to `[z_out, min(127, z_out + six_q)]` where
+    /// `six_q = round(6 / s_out)` is computed by the compiler.
+    pub const fn relu6(zero_point: i32, six_q: i32) -> Self {
+        OutputQuant {
+            zero_point,
+            min: sat_i8(zero_point as i64),
+            max: sat_i8(zero_point as i64 + six_q as i64),
+        }
+    }
+
+    /// An explicit clamp range.
+    pub const fn clamped(zero_point: i32, min: i8, max: i8) -> Self {
+        OutputQuant {
+            zero_point,
+            min,
+            max,
+        }
+    }
+
+    /// True when the zero point is an int8 value and `min <= max`.
+    pub const fn is_valid(&self) -> bool {
+        self.zero_point >= -128 && self.zero_point <= 127 && self.min <= self.max
+    }
+
+    /// `clamp(zero_point + v, min, max)` as i8.
+    #[inline(always)]
+    pub const fn finish(&self, v: i64) -> i8 {
+        let r = v + self.zero_point as i64;
+        if r < self.min as i64 {
+            self.min
+        } else if r > self.max as i64 {
+            self.max
+        } else {
+            r as i8
+        }
+    }
+}
+
+/// Saturate an i64 to the int8 range.
+#[inline(always)]
+pub const fn sat_i8(v: i64) -> i8 {
+    if v < i8::MIN as i64 {
+        i8::MIN
+    } else if v > i8::MAX as i64 {
+        i8::MAX
+    } else {
+        v as i8
+    }
+}
+
+/// Worst-case accumulator magnitude for one output channel:
+/// `|bias| + 255 · Σ|w|`.
+///
+/// `255` is the largest `|x - z_in|` for int8 data, so this bounds both the
+/// folded accumulator `bias_folded + Σ w·x` (where `|x| <= 128`) and the
+/// unfolded `bias_q + Σ w·(x - z_in)`. The kernels add in wrapping i32; the
+/// compiler must keep this below `2^31` (see [`acc_fits`]).
+pub const fn acc_worst_case(weight_row: &[i8], bias: i32) -> i64 {
+    let mut s: i64 = 0;
+    let mut i = 0;
+    while i < weight_row.len() {
+        let w = weight_row[i] as i64;
+        s += if w < 0 { -w } else { w };
+        i += 1;
+    }
+    let b = bias as i64;
+    (if b < 0 { -b } else { b }) + 255 * s
+}
+
+/// True when [`acc_worst_case`] is below `2^31`, i.e. the i32 accumulator of
+/// this channel can never overflow.
+pub const fn acc_fits(weight_row: &[i8], bias: i32) -> bool {
+    acc_worst_case(weight_row, bias) < (1i64 << 31)
+}
