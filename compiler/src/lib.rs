@@ -8,6 +8,7 @@ pub mod calibrate;
 pub mod frontend;
 pub mod graph;
 pub mod lower;
+pub mod plan;
 pub mod util;
 
 pub use frontend::{load, LoadError};

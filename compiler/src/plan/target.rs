@@ -1,0 +1,5 @@
+//! targets
+pub struct Target;
+pub struct Budget;
+#[derive(Debug)]
+pub struct TargetError;
