@@ -17,7 +17,8 @@
 //!    read of any in-place concatenation containing it. The only sharing
 //!    allowed is an element-wise step listed in [`Plan::in_place`] whose
 //!    output view equals an input's view, that input's lifetime ending at
-//!    the step.
+//!    the step; the input may be an in-place concatenation, whose members
+//!    the output then overwrites.
 //!
 //! Overlap is decided exactly, pixel run by pixel run (a brute-force
 //! enumeration over the pixels of one map, with the other map's pixel index
@@ -120,6 +121,7 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
     }
     // 3. In-place concatenations, latest first so containment propagates.
     let mut inplace_out = vec![false; nm];
+    let mut containers: Vec<Vec<usize>> = vec![Vec::new(); nm];
     let mut concats: Vec<usize> =
         (0..n).filter(|&s| matches!(q.steps[s].kernel, QKernel::Concat) && !plan.copy_concat.iter().any(|c| c.index() == s)).collect();
     concats.sort_by_key(|&s| std::cmp::Reverse(pos[s]));
@@ -141,6 +143,7 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
                 ));
             }
             c0 += q.map(m).shape.c;
+            containers[m.index()].push(st.output.index());
             if let (Some(lo), Some(lm)) = (last[st.output.index()], last[m.index()]) {
                 last[m.index()] = Some(lm.max(lo));
             }
@@ -148,6 +151,23 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
     }
     // 4. Pairwise disjointness of stored maps alive together.
     let stored: Vec<usize> = (0..nm).filter(|&m| def[m].is_some() && !inplace_out[m]).collect();
+    // `a` is `i` or a member (at any depth) of the in-place concatenation `i`.
+    let within = |a: usize, i: usize| {
+        let mut todo = vec![a];
+        let mut seen = vec![false; nm];
+        while let Some(x) = todo.pop() {
+            if x == i {
+                return true;
+            }
+            for &c in &containers[x] {
+                if !seen[c] {
+                    seen[c] = true;
+                    todo.push(c);
+                }
+            }
+        }
+        false
+    };
     let allowed = |a: usize, b: usize| {
         plan.in_place.iter().any(|s| {
             let st = &q.steps[s.index()];
@@ -155,10 +175,11 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
             let elementwise = matches!(st.kernel, QKernel::Add(_) | QKernel::Channel(_));
             let pair = |i: usize, o: usize| {
                 st.output.index() == o
-                    && st.inputs.iter().any(|m| m.index() == i)
-                    && plan.map_views[i] == plan.map_views[o]
-                    && last[i] == Some(p)
                     && def[o] == Some(p)
+                    && st.inputs.iter().any(|m| {
+                        let m = m.index();
+                        within(i, m) && plan.map_views[m] == plan.map_views[o] && last[m] == Some(p) && last[i] == Some(p)
+                    })
             };
             elementwise && (pair(a, b) || pair(b, a))
         })
