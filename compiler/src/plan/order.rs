@@ -21,8 +21,6 @@ use std::collections::HashMap;
 pub(crate) struct Found {
     /// Step indices in execution order.
     pub order: Vec<usize>,
-    /// Peak of live bytes of that order (without element-wise aliasing).
-    pub peak: u64,
     /// True when no layer was cut: the peak is the optimum.
     pub exact: bool,
 }
@@ -114,7 +112,6 @@ pub(crate) fn search(n: usize, preds: &[Vec<usize>], uses: &[BufUse], sizes: &[u
         layer = next;
     }
     let best = (0..layer.len()).min_by_key(|&i| (layer[i].peak, i)).unwrap_or(0);
-    let peak = layer.get(best).map_or(0, |s| s.peak);
     let mut order = vec![0usize; n];
     let mut at = best as u32;
     for l in (0..n).rev() {
@@ -122,5 +119,5 @@ pub(crate) fn search(n: usize, preds: &[Vec<usize>], uses: &[BufUse], sizes: &[u
         order[l] = s as usize;
         at = p;
     }
-    Found { order, peak, exact }
+    Found { order, exact }
 }
