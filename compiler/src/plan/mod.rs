@@ -223,10 +223,41 @@ pub fn plan(q: &QGraph, opts: &PlanOptions) -> Result<Plan, PlanError> {
         return Err(PlanError::Align);
     }
     q.verify().map_err(|e| PlanError::Graph(q.name.clone(), e))?;
-    let mut p = plan_core(q, opts);
-    p.copying_bytes = if opts.compare_copying && opts.inplace_concat && !p.copy_concat.len().eq(&count_concats(q)) {
+    let mut forced = vec![false; q.steps.len()];
+    let mut p = plan_core(q, opts, &forced);
+    // A region is reserved whole from its first member's write; when that
+    // costs more than copying, give the region up (one region at a time).
+    if opts.inplace_concat {
+        let producers = q.producers();
+        let regions: Vec<Vec<usize>> = p
+            .buffers
+            .iter()
+            .filter(|b| b.region)
+            .map(|b| {
+                b.maps
+                    .iter()
+                    .filter_map(|m| producers[m.index()])
+                    .map(|s| s.index())
+                    .filter(|&s| matches!(q.steps[s].kernel, QKernel::Concat))
+                    .collect()
+            })
+            .collect();
+        for steps in regions {
+            let mut trial = forced.clone();
+            for s in steps {
+                trial[s] = true;
+            }
+            let cand = plan_core(q, opts, &trial);
+            if cand.arena_bytes < p.arena_bytes {
+                p = cand;
+                forced = trial;
+            }
+        }
+    }
+    let all_copy = p.copy_concat.len() == count_concats(q);
+    p.copying_bytes = if opts.compare_copying && !all_copy {
         let o = PlanOptions { inplace_concat: false, verify: false, ..opts.clone() };
-        plan_core(q, &o).arena_bytes
+        plan_core(q, &o, &forced).arena_bytes
     } else {
         p.arena_bytes
     };
@@ -248,7 +279,6 @@ struct Final {
     bytes: Vec<usize>,
     is_region: Vec<bool>,
     in_place: Vec<StepId>,
-    uses: Vec<liveness::BufUse>,
     iv: Vec<Option<(usize, usize)>>,
     sizes: Vec<u64>,
     profile: Vec<u64>,
@@ -324,12 +354,12 @@ fn finalize(q: &QGraph, st: &regions::Storage, order: &[usize], opts: &PlanOptio
     let iv = liveness::intervals(&uses, &pos, n);
     let sizes: Vec<u64> = bytes.iter().map(|&b| liveness::align_up(b, opts.align) as u64).collect();
     let profile = liveness::profile(&iv, &sizes, n);
-    Final { slots, buffers: nb, bytes, is_region, in_place, uses, iv, sizes, profile }
+    Final { slots, buffers: nb, bytes, is_region, in_place, iv, sizes, profile }
 }
 
-fn plan_core(q: &QGraph, opts: &PlanOptions) -> Plan {
+fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
     let n = q.steps.len();
-    let st = regions::analyze(q, opts);
+    let st = regions::analyze(q, opts, forced_copy);
     let file: Vec<usize> = (0..n).collect();
     let before = finalize(q, &st, &file, opts);
     let (peak_before, _) = liveness::peak(&before.profile);
@@ -400,7 +430,6 @@ fn plan_core(q: &QGraph, opts: &PlanOptions) -> Plan {
             }
         })
         .collect();
-    let _ = &chosen.uses;
     let naive = q.maps.iter().map(|m| liveness::align_up(m.shape.len(), opts.align)).sum();
     Plan {
         order: order.iter().map(|&s| StepId(s as u32)).collect(),

@@ -24,6 +24,11 @@
 //! - a member concatenation is not a contiguous run of the root in the same
 //!   order (a map used by two unrelated concatenations, or at different
 //!   channel positions);
+//! - the planner asked for it: [`super::plan`] gives up a whole region
+//!   when copying its concatenations gives a smaller arena (a region is
+//!   reserved whole from its first member's write, which can cost more
+//!   than the copies save, e.g. for many small branches of large
+//!   intermediate maps);
 //! - a member whose stride would differ from its channel count is read by a
 //!   kernel kind listed in [`PlanOptions::contiguous_kinds`](super::PlanOptions::contiguous_kinds)
 //!   (the concatenations that take that map as a direct input are demoted).
@@ -67,13 +72,13 @@ fn find(p: &mut [usize], mut x: usize) -> usize {
 }
 
 /// Runs the analysis.
-pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions) -> Storage {
+pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Storage {
     let nm = q.maps.len();
     let concat_steps: Vec<usize> = (0..q.steps.len()).filter(|&s| matches!(q.steps[s].kernel, QKernel::Concat)).collect();
     let mut inplace = vec![false; q.steps.len()];
     if opts.inplace_concat {
         for &s in &concat_steps {
-            inplace[s] = true;
+            inplace[s] = !forced_copy[s];
         }
     }
     let mut consumers: Vec<Vec<usize>> = vec![Vec::new(); nm];

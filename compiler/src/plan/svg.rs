@@ -78,9 +78,13 @@ fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::er
             let total = plan.map_views[b.maps[0].index()].stride.max(1) as f64;
             let base = plan.map_views[b.maps[0].index()].offset;
             let h = y1 - y0;
-            // Leaves: members that no other listed member contains; draw
-            // every non-root map, inner concatenations first, as bands.
+            // Members written by a kernel (not the concatenations, which
+            // are prefixes of the region) as bands.
+            let producers = q.producers();
             for (k, &m) in b.maps.iter().enumerate().skip(1) {
+                if producers[m.index()].is_some_and(|s| matches!(q.step(s).kernel, crate::lower::QKernel::Concat)) {
+                    continue;
+                }
                 let v = plan.map_views[m.index()];
                 let ch = q.map(m).shape.c as f64;
                 let c0 = (v.offset - base) as f64;
