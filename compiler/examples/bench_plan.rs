@@ -9,7 +9,10 @@ use ingot_compiler::plan::{self, synth, PlanOptions};
 use std::time::Instant;
 
 fn row(q: &QGraph, svg: Option<&std::path::Path>) {
-    let opts = PlanOptions { verify: false, ..PlanOptions::default() };
+    let opts = PlanOptions {
+        verify: false,
+        ..PlanOptions::default()
+    };
     let mut times = Vec::new();
     let mut p = None;
     for _ in 0..5 {

@@ -5,7 +5,10 @@ use ingot_compiler::plan::synth::{Builder, Kind};
 use ingot_compiler::plan::{plan, verify, MapView, PlanOptions};
 
 fn opts() -> PlanOptions {
-    PlanOptions { verify: true, ..PlanOptions::default() }
+    PlanOptions {
+        verify: true,
+        ..PlanOptions::default()
+    }
 }
 
 fn view(q: &QGraph, p: &ingot_compiler::plan::Plan, name: &str) -> MapView {
@@ -14,7 +17,13 @@ fn view(q: &QGraph, p: &ingot_compiler::plan::Plan, name: &str) -> MapView {
 }
 
 fn conv(out: usize, k: usize, stride: usize) -> Kind {
-    Kind::Conv { out, k, stride, groups: 1, transform: false }
+    Kind::Conv {
+        out,
+        k,
+        stride,
+        groups: 1,
+        transform: false,
+    }
 }
 
 /// input 4×8×8 (256 B) → c1 3x3 to 8×8×8 (512 B) → c2 3x3/2 to 16×4×4
@@ -45,10 +54,34 @@ fn three_layer_chain_by_hand() {
     assert_eq!(p.naive_bytes, 1184);
     assert_eq!(p.patch_bytes, ingot_rt::conv_patch_len(3, 3, 8));
     assert_eq!(p.heuristic, "greedy-by-size/best-fit");
-    assert_eq!(view(&q, &p, "c1"), MapView { offset: 0, stride: 8 });
-    assert_eq!(view(&q, &p, "c2"), MapView { offset: 512, stride: 16 });
-    assert_eq!(view(&q, &p, "input"), MapView { offset: 512, stride: 4 });
-    assert_eq!(view(&q, &p, "c3"), MapView { offset: 0, stride: 10 });
+    assert_eq!(
+        view(&q, &p, "c1"),
+        MapView {
+            offset: 0,
+            stride: 8
+        }
+    );
+    assert_eq!(
+        view(&q, &p, "c2"),
+        MapView {
+            offset: 512,
+            stride: 16
+        }
+    );
+    assert_eq!(
+        view(&q, &p, "input"),
+        MapView {
+            offset: 512,
+            stride: 4
+        }
+    );
+    assert_eq!(
+        view(&q, &p, "c3"),
+        MapView {
+            offset: 0,
+            stride: 10
+        }
+    );
     assert_eq!(p.peak_step, 0);
 }
 
@@ -90,12 +123,37 @@ fn dense_block_by_hand() {
     let q = b.finish();
     let p = plan(&q, &opts()).expect("plan");
     assert!(p.copy_concat.is_empty(), "all three concats run in place");
-    for (name, offset) in [("x0", 0), ("x1", 4), ("x2", 6), ("cat1", 0), ("cat2", 0), ("cat3", 0)] {
+    for (name, offset) in [
+        ("x0", 0),
+        ("x1", 4),
+        ("x2", 6),
+        ("cat1", 0),
+        ("cat2", 0),
+        ("cat3", 0),
+    ] {
         assert_eq!(view(&q, &p, name), MapView { offset, stride: 8 }, "{name}");
     }
-    assert_eq!(view(&q, &p, "t"), MapView { offset: 128, stride: 4 });
-    assert_eq!(view(&q, &p, "input"), MapView { offset: 128, stride: 2 });
-    assert_eq!(view(&q, &p, "g"), MapView { offset: 0, stride: 4 });
+    assert_eq!(
+        view(&q, &p, "t"),
+        MapView {
+            offset: 128,
+            stride: 4
+        }
+    );
+    assert_eq!(
+        view(&q, &p, "input"),
+        MapView {
+            offset: 128,
+            stride: 2
+        }
+    );
+    assert_eq!(
+        view(&q, &p, "g"),
+        MapView {
+            offset: 0,
+            stride: 4
+        }
+    );
     assert_eq!(p.lower_bound, 192);
     assert_eq!(p.arena_bytes, 192);
     assert_eq!(p.copying_bytes, 256);
@@ -106,7 +164,10 @@ fn dense_block_by_hand() {
     assert_eq!(region[0].bytes, 128);
     assert_eq!((region[0].first, region[0].last), (0, 6));
     assert_eq!(region[0].maps.len(), 6);
-    assert_eq!(p.buffers.iter().map(|b| b.bytes).sum::<usize>(), 32 + 128 + 64 + 4);
+    assert_eq!(
+        p.buffers.iter().map(|b| b.bytes).sum::<usize>(),
+        32 + 128 + 64 + 4
+    );
 }
 
 /// input → c1 → c2 → add(c2, c1): both inputs die at the add, so it writes
@@ -129,17 +190,29 @@ fn elementwise_in_place_pool_and_conv_not() {
     assert!(p.in_place.iter().any(|s| s.0 == step("bn")));
     assert_eq!(view(&q, &p, "sum"), view(&q, &p, "c2"));
     assert_eq!(view(&q, &p, "bn"), view(&q, &p, "c2"));
-    assert!(!p.in_place.iter().any(|s| s.0 == step("pool") || s.0 == step("c3")));
+    assert!(!p
+        .in_place
+        .iter()
+        .any(|s| s.0 == step("pool") || s.0 == step("c3")));
     let (a, c) = (p.map_views[id("bn")].offset, p.map_views[id("pool")].offset);
-    assert!(a + 256 <= c || c + 256 <= a, "pool output must not overlap its input");
+    assert!(
+        a + 256 <= c || c + 256 <= a,
+        "pool output must not overlap its input"
+    );
     let (a, c) = (p.map_views[id("pool")].offset, p.map_views[id("c3")].offset);
-    assert!(a + 256 <= c || c + 256 <= a, "conv output must not overlap its input");
+    assert!(
+        a + 256 <= c || c + 256 <= a,
+        "conv output must not overlap its input"
+    );
     // Lower bound: c1 + c2 (+ sum merged) = 512 at the add.
     assert_eq!(p.lower_bound, 512);
     assert_eq!(p.arena_bytes, 512);
 }
 
-fn fallback(build: impl FnOnce(&mut Builder), o: &PlanOptions) -> (QGraph, ingot_compiler::plan::Plan) {
+fn fallback(
+    build: impl FnOnce(&mut Builder),
+    o: &PlanOptions,
+) -> (QGraph, ingot_compiler::plan::Plan) {
     let mut b = Builder::new("fb", [4, 4, 4]);
     build(&mut b);
     let q = b.finish();
@@ -183,7 +256,12 @@ fn unrelated_concats_sharing_a_map_copy_one() {
     // cat2 has more channels, so it keeps `a` in its region; cat1 copies.
     assert!(copies(&q, &p, "cat1"));
     assert_eq!(view(&q, &p, "a").stride, 7);
-    assert_eq!(p.copy_concat.len(), 1, "exactly one of the conflicting concats copies: {:?}", p.copy_concat);
+    assert_eq!(
+        p.copy_concat.len(),
+        1,
+        "exactly one of the conflicting concats copies: {:?}",
+        p.copy_concat
+    );
 }
 
 /// `cat[a, a]` and `a` at two different channel positions must copy.
@@ -201,7 +279,10 @@ fn repeated_member_and_reversed_positions_copy() {
         &opts(),
     );
     assert!(copies(&q, &p, "twice"));
-    assert!(copies(&q, &p, "ax") || copies(&q, &p, "xa"), "a and x cannot be at both positions");
+    assert!(
+        copies(&q, &p, "ax") || copies(&q, &p, "xa"),
+        "a and x cannot be at both positions"
+    );
 }
 
 #[test]
@@ -220,8 +301,20 @@ fn nested_concat_in_place() {
     assert!(p.copy_concat.is_empty());
     let r = view(&q, &p, "axy");
     assert_eq!(view(&q, &p, "ax"), r);
-    assert_eq!(view(&q, &p, "x"), MapView { offset: r.offset + 4, stride: 9 });
-    assert_eq!(view(&q, &p, "y"), MapView { offset: r.offset + 6, stride: 9 });
+    assert_eq!(
+        view(&q, &p, "x"),
+        MapView {
+            offset: r.offset + 4,
+            stride: 9
+        }
+    );
+    assert_eq!(
+        view(&q, &p, "y"),
+        MapView {
+            offset: r.offset + 6,
+            stride: 9
+        }
+    );
 }
 
 /// With `linear` declared as needing a dense input, a strided member read
@@ -239,7 +332,10 @@ fn contiguous_consumer_forces_copy() {
     let (q, p) = fallback(graph, &opts());
     assert!(!copies(&q, &p, "cat"));
     assert_eq!(view(&q, &p, "a").stride, 6);
-    let strict = PlanOptions { contiguous_kinds: vec!["linear".into()], ..opts() };
+    let strict = PlanOptions {
+        contiguous_kinds: vec!["linear".into()],
+        ..opts()
+    };
     let (q, p) = fallback(graph, &strict);
     assert!(copies(&q, &p, "cat"));
     assert_eq!(view(&q, &p, "a").stride, 4);
@@ -259,7 +355,9 @@ fn verifier_rejects_broken_plans() {
     // Overlap two maps alive together.
     let mut p = good.clone();
     p.map_views[id("c2")].offset = p.map_views[id("c1")].offset;
-    assert!(verify::verify(&q, &p).unwrap_err().contains("share arena bytes"));
+    assert!(verify::verify(&q, &p)
+        .unwrap_err()
+        .contains("share arena bytes"));
     // A map beyond the arena.
     let mut p = good.clone();
     p.arena_bytes -= 4;

@@ -52,9 +52,19 @@ pub(crate) fn intervals(uses: &[BufUse], pos: &[usize], n: usize) -> Vec<Option<
     let end = n.saturating_sub(1);
     uses.iter()
         .map(|u| {
-            let first = if u.has_input { Some(0) } else { u.writers.iter().map(|&s| pos[s]).min() };
+            let first = if u.has_input {
+                Some(0)
+            } else {
+                u.writers.iter().map(|&s| pos[s]).min()
+            };
             let first = first?;
-            let mut last = u.users.iter().map(|&s| pos[s]).max().unwrap_or(first).max(first);
+            let mut last = u
+                .users
+                .iter()
+                .map(|&s| pos[s])
+                .max()
+                .unwrap_or(first)
+                .max(first);
             if u.has_output {
                 last = end.max(first);
             }

@@ -209,7 +209,11 @@ pub fn patch_bytes(q: &QGraph) -> usize {
     q.steps
         .iter()
         .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => Some(ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], q.map(s.inputs[0]).shape.c)),
+            QKernel::Conv2d(c) => Some(ingot_rt::conv_patch_len(
+                c.kernel[0],
+                c.kernel[1],
+                q.map(s.inputs[0]).shape.c,
+            )),
             _ => None,
         })
         .max()
@@ -222,7 +226,8 @@ pub fn plan(q: &QGraph, opts: &PlanOptions) -> Result<Plan, PlanError> {
     if opts.align == 0 {
         return Err(PlanError::Align);
     }
-    q.verify().map_err(|e| PlanError::Graph(q.name.clone(), e))?;
+    q.verify()
+        .map_err(|e| PlanError::Graph(q.name.clone(), e))?;
     let mut forced = vec![false; q.steps.len()];
     let mut p = plan_core(q, opts, &forced);
     // A region is reserved whole from its first member's write; when that
@@ -256,7 +261,11 @@ pub fn plan(q: &QGraph, opts: &PlanOptions) -> Result<Plan, PlanError> {
     }
     let all_copy = p.copy_concat.len() == count_concats(q);
     p.copying_bytes = if opts.compare_copying && !all_copy {
-        let o = PlanOptions { inplace_concat: false, verify: false, ..opts.clone() };
+        let o = PlanOptions {
+            inplace_concat: false,
+            verify: false,
+            ..opts.clone()
+        };
         plan_core(q, &o, &forced).arena_bytes
     } else {
         p.arena_bytes
@@ -269,7 +278,10 @@ pub fn plan(q: &QGraph, opts: &PlanOptions) -> Result<Plan, PlanError> {
 }
 
 fn count_concats(q: &QGraph) -> usize {
-    q.steps.iter().filter(|s| matches!(s.kernel, QKernel::Concat)).count()
+    q.steps
+        .iter()
+        .filter(|s| matches!(s.kernel, QKernel::Concat))
+        .count()
 }
 
 /// Final storage for one order: buffers after element-wise aliasing.
@@ -310,7 +322,9 @@ fn finalize(q: &QGraph, st: &regions::Storage, order: &[usize], opts: &PlanOptio
             for &i in &step.inputs {
                 let sl = slots[i.index()];
                 let b = sl.buffer;
-                let whole = sl.chan == 0 && sl.stride == q.map(i).shape.c && st.bytes[b] == q.map(i).shape.len();
+                let whole = sl.chan == 0
+                    && sl.stride == q.map(i).shape.c
+                    && st.bytes[b] == q.map(i).shape.len();
                 if b == ob || !whole || q.map(i).shape != q.map(o).shape {
                     continue;
                 }
@@ -352,9 +366,21 @@ fn finalize(q: &QGraph, st: &regions::Storage, order: &[usize], opts: &PlanOptio
     let mb: Vec<usize> = slots.iter().map(|s| s.buffer).collect();
     let uses = liveness::buffer_uses(q, &mb, nb.len());
     let iv = liveness::intervals(&uses, &pos, n);
-    let sizes: Vec<u64> = bytes.iter().map(|&b| liveness::align_up(b, opts.align) as u64).collect();
+    let sizes: Vec<u64> = bytes
+        .iter()
+        .map(|&b| liveness::align_up(b, opts.align) as u64)
+        .collect();
     let profile = liveness::profile(&iv, &sizes, n);
-    Final { slots, buffers: nb, bytes, is_region, in_place, iv, sizes, profile }
+    Final {
+        slots,
+        buffers: nb,
+        bytes,
+        is_region,
+        in_place,
+        iv,
+        sizes,
+        profile,
+    }
 }
 
 fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
@@ -372,7 +398,12 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
             .steps
             .iter()
             .map(|s| {
-                let mut v: Vec<usize> = s.inputs.iter().filter_map(|m| prod[m.index()]).map(|p| p.index()).collect();
+                let mut v: Vec<usize> = s
+                    .inputs
+                    .iter()
+                    .filter_map(|m| prod[m.index()])
+                    .map(|p| p.index())
+                    .collect();
                 v.sort_unstable();
                 v.dedup();
                 v
@@ -380,7 +411,11 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
             .collect();
         let mb: Vec<usize> = st.slots.iter().map(|s| s.buffer).collect();
         let uses = liveness::buffer_uses(q, &mb, st.buffers.len());
-        let sizes: Vec<u64> = st.bytes.iter().map(|&b| liveness::align_up(b, opts.align) as u64).collect();
+        let sizes: Vec<u64> = st
+            .bytes
+            .iter()
+            .map(|&b| liveness::align_up(b, opts.align) as u64)
+            .collect();
         let found = order::search(n, &preds, &uses, &sizes, opts.max_order_states);
         exact = found.exact;
         let cand = finalize(q, &st, &found.order, opts);
@@ -390,12 +425,18 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
         }
     }
     let (lb, peak_step) = liveness::peak(&chosen.profile);
-    let live: Vec<usize> = (0..chosen.buffers.len()).filter(|&b| chosen.iv[b].is_some()).collect();
+    let live: Vec<usize> = (0..chosen.buffers.len())
+        .filter(|&b| chosen.iv[b].is_some())
+        .collect();
     let items: Vec<place::Item> = live
         .iter()
         .map(|&b| {
             let (first, last) = chosen.iv[b].expect("live");
-            place::Item { size: chosen.sizes[b], first, last }
+            place::Item {
+                size: chosen.sizes[b],
+                first,
+                last,
+            }
         })
         .collect();
     let (offs, arena, heuristic) = place::place(&items, n, lb, opts.placement_trials);
@@ -409,9 +450,15 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
         .enumerate()
         .map(|(m, sl)| {
             if chosen.iv[sl.buffer].is_some() {
-                MapView { offset: buf_off[sl.buffer] + sl.chan, stride: sl.stride }
+                MapView {
+                    offset: buf_off[sl.buffer] + sl.chan,
+                    stride: sl.stride,
+                }
             } else {
-                MapView { offset: 0, stride: q.maps[m].shape.c }
+                MapView {
+                    offset: 0,
+                    stride: q.maps[m].shape.c,
+                }
             }
         })
         .collect();
@@ -430,7 +477,11 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
             }
         })
         .collect();
-    let naive = q.maps.iter().map(|m| liveness::align_up(m.shape.len(), opts.align)).sum();
+    let naive = q
+        .maps
+        .iter()
+        .map(|m| liveness::align_up(m.shape.len(), opts.align))
+        .sum();
     Plan {
         order: order.iter().map(|&s| StepId(s as u32)).collect(),
         map_views,

@@ -38,7 +38,13 @@ fn has(set: &[u64], i: usize) -> bool {
 }
 
 /// Searches orders of `n` steps with predecessor lists `preds`.
-pub(crate) fn search(n: usize, preds: &[Vec<usize>], uses: &[BufUse], sizes: &[u64], max_states: usize) -> Found {
+pub(crate) fn search(
+    n: usize,
+    preds: &[Vec<usize>],
+    uses: &[BufUse],
+    sizes: &[u64],
+    max_states: usize,
+) -> Found {
     let words = n.div_ceil(64).max(1);
     let mut writes: Vec<Vec<usize>> = vec![Vec::new(); n];
     let mut touches: Vec<Vec<usize>> = vec![Vec::new(); n];
@@ -54,8 +60,19 @@ pub(crate) fn search(n: usize, preds: &[Vec<usize>], uses: &[BufUse], sizes: &[u
             }
         }
     }
-    let live0: u64 = uses.iter().zip(sizes).filter(|(u, _)| u.has_input).map(|(_, &s)| s).sum();
-    let mut layer = vec![State { set: vec![0; words], live: live0, peak: 0, parent: 0, step: 0 }];
+    let live0: u64 = uses
+        .iter()
+        .zip(sizes)
+        .filter(|(u, _)| u.has_input)
+        .map(|(_, &s)| s)
+        .sum();
+    let mut layer = vec![State {
+        set: vec![0; words],
+        live: live0,
+        peak: 0,
+        parent: 0,
+        step: 0,
+    }];
     // Back pointers of every layer: (parent index, step).
     let mut back: Vec<Vec<(u32, u32)>> = Vec::with_capacity(n);
     let mut exact = true;
@@ -94,7 +111,13 @@ pub(crate) fn search(n: usize, preds: &[Vec<usize>], uses: &[BufUse], sizes: &[u
                     }
                     None => {
                         index.insert(set.clone(), next.len());
-                        next.push(State { set, live, peak, parent: pi as u32, step: v as u32 });
+                        next.push(State {
+                            set,
+                            live,
+                            peak,
+                            parent: pi as u32,
+                            step: v as u32,
+                        });
                     }
                 }
             }
@@ -106,12 +129,17 @@ pub(crate) fn search(n: usize, preds: &[Vec<usize>], uses: &[BufUse], sizes: &[u
             idx.truncate(max_states.max(1));
             idx.sort_unstable();
             let mut keep: Vec<Option<State>> = next.into_iter().map(Some).collect();
-            next = idx.into_iter().map(|i| keep[i].take().expect("kept once")).collect();
+            next = idx
+                .into_iter()
+                .map(|i| keep[i].take().expect("kept once"))
+                .collect();
         }
         back.push(next.iter().map(|s| (s.parent, s.step)).collect());
         layer = next;
     }
-    let best = (0..layer.len()).min_by_key(|&i| (layer[i].peak, i)).unwrap_or(0);
+    let best = (0..layer.len())
+        .min_by_key(|&i| (layer[i].peak, i))
+        .unwrap_or(0);
     let mut order = vec![0usize; n];
     let mut at = best as u32;
     for l in (0..n).rev() {

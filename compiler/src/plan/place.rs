@@ -84,12 +84,24 @@ fn splitmix(state: &mut u64) -> u64 {
 
 /// Best placement over all heuristics: `(offsets, arena, heuristic name)`.
 /// Stops early when an arena equals `lower_bound`.
-pub(crate) fn place(items: &[Item], n_steps: usize, lower_bound: u64, trials: usize) -> (Vec<u64>, u64, String) {
+pub(crate) fn place(
+    items: &[Item],
+    n_steps: usize,
+    lower_bound: u64,
+    trials: usize,
+) -> (Vec<u64>, u64, String) {
     let idx: Vec<usize> = (0..items.len()).collect();
     let len = |i: usize| items[i].last - items[i].first;
     let mut orders: Vec<(String, Vec<usize>)> = Vec::new();
     let mut by_size = idx.clone();
-    by_size.sort_by_key(|&i| (std::cmp::Reverse(items[i].size), std::cmp::Reverse(len(i)), items[i].first, i));
+    by_size.sort_by_key(|&i| {
+        (
+            std::cmp::Reverse(items[i].size),
+            std::cmp::Reverse(len(i)),
+            items[i].first,
+            i,
+        )
+    });
     orders.push(("greedy-by-size".into(), by_size));
     // Breadth of every step.
     let mut breadth = vec![0u64; n_steps.max(1)];
@@ -103,7 +115,11 @@ pub(crate) fn place(items: &[Item], n_steps: usize, lower_bound: u64, trials: us
     let mut seen = vec![false; items.len()];
     let mut by_breadth = Vec::with_capacity(items.len());
     for t in steps {
-        let mut here: Vec<usize> = idx.iter().copied().filter(|&i| !seen[i] && items[i].first <= t && t <= items[i].last).collect();
+        let mut here: Vec<usize> = idx
+            .iter()
+            .copied()
+            .filter(|&i| !seen[i] && items[i].first <= t && t <= items[i].last)
+            .collect();
         here.sort_by_key(|&i| (std::cmp::Reverse(items[i].size), i));
         for i in here {
             seen[i] = true;
@@ -112,7 +128,13 @@ pub(crate) fn place(items: &[Item], n_steps: usize, lower_bound: u64, trials: us
     }
     orders.push(("greedy-by-breadth".into(), by_breadth));
     let mut by_len = idx.clone();
-    by_len.sort_by_key(|&i| (std::cmp::Reverse(len(i)), std::cmp::Reverse(items[i].size), i));
+    by_len.sort_by_key(|&i| {
+        (
+            std::cmp::Reverse(len(i)),
+            std::cmp::Reverse(items[i].size),
+            i,
+        )
+    });
     orders.push(("longest-lifetime".into(), by_len));
     let mut by_start = idx.clone();
     by_start.sort_by_key(|&i| (items[i].first, std::cmp::Reverse(items[i].size), i));

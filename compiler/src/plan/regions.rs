@@ -74,7 +74,9 @@ fn find(p: &mut [usize], mut x: usize) -> usize {
 /// Runs the analysis.
 pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Storage {
     let nm = q.maps.len();
-    let concat_steps: Vec<usize> = (0..q.steps.len()).filter(|&s| matches!(q.steps[s].kernel, QKernel::Concat)).collect();
+    let concat_steps: Vec<usize> = (0..q.steps.len())
+        .filter(|&s| matches!(q.steps[s].kernel, QKernel::Concat))
+        .collect();
     let mut inplace = vec![false; q.steps.len()];
     if opts.inplace_concat {
         for &s in &concat_steps {
@@ -91,7 +93,11 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
 
     // Final groups: (root step, member steps) once the analysis is stable.
     let groups: Vec<(usize, Vec<usize>, Vec<QMapId>)> = loop {
-        let live: Vec<usize> = concat_steps.iter().copied().filter(|&s| inplace[s]).collect();
+        let live: Vec<usize> = concat_steps
+            .iter()
+            .copied()
+            .filter(|&s| inplace[s])
+            .collect();
         let mut demote: Vec<usize> = Vec::new();
         // Rule: the graph input is never a member.
         for &s in &live {
@@ -187,17 +193,28 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
         // Rule: a strided member must not feed a kernel that needs dense input.
         for (root, members, rl) in &found {
             let total = chans(q.steps[*root].output);
-            let inner = members.iter().filter(|&&s| s != *root).map(|&s| q.steps[s].output);
+            let inner = members
+                .iter()
+                .filter(|&&s| s != *root)
+                .map(|&s| q.steps[s].output);
             for m in rl.iter().copied().chain(inner) {
                 if chans(m) == total {
                     continue;
                 }
                 let strict = consumers[m.index()].iter().any(|&c| {
                     !(inplace[c] && matches!(q.steps[c].kernel, QKernel::Concat))
-                        && opts.contiguous_kinds.iter().any(|k| k == q.steps[c].kernel.kind())
+                        && opts
+                            .contiguous_kinds
+                            .iter()
+                            .any(|k| k == q.steps[c].kernel.kind())
                 });
                 if strict {
-                    demote.extend(members.iter().copied().filter(|&s| q.steps[s].inputs.contains(&m)));
+                    demote.extend(
+                        members
+                            .iter()
+                            .copied()
+                            .filter(|&s| q.steps[s].inputs.contains(&m)),
+                    );
                 }
             }
         }
@@ -226,10 +243,18 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
         let mut c0 = 0;
         for &m in rl {
             at.insert(m, c0);
-            slots[m.index()] = Some(Slot { buffer: b, chan: c0, stride: total });
+            slots[m.index()] = Some(Slot {
+                buffer: b,
+                chan: c0,
+                stride: total,
+            });
             c0 += chans(m);
         }
-        slots[out.index()] = Some(Slot { buffer: b, chan: 0, stride: total });
+        slots[out.index()] = Some(Slot {
+            buffer: b,
+            chan: 0,
+            stride: total,
+        });
         let mut ms = members.clone();
         ms.sort_unstable();
         for &g in &ms {
@@ -243,7 +268,11 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
             while let Some(s) = ms.iter().copied().find(|&s| q.steps[s].output == f) {
                 f = q.steps[s].inputs[0];
             }
-            slots[o.index()] = Some(Slot { buffer: b, chan: at[&f], stride: total });
+            slots[o.index()] = Some(Slot {
+                buffer: b,
+                chan: at[&f],
+                stride: total,
+            });
             maps.push(o);
         }
         maps.extend_from_slice(rl);
@@ -254,15 +283,27 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
     for (i, slot) in slots.iter_mut().enumerate() {
         if slot.is_none() {
             let m = QMapId(i as u32);
-            *slot = Some(Slot { buffer: buffers.len(), chan: 0, stride: chans(m) });
+            *slot = Some(Slot {
+                buffer: buffers.len(),
+                chan: 0,
+                stride: chans(m),
+            });
             buffers.push(vec![m]);
             bytes.push(q.map(m).shape.len());
             is_region.push(false);
         }
     }
-    let copy_concat = concat_steps.iter().copied().filter(|&s| !inplace[s]).map(|s| StepId(s as u32)).collect();
+    let copy_concat = concat_steps
+        .iter()
+        .copied()
+        .filter(|&s| !inplace[s])
+        .map(|s| StepId(s as u32))
+        .collect();
     Storage {
-        slots: slots.into_iter().map(|s| s.expect("every map has a slot")).collect(),
+        slots: slots
+            .into_iter()
+            .map(|s| s.expect("every map has a slot"))
+            .collect(),
         buffers,
         bytes,
         is_region,

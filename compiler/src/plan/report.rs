@@ -95,7 +95,12 @@ pub fn report(q: &QGraph, plan: &Plan, target: Option<&Target>) -> PlanReport {
                 _ if plan.in_place.contains(&s) => "in-place",
                 _ => "compute",
             };
-            StepRow { position: i, name: st.name.clone(), kind: st.kernel.kind().into(), memory: memory.into() }
+            StepRow {
+                position: i,
+                name: st.name.clone(),
+                kind: st.kernel.kind().into(),
+                memory: memory.into(),
+            }
         })
         .collect();
     let maps = q
@@ -140,34 +145,74 @@ impl fmt::Display for PlanReport {
         writeln!(f, "memory plan of `{}`", self.network)?;
         writeln!(f, "order ({} steps):", self.steps.len())?;
         for s in &self.steps {
-            writeln!(f, "  {:>4}  {:<40} {:<16} {}", s.position, s.name, s.kind, s.memory)?;
+            writeln!(
+                f,
+                "  {:>4}  {:<40} {:<16} {}",
+                s.position, s.name, s.kind, s.memory
+            )?;
         }
         writeln!(f, "maps:")?;
-        writeln!(f, "  {:<40} {:>14} {:>9} {:>6} {:>9}  alive", "name", "shape c×h×w", "offset", "stride", "bytes")?;
+        writeln!(
+            f,
+            "  {:<40} {:>14} {:>9} {:>6} {:>9}  alive",
+            "name", "shape c×h×w", "offset", "stride", "bytes"
+        )?;
         for m in &self.maps {
-            let alive = m.alive.map_or("-".to_string(), |[a, b]| format!("{a}..={b}"));
+            let alive = m
+                .alive
+                .map_or("-".to_string(), |[a, b]| format!("{a}..={b}"));
             let shape = format!("{}×{}×{}", m.shape[0], m.shape[1], m.shape[2]);
-            writeln!(f, "  {:<40} {:>14} {:>9} {:>6} {:>9}  {}", m.name, shape, m.offset, m.stride, m.bytes, alive)?;
+            writeln!(
+                f,
+                "  {:<40} {:>14} {:>9} {:>6} {:>9}  {}",
+                m.name, shape, m.offset, m.stride, m.bytes, alive
+            )?;
         }
-        writeln!(f, "arena        {:>10} B  ({})", self.arena_bytes, kib(self.arena_bytes as f64))?;
-        writeln!(f, "lower bound  {:>10} B  ratio {:.4}", self.lower_bound, self.ratio)?;
-        writeln!(f, "naive        {:>10} B  (every map its own bytes)", self.naive_bytes)?;
+        writeln!(
+            f,
+            "arena        {:>10} B  ({})",
+            self.arena_bytes,
+            kib(self.arena_bytes as f64)
+        )?;
+        writeln!(
+            f,
+            "lower bound  {:>10} B  ratio {:.4}",
+            self.lower_bound, self.ratio
+        )?;
+        writeln!(
+            f,
+            "naive        {:>10} B  (every map its own bytes)",
+            self.naive_bytes
+        )?;
         writeln!(
             f,
             "copying      {:>10} B  (concatenations copied; in place is {:.1}% of it)",
             self.copying_bytes,
             100.0 * self.arena_bytes as f64 / self.copying_bytes.max(1) as f64
         )?;
-        writeln!(f, "patch        {:>10} B  (outside the arena)", self.patch_bytes)?;
+        writeln!(
+            f,
+            "patch        {:>10} B  (outside the arena)",
+            self.patch_bytes
+        )?;
         writeln!(
             f,
             "order peak   {:>10} B in file order, {} B chosen ({}), peak at position {}",
             self.order_peak_before,
             self.order_peak_after,
-            if self.order_exact { "exact search" } else { "beam search" },
+            if self.order_exact {
+                "exact search"
+            } else {
+                "beam search"
+            },
             self.peak_step
         )?;
-        writeln!(f, "placement    {}; planned in {:.1} ms", self.heuristic, self.seconds * 1e3)?;
+        writeln!(
+            f,
+            "placement    {}; planned in {:.1} ms",
+            self.heuristic,
+            self.seconds * 1e3
+        )?;
         if let Some(b) = &self.budget {
             writeln!(f, "budget on {}:", b.target)?;
             writeln!(

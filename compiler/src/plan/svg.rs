@@ -73,7 +73,10 @@ fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::er
         let (x0, x1) = (b.first as f64, b.last as f64 + 1.0);
         let (y0, y1) = (kib(b.offset), kib(b.offset + b.padded));
         let fill = if b.region { c.mix(0.18) } else { c.mix(0.55) };
-        chart.draw_series(std::iter::once(Rectangle::new([(x0, y0), (x1, y1)], fill.filled())))?;
+        chart.draw_series(std::iter::once(Rectangle::new(
+            [(x0, y0), (x1, y1)],
+            fill.filled(),
+        )))?;
         if b.region {
             let total = plan.map_views[b.maps[0].index()].stride.max(1) as f64;
             let base = plan.map_views[b.maps[0].index()].offset;
@@ -82,7 +85,9 @@ fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::er
             // are prefixes of the region) as bands.
             let producers = q.producers();
             for (k, &m) in b.maps.iter().enumerate().skip(1) {
-                if producers[m.index()].is_some_and(|s| matches!(q.step(s).kernel, crate::lower::QKernel::Concat)) {
+                if producers[m.index()]
+                    .is_some_and(|s| matches!(q.step(s).kernel, crate::lower::QKernel::Concat))
+                {
                     continue;
                 }
                 let v = plan.map_views[m.index()];
@@ -91,30 +96,45 @@ fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::er
                 let ya = y0 + h * c0 / total;
                 let yb = y0 + h * (c0 + ch) / total;
                 let band = PALETTE[(i + k) % PALETTE.len()].mix(0.35);
-                chart.draw_series(std::iter::once(Rectangle::new([(def[m.index()] as f64, ya), (x1, yb)], band.filled())))?;
+                chart.draw_series(std::iter::once(Rectangle::new(
+                    [(def[m.index()] as f64, ya), (x1, yb)],
+                    band.filled(),
+                )))?;
             }
         }
-        chart.draw_series(std::iter::once(Rectangle::new([(x0, y0), (x1, y1)], c.stroke_width(1))))?;
+        chart.draw_series(std::iter::once(Rectangle::new(
+            [(x0, y0), (x1, y1)],
+            c.stroke_width(1),
+        )))?;
     }
     let peak = plan.peak_step as f64 + 0.5;
     let dashes = (0..40).map(|k| {
         let a = top * k as f64 / 40.0;
         PathElement::new(vec![(peak, a), (peak, a + top / 80.0)], RED.stroke_width(2))
     });
-    chart.draw_series(dashes)?.label(format!("peak at step {}", plan.peak_step)).legend(|(x, y)| {
-        PathElement::new(vec![(x, y), (x + 16, y)], RED.stroke_width(2))
-    });
+    chart
+        .draw_series(dashes)?
+        .label(format!("peak at step {}", plan.peak_step))
+        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], RED.stroke_width(2)));
     chart
         .draw_series(std::iter::once(PathElement::new(
-            vec![(0.0, kib(plan.lower_bound)), (n as f64, kib(plan.lower_bound))],
+            vec![
+                (0.0, kib(plan.lower_bound)),
+                (n as f64, kib(plan.lower_bound)),
+            ],
             BLACK.stroke_width(1),
         )))?
         .label(format!("lower bound {:.1} KiB", kib(plan.lower_bound)))
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], BLACK.stroke_width(1)));
     chart
-        .draw_series(std::iter::once(Rectangle::new([(0.0, 0.0), (0.0, 0.0)], PALETTE[0].mix(0.18).filled())))?
+        .draw_series(std::iter::once(Rectangle::new(
+            [(0.0, 0.0), (0.0, 0.0)],
+            PALETTE[0].mix(0.18).filled(),
+        )))?
         .label("concat region (bands: members by channel share)")
-        .legend(|(x, y)| Rectangle::new([(x, y - 5), (x + 16, y + 5)], PALETTE[0].mix(0.18).filled()));
+        .legend(|(x, y)| {
+            Rectangle::new([(x, y - 5), (x + 16, y + 5)], PALETTE[0].mix(0.18).filled())
+        });
     chart
         .configure_series_labels()
         .position(SeriesLabelPosition::UpperRight)

@@ -6,7 +6,8 @@
 
 use crate::graph::{LayerId, MapId, Padding, Shape};
 use crate::lower::{
-    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId, QParams, QPool, QStep,
+    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
+    QParams, QPool, QStep,
 };
 
 /// What a layer of [`Builder`] computes.
@@ -47,22 +48,43 @@ pub struct Builder {
     q: QGraph,
 }
 
-const QP: QParams = QParams { scale: 0.05, zero_point: 0 };
-const M: Multiplier = Multiplier { mult: 1 << 30, shift: 0 };
-const CLAMP: Clamp = Clamp { min: -128, max: 127 };
+const QP: QParams = QParams {
+    scale: 0.05,
+    zero_point: 0,
+};
+const M: Multiplier = Multiplier {
+    mult: 1 << 30,
+    shift: 0,
+};
+const CLAMP: Clamp = Clamp {
+    min: -128,
+    max: 127,
+};
 
 fn pool(k: usize, s: usize, p: usize) -> QPool {
     QPool {
         kernel: [k, k],
         stride: [s, s],
-        padding: Padding { top: p, left: p, bottom: p, right: p },
+        padding: Padding {
+            top: p,
+            left: p,
+            bottom: p,
+            right: p,
+        },
         requant: None,
         clamp: CLAMP,
     }
 }
 
 fn affine(c: usize) -> ChannelTransform {
-    ChannelTransform::Affine { mul: vec![1; c], add: vec![0; c], shift: 0, zp_in: 0, zp_out: 0, clamp: CLAMP }
+    ChannelTransform::Affine {
+        mul: vec![1; c],
+        add: vec![0; c],
+        shift: 0,
+        zp_in: 0,
+        zp_out: 0,
+        clamp: CLAMP,
+    }
 }
 
 impl Builder {
@@ -72,7 +94,12 @@ impl Builder {
         let q = QGraph {
             name: name.into(),
             labels: Vec::new(),
-            maps: vec![QMap { name: "input".into(), shape, qp: QP, float_map: MapId(0) }],
+            maps: vec![QMap {
+                name: "input".into(),
+                shape,
+                qp: QP,
+                float_map: MapId(0),
+            }],
             steps: Vec::new(),
             input: QMapId(0),
             pixel_table: vec![0; 256 * input[0]],
@@ -84,7 +111,12 @@ impl Builder {
 
     /// Id of the map called `name`.
     pub fn id(&self, name: &str) -> QMapId {
-        let i = self.q.maps.iter().rposition(|m| m.name == name).unwrap_or_else(|| panic!("no map `{name}`"));
+        let i = self
+            .q
+            .maps
+            .iter()
+            .rposition(|m| m.name == name)
+            .unwrap_or_else(|| panic!("no map `{name}`"));
         QMapId(i as u32)
     }
 
@@ -99,7 +131,13 @@ impl Builder {
         let s0 = self.q.map(ins[0]).shape;
         let win = |k: usize, s: usize, p: usize, x: usize| (x + 2 * p - k) / s + 1;
         let (shape, kernel) = match kind {
-            Kind::Conv { out, k, stride, groups, transform } => {
+            Kind::Conv {
+                out,
+                k,
+                stride,
+                groups,
+                transform,
+            } => {
                 let g = if groups == 0 { s0.c } else { groups };
                 let out = if groups == 0 && out == 0 { s0.c } else { out };
                 let p = k / 2;
@@ -110,7 +148,12 @@ impl Builder {
                     kernel: [k, k],
                     stride: [stride, stride],
                     dilation: [1, 1],
-                    padding: Padding { top: p, left: p, bottom: p, right: p },
+                    padding: Padding {
+                        top: p,
+                        left: p,
+                        bottom: p,
+                        right: p,
+                    },
                     groups: g,
                     weights: vec![0; out * k * k * (s0.c / g)],
                     weight_scales: vec![0.01; out],
@@ -134,10 +177,25 @@ impl Builder {
                 };
                 (Shape::flat(n), QKernel::Linear(lin))
             }
-            Kind::MaxPool(k, s, p) => (Shape::new(s0.c, win(k, s, p, s0.h), win(k, s, p, s0.w)), QKernel::MaxPool(pool(k, s, p))),
-            Kind::AvgPool(k, s) => (Shape::new(s0.c, win(k, s, 0, s0.h), win(k, s, 0, s0.w)), QKernel::AvgPool(pool(k, s, 0))),
+            Kind::MaxPool(k, s, p) => (
+                Shape::new(s0.c, win(k, s, p, s0.h), win(k, s, p, s0.w)),
+                QKernel::MaxPool(pool(k, s, p)),
+            ),
+            Kind::AvgPool(k, s) => (
+                Shape::new(s0.c, win(k, s, 0, s0.h), win(k, s, 0, s0.w)),
+                QKernel::AvgPool(pool(k, s, 0)),
+            ),
             Kind::GlobalAvgPool => (Shape::flat(s0.c), QKernel::GlobalAvgPool(pool(s0.h, 1, 0))),
-            Kind::Add => (s0, QKernel::Add(QAdd { a: M, b: M, out: M, left_shift: 0, clamp: CLAMP })),
+            Kind::Add => (
+                s0,
+                QKernel::Add(QAdd {
+                    a: M,
+                    b: M,
+                    out: M,
+                    left_shift: 0,
+                    clamp: CLAMP,
+                }),
+            ),
             Kind::Concat => {
                 let c = ins.iter().map(|&m| self.q.map(m).shape.c).sum();
                 (Shape::new(c, s0.h, s0.w), QKernel::Concat)
@@ -145,16 +203,37 @@ impl Builder {
             Kind::Channel => (s0, QKernel::Channel(affine(s0.c))),
         };
         let out = QMapId(self.q.maps.len() as u32);
-        self.q.maps.push(QMap { name: name.into(), shape, qp: QP, float_map: MapId(out.0) });
+        self.q.maps.push(QMap {
+            name: name.into(),
+            shape,
+            qp: QP,
+            float_map: MapId(out.0),
+        });
         let layer = LayerId(self.q.steps.len() as u32);
-        self.q.steps.push(QStep { name: name.into(), layers: vec![layer], inputs: ins, output: out, kernel });
+        self.q.steps.push(QStep {
+            name: name.into(),
+            layers: vec![layer],
+            inputs: ins,
+            output: out,
+            kernel,
+        });
         self.q.output = out;
         name.into()
     }
 
     /// Convolution shorthand.
     pub fn conv(&mut self, name: &str, x: &str, out: usize, k: usize, stride: usize) -> String {
-        self.add(name, Kind::Conv { out, k, stride, groups: 1, transform: false }, &[x])
+        self.add(
+            name,
+            Kind::Conv {
+                out,
+                k,
+                stride,
+                groups: 1,
+                transform: false,
+            },
+            &[x],
+        )
     }
 
     /// Finishes; the last map written is the output.
@@ -246,7 +325,13 @@ pub fn dense(cfg: &DenseCfg) -> QGraph {
     } else {
         b.conv("conv0", "input", cfg.stem, 3, 1)
     };
-    let pre = |out, k| Kind::Conv { out, k, stride: 1, groups: 1, transform: true };
+    let pre = |out, k| Kind::Conv {
+        out,
+        k,
+        stride: 1,
+        groups: 1,
+        transform: true,
+    };
     for (bi, &layers) in cfg.blocks.iter().enumerate() {
         let blk = format!("block{}", bi + 1);
         let mut feats = vec![x.clone()];
@@ -287,7 +372,11 @@ pub fn residual() -> QGraph {
         let p = format!("res{}", i + 1);
         let y = b.conv(&format!("{p}.conv1"), &x, c, 3, s);
         let y = b.conv(&format!("{p}.conv2"), &y, c, 3, 1);
-        let skip = if s != 1 || b.shape(&x).c != c { b.conv(&format!("{p}.proj"), &x, c, 1, s) } else { x.clone() };
+        let skip = if s != 1 || b.shape(&x).c != c {
+            b.conv(&format!("{p}.proj"), &x, c, 1, s)
+        } else {
+            x.clone()
+        };
         x = b.add(&format!("{p}.add"), Kind::Add, &[&y, &skip]);
     }
     let x = b.add("gap", Kind::GlobalAvgPool, &[&x]);
@@ -300,8 +389,21 @@ pub fn residual() -> QGraph {
 pub fn depthwise_separable() -> QGraph {
     let mut b = Builder::new("depthwise_separable", [3, 64, 64]);
     let mut x = b.conv("stem", "input", 16, 3, 2);
-    for (i, (c, s)) in [(32, 1), (64, 2), (64, 1), (128, 2)].into_iter().enumerate() {
-        let dw = b.add(&format!("dw{}", i + 1), Kind::Conv { out: 0, k: 3, stride: s, groups: 0, transform: false }, &[&x]);
+    for (i, (c, s)) in [(32, 1), (64, 2), (64, 1), (128, 2)]
+        .into_iter()
+        .enumerate()
+    {
+        let dw = b.add(
+            &format!("dw{}", i + 1),
+            Kind::Conv {
+                out: 0,
+                k: 3,
+                stride: s,
+                groups: 0,
+                transform: false,
+            },
+            &[&x],
+        );
         x = b.conv(&format!("pw{}", i + 1), &dw, c, 1, 1);
     }
     let x = b.add("gap", Kind::GlobalAvgPool, &[&x]);
@@ -314,8 +416,14 @@ pub fn depthwise_separable() -> QGraph {
 /// expansions first, then all reductions, then a concat and a head.
 pub fn branchy(k: usize) -> QGraph {
     let mut b = Builder::new(&format!("branchy{k}"), [8, 16, 16]);
-    let ex: Vec<String> = (0..k).map(|i| b.conv(&format!("expand{i}"), "input", 64, 1, 1)).collect();
-    let red: Vec<String> = ex.iter().enumerate().map(|(i, e)| b.conv(&format!("reduce{i}"), e, 4, 3, 1)).collect();
+    let ex: Vec<String> = (0..k)
+        .map(|i| b.conv(&format!("expand{i}"), "input", 64, 1, 1))
+        .collect();
+    let red: Vec<String> = ex
+        .iter()
+        .enumerate()
+        .map(|(i, e)| b.conv(&format!("reduce{i}"), e, 4, 3, 1))
+        .collect();
     let refs: Vec<&str> = red.iter().map(String::as_str).collect();
     let c = b.add("cat", Kind::Concat, &refs);
     let x = b.add("gap", Kind::GlobalAvgPool, &[&c]);
@@ -326,5 +434,12 @@ pub fn branchy(k: usize) -> QGraph {
 /// The test set: plain stack, small dense, residual, depthwise-separable,
 /// DenseNet-121, and a branchy cell.
 pub fn test_set() -> Vec<QGraph> {
-    vec![plain_stack(), dense(&DenseCfg::small()), residual(), depthwise_separable(), dense(&DenseCfg::densenet121()), branchy(6)]
+    vec![
+        plain_stack(),
+        dense(&DenseCfg::small()),
+        residual(),
+        depthwise_separable(),
+        dense(&DenseCfg::densenet121()),
+        branchy(6),
+    ]
 }

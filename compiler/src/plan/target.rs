@@ -116,16 +116,30 @@ impl Target {
     /// Reads and checks a profile.
     pub fn load(path: impl AsRef<Path>) -> Result<Target, TargetError> {
         let path = path.as_ref();
-        let text = std::fs::read_to_string(path).map_err(|source| TargetError::Io { path: path.into(), source })?;
+        let text = std::fs::read_to_string(path).map_err(|source| TargetError::Io {
+            path: path.into(),
+            source,
+        })?;
         Target::parse(&text, path)
     }
 
     /// Parses a profile; `path` is only used in messages.
     pub fn parse(text: &str, path: &Path) -> Result<Target, TargetError> {
-        let t: Target =
-            toml::from_str(text).map_err(|e| TargetError::Parse { path: path.into(), message: e.to_string().trim_end().to_string() })?;
-        let bad = |key: &str, message: String| TargetError::Value { path: path.into(), key: key.into(), message };
-        for (key, v) in [("name", &t.name), ("core", &t.core), ("triple", &t.triple), ("datasheet.title", &t.datasheet.title)] {
+        let t: Target = toml::from_str(text).map_err(|e| TargetError::Parse {
+            path: path.into(),
+            message: e.to_string().trim_end().to_string(),
+        })?;
+        let bad = |key: &str, message: String| TargetError::Value {
+            path: path.into(),
+            key: key.into(),
+            message,
+        };
+        for (key, v) in [
+            ("name", &t.name),
+            ("core", &t.core),
+            ("triple", &t.triple),
+            ("datasheet.title", &t.datasheet.title),
+        ] {
             if v.trim().is_empty() {
                 return Err(bad(key, "must not be empty".into()));
             }
@@ -135,7 +149,10 @@ impl Target {
                 return Err(bad(&format!("{key}.bytes"), "must be positive".into()));
             }
             if m.reserve > m.bytes {
-                return Err(bad(&format!("{key}.reserve"), format!("{} exceeds {key}.bytes = {}", m.reserve, m.bytes)));
+                return Err(bad(
+                    &format!("{key}.reserve"),
+                    format!("{} exceeds {key}.bytes = {}", m.reserve, m.bytes),
+                ));
             }
         }
         if t.clock_hz == 0 {
@@ -163,7 +180,10 @@ pub struct FlashUse {
 impl FlashUse {
     /// Measures `q`.
     pub fn of(q: &QGraph) -> FlashUse {
-        let mut f = FlashUse { transforms: q.pixel_table.len() as u64, ..FlashUse::default() };
+        let mut f = FlashUse {
+            transforms: q.pixel_table.len() as u64,
+            ..FlashUse::default()
+        };
         let tf = |t: &ChannelTransform| match t {
             ChannelTransform::Affine { mul, add, .. } => 4 * (mul.len() + add.len()) as u64 + 16,
             ChannelTransform::Table(t) => t.len() as u64,

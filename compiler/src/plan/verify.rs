@@ -36,7 +36,14 @@ fn span(v: MapView, px: usize, c: usize) -> Option<(usize, usize)> {
 }
 
 /// True when the two views share at least one byte.
-pub fn views_overlap(a: MapView, a_px: usize, a_c: usize, b: MapView, b_px: usize, b_c: usize) -> bool {
+pub fn views_overlap(
+    a: MapView,
+    a_px: usize,
+    a_c: usize,
+    b: MapView,
+    b_px: usize,
+    b_c: usize,
+) -> bool {
     let (Some((sa, ea)), Some((sb, eb))) = (span(a, a_px, a_c), span(b, b_px, b_c)) else {
         return false;
     };
@@ -44,7 +51,11 @@ pub fn views_overlap(a: MapView, a_px: usize, a_c: usize, b: MapView, b_px: usiz
         return false;
     }
     // Enumerate the runs of the map with fewer pixels.
-    let (x, x_px, x_c, y, y_px, y_c) = if a_px <= b_px { (a, a_px, a_c, b, b_px, b_c) } else { (b, b_px, b_c, a, a_px, a_c) };
+    let (x, x_px, x_c, y, y_px, y_c) = if a_px <= b_px {
+        (a, a_px, a_c, b, b_px, b_c)
+    } else {
+        (b, b_px, b_c, a, a_px, a_c)
+    };
     for p in 0..x_px {
         let lo = x.offset + p * x.stride;
         let hi = lo + x_c; // run [lo, hi)
@@ -90,7 +101,13 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
         for m in &st.inputs {
             match def[m.index()] {
                 Some(d) if m == &q.input || d < pos[s] => {}
-                _ => return Err(format!("step `{}` reads `{}` before it is written", st.name, q.map(*m).name)),
+                _ => {
+                    return Err(format!(
+                        "step `{}` reads `{}` before it is written",
+                        st.name,
+                        q.map(*m).name
+                    ))
+                }
             }
             let l = last[m.index()].get_or_insert(pos[s]);
             *l = (*l).max(pos[s]);
@@ -111,19 +128,29 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
         let v = plan.map_views[m];
         let (px, c) = shape(QMapId(m as u32));
         if v.stride < c {
-            return Err(format!("map `{}` has stride {} < {} channels", q.maps[m].name, v.stride, c));
+            return Err(format!(
+                "map `{}` has stride {} < {} channels",
+                q.maps[m].name, v.stride, c
+            ));
         }
         if let Some((_, e)) = span(v, px, c) {
             if e > plan.arena_bytes {
-                return Err(format!("map `{}` ends at {} beyond the arena of {}", q.maps[m].name, e, plan.arena_bytes));
+                return Err(format!(
+                    "map `{}` ends at {} beyond the arena of {}",
+                    q.maps[m].name, e, plan.arena_bytes
+                ));
             }
         }
     }
     // 3. In-place concatenations, latest first so containment propagates.
     let mut inplace_out = vec![false; nm];
     let mut containers: Vec<Vec<usize>> = vec![Vec::new(); nm];
-    let mut concats: Vec<usize> =
-        (0..n).filter(|&s| matches!(q.steps[s].kernel, QKernel::Concat) && !plan.copy_concat.iter().any(|c| c.index() == s)).collect();
+    let mut concats: Vec<usize> = (0..n)
+        .filter(|&s| {
+            matches!(q.steps[s].kernel, QKernel::Concat)
+                && !plan.copy_concat.iter().any(|c| c.index() == s)
+        })
+        .collect();
     concats.sort_by_key(|&s| std::cmp::Reverse(pos[s]));
     for &s in &concats {
         let st = &q.steps[s];
@@ -150,7 +177,9 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
         }
     }
     // 4. Pairwise disjointness of stored maps alive together.
-    let stored: Vec<usize> = (0..nm).filter(|&m| def[m].is_some() && !inplace_out[m]).collect();
+    let stored: Vec<usize> = (0..nm)
+        .filter(|&m| def[m].is_some() && !inplace_out[m])
+        .collect();
     // `a` is `i` or a member (at any depth) of the in-place concatenation `i`.
     let within = |a: usize, i: usize| {
         let mut todo = vec![a];
@@ -178,7 +207,10 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
                     && def[o] == Some(p)
                     && st.inputs.iter().any(|m| {
                         let m = m.index();
-                        within(i, m) && plan.map_views[m] == plan.map_views[o] && last[m] == Some(p) && last[i] == Some(p)
+                        within(i, m)
+                            && plan.map_views[m] == plan.map_views[o]
+                            && last[m] == Some(p)
+                            && last[i] == Some(p)
                     })
             };
             elementwise && (pair(a, b) || pair(b, a))
@@ -193,7 +225,8 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
                 continue;
             }
             let (pb, cb) = shape(QMapId(b as u32));
-            if views_overlap(plan.map_views[a], pa, ca, plan.map_views[b], pb, cb) && !allowed(a, b) {
+            if views_overlap(plan.map_views[a], pa, ca, plan.map_views[b], pb, cb) && !allowed(a, b)
+            {
                 return Err(format!(
                     "`{}` (alive {}..={}) and `{}` (alive {}..={}) share arena bytes",
                     q.maps[a].name, da, la, q.maps[b].name, db, lb
