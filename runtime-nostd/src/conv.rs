@@ -278,9 +278,23 @@ pub fn conv2d(
                 let src = input.pixel(oy, ox);
                 widen_into(patch, &arena[src..src + input.c]);
             } else if depthwise {
-                gather(arena, &input, w, p, transform, 1, oy, ox, input.c, seg * input.c, patch);
+                gather(
+                    arena,
+                    &input,
+                    w,
+                    p,
+                    transform,
+                    1,
+                    oy,
+                    ox,
+                    input.c,
+                    seg * input.c,
+                    patch,
+                );
             } else {
-                gather(arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch);
+                gather(
+                    arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch,
+                );
             }
             let dst = output.pixel(oy, ox);
             let out = &mut arena[dst..dst + output.c];

@@ -274,7 +274,13 @@ fn errors_are_reported_without_writing() {
     );
     // stride < c
     assert_eq!(
-        max_pool2d(&mut arena, MapRef::strided(0, 4, 4, 2, 1), MapRef::new(32, 2, 2, 2), &w, &q),
+        max_pool2d(
+            &mut arena,
+            MapRef::strided(0, 4, 4, 2, 1),
+            MapRef::new(32, 2, 2, 2),
+            &w,
+            &q
+        ),
         Err(Error::MapOutOfBounds)
     );
     assert!(arena.iter().all(|&v| v == 1));
@@ -290,15 +296,45 @@ fn errors_are_reported_without_writing() {
     let mut patch = [0i16; 18];
     let wts = [0i8; 36];
     assert_eq!(
-        conv2d(&mut arena, input, out, &wts[..35], &[0; 2], &rq, &p, None, &mut patch),
+        conv2d(
+            &mut arena,
+            input,
+            out,
+            &wts[..35],
+            &[0; 2],
+            &rq,
+            &p,
+            None,
+            &mut patch
+        ),
         Err(Error::BufferTooSmall)
     );
     assert_eq!(
-        conv2d(&mut arena, input, out, &wts, &[0; 2], &rq, &p, None, &mut patch[..17]),
+        conv2d(
+            &mut arena,
+            input,
+            out,
+            &wts,
+            &[0; 2],
+            &rq,
+            &p,
+            None,
+            &mut patch[..17]
+        ),
         Err(Error::BufferTooSmall)
     );
     assert_eq!(
-        conv2d(&mut arena, input, out, &wts, &[0; 2], &rq, &ConvParams { groups: 0, ..p }, None, &mut patch),
+        conv2d(
+            &mut arena,
+            input,
+            out,
+            &wts,
+            &[0; 2],
+            &rq,
+            &ConvParams { groups: 0, ..p },
+            None,
+            &mut patch
+        ),
         Err(Error::BadParams)
     );
     let bad_rq = [Requant { mult: 5, shift: 0 }; 2];

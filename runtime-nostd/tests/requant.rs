@@ -17,7 +17,13 @@ use proptest::prelude::*;
 #[test]
 fn jacob_2018_section2_multiplier() {
     let r = Requant::from_real(0.0072474273).unwrap();
-    assert_eq!(r, Requant { mult: 1992157647, shift: 7 });
+    assert_eq!(
+        r,
+        Requant {
+            mult: 1992157647,
+            shift: 7
+        }
+    );
     assert_eq!(r.total_shift(), 38);
     assert!((r.to_real() - 0.0072474273).abs() < 0.0072474273 * 2f64.powi(-31));
 }
@@ -75,9 +81,21 @@ fn validation() {
     assert_eq!(Requant::from_real(0.0), Some(Requant { mult: 0, shift: 0 }));
     // Rounding up to 2^31 renormalises.
     let r = Requant::from_real(1.0 - 1e-12).unwrap();
-    assert_eq!(r, Requant { mult: 1 << 30, shift: -1 });
+    assert_eq!(
+        r,
+        Requant {
+            mult: 1 << 30,
+            shift: -1
+        }
+    );
     let r = Requant::from_real(-0.75).unwrap();
-    assert_eq!(r, Requant { mult: -(3 << 29), shift: 0 });
+    assert_eq!(
+        r,
+        Requant {
+            mult: -(3 << 29),
+            shift: 0
+        }
+    );
     assert_eq!(r.scale(4), -3);
 }
 
@@ -85,8 +103,14 @@ fn validation() {
 fn output_quant_activations() {
     assert_eq!(OutputQuant::linear(5), OutputQuant::clamped(5, -128, 127));
     assert_eq!(OutputQuant::relu(-20), OutputQuant::clamped(-20, -20, 127));
-    assert_eq!(OutputQuant::relu6(-128, 100), OutputQuant::clamped(-128, -128, -28));
-    assert_eq!(OutputQuant::relu6(100, 100), OutputQuant::clamped(100, 100, 127));
+    assert_eq!(
+        OutputQuant::relu6(-128, 100),
+        OutputQuant::clamped(-128, -128, -28)
+    );
+    assert_eq!(
+        OutputQuant::relu6(100, 100),
+        OutputQuant::clamped(100, 100, 127)
+    );
     assert_eq!(OutputQuant::relu(3).finish(-10), 3);
     assert_eq!(OutputQuant::linear(0).finish(1 << 40), 127);
     assert_eq!(OutputQuant::linear(0).finish(-(1 << 40)), -128);
