@@ -40,6 +40,7 @@ struct Case {
     run: Box<dyn FnMut()>,
 }
 
+#[allow(clippy::too_many_arguments)]
 fn conv_case(
     name: &'static str,
     h: usize,
@@ -222,7 +223,7 @@ fn cases() -> Vec<Case> {
         let out = MapRef::new(0, h, w, 1);
         let mut arena = vec![0i8; out.len()];
         let pixels: Vec<u8> = (0..h * w).map(|_| rng.next() as u8).collect();
-        let table: Vec<i8> = (0..256).map(|i| (i as i32 - 128) as i8).collect();
+        let table: Vec<i8> = (0..256i32).map(|i| (i - 128) as i8).collect();
         v.push(Case {
             name: "quantize_pixels",
             shape: format!("{h}x{w}x1 gray"),

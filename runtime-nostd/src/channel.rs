@@ -81,6 +81,7 @@ mod tests {
 
     /// Naive reference: the affine formula of [`AffineTransform`] written out
     /// with plain i64 arithmetic and floor division.
+    #[allow(clippy::too_many_arguments)]
     fn naive_affine(
         x: i8,
         mul: i32,
