@@ -1,8 +1,10 @@
 //! Throughput of the float reference, printed as a table.
 //!
 //! ```text
-//! cargo run --release -p ingot-compiler --example bench_reference [-- --quick]
+//! cargo run --release -p ingot-compiler --example bench_reference [-- --quick | --profile]
 //! ```
+//!
+//! `--profile` prints the time per op kind instead.
 //!
 //! For each network: images per second of `Reference::run` on one image at
 //! a time, and of `Reference::run_batch` (rayon, one image per task) on a
@@ -47,8 +49,47 @@ fn bench(net: &Net, single_reps: usize, batch: usize, batch_reps: usize) -> (f64
     (median(single), median(batched))
 }
 
+/// Median time per op kind over `reps` runs, measured between the
+/// visitor's calls (each call follows one layer).
+fn profile(net: &Net, reps: usize) {
+    let g = net.build();
+    let r = Reference::new(&g);
+    let x = net.random_input(1);
+    let mut per_layer: Vec<Vec<f64>> = vec![Vec::new(); g.layers().len()];
+    for _ in 0..reps {
+        let mut last = Instant::now();
+        r.run_with(&x, |m, _| {
+            let now = Instant::now();
+            if let Some(l) = m.producer() {
+                per_layer[l.index()].push((now - last).as_secs_f64());
+            }
+            last = now;
+        })
+        .unwrap();
+    }
+    let mut by_op: std::collections::BTreeMap<&str, f64> = Default::default();
+    for (l, times) in g.layers().iter().zip(per_layer) {
+        *by_op.entry(l.op.kind()).or_default() += median(times);
+    }
+    let total: f64 = by_op.values().sum();
+    println!("  {}: {:.2} ms per image", g.name(), total * 1e3);
+    for (op, t) in by_op {
+        println!(
+            "    {op:<16} {:>8.3} ms {:>5.1}%",
+            t * 1e3,
+            100.0 * t / total
+        );
+    }
+}
+
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
+    if std::env::args().any(|a| a == "--profile") {
+        println!("time per op kind (median per layer, summed):");
+        profile(&zoo::dense_small(1), 21);
+        profile(&zoo::densenet121(1), 3);
+        return;
+    }
     let threads = rayon::current_num_threads();
     println!("float reference throughput (median of repetitions), rayon threads: {threads}");
     println!();
