@@ -9,6 +9,7 @@ pub mod frontend;
 pub mod graph;
 pub mod inspect;
 pub mod lower;
+pub mod plan;
 pub mod reference;
 pub mod util;
 pub mod zoo;

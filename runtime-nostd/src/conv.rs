@@ -1,7 +1,7 @@
 //! 2-D convolution over HWC maps: im2col of one output pixel into the
 //! widened patch, then contiguous dot products per output channel.
 
-use crate::dot::{dot2_wide, dot_wide, tail_wide, widen_into};
+use crate::dot::{dot2_wide, dot4_wide, dot_wide, tail_wide, widen_into};
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 
 /// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
@@ -267,28 +267,51 @@ pub fn conv2d(
         && p.groups == 1
         && transform.is_none();
 
+    // Depthwise (one input channel per group): gather the window tap-major
+    // like a dense convolution (`patch[t][c]`, whole kernel rows copied at
+    // once), then each output channel walks its input channel's column.
+    let depthwise = cpg == 1 && p.groups > 1;
     for oy in 0..output.h {
         for ox in 0..output.w {
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
                 let src = input.pixel(oy, ox);
                 widen_into(patch, &arena[src..src + input.c]);
+            } else if depthwise {
+                gather(
+                    arena,
+                    &input,
+                    w,
+                    p,
+                    transform,
+                    1,
+                    oy,
+                    ox,
+                    input.c,
+                    seg * input.c,
+                    patch,
+                );
             } else {
-                gather(arena, &input, w, p, transform, oy, ox, cpg, seg, patch);
+                gather(
+                    arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch,
+                );
             }
             let dst = output.pixel(oy, ox);
             let out = &mut arena[dst..dst + output.c];
-            if opg == 1 && p.groups > 1 {
-                // Depthwise without multiplier: output o reads segment o.
-                for ((((o, row), xw), &b), rq) in out
+            if depthwise {
+                for (o, (((y, row), &b), rq)) in out
                     .iter_mut()
-                    .zip(weights.chunks_exact(seg))
-                    .zip(patch.chunks_exact(seg))
+                    .zip(weights.chunks_exact(taps))
                     .zip(bias)
                     .zip(requant)
+                    .enumerate()
                 {
-                    let acc = b.wrapping_add(dot_wide(xw, row));
-                    *o = rq.apply(acc, p.out);
+                    let col = &patch[o / opg..];
+                    let mut acc = b;
+                    for (x, &wv) in col.iter().step_by(input.c).zip(row) {
+                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+                    }
+                    *y = rq.apply(acc, p.out);
                 }
             } else {
                 for (g, xw) in patch.chunks_exact(seg).enumerate() {
@@ -308,8 +331,8 @@ pub fn conv2d(
     Ok(())
 }
 
-/// Output channels of one group for one pixel, two weight rows per patch
-/// pass.
+/// Output channels of one group for one pixel: four (then two, then one)
+/// weight rows per pass over the patch.
 #[inline]
 fn channel_rows(
     xw: &[i16],
@@ -323,23 +346,59 @@ fn channel_rows(
     if seg == 0 {
         return;
     }
-    let tail = seg - seg % 16;
-    let mut rows = weights.chunks_exact(2 * seg);
-    let mut outs = out.chunks_exact_mut(2);
-    let mut k = 0;
-    for (pair, o) in (&mut rows).zip(&mut outs) {
-        let (w0, w1) = pair.split_at(seg);
-        let mut acc = dot2_wide(xw, xw, w0, w1);
-        if tail < seg {
-            acc[0] = acc[0].wrapping_add(tail_wide(&xw[tail..], &w0[tail..]));
-            acc[1] = acc[1].wrapping_add(tail_wide(&xw[tail..], &w1[tail..]));
+    if seg < 16 {
+        // Short windows (first layer on a gray image, tiny kernels): plain
+        // scalar rows.
+        for (((o, row), &b), rq) in out
+            .iter_mut()
+            .zip(weights.chunks_exact(seg))
+            .zip(bias)
+            .zip(requant)
+        {
+            let mut acc = b;
+            for (&x, &w) in xw.iter().zip(row) {
+                acc = acc.wrapping_add((x as i32).wrapping_mul(w as i32));
+            }
+            *o = rq.apply(acc, out_q);
         }
-        o[0] = requant[k].apply(bias[k].wrapping_add(acc[0]), out_q);
-        o[1] = requant[k + 1].apply(bias[k + 1].wrapping_add(acc[1]), out_q);
-        k += 2;
+        return;
     }
-    if let (Some(o), Some(&b), Some(rq)) = (outs.into_remainder().first_mut(), bias.get(k), requant.get(k)) {
-        *o = rq.apply(b.wrapping_add(dot_wide(xw, rows.remainder())), out_q);
+    let tail = seg - seg % 16;
+    let mut quads = weights.chunks_exact(4 * seg);
+    let mut outs = out.chunks_exact_mut(4);
+    let mut k = 0;
+    for (rows, o) in (&mut quads).zip(&mut outs) {
+        let (a, r) = rows.split_at(seg);
+        let (b, r) = r.split_at(seg);
+        let (c, d) = r.split_at(seg);
+        let mut acc = dot4_wide([xw, xw, xw, xw], [a, b, c, d]);
+        if tail < seg {
+            for (v, w) in acc.iter_mut().zip([a, b, c, d]) {
+                *v = v.wrapping_add(tail_wide(&xw[tail..], &w[tail..]));
+            }
+        }
+        for j in 0..4 {
+            o[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[j]), out_q);
+        }
+        k += 4;
+    }
+    let rest = quads.remainder();
+    let out = outs.into_remainder();
+    let mut j = 0;
+    while j + 2 <= out.len() {
+        let (a, b) = rest[j * seg..(j + 2) * seg].split_at(seg);
+        let mut acc = dot2_wide(xw, xw, a, b);
+        if tail < seg {
+            acc[0] = acc[0].wrapping_add(tail_wide(&xw[tail..], &a[tail..]));
+            acc[1] = acc[1].wrapping_add(tail_wide(&xw[tail..], &b[tail..]));
+        }
+        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[0]), out_q);
+        out[j + 1] = requant[k + j + 1].apply(bias[k + j + 1].wrapping_add(acc[1]), out_q);
+        j += 2;
+    }
+    if j < out.len() {
+        let a = &rest[j * seg..(j + 1) * seg];
+        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
     }
 }
 
@@ -353,18 +412,33 @@ fn gather(
     w: &Window,
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
+    groups: usize,
     oy: usize,
     ox: usize,
     cpg: usize,
     seg: usize,
     patch: &mut [i16],
 ) {
-    let groups = p.groups;
     let base_y = oy * w.step_y;
     let base_x = ox * w.step_x;
+    // A whole kernel row is one contiguous run of the arena when the
+    // channels are dense, the kernel is not dilated horizontally and the
+    // row lies inside the map horizontally.
+    let dense_row = groups == 1
+        && transform.is_none()
+        && w.dilation_x == 1
+        && input.stride == input.c
+        && base_x >= w.pad.left
+        && base_x - w.pad.left + w.kw <= input.w;
     for ky in 0..w.kh {
         let yy = base_y + ky * w.dilation_y; // padded coordinate
         let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
+        if dense_row && row_in {
+            let run = w.kw * cpg;
+            let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
+            widen_into(&mut patch[ky * run..(ky + 1) * run], &arena[src..src + run]);
+            continue;
+        }
         for kx in 0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;

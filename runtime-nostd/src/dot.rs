@@ -77,6 +77,30 @@ pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2
     [lane_sum(&s0), lane_sum(&s1)]
 }
 
+/// Four rows at once, same contract as [`dot2_wide`] with four patch
+/// slices (all the same patch in practice) and four weight rows.
+#[inline(never)]
+pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
+    let n = w[0].len();
+    let (x0, x1, x2, x3) = (&x[0][..n], &x[1][..n], &x[2][..n], &x[3][..n]);
+    let (w0, w1, w2, w3) = (w[0], &w[1][..n], &w[2][..n], &w[3][..n]);
+    let mut s0 = [0i32; 16];
+    let mut s1 = [0i32; 16];
+    let mut s2 = [0i32; 16];
+    let mut s3 = [0i32; 16];
+    let m = n / 16;
+    let (x0, x1, x2, x3) = (&x0[..m * 16], &x1[..m * 16], &x2[..m * 16], &x3[..m * 16]);
+    let (w0, w1, w2, w3) = (&w0[..m * 16], &w1[..m * 16], &w2[..m * 16], &w3[..m * 16]);
+    for i in 0..m {
+        let r = i * 16..i * 16 + 16;
+        step16(&mut s0, &x0[r.clone()], &w0[r.clone()]);
+        step16(&mut s1, &x1[r.clone()], &w1[r.clone()]);
+        step16(&mut s2, &x2[r.clone()], &w2[r.clone()]);
+        step16(&mut s3, &x3[r.clone()], &w3[r]);
+    }
+    [lane_sum(&s0), lane_sum(&s1), lane_sum(&s2), lane_sum(&s3)]
+}
+
 /// Scalar dot product for short runs (tails, depthwise windows), in
 /// channel pairs.
 #[inline(never)]

@@ -68,7 +68,8 @@
 //! out = clamp(z_out + ((acc as i64 * mult as i64 + (1 << (t - 1))) >> t), min, max)
 //! ```
 //!
-//! i.e. round to nearest, **ties toward +∞**, with a **single rounding**.
+//! i.e. round to nearest, **ties toward +∞**, with a **single rounding**
+//! (computed as `((p >> (t − 1)) + 1) >> 1`, which is the same integer).
 //! The full 62-bit product is kept and rounded once; the common two-step
 //! alternative (a rounding doubling high-multiply followed by a rounding
 //! right shift) rounds twice and can be off by one step on ties. Here the
@@ -88,39 +89,50 @@
 //!
 //! A convolution handles one output pixel at a time: it gathers the
 //! receptive field into the caller's `patch` (the im2col buffer of one
-//! pixel, sized by [`conv_patch_len`]), applying padding and any fused input
-//! transform once, then runs every output channel's dot product over the
-//! contiguous patch and the contiguous weight row. The patch is stored
-//! **widened to 16 bits** (two little-endian bytes per element): it is reused
-//! by all `C_out` rows, so widening it once per pixel removes half of the
-//! sign extensions from the inner loop.
+//! pixel, `&mut [i16]` of [`conv_patch_len`] elements), applying padding
+//! and any fused input transform once, then runs every output channel's dot
+//! product over the contiguous patch and the contiguous weight row. The
+//! patch is stored **widened to 16 bits**: it is reused by all `C_out`
+//! rows, so widening it once per pixel removes half of the sign extensions
+//! from the inner loop, and it is the operand format of a 16-bit dual MAC.
 //!
 //! The inner loop therefore runs over *contiguous input channels* (the
 //! innermost axis of both the HWC patch and the `[O][kh][kw][I]` weights),
 //! never over the kernel window or over output channels: contiguous runs
 //! are what allow wide loads and multiply-accumulate over channel pairs.
-//! It is written as fixed-width chunks (`chunks_exact` of 32 then 16 lanes,
-//! a lane-array accumulator, one horizontal sum at the end), which has no
-//! bounds checks and no loop-carried dependency between lanes.
+//! Its shape is chosen for that: fixed 16-lane chunks (`chunks_exact`), a
+//! `[i32; 16]` lane accumulator per weight row, one horizontal sum per row
+//! at the end, four (then two, then one) weight rows per pass over the
+//! patch, and a scalar channel-pair tail. No bounds checks remain in the
+//! loop and lanes carry no dependency on each other.
 //!
-//! * On x86-64 (baseline SSE2) LLVM vectorizes it to `movdqu` loads,
-//!   `punpck*bw`/`psraw` to sign-extend the weights, `pmaddwd` (eight 16-bit
-//!   products summed in pairs into four i32 lanes) and `paddd`: about 0.8
-//!   instructions per MAC in the loop.
+//! * On x86-64 with baseline SSE2 LLVM turns each row's lanes into
+//!   `movdqu` loads, `punpck[lh]bw` + `psraw` to sign-extend 16 weights,
+//!   `pmaddwd` (eight 16×16 products summed in pairs into four i32 lanes)
+//!   and `paddd`: 47 instructions per 64 MACs (four rows × 16 channels) in
+//!   the loop. The multi-row function takes the patch once per row (the
+//!   caller passes the same slice four times): with one shared slice the
+//!   SLP vectorizer's cost model rejects the reduction, with independent
+//!   slices it costs each row like the single-row loop and emits `pmaddwd`.
+//!   `benches/callgrind.sh` measures the result per kernel.
 //! * On Cortex-M4/M7 (`thumbv7em`) the intended shape is the same pairing:
 //!   one 32-bit load brings a channel pair of the widened patch, one 32-bit
-//!   load brings four weights that `SXTB16` (with `ROR #8` for the odd ones)
-//!   splits into two 16-bit pairs, and `SMLAD` does two 16×16 MACs into the
-//!   32-bit accumulator per instruction. Pairing consecutive channels is
-//!   exactly the `acc += x[2k]·w[2k] + x[2k+1]·w[2k+1]` the loop expresses,
-//!   and it is only possible because channels are innermost and contiguous.
+//!   load brings four weights that `SXTB16` (and `SXTB16` with `ROR #8`)
+//!   split into two 16-bit pairs, and `SMLAD` performs two 16×16 MACs into
+//!   a 32-bit accumulator per instruction. Pairing consecutive channels is
+//!   exactly the `acc += x[2k]·w[2k] + x[2k+1]·w[2k+1]` the loop and its
+//!   tail express, and it is only possible because channels are innermost
+//!   and contiguous; several rows per patch pass let one patch load feed
+//!   several `SMLAD`s.
 //!
-//! The 1×1 pointwise path skips the window logic (the patch is the input
-//! pixel, widened). The depthwise path (`groups == C_in`) gathers each
-//! channel's window into its own contiguous segment so it uses the same dot
-//! product. [`linear`] reads the input directly from the arena with an
-//! all-int8 dot product (each weight is used once, so there is nothing to
-//! amortize a widening over).
+//! Special paths: 1×1 pointwise (stride 1, no padding, one group) skips the
+//! window logic (the patch is the input pixel, widened); dense kernel rows
+//! inside the map are copied as one run of `kw·C_in` values; depthwise
+//! (`groups == C_in`, any channel multiplier) gathers the window tap-major
+//! like a dense convolution and lets each output channel walk its input
+//! channel's column. [`linear`] reads the input straight from the arena
+//! with an all-int8 dot product (each weight is used once, so there is
+//! nothing to amortize a widening over).
 //!
 //! # Kernels
 //!

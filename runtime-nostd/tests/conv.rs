@@ -46,9 +46,21 @@ struct Case {
 
 fn arb_case() -> impl Strategy<Value = Case> {
     let shape = (1usize..7, 1usize..7, 1usize..4, 1usize..4, 1usize..4);
-    let kernel = (1usize..4, 1usize..4, 1usize..3, 1usize..3, 1usize..3, 1usize..3);
+    let kernel = (
+        1usize..4,
+        1usize..4,
+        1usize..3,
+        1usize..3,
+        1usize..3,
+        1usize..3,
+    );
     let pad = (0usize..3, 0usize..3, 0usize..3, 0usize..3);
-    let quant = (arb_zp(), arb_zp(), 0u8..3, prop::collection::vec(arb_requant(), 16));
+    let quant = (
+        arb_zp(),
+        arb_zp(),
+        0u8..3,
+        prop::collection::vec(arb_requant(), 16),
+    );
     let layout = (0usize..3, any::<bool>(), any::<u64>(), 0u8..3);
     (shape, kernel, pad, quant, layout).prop_map(|(s, k, pd, q, l)| {
         let (h, w, cpg, opg, groups) = s;
@@ -147,8 +159,12 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
         .map(|_| rng.range(-2_000_000, 2_000_000) as i32)
         .collect();
     let table: Vec<i8> = (0..256 * c.cin).map(|_| rng.i8()).collect();
-    let mul: Vec<i32> = (0..c.cin).map(|_| rng.range(-70000, 70000) as i32).collect();
-    let addv: Vec<i32> = (0..c.cin).map(|_| rng.range(-1 << 24, 1 << 24) as i32).collect();
+    let mul: Vec<i32> = (0..c.cin)
+        .map(|_| rng.range(-70000, 70000) as i32)
+        .collect();
+    let addv: Vec<i32> = (0..c.cin)
+        .map(|_| rng.range(-1 << 24, 1 << 24) as i32)
+        .collect();
     let zp_in = rng.range(-128, 127) as i32;
     let shift = rng.range(0, 16) as u32;
     let (rt, tr) = match c.transform {
@@ -230,6 +246,199 @@ proptest! {
     fn conv2d_matches_reference(c in arb_case()) {
         if let Some((got, want)) = run_case(&c) {
             prop_assert_eq!(got, want);
+        }
+    }
+}
+
+/// Wider layers (so the 4-row, 2-row and 16-lane paths all run) on small
+/// maps: dense and dense-block (interleaved in-place concat) layouts.
+fn arb_wide_case() -> impl Strategy<Value = Case> {
+    (
+        (1usize..5, 1usize..5, 1usize..41, 1usize..20),
+        (1usize..4, 0usize..2, any::<bool>(), 0u8..3),
+        (arb_zp(), arb_zp(), prop::collection::vec(arb_requant(), 20)),
+        (0usize..3, any::<bool>(), any::<u64>()),
+    )
+        .prop_map(|(s, k, q, l)| {
+            let (h, w, cin, cout) = s;
+            let (kk, pad, asym, transform) = k;
+            let (pad_value, zp_out, rq) = q;
+            let (in_extra, same_region, seed) = l;
+            Case {
+                h,
+                w,
+                cin,
+                cout,
+                groups: 1,
+                p: RefConv {
+                    kh: kk,
+                    kw: kk,
+                    sy: 1,
+                    sx: 1,
+                    dy: 1,
+                    dx: 1,
+                    pt: pad,
+                    pl: pad,
+                    pb: if asym { 0 } else { pad },
+                    pr: pad,
+                    groups: 1,
+                    pad_value,
+                    zp_out: zp_out as i32,
+                    lo: -128,
+                    hi: 127,
+                },
+                in_extra,
+                in_c0: in_extra.min(1),
+                same_region,
+                seed,
+                rq,
+                transform,
+            }
+        })
+}
+
+proptest! {
+    #[test]
+    fn wide_conv2d_matches_reference(c in arb_wide_case()) {
+        if let Some((got, want)) = run_case(&c) {
+            prop_assert_eq!(got, want);
+        }
+    }
+}
+
+/// Depthwise with channel multiplier and a 1×1 map with a kernel larger
+/// than the input (all but one tap padded).
+#[test]
+fn depthwise_multiplier_and_oversized_kernel() {
+    for (h, w, k, pad, groups, opg) in [(3, 4, 3, 1, 5, 2), (1, 1, 5, 2, 3, 1), (2, 2, 3, 2, 1, 3)]
+    {
+        let c = Case {
+            h,
+            w,
+            cin: groups,
+            cout: groups * opg,
+            groups,
+            p: RefConv {
+                kh: k,
+                kw: k,
+                sy: 1,
+                sx: 1,
+                dy: 1,
+                dx: 1,
+                pt: pad,
+                pl: pad,
+                pb: pad,
+                pr: pad,
+                groups,
+                pad_value: -128,
+                zp_out: 127,
+                lo: -128,
+                hi: 127,
+            },
+            in_extra: 1,
+            in_c0: 1,
+            same_region: false,
+            seed: 42,
+            rq: vec![Requant::from_real(0.001).unwrap(); groups * opg],
+            transform: 0,
+        };
+        let (got, want) = run_case(&c).unwrap();
+        assert_eq!(got, want);
+    }
+}
+
+/// Against the float computation it approximates: with a real multiplier
+/// M, the dequantized integer output is within 0.5 LSB (+ the 2^-31
+/// relative error of the Q31 mantissa) of
+/// `clamp(z_out + M · Σ w·(x − z_in) + bias)`, the exact float convolution
+/// of the dequantized inputs and weights.
+#[test]
+fn conv2d_agrees_with_float_within_half_lsb() {
+    let mut rng = Lcg(7);
+    for _ in 0..20 {
+        let (h, w, cin, cout) = (5, 4, 6, 5);
+        let s_in = 0.02 + rng.range(0, 100) as f64 * 0.001;
+        let z_in = rng.range(-128, 127) as i32;
+        let s_out = 0.05 + rng.range(0, 100) as f64 * 0.002;
+        let z_out = rng.range(-128, 127) as i32;
+        let input = MapRef::new(0, h, w, cin);
+        let output = MapRef::new(input.len(), h, w, cout);
+        let mut arena: Vec<i8> = (0..input.len() + output.len()).map(|_| rng.i8()).collect();
+        let s_w: Vec<f64> = (0..cout)
+            .map(|_| 0.001 + rng.range(0, 50) as f64 * 0.0002)
+            .collect();
+        let weights: Vec<i8> = (0..cout * 9 * cin)
+            .map(|_| rng.range(-127, 127) as i8)
+            .collect();
+        let bias_real: Vec<f64> = (0..cout)
+            .map(|_| rng.range(-100, 100) as f64 * 0.01)
+            .collect();
+        // Compiler side: quantize the bias at s_in·s_w and fold z_in.
+        let bias_q: Vec<i32> = (0..cout)
+            .map(|o| (bias_real[o] / (s_in * s_w[o])).round() as i32)
+            .collect();
+        let folded: Vec<i32> = (0..cout)
+            .map(|o| {
+                let sw: i32 = weights[o * 9 * cin..(o + 1) * 9 * cin]
+                    .iter()
+                    .map(|&v| v as i32)
+                    .sum();
+                bias_q[o] - z_in * sw
+            })
+            .collect();
+        let rq: Vec<Requant> = (0..cout)
+            .map(|o| Requant::from_real(s_in * s_w[o] / s_out).unwrap())
+            .collect();
+        let before = arena.clone();
+        let mut patch = vec![0i16; conv_patch_len(3, 3, cin)];
+        conv2d(
+            &mut arena,
+            input,
+            output,
+            &weights,
+            &folded,
+            &rq,
+            &ConvParams {
+                window: Window::square(3, 1, 1),
+                groups: 1,
+                input_zp: z_in as i8,
+                out: OutputQuant::linear(z_out),
+            },
+            None,
+            &mut patch,
+        )
+        .unwrap();
+        for y in 0..h {
+            for x in 0..w {
+                for o in 0..cout {
+                    let mut real = bias_q[o] as f64 * s_in * s_w[o];
+                    for ky in 0..3 {
+                        for kx in 0..3 {
+                            let (iy, ix) = (y as i64 + ky - 1, x as i64 + kx - 1);
+                            if iy < 0 || ix < 0 || iy >= h as i64 || ix >= w as i64 {
+                                continue; // padding is real zero
+                            }
+                            for i in 0..cin {
+                                let q = get(&before, &input, iy as usize, ix as usize, i) as i32;
+                                let wq =
+                                    weights[((o * 3 + ky as usize) * 3 + kx as usize) * cin + i];
+                                real += s_in * (q - z_in) as f64 * s_w[o] * wq as f64;
+                            }
+                        }
+                    }
+                    let want = (real / s_out + z_out as f64).clamp(-128.0, 127.0);
+                    let got = get(&arena, &output, y, x, o) as f64;
+                    let tol = 0.5 + 1e-6 + (real / s_out).abs() * 2f64.powi(-30);
+                    assert!(
+                        (got - want).abs() <= tol,
+                        "({y},{x},{o}): int {got} vs float {want}"
+                    );
+                    // The dequantized value is within half a step in real units.
+                    let deq = dequantize(got as i8, s_out as f32, z_out) as f64;
+                    let real_c = (want - z_out as f64) * s_out;
+                    assert!((deq - real_c).abs() <= s_out * tol + 1e-6);
+                }
+            }
         }
     }
 }

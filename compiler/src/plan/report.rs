@@ -1,0 +1,246 @@
+//! The planning report: what `ingot plan` prints, as text or JSON.
+
+use super::target::{budget, Budget, Target};
+use super::Plan;
+use crate::lower::{QGraph, QKernel};
+use serde::Serialize;
+use std::fmt;
+
+/// One step of the order.
+#[derive(Debug, Clone, Serialize)]
+pub struct StepRow {
+    /// Position in the order.
+    pub position: usize,
+    /// Step name.
+    pub name: String,
+    /// Kernel kind.
+    pub kind: String,
+    /// What the step does to memory: `compute`, `in-place`, `no-op` (in-place
+    /// concatenation) or `copy` (copying concatenation).
+    pub memory: String,
+}
+
+/// One map.
+#[derive(Debug, Clone, Serialize)]
+pub struct MapRow {
+    /// Map name.
+    pub name: String,
+    /// `[c, h, w]`.
+    pub shape: [usize; 3],
+    /// Arena offset of element (0,0,0).
+    pub offset: usize,
+    /// Pixel stride.
+    pub stride: usize,
+    /// Bytes of the map.
+    pub bytes: usize,
+    /// Live interval of the buffer holding it (positions), if any.
+    pub alive: Option<[usize; 2]>,
+}
+
+/// Everything `ingot plan` reports.
+#[derive(Debug, Clone, Serialize)]
+pub struct PlanReport {
+    /// Network name.
+    pub network: String,
+    /// Arena bytes.
+    pub arena_bytes: usize,
+    /// Patch bytes (outside the arena).
+    pub patch_bytes: usize,
+    /// Lower bound.
+    pub lower_bound: usize,
+    /// Arena / lower bound.
+    pub ratio: f64,
+    /// No reuse at all.
+    pub naive_bytes: usize,
+    /// Best plan with copying concatenations.
+    pub copying_bytes: usize,
+    /// Peak of live bytes in file order and in the chosen order.
+    pub order_peak_before: usize,
+    /// See `order_peak_before`.
+    pub order_peak_after: usize,
+    /// Exhaustive order search.
+    pub order_exact: bool,
+    /// Placement heuristic kept.
+    pub heuristic: String,
+    /// Position of the peak.
+    pub peak_step: usize,
+    /// Planning time.
+    pub seconds: f64,
+    /// The order.
+    pub steps: Vec<StepRow>,
+    /// Every map.
+    pub maps: Vec<MapRow>,
+    /// Budget, when a target was given.
+    pub budget: Option<Budget>,
+}
+
+/// Builds the report of `plan` for `q`, with a budget check when `target`
+/// is given.
+pub fn report(q: &QGraph, plan: &Plan, target: Option<&Target>) -> PlanReport {
+    let mut alive = vec![None; q.maps.len()];
+    for b in &plan.buffers {
+        for m in &b.maps {
+            alive[m.index()] = Some([b.first, b.last]);
+        }
+    }
+    let steps = plan
+        .order
+        .iter()
+        .enumerate()
+        .map(|(i, &s)| {
+            let st = q.step(s);
+            let memory = match st.kernel {
+                QKernel::Concat if plan.copy_concat.contains(&s) => "copy",
+                QKernel::Concat => "no-op",
+                _ if plan.in_place.contains(&s) => "in-place",
+                _ => "compute",
+            };
+            StepRow {
+                position: i,
+                name: st.name.clone(),
+                kind: st.kernel.kind().into(),
+                memory: memory.into(),
+            }
+        })
+        .collect();
+    let maps = q
+        .maps
+        .iter()
+        .enumerate()
+        .map(|(i, m)| MapRow {
+            name: m.name.clone(),
+            shape: [m.shape.c, m.shape.h, m.shape.w],
+            offset: plan.map_views[i].offset,
+            stride: plan.map_views[i].stride,
+            bytes: m.shape.len(),
+            alive: alive[i],
+        })
+        .collect();
+    PlanReport {
+        network: q.name.clone(),
+        arena_bytes: plan.arena_bytes,
+        patch_bytes: plan.patch_bytes,
+        lower_bound: plan.lower_bound,
+        ratio: plan.ratio(),
+        naive_bytes: plan.naive_bytes,
+        copying_bytes: plan.copying_bytes,
+        order_peak_before: plan.order_peak_before,
+        order_peak_after: plan.order_peak_after,
+        order_exact: plan.order_exact,
+        heuristic: plan.heuristic.clone(),
+        peak_step: plan.peak_step,
+        seconds: plan.seconds,
+        steps,
+        maps,
+        budget: target.map(|t| budget(q, plan, t)),
+    }
+}
+
+fn kib(b: impl Into<f64>) -> String {
+    format!("{:.1} KiB", b.into() / 1024.0)
+}
+
+impl fmt::Display for PlanReport {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        writeln!(f, "memory plan of `{}`", self.network)?;
+        writeln!(f, "order ({} steps):", self.steps.len())?;
+        for s in &self.steps {
+            writeln!(
+                f,
+                "  {:>4}  {:<40} {:<16} {}",
+                s.position, s.name, s.kind, s.memory
+            )?;
+        }
+        writeln!(f, "maps:")?;
+        writeln!(
+            f,
+            "  {:<40} {:>14} {:>9} {:>6} {:>9}  alive",
+            "name", "shape c×h×w", "offset", "stride", "bytes"
+        )?;
+        for m in &self.maps {
+            let alive = m
+                .alive
+                .map_or("-".to_string(), |[a, b]| format!("{a}..={b}"));
+            let shape = format!("{}×{}×{}", m.shape[0], m.shape[1], m.shape[2]);
+            writeln!(
+                f,
+                "  {:<40} {:>14} {:>9} {:>6} {:>9}  {}",
+                m.name, shape, m.offset, m.stride, m.bytes, alive
+            )?;
+        }
+        writeln!(
+            f,
+            "arena        {:>10} B  ({})",
+            self.arena_bytes,
+            kib(self.arena_bytes as f64)
+        )?;
+        writeln!(
+            f,
+            "lower bound  {:>10} B  ratio {:.4}",
+            self.lower_bound, self.ratio
+        )?;
+        writeln!(
+            f,
+            "naive        {:>10} B  (every map its own bytes)",
+            self.naive_bytes
+        )?;
+        writeln!(
+            f,
+            "copying      {:>10} B  (concatenations copied; in place is {:.1}% of it)",
+            self.copying_bytes,
+            100.0 * self.arena_bytes as f64 / self.copying_bytes.max(1) as f64
+        )?;
+        writeln!(
+            f,
+            "patch        {:>10} B  (outside the arena)",
+            self.patch_bytes
+        )?;
+        writeln!(
+            f,
+            "order peak   {:>10} B in file order, {} B chosen ({}), peak at position {}",
+            self.order_peak_before,
+            self.order_peak_after,
+            if self.order_exact {
+                "exact search"
+            } else {
+                "beam search"
+            },
+            self.peak_step
+        )?;
+        writeln!(
+            f,
+            "placement    {}; planned in {:.1} ms",
+            self.heuristic,
+            self.seconds * 1e3
+        )?;
+        if let Some(b) = &self.budget {
+            writeln!(f, "budget on {}:", b.target)?;
+            writeln!(
+                f,
+                "  RAM   {:>10} / {:>10} B (arena {} + patch {} + reserve {}), headroom {} B",
+                b.ram_used, b.ram_total, b.arena, b.patch, b.ram_reserve, b.ram_headroom
+            )?;
+            writeln!(
+                f,
+                "  flash {:>10} / {:>10} B (weights {} + biases {} + multipliers {} + transforms {} + code ≈{} + reserve {}), headroom {} B",
+                b.flash_used,
+                b.flash_total,
+                b.flash.weights,
+                b.flash.biases,
+                b.flash.multipliers,
+                b.flash.transforms,
+                b.flash.code,
+                b.flash_reserve,
+                b.flash_headroom
+            )?;
+            if b.fits {
+                writeln!(f, "  fits")?;
+            } else {
+                for o in &b.over {
+                    writeln!(f, "  DOES NOT FIT: {o}")?;
+                }
+            }
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,238 @@
+//! Independent check of a [`Plan`]: uses only the graph and the plan's
+//! public result (order, views, copying concatenations, in-place steps,
+//! arena size), none of the planner's internal structures.
+//!
+//! Checked:
+//!
+//! 1. the order is a permutation of the steps in which every input is
+//!    written before it is read;
+//! 2. every map touched by a step fits in the arena with its stride
+//!    (`offset + ((h·w − 1)·stride + c) <= arena`, `stride >= c`);
+//! 3. every input of an in-place concatenation is exactly its channel slice
+//!    of the output (`offset = out.offset + c0`, same stride);
+//! 4. for every pair of *stored* maps (all but in-place concatenation
+//!    outputs, which are their members) whose lifetimes meet, no arena byte
+//!    is shared. A map's lifetime runs from its write (the graph input: 0)
+//!    to its last read (the graph output: the end), extended to the last
+//!    read of any in-place concatenation containing it. The only sharing
+//!    allowed is an element-wise step listed in [`Plan::in_place`] whose
+//!    output view equals an input's view, that input's lifetime ending at
+//!    the step; the input may be an in-place concatenation, whose members
+//!    the output then overwrites.
+//!
+//! Overlap is decided exactly, pixel run by pixel run (a brute-force
+//! enumeration over the pixels of one map, with the other map's pixel index
+//! computed arithmetically).
+
+use super::{MapView, Plan};
+use crate::lower::{QGraph, QKernel, QMapId};
+
+/// `[start, end)` of the bytes a view spans, or `None` for an empty map.
+fn span(v: MapView, px: usize, c: usize) -> Option<(usize, usize)> {
+    if px == 0 || c == 0 {
+        return None;
+    }
+    Some((v.offset, v.offset + (px - 1) * v.stride + c))
+}
+
+/// True when the two views share at least one byte.
+pub fn views_overlap(
+    a: MapView,
+    a_px: usize,
+    a_c: usize,
+    b: MapView,
+    b_px: usize,
+    b_c: usize,
+) -> bool {
+    let (Some((sa, ea)), Some((sb, eb))) = (span(a, a_px, a_c), span(b, b_px, b_c)) else {
+        return false;
+    };
+    if ea <= sb || eb <= sa {
+        return false;
+    }
+    // Enumerate the runs of the map with fewer pixels.
+    let (x, x_px, x_c, y, y_px, y_c) = if a_px <= b_px {
+        (a, a_px, a_c, b, b_px, b_c)
+    } else {
+        (b, b_px, b_c, a, a_px, a_c)
+    };
+    for p in 0..x_px {
+        let lo = x.offset + p * x.stride;
+        let hi = lo + x_c; // run [lo, hi)
+        if hi <= y.offset {
+            continue;
+        }
+        // Pixels of `y` whose run could meet [lo, hi).
+        let q0 = lo.saturating_sub(y.offset) / y.stride.max(1);
+        let q0 = q0.saturating_sub(1);
+        let q1 = ((hi - 1).saturating_sub(y.offset) / y.stride.max(1)).min(y_px - 1);
+        for q in q0..=q1 {
+            let rlo = y.offset + q * y.stride;
+            let rhi = rlo + y_c;
+            if rlo < hi && lo < rhi {
+                return true;
+            }
+        }
+    }
+    false
+}
+
+/// Checks `plan` against `q`; `Err` names the first problem.
+pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
+    let n = q.steps.len();
+    let nm = q.maps.len();
+    if plan.order.len() != n || plan.map_views.len() != nm {
+        return Err("order or view table has the wrong length".into());
+    }
+    let mut pos = vec![usize::MAX; n];
+    for (i, s) in plan.order.iter().enumerate() {
+        if s.index() >= n || pos[s.index()] != usize::MAX {
+            return Err(format!("step {} missing or repeated in the order", s.0));
+        }
+        pos[s.index()] = i;
+    }
+    let mut def: Vec<Option<usize>> = vec![None; nm];
+    def[q.input.index()] = Some(0);
+    for (s, st) in q.steps.iter().enumerate() {
+        def[st.output.index()] = Some(pos[s]);
+    }
+    let mut last: Vec<Option<usize>> = def.clone();
+    for (s, st) in q.steps.iter().enumerate() {
+        for m in &st.inputs {
+            match def[m.index()] {
+                Some(d) if m == &q.input || d < pos[s] => {}
+                _ => {
+                    return Err(format!(
+                        "step `{}` reads `{}` before it is written",
+                        st.name,
+                        q.map(*m).name
+                    ))
+                }
+            }
+            let l = last[m.index()].get_or_insert(pos[s]);
+            *l = (*l).max(pos[s]);
+        }
+    }
+    if let Some(l) = last[q.output.index()].as_mut() {
+        *l = n.saturating_sub(1).max(*l);
+    }
+    let shape = |m: QMapId| {
+        let s = q.map(m).shape;
+        (s.h * s.w, s.c)
+    };
+    // 2. In the arena.
+    for m in 0..nm {
+        if def[m].is_none() {
+            continue;
+        }
+        let v = plan.map_views[m];
+        let (px, c) = shape(QMapId(m as u32));
+        if v.stride < c {
+            return Err(format!(
+                "map `{}` has stride {} < {} channels",
+                q.maps[m].name, v.stride, c
+            ));
+        }
+        if let Some((_, e)) = span(v, px, c) {
+            if e > plan.arena_bytes {
+                return Err(format!(
+                    "map `{}` ends at {} beyond the arena of {}",
+                    q.maps[m].name, e, plan.arena_bytes
+                ));
+            }
+        }
+    }
+    // 3. In-place concatenations, latest first so containment propagates.
+    let mut inplace_out = vec![false; nm];
+    let mut containers: Vec<Vec<usize>> = vec![Vec::new(); nm];
+    let mut concats: Vec<usize> = (0..n)
+        .filter(|&s| {
+            matches!(q.steps[s].kernel, QKernel::Concat)
+                && !plan.copy_concat.iter().any(|c| c.index() == s)
+        })
+        .collect();
+    concats.sort_by_key(|&s| std::cmp::Reverse(pos[s]));
+    for &s in &concats {
+        let st = &q.steps[s];
+        let o = plan.map_views[st.output.index()];
+        inplace_out[st.output.index()] = true;
+        let mut c0 = 0;
+        for &m in &st.inputs {
+            let v = plan.map_views[m.index()];
+            if v.offset != o.offset + c0 || v.stride != o.stride {
+                return Err(format!(
+                    "`{}` is not at channel {} of in-place concatenation `{}` (view {:?}, region {:?})",
+                    q.map(m).name,
+                    c0,
+                    st.name,
+                    v,
+                    o
+                ));
+            }
+            c0 += q.map(m).shape.c;
+            containers[m.index()].push(st.output.index());
+            if let (Some(lo), Some(lm)) = (last[st.output.index()], last[m.index()]) {
+                last[m.index()] = Some(lm.max(lo));
+            }
+        }
+    }
+    // 4. Pairwise disjointness of stored maps alive together.
+    let stored: Vec<usize> = (0..nm)
+        .filter(|&m| def[m].is_some() && !inplace_out[m])
+        .collect();
+    // `a` is `i` or a member (at any depth) of the in-place concatenation `i`.
+    let within = |a: usize, i: usize| {
+        let mut todo = vec![a];
+        let mut seen = vec![false; nm];
+        while let Some(x) = todo.pop() {
+            if x == i {
+                return true;
+            }
+            for &c in &containers[x] {
+                if !seen[c] {
+                    seen[c] = true;
+                    todo.push(c);
+                }
+            }
+        }
+        false
+    };
+    let allowed = |a: usize, b: usize| {
+        plan.in_place.iter().any(|s| {
+            let st = &q.steps[s.index()];
+            let p = pos[s.index()];
+            let elementwise = matches!(st.kernel, QKernel::Add(_) | QKernel::Channel(_));
+            let pair = |i: usize, o: usize| {
+                st.output.index() == o
+                    && def[o] == Some(p)
+                    && st.inputs.iter().any(|m| {
+                        let m = m.index();
+                        within(i, m)
+                            && plan.map_views[m] == plan.map_views[o]
+                            && last[m] == Some(p)
+                            && last[i] == Some(p)
+                    })
+            };
+            elementwise && (pair(a, b) || pair(b, a))
+        })
+    };
+    for (k, &a) in stored.iter().enumerate() {
+        let (da, la) = (def[a].unwrap_or(0), last[a].unwrap_or(0));
+        let (pa, ca) = shape(QMapId(a as u32));
+        for &b in &stored[k + 1..] {
+            let (db, lb) = (def[b].unwrap_or(0), last[b].unwrap_or(0));
+            if la < db || lb < da {
+                continue;
+            }
+            let (pb, cb) = shape(QMapId(b as u32));
+            if views_overlap(plan.map_views[a], pa, ca, plan.map_views[b], pb, cb) && !allowed(a, b)
+            {
+                return Err(format!(
+                    "`{}` (alive {}..={}) and `{}` (alive {}..={}) share arena bytes",
+                    q.maps[a].name, da, la, q.maps[b].name, db, lb
+                ));
+            }
+        }
+    }
+    Ok(())
+}
