@@ -8,7 +8,10 @@ use common::{calibrate, eval, random_input, Net, Rng};
 use ingot_compiler::calibrate::MapRange;
 use ingot_compiler::graph::{MapId, Op};
 use ingot_compiler::lower::quant::{activation_qparams, dequantize, quantize};
-use ingot_compiler::lower::{fold_batch_norm, lower, LowerError, LowerOptions, QGraph, QKernel, SimError, SimInput, Simulator};
+use ingot_compiler::lower::{
+    fold_batch_norm, lower, LowerError, LowerOptions, QGraph, QKernel, SimError, SimInput,
+    Simulator,
+};
 
 fn images(g: &ingot_compiler::Graph, n: usize, seed: u64) -> Vec<Vec<f32>> {
     let mut rng = Rng(seed);
@@ -42,7 +45,9 @@ fn batch_norm_folding_is_exact_in_float() {
     n.conv("c", "x", 3, 4, 3, 1, 1, 1);
     n.bn("bn", "c", 4);
     let g = n.build("bn");
-    let (Op::Conv2d(conv), Op::BatchNorm(bn)) = (&g.layers()[0].op, &g.layers()[1].op) else { panic!() };
+    let (Op::Conv2d(conv), Op::BatchNorm(bn)) = (&g.layers()[0].op, &g.layers()[1].op) else {
+        panic!()
+    };
     let (w, b) = fold_batch_norm(conv, bn);
     let mut folded = Net::new(3, 6, 6, 3);
     folded.conv("c", "x", 3, 4, 3, 1, 1, 1);
@@ -53,7 +58,10 @@ fn batch_norm_folding_is_exact_in_float() {
         let a = eval(&g, &x).pop().unwrap();
         let f = eval(&gf, &x).pop().unwrap();
         for (u, v) in a.iter().zip(&f) {
-            assert!((u - v).abs() <= 1e-5 * (1.0 + u.abs()), "conv+BN {u} vs folded {v}");
+            assert!(
+                (u - v).abs() <= 1e-5 * (1.0 + u.abs()),
+                "conv+BN {u} vs folded {v}"
+            );
         }
     }
     // Lowered, the batch norm and the ReLU disappear into the convolution.
@@ -62,10 +70,17 @@ fn batch_norm_folding_is_exact_in_float() {
     n2.bn("bn", "c", 4);
     n2.op("r", "relu", "bn");
     let g2 = n2.build("r");
-    let q = lower(&g2, &calibrate(&g2, &images(&g2, 4, 1)), &LowerOptions::default()).unwrap();
+    let q = lower(
+        &g2,
+        &calibrate(&g2, &images(&g2, 4, 1)),
+        &LowerOptions::default(),
+    )
+    .unwrap();
     assert_eq!(q.steps.len(), 1);
     assert_eq!(q.steps[0].layers.len(), 3);
-    let QKernel::Conv2d(c) = &q.steps[0].kernel else { panic!() };
+    let QKernel::Conv2d(c) = &q.steps[0].kernel else {
+        panic!()
+    };
     assert_eq!(c.clamp.min as i32, q.map(q.output).qp.zero_point);
 }
 
@@ -87,19 +102,28 @@ fn flatten_and_linear_use_hwc_order() {
     let kinds: Vec<&str> = q.steps.iter().map(|s| s.kernel.kind()).collect();
     assert_eq!(kinds, ["conv2d", "max_pool", "linear"]);
     // Weight of feature (c, y, x) sits at HWC position (y·W + x)·C + c.
-    let Op::Linear(fl) = &g.layers()[5].op else { panic!() };
-    let QKernel::Linear(ql) = &q.steps[2].kernel else { panic!() };
+    let Op::Linear(fl) = &g.layers()[5].op else {
+        panic!()
+    };
+    let QKernel::Linear(ql) = &q.steps[2].kernel else {
+        panic!()
+    };
     for o in 0..6 {
         for c in 0..4 {
             for p in 0..16 {
                 let w = fl.weight.data[o * 64 + c * 16 + p];
                 let code = ql.weights[o * 64 + p * 4 + c];
-                assert!((code as f32 * ql.weight_scales[o] - w).abs() <= 0.5 * ql.weight_scales[o] + 1e-7);
+                assert!(
+                    (code as f32 * ql.weight_scales[o] - w).abs()
+                        <= 0.5 * ql.weight_scales[o] + 1e-7
+                );
             }
         }
     }
     // Max pool keeps its input's quantization (no rescaling).
-    let QKernel::MaxPool(p) = &q.steps[1].kernel else { panic!() };
+    let QKernel::MaxPool(p) = &q.steps[1].kernel else {
+        panic!()
+    };
     assert!(p.requant.is_none());
     assert_eq!(q.map(q.steps[1].inputs[0]).qp, q.map(q.steps[1].output).qp);
     for (name, w) in worst_steps(&g, &q, &imgs) {
@@ -124,7 +148,11 @@ fn add_requantizes_inputs_with_different_scales() {
     let (sa, sb) = (q.map(s.inputs[0]).qp.scale, q.map(s.inputs[1]).qp.scale);
     assert!(sb > 3.0 * sa, "scales {sa} and {sb} should differ");
     let QKernel::Add(a) = &s.kernel else { panic!() };
-    assert_eq!(a.clamp.min as i32, q.map(s.output).qp.zero_point, "ReLU folded into the add");
+    assert_eq!(
+        a.clamp.min as i32,
+        q.map(s.output).qp.zero_point,
+        "ReLU folded into the add"
+    );
     assert_ne!(a.a, a.b);
     for (name, w) in worst_steps(&g, &q, &imgs) {
         assert!(w <= 4.0, "map {name}: {w} steps from float");
@@ -151,11 +179,22 @@ fn pooling_max_avg_global_and_depthwise() {
     let imgs = images(&g, 6, 6);
     let q = lower(&g, &calibrate(&g, &imgs), &LowerOptions::default()).unwrap();
     let step = |name: &str| q.steps.iter().find(|s| s.name == name).unwrap();
-    let QKernel::Conv2d(c) = &step("c").kernel else { panic!() };
+    let QKernel::Conv2d(c) = &step("c").kernel else {
+        panic!()
+    };
     let out_qp = q.map(step("c").output).qp;
-    assert_eq!(c.clamp.max as i32, (out_qp.zero_point + (6.0 / out_qp.scale).round() as i32).min(127), "ReLU6 clamp");
-    let QKernel::MaxPool(mp) = &step("mp").kernel else { panic!() };
-    assert!(mp.requant.is_some(), "max pool joining a concat group with another scale must rescale");
+    assert_eq!(
+        c.clamp.max as i32,
+        (out_qp.zero_point + (6.0 / out_qp.scale).round() as i32).min(127),
+        "ReLU6 clamp"
+    );
+    let QKernel::MaxPool(mp) = &step("mp").kernel else {
+        panic!()
+    };
+    assert!(
+        mp.requant.is_some(),
+        "max pool joining a concat group with another scale must rescale"
+    );
     assert_eq!(q.map(step("mp").output).qp, q.map(step("cat").output).qp);
     assert!(matches!(step("ap").kernel, QKernel::AvgPool(ref p) if p.requant.is_some()));
     assert!(matches!(step("gap").kernel, QKernel::GlobalAvgPool(ref p) if p.kernel == [4, 4]));
@@ -172,20 +211,29 @@ fn accumulator_overflow_is_refused_naming_the_layer() {
     let mut n = Net::new(1, 1, n_in, 1);
     n.op("flat", "flatten", "x");
     n.linear("huge_fc", "flat", n_in, 2);
-    n.store.insert("huge_fc.weight", vec![2, n_in], vec![0.01; 2 * n_in]);
+    n.store
+        .insert("huge_fc.weight", vec![2, n_in], vec![0.01; 2 * n_in]);
     let g = n.build("huge_fc");
     let r = common::flat_ranges(&g, -1.0, 1.0);
     let e = lower(&g, &r, &LowerOptions::default()).unwrap_err();
     assert!(matches!(e, LowerError::AccumulatorOverflow { .. }), "{e:?}");
     let msg = e.to_string();
-    assert!(msg.contains("huge_fc") && msg.contains("linear") && msg.contains("[1, 1, 70000]"), "{msg}");
+    assert!(
+        msg.contains("huge_fc") && msg.contains("linear") && msg.contains("[1, 1, 70000]"),
+        "{msg}"
+    );
     // A fan-in of 60 000 fits (255 · 127 · 60 000 < 2^31).
     let mut n = Net::new(1, 1, 60_000, 1);
     n.op("flat", "flatten", "x");
     n.linear("ok_fc", "flat", 60_000, 2);
     n.store.insert("ok_fc.bias", vec![2], vec![0.0; 2]);
     let g = n.build("ok_fc");
-    lower(&g, &common::flat_ranges(&g, -1.0, 1.0), &LowerOptions::default()).unwrap();
+    lower(
+        &g,
+        &common::flat_ranges(&g, -1.0, 1.0),
+        &LowerOptions::default(),
+    )
+    .unwrap();
 }
 
 #[test]
@@ -197,10 +245,19 @@ fn missing_or_bad_ranges_are_refused() {
     let mut r = common::flat_ranges(&g, -1.0, 1.0);
     r.maps.pop();
     let e = lower(&g, &r, &LowerOptions::default()).unwrap_err();
-    assert!(matches!(&e, LowerError::MissingRange { map, .. } if map == "r"), "{e}");
+    assert!(
+        matches!(&e, LowerError::MissingRange { map, .. } if map == "r"),
+        "{e}"
+    );
     let mut r = common::flat_ranges(&g, -1.0, 1.0);
-    r.maps[1] = MapRange { min: 1.0, max: f32::NAN };
-    assert!(matches!(lower(&g, &r, &LowerOptions::default()), Err(LowerError::BadRange { .. })));
+    r.maps[1] = MapRange {
+        min: 1.0,
+        max: f32::NAN,
+    };
+    assert!(matches!(
+        lower(&g, &r, &LowerOptions::default()),
+        Err(LowerError::BadRange { .. })
+    ));
 }
 
 /// Signal-to-quantization-noise ratio of dequantized weights, in dB, of the
@@ -234,19 +291,29 @@ fn per_channel_weights_are_no_worse_than_per_tensor() {
         *v *= [1.0, 0.1, 0.01, 0.001][i / 3];
     }
     let g = n.build("c");
-    let Op::Conv2d(fc) = &g.layers()[0].op else { panic!() };
+    let Op::Conv2d(fc) = &g.layers()[0].op else {
+        panic!()
+    };
     let r = common::flat_ranges(&g, -1.0, 1.0);
     let get = |per_channel| {
         let q = lower(&g, &r, &LowerOptions { per_channel }).unwrap();
-        let QKernel::Conv2d(c) = &q.steps[0].kernel else { panic!() };
+        let QKernel::Conv2d(c) = &q.steps[0].kernel else {
+            panic!()
+        };
         worst_channel_sqnr(&fc.weight.data, &c.weights, &c.weight_scales)
     };
     let (pc, pt) = (get(true), get(false));
     eprintln!("worst-channel weight SQNR: per-channel {pc:.1} dB, per-tensor {pt:.1} dB");
     assert!(pc >= pt);
     // 7-bit symmetric codes of a 12-weight channel: about 6 dB per bit.
-    assert!(pc > 30.0, "per-channel int8 weights should keep every channel, got {pc} dB");
-    assert!(pt < 20.0, "per-tensor scales should crush the 1e-3 channel, got {pt} dB");
+    assert!(
+        pc > 30.0,
+        "per-channel int8 weights should keep every channel, got {pc} dB"
+    );
+    assert!(
+        pt < 20.0,
+        "per-tensor scales should crush the 1e-3 channel, got {pt} dB"
+    );
 }
 
 #[test]
@@ -257,20 +324,30 @@ fn pixel_table_folds_preprocessing_and_input_quantization() {
     n.conv("c", "x", 3, 2, 1, 1, 0, 1);
     let g = n.build("c");
     let mut r = common::flat_ranges(&g, -1.0, 1.0);
-    r.maps[0] = MapRange { min: -2.2, max: 2.7 };
+    r.maps[0] = MapRange {
+        min: -2.2,
+        max: 2.7,
+    };
     let q = lower(&g, &r, &LowerOptions::default()).unwrap();
     let qp = activation_qparams(r.maps[0]);
     assert_eq!(q.map(q.input).qp, qp);
     for c in 0..3 {
         for p in [0u8, 1, 77, 128, 200, 255] {
             let real = (p as f32 / 255.0 - [0.485, 0.456, 0.406][c]) / [0.229, 0.224, 0.225][c];
-            let want = ((real as f64 / qp.scale as f64 + 0.5).floor() + qp.zero_point as f64).clamp(-128.0, 127.0) as i8;
-            assert_eq!(q.pixel_table[c * 256 + p as usize], want, "channel {c} pixel {p}");
+            let want = ((real as f64 / qp.scale as f64 + 0.5).floor() + qp.zero_point as f64)
+                .clamp(-128.0, 127.0) as i8;
+            assert_eq!(
+                q.pixel_table[c * 256 + p as usize],
+                want,
+                "channel {c} pixel {p}"
+            );
         }
     }
     // Pixels through the table and the preprocessed floats give the same codes.
     let pixels: Vec<u8> = (0..12).map(|i| (i * 23 % 256) as u8).collect();
-    let chw: Vec<f32> = (0..12).map(|i| g.input().preprocess(i / 4, pixels[(i % 4) * 3 + i / 4])).collect();
+    let chw: Vec<f32> = (0..12)
+        .map(|i| g.input().preprocess(i / 4, pixels[(i % 4) * 3 + i / 4]))
+        .collect();
     let mut sim = Simulator::new(&q);
     let a = sim.run(SimInput::Pixels(&pixels)).unwrap();
     let in_a = sim.map_hwc(q.input);
@@ -285,15 +362,34 @@ fn simulator_reports_kernel_errors_with_the_step() {
     let mut n = Net::new(3, 4, 4, 1);
     n.conv("broken", "x", 3, 3, 3, 1, 1, 1);
     let g = n.build("broken");
-    let mut q = lower(&g, &common::flat_ranges(&g, -1.0, 1.0), &LowerOptions::default()).unwrap();
+    let mut q = lower(
+        &g,
+        &common::flat_ranges(&g, -1.0, 1.0),
+        &LowerOptions::default(),
+    )
+    .unwrap();
     if let QKernel::Conv2d(c) = &mut q.steps[0].kernel {
         c.bias.truncate(1);
     }
-    let e = Simulator::new(&q).run(SimInput::Codes(&[0; 48])).unwrap_err();
-    assert!(matches!(&e, SimError::Kernel { name, .. } if name == "broken"), "{e}");
+    let e = Simulator::new(&q)
+        .run(SimInput::Codes(&[0; 48]))
+        .unwrap_err();
+    assert!(
+        matches!(&e, SimError::Kernel { name, .. } if name == "broken"),
+        "{e}"
+    );
     assert!(e.to_string().contains("internal error"));
-    let e = Simulator::new(&q).run(SimInput::Codes(&[0; 47])).unwrap_err();
-    assert!(matches!(e, SimError::InputLength { got: 47, expected: 48, .. }));
+    let e = Simulator::new(&q)
+        .run(SimInput::Codes(&[0; 47]))
+        .unwrap_err();
+    assert!(matches!(
+        e,
+        SimError::InputLength {
+            got: 47,
+            expected: 48,
+            ..
+        }
+    ));
     let _ = dequantize(0, q.map(q.input).qp);
     let _ = MapId::INPUT;
 }

@@ -10,7 +10,13 @@ use ingot_compiler::zoo;
 /// Min/max ranges of every map over the given images.
 fn calibrate(g: &ingot_compiler::Graph, images: &[Vec<f32>]) -> Ranges {
     let r = Reference::new(g);
-    let mut maps = vec![MapRange { min: f32::INFINITY, max: f32::NEG_INFINITY }; g.map_count()];
+    let mut maps = vec![
+        MapRange {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY
+        };
+        g.map_count()
+    ];
     for x in images {
         r.run_with(x, |m, v| {
             let e = &mut maps[m.index()];
@@ -21,11 +27,19 @@ fn calibrate(g: &ingot_compiler::Graph, images: &[Vec<f32>]) -> Ranges {
         })
         .unwrap();
     }
-    Ranges { graph: g.name().into(), graph_hash: String::new(), method: "minmax".into(), images: images.len(), maps }
+    Ranges {
+        graph: g.name().into(),
+        graph_hash: String::new(),
+        method: "minmax".into(),
+        images: images.len(),
+        maps,
+    }
 }
 
 fn argmax(v: &[f32]) -> usize {
-    v.iter().enumerate().fold(0, |b, (i, &a)| if a > v[b] { i } else { b })
+    v.iter()
+        .enumerate()
+        .fold(0, |b, (i, &a)| if a > v[b] { i } else { b })
 }
 
 /// Lowers `net`, calibrated and checked on the same random images, and
@@ -47,7 +61,10 @@ fn check(net: &zoo::Net, n: usize) -> (f32, usize, usize) {
         }
         agree += usize::from(argmax(&deq) == argmax(&float));
     }
-    eprintln!("{}: worst output error {worst:.2} steps, arg-max {agree}/{n}", g.name());
+    eprintln!(
+        "{}: worst output error {worst:.2} steps, arg-max {agree}/{n}",
+        g.name()
+    );
     (worst, agree, n)
 }
 
@@ -64,7 +81,11 @@ fn zoo_networks_simulate_close_to_the_float_reference() {
     ] {
         let (worst, agree, n) = check(&net, 4);
         assert!(worst <= 4.0, "{}: {worst} steps", net.file.name);
-        assert!(agree + 1 >= n, "{}: arg-max agrees on {agree}/{n}", net.file.name);
+        assert!(
+            agree + 1 >= n,
+            "{}: arg-max agrees on {agree}/{n}",
+            net.file.name
+        );
     }
 }
 
@@ -80,7 +101,11 @@ fn pre_activation_3x3_convolution_pads_with_the_transformed_zero() {
         if let QKernel::Conv2d(c) = &s.kernel {
             if c.transform.is_some() && c.kernel == [3, 3] {
                 assert_ne!(c.input_zp, q.map(s.inputs[0]).qp.zero_point, "{}", s.name);
-                assert_eq!(c.input_zp, -128, "{}: a ReLU domain's zero is code -128", s.name);
+                assert_eq!(
+                    c.input_zp, -128,
+                    "{}: a ReLU domain's zero is code -128",
+                    s.name
+                );
                 n += 1;
             }
         }
@@ -92,7 +117,9 @@ fn zoo_ranges(g: &ingot_compiler::Graph) -> Ranges {
     let net_inputs: Vec<Vec<f32>> = (0..2u64)
         .map(|s| {
             let n = g.shape(ingot_compiler::MapId::INPUT).len();
-            (0..n).map(|i| (((i as u64 * 2654435761 + s) % 1000) as f32 / 500.0) - 1.0).collect()
+            (0..n)
+                .map(|i| (((i as u64 * 2654435761 + s) % 1000) as f32 / 500.0) - 1.0)
+                .collect()
         })
         .collect();
     calibrate(g, &net_inputs)
@@ -105,17 +132,37 @@ fn fusion_ram_saved_on_zoo_dense_networks() {
         graph_hash: String::new(),
         method: "synthetic".into(),
         images: 0,
-        maps: vec![MapRange { min: -2.0, max: 2.0 }; g.map_count()],
+        maps: vec![
+            MapRange {
+                min: -2.0,
+                max: 2.0
+            };
+            g.map_count()
+        ],
     };
     let g = zoo::dense_small(1).build();
     let s = fusion_savings(&lower(&g, &synthetic(&g), &LowerOptions::default()).unwrap());
-    eprintln!("{} {}: {} fused, largest avoided map {} B, total {} B", g.name(), g.input().shape, s.fused, s.largest, s.total);
+    eprintln!(
+        "{} {}: {} fused, largest avoided map {} B, total {} B",
+        g.name(),
+        g.input().shape,
+        s.fused,
+        s.largest,
+        s.total
+    );
     // 8 dense layers + 1 transition; largest: 16 + 4·8 = 48 channels at 64×64.
     assert_eq!((s.fused, s.largest), (9, 48 * 64 * 64));
 
     let g = zoo::densenet121(1).build();
     let s = fusion_savings(&lower(&g, &synthetic(&g), &LowerOptions::default()).unwrap());
-    eprintln!("{} {}: {} fused, largest avoided map {} B, total {} B", g.name(), g.input().shape, s.fused, s.largest, s.total);
+    eprintln!(
+        "{} {}: {} fused, largest avoided map {} B, total {} B",
+        g.name(),
+        g.input().shape,
+        s.fused,
+        s.largest,
+        s.total
+    );
     // 58 dense layers + 3 transitions; largest: the first transition's input,
     // 256 channels at 56×56 (Huang et al. 2017, table 1).
     assert_eq!((s.fused, s.largest), (61, 256 * 56 * 56));

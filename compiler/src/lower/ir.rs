@@ -319,7 +319,7 @@ impl QGraph {
             written[s.output.index()] = true;
             let out = self.map(s.output);
             for m in s.inputs.iter().map(|&m| self.map(m)) {
-                if !(-128..=127).contains(&m.qp.zero_point) || !(m.qp.scale > 0.0) {
+                if !(-128..=127).contains(&m.qp.zero_point) || m.qp.scale.is_nan() || m.qp.scale <= 0.0 {
                     return Err(format!("map `{}` has invalid quantization {:?}", m.name, m.qp));
                 }
             }
@@ -334,14 +334,13 @@ impl QGraph {
                         return Err(format!("step `{}`: convolution tensors do not match its shape", s.name));
                     }
                 }
-                QKernel::Linear(l) => {
+                QKernel::Linear(l)
                     if l.weights.len() != l.out_features * l.in_features
                         || l.bias.len() != l.out_features
                         || l.requant.len() != l.out_features
-                        || out.shape.len() != l.out_features
-                    {
-                        return Err(format!("step `{}`: linear tensors do not match its shape", s.name));
-                    }
+                        || out.shape.len() != l.out_features =>
+                {
+                    return Err(format!("step `{}`: linear tensors do not match its shape", s.name));
                 }
                 QKernel::Concat => {
                     let c: usize = s.inputs.iter().map(|&m| self.map(m).shape.c).sum();
