@@ -20,12 +20,15 @@ struct Cli {
 enum Command {
     /// Show a graph's layers, shapes, parameters and multiply-accumulates.
     Inspect(cmd::inspect::Args),
+    /// Plan the feature-map arena: order, offsets, lower bound, budget.
+    Plan(cmd::plan::Args),
 }
 
 fn main() {
     let cli = Cli::parse();
     let result = match cli.command {
         Command::Inspect(args) => cmd::inspect::run(&args),
+        Command::Plan(args) => cmd::plan::run(&args),
     };
     if let Err(e) = result {
         eprintln!("ingot: error: {e:#}");

@@ -24,7 +24,12 @@ fn row(q: &QGraph, svg: Option<&std::path::Path>) {
     let p = p.expect("ran");
     plan::verify::verify(q, &p).expect("verified");
     if let Some(dir) = svg {
-        plan::svg::write(q, &p, &dir.join(format!("{}.svg", q.name))).expect("svg written");
+        plan::svg::write(
+            q,
+            &p,
+            &dir.join(format!("{}.svg", q.name.replace('/', "_"))),
+        )
+        .expect("svg written");
     }
     println!(
         "| {:<20} | {:>4} | {:>5} | {:>10} | {:>10} | {:>6.4} | {:>11} | {:>10} | {:>6.1}% | {:>10} | {:>10} | {:>9.2} |",
@@ -47,7 +52,7 @@ fn main() {
     println!("| network              | maps | steps |      arena |  lower bd. |  ratio |       naive |    copying | in-pl/cp | peak file  | peak order |   plan ms |");
     println!("|----------------------|-----:|------:|-----------:|-----------:|-------:|------------:|-----------:|---------:|-----------:|-----------:|----------:|");
     let svg = std::env::args().nth(1).map(std::path::PathBuf::from);
-    for q in synth::test_set() {
-        row(&q, svg.as_deref());
+    for q in synth::zoo_lowered().iter().chain(&synth::test_set()) {
+        row(q, svg.as_deref());
     }
 }

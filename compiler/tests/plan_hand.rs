@@ -106,8 +106,10 @@ fn three_layer_chain_by_hand() {
 /// 128 (overlaps only the region), g in the gap 0..128 below t → 0.
 ///
 /// Copying every concat instead: x0 [0,5], cat1 [1,2], x1 [2,5], cat2
-/// (96 B) [3,4], x2 [4,5], cat3 [5,6], t [6,7]. At t5: x0 64 + x1 32 + x2 32
-/// + cat3 128 = 256, the peak. In place is 192 / 256 = 75 % of it.
+/// (96 B) [3,4], x2 [4,5], cat3 [5,6], t [6,7]. At t5, x0, x1, x2 and cat3
+/// are alive: 64 + 32 + 32 + 128 = 256, the peak. In place is
+/// 192 / 256 = 75 % of it.
+///
 /// Naive: 32 + 64 + 64 + 32 + 96 + 32 + 128 + 64 + 4 = 516.
 #[test]
 fn dense_block_by_hand() {

@@ -144,9 +144,9 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
             }
         }
         let mut by_root: HashMap<usize, Vec<usize>> = HashMap::new();
-        for i in 0..live.len() {
+        for (i, &s) in live.iter().enumerate() {
             let r = find(&mut parent, i);
-            by_root.entry(r).or_default().push(live[i]);
+            by_root.entry(r).or_default().push(s);
         }
         let mut found: Vec<(usize, Vec<usize>, Vec<QMapId>)> = Vec::new();
         let mut keys: Vec<usize> = by_root.keys().copied().collect();

@@ -443,3 +443,41 @@ pub fn test_set() -> Vec<QGraph> {
         branchy(6),
     ]
 }
+
+/// The project's zoo networks (`crate::zoo`), lowered with one synthetic
+/// range for every map (`[-4, 4]`): the planner needs only shapes, kinds
+/// and edges, so no calibration is run.
+pub fn zoo_lowered() -> Vec<QGraph> {
+    use crate::calibrate::{MapRange, Ranges};
+    use crate::lower::{lower, LowerOptions};
+    use crate::zoo;
+    let nets = [
+        zoo::plain_stack(&zoo::PlainStackConfig::default(), 1),
+        zoo::dense_small(1),
+        zoo::residual(&zoo::ResidualConfig::default(), 1),
+        zoo::depthwise_separable(&zoo::DepthwiseConfig::default(), 1),
+        zoo::densenet121(1),
+    ];
+    nets.iter()
+        .map(|n| {
+            let g = n.build();
+            let r = Ranges {
+                graph: g.name().into(),
+                graph_hash: String::new(),
+                method: "synthetic".into(),
+                images: 0,
+                maps: vec![
+                    MapRange {
+                        min: -4.0,
+                        max: 4.0
+                    };
+                    g.map_count()
+                ],
+            };
+            let mut q = lower(&g, &r, &LowerOptions::default())
+                .unwrap_or_else(|e| panic!("lowering `{}`: {e}", g.name()));
+            q.name = format!("zoo/{}", q.name);
+            q
+        })
+        .collect()
+}

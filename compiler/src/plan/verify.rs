@@ -121,8 +121,8 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
         (s.h * s.w, s.c)
     };
     // 2. In the arena.
-    for m in 0..nm {
-        if def[m].is_none() {
+    for (m, d) in def.iter().enumerate() {
+        if d.is_none() {
             continue;
         }
         let v = plan.map_views[m];

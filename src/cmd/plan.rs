@@ -1,0 +1,81 @@
+//! `ingot plan GRAPH.json [--ranges R.json | --images DIR] [--target T.toml] [--svg OUT.svg] [--json]`.
+
+use anyhow::{bail, Context};
+use ingot_compiler::calibrate::{MapRange, Ranges};
+use ingot_compiler::lower::{lower, LowerOptions};
+use ingot_compiler::plan::{self, PlanOptions, Target};
+use std::path::PathBuf;
+
+/// Arguments of `ingot plan`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The graph file (`ingot.graph.v1` JSON); its weights file is read too.
+    pub graph: PathBuf,
+    /// Calibrated ranges (`ingot.ranges.v1`). Without it (and without
+    /// `--images`) every map gets the same synthetic range: the memory plan
+    /// depends only on shapes, so it is the same, but the flash figures of
+    /// the budget are then those of an uncalibrated lowering.
+    #[arg(long, conflicts_with = "images")]
+    pub ranges: Option<PathBuf>,
+    /// Calibrate on the images of this folder first.
+    #[arg(long)]
+    pub images: Option<PathBuf>,
+    /// Target profile (`targets/*.toml`) for the RAM/flash budget.
+    #[arg(long)]
+    pub target: Option<PathBuf>,
+    /// Write a picture of the plan.
+    #[arg(long)]
+    pub svg: Option<PathBuf>,
+    /// Print the report as JSON instead of text.
+    #[arg(long)]
+    pub json: bool,
+}
+
+/// Lowers, plans, prints; fails when the plan does not fit the target.
+pub fn run(args: &Args) -> anyhow::Result<()> {
+    let g = ingot_compiler::load(&args.graph)?;
+    let ranges = match (&args.ranges, &args.images) {
+        (Some(p), _) => {
+            let hash =
+                ingot_compiler::calibrate::ranges::graph_hash(&g).context("hashing the graph")?;
+            Ranges::load(&g, p, Some(&hash))?
+        }
+        (None, Some(_)) => {
+            bail!("--images: calibration from images is not available in this build; pass --ranges")
+        }
+        (None, None) => Ranges {
+            graph: g.name().into(),
+            graph_hash: String::new(),
+            method: "synthetic".into(),
+            images: 0,
+            maps: vec![
+                MapRange {
+                    min: -4.0,
+                    max: 4.0
+                };
+                g.map_count()
+            ],
+        },
+    };
+    let q = lower(&g, &ranges, &LowerOptions::default())?;
+    let p = plan::plan(&q, &PlanOptions::default())?;
+    let target = args.target.as_ref().map(Target::load).transpose()?;
+    let report = plan::report(&q, &p, target.as_ref());
+    if let Some(svg) = &args.svg {
+        plan::svg::write(&q, &p, svg).map_err(anyhow::Error::msg)?;
+    }
+    if args.json {
+        println!(
+            "{}",
+            serde_json::to_string_pretty(&report).context("serialising the report")?
+        );
+    } else {
+        print!("{report}");
+    }
+    if let Some(b) = &report.budget {
+        if !b.fits {
+            bail!("does not fit {}: {}", b.target, b.over.join("; "));
+        }
+    }
+    Ok(())
+}
