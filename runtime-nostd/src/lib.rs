@@ -126,7 +126,8 @@
 //!
 //! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
 //! [`global_avg_pool`], [`add`], [`quantize_pixels`], [`copy_in`],
-//! [`copy_out`], [`argmax`], [`dequantize`].
+//! [`copy_out`], [`argmax`], [`dequantize`], [`copy_channels`],
+//! [`channel_transform`].
 #![no_std]
 #![forbid(unsafe_code)]
 #![deny(missing_docs)]
@@ -138,6 +139,7 @@ mod error;
 mod io;
 mod linear;
 mod map;
+mod mapops;
 mod pool;
 mod requant;
 mod transform;
@@ -148,6 +150,7 @@ pub use error::Error;
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
 pub use linear::linear;
 pub use map::MapRef;
+pub use mapops::{channel_transform, copy_channels};
 pub use pool::{avg_pool2d, div_round, global_avg_pool, max_pool2d, PoolQuant};
 pub use requant::{
     acc_fits, acc_worst_case, sat_i8, OutputQuant, Requant, MAX_TOTAL_SHIFT, MIN_TOTAL_SHIFT,
