@@ -8,8 +8,11 @@ pub mod calibrate;
 pub mod codegen;
 pub mod frontend;
 pub mod graph;
+pub mod inspect;
 pub mod lower;
+pub mod reference;
 pub mod util;
+pub mod zoo;
 
 pub use frontend::{load, LoadError};
 
