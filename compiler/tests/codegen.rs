@@ -348,7 +348,7 @@ fn hostile_names_compile_and_behave_like_plain() {
     // no item other than the ones the generator writes.
     let file = syn::parse_file(&text).unwrap();
     let allowed = [
-        "MODEL_NAME", "INPUT_SHAPE", "INPUT_LEN", "OUTPUT_LEN", "ARENA_BYTES", "PATCH_BYTES", "SCRATCH_BYTES",
+        "MODEL_NAME", "INPUT_SHAPE", "INPUT_LEN", "OUTPUT_LEN", "ARENA_BYTES", "PATCH_LEN", "PATCH_BYTES", "SCRATCH_BYTES",
         "INPUT_SCALE", "INPUT_ZERO_POINT", "OUTPUT_SCALE", "OUTPUT_ZERO_POINT", "SOFTMAX_DROPPED", "LABELS",
         "MODEL_HASH", "INGOT_VERSION", "STEP_COUNT", "STEP_NAMES", "STEP_MAP_NAMES", "Scratch", "run", "TRACE_BYTES",
         "run_traced", "quantize_pixels", "argmax", "dequantize", "ok", "forward", "ingot_data",

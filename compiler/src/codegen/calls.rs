@@ -165,7 +165,7 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
 }
 
 /// Runs one call on the arena.
-pub fn run_call(call: &Call<'_>, arena: &mut [i8], patch: &mut [i8]) -> Result<(), ingot_rt::Error> {
+pub fn run_call(call: &Call<'_>, arena: &mut [i8], patch: &mut [i16]) -> Result<(), ingot_rt::Error> {
     match call {
         Call::Conv { input, output, conv, params } => {
             let t = conv.transform.as_ref().map(rt_transform);
@@ -206,7 +206,7 @@ pub fn execute(
     trace: &mut dyn FnMut(StepId, &[i8]),
 ) -> Result<Vec<i8>, ExecError> {
     let mut arena = vec![0i8; s.arena_bytes];
-    let mut patch = vec![0i8; s.patch_bytes];
+    let mut patch = vec![0i16; s.patch_bytes / 2];
     let first = calls.first().map(|c| c.step).unwrap_or(StepId(0));
     ingot_rt::copy_in(input, &mut arena, map_ref(q, s, q.input)).map_err(|error| ExecError { step: first, error })?;
     for sc in calls {

@@ -384,7 +384,7 @@ pub fn module(ctx: &Ctx<'_>) -> String {
     let in_len = us(input.shape.len());
     let out_len = us(output.shape.len());
     let arena = us(s.arena_bytes.max(1));
-    let patch = us(s.patch_bytes);
+    let patch = us(s.patch_bytes / 2);
     let in_scale = Literal::f32_suffixed(input.qp.scale);
     let out_scale = Literal::f32_suffixed(output.qp.scale);
     let in_zp = int(input.qp.zero_point as i64);
@@ -442,8 +442,10 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         pub const OUTPUT_LEN: usize = #out_len;
         /// Bytes of the feature-map arena inside [`Scratch`].
         pub const ARENA_BYTES: usize = #arena;
-        /// Bytes of the convolution patch buffer inside [`Scratch`].
-        pub const PATCH_BYTES: usize = #patch;
+        /// Length in `i16` of the convolution patch buffer inside [`Scratch`].
+        pub const PATCH_LEN: usize = #patch;
+        /// Bytes of the convolution patch buffer.
+        pub const PATCH_BYTES: usize = 2 * PATCH_LEN;
         /// RAM needed by [`Scratch`] (arena plus patch).
         pub const SCRATCH_BYTES: usize = ARENA_BYTES + PATCH_BYTES;
         /// Real value of one input step: `real = INPUT_SCALE * (q - INPUT_ZERO_POINT)`.
@@ -477,13 +479,13 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         /// `main`. Its contents between calls do not matter.
         pub struct Scratch {
             arena: [i8; ARENA_BYTES],
-            patch: [i8; PATCH_BYTES],
+            patch: [i16; PATCH_LEN],
         }
 
         impl Scratch {
             /// Zeroed scratch memory; usable in a `static` initializer.
             pub const fn new() -> Self {
-                Scratch { arena: [0; ARENA_BYTES], patch: [0; PATCH_BYTES] }
+                Scratch { arena: [0; ARENA_BYTES], patch: [0; PATCH_LEN] }
             }
         }
 
@@ -560,7 +562,7 @@ pub fn module(ctx: &Ctx<'_>) -> String {
 
         /// The schedule: every kernel call in order, `trace` after each step.
         #[allow(unused_variables)]
-        fn forward<T: FnMut(usize, ingot_rt::MapRef, &[i8])>(arena: &mut [i8], patch: &mut [i8], trace: &mut T) {
+        fn forward<T: FnMut(usize, ingot_rt::MapRef, &[i8])>(arena: &mut [i8], patch: &mut [i16], trace: &mut T) {
             use ingot_data::*;
             #body
         }

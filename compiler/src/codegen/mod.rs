@@ -9,8 +9,8 @@
 //! ```text
 //! pub const MODEL_NAME: &str;            pub const INPUT_SHAPE: [usize; 3]; // H, W, C
 //! pub const INPUT_LEN: usize;            pub const OUTPUT_LEN: usize;
-//! pub const ARENA_BYTES: usize;          pub const PATCH_BYTES: usize;
-//! pub const SCRATCH_BYTES: usize;
+//! pub const ARENA_BYTES: usize;          pub const PATCH_LEN: usize; // i16
+//! pub const PATCH_BYTES: usize;          pub const SCRATCH_BYTES: usize;
 //! pub const INPUT_SCALE: f32;            pub const INPUT_ZERO_POINT: i32;
 //! pub const OUTPUT_SCALE: f32;           pub const OUTPUT_ZERO_POINT: i32;
 //! pub const SOFTMAX_DROPPED: bool;       pub const LABELS: [&str; N];

@@ -29,7 +29,7 @@ pub struct Schedule {
     pub copy_concats: Vec<StepId>,
     /// Arena size in bytes.
     pub arena_bytes: usize,
-    /// Convolution patch buffer size in bytes.
+    /// Convolution patch buffer size in bytes (`i16` elements × 2).
     pub patch_bytes: usize,
 }
 
@@ -56,13 +56,14 @@ impl Schedule {
     }
 }
 
-/// The patch size the convolutions of `q` need: the largest
-/// `ingot_rt::conv_patch_len` over all convolution steps (0 without any).
+/// The patch size in bytes the convolutions of `q` need: twice the largest
+/// `ingot_rt::conv_patch_len` (in `i16`) over all convolution steps (0
+/// without any).
 pub fn min_patch_bytes(q: &QGraph) -> usize {
     q.steps
         .iter()
         .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => Some(ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels)),
+            QKernel::Conv2d(c) => Some(2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels)),
             _ => None,
         })
         .max()
