@@ -20,12 +20,15 @@ struct Cli {
 enum Command {
     /// Show a graph's layers, shapes, parameters and multiply-accumulates.
     Inspect(cmd::inspect::Args),
+    /// Compile a graph into a no_std Rust module and its weights file.
+    Build(cmd::build::Args),
 }
 
 fn main() {
     let cli = Cli::parse();
     let result = match cli.command {
         Command::Inspect(args) => cmd::inspect::run(&args),
+        Command::Build(args) => cmd::build::run(&args),
     };
     if let Err(e) = result {
         eprintln!("ingot: error: {e:#}");
