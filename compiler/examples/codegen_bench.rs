@@ -29,7 +29,11 @@ fn cargo(dir: &Path, target: &Path, args: &[&str]) -> std::process::Output {
         .env("CARGO_TARGET_DIR", target)
         .output()
         .expect("cargo runs");
-    assert!(out.status.success(), "cargo {args:?} failed:\n{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "cargo {args:?} failed:\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     out
 }
 
@@ -94,10 +98,20 @@ fn float_ips(g: &ingot_compiler::Graph, input: &[f32], n: usize) -> f64 {
     n as f64 / t.elapsed().as_secs_f64()
 }
 
-fn bench(name: &'static str, q: &QGraph, float: &ingot_compiler::zoo::Net, runs: usize, root: &Path, grind: bool) -> Row {
+fn bench(
+    name: &'static str,
+    q: &QGraph,
+    float: &ingot_compiler::zoo::Net,
+    runs: usize,
+    root: &Path,
+    grind: bool,
+) -> Row {
     let dir = root.join("crate");
     let target = root.join("target");
-    let rt = Path::new(env!("CARGO_MANIFEST_DIR")).join("../runtime-nostd").canonicalize().unwrap();
+    let rt = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../runtime-nostd")
+        .canonicalize()
+        .unwrap();
     put(
         &dir.join("Cargo.toml"),
         format!(
@@ -106,31 +120,74 @@ fn bench(name: &'static str, q: &QGraph, float: &ingot_compiler::zoo::Net, runs:
         )
         .as_bytes(),
     );
-    put(&dir.join("src/lib.rs"), b"#![no_std]\n#![forbid(unsafe_code)]\npub mod m {\n    include!(\"m.rs\");\n}\n");
+    put(
+        &dir.join("src/lib.rs"),
+        b"#![no_std]\n#![forbid(unsafe_code)]\npub mod m {\n    include!(\"m.rs\");\n}\n",
+    );
     put(&dir.join("src/bin/speed.rs"), SPEED.as_bytes());
     let s = Schedule::naive(q);
     let mut times = [0.0; 2];
     let mut generated = None;
-    for (k, mode) in [WeightsMode::Literal, WeightsMode::IncludeBytes].into_iter().enumerate() {
-        let g = generate(q, &s, &GenOptions { module: "m".into(), weights: mode, ..GenOptions::default() }).unwrap();
+    for (k, mode) in [WeightsMode::Literal, WeightsMode::IncludeBytes]
+        .into_iter()
+        .enumerate()
+    {
+        let g = generate(
+            q,
+            &s,
+            &GenOptions {
+                module: "m".into(),
+                weights: mode,
+                ..GenOptions::default()
+            },
+        )
+        .unwrap();
         put(&dir.join("src/m.rs"), g.module.as_bytes());
         put(&dir.join("src/m.weights.bin"), &g.weights);
         // Warm: dependencies built, then time the module crate alone.
-        cargo(&dir, &target, &["build", "--release", "--offline", "--lib", "-p", "ingot-rt"]);
+        cargo(
+            &dir,
+            &target,
+            &["build", "--release", "--offline", "--lib", "-p", "ingot-rt"],
+        );
         let t = Instant::now();
         cargo(&dir, &target, &["build", "--release", "--offline", "--lib"]);
         times[k] = t.elapsed().as_secs_f64();
         generated = Some(g);
     }
     let g = generated.unwrap();
-    cargo(&dir, &target, &["build", "--release", "--offline", "--bin", "speed"]);
+    cargo(
+        &dir,
+        &target,
+        &["build", "--release", "--offline", "--bin", "speed"],
+    );
     let bin = target.join("release/speed");
     let out = Command::new(&bin).arg(runs.to_string()).output().unwrap();
-    let ips: f64 = String::from_utf8_lossy(&out.stdout).split_whitespace().next().unwrap().parse().unwrap();
-    let instr = if grind { Some(callgrind(&bin, 3).unwrap_or(0).saturating_sub(callgrind(&bin, 1).unwrap_or(0)) / 2) } else { None };
+    let ips: f64 = String::from_utf8_lossy(&out.stdout)
+        .split_whitespace()
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap();
+    let instr = if grind {
+        Some(
+            callgrind(&bin, 3)
+                .unwrap_or(0)
+                .saturating_sub(callgrind(&bin, 1).unwrap_or(0))
+                / 2,
+        )
+    } else {
+        None
+    };
     let fg = float.build();
     let fin = float.random_input(1);
-    let sections = g.report.weights_sections.iter().map(|(s, n)| format!("{s:?} {n}")).collect::<Vec<_>>().join(", ");
+    let sections = g
+        .report
+        .weights_sections
+        .iter()
+        .map(|(s, n)| format!("{s:?} {n}"))
+        .collect::<Vec<_>>()
+        .join(", ");
     Row {
         name,
         params: g.report.params,
@@ -148,10 +205,27 @@ fn bench(name: &'static str, q: &QGraph, float: &ingot_compiler::zoo::Net, runs:
 
 fn main() {
     let quick = std::env::args().any(|a| a == "--quick");
-    let root: PathBuf = std::env::var_os("CARGO_TARGET_DIR").map(PathBuf::from).unwrap_or_else(|| "target".into()).join("codegen-bench");
-    let mut rows = vec![bench("demo-sized dense (1x64x64)", &testnets::demo_sized(), &ingot_compiler::zoo::dense_small(1), 300, &root, true)];
+    let root: PathBuf = std::env::var_os("CARGO_TARGET_DIR")
+        .map(PathBuf::from)
+        .unwrap_or_else(|| "target".into())
+        .join("codegen-bench");
+    let mut rows = vec![bench(
+        "demo-sized dense (1x64x64)",
+        &testnets::demo_sized(),
+        &ingot_compiler::zoo::dense_small(1),
+        300,
+        &root,
+        true,
+    )];
     if !quick {
-        rows.push(bench("densenet121 (3x224x224)", &testnets::densenet121(224), &ingot_compiler::zoo::densenet121(1), 2, &root, false));
+        rows.push(bench(
+            "densenet121 (3x224x224)",
+            &testnets::densenet121(224),
+            &ingot_compiler::zoo::densenet121(1),
+            2,
+            &root,
+            false,
+        ));
     }
     println!("| network | params | rustc include_bytes (s) | rustc literal (s) | int8 img/s | f32 ref img/s | ratio | instr/img | weights bytes | .text module | .text ingot-rt |");
     println!("|---|---:|---:|---:|---:|---:|---:|---:|---:|---:|---:|");

@@ -7,7 +7,9 @@
 //!
 //! All networks go into one generated crate, built once per test run.
 
-use ingot_compiler::codegen::{self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightsMode};
+use ingot_compiler::codegen::{
+    self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightsMode,
+};
 use ingot_compiler::lower::{QGraph, QKernel};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -51,7 +53,12 @@ struct Net {
 impl Net {
     fn new(module: &str, q: QGraph) -> Net {
         let schedule = Schedule::naive(&q);
-        Net { module: module.into(), q, schedule, weights: WeightsMode::IncludeBytes }
+        Net {
+            module: module.into(),
+            q,
+            schedule,
+            weights: WeightsMode::IncludeBytes,
+        }
     }
 
     /// The interpreter's output and trace for every input.
@@ -81,7 +88,10 @@ fn inplace_schedule(q: &QGraph) -> Schedule {
     let mut views: Vec<Option<MapView>> = vec![None; q.maps.len()];
     let mut at = 0;
     let mut fresh = |c: usize, len: usize| {
-        let v = MapView { offset: at, stride: c };
+        let v = MapView {
+            offset: at,
+            stride: c,
+        };
         at += len;
         v
     };
@@ -93,7 +103,10 @@ fn inplace_schedule(q: &QGraph) -> Schedule {
         let ov = *views[st.output.index()].get_or_insert_with(|| fresh(o.c, o.len()));
         let mut c0 = 0;
         for &m in &st.inputs {
-            views[m.index()] = Some(MapView { offset: ov.offset + c0, stride: ov.stride });
+            views[m.index()] = Some(MapView {
+                offset: ov.offset + c0,
+                stride: ov.stride,
+            });
             c0 += q.map(m).shape.c;
         }
     }
@@ -128,7 +141,10 @@ fn nets() -> Vec<Net> {
 }
 
 fn rt_path() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("../runtime-nostd").canonicalize().unwrap()
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../runtime-nostd")
+        .canonicalize()
+        .unwrap()
 }
 
 /// Writes `bytes` only when they differ, keeping mtimes (and cargo's cache)
@@ -150,7 +166,9 @@ struct Built {
 }
 
 fn hex_decode(s: &str) -> Vec<i8> {
-    (0..s.len() / 2).map(|i| u8::from_str_radix(&s[2 * i..2 * i + 2], 16).unwrap() as i8).collect()
+    (0..s.len() / 2)
+        .map(|i| u8::from_str_radix(&s[2 * i..2 * i + 2], 16).unwrap() as i8)
+        .collect()
 }
 
 fn build() -> &'static Result<Built, String> {
@@ -286,7 +304,11 @@ fn check_net(module: &str) {
     for (k, ((out, trace, am), (wout, wtrace))) in got.iter().zip(&want).enumerate() {
         assert_eq!(trace.len(), wtrace.len(), "{module} input {k}: step count");
         for (key, m) in wtrace {
-            assert_eq!(&trace[key], m, "{module} input {k}: map of step {} differs", key.1);
+            assert_eq!(
+                &trace[key], m,
+                "{module} input {k}: map of step {} differs",
+                key.1
+            );
         }
         assert_eq!(out, wout, "{module} input {k}: output differs");
         assert_eq!(*am, ingot_rt::argmax(wout));
@@ -295,10 +317,18 @@ fn check_net(module: &str) {
     let varied = (0..want[0].1.len()).any(|s| want[2].1[&(2, s)] != want[3].1[&(3, s)]);
     assert!(varied, "{module}: all inputs give identical maps");
     // The pixel helper applies the table.
-    let px: Vec<u8> = (0..net.q.map(net.q.input).shape.len()).map(|i| (i * 7 % 256) as u8).collect();
+    let px: Vec<u8> = (0..net.q.map(net.q.input).shape.len())
+        .map(|i| (i * 7 % 256) as u8)
+        .collect();
     let mut q = vec![0i8; px.len()];
     let s = net.q.map(net.q.input).shape;
-    ingot_rt::quantize_pixels(&px, &mut q, ingot_rt::MapRef::new(0, s.h, s.w, s.c), &net.q.pixel_table).unwrap();
+    ingot_rt::quantize_pixels(
+        &px,
+        &mut q,
+        ingot_rt::MapRef::new(0, s.h, s.w, s.c),
+        &net.q.pixel_table,
+    )
+    .unwrap();
     assert_eq!(b.pixels[module], q);
 }
 
@@ -333,7 +363,9 @@ fn inplace_concat_schedule_matches_interpreter_and_naive() {
     // And the in-place module emits no copy for its concatenations.
     let text = std::fs::read_to_string(b.dir.join("src/dense_inplace.rs")).unwrap();
     assert!(!text.contains("copy_channels"));
-    assert!(std::fs::read_to_string(b.dir.join("src/dense.rs")).unwrap().contains("copy_channels"));
+    assert!(std::fs::read_to_string(b.dir.join("src/dense.rs"))
+        .unwrap()
+        .contains("copy_channels"));
 }
 
 #[test]
@@ -348,10 +380,35 @@ fn hostile_names_compile_and_behave_like_plain() {
     // no item other than the ones the generator writes.
     let file = syn::parse_file(&text).unwrap();
     let allowed = [
-        "MODEL_NAME", "INPUT_SHAPE", "INPUT_LEN", "OUTPUT_LEN", "ARENA_BYTES", "PATCH_LEN", "PATCH_BYTES", "SCRATCH_BYTES",
-        "INPUT_SCALE", "INPUT_ZERO_POINT", "OUTPUT_SCALE", "OUTPUT_ZERO_POINT", "SOFTMAX_DROPPED", "LABELS",
-        "MODEL_HASH", "INGOT_VERSION", "STEP_COUNT", "STEP_NAMES", "STEP_MAP_NAMES", "Scratch", "run", "TRACE_BYTES",
-        "run_traced", "quantize_pixels", "argmax", "dequantize", "ok", "forward", "ingot_data",
+        "MODEL_NAME",
+        "INPUT_SHAPE",
+        "INPUT_LEN",
+        "OUTPUT_LEN",
+        "ARENA_BYTES",
+        "PATCH_LEN",
+        "PATCH_BYTES",
+        "SCRATCH_BYTES",
+        "INPUT_SCALE",
+        "INPUT_ZERO_POINT",
+        "OUTPUT_SCALE",
+        "OUTPUT_ZERO_POINT",
+        "SOFTMAX_DROPPED",
+        "LABELS",
+        "MODEL_HASH",
+        "INGOT_VERSION",
+        "STEP_COUNT",
+        "STEP_NAMES",
+        "STEP_MAP_NAMES",
+        "Scratch",
+        "run",
+        "TRACE_BYTES",
+        "run_traced",
+        "quantize_pixels",
+        "argmax",
+        "dequantize",
+        "ok",
+        "forward",
+        "ingot_data",
     ];
     for item in &file.items {
         let name = match item {
@@ -360,14 +417,23 @@ fn hostile_names_compile_and_behave_like_plain() {
             syn::Item::Fn(i) => i.sig.ident.to_string(),
             syn::Item::Mod(i) => i.ident.to_string(),
             syn::Item::Impl(_) => continue,
-            other => panic!("unexpected item {:?}", quote::ToTokens::to_token_stream(other).to_string()),
+            other => panic!(
+                "unexpected item {:?}",
+                quote::ToTokens::to_token_stream(other).to_string()
+            ),
         };
         assert!(allowed.contains(&name.as_str()), "unexpected item `{name}`");
     }
     for line in text.lines().filter(|l| l.contains("panic!(\"boom\")")) {
-        assert!(line.trim_start().starts_with("///"), "a name reached the code unescaped: {line}");
+        assert!(
+            line.trim_start().starts_with("///"),
+            "a name reached the code unescaped: {line}"
+        );
     }
-    assert!(text.contains(r#"panic!(\"boom\")"#), "the name should appear escaped");
+    assert!(
+        text.contains(r#"panic!(\"boom\")"#),
+        "the name should appear escaped"
+    );
 }
 
 #[test]
@@ -384,19 +450,37 @@ fn literal_arrays_behave_like_include_bytes() {
 #[test]
 fn generated_crate_builds_for_thumbv7em_without_std() {
     let b = built();
-    let sysroot = Command::new("rustc").args(["--print", "sysroot"]).output().unwrap();
+    let sysroot = Command::new("rustc")
+        .args(["--print", "sysroot"])
+        .output()
+        .unwrap();
     let sysroot = String::from_utf8_lossy(&sysroot.stdout).trim().to_string();
-    if !Path::new(&sysroot).join("lib/rustlib/thumbv7em-none-eabihf").exists() {
+    if !Path::new(&sysroot)
+        .join("lib/rustlib/thumbv7em-none-eabihf")
+        .exists()
+    {
         eprintln!("thumbv7em-none-eabihf not installed; skipped");
         return;
     }
     let out = Command::new(env!("CARGO"))
-        .args(["build", "--quiet", "--offline", "--lib", "--release", "--target", "thumbv7em-none-eabihf"])
+        .args([
+            "build",
+            "--quiet",
+            "--offline",
+            "--lib",
+            "--release",
+            "--target",
+            "thumbv7em-none-eabihf",
+        ])
         .current_dir(&b.dir)
         .env("CARGO_TARGET_DIR", &b.target)
         .output()
         .unwrap();
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
 }
 
 #[test]
@@ -416,7 +500,12 @@ fn generation_is_deterministic() {
     if let QKernel::Conv2d(c) = &mut q2.steps[0].kernel {
         c.weights[0] = c.weights[0].wrapping_add(1);
     }
-    let h = |q: &QGraph| generate(q, &Schedule::naive(q), &GenOptions::default()).unwrap().report.model_hash;
+    let h = |q: &QGraph| {
+        generate(q, &Schedule::naive(q), &GenOptions::default())
+            .unwrap()
+            .report
+            .model_hash
+    };
     assert_ne!(h(&q), h(&q2));
 }
 
@@ -432,20 +521,31 @@ fn weights_file_holds_exactly_the_parameters() {
                         + 4 * c.bias.len()
                         + 8 * c.requant.len()
                         + match &c.transform {
-                            Some(ingot_compiler::lower::ChannelTransform::Affine { mul, add, .. }) => 4 * (mul.len() + add.len()),
+                            Some(ingot_compiler::lower::ChannelTransform::Affine {
+                                mul,
+                                add,
+                                ..
+                            }) => 4 * (mul.len() + add.len()),
                             Some(ingot_compiler::lower::ChannelTransform::Table(t)) => t.len(),
                             None => 0,
                         }
                 }
                 QKernel::Linear(l) => l.weights.len() + 4 * l.bias.len() + 8 * l.requant.len(),
-                QKernel::Channel(ingot_compiler::lower::ChannelTransform::Affine { mul, add, .. }) => 4 * (mul.len() + add.len()),
+                QKernel::Channel(ingot_compiler::lower::ChannelTransform::Affine {
+                    mul,
+                    add,
+                    ..
+                }) => 4 * (mul.len() + add.len()),
                 QKernel::Channel(ingot_compiler::lower::ChannelTransform::Table(t)) => t.len(),
                 _ => 0,
             };
         }
         want += q.pixel_table.len();
         assert_eq!(g.weights.len(), want, "{}", q.name);
-        assert_eq!(g.report.weights_sections.iter().map(|s| s.1).sum::<usize>(), want);
+        assert_eq!(
+            g.report.weights_sections.iter().map(|s| s.1).sum::<usize>(),
+            want
+        );
     }
 }
 
@@ -464,7 +564,10 @@ fn invalid_parameters_are_refused_at_generation() {
     s.views[1] = s.views[0];
     assert!(generate(&q, &s, &GenOptions::default()).is_err());
     // A bad module name.
-    let opt = GenOptions { module: "a-b".into(), ..GenOptions::default() };
+    let opt = GenOptions {
+        module: "a-b".into(),
+        ..GenOptions::default()
+    };
     assert!(generate(&q, &Schedule::naive(&q), &opt).is_err());
 }
 
@@ -472,8 +575,15 @@ fn invalid_parameters_are_refused_at_generation() {
 fn budget_is_checked_against_the_target() {
     let q = testnets::plain();
     let s = Schedule::naive(&q);
-    let mut t = codegen::TargetInfo { name: "tiny".into(), ram_bytes: Some(s.arena_bytes + s.patch_bytes), flash_bytes: Some(1 << 20) };
-    let opt = |t: &codegen::TargetInfo| GenOptions { target: Some(t.clone()), ..GenOptions::default() };
+    let mut t = codegen::TargetInfo {
+        name: "tiny".into(),
+        ram_bytes: Some(s.arena_bytes + s.patch_bytes),
+        flash_bytes: Some(1 << 20),
+    };
+    let opt = |t: &codegen::TargetInfo| GenOptions {
+        target: Some(t.clone()),
+        ..GenOptions::default()
+    };
     assert!(generate(&q, &s, &opt(&t)).is_ok());
     t.ram_bytes = Some(s.arena_bytes + s.patch_bytes - 1);
     let e = generate(&q, &s, &opt(&t)).unwrap_err();
@@ -488,7 +598,15 @@ fn snapshot_of_plain_module() {
     let here = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests");
     let q = testnets::plain();
     let input = serde_json::to_string_pretty(&q).unwrap() + "\n";
-    let g = generate(&q, &Schedule::naive(&q), &GenOptions { module: "plain".into(), ..GenOptions::default() }).unwrap();
+    let g = generate(
+        &q,
+        &Schedule::naive(&q),
+        &GenOptions {
+            module: "plain".into(),
+            ..GenOptions::default()
+        },
+    )
+    .unwrap();
     let files = [
         (here.join("in/plain.qgraph.json"), input.into_bytes()),
         (here.join("out/plain.rs"), g.module.into_bytes()),
@@ -501,7 +619,12 @@ fn snapshot_of_plain_module() {
         }
     }
     for (p, b) in &files {
-        let have = std::fs::read(p).unwrap_or_else(|_| panic!("{} missing; run with INGOT_BLESS=1", p.display()));
-        assert!(have == *b, "{} differs from the generator's output; rerun with INGOT_BLESS=1 if intended", p.display());
+        let have = std::fs::read(p)
+            .unwrap_or_else(|_| panic!("{} missing; run with INGOT_BLESS=1", p.display()));
+        assert!(
+            have == *b,
+            "{} differs from the generator's output; rerun with INGOT_BLESS=1 if intended",
+            p.display()
+        );
     }
 }

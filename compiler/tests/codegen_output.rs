@@ -8,12 +8,20 @@ fn snapshot(dir: &Path) -> BTreeMap<String, Vec<u8>> {
     std::fs::read_dir(dir)
         .unwrap()
         .map(|e| e.unwrap())
-        .map(|e| (e.file_name().to_string_lossy().into_owned(), std::fs::read(e.path()).unwrap()))
+        .map(|e| {
+            (
+                e.file_name().to_string_lossy().into_owned(),
+                std::fs::read(e.path()).unwrap(),
+            )
+        })
         .collect()
 }
 
 fn files(tag: &str) -> Vec<(String, Vec<u8>)> {
-    vec![("model.rs".into(), format!("// {tag}\n").into_bytes()), ("model.weights.bin".into(), vec![1, 2, 3])]
+    vec![
+        ("model.rs".into(), format!("// {tag}\n").into_bytes()),
+        ("model.weights.bin".into(), vec![1, 2, 3]),
+    ]
 }
 
 #[test]
@@ -26,7 +34,10 @@ fn writes_files_and_manifest_then_replaces_its_own() {
     write_all(&out, &files("two"), false).unwrap();
     assert_eq!(std::fs::read(out.join("model.rs")).unwrap(), b"// two\n");
     // No temporary folder is left next to the output.
-    let left: Vec<_> = std::fs::read_dir(t.path().join("gen")).unwrap().map(|e| e.unwrap().file_name()).collect();
+    let left: Vec<_> = std::fs::read_dir(t.path().join("gen"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name())
+        .collect();
     assert_eq!(left.len(), 1, "{left:?}");
 }
 
@@ -53,6 +64,9 @@ fn output_path_that_is_a_file_is_refused() {
     let t = tempfile::tempdir().unwrap();
     let out = t.path().join("out");
     std::fs::write(&out, b"x").unwrap();
-    assert!(matches!(write_all(&out, &files("a"), true), Err(OutputError::NotDir(_))));
+    assert!(matches!(
+        write_all(&out, &files("a"), true),
+        Err(OutputError::NotDir(_))
+    ));
     assert_eq!(std::fs::read(&out).unwrap(), b"x");
 }

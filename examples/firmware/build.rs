@@ -22,5 +22,7 @@ fn main() {
             Err(e) => println!("cargo:warning=demo model not usable yet ({e}); using the built-in demo-sized network"),
         }
     }
-    Builder::lowered(ingot_compiler::codegen::testnets::demo_sized()).module("model").generate_or_exit();
+    Builder::lowered(ingot_compiler::codegen::testnets::demo_sized())
+        .module("model")
+        .generate_or_exit();
 }

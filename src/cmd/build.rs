@@ -35,7 +35,12 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         (None, Some(d)) => pipeline::RangesSource::Images(d.clone()),
         (None, None) => anyhow::bail!("pass --ranges FILE or --images DIR"),
     };
-    let req = pipeline::Request { graph: args.graph.clone(), ranges, target: args.target.clone(), module: args.module.clone() };
+    let req = pipeline::Request {
+        graph: args.graph.clone(),
+        ranges,
+        target: args.target.clone(),
+        module: args.module.clone(),
+    };
     let g = pipeline::compile(&req)?;
     output::write_all(&args.out, &g.files(&args.module), args.force)?;
     let r = &g.report;

@@ -101,19 +101,35 @@ pub struct Blob {
 impl Blob {
     /// The entry of a step's tensor.
     pub fn find(&self, step: usize, role: Role) -> Option<&Entry> {
-        self.entries.iter().find(|e| e.step == Some(step) && e.role == Some(role))
+        self.entries
+            .iter()
+            .find(|e| e.step == Some(step) && e.role == Some(role))
     }
 
     /// The pixel table entry.
     pub fn pixel_table(&self) -> &Entry {
-        self.entries.iter().find(|e| e.section == Section::PixelTable).expect("pixel table is always stored")
+        self.entries
+            .iter()
+            .find(|e| e.section == Section::PixelTable)
+            .expect("pixel table is always stored")
     }
 
     /// Bytes per section, in file order.
     pub fn section_bytes(&self) -> Vec<(Section, usize)> {
         let mut v: Vec<(Section, usize)> = Vec::new();
-        for s in [Section::Weights, Section::Biases, Section::Multipliers, Section::Transforms, Section::PixelTable] {
-            let n = self.entries.iter().filter(|e| e.section == s).map(|e| e.len * e.elem.size()).sum();
+        for s in [
+            Section::Weights,
+            Section::Biases,
+            Section::Multipliers,
+            Section::Transforms,
+            Section::PixelTable,
+        ] {
+            let n = self
+                .entries
+                .iter()
+                .filter(|e| e.section == s)
+                .map(|e| e.len * e.elem.size())
+                .sum();
             v.push((s, n));
         }
         v
@@ -126,8 +142,22 @@ struct Writer {
 }
 
 impl Writer {
-    fn start(&mut self, step: Option<usize>, role: Option<Role>, elem: Elem, len: usize, section: Section) {
-        self.entries.push(Entry { step, role, elem, len, offset: self.bytes.len(), section });
+    fn start(
+        &mut self,
+        step: Option<usize>,
+        role: Option<Role>,
+        elem: Elem,
+        len: usize,
+        section: Section,
+    ) {
+        self.entries.push(Entry {
+            step,
+            role,
+            elem,
+            len,
+            offset: self.bytes.len(),
+            section,
+        });
     }
     fn i8s(&mut self, step: usize, role: Role, v: &[i8], section: Section) {
         self.start(Some(step), Some(role), Elem::I8, v.len(), section);
@@ -143,7 +173,10 @@ impl Writer {
 
 /// Lays out every tensor of `q`.
 pub fn build(q: &QGraph) -> Blob {
-    let mut w = Writer { bytes: Vec::new(), entries: Vec::new() };
+    let mut w = Writer {
+        bytes: Vec::new(),
+        entries: Vec::new(),
+    };
     for (i, s) in q.steps.iter().enumerate() {
         match &s.kernel {
             QKernel::Conv2d(c) => w.i8s(i, Role::Weights, &c.weights, Section::Weights),
@@ -164,7 +197,13 @@ pub fn build(q: &QGraph) -> Blob {
             QKernel::Linear(l) => &l.requant,
             _ => continue,
         };
-        w.start(Some(i), Some(Role::Requant), Elem::Requant, rq.len(), Section::Multipliers);
+        w.start(
+            Some(i),
+            Some(Role::Requant),
+            Elem::Requant,
+            rq.len(),
+            Section::Multipliers,
+        );
         for m in rq {
             w.bytes.extend_from_slice(&m.mult.to_le_bytes());
             w.bytes.extend_from_slice(&m.shift.to_le_bytes());
@@ -187,7 +226,16 @@ pub fn build(q: &QGraph) -> Blob {
             ChannelTransform::Table(t) => w.i8s(i, Role::TransformTable, t, Section::Transforms),
         }
     }
-    w.start(None, None, Elem::I8, q.pixel_table.len(), Section::PixelTable);
+    w.start(
+        None,
+        None,
+        Elem::I8,
+        q.pixel_table.len(),
+        Section::PixelTable,
+    );
     w.bytes.extend(q.pixel_table.iter().map(|&x| x as u8));
-    Blob { bytes: w.bytes, entries: w.entries }
+    Blob {
+        bytes: w.bytes,
+        entries: w.entries,
+    }
 }

@@ -1,14 +1,12 @@
 //! The build-script API: generate a model module from `build.rs`.
 //!
 //! ```no_run
-//! // build.rs
-//! fn main() {
-//!     ingot_compiler::build::Builder::new("model/net.graph.json")
-//!         .ranges("model/net.ranges.json")
-//!         .target("targets/stm32f4.toml")
-//!         .module("model")
-//!         .generate_or_exit();
-//! }
+//! // in build.rs's `main`:
+//! ingot_compiler::build::Builder::new("model/net.graph.json")
+//!     .ranges("model/net.ranges.json")
+//!     .target("targets/stm32f4.toml")
+//!     .module("model")
+//!     .generate_or_exit();
 //! ```
 //!
 //! and in the crate: `mod model { include!(concat!(env!("OUT_DIR"), "/model.rs")); }`.
@@ -44,17 +42,25 @@ pub struct Built {
 #[derive(Debug, thiserror::Error)]
 pub enum BuildError {
     /// Neither `.ranges()` nor `.images()` was given.
-    #[error("ingot: {0}: no quantization ranges; call .ranges(\"x.ranges.json\") or .images(\"dir\")")]
+    #[error(
+        "ingot: {0}: no quantization ranges; call .ranges(\"x.ranges.json\") or .images(\"dir\")"
+    )]
     NoRanges(PathBuf),
     /// No output folder: not run by cargo and no `.out_dir()`.
     #[error("ingot: OUT_DIR is not set (not running from a build script?); call .out_dir(path)")]
     NoOutDir,
     /// Compilation failed.
     #[error("ingot: {0}")]
-    Pipeline(#[from] PipelineError),
+    Pipeline(Box<PipelineError>),
     /// Writing failed.
     #[error("ingot: {0}")]
     Output(#[from] OutputError),
+}
+
+impl From<PipelineError> for BuildError {
+    fn from(e: PipelineError) -> Self {
+        BuildError::Pipeline(Box::new(e))
+    }
 }
 
 impl BuildError {
@@ -69,7 +75,14 @@ impl Builder {
     /// through the graph). Relative paths are relative to the package
     /// folder, the working directory of build scripts.
     pub fn new(graph: impl AsRef<Path>) -> Self {
-        Builder { graph: graph.as_ref().into(), ranges: None, target: None, module: "model".into(), out_dir: None, lowered: None }
+        Builder {
+            graph: graph.as_ref().into(),
+            ranges: None,
+            target: None,
+            module: "model".into(),
+            out_dir: None,
+            lowered: None,
+        }
     }
 
     /// Generation from an already lowered graph (no graph file, ranges or
@@ -112,8 +125,16 @@ impl Builder {
     }
 
     fn request(&self) -> Result<Request, BuildError> {
-        let ranges = self.ranges.clone().ok_or_else(|| BuildError::NoRanges(self.graph.clone()))?;
-        Ok(Request { graph: self.graph.clone(), ranges, target: self.target.clone(), module: self.module.clone() })
+        let ranges = self
+            .ranges
+            .clone()
+            .ok_or_else(|| BuildError::NoRanges(self.graph.clone()))?;
+        Ok(Request {
+            graph: self.graph.clone(),
+            ranges,
+            target: self.target.clone(),
+            module: self.module.clone(),
+        })
     }
 
     /// The files this generation reads (graph, weights, ranges or image
@@ -137,12 +158,22 @@ impl Builder {
         }
         let out = match &self.out_dir {
             Some(d) => d.clone(),
-            None => std::env::var_os("OUT_DIR").map(PathBuf::from).ok_or(BuildError::NoOutDir)?,
+            None => std::env::var_os("OUT_DIR")
+                .map(PathBuf::from)
+                .ok_or(BuildError::NoOutDir)?,
         };
         let g = match &self.lowered {
             Some(q) => {
-                let target = self.target.as_deref().map(pipeline::load_target).transpose()?;
-                let opt = super::GenOptions { module: self.module.clone(), target, ..super::GenOptions::default() };
+                let target = self
+                    .target
+                    .as_deref()
+                    .map(pipeline::load_target)
+                    .transpose()?;
+                let opt = super::GenOptions {
+                    module: self.module.clone(),
+                    target,
+                    ..super::GenOptions::default()
+                };
                 super::generate(q, &super::Schedule::naive(q), &opt).map_err(PipelineError::from)?
             }
             None => pipeline::compile(&self.request()?)?,

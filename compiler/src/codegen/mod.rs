@@ -83,7 +83,13 @@ pub struct GenOptions {
 
 impl Default for GenOptions {
     fn default() -> Self {
-        GenOptions { module: "model".into(), target: None, weights: WeightsMode::default(), source_hash: String::new(), dry_run: true }
+        GenOptions {
+            module: "model".into(),
+            target: None,
+            weights: WeightsMode::default(),
+            source_hash: String::new(),
+            dry_run: true,
+        }
     }
 }
 
@@ -108,8 +114,14 @@ impl Generated {
         vec![
             (format!("{module}.rs"), self.module.clone().into_bytes()),
             (format!("{module}.weights.bin"), self.weights.clone()),
-            (format!("{module}.report.md"), self.report_md.clone().into_bytes()),
-            (format!("{module}.report.json"), self.report_json.clone().into_bytes()),
+            (
+                format!("{module}.report.md"),
+                self.report_md.clone().into_bytes(),
+            ),
+            (
+                format!("{module}.report.json"),
+                self.report_json.clone().into_bytes(),
+            ),
         ]
     }
 }
@@ -166,7 +178,8 @@ pub const FNV_BASIS: u64 = 0xcbf2_9ce4_8422_2325;
 /// True for `[A-Za-z_][A-Za-z0-9_]*`.
 pub fn is_module_name(s: &str) -> bool {
     let mut c = s.chars();
-    matches!(c.next(), Some(ch) if ch.is_ascii_alphabetic() || ch == '_') && c.all(|ch| ch.is_ascii_alphanumeric() || ch == '_')
+    matches!(c.next(), Some(ch) if ch.is_ascii_alphabetic() || ch == '_')
+        && c.all(|ch| ch.is_ascii_alphanumeric() || ch == '_')
 }
 
 /// Generates the module, weights file and reports.
@@ -174,7 +187,8 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
     if !is_module_name(&opt.module) {
         return Err(CodegenError::ModuleName(opt.module.clone()));
     }
-    q.verify().map_err(|e| CodegenError::Graph(q.name.clone(), e))?;
+    q.verify()
+        .map_err(|e| CodegenError::Graph(q.name.clone(), e))?;
     calls::check_schedule(q, s).map_err(CodegenError::Schedule)?;
     if let Some(t) = &opt.target {
         let blob_len = blob::build(q).bytes.len();
@@ -184,7 +198,12 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
         ] {
             if let Some(have) = have {
                 if need > have {
-                    return Err(CodegenError::Budget { target: t.name.clone(), what, need, have });
+                    return Err(CodegenError::Budget {
+                        target: t.name.clone(),
+                        what,
+                        need,
+                        have,
+                    });
                 }
             }
         }
@@ -195,14 +214,21 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
         let input = vec![zp; q.map(q.input).shape.len()];
         calls::execute(q, s, &steps, &input, &mut |_, _| {}).map_err(|e| {
             let st = q.step(e.step);
-            CodegenError::Kernel { step: st.name.clone(), kind: st.kernel.kind(), error: e.error }
+            CodegenError::Kernel {
+                step: st.name.clone(),
+                kind: st.kernel.kind(),
+                error: e.error,
+            }
         })?;
     }
     let blob = blob::build(q);
     let mut namer = names::Namer::default();
     let stems: Vec<String> = q.steps.iter().map(|st| namer.unique(&st.name)).collect();
 
-    let mut h = fnv1a(FNV_BASIS, &serde_json::to_vec(q).expect("QGraph serializes"));
+    let mut h = fnv1a(
+        FNV_BASIS,
+        &serde_json::to_vec(q).expect("QGraph serializes"),
+    );
     h = fnv1a(h, &serde_json::to_vec(s).expect("Schedule serializes"));
     h = fnv1a(h, opt.source_hash.as_bytes());
     let hash = format!("{h:016x}");
@@ -210,7 +236,23 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
     let rep = report::build(q, s, &steps, &blob, opt, &hash);
     let figures = rep.figures();
     let table = rep.table();
-    let ctx = emit::Ctx { q, s, calls: &steps, blob: &blob, stems: &stems, opt, hash: &hash, table: &table, figures: &figures };
+    let ctx = emit::Ctx {
+        q,
+        s,
+        calls: &steps,
+        blob: &blob,
+        stems: &stems,
+        opt,
+        hash: &hash,
+        table: &table,
+        figures: &figures,
+    };
     let module = emit::module(&ctx);
-    Ok(Generated { module, weights: blob.bytes, report_md: rep.markdown(), report_json: rep.json(), report: rep })
+    Ok(Generated {
+        module,
+        weights: blob.bytes,
+        report_md: rep.markdown(),
+        report_json: rep.json(),
+        report: rep,
+    })
 }

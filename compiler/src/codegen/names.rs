@@ -21,7 +21,11 @@ const MAX_STEM: usize = 40;
 pub fn stem(name: &str) -> String {
     let mut s = String::new();
     for ch in name.chars() {
-        let c = if ch.is_ascii_alphanumeric() { ch.to_ascii_uppercase() } else { '_' };
+        let c = if ch.is_ascii_alphanumeric() {
+            ch.to_ascii_uppercase()
+        } else {
+            '_'
+        };
         if c == '_' && (s.is_empty() || s.ends_with('_')) {
             continue;
         }
@@ -83,10 +87,25 @@ mod tests {
 
     #[test]
     fn stems_are_plain_identifiers() {
-        for n in ["\"; panic!()", "r#fn", "*/", "a\nb", "größe", "", "__", "fn", "Self", "0abc"] {
+        for n in [
+            "\"; panic!()",
+            "r#fn",
+            "*/",
+            "a\nb",
+            "größe",
+            "",
+            "__",
+            "fn",
+            "Self",
+            "0abc",
+        ] {
             let s = stem(n);
             assert!(!s.is_empty());
-            assert!(s.chars().all(|c| c.is_ascii_uppercase() || c.is_ascii_digit() || c == '_'), "{s}");
+            assert!(
+                s.chars()
+                    .all(|c| c.is_ascii_uppercase() || c.is_ascii_digit() || c == '_'),
+                "{s}"
+            );
         }
         assert_eq!(stem("conv1.weight"), "CONV1_WEIGHT");
         assert_eq!(stem("r#fn"), "R_FN");

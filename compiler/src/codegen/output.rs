@@ -15,7 +15,8 @@ use std::path::{Path, PathBuf};
 
 /// Name of the manifest file in an output folder.
 pub const MANIFEST: &str = ".ingot-manifest";
-const MANIFEST_HEADER: &str = "# Files written by ingot into this folder; `ingot build` may overwrite them.";
+const MANIFEST_HEADER: &str =
+    "# Files written by ingot into this folder; `ingot build` may overwrite them.";
 
 /// Why the files could not be written.
 #[derive(Debug, thiserror::Error)]
@@ -37,13 +38,21 @@ pub enum OutputError {
 }
 
 fn io(path: &Path) -> impl FnOnce(std::io::Error) -> OutputError + '_ {
-    move |source| OutputError::Io { path: path.to_path_buf(), source }
+    move |source| OutputError::Io {
+        path: path.to_path_buf(),
+        source,
+    }
 }
 
 /// Files listed in `dir`'s manifest.
 pub fn manifest(dir: &Path) -> BTreeSet<String> {
     std::fs::read_to_string(dir.join(MANIFEST))
-        .map(|t| t.lines().filter(|l| !l.starts_with('#') && !l.is_empty()).map(str::to_string).collect())
+        .map(|t| {
+            t.lines()
+                .filter(|l| !l.starts_with('#') && !l.is_empty())
+                .map(str::to_string)
+                .collect()
+        })
         .unwrap_or_default()
 }
 
@@ -65,7 +74,10 @@ pub fn write_all(out: &Path, files: &[(String, Vec<u8>)], force: bool) -> Result
         _ => PathBuf::from("."),
     };
     std::fs::create_dir_all(&parent).map_err(io(&parent))?;
-    let stamp = std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).map(|d| d.as_nanos()).unwrap_or(0);
+    let stamp = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.as_nanos())
+        .unwrap_or(0);
     let tmp = parent.join(format!(".ingot-tmp-{}-{stamp}", std::process::id()));
     let result = (|| {
         std::fs::create_dir(&tmp).map_err(io(&tmp))?;

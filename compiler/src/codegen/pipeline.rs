@@ -32,7 +32,7 @@ pub struct Request {
 pub enum PipelineError {
     /// The graph did not load.
     #[error(transparent)]
-    Load(#[from] crate::LoadError),
+    Load(Box<crate::LoadError>),
     /// The ranges file is unusable.
     #[error(transparent)]
     Ranges(#[from] crate::calibrate::RangesError),
@@ -60,6 +60,12 @@ pub enum PipelineError {
     },
 }
 
+impl From<crate::LoadError> for PipelineError {
+    fn from(e: crate::LoadError) -> Self {
+        PipelineError::Load(Box::new(e))
+    }
+}
+
 impl PipelineError {
     /// True when the model is valid but does not fit the target's memory.
     pub fn is_budget(&self) -> bool {
@@ -70,18 +76,36 @@ impl PipelineError {
 /// Reads a target description: `name` and optional `ram_bytes`/`ram_kib`,
 /// `flash_bytes`/`flash_kib` keys (top level or under `[memory]`).
 pub fn load_target(path: &Path) -> Result<TargetInfo, PipelineError> {
-    let text = std::fs::read_to_string(path).map_err(|source| PipelineError::Io { path: path.into(), source })?;
-    let v: toml::Table = text.parse().map_err(|e: toml::de::Error| PipelineError::Target { path: path.into(), msg: e.to_string() })?;
+    let text = std::fs::read_to_string(path).map_err(|source| PipelineError::Io {
+        path: path.into(),
+        source,
+    })?;
+    let v: toml::Table = text
+        .parse()
+        .map_err(|e: toml::de::Error| PipelineError::Target {
+            path: path.into(),
+            msg: e.to_string(),
+        })?;
     let get = |k: &str| -> Option<i64> {
-        v.get(k).or_else(|| v.get("memory").and_then(|m| m.get(k))).and_then(|x| x.as_integer())
+        v.get(k)
+            .or_else(|| v.get("memory").and_then(|m| m.get(k)))
+            .and_then(|x| x.as_integer())
     };
-    let bytes = |b: &str, kib: &str| get(b).or_else(|| get(kib).map(|k| k * 1024)).map(|n| n.max(0) as usize);
+    let bytes = |b: &str, kib: &str| {
+        get(b)
+            .or_else(|| get(kib).map(|k| k * 1024))
+            .map(|n| n.max(0) as usize)
+    };
     Ok(TargetInfo {
         name: v
             .get("name")
             .and_then(|n| n.as_str())
             .map(str::to_string)
-            .unwrap_or_else(|| path.file_stem().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default()),
+            .unwrap_or_else(|| {
+                path.file_stem()
+                    .map(|s| s.to_string_lossy().into_owned())
+                    .unwrap_or_default()
+            }),
         ram_bytes: bytes("ram_bytes", "ram_kib"),
         flash_bytes: bytes("flash_bytes", "flash_kib"),
     })
@@ -106,23 +130,46 @@ pub fn inputs(req: &Request) -> Vec<PathBuf> {
 pub fn compile(req: &Request) -> Result<Generated, PipelineError> {
     let target = req.target.as_deref().map(load_target).transpose()?;
     let graph = crate::load(&req.graph)?;
-    let hash = crate::calibrate::ranges::graph_hash(&graph).map_err(|source| PipelineError::Io { path: req.graph.clone(), source })?;
+    let hash =
+        crate::calibrate::ranges::graph_hash(&graph).map_err(|source| PipelineError::Io {
+            path: req.graph.clone(),
+            source,
+        })?;
     let (ranges, ranges_hash) = match &req.ranges {
         RangesSource::File(p) => {
             let r = crate::calibrate::Ranges::load(&graph, p, Some(&hash))?;
-            let bytes = std::fs::read(p).map_err(|source| PipelineError::Io { path: p.clone(), source })?;
-            (r, format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)))
+            let bytes = std::fs::read(p).map_err(|source| PipelineError::Io {
+                path: p.clone(),
+                source,
+            })?;
+            (
+                r,
+                format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)),
+            )
         }
         RangesSource::Images(_dir) => {
-            return Err(PipelineError::Unavailable("calibration on images is not available in this build yet; pass a ranges file".into()))
+            return Err(PipelineError::Unavailable(
+                "calibration on images is not available in this build yet; pass a ranges file"
+                    .into(),
+            ))
         }
     };
     let q = lower(&graph, &ranges)?;
     let schedule = Schedule::naive(&q);
-    let opt = GenOptions { module: req.module.clone(), target, source_hash: format!("{hash}:{ranges_hash}"), ..GenOptions::default() };
+    let opt = GenOptions {
+        module: req.module.clone(),
+        target,
+        source_hash: format!("{hash}:{ranges_hash}"),
+        ..GenOptions::default()
+    };
     Ok(super::generate(&q, &schedule, &opt)?)
 }
 
-fn lower(_g: &crate::Graph, _r: &crate::calibrate::Ranges) -> Result<crate::lower::QGraph, PipelineError> {
-    Err(PipelineError::Unavailable("lowering is not available in this build yet".into()))
+fn lower(
+    _g: &crate::Graph,
+    _r: &crate::calibrate::Ranges,
+) -> Result<crate::lower::QGraph, PipelineError> {
+    Err(PipelineError::Unavailable(
+        "lowering is not available in this build yet".into(),
+    ))
 }

@@ -68,13 +68,23 @@ pub struct Report {
 }
 
 /// Builds the report.
-pub fn build(q: &QGraph, s: &Schedule, calls: &[StepCalls<'_>], blob: &Blob, opt: &GenOptions, hash: &str) -> Report {
+pub fn build(
+    q: &QGraph,
+    s: &Schedule,
+    calls: &[StepCalls<'_>],
+    blob: &Blob,
+    opt: &GenOptions,
+    hash: &str,
+) -> Report {
     let mut layers = Vec::new();
     for (k, sc) in calls.iter().enumerate() {
         let st = q.step(sc.step);
         let o = q.map(st.output).shape;
         let (params, macs) = match &st.kernel {
-            QKernel::Conv2d(c) => (c.weights.len() + c.bias.len(), (o.len() * c.kernel[0] * c.kernel[1] * (c.in_channels / c.groups.max(1))) as u64),
+            QKernel::Conv2d(c) => (
+                c.weights.len() + c.bias.len(),
+                (o.len() * c.kernel[0] * c.kernel[1] * (c.in_channels / c.groups.max(1))) as u64,
+            ),
             QKernel::Linear(l) => (l.weights.len() + l.bias.len(), l.weights.len() as u64),
             _ => (0, 0),
         };
@@ -116,17 +126,40 @@ impl Report {
     /// Summary lines (Markdown).
     pub fn figures(&self) -> Vec<String> {
         let mut v = vec![
-            format!("- network: `{}`, module `{}`", for_doc(&self.network), self.module),
-            format!("- target: {}", self.target.as_deref().map(for_doc).unwrap_or_else(|| "none given".into())),
-            format!("- input {}×{}×{} (H×W×C), output {} values", self.input[0], self.input[1], self.input[2], self.output_len),
+            format!(
+                "- network: `{}`, module `{}`",
+                for_doc(&self.network),
+                self.module
+            ),
+            format!(
+                "- target: {}",
+                self.target
+                    .as_deref()
+                    .map(for_doc)
+                    .unwrap_or_else(|| "none given".into())
+            ),
+            format!(
+                "- input {}×{}×{} (H×W×C), output {} values",
+                self.input[0], self.input[1], self.input[2], self.output_len
+            ),
             format!(
                 "- RAM: scratch {} bytes (arena {} + patch {})",
                 self.scratch_bytes, self.arena_bytes, self.patch_bytes
             ),
-            format!("- flash for weights: {} bytes; parameters {}; {} MACs per inference", self.weights_bytes, self.params, self.macs),
+            format!(
+                "- flash for weights: {} bytes; parameters {}; {} MACs per inference",
+                self.weights_bytes, self.params, self.macs
+            ),
         ];
-        let parts: Vec<String> = self.weights_sections.iter().map(|(s, n)| format!("{s:?} {n}")).collect();
-        v.push(format!("- weights file sections (bytes): {}", parts.join(", ")));
+        let parts: Vec<String> = self
+            .weights_sections
+            .iter()
+            .map(|(s, n)| format!("{s:?} {n}"))
+            .collect();
+        v.push(format!(
+            "- weights file sections (bytes): {}",
+            parts.join(", ")
+        ));
         v.push(format!("- model hash `{}`", self.model_hash));
         v
     }
@@ -134,11 +167,16 @@ impl Report {
     /// The per-layer Markdown table.
     pub fn table(&self) -> Vec<String> {
         let mut v = vec![
-            "| # | layer | kind | output H×W×C | params | MACs | arena offset | stride |".to_string(),
+            "| # | layer | kind | output H×W×C | params | MACs | arena offset | stride |"
+                .to_string(),
             "|---:|---|---|---|---:|---:|---:|---:|".to_string(),
         ];
         for l in &self.layers {
-            let kind = if l.kind == "concat" && l.calls == 0 { "concat (in place)".to_string() } else { l.kind.clone() };
+            let kind = if l.kind == "concat" && l.calls == 0 {
+                "concat (in place)".to_string()
+            } else {
+                l.kind.clone()
+            };
             v.push(format!(
                 "| {} | {} | {} | {}×{}×{} | {} | {} | {} | {} |",
                 l.index,

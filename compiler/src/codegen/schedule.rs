@@ -40,7 +40,10 @@ impl Schedule {
         let mut views = Vec::with_capacity(q.maps.len());
         let mut at = 0;
         for m in &q.maps {
-            views.push(MapView { offset: at, stride: m.shape.c });
+            views.push(MapView {
+                offset: at,
+                stride: m.shape.c,
+            });
             at += m.shape.len();
         }
         Schedule {
@@ -63,7 +66,9 @@ pub fn min_patch_bytes(q: &QGraph) -> usize {
     q.steps
         .iter()
         .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => Some(2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels)),
+            QKernel::Conv2d(c) => {
+                Some(2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels))
+            }
             _ => None,
         })
         .max()

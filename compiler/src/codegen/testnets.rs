@@ -6,7 +6,10 @@
 //! lowering. Also a DenseNet-121-shaped graph for compile-time benchmarks.
 
 use crate::graph::{MapId, Padding, Shape};
-use crate::lower::{ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId, QParams, QPool, QStep};
+use crate::lower::{
+    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
+    QParams, QPool, QStep,
+};
 
 /// Builds a [`QGraph`] step by step.
 pub struct QBuilder {
@@ -39,7 +42,16 @@ impl ConvSpec {
     /// A `k`×`k` convolution to `out` channels, stride 1, "same" padding, ReLU.
     pub fn new(out: usize, k: usize) -> Self {
         let p = k / 2;
-        ConvSpec { out, k, stride: 1, pad: [p; 4], dilation: 1, groups: 1, relu: true, transform: 0 }
+        ConvSpec {
+            out,
+            k,
+            stride: 1,
+            pad: [p; 4],
+            dilation: 1,
+            groups: 1,
+            relu: true,
+            transform: 0,
+        }
     }
     /// With a stride.
     pub fn stride(mut self, s: usize) -> Self {
@@ -75,7 +87,10 @@ impl ConvSpec {
 
 fn mult(m: f64) -> Multiplier {
     let r = ingot_rt::Requant::from_real(m).expect("multiplier in range");
-    Multiplier { mult: r.mult, shift: r.shift }
+    Multiplier {
+        mult: r.mult,
+        shift: r.shift,
+    }
 }
 
 impl QBuilder {
@@ -96,7 +111,9 @@ impl QBuilder {
         };
         let qp = b.qp();
         let x = b.map("input", Shape::new(c, h, w), qp);
-        b.g.pixel_table = (0..256 * c).map(|i| ((i % 256) as i32 - 128 + (i / 256) as i32).clamp(-128, 127) as i8).collect();
+        b.g.pixel_table = (0..256 * c)
+            .map(|i| ((i % 256) as i32 - 128 + (i / 256) as i32).clamp(-128, 127) as i8)
+            .collect();
         (b, x)
     }
 
@@ -120,12 +137,20 @@ impl QBuilder {
 
     /// A random quantization.
     pub fn qp(&mut self) -> QParams {
-        QParams { scale: (0.01 + 0.05 * self.unit()) as f32, zero_point: self.int(-20, 20) as i32 }
+        QParams {
+            scale: (0.01 + 0.05 * self.unit()) as f32,
+            zero_point: self.int(-20, 20) as i32,
+        }
     }
 
     /// A new map with the given quantization.
     pub fn map(&mut self, name: &str, shape: Shape, qp: QParams) -> QMapId {
-        self.g.maps.push(QMap { name: name.into(), shape, qp, float_map: MapId(0) });
+        self.g.maps.push(QMap {
+            name: name.into(),
+            shape,
+            qp,
+            float_map: MapId(0),
+        });
         QMapId(self.g.maps.len() as u32 - 1)
     }
 
@@ -138,21 +163,47 @@ impl QBuilder {
     }
 
     fn push(&mut self, name: &str, inputs: Vec<QMapId>, output: QMapId, kernel: QKernel) -> QMapId {
-        self.g.steps.push(QStep { name: name.into(), layers: Vec::new(), inputs, output, kernel });
+        self.g.steps.push(QStep {
+            name: name.into(),
+            layers: Vec::new(),
+            inputs,
+            output,
+            kernel,
+        });
         output
     }
 
     fn clamp(&self, out: QMapId, relu: bool) -> Clamp {
-        Clamp { min: if relu { self.zp(out) as i8 } else { -128 }, max: 127 }
+        Clamp {
+            min: if relu { self.zp(out) as i8 } else { -128 },
+            max: 127,
+        }
     }
 
     fn transform(&mut self, c: usize, kind: u8, zp_in: i32) -> (Option<ChannelTransform>, i32) {
         match kind {
             1 => {
                 let zp_out = self.int(-10, 10) as i32;
-                let mul = (0..c).map(|_| self.int(-(3 << 12), 3 << 12) as i32).collect();
-                let add = (0..c).map(|_| self.int(-(20 << 12), 20 << 12) as i32).collect();
-                (Some(ChannelTransform::Affine { mul, add, shift: 12, zp_in, zp_out, clamp: Clamp { min: zp_out as i8, max: 127 } }), zp_out)
+                let mul = (0..c)
+                    .map(|_| self.int(-(3 << 12), 3 << 12) as i32)
+                    .collect();
+                let add = (0..c)
+                    .map(|_| self.int(-(20 << 12), 20 << 12) as i32)
+                    .collect();
+                (
+                    Some(ChannelTransform::Affine {
+                        mul,
+                        add,
+                        shift: 12,
+                        zp_in,
+                        zp_out,
+                        clamp: Clamp {
+                            min: zp_out as i8,
+                            max: 127,
+                        },
+                    }),
+                    zp_out,
+                )
             }
             2 => {
                 let t = (0..256 * c).map(|_| self.int(-128, 127) as i8).collect();
@@ -171,11 +222,17 @@ impl QBuilder {
         let qp = qp.unwrap_or_else(|| self.qp());
         let out = self.map(name, Shape::new(s.out, oh, ow), qp);
         let per = s.k * s.k * (i.c / s.groups);
-        let weights: Vec<i8> = (0..s.out * per).map(|_| self.int(-127, 127) as i8).collect();
+        let weights: Vec<i8> = (0..s.out * per)
+            .map(|_| self.int(-127, 127) as i8)
+            .collect();
         let (transform, input_zp) = self.transform(i.c, s.transform, self.zp(x));
         let scale = 0.0074 / (per as f64).sqrt();
-        let bias = (0..s.out).map(|_| self.int(-2000, 2000) as i32 * (per as f64).sqrt() as i32).collect();
-        let requant = (0..s.out).map(|_| mult(scale * (0.7 + 0.6 * self.unit()))).collect();
+        let bias = (0..s.out)
+            .map(|_| self.int(-2000, 2000) as i32 * (per as f64).sqrt() as i32)
+            .collect();
+        let requant = (0..s.out)
+            .map(|_| mult(scale * (0.7 + 0.6 * self.unit())))
+            .collect();
         let clamp = self.clamp(out, s.relu);
         let conv = QConv {
             out_channels: s.out,
@@ -183,7 +240,12 @@ impl QBuilder {
             kernel: [s.k, s.k],
             stride: [s.stride, s.stride],
             dilation: [s.dilation, s.dilation],
-            padding: Padding { top: s.pad[0], left: s.pad[1], bottom: s.pad[2], right: s.pad[3] },
+            padding: Padding {
+                top: s.pad[0],
+                left: s.pad[1],
+                bottom: s.pad[2],
+                right: s.pad[3],
+            },
             groups: s.groups,
             weights,
             weight_scales: vec![0.01; s.out],
@@ -214,21 +276,51 @@ impl QBuilder {
             weights,
             weight_scales: vec![0.01; n],
             bias: (0..n).map(|_| self.int(-5000, 5000) as i32).collect(),
-            requant: (0..n).map(|_| mult(scale * (0.7 + 0.6 * self.unit()))).collect(),
-            clamp: Clamp { min: -128, max: 127 },
+            requant: (0..n)
+                .map(|_| mult(scale * (0.7 + 0.6 * self.unit())))
+                .collect(),
+            clamp: Clamp {
+                min: -128,
+                max: 127,
+            },
         };
         self.push(name, vec![x], out, QKernel::Linear(lin))
     }
 
     fn pool(&mut self, name: &str, x: QMapId, k: usize, s: usize, pad: usize, kind: u8) -> QMapId {
         let i = self.shape(x);
-        let (oh, ow) = if kind == 2 { (1, 1) } else { ((i.h + 2 * pad - k) / s + 1, (i.w + 2 * pad - k) / s + 1) };
-        let (k, s) = if kind == 2 { ([i.h, i.w], [1, 1]) } else { ([k, k], [s, s]) };
-        let qp = if kind == 0 { self.g.map(x).qp } else { self.qp() };
+        let (oh, ow) = if kind == 2 {
+            (1, 1)
+        } else {
+            ((i.h + 2 * pad - k) / s + 1, (i.w + 2 * pad - k) / s + 1)
+        };
+        let (k, s) = if kind == 2 {
+            ([i.h, i.w], [1, 1])
+        } else {
+            ([k, k], [s, s])
+        };
+        let qp = if kind == 0 {
+            self.g.map(x).qp
+        } else {
+            self.qp()
+        };
         let out = self.map(name, Shape::new(i.c, oh, ow), qp);
         let n = (k[0] * k[1]) as f64;
-        let requant = if kind == 0 { None } else { Some(mult((0.8 + 0.4 * self.unit()) / n)) };
-        let p = QPool { kernel: k, stride: s, padding: Padding::uniform(pad), requant, clamp: Clamp { min: -128, max: 127 } };
+        let requant = if kind == 0 {
+            None
+        } else {
+            Some(mult((0.8 + 0.4 * self.unit()) / n))
+        };
+        let p = QPool {
+            kernel: k,
+            stride: s,
+            padding: Padding::uniform(pad),
+            requant,
+            clamp: Clamp {
+                min: -128,
+                max: 127,
+            },
+        };
         let kernel = match kind {
             0 => QKernel::MaxPool(p),
             1 => QKernel::AvgPool(p),
@@ -267,8 +359,17 @@ impl QBuilder {
             ingot_rt::OutputQuant::clamped(qp.zero_point, clamp.min, clamp.max),
         )
         .expect("add parameters");
-        let m = |r: ingot_rt::Requant| Multiplier { mult: r.mult, shift: r.shift };
-        let k = QAdd { a: m(p.a_rq), b: m(p.b_rq), out: m(p.out_rq), left_shift: p.left_shift, clamp };
+        let m = |r: ingot_rt::Requant| Multiplier {
+            mult: r.mult,
+            shift: r.shift,
+        };
+        let k = QAdd {
+            a: m(p.a_rq),
+            b: m(p.b_rq),
+            out: m(p.out_rq),
+            left_shift: p.left_shift,
+            clamp,
+        };
         self.push(name, vec![a, b], out, QKernel::Add(k))
     }
 
@@ -285,9 +386,17 @@ impl QBuilder {
     pub fn channel(&mut self, name: &str, x: QMapId, kind: u8) -> QMapId {
         let c = self.shape(x).c;
         let (t, zp_out) = self.transform(c, kind, self.zp(x));
-        let qp = QParams { scale: 0.03, zero_point: zp_out };
+        let qp = QParams {
+            scale: 0.03,
+            zero_point: zp_out,
+        };
         let out = self.map(name, self.shape(x), qp);
-        self.push(name, vec![x], out, QKernel::Channel(t.expect("transform kind 1 or 2")))
+        self.push(
+            name,
+            vec![x],
+            out,
+            QKernel::Channel(t.expect("transform kind 1 or 2")),
+        )
     }
 
     /// The graph with `out` as output and `labels`.
@@ -336,7 +445,11 @@ pub fn residual() -> QGraph {
     let r2 = b.conv("res1.b", r1, ConvSpec::new(8, 3).linear());
     let a1 = b.add("res1.add", s, r2, true);
     let p = b.max_pool("pool", a1, 3, 2, 1);
-    let d = b.conv("dilated", p, ConvSpec::new(8, 3).dilation(2).pad([2; 4]).linear());
+    let d = b.conv(
+        "dilated",
+        p,
+        ConvSpec::new(8, 3).dilation(2).pad([2; 4]).linear(),
+    );
     let a2 = b.add("res2.add", p, d, false);
     let t = b.channel("table", a2, 2);
     let g = b.global_avg_pool("gap", t);
@@ -350,7 +463,11 @@ pub fn depthwise() -> QGraph {
     let s = b.conv("stem", x, ConvSpec::new(12, 3).stride(2));
     let d1 = b.conv("dw1", s, ConvSpec::new(12, 3).groups(12));
     let p1 = b.conv("pw1", d1, ConvSpec::new(16, 1));
-    let d2 = b.conv("dw2", p1, ConvSpec::new(16, 3).groups(16).stride(2).pad([0, 0, 1, 1]));
+    let d2 = b.conv(
+        "dw2",
+        p1,
+        ConvSpec::new(16, 3).groups(16).stride(2).pad([0, 0, 1, 1]),
+    );
     let g2 = b.conv("grouped", d2, ConvSpec::new(8, 3).groups(4).linear());
     let d3 = b.conv("dw3", g2, ConvSpec::new(8, 3).groups(8).transform(1));
     let gp = b.global_avg_pool("gap", d3);
@@ -362,16 +479,37 @@ pub fn depthwise() -> QGraph {
 /// newlines, keywords, raw identifiers, non-ASCII, duplicates.
 pub fn hostile_names() -> QGraph {
     let mut g = plain();
-    let names = ["\"; panic!(\"boom\"); \"", "*/ fn main() {} /*", "r#fn", "line\nbreak\r\n// x", "größe_ß→λ", "fc"];
+    let names = [
+        "\"; panic!(\"boom\"); \"",
+        "*/ fn main() {} /*",
+        "r#fn",
+        "line\nbreak\r\n// x",
+        "größe_ß→λ",
+        "fc",
+    ];
     for (s, n) in g.steps.iter_mut().zip(names) {
         s.name = n.to_string();
     }
-    let maps = ["input", "\"; panic!()", "*/", "fn", "self", "\u{0}nul", "a\"b"];
+    let maps = [
+        "input",
+        "\"; panic!()",
+        "*/",
+        "fn",
+        "self",
+        "\u{0}nul",
+        "a\"b",
+    ];
     for (m, n) in g.maps.iter_mut().zip(maps) {
         m.name = n.to_string();
     }
     g.name = "evil */ \"name\"\nnext".into();
-    g.labels = vec!["\"quoted\"".into(), "*/".into(), "new\nline".into(), "ünï".into(), "\\".into()];
+    g.labels = vec![
+        "\"quoted\"".into(),
+        "*/".into(),
+        "new\nline".into(),
+        "ünï".into(),
+        "\\".into(),
+    ];
     g
 }
 
@@ -380,20 +518,37 @@ pub fn hostile_names() -> QGraph {
 /// about 8 M parameters) with random weights: for compile-time benchmarks.
 pub fn densenet121(input: usize) -> QGraph {
     let (mut b, x) = QBuilder::new("densenet121", 3, input, input, 121);
-    let c0 = b.conv("features.conv0", x, ConvSpec::new(64, 7).stride(2).pad([3; 4]));
+    let c0 = b.conv(
+        "features.conv0",
+        x,
+        ConvSpec::new(64, 7).stride(2).pad([3; 4]),
+    );
     let mut h = b.max_pool("features.pool0", c0, 3, 2, 1);
     for (bi, &n) in [6usize, 12, 24, 16].iter().enumerate() {
         let q = b.g.map(h).qp;
         let mut cat = h;
         for l in 0..n {
             let name = format!("features.denseblock{}.denselayer{}", bi + 1, l + 1);
-            let b1 = b.conv(&format!("{name}.conv1"), cat, ConvSpec::new(128, 1).transform(1));
-            let g = b.conv_q(&format!("{name}.conv2"), b1, ConvSpec::new(32, 3).transform(1).linear(), Some(q));
+            let b1 = b.conv(
+                &format!("{name}.conv1"),
+                cat,
+                ConvSpec::new(128, 1).transform(1),
+            );
+            let g = b.conv_q(
+                &format!("{name}.conv2"),
+                b1,
+                ConvSpec::new(32, 3).transform(1).linear(),
+                Some(q),
+            );
             cat = b.concat(&format!("{name}.cat"), &[cat, g]);
         }
         if bi < 3 {
             let c = b.g.map(cat).shape.c;
-            let t = b.conv(&format!("features.transition{}.conv", bi + 1), cat, ConvSpec::new(c / 2, 1).transform(1).linear());
+            let t = b.conv(
+                &format!("features.transition{}.conv", bi + 1),
+                cat,
+                ConvSpec::new(c / 2, 1).transform(1).linear(),
+            );
             h = b.avg_pool(&format!("features.transition{}.pool", bi + 1), t, 2, 2);
         } else {
             h = b.channel("features.norm5", cat, 1);
@@ -417,12 +572,21 @@ pub fn demo_sized() -> QGraph {
         let mut cat = h;
         for l in 1..=4 {
             let name = format!("features.denseblock{block}.denselayer{l}");
-            let y = b.conv_q(&format!("{name}.conv"), cat, ConvSpec::new(8, 3).transform(1).linear(), Some(q));
+            let y = b.conv_q(
+                &format!("{name}.conv"),
+                cat,
+                ConvSpec::new(8, 3).transform(1).linear(),
+                Some(q),
+            );
             cat = b.concat(&format!("{name}.cat"), &[cat, y]);
         }
         if block == 1 {
             let c = b.g.map(cat).shape.c;
-            let t = b.conv("features.transition1.conv", cat, ConvSpec::new(c / 2, 1).transform(1).linear());
+            let t = b.conv(
+                "features.transition1.conv",
+                cat,
+                ConvSpec::new(c / 2, 1).transform(1).linear(),
+            );
             h = b.avg_pool("features.transition1.pool", t, 2, 2);
         } else {
             h = b.channel("features.norm5", cat, 1);

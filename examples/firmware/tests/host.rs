@@ -17,7 +17,12 @@ fn png_image(dir: &std::path::Path, k: u32) -> Vec<u8> {
     let path = dir.join(format!("img{k}.png"));
     img.save(&path).unwrap();
     let back = image::open(&path).unwrap().to_rgb8();
-    let small = image::imageops::resize(&back, w as u32, h as u32, image::imageops::FilterType::Triangle);
+    let small = image::imageops::resize(
+        &back,
+        w as u32,
+        h as u32,
+        image::imageops::FilterType::Triangle,
+    );
     match c {
         3 => small.into_raw(),
         1 => image::DynamicImage::ImageRgb8(small).to_luma8().into_raw(),
