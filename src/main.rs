@@ -22,6 +22,8 @@ enum Command {
     Inspect(cmd::inspect::Args),
     /// Plan the feature-map arena: order, offsets, lower bound, budget.
     Plan(cmd::plan::Args),
+    /// Compile a graph into a no_std Rust module and its weights file.
+    Build(cmd::build::Args),
 }
 
 fn main() {
@@ -29,6 +31,7 @@ fn main() {
     let result = match cli.command {
         Command::Inspect(args) => cmd::inspect::run(&args),
         Command::Plan(args) => cmd::plan::run(&args),
+        Command::Build(args) => cmd::build::run(&args),
     };
     if let Err(e) = result {
         eprintln!("ingot: error: {e:#}");

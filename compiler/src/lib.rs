@@ -5,6 +5,7 @@
 //! into a checked [`graph::Graph`]; [`reference`] runs it in f32.
 
 pub mod calibrate;
+pub mod codegen;
 pub mod frontend;
 pub mod graph;
 pub mod inspect;
@@ -15,4 +16,9 @@ pub mod util;
 pub mod zoo;
 
 pub use frontend::{load, LoadError};
+
+/// The build-script API (see [`codegen::build_script`]).
+pub mod build {
+    pub use crate::codegen::build_script::{BuildError, Builder, Built};
+}
 pub use graph::{Graph, LayerId, MapId, Op, Shape};

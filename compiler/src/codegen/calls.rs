@@ -1,0 +1,445 @@
+//! The exact `ingot-rt` calls of a schedule.
+//!
+//! [`step_calls`] turns every step of a [`QGraph`] under a [`Schedule`] into
+//! the kernel calls with all their parameters. The same list is
+//! * executed here ([`execute`]) with the real `ingot-rt` kernels: at
+//!   generation time on a dummy input, so every kernel's own parameter
+//!   validation has run before any code is written, and in tests as the
+//!   straightforward interpretation the generated module must match;
+//! * printed as Rust by the emitter.
+//!
+//! So the generated module cannot pass parameters the compiler did not
+//! validate.
+
+use super::schedule::Schedule;
+use crate::lower::{
+    ChannelTransform, Clamp, Multiplier, QConv, QGraph, QKernel, QLinear, QPool, StepId,
+};
+use ingot_rt::{
+    AddParams, ConvParams, InputTransform, MapRef, OutputQuant, Padding, PoolQuant, Requant, Window,
+};
+
+/// One kernel call.
+#[derive(Debug, Clone)]
+pub enum Call<'a> {
+    /// `ingot_rt::conv2d`.
+    Conv {
+        input: MapRef,
+        output: MapRef,
+        conv: &'a QConv,
+        params: ConvParams,
+    },
+    /// `ingot_rt::linear`.
+    Linear {
+        input: MapRef,
+        output: MapRef,
+        lin: &'a QLinear,
+        out: OutputQuant,
+    },
+    /// `ingot_rt::max_pool2d`.
+    MaxPool {
+        input: MapRef,
+        output: MapRef,
+        window: Window,
+        q: PoolQuant,
+    },
+    /// `ingot_rt::avg_pool2d`.
+    AvgPool {
+        input: MapRef,
+        output: MapRef,
+        window: Window,
+        q: PoolQuant,
+    },
+    /// `ingot_rt::global_avg_pool`.
+    GlobalAvgPool {
+        input: MapRef,
+        output: MapRef,
+        q: PoolQuant,
+    },
+    /// `ingot_rt::add`.
+    Add {
+        a: MapRef,
+        b: MapRef,
+        output: MapRef,
+        p: AddParams,
+    },
+    /// `ingot_rt::copy_channels` (one input of a copying concatenation).
+    Copy { src: MapRef, dst: MapRef },
+    /// `ingot_rt::channel_transform`.
+    Channel {
+        input: MapRef,
+        output: MapRef,
+        t: &'a ChannelTransform,
+    },
+}
+
+/// The calls of one step (empty for an in-place concatenation).
+#[derive(Debug, Clone)]
+pub struct StepCalls<'a> {
+    /// The step.
+    pub step: StepId,
+    /// Its calls, in order.
+    pub calls: Vec<Call<'a>>,
+}
+
+/// The arena view of a map.
+pub fn map_ref(q: &QGraph, s: &Schedule, m: crate::lower::QMapId) -> MapRef {
+    let sh = q.map(m).shape;
+    let v = s.views[m.index()];
+    MapRef::strided(v.offset, sh.h, sh.w, sh.c, v.stride)
+}
+
+/// `ingot_rt::Requant` of a multiplier.
+pub fn requant(m: Multiplier) -> Requant {
+    Requant {
+        mult: m.mult,
+        shift: m.shift,
+    }
+}
+
+fn out_quant(zp: i32, c: Clamp) -> OutputQuant {
+    OutputQuant::clamped(zp, c.min, c.max)
+}
+
+fn padding(p: crate::graph::Padding) -> Padding {
+    Padding {
+        top: p.top,
+        left: p.left,
+        bottom: p.bottom,
+        right: p.right,
+    }
+}
+
+fn pool_window(p: &QPool) -> Window {
+    Window {
+        kh: p.kernel[0],
+        kw: p.kernel[1],
+        step_y: p.stride[0],
+        step_x: p.stride[1],
+        dilation_y: 1,
+        dilation_x: 1,
+        pad: padding(p.padding),
+    }
+}
+
+/// The borrowed runtime form of a channel transform.
+pub fn rt_transform(t: &ChannelTransform) -> InputTransform<'_> {
+    match t {
+        ChannelTransform::Affine {
+            mul,
+            add,
+            shift,
+            zp_in,
+            zp_out,
+            clamp,
+        } => InputTransform::Affine(ingot_rt::AffineTransform {
+            mul,
+            add,
+            shift: *shift,
+            zp_in: *zp_in,
+            zp_out: *zp_out,
+            min: clamp.min,
+            max: clamp.max,
+        }),
+        ChannelTransform::Table(t) => InputTransform::Table(t),
+    }
+}
+
+/// Why a step cannot be turned into calls.
+pub type CallError = String;
+
+/// All calls of the schedule, in its order.
+pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>, CallError> {
+    let mut out = Vec::with_capacity(s.order.len());
+    for &id in &s.order {
+        let st = q.step(id);
+        let o = map_ref(q, s, st.output);
+        let out_zp = q.map(st.output).qp.zero_point;
+        let inp = |i: usize| -> Result<MapRef, CallError> {
+            st.inputs
+                .get(i)
+                .map(|&m| map_ref(q, s, m))
+                .ok_or_else(|| format!("step `{}` lacks input {i}", st.name))
+        };
+        let in_zp = |i: usize| {
+            st.inputs
+                .get(i)
+                .map(|&m| q.map(m).qp.zero_point)
+                .unwrap_or(0)
+        };
+        let pool_q = |p: &QPool| PoolQuant {
+            in_zp: in_zp(0),
+            requant: p.requant.map(requant),
+            out: out_quant(out_zp, p.clamp),
+        };
+        let calls = match &st.kernel {
+            QKernel::Conv2d(c) => {
+                let input_zp = i8::try_from(c.input_zp)
+                    .map_err(|_| format!("step `{}`: input zero point out of range", st.name))?;
+                let window = Window {
+                    kh: c.kernel[0],
+                    kw: c.kernel[1],
+                    step_y: c.stride[0],
+                    step_x: c.stride[1],
+                    dilation_y: c.dilation[0],
+                    dilation_x: c.dilation[1],
+                    pad: padding(c.padding),
+                };
+                let params = ConvParams {
+                    window,
+                    groups: c.groups,
+                    input_zp,
+                    out: out_quant(out_zp, c.clamp),
+                };
+                vec![Call::Conv {
+                    input: inp(0)?,
+                    output: o,
+                    conv: c,
+                    params,
+                }]
+            }
+            QKernel::Linear(l) => vec![Call::Linear {
+                input: inp(0)?,
+                output: o,
+                lin: l,
+                out: out_quant(out_zp, l.clamp),
+            }],
+            QKernel::MaxPool(p) => vec![Call::MaxPool {
+                input: inp(0)?,
+                output: o,
+                window: pool_window(p),
+                q: pool_q(p),
+            }],
+            QKernel::AvgPool(p) => vec![Call::AvgPool {
+                input: inp(0)?,
+                output: o,
+                window: pool_window(p),
+                q: pool_q(p),
+            }],
+            QKernel::GlobalAvgPool(p) => vec![Call::GlobalAvgPool {
+                input: inp(0)?,
+                output: o,
+                q: pool_q(p),
+            }],
+            QKernel::Add(a) => vec![Call::Add {
+                a: inp(0)?,
+                b: inp(1)?,
+                output: o,
+                p: AddParams {
+                    a_zp: in_zp(0),
+                    b_zp: in_zp(1),
+                    a_rq: requant(a.a),
+                    b_rq: requant(a.b),
+                    out_rq: requant(a.out),
+                    left_shift: a.left_shift,
+                    out: out_quant(out_zp, a.clamp),
+                },
+            }],
+            QKernel::Concat if s.copy_concats.contains(&id) => {
+                let mut c0 = 0;
+                let mut v = Vec::new();
+                for (i, &m) in st.inputs.iter().enumerate() {
+                    let src = inp(i)?;
+                    v.push(Call::Copy {
+                        src,
+                        dst: o.channels(c0, src.c),
+                    });
+                    c0 += q.map(m).shape.c;
+                }
+                v
+            }
+            QKernel::Concat => Vec::new(),
+            QKernel::Channel(t) => vec![Call::Channel {
+                input: inp(0)?,
+                output: o,
+                t,
+            }],
+        };
+        out.push(StepCalls { step: id, calls });
+    }
+    Ok(out)
+}
+
+/// Runs one call on the arena.
+pub fn run_call(
+    call: &Call<'_>,
+    arena: &mut [i8],
+    patch: &mut [i16],
+) -> Result<(), ingot_rt::Error> {
+    match call {
+        Call::Conv {
+            input,
+            output,
+            conv,
+            params,
+        } => {
+            let t = conv.transform.as_ref().map(rt_transform);
+            let rq: Vec<Requant> = conv.requant.iter().map(|&m| requant(m)).collect();
+            ingot_rt::conv2d(
+                arena,
+                *input,
+                *output,
+                &conv.weights,
+                &conv.bias,
+                &rq,
+                params,
+                t.as_ref(),
+                patch,
+            )
+        }
+        Call::Linear {
+            input,
+            output,
+            lin,
+            out,
+        } => {
+            let rq: Vec<Requant> = lin.requant.iter().map(|&m| requant(m)).collect();
+            ingot_rt::linear(arena, *input, *output, &lin.weights, &lin.bias, &rq, *out)
+        }
+        Call::MaxPool {
+            input,
+            output,
+            window,
+            q,
+        } => ingot_rt::max_pool2d(arena, *input, *output, window, q),
+        Call::AvgPool {
+            input,
+            output,
+            window,
+            q,
+        } => ingot_rt::avg_pool2d(arena, *input, *output, window, q),
+        Call::GlobalAvgPool { input, output, q } => {
+            ingot_rt::global_avg_pool(arena, *input, *output, q)
+        }
+        Call::Add { a, b, output, p } => ingot_rt::add(arena, *a, *b, *output, p),
+        Call::Copy { src, dst } => ingot_rt::copy_channels(arena, *src, *dst),
+        Call::Channel { input, output, t } => {
+            ingot_rt::channel_transform(arena, *input, *output, &rt_transform(t))
+        }
+    }
+}
+
+/// A kernel refused a call.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ExecError {
+    /// The step.
+    pub step: StepId,
+    /// What the kernel said.
+    pub error: ingot_rt::Error,
+}
+
+/// Interprets the schedule through the `ingot-rt` kernels, exactly as the
+/// generated `run` does: copies `input` (HWC, compact) into the input view,
+/// runs every step and returns the compact output map. `trace` sees every
+/// step's output map, compacted, right after the step.
+pub fn execute(
+    q: &QGraph,
+    s: &Schedule,
+    calls: &[StepCalls<'_>],
+    input: &[i8],
+    trace: &mut dyn FnMut(StepId, &[i8]),
+) -> Result<Vec<i8>, ExecError> {
+    let mut arena = vec![0i8; s.arena_bytes];
+    let mut patch = vec![0i16; s.patch_bytes / 2];
+    let first = calls.first().map(|c| c.step).unwrap_or(StepId(0));
+    ingot_rt::copy_in(input, &mut arena, map_ref(q, s, q.input))
+        .map_err(|error| ExecError { step: first, error })?;
+    for sc in calls {
+        for c in &sc.calls {
+            run_call(c, &mut arena, &mut patch).map_err(|error| ExecError {
+                step: sc.step,
+                error,
+            })?;
+        }
+        let m = map_ref(q, s, q.step(sc.step).output);
+        let mut buf = vec![0i8; m.len()];
+        ingot_rt::copy_out(&arena, m, &mut buf).map_err(|error| ExecError {
+            step: sc.step,
+            error,
+        })?;
+        trace(sc.step, &buf);
+    }
+    let m = map_ref(q, s, q.output);
+    let mut out = vec![0i8; m.len()];
+    let last = calls.last().map(|c| c.step).unwrap_or(StepId(0));
+    ingot_rt::copy_out(&arena, m, &mut out).map_err(|error| ExecError { step: last, error })?;
+    Ok(out)
+}
+
+/// Checks the schedule against the graph before anything runs: one view per
+/// map that fits the arena, every step exactly once, inputs produced before
+/// they are read, the patch large enough, and every accumulator bounded.
+pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), String> {
+    if s.views.len() != q.maps.len() {
+        return Err(format!(
+            "schedule has {} map views for {} maps",
+            s.views.len(),
+            q.maps.len()
+        ));
+    }
+    for (i, m) in q.maps.iter().enumerate() {
+        let r = map_ref(q, s, crate::lower::QMapId(i as u32));
+        if !r.fits(s.arena_bytes) {
+            return Err(format!(
+                "map `{}` does not fit the {}-byte arena at offset {} stride {}",
+                m.name, s.arena_bytes, r.offset, r.stride
+            ));
+        }
+    }
+    let mut seen = vec![false; q.steps.len()];
+    let mut written = vec![false; q.maps.len()];
+    written[q.input.index()] = true;
+    for &id in &s.order {
+        if id.index() >= q.steps.len() || std::mem::replace(&mut seen[id.index()], true) {
+            return Err(format!(
+                "schedule order lists step {} twice or out of range",
+                id.0
+            ));
+        }
+        let st = q.step(id);
+        if let Some(m) = st.inputs.iter().find(|m| !written[m.index()]) {
+            return Err(format!(
+                "step `{}` runs before `{}` is written",
+                st.name,
+                q.map(*m).name
+            ));
+        }
+        written[st.output.index()] = true;
+    }
+    if seen.iter().any(|s| !s) {
+        return Err("schedule order misses a step".into());
+    }
+    if s.patch_bytes < super::schedule::min_patch_bytes(q) {
+        return Err(format!(
+            "patch of {} bytes is smaller than the {} the convolutions need",
+            s.patch_bytes,
+            super::schedule::min_patch_bytes(q)
+        ));
+    }
+    for st in &q.steps {
+        let (w, b, per) = match &st.kernel {
+            QKernel::Conv2d(c) => (
+                &c.weights,
+                &c.bias,
+                c.kernel[0] * c.kernel[1] * (c.in_channels / c.groups.max(1)),
+            ),
+            QKernel::Linear(l) => (&l.weights, &l.bias, l.in_features),
+            _ => continue,
+        };
+        if per == 0 || w.len() != per * b.len() {
+            return Err(format!(
+                "step `{}`: weight count does not match its shape",
+                st.name
+            ));
+        }
+        for (row, &bias) in w.chunks_exact(per).zip(b) {
+            if !ingot_rt::acc_fits(row, bias) {
+                return Err(format!(
+                    "step `{}`: an output channel's accumulator can exceed i32",
+                    st.name
+                ));
+            }
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,258 @@
+//! Code generation: a lowered [`QGraph`] and a [`Schedule`] become one Rust
+//! module (`NAME.rs`) plus its binary weights file (`NAME.weights.bin`).
+//!
+//! The module is `no_std`, allocation-free, free of `unsafe` and of floating
+//! point on the inference path; it calls the `ingot-rt` kernels with
+//! parameters that were all executed once by the compiler (see [`calls`]).
+//! Its public API:
+//!
+//! ```text
+//! pub const MODEL_NAME: &str;            pub const INPUT_SHAPE: [usize; 3]; // H, W, C
+//! pub const INPUT_LEN: usize;            pub const OUTPUT_LEN: usize;
+//! pub const ARENA_BYTES: usize;          pub const PATCH_LEN: usize; // i16
+//! pub const PATCH_BYTES: usize;          pub const SCRATCH_BYTES: usize;
+//! pub const INPUT_SCALE: f32;            pub const INPUT_ZERO_POINT: i32;
+//! pub const OUTPUT_SCALE: f32;           pub const OUTPUT_ZERO_POINT: i32;
+//! pub const SOFTMAX_DROPPED: bool;       pub const LABELS: [&str; N];
+//! pub const MODEL_HASH: &str;            pub const INGOT_VERSION: &str;
+//! pub const STEP_COUNT: usize;           pub const STEP_NAMES: [&str; STEP_COUNT];
+//! pub const STEP_MAP_NAMES: [&str; STEP_COUNT];
+//! pub struct Scratch { .. }              impl Scratch { pub const fn new() -> Self }
+//! pub fn run(scratch: &mut Scratch, input: &[i8; INPUT_LEN], output: &mut [i8; OUTPUT_LEN]);
+//! #[cfg(feature = "ingot-trace")]
+//! pub fn run_traced(scratch, input, output, f: &mut dyn FnMut(usize, &str, &[i8]));
+//! pub fn quantize_pixels(pixels: &[u8; INPUT_LEN], input: &mut [i8; INPUT_LEN]);
+//! pub fn argmax(output: &[i8; OUTPUT_LEN]) -> usize;
+//! pub fn dequantize(output: &[i8; OUTPUT_LEN], out: &mut [f32; OUTPUT_LEN]);
+//! ```
+
+pub mod blob;
+pub mod build_script;
+pub mod calls;
+pub mod emit;
+pub mod names;
+pub mod output;
+pub mod pipeline;
+pub mod report;
+pub mod schedule;
+pub mod testnets;
+
+pub use schedule::{MapView, Schedule};
+
+use crate::lower::QGraph;
+
+/// How tensors reach the module.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub enum WeightsMode {
+    /// `include_bytes!` of the weights file, decoded into `static` arrays by
+    /// `const fn`s at compile time (the default: fast to compile).
+    #[default]
+    IncludeBytes,
+    /// Every tensor as a literal array in the `.rs` file (for comparison; the
+    /// weights file is still written but not read).
+    Literal,
+}
+
+/// The memory budget of a target, as far as the generator checks it.
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub struct TargetInfo {
+    /// Name for docs and reports.
+    pub name: String,
+    /// RAM available for the scratch buffers, if limited.
+    pub ram_bytes: Option<usize>,
+    /// Flash available for the weights, if limited.
+    pub flash_bytes: Option<usize>,
+}
+
+/// Generator options.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct GenOptions {
+    /// Module name: files are `NAME.rs` and `NAME.weights.bin`.
+    pub module: String,
+    /// Target, for docs and the budget check.
+    pub target: Option<TargetInfo>,
+    /// Weights embedding.
+    pub weights: WeightsMode,
+    /// Hash of the source files (graph, weights, ranges), mixed into
+    /// `MODEL_HASH`.
+    pub source_hash: String,
+    /// Run every kernel call once at generation time (default true). Turning
+    /// it off only skips the dry run, not the static checks.
+    pub dry_run: bool,
+}
+
+impl Default for GenOptions {
+    fn default() -> Self {
+        GenOptions {
+            module: "model".into(),
+            target: None,
+            weights: WeightsMode::default(),
+            source_hash: String::new(),
+            dry_run: true,
+        }
+    }
+}
+
+/// The generated files, in memory.
+#[derive(Debug, Clone)]
+pub struct Generated {
+    /// `NAME.rs`.
+    pub module: String,
+    /// `NAME.weights.bin`.
+    pub weights: Vec<u8>,
+    /// `NAME.report.md`.
+    pub report_md: String,
+    /// `NAME.report.json`.
+    pub report_json: String,
+    /// The report's data.
+    pub report: report::Report,
+}
+
+impl Generated {
+    /// `(file name, contents)` of every file, for writing.
+    pub fn files(&self, module: &str) -> Vec<(String, Vec<u8>)> {
+        vec![
+            (format!("{module}.rs"), self.module.clone().into_bytes()),
+            (format!("{module}.weights.bin"), self.weights.clone()),
+            (
+                format!("{module}.report.md"),
+                self.report_md.clone().into_bytes(),
+            ),
+            (
+                format!("{module}.report.json"),
+                self.report_json.clone().into_bytes(),
+            ),
+        ]
+    }
+}
+
+/// Why generation failed.
+#[derive(Debug, thiserror::Error)]
+pub enum CodegenError {
+    /// The lowered graph is inconsistent.
+    #[error("lowered graph `{0}` is inconsistent: {1}")]
+    Graph(String, String),
+    /// The schedule does not fit the graph.
+    #[error("schedule is invalid: {0}")]
+    Schedule(String),
+    /// A kernel refused its parameters during the dry run.
+    #[error("step `{step}` ({kind}): ingot-rt refused the call: {error:?}")]
+    Kernel {
+        /// Layer name.
+        step: String,
+        /// Kernel kind.
+        kind: &'static str,
+        /// The kernel's error.
+        error: ingot_rt::Error,
+    },
+    /// The module name is not a plain file stem.
+    #[error("module name `{0}` must be a non-empty identifier ([A-Za-z_][A-Za-z0-9_]*)")]
+    ModuleName(String),
+    /// The model does not fit the target.
+    #[error("model does not fit target `{target}`: {what} needs {need} bytes, {have} available")]
+    Budget {
+        /// Target name.
+        target: String,
+        /// `RAM (scratch)` or `flash (weights)`.
+        what: &'static str,
+        /// Needed bytes.
+        need: usize,
+        /// Available bytes.
+        have: usize,
+    },
+}
+
+/// FNV-1a, 64 bit: a stable hash for `MODEL_HASH`.
+pub fn fnv1a(h: u64, bytes: &[u8]) -> u64 {
+    let mut h = h;
+    for &b in bytes {
+        h ^= b as u64;
+        h = h.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    h
+}
+
+/// FNV-1a offset basis.
+pub const FNV_BASIS: u64 = 0xcbf2_9ce4_8422_2325;
+
+/// True for `[A-Za-z_][A-Za-z0-9_]*`.
+pub fn is_module_name(s: &str) -> bool {
+    let mut c = s.chars();
+    matches!(c.next(), Some(ch) if ch.is_ascii_alphabetic() || ch == '_')
+        && c.all(|ch| ch.is_ascii_alphanumeric() || ch == '_')
+}
+
+/// Generates the module, weights file and reports.
+pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated, CodegenError> {
+    if !is_module_name(&opt.module) {
+        return Err(CodegenError::ModuleName(opt.module.clone()));
+    }
+    q.verify()
+        .map_err(|e| CodegenError::Graph(q.name.clone(), e))?;
+    calls::check_schedule(q, s).map_err(CodegenError::Schedule)?;
+    if let Some(t) = &opt.target {
+        let blob_len = blob::build(q).bytes.len();
+        for (what, need, have) in [
+            ("RAM (scratch)", s.arena_bytes + s.patch_bytes, t.ram_bytes),
+            ("flash (weights)", blob_len, t.flash_bytes),
+        ] {
+            if let Some(have) = have {
+                if need > have {
+                    return Err(CodegenError::Budget {
+                        target: t.name.clone(),
+                        what,
+                        need,
+                        have,
+                    });
+                }
+            }
+        }
+    }
+    let steps = calls::step_calls(q, s).map_err(CodegenError::Schedule)?;
+    if opt.dry_run {
+        let zp = q.map(q.input).qp.zero_point as i8;
+        let input = vec![zp; q.map(q.input).shape.len()];
+        calls::execute(q, s, &steps, &input, &mut |_, _| {}).map_err(|e| {
+            let st = q.step(e.step);
+            CodegenError::Kernel {
+                step: st.name.clone(),
+                kind: st.kernel.kind(),
+                error: e.error,
+            }
+        })?;
+    }
+    let blob = blob::build(q);
+    let mut namer = names::Namer::default();
+    let stems: Vec<String> = q.steps.iter().map(|st| namer.unique(&st.name)).collect();
+
+    let mut h = fnv1a(
+        FNV_BASIS,
+        &serde_json::to_vec(q).expect("QGraph serializes"),
+    );
+    h = fnv1a(h, &serde_json::to_vec(s).expect("Schedule serializes"));
+    h = fnv1a(h, opt.source_hash.as_bytes());
+    let hash = format!("{h:016x}");
+
+    let rep = report::build(q, s, &steps, &blob, opt, &hash);
+    let figures = rep.figures();
+    let table = rep.table();
+    let ctx = emit::Ctx {
+        q,
+        s,
+        calls: &steps,
+        blob: &blob,
+        stems: &stems,
+        opt,
+        hash: &hash,
+        table: &table,
+        figures: &figures,
+    };
+    let module = emit::module(&ctx);
+    Ok(Generated {
+        module,
+        weights: blob.bytes,
+        report_md: rep.markdown(),
+        report_json: rep.json(),
+        report: rep,
+    })
+}

@@ -1,0 +1,76 @@
+//! What the generator needs from memory planning.
+//!
+//! The code generator does not depend on the planner's types: it takes a
+//! [`Schedule`] (execution order, where every map lives in the arena, which
+//! concatenations must copy, and the two buffer sizes).
+//! [`Schedule::naive`] gives every map its own region, which is always
+//! valid and lets the generator be tested on its own.
+
+use crate::lower::{QGraph, QKernel, StepId};
+
+/// Where one map lives in the arena.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+pub struct MapView {
+    /// Arena index of element `(0, 0, 0)`.
+    pub offset: usize,
+    /// Pixel stride (`>= c`; larger inside a concatenation region).
+    pub stride: usize,
+}
+
+/// Execution order and memory layout of a [`QGraph`].
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
+pub struct Schedule {
+    /// Steps in execution order.
+    pub order: Vec<StepId>,
+    /// One view per map, indexed by `QMapId`.
+    pub views: Vec<MapView>,
+    /// Concatenation steps that copy their inputs; all other concatenations
+    /// are in place (their producers write into the region) and emit no code.
+    pub copy_concats: Vec<StepId>,
+    /// Arena size in bytes.
+    pub arena_bytes: usize,
+    /// Convolution patch buffer size in bytes (`i16` elements × 2).
+    pub patch_bytes: usize,
+}
+
+impl Schedule {
+    /// Every map at its own offset with `stride == c`, steps in graph order,
+    /// every concatenation copying.
+    pub fn naive(q: &QGraph) -> Schedule {
+        let mut views = Vec::with_capacity(q.maps.len());
+        let mut at = 0;
+        for m in &q.maps {
+            views.push(MapView {
+                offset: at,
+                stride: m.shape.c,
+            });
+            at += m.shape.len();
+        }
+        Schedule {
+            order: q.step_ids().collect(),
+            views,
+            copy_concats: q
+                .step_ids()
+                .filter(|&s| matches!(q.step(s).kernel, QKernel::Concat))
+                .collect(),
+            arena_bytes: at,
+            patch_bytes: min_patch_bytes(q),
+        }
+    }
+}
+
+/// The patch size in bytes the convolutions of `q` need: twice the largest
+/// `ingot_rt::conv_patch_len` (in `i16`) over all convolution steps (0
+/// without any).
+pub fn min_patch_bytes(q: &QGraph) -> usize {
+    q.steps
+        .iter()
+        .filter_map(|s| match &s.kernel {
+            QKernel::Conv2d(c) => {
+                Some(2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels))
+            }
+            _ => None,
+        })
+        .max()
+        .unwrap_or(0)
+}

@@ -1,0 +1,630 @@
+//! Checks of the generated modules: compiled as a real `#![no_std]`,
+//! `#![forbid(unsafe_code)]` crate with cargo, run on inputs, and compared
+//! bit for bit (outputs and every intermediate map, through the trace hook)
+//! with the compiler's interpretation of the same schedule through the
+//! `ingot-rt` kernels; plus determinism, hostile names, literal mode, an
+//! in-place concatenation schedule, the thumbv7em build and a snapshot.
+//!
+//! All networks go into one generated crate, built once per test run.
+
+use ingot_compiler::codegen::{
+    self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightsMode,
+};
+use ingot_compiler::lower::{QGraph, QKernel};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::sync::OnceLock;
+
+const INPUTS: usize = 6;
+
+/// Deterministic pseudo-random inputs of one network.
+fn inputs(q: &QGraph, seed: u64) -> Vec<Vec<i8>> {
+    let n = q.map(q.input).shape.len();
+    let mut s = seed.wrapping_mul(0x9e37_79b9_7f4a_7c15) | 1;
+    (0..INPUTS)
+        .map(|k| {
+            (0..n)
+                .map(|_| {
+                    s ^= s << 13;
+                    s ^= s >> 7;
+                    s ^= s << 17;
+                    match k {
+                        0 => -128,
+                        1 => 127,
+                        _ => (s >> 24) as u8 as i8,
+                    }
+                })
+                .collect()
+        })
+        .collect()
+}
+
+/// Every map of a step in the schedule: `(step index, map name)` → values.
+type Trace = BTreeMap<(usize, usize), Vec<i8>>;
+
+struct Net {
+    module: String,
+    q: QGraph,
+    schedule: Schedule,
+    weights: WeightsMode,
+}
+
+impl Net {
+    fn new(module: &str, q: QGraph) -> Net {
+        let schedule = Schedule::naive(&q);
+        Net {
+            module: module.into(),
+            q,
+            schedule,
+            weights: WeightsMode::IncludeBytes,
+        }
+    }
+
+    /// The interpreter's output and trace for every input.
+    fn expected(&self) -> Vec<(Vec<i8>, Trace)> {
+        let steps = calls::step_calls(&self.q, &self.schedule).unwrap();
+        inputs(&self.q, 7)
+            .iter()
+            .enumerate()
+            .map(|(k, x)| {
+                let mut t = Trace::new();
+                let mut i = 0;
+                let out = calls::execute(&self.q, &self.schedule, &steps, x, &mut |_, m| {
+                    t.insert((k, i), m.to_vec());
+                    i += 1;
+                })
+                .unwrap();
+                (out, t)
+            })
+            .collect()
+    }
+}
+
+/// A schedule where every concatenation is in place: producers write
+/// channel views of the concatenation's region (pixel stride = total
+/// channels), nested regions included.
+fn inplace_schedule(q: &QGraph) -> Schedule {
+    let mut views: Vec<Option<MapView>> = vec![None; q.maps.len()];
+    let mut at = 0;
+    let mut fresh = |c: usize, len: usize| {
+        let v = MapView {
+            offset: at,
+            stride: c,
+        };
+        at += len;
+        v
+    };
+    for st in q.steps.iter().rev() {
+        if !matches!(st.kernel, QKernel::Concat) {
+            continue;
+        }
+        let o = q.map(st.output).shape;
+        let ov = *views[st.output.index()].get_or_insert_with(|| fresh(o.c, o.len()));
+        let mut c0 = 0;
+        for &m in &st.inputs {
+            views[m.index()] = Some(MapView {
+                offset: ov.offset + c0,
+                stride: ov.stride,
+            });
+            c0 += q.map(m).shape.c;
+        }
+    }
+    let views: Vec<MapView> = q
+        .maps
+        .iter()
+        .zip(views)
+        .map(|(m, v)| v.unwrap_or_else(|| fresh(m.shape.c, m.shape.len())))
+        .collect();
+    let mut s = Schedule::naive(q);
+    s.views = views;
+    s.arena_bytes = at;
+    s.copy_concats.clear();
+    s
+}
+
+fn nets() -> Vec<Net> {
+    let dense = testnets::dense();
+    let mut lit = Net::new("plain_literal", testnets::plain());
+    lit.weights = WeightsMode::Literal;
+    let mut inplace = Net::new("dense_inplace", dense.clone());
+    inplace.schedule = inplace_schedule(&dense);
+    vec![
+        Net::new("plain", testnets::plain()),
+        Net::new("dense", dense),
+        Net::new("residual", testnets::residual()),
+        Net::new("depthwise", testnets::depthwise()),
+        Net::new("hostile", testnets::hostile_names()),
+        lit,
+        inplace,
+    ]
+}
+
+fn rt_path() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("../runtime-nostd")
+        .canonicalize()
+        .unwrap()
+}
+
+/// Writes `bytes` only when they differ, keeping mtimes (and cargo's cache)
+/// for unchanged files.
+fn put(path: &Path, bytes: &[u8]) {
+    if std::fs::read(path).ok().as_deref() != Some(bytes) {
+        std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+        std::fs::write(path, bytes).unwrap();
+    }
+}
+
+struct Built {
+    dir: PathBuf,
+    target: PathBuf,
+    /// module → per input: (output, trace from run_traced, argmax)
+    runs: BTreeMap<String, Vec<(Vec<i8>, Trace, usize)>>,
+    /// module → quantized pixels of the pixel input
+    pixels: BTreeMap<String, Vec<i8>>,
+}
+
+fn hex_decode(s: &str) -> Vec<i8> {
+    (0..s.len() / 2)
+        .map(|i| u8::from_str_radix(&s[2 * i..2 * i + 2], 16).unwrap() as i8)
+        .collect()
+}
+
+fn build() -> &'static Result<Built, String> {
+    static B: OnceLock<Result<Built, String>> = OnceLock::new();
+    B.get_or_init(|| {
+        let root = Path::new(env!("CARGO_TARGET_TMPDIR")).join("ingot-codegen-check");
+        let dir = root.join("crate");
+        let target = root.join("target");
+        let nets = nets();
+        let mut lib = String::from("#![no_std]\n#![forbid(unsafe_code)]\n#![deny(warnings)]\n");
+        let mut runner = String::from(RUNNER_HEAD);
+        for n in &nets {
+            let opt = GenOptions { module: n.module.clone(), weights: n.weights, ..GenOptions::default() };
+            let g = generate(&n.q, &n.schedule, &opt).map_err(|e| format!("{}: {e}", n.module))?;
+            for (name, bytes) in g.files(&n.module) {
+                put(&dir.join("src").join(name), &bytes);
+            }
+            lib.push_str(&format!("pub mod {m} {{\n    include!(\"{m}.rs\");\n}}\n", m = n.module));
+            let data: Vec<u8> = inputs(&n.q, 7).concat().iter().map(|&v| v as u8).collect();
+            put(&dir.join("inputs").join(format!("{}.bin", n.module)), &data);
+            runner.push_str(&format!("    check!({});\n", n.module));
+        }
+        runner.push_str("}\n");
+        put(&dir.join("src/lib.rs"), lib.as_bytes());
+        put(&dir.join("src/bin/runner.rs"), runner.as_bytes());
+        let manifest = format!(
+            "[package]\nname = \"ingot-gen-check\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n\
+             [dependencies]\ningot-rt = {{ path = {:?} }}\n\n[features]\ningot-trace = []\n\n[workspace]\n",
+            rt_path().display().to_string()
+        );
+        put(&dir.join("Cargo.toml"), manifest.as_bytes());
+        let out = Command::new(env!("CARGO"))
+            .args(["run", "--quiet", "--offline", "--features", "ingot-trace", "--bin", "runner"])
+            .current_dir(&dir)
+            .env("CARGO_TARGET_DIR", &target)
+            .env_remove("RUSTFLAGS")
+            .output()
+            .map_err(|e| e.to_string())?;
+        if !out.status.success() {
+            return Err(format!("generated crate failed:\n{}", String::from_utf8_lossy(&out.stderr)));
+        }
+        let mut runs: BTreeMap<String, Vec<(Vec<i8>, Trace, usize)>> = BTreeMap::new();
+        let mut pixels = BTreeMap::new();
+        for line in String::from_utf8_lossy(&out.stdout).lines() {
+            let f: Vec<&str> = line.split(' ').collect();
+            let m = f[1].to_string();
+            match f[0] {
+                "T" => {
+                    let (k, s): (usize, usize) = (f[2].parse().unwrap(), f[3].parse().unwrap());
+                    let e = runs.entry(m).or_default();
+                    while e.len() <= k {
+                        e.push((Vec::new(), Trace::new(), 0));
+                    }
+                    e[k].1.insert((k, s), hex_decode(f[5]));
+                }
+                "O" => {
+                    let k: usize = f[2].parse().unwrap();
+                    let e = runs.entry(m).or_default();
+                    while e.len() <= k {
+                        e.push((Vec::new(), Trace::new(), 0));
+                    }
+                    e[k].0 = hex_decode(f[3]);
+                    e[k].2 = f[4].parse().unwrap();
+                }
+                "P" => {
+                    pixels.insert(m, hex_decode(f[2]));
+                }
+                _ => return Err(format!("bad runner line {line}")),
+            }
+        }
+        Ok(Built { dir, target, runs, pixels })
+    })
+}
+
+const RUNNER_HEAD: &str = r#"//! Runs every generated module on its inputs and prints outputs and traces.
+use ingot_gen_check as g;
+
+fn hex(v: &[i8]) -> String {
+    v.iter().map(|b| format!("{:02x}", *b as u8)).collect()
+}
+
+macro_rules! check {
+    ($m:ident) => {{
+        let path = concat!(env!("CARGO_MANIFEST_DIR"), "/inputs/", stringify!($m), ".bin");
+        let data = std::fs::read(path).unwrap();
+        let mut scratch = Box::new(g::$m::Scratch::new());
+        for (k, chunk) in data.chunks_exact(g::$m::INPUT_LEN).enumerate() {
+            let input: [i8; g::$m::INPUT_LEN] = core::array::from_fn(|i| chunk[i] as i8);
+            let mut out = [0i8; g::$m::OUTPUT_LEN];
+            let mut steps = 0;
+            g::$m::run_traced(&mut scratch, &input, &mut out, &mut |s, name, m| {
+                assert_eq!(s, steps);
+                assert_eq!(name, g::$m::STEP_MAP_NAMES[s]);
+                steps += 1;
+                println!("T {} {} {} - {}", stringify!($m), k, s, hex(m));
+            });
+            assert_eq!(steps, g::$m::STEP_COUNT);
+            let mut plain = [0i8; g::$m::OUTPUT_LEN];
+            g::$m::run(&mut scratch, &input, &mut plain);
+            assert_eq!(out, plain, "run and run_traced differ");
+            let mut real = [0f32; g::$m::OUTPUT_LEN];
+            g::$m::dequantize(&out, &mut real);
+            for (r, &q) in real.iter().zip(out.iter()) {
+                assert_eq!(*r, g::$m::OUTPUT_SCALE * (q as i32 - g::$m::OUTPUT_ZERO_POINT) as f32);
+            }
+            println!("O {} {} {} {}", stringify!($m), k, hex(&out), g::$m::argmax(&out));
+        }
+        let px: [u8; g::$m::INPUT_LEN] = core::array::from_fn(|i| (i * 7 % 256) as u8);
+        let mut q = [0i8; g::$m::INPUT_LEN];
+        g::$m::quantize_pixels(&px, &mut q);
+        println!("P {} {}", stringify!($m), hex(&q));
+        assert_eq!(g::$m::SCRATCH_BYTES, g::$m::ARENA_BYTES + g::$m::PATCH_BYTES);
+        assert_eq!(g::$m::INPUT_LEN, g::$m::INPUT_SHAPE.iter().product::<usize>());
+    }};
+}
+
+fn main() {
+"#;
+
+fn built() -> &'static Built {
+    match build() {
+        Ok(b) => b,
+        Err(e) => panic!("{e}"),
+    }
+}
+
+fn check_net(module: &str) {
+    let b = built();
+    let net = nets().into_iter().find(|n| n.module == module).unwrap();
+    let got = &b.runs[module];
+    let want = net.expected();
+    assert_eq!(got.len(), want.len());
+    for (k, ((out, trace, am), (wout, wtrace))) in got.iter().zip(&want).enumerate() {
+        assert_eq!(trace.len(), wtrace.len(), "{module} input {k}: step count");
+        for (key, m) in wtrace {
+            assert_eq!(
+                &trace[key], m,
+                "{module} input {k}: map of step {} differs",
+                key.1
+            );
+        }
+        assert_eq!(out, wout, "{module} input {k}: output differs");
+        assert_eq!(*am, ingot_rt::argmax(wout));
+    }
+    // The maps are not degenerate: some step output varies across inputs.
+    let varied = (0..want[0].1.len()).any(|s| want[2].1[&(2, s)] != want[3].1[&(3, s)]);
+    assert!(varied, "{module}: all inputs give identical maps");
+    // The pixel helper applies the table.
+    let px: Vec<u8> = (0..net.q.map(net.q.input).shape.len())
+        .map(|i| (i * 7 % 256) as u8)
+        .collect();
+    let mut q = vec![0i8; px.len()];
+    let s = net.q.map(net.q.input).shape;
+    ingot_rt::quantize_pixels(
+        &px,
+        &mut q,
+        ingot_rt::MapRef::new(0, s.h, s.w, s.c),
+        &net.q.pixel_table,
+    )
+    .unwrap();
+    assert_eq!(b.pixels[module], q);
+}
+
+#[test]
+fn plain_stack_matches_interpreter_bit_for_bit() {
+    check_net("plain");
+}
+
+#[test]
+fn dense_concat_and_transforms_match_interpreter() {
+    check_net("dense");
+}
+
+#[test]
+fn residual_adds_match_interpreter() {
+    check_net("residual");
+}
+
+#[test]
+fn depthwise_and_grouped_match_interpreter() {
+    check_net("depthwise");
+}
+
+#[test]
+fn inplace_concat_schedule_matches_interpreter_and_naive() {
+    check_net("dense_inplace");
+    let b = built();
+    // The same network under the naive schedule gives the same bits.
+    for (a, n) in b.runs["dense_inplace"].iter().zip(&b.runs["dense"]) {
+        assert_eq!(a.0, n.0);
+    }
+    // And the in-place module emits no copy for its concatenations.
+    let text = std::fs::read_to_string(b.dir.join("src/dense_inplace.rs")).unwrap();
+    assert!(!text.contains("copy_channels"));
+    assert!(std::fs::read_to_string(b.dir.join("src/dense.rs"))
+        .unwrap()
+        .contains("copy_channels"));
+}
+
+#[test]
+fn hostile_names_compile_and_behave_like_plain() {
+    check_net("hostile");
+    let b = built();
+    for (h, p) in b.runs["hostile"].iter().zip(&b.runs["plain"]) {
+        assert_eq!(h.0, p.0);
+    }
+    let text = std::fs::read_to_string(b.dir.join("src/hostile.rs")).unwrap();
+    // Names only appear escaped in strings or docs: parsing the file finds
+    // no item other than the ones the generator writes.
+    let file = syn::parse_file(&text).unwrap();
+    let allowed = [
+        "MODEL_NAME",
+        "INPUT_SHAPE",
+        "INPUT_LEN",
+        "OUTPUT_LEN",
+        "ARENA_BYTES",
+        "PATCH_LEN",
+        "PATCH_BYTES",
+        "SCRATCH_BYTES",
+        "INPUT_SCALE",
+        "INPUT_ZERO_POINT",
+        "OUTPUT_SCALE",
+        "OUTPUT_ZERO_POINT",
+        "SOFTMAX_DROPPED",
+        "LABELS",
+        "MODEL_HASH",
+        "INGOT_VERSION",
+        "STEP_COUNT",
+        "STEP_NAMES",
+        "STEP_MAP_NAMES",
+        "Scratch",
+        "run",
+        "TRACE_BYTES",
+        "run_traced",
+        "quantize_pixels",
+        "argmax",
+        "dequantize",
+        "ok",
+        "forward",
+        "ingot_data",
+    ];
+    for item in &file.items {
+        let name = match item {
+            syn::Item::Const(i) => i.ident.to_string(),
+            syn::Item::Struct(i) => i.ident.to_string(),
+            syn::Item::Fn(i) => i.sig.ident.to_string(),
+            syn::Item::Mod(i) => i.ident.to_string(),
+            syn::Item::Impl(_) => continue,
+            other => panic!(
+                "unexpected item {:?}",
+                quote::ToTokens::to_token_stream(other).to_string()
+            ),
+        };
+        assert!(allowed.contains(&name.as_str()), "unexpected item `{name}`");
+    }
+    for line in text.lines().filter(|l| l.contains("panic!(\"boom\")")) {
+        assert!(
+            line.trim_start().starts_with("///"),
+            "a name reached the code unescaped: {line}"
+        );
+    }
+    assert!(
+        text.contains(r#"panic!(\"boom\")"#),
+        "the name should appear escaped"
+    );
+}
+
+#[test]
+fn literal_arrays_behave_like_include_bytes() {
+    check_net("plain_literal");
+    let b = built();
+    for (l, p) in b.runs["plain_literal"].iter().zip(&b.runs["plain"]) {
+        assert_eq!(l.0, p.0);
+    }
+    let text = std::fs::read_to_string(b.dir.join("src/plain_literal.rs")).unwrap();
+    assert!(!text.contains("include_bytes!"));
+}
+
+#[test]
+fn generated_crate_builds_for_thumbv7em_without_std() {
+    let b = built();
+    let sysroot = Command::new("rustc")
+        .args(["--print", "sysroot"])
+        .output()
+        .unwrap();
+    let sysroot = String::from_utf8_lossy(&sysroot.stdout).trim().to_string();
+    if !Path::new(&sysroot)
+        .join("lib/rustlib/thumbv7em-none-eabihf")
+        .exists()
+    {
+        eprintln!("thumbv7em-none-eabihf not installed; skipped");
+        return;
+    }
+    let out = Command::new(env!("CARGO"))
+        .args([
+            "build",
+            "--quiet",
+            "--offline",
+            "--lib",
+            "--release",
+            "--target",
+            "thumbv7em-none-eabihf",
+        ])
+        .current_dir(&b.dir)
+        .env("CARGO_TARGET_DIR", &b.target)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
+#[test]
+fn generation_is_deterministic() {
+    for q in testnets::all() {
+        let s = Schedule::naive(&q);
+        let a = generate(&q, &s, &GenOptions::default()).unwrap();
+        let b = generate(&q.clone(), &s.clone(), &GenOptions::default()).unwrap();
+        assert_eq!(a.module, b.module);
+        assert_eq!(a.weights, b.weights);
+        assert_eq!(a.report_md, b.report_md);
+        assert_eq!(a.report_json, b.report_json);
+    }
+    // The hash follows the model: one changed weight changes it.
+    let q = testnets::plain();
+    let mut q2 = q.clone();
+    if let QKernel::Conv2d(c) = &mut q2.steps[0].kernel {
+        c.weights[0] = c.weights[0].wrapping_add(1);
+    }
+    let h = |q: &QGraph| {
+        generate(q, &Schedule::naive(q), &GenOptions::default())
+            .unwrap()
+            .report
+            .model_hash
+    };
+    assert_ne!(h(&q), h(&q2));
+}
+
+#[test]
+fn weights_file_holds_exactly_the_parameters() {
+    for q in testnets::all() {
+        let g = generate(&q, &Schedule::naive(&q), &GenOptions::default()).unwrap();
+        let mut want = 0;
+        for st in &q.steps {
+            want += match &st.kernel {
+                QKernel::Conv2d(c) => {
+                    c.weights.len()
+                        + 4 * c.bias.len()
+                        + 8 * c.requant.len()
+                        + match &c.transform {
+                            Some(ingot_compiler::lower::ChannelTransform::Affine {
+                                mul,
+                                add,
+                                ..
+                            }) => 4 * (mul.len() + add.len()),
+                            Some(ingot_compiler::lower::ChannelTransform::Table(t)) => t.len(),
+                            None => 0,
+                        }
+                }
+                QKernel::Linear(l) => l.weights.len() + 4 * l.bias.len() + 8 * l.requant.len(),
+                QKernel::Channel(ingot_compiler::lower::ChannelTransform::Affine {
+                    mul,
+                    add,
+                    ..
+                }) => 4 * (mul.len() + add.len()),
+                QKernel::Channel(ingot_compiler::lower::ChannelTransform::Table(t)) => t.len(),
+                _ => 0,
+            };
+        }
+        want += q.pixel_table.len();
+        assert_eq!(g.weights.len(), want, "{}", q.name);
+        assert_eq!(
+            g.report.weights_sections.iter().map(|s| s.1).sum::<usize>(),
+            want
+        );
+    }
+}
+
+#[test]
+fn invalid_parameters_are_refused_at_generation() {
+    // A requantization multiplier the kernels reject.
+    let mut q = testnets::plain();
+    if let QKernel::Conv2d(c) = &mut q.steps[2].kernel {
+        c.requant[3].shift = 40;
+    }
+    let e = generate(&q, &Schedule::naive(&q), &GenOptions::default()).unwrap_err();
+    assert!(e.to_string().contains("conv2"), "{e}");
+    // A schedule whose views overlap where the kernel forbids it.
+    let q = testnets::plain();
+    let mut s = Schedule::naive(&q);
+    s.views[1] = s.views[0];
+    assert!(generate(&q, &s, &GenOptions::default()).is_err());
+    // A bad module name.
+    let opt = GenOptions {
+        module: "a-b".into(),
+        ..GenOptions::default()
+    };
+    assert!(generate(&q, &Schedule::naive(&q), &opt).is_err());
+}
+
+#[test]
+fn budget_is_checked_against_the_target() {
+    let q = testnets::plain();
+    let s = Schedule::naive(&q);
+    let mut t = codegen::TargetInfo {
+        name: "tiny".into(),
+        ram_bytes: Some(s.arena_bytes + s.patch_bytes),
+        flash_bytes: Some(1 << 20),
+    };
+    let opt = |t: &codegen::TargetInfo| GenOptions {
+        target: Some(t.clone()),
+        ..GenOptions::default()
+    };
+    assert!(generate(&q, &s, &opt(&t)).is_ok());
+    t.ram_bytes = Some(s.arena_bytes + s.patch_bytes - 1);
+    let e = generate(&q, &s, &opt(&t)).unwrap_err();
+    assert!(matches!(e, codegen::CodegenError::Budget { .. }));
+    assert!(e.to_string().contains("does not fit target `tiny`"), "{e}");
+}
+
+/// The generated module of `plain` is kept in `tests/out/` (its input, the
+/// lowered graph as JSON, in `tests/in/`). `INGOT_BLESS=1` rewrites both.
+#[test]
+fn snapshot_of_plain_module() {
+    let here = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests");
+    let q = testnets::plain();
+    let input = serde_json::to_string_pretty(&q).unwrap() + "\n";
+    let g = generate(
+        &q,
+        &Schedule::naive(&q),
+        &GenOptions {
+            module: "plain".into(),
+            ..GenOptions::default()
+        },
+    )
+    .unwrap();
+    let files = [
+        (here.join("in/plain.qgraph.json"), input.into_bytes()),
+        (here.join("out/plain.rs"), g.module.into_bytes()),
+        (here.join("out/plain.report.md"), g.report_md.into_bytes()),
+    ];
+    if std::env::var_os("INGOT_BLESS").is_some() {
+        for (p, b) in &files {
+            std::fs::create_dir_all(p.parent().unwrap()).unwrap();
+            std::fs::write(p, b).unwrap();
+        }
+    }
+    for (p, b) in &files {
+        let have = std::fs::read(p)
+            .unwrap_or_else(|_| panic!("{} missing; run with INGOT_BLESS=1", p.display()));
+        assert!(
+            have == *b,
+            "{} differs from the generator's output; rerun with INGOT_BLESS=1 if intended",
+            p.display()
+        );
+    }
+}

@@ -1,0 +1,64 @@
+//! `ingot build GRAPH.json (--images DIR | --ranges FILE) [--target FILE] --out DIR [--module NAME] [--force]`.
+
+use ingot_compiler::codegen::{output, pipeline};
+use std::path::PathBuf;
+
+/// Arguments of `ingot build`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The graph file (`ingot.graph.v1` JSON); its weights file is read too.
+    pub graph: PathBuf,
+    /// Calibrate on the images in this folder.
+    #[arg(long, conflicts_with = "ranges", required_unless_present = "ranges")]
+    pub images: Option<PathBuf>,
+    /// Use a saved ranges file (`ingot.ranges.v1`) instead of calibrating.
+    #[arg(long)]
+    pub ranges: Option<PathBuf>,
+    /// Target description (TOML); the build fails if the model does not fit.
+    #[arg(long)]
+    pub target: Option<PathBuf>,
+    /// Output folder for NAME.rs, NAME.weights.bin, NAME.report.md, NAME.report.json.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Module name.
+    #[arg(long, default_value = "model")]
+    pub module: String,
+    /// Overwrite files in --out that ingot did not write.
+    #[arg(long)]
+    pub force: bool,
+}
+
+/// Compiles in memory, then writes all files into `--out` or none.
+pub fn run(args: &Args) -> anyhow::Result<()> {
+    let ranges = match (&args.ranges, &args.images) {
+        (Some(r), _) => pipeline::RangesSource::File(r.clone()),
+        (None, Some(d)) => pipeline::RangesSource::Images(d.clone()),
+        (None, None) => anyhow::bail!("pass --ranges FILE or --images DIR"),
+    };
+    let req = pipeline::Request {
+        graph: args.graph.clone(),
+        ranges,
+        target: args.target.clone(),
+        module: args.module.clone(),
+    };
+    let g = pipeline::compile(&req)?;
+    output::write_all(&args.out, &g.files(&args.module), args.force)?;
+    let r = &g.report;
+    println!(
+        "wrote {m}.rs, {m}.weights.bin, {m}.report.md, {m}.report.json into {out}",
+        m = args.module,
+        out = args.out.display()
+    );
+    println!(
+        "{}: {} steps, {} parameters, {} MACs; RAM {} bytes (arena {} + patch {}), weights {} bytes",
+        r.network,
+        r.layers.len(),
+        r.params,
+        r.macs,
+        r.scratch_bytes,
+        r.arena_bytes,
+        r.patch_bytes,
+        r.weights_bytes
+    );
+    Ok(())
+}
