@@ -1,6 +1,298 @@
 //! Calibration: observe every float map on sample images and choose int8
 //! ranges.
+//!
+//! [`run`] reads an [`ImageSet`], runs every calibration image through a
+//! [`MapSource`] (the float reference), records each map with the
+//! observers of [`observe`] and returns [`Ranges`] plus per-map statistics.
+//! A `holdout` share of the images is kept apart for evaluation.
 
+pub mod images;
+pub mod observe;
 pub mod ranges;
 
+pub use images::{ImageError, ImageSet, Sample};
+pub use observe::{Method, DEFAULT_BINS};
 pub use ranges::{MapRange, Ranges, RangesError};
+
+use crate::graph::{Graph, MapId};
+use indicatif::{ProgressBar, ProgressStyle};
+use observe::{Extremes, Histograms};
+use rayon::prelude::*;
+use std::io::IsTerminal;
+use std::sync::atomic::{AtomicBool, Ordering};
+
+/// Something that runs one preprocessed input `[C, H, W]` and shows every
+/// map it computes (the graph input included) to `visit`, in any order.
+pub trait MapSource: Sync {
+    /// Number of maps (`Graph::map_count`).
+    fn map_count(&self) -> usize;
+    /// Runs one input.
+    fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32]));
+}
+
+/// Options of a calibration run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CalibOptions {
+    /// Range-selection method.
+    pub method: Method,
+    /// Histogram bins per side (default [`DEFAULT_BINS`]).
+    pub bins: usize,
+    /// Share of the images kept for evaluation, in `[0, 1)`.
+    pub holdout: f64,
+    /// Skip and count unreadable images instead of failing.
+    pub skip_bad: bool,
+    /// Show a progress bar on standard error (only when it is a terminal).
+    pub progress: bool,
+}
+
+impl Default for CalibOptions {
+    fn default() -> Self {
+        CalibOptions { method: Method::MinMax, bins: DEFAULT_BINS, holdout: 0.0, skip_bad: false, progress: false }
+    }
+}
+
+/// Why calibration failed.
+#[derive(Debug, thiserror::Error)]
+pub enum CalibError {
+    /// An image could not be read (and `skip_bad` was off).
+    #[error(transparent)]
+    Image(#[from] ImageError),
+    /// The options are not usable.
+    #[error("{0}")]
+    Options(String),
+    /// No image was left to calibrate on.
+    #[error("no calibration image left: {listed} listed, {held_out} held out for evaluation, {skipped} unreadable")]
+    NoImages {
+        /// Images listed.
+        listed: usize,
+        /// Held out.
+        held_out: usize,
+        /// Skipped as unreadable.
+        skipped: usize,
+    },
+    /// The graph or weights file could not be hashed.
+    #[error("cannot hash the graph files: {0}")]
+    Hash(std::io::Error),
+}
+
+/// Statistics of one map over the calibration images.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct MapStats {
+    /// Observed minimum and maximum (widened to contain 0).
+    pub observed: MapRange,
+    /// Share of the observed values beyond the chosen range, at histogram
+    /// bin resolution (0 for `minmax`).
+    pub clipped: f64,
+    /// Finite values observed.
+    pub values: u64,
+    /// Non-finite values observed (ignored by the ranges).
+    pub nonfinite: u64,
+}
+
+/// An image that could not be read and was skipped.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Skipped {
+    /// Index in the [`ImageSet`].
+    pub index: usize,
+    /// The error message (names the file).
+    pub reason: String,
+}
+
+/// The result of [`run`].
+#[derive(Debug, Clone)]
+pub struct Calibration {
+    /// Chosen ranges, ready to save or lower.
+    pub ranges: Ranges,
+    /// Per-map statistics, indexed by `MapId`.
+    pub stats: Vec<MapStats>,
+    /// Indices (into the [`ImageSet`]) of the images observed.
+    pub calibration: Vec<usize>,
+    /// Indices of the images held out for evaluation (not observed).
+    pub evaluation: Vec<usize>,
+    /// Unreadable images skipped (only with `skip_bad`), by index.
+    pub skipped: Vec<Skipped>,
+}
+
+/// The deterministic holdout split: image `i` of `n` is held out when
+/// `floor((i + 1)·f) > floor(i·f)`, which spreads exactly `floor(n·f)`
+/// held-out images evenly through the sorted list (every `1/f`-th image).
+/// Returns `(calibration, evaluation)` indices.
+pub fn split(n: usize, fraction: f64) -> (Vec<usize>, Vec<usize>) {
+    let (mut cal, mut eval) = (Vec::new(), Vec::new());
+    for i in 0..n {
+        if ((i + 1) as f64 * fraction).floor() > (i as f64 * fraction).floor() {
+            eval.push(i);
+        } else {
+            cal.push(i);
+        }
+    }
+    (cal, eval)
+}
+
+/// A progress bar for `len` steps: hidden unless wanted and standard error
+/// is a terminal.
+pub fn progress_bar(len: u64, wanted: bool, message: &str) -> ProgressBar {
+    if !wanted || !std::io::stderr().is_terminal() {
+        return ProgressBar::hidden();
+    }
+    let pb = ProgressBar::new(len);
+    if let Ok(style) = ProgressStyle::with_template("{msg} [{bar:30}] {pos}/{len} images ({per_sec}, eta {eta})") {
+        pb.set_style(style.progress_chars("=> "));
+    }
+    pb.set_message(message.to_string());
+    pb
+}
+
+/// One pass over `indices`: loads each image, runs it through `src`, and
+/// folds every map into an accumulator. Accumulators are combined with
+/// `merge`, which must be exact and order-free (counts, minima, maxima) so
+/// the result does not depend on the thread count. Unreadable images are
+/// returned sorted by index when `skip_bad`; otherwise the first one (by
+/// index, among those met) is the error.
+pub fn pass<S, A>(
+    src: &S,
+    set: &ImageSet,
+    indices: &[usize],
+    skip_bad: bool,
+    pb: &ProgressBar,
+    init: impl Fn() -> A + Sync + Send,
+    observe: impl Fn(&mut A, MapId, &[f32]) + Sync + Send,
+    merge: impl Fn(A, A) -> A + Sync + Send,
+) -> Result<(A, Vec<(usize, ImageError)>), ImageError>
+where
+    S: MapSource + ?Sized,
+    A: Send,
+{
+    let failed = AtomicBool::new(false);
+    let (acc, mut bad) = indices
+        .par_iter()
+        .fold(
+            || (init(), Vec::new()),
+            |(mut acc, mut bad), &i| {
+                if !skip_bad && failed.load(Ordering::Relaxed) {
+                    return (acc, bad);
+                }
+                match set.load(i) {
+                    Ok(sample) => src.run(&sample.input, &mut |m, v| observe(&mut acc, m, v)),
+                    Err(e) => {
+                        failed.store(true, Ordering::Relaxed);
+                        bad.push((i, e));
+                    }
+                }
+                pb.inc(1);
+                (acc, bad)
+            },
+        )
+        .reduce(
+            || (init(), Vec::new()),
+            |(a, mut ba), (b, bb)| {
+                ba.extend(bb);
+                (merge(a, b), ba)
+            },
+        );
+    bad.sort_by_key(|(i, _)| *i);
+    if !skip_bad {
+        if let Some((_, e)) = bad.into_iter().next() {
+            return Err(e);
+        }
+        return Ok((acc, Vec::new()));
+    }
+    Ok((acc, bad))
+}
+
+/// What [`observe_set`] finds: a chosen range and statistics per map, and
+/// which images were used for what.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Observed {
+    /// Chosen range per map.
+    pub ranges: Vec<MapRange>,
+    /// Statistics per map.
+    pub stats: Vec<MapStats>,
+    /// Indices of the images observed.
+    pub calibration: Vec<usize>,
+    /// Indices held out for evaluation.
+    pub evaluation: Vec<usize>,
+    /// Unreadable images skipped.
+    pub skipped: Vec<Skipped>,
+}
+
+/// Calibrates `graph` on `images` through `src` (normally the float
+/// reference of `graph`; see [`run`]).
+pub fn run_with_source<S: MapSource + ?Sized>(
+    graph: &Graph,
+    src: &S,
+    images: &ImageSet,
+    opts: &CalibOptions,
+) -> Result<Calibration, CalibError> {
+    debug_assert_eq!(src.map_count(), graph.map_count());
+    let o = observe_set(src, images, opts)?;
+    let ranges = Ranges {
+        graph: graph.name().to_string(),
+        graph_hash: ranges::graph_hash(graph).map_err(CalibError::Hash)?,
+        method: opts.method.to_string(),
+        images: o.calibration.len(),
+        maps: o.ranges,
+    };
+    Ok(Calibration { ranges, stats: o.stats, calibration: o.calibration, evaluation: o.evaluation, skipped: o.skipped })
+}
+
+/// The graph-independent core of calibration: both passes over the
+/// calibration images of `images` and the choice of every map's range.
+pub fn observe_set<S: MapSource + ?Sized>(src: &S, images: &ImageSet, opts: &CalibOptions) -> Result<Observed, CalibError> {
+    if !(0.0..1.0).contains(&opts.holdout) {
+        return Err(CalibError::Options(format!("holdout {} is not in [0, 1)", opts.holdout)));
+    }
+    if opts.bins < 2 {
+        return Err(CalibError::Options(format!("{} histogram bins; need at least 2", opts.bins)));
+    }
+    let n_maps = src.map_count();
+    let (cal_all, evaluation) = split(images.len(), opts.holdout);
+    let passes = if opts.method.needs_histogram() { 2 } else { 1 };
+    let pb = progress_bar((passes * cal_all.len()) as u64, opts.progress, "calibrating");
+
+    let (ext, bad) = pass(
+        src,
+        images,
+        &cal_all,
+        opts.skip_bad,
+        &pb,
+        || Extremes::new(n_maps),
+        |a, m, v| a.observe(m, v),
+        |a, b| a.merge(&b),
+    )?;
+    let bad_set: std::collections::BTreeSet<usize> = bad.iter().map(|(i, _)| *i).collect();
+    let calibration: Vec<usize> = cal_all.iter().copied().filter(|i| !bad_set.contains(i)).collect();
+    let skipped: Vec<Skipped> = bad.into_iter().map(|(index, e)| Skipped { index, reason: e.to_string() }).collect();
+    if calibration.is_empty() {
+        return Err(CalibError::NoImages { listed: images.len(), held_out: evaluation.len(), skipped: skipped.len() });
+    }
+
+    let hist = if opts.method.needs_histogram() {
+        pb.set_message("histograms");
+        let (h, _) = pass(
+            src,
+            images,
+            &calibration,
+            opts.skip_bad,
+            &pb,
+            || Histograms::new(&ext, opts.bins),
+            |a, m, v| a.observe(m, v),
+            |a, b| a.merge(&b),
+        )?;
+        Some(h)
+    } else {
+        None
+    };
+    pb.finish_and_clear();
+
+    let choices: Vec<observe::Choice> = (0..n_maps)
+        .into_par_iter()
+        .map(|i| observe::choose(opts.method, &ext.maps[i], hist.as_ref().map(|h| &h.maps[i])))
+        .collect();
+    let stats = choices
+        .iter()
+        .zip(&ext.maps)
+        .map(|(c, mm)| MapStats { observed: mm.range(), clipped: c.clipped, values: mm.count, nonfinite: mm.nonfinite })
+        .collect();
+    Ok(Observed { ranges: choices.iter().map(|c| c.range).collect(), stats, calibration, evaluation, skipped })
+}
