@@ -50,6 +50,9 @@ use std::str::FromStr;
 /// Bins per histogram side.
 pub const DEFAULT_BINS: usize = 2048;
 
+/// Floor of the normalised quantized distribution in the `kl` method.
+pub const KL_EPSILON: f64 = 1e-4;
+
 /// Coordinate-descent rounds of the `mse` search.
 pub const MSE_ROUNDS: usize = 4;
 
@@ -450,7 +453,9 @@ fn mse_edges(h: &MapHist) -> (usize, usize) {
 ///   group's mass evenly over the group's bins where `P > 0` (bins where
 ///   `P = 0` stay 0);
 /// - both are normalised, and `KL(P‖Q) = Σ_{P_i > 0} p_i ln(p_i / q_i)`
-///   (infinite if some `q_i = 0` where `p_i > 0`).
+///   where `Q` is first floored at [`KL_EPSILON`] (after normalising) in
+///   the bins where `P > 0` and renormalised, so that an end whose last
+///   group holds no unclipped value is penalised rather than excluded.
 pub fn kl_threshold(counts: &[u64], levels: usize) -> usize {
     let bins = counts.len();
     if bins <= levels {
@@ -489,15 +494,213 @@ fn kl_at(counts: &[u64], levels: usize, k: usize, beyond: u64, p: &mut [f64], q:
     if sp == 0.0 || sq == 0.0 {
         return f64::INFINITY;
     }
+    // Normalise Q, floor it at KL_EPSILON where P > 0 (a group emptied by
+    // the clipping cannot represent the clipped mass), and renormalise.
+    let mut sq2 = 0.0;
+    for i in 0..k {
+        if p[i] > 0.0 {
+            q[i] = (q[i] / sq).max(KL_EPSILON);
+            sq2 += q[i];
+        }
+    }
     let mut kl = 0.0;
     for i in 0..k {
         if p[i] > 0.0 {
-            if q[i] == 0.0 {
-                return f64::INFINITY;
-            }
-            let (pi, qi) = (p[i] / sp, q[i] / sq);
+            let (pi, qi) = (p[i] / sp, q[i] / sq2);
             kl += pi * (pi / qi).ln();
         }
     }
     kl
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn hist_of(values: &[f32], bins: usize) -> (MinMax, MapHist) {
+        let mut mm = MinMax::default();
+        mm.observe(values);
+        let mut h = MapHist::new(&mm, bins);
+        h.observe(values);
+        (mm, h)
+    }
+
+    #[test]
+    fn method_parses_and_prints() {
+        assert_eq!("minmax".parse::<Method>().unwrap(), Method::MinMax);
+        assert_eq!("percentile:99.99".parse::<Method>().unwrap(), Method::Percentile(99.99));
+        assert_eq!("mse".parse::<Method>().unwrap(), Method::Mse);
+        assert_eq!("kl".parse::<Method>().unwrap(), Method::Kl);
+        assert_eq!(Method::Percentile(99.9).to_string(), "percentile:99.9");
+        assert!("percentile:0".parse::<Method>().is_err());
+        assert!("percentile:101".parse::<Method>().is_err());
+        assert!("entropy".parse::<Method>().unwrap_err().contains("unknown method `entropy`"));
+    }
+
+    #[test]
+    fn minmax_merge_is_exact_and_ignores_nonfinite() {
+        let (mut a, mut b) = (MinMax::default(), MinMax::default());
+        a.observe(&[1.0, -2.0, f32::NAN]);
+        b.observe(&[5.0, f32::INFINITY, 0.5]);
+        a.merge(&b);
+        assert_eq!((a.min, a.max, a.count, a.nonfinite), (-2.0, 5.0, 4, 2));
+        assert_eq!(MinMax::default().range(), MapRange { min: 0.0, max: 0.0 });
+        // A positive-only map's range is widened down to 0.
+        let mut c = MinMax::default();
+        c.observe(&[0.5, 3.0]);
+        assert_eq!(c.range(), MapRange { min: 0.0, max: 3.0 });
+    }
+
+    #[test]
+    fn histogram_bins_both_sides() {
+        // limit 4 on each side, 4 bins of width 1.
+        let (_, h) = hist_of(&[-4.0, -0.5, 0.0, 0.5, 1.5, 3.99, 4.0], 4);
+        assert_eq!(h.pos.counts, vec![2, 1, 0, 2]);
+        assert_eq!(h.neg.counts, vec![1, 0, 0, 1]);
+        assert_eq!(h.pos.edge(2), 2.0);
+        assert_eq!(h.pos.edge(4), 4.0);
+    }
+
+    /// KL choice on a histogram small enough to compute by hand.
+    ///
+    /// counts h = [6, 2, 1, 1], 2 levels; candidates k = 2, 3, 4.
+    ///
+    /// k = 2: P = [6, 2+1+1] = [6, 4]; groups {0}, {1}: Q = [6, 2].
+    ///   p = [0.6, 0.4], q = [0.75, 0.25];
+    ///   KL = 0.6 ln(0.8) + 0.4 ln(1.6) = -0.133886 + 0.188001 = 0.054115.
+    /// k = 3: P = [6, 2, 1+1] = [6, 2, 2]; groups [0,1) and [1,3):
+    ///   Q = [6, 3/2, 3/2]; p = [0.6, 0.2, 0.2], q = [6/9, 1/6, 1/6];
+    ///   KL = 0.6 ln(0.9) + 0.4 ln(1.2) = -0.063216 + 0.072929 = 0.009713.
+    /// k = 4: P = [6, 2, 1, 1]; groups [0,2) and [2,4): Q = [4, 4, 1, 1];
+    ///   p = [0.6, 0.2, 0.1, 0.1], q = [0.4, 0.4, 0.1, 0.1];
+    ///   KL = 0.6 ln(1.5) + 0.2 ln(0.5) = 0.243279 - 0.138629 = 0.104650.
+    /// Smallest: k = 3.
+    #[test]
+    fn kl_threshold_matches_hand_computation() {
+        let h = [6u64, 2, 1, 1];
+        let (mut p, mut q) = (vec![0.0; 4], vec![0.0; 4]);
+        let expect = [(2, 4u64, 0.054115), (3, 2, 0.009713), (4, 1, 0.104650)];
+        for (k, beyond, kl) in expect {
+            let got = kl_at(&h, 2, k, beyond, &mut p, &mut q);
+            assert!((got - kl).abs() < 1e-5, "k = {k}: {got} vs {kl}");
+        }
+        assert_eq!(kl_threshold(&h, 2), 3);
+        // With no more bins than levels nothing is clipped.
+        assert_eq!(kl_threshold(&h, 4), 4);
+    }
+
+    /// Exponential quantiles `-ln(1 - (i + ½)/n)`: a long, thinning tail.
+    fn exponential(n: usize) -> Vec<f32> {
+        (0..n).map(|i| -(1.0 - (i as f64 + 0.5) / n as f64).ln() as f32).collect()
+    }
+
+    #[test]
+    fn kl_clips_a_long_tail_and_outliers() {
+        // 100,000 exponential values (max ≈ 12.2) and 5 outliers near 100.
+        // Spread over 2048 bins, the bulk needs fine bins to keep its shape,
+        // so the KL end lies far below the outliers, yet above the bulk's
+        // 99th percentile (ln 100 ≈ 4.6).
+        let mut v = exponential(100_000);
+        v.extend([96.0, 97.0, 98.0, 99.0, 100.0]);
+        let (mm, h) = hist_of(&v, 2048);
+        let kl = choose(Method::Kl, &mm, Some(&h));
+        assert!(kl.range.max > 4.6 && kl.range.max < 20.0, "{:?}", kl.range);
+        // Without the outliers the tail alone is clipped, less hard.
+        let (mm2, h2) = hist_of(&exponential(100_000), 2048);
+        let kl2 = choose(Method::Kl, &mm2, Some(&h2));
+        assert!(kl2.range.max > 4.6 && kl2.range.max < mm2.max, "{:?} vs {}", kl2.range, mm2.max);
+        assert_eq!(kl.range.min, 0.0);
+        assert!(kl.clipped > 0.0 && kl.clipped < 0.01, "{}", kl.clipped);
+        assert_eq!(choose(Method::MinMax, &mm, Some(&h)).range.max, 100.0);
+    }
+
+    /// Percentile ends on a histogram given bin by bin (limit 10, width 1):
+    /// counts [50, 20, 10, 8, 5, 3, 2, 1, 0, 1], 100 values.
+    /// P = 95 allows 5 values beyond: from the top the suffix counts are
+    /// 1, 1, 2, 4, 7 (bins 9..5), so the edge is 6 (4 values clipped).
+    /// P = 99 allows 1: suffix counts 1, 1, 2 → edge 8 (1 value clipped).
+    /// P = 100 allows none: the edge is the maximum, 10.
+    #[test]
+    fn percentile_on_known_histogram() {
+        let counts = vec![50u64, 20, 10, 8, 5, 3, 2, 1, 0, 1];
+        assert_eq!(percentile_edge(&counts, 5), 6);
+        assert_eq!(percentile_edge(&counts, 1), 8);
+        assert_eq!(percentile_edge(&counts, 0), 10);
+        assert_eq!(percentile_edge(&counts, 100), 0);
+        let h = MapHist { pos: SideHist { limit: 10.0, counts }, neg: SideHist { limit: 0.0, counts: vec![0; 10] } };
+        let mm = MinMax { min: 0.0, max: 10.0, count: 100, nonfinite: 0 };
+        let c = choose(Method::Percentile(95.0), &mm, Some(&h));
+        assert_eq!(c.range, MapRange { min: 0.0, max: 6.0 });
+        assert!((c.clipped - 0.04).abs() < 1e-12);
+        let c = choose(Method::Percentile(99.0), &mm, Some(&h));
+        assert_eq!(c.range, MapRange { min: 0.0, max: 8.0 });
+        assert!((c.clipped - 0.01).abs() < 1e-12);
+        assert_eq!(choose(Method::Percentile(100.0), &mm, Some(&h)).range.max, 10.0);
+    }
+
+    #[test]
+    fn percentile_is_asymmetric() {
+        // 1000 values in [0, 1), 1000 in (-3, 0], and one at -50: the
+        // 99.9th percentile drops the outlier but keeps both bulk ends.
+        let mut v: Vec<f32> = (0..1000).map(|i| i as f32 / 1000.0).collect();
+        v.extend((0..1000).map(|i| -3.0 * i as f32 / 1000.0));
+        v.push(-50.0);
+        let (mm, h) = hist_of(&v, 2048);
+        let c = choose(Method::Percentile(99.9), &mm, Some(&h));
+        assert!(c.range.min > -3.1 && c.range.min < -2.9, "{:?}", c.range);
+        assert!(c.range.max > 0.95 && c.range.max <= 1.0, "{:?}", c.range);
+    }
+
+    /// 1,000,000 values uniform in [0, 1] and one outlier at 10. Keeping
+    /// the whole range costs rounding noise `N·Δ²/12` with `Δ = t/255`,
+    /// i.e. `1.2816·t²` for `N = 10⁶`; clipping at `t ≥ 1` costs `(10 - t)²`
+    /// for the outlier. The sum is smallest at `t = 10 / (1 + 1.2816) ≈ 4.38`
+    /// (error ≈ 56, against 128 at `t = 10` and 82 at `t = 1`).
+    #[test]
+    fn mse_clips_an_outlier_minmax_does_not() {
+        let mut v: Vec<f32> = (0..1_000_000).map(|i| i as f32 / 999_999.0).collect();
+        v.push(10.0);
+        let (mm, h) = hist_of(&v, 2048);
+        let mse = choose(Method::Mse, &mm, Some(&h));
+        let minmax = choose(Method::MinMax, &mm, Some(&h));
+        assert_eq!(minmax.range.max, 10.0);
+        assert_eq!(minmax.clipped, 0.0);
+        assert!((mse.range.max - 4.38).abs() < 0.05, "{:?}", mse.range);
+        assert_eq!(mse.range.min, 0.0);
+        assert!((mse.clipped - 1.0 / 1_000_001.0).abs() < 1e-12, "{}", mse.clipped);
+    }
+
+    #[test]
+    fn mse_keeps_a_uniform_range_whole() {
+        // Clipping a uniform distribution only adds error: the end stays at
+        // the maximum (within a bin or two).
+        let v: Vec<f32> = (-5000..=5000).map(|i| i as f32 / 5000.0).collect();
+        let (mm, h) = hist_of(&v, 2048);
+        let c = choose(Method::Mse, &mm, Some(&h));
+        assert!(c.range.max > 0.99 && c.range.min < -0.99, "{:?}", c.range);
+    }
+
+    #[test]
+    fn mse_two_sided_outlier() {
+        // 10⁶ values in [-1, 1] and one at -10: the negative end is clipped
+        // (same trade-off as above with Δ = (t + 1)/255), the positive end
+        // kept.
+        let mut v: Vec<f32> = (0..=1_000_000).map(|i| i as f32 / 500_000.0 - 1.0).collect();
+        v.push(-10.0);
+        let (mm, h) = hist_of(&v, 2048);
+        let c = choose(Method::Mse, &mm, Some(&h));
+        assert!(c.range.min > -6.0 && c.range.min < -1.0, "{:?}", c.range);
+        assert!(c.range.max > 0.99, "{:?}", c.range);
+    }
+
+    #[test]
+    fn exact_clip_error_matches_direct_sum() {
+        let counts = [3u64, 0, 7, 1, 4, 2];
+        let m = Moments::new(&counts);
+        for k in 0..=counts.len() {
+            let direct: f64 = (k..counts.len()).map(|i| counts[i] as f64 * (i as f64 + 0.5 - k as f64).powi(2)).sum();
+            assert!((m.clip(k) - direct).abs() < 1e-9, "k = {k}");
+        }
+        assert_eq!(m.inside(2), 3.0);
+    }
 }
