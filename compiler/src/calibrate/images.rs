@@ -418,3 +418,197 @@ pub fn npy_bytes(values: &[f32], dims: &[usize]) -> Vec<u8> {
     }
     out
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use image::{GrayImage, Luma, Rgb, RgbImage};
+
+    fn spec(c: usize, h: usize, w: usize) -> InputSpec {
+        InputSpec {
+            name: "input".into(),
+            shape: Shape::new(c, h, w),
+            pixel_scale: 1.0 / 255.0,
+            mean: vec![0.5; c],
+            std: vec![0.25; c],
+            color: if c == 1 { Color::Gray } else { Color::Rgb },
+        }
+    }
+
+    fn replace(mut bytes: Vec<u8>, from: &[u8], to: &[u8]) -> Vec<u8> {
+        assert_eq!(from.len(), to.len());
+        let at = bytes.windows(from.len()).position(|w| w == from).unwrap();
+        bytes[at..at + from.len()].copy_from_slice(to);
+        bytes
+    }
+
+    fn gradient(w: u32, h: u32) -> GrayImage {
+        GrayImage::from_fn(w, h, |x, y| Luma([(x * 16 + y * 2) as u8]))
+    }
+
+    #[test]
+    fn reads_png_bmp_pgm_jpeg_in_sorted_order() {
+        let dir = tempfile::tempdir().unwrap();
+        let img = gradient(8, 8);
+        for name in ["b.png", "a.bmp", "c.pgm", "d.jpg"] {
+            img.save(dir.path().join(name)).unwrap();
+        }
+        std::fs::write(dir.path().join("README.txt"), "not an image").unwrap();
+        let set = ImageSet::open_for(dir.path(), &spec(1, 8, 8), &[]).unwrap();
+        let names: Vec<&str> = set.entries().iter().map(|e| e.name.as_str()).collect();
+        assert_eq!(names, ["a.bmp", "b.png", "c.pgm", "d.jpg"]);
+        assert_eq!(set.ignored(), [dir.path().join("README.txt")]);
+        for i in 0..3 {
+            // Lossless formats give back the bytes written.
+            let s = set.load(i).unwrap();
+            assert_eq!(s.pixels.as_deref(), Some(img.as_raw().as_slice()), "{}", set.entries()[i].name);
+            assert_eq!(s.input.len(), 64);
+            assert_eq!(s.input[9], (img.as_raw()[9] as f32 / 255.0 - 0.5) / 0.25);
+            assert_eq!(s.label, None);
+        }
+        // JPEG is lossy: close to the gradient.
+        let s = set.load(3).unwrap();
+        let px = s.pixels.unwrap();
+        let worst = px.iter().zip(img.as_raw()).map(|(a, b)| (*a as i32 - *b as i32).abs()).max().unwrap();
+        assert!(worst <= 12, "{worst}");
+    }
+
+    #[test]
+    fn converts_colour_with_rec709_luma() {
+        // The image crate's luminance uses the Rec. 709 weights
+        // (ITU-R BT.709: 0.2126 R + 0.7152 G + 0.0722 B): pure red 255 gives
+        // 54, pure green 182, pure blue 18.
+        let dir = tempfile::tempdir().unwrap();
+        let img = RgbImage::from_fn(3, 1, |x, _| Rgb(match x {
+            0 => [255, 0, 0],
+            1 => [0, 255, 0],
+            _ => [0, 0, 255],
+        }));
+        img.save(dir.path().join("rgb.png")).unwrap();
+        let set = ImageSet::open_for(dir.path(), &spec(1, 1, 3), &[]).unwrap();
+        assert_eq!(set.load(0).unwrap().pixels.unwrap(), [54, 182, 18]);
+        // RGB graphs keep the channels; the input is planar [C, H, W].
+        let set = ImageSet::open_for(dir.path(), &spec(3, 1, 3), &[]).unwrap();
+        let s = set.load(0).unwrap();
+        assert_eq!(s.pixels.as_deref().unwrap(), img.as_raw().as_slice());
+        let hi = (1.0 - 0.5) / 0.25;
+        let lo = (0.0 - 0.5) / 0.25;
+        assert_eq!(s.input, [hi, lo, lo, lo, hi, lo, lo, lo, hi]);
+    }
+
+    #[test]
+    fn resizes_to_the_input_size() {
+        let dir = tempfile::tempdir().unwrap();
+        // 32x16: left half black, right half white; the graph wants 8x4.
+        GrayImage::from_fn(32, 16, |x, _| Luma([if x < 16 { 0 } else { 255 }])).save(dir.path().join("half.png")).unwrap();
+        GrayImage::from_pixel(5, 7, Luma([77])).save(dir.path().join("flat.png")).unwrap();
+        let set = ImageSet::open_for(dir.path(), &spec(1, 4, 8), &[]).unwrap();
+        let half = set.load(1).unwrap().pixels.unwrap();
+        assert_eq!(half.len(), 32);
+        for row in half.chunks(8) {
+            assert!(row[0] < 10 && row[7] > 245, "{row:?}");
+        }
+        // A flat picture stays flat through the bilinear filter.
+        assert_eq!(set.load(0).unwrap().pixels.unwrap(), vec![77u8; 32]);
+    }
+
+    #[test]
+    fn class_folders_give_labels() {
+        let dir = tempfile::tempdir().unwrap();
+        let labels = vec!["cat".to_string(), "dog".to_string()];
+        for (class, file) in [("dog", "x.png"), ("cat", "b.png"), ("cat", "a.png")] {
+            std::fs::create_dir_all(dir.path().join(class)).unwrap();
+            gradient(4, 4).save(dir.path().join(class).join(file)).unwrap();
+        }
+        gradient(4, 4).save(dir.path().join("loose.png")).unwrap();
+        let set = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &labels).unwrap();
+        let got: Vec<(&str, Option<usize>)> = set.entries().iter().map(|e| (e.name.as_str(), e.label)).collect();
+        assert_eq!(got, [("cat/a.png", Some(0)), ("cat/b.png", Some(0)), ("dog/x.png", Some(1)), ("loose.png", None)]);
+        assert!(set.has_labels());
+        assert_eq!(set.load(2).unwrap().label, Some(1));
+    }
+
+    #[test]
+    fn unknown_class_folder_is_an_error_naming_it() {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::create_dir_all(dir.path().join("cat")).unwrap();
+        std::fs::create_dir_all(dir.path().join("zebra")).unwrap();
+        let labels = vec!["cat".to_string(), "dog".to_string()];
+        let e = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &labels).unwrap_err();
+        assert!(matches!(e, ImageError::UnknownClass { ref name, .. } if name == "zebra"), "{e}");
+        let msg = e.to_string();
+        assert!(msg.contains("`zebra`") && msg.contains("cat, dog"), "{msg}");
+        let e = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &[]).unwrap_err();
+        assert!(e.to_string().contains("labels: none"), "{e}");
+    }
+
+    #[test]
+    fn corrupt_file_error_names_it() {
+        let dir = tempfile::tempdir().unwrap();
+        gradient(4, 4).save(dir.path().join("good.png")).unwrap();
+        std::fs::write(dir.path().join("broken.png"), b"\x89PNG\r\n\x1a\nthis is not a png").unwrap();
+        let set = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &[]).unwrap();
+        let e = set.load(0).unwrap_err();
+        assert!(matches!(e, ImageError::Decode { .. }), "{e}");
+        assert_eq!(e.path(), dir.path().join("broken.png"));
+        assert!(e.to_string().contains("broken.png"), "{e}");
+        assert!(set.load(1).is_ok());
+    }
+
+    #[test]
+    fn empty_folder_is_an_error() {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::write(dir.path().join("notes.txt"), "x").unwrap();
+        let e = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &[]).unwrap_err();
+        assert!(matches!(e, ImageError::Empty { .. }), "{e}");
+    }
+
+    #[test]
+    fn npy_round_trip_and_version_2_header() {
+        let dir = tempfile::tempdir().unwrap();
+        let values: Vec<f32> = (0..12).map(|i| i as f32 * 0.5 - 2.0).collect();
+        std::fs::write(dir.path().join("a.npy"), npy_bytes(&values, &[3, 2, 2])).unwrap();
+        let mut set_spec = spec(3, 2, 2);
+        set_spec.color = Color::Rgb;
+        let set = ImageSet::open_for(dir.path(), &set_spec, &[]).unwrap();
+        let s = set.load(0).unwrap();
+        assert_eq!(s.input, values);
+        assert_eq!(s.pixels, None);
+        assert_eq!(set.entries()[0].kind, SampleKind::Npy);
+        // Format 2.0: a 4-byte header length, as NumPy writes for large headers.
+        let header = "{'descr': '<f4', 'fortran_order': False, 'shape': (1, 1, 2), }\n";
+        let mut v2 = b"\x93NUMPY\x02\x00".to_vec();
+        v2.extend_from_slice(&(header.len() as u32).to_le_bytes());
+        v2.extend_from_slice(header.as_bytes());
+        v2.extend_from_slice(&1.5f32.to_le_bytes());
+        v2.extend_from_slice(&(-3.0f32).to_le_bytes());
+        assert_eq!(parse_npy(&v2, Shape::new(1, 1, 2)).unwrap(), [1.5, -3.0]);
+    }
+
+    #[test]
+    fn bad_npy_errors_name_file_and_problem() {
+        let dir = tempfile::tempdir().unwrap();
+        let shape = Shape::new(1, 2, 2);
+        let f8 = replace(npy_bytes(&[0.0; 4], &[1, 2, 2]), b"'<f4'", b"'<f8'");
+        let cases: Vec<(&str, Vec<u8>, &str)> = vec![
+            ("dtype.npy", f8, "'<f8'"),
+            ("shape.npy", npy_bytes(&[0.0; 4], &[4]), "does not match"),
+            ("short.npy", {
+                let full = npy_bytes(&[0.0; 4], &[1, 2, 2]);
+                full[..full.len() - 8].to_vec()
+            }, "expected 16 bytes of data for 4 float32 values, found 8"),
+            ("magic.npy", b"PK\x03\x04 not numpy at all".to_vec(), "magic"),
+            ("nan.npy", npy_bytes(&[0.0, f32::NAN, 0.0, 0.0], &[1, 2, 2]), "not finite"),
+        ];
+        for (name, bytes, needle) in cases {
+            let path = dir.path().join(name);
+            std::fs::write(&path, bytes).unwrap();
+            let e = read_npy(&path, shape).unwrap_err();
+            let msg = e.to_string();
+            assert!(matches!(e, ImageError::Npy { .. }), "{msg}");
+            assert!(msg.contains(name) && msg.contains(needle), "{name}: {msg}");
+        }
+        let fortran = replace(npy_bytes(&[0.0; 4], &[1, 2, 2]), b"'fortran_order': False", b"'fortran_order': True ");
+        assert!(parse_npy(&fortran, shape).unwrap_err().contains("Fortran"));
+    }
+}

@@ -296,3 +296,129 @@ pub fn observe_set<S: MapSource + ?Sized>(src: &S, images: &ImageSet, opts: &Cal
         .collect();
     Ok(Observed { ranges: choices.iter().map(|c| c.range).collect(), stats, calibration, evaluation, skipped })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::graph::{Color, InputSpec, Shape};
+    use crate::zoo::Rng;
+    use image::{GrayImage, Luma};
+
+    /// A stand-in network: the input, a two-sided map and a ReLU map with a
+    /// long tail.
+    struct Fake;
+    impl MapSource for Fake {
+        fn map_count(&self) -> usize {
+            3
+        }
+        fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32])) {
+            visit(MapId(0), input);
+            let a: Vec<f32> = input.iter().map(|x| 3.0 * x - 0.2 + (7.0 * x).sin()).collect();
+            visit(MapId(1), &a);
+            let b: Vec<f32> = a.iter().map(|x| (x * x * x).max(0.0)).collect();
+            visit(MapId(2), &b);
+        }
+    }
+
+    fn spec() -> InputSpec {
+        InputSpec {
+            name: "input".into(),
+            shape: Shape::new(1, 8, 8),
+            pixel_scale: 1.0 / 255.0,
+            mean: vec![0.5],
+            std: vec![0.5],
+            color: Color::Gray,
+        }
+    }
+
+    fn write_images(dir: &std::path::Path, n: usize) {
+        let mut rng = Rng::new(7);
+        for i in 0..n {
+            let img = GrayImage::from_fn(8, 8, |_, _| Luma([(rng.next_u64() >> 56) as u8]));
+            img.save(dir.join(format!("img{i:03}.png"))).unwrap();
+        }
+    }
+
+    fn in_pool<T: Send>(threads: usize, f: impl FnOnce() -> T + Send) -> T {
+        rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap().install(f)
+    }
+
+    #[test]
+    fn holdout_split_is_even_and_exact() {
+        assert_eq!(split(10, 0.2), ((0..10).filter(|i| *i != 4 && *i != 9).collect(), vec![4, 9]));
+        assert_eq!(split(5, 0.0), (vec![0, 1, 2, 3, 4], vec![]));
+        let (cal, eval) = split(1000, 0.25);
+        assert_eq!((cal.len(), eval.len()), (750, 250));
+        assert!(eval.iter().all(|i| i % 4 == 3));
+    }
+
+    #[test]
+    fn identical_ranges_with_one_and_two_threads() {
+        let dir = tempfile::tempdir().unwrap();
+        write_images(dir.path(), 40);
+        let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
+        for method in [Method::MinMax, Method::Percentile(99.0), Method::Mse, Method::Kl] {
+            let opts = CalibOptions { method, holdout: 0.1, ..CalibOptions::default() };
+            let one = in_pool(1, || observe_set(&Fake, &set, &opts).unwrap());
+            let two = in_pool(2, || observe_set(&Fake, &set, &opts).unwrap());
+            assert_eq!(one, two, "{method}");
+            // Bit-identical, not merely close.
+            for (a, b) in one.ranges.iter().zip(&two.ranges) {
+                assert_eq!((a.min.to_bits(), a.max.to_bits()), (b.min.to_bits(), b.max.to_bits()));
+            }
+            assert_eq!((one.calibration.len(), one.evaluation.len()), (36, 4));
+            assert!(one.ranges[1].min < 0.0 && one.ranges[1].max > 0.0, "{method}: {:?}", one.ranges[1]);
+            assert_eq!(one.ranges[2].min, 0.0, "{method}: a ReLU map gets a one-sided range");
+            assert_eq!(one.stats[0].values, 36 * 64);
+        }
+    }
+
+    #[test]
+    fn skip_bad_counts_unreadable_images() {
+        let dir = tempfile::tempdir().unwrap();
+        write_images(dir.path(), 5);
+        std::fs::write(dir.path().join("img001.png"), b"garbage").unwrap();
+        std::fs::write(dir.path().join("img003.png"), b"more garbage").unwrap();
+        let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
+        let opts = CalibOptions { method: Method::Kl, skip_bad: true, ..CalibOptions::default() };
+        let o = observe_set(&Fake, &set, &opts).unwrap();
+        assert_eq!(o.calibration, [0, 2, 4]);
+        assert_eq!(o.skipped.iter().map(|s| s.index).collect::<Vec<_>>(), [1, 3]);
+        assert!(o.skipped[0].reason.contains("img001.png"), "{}", o.skipped[0].reason);
+        assert_eq!(o.stats[0].values, 3 * 64);
+        // Without skip_bad the first bad file is the error.
+        let e = observe_set(&Fake, &set, &CalibOptions::default()).unwrap_err();
+        assert!(e.to_string().contains("img001.png"), "{e}");
+    }
+
+    #[test]
+    fn minmax_ranges_match_direct_computation() {
+        let dir = tempfile::tempdir().unwrap();
+        write_images(dir.path(), 6);
+        let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
+        let o = observe_set(&Fake, &set, &CalibOptions::default()).unwrap();
+        let (mut lo, mut hi) = (0.0f32, 0.0f32);
+        for i in 0..set.len() {
+            Fake.run(&set.load(i).unwrap().input, &mut |m, v| {
+                if m == MapId(1) {
+                    lo = v.iter().fold(lo, |a, &b| a.min(b));
+                    hi = v.iter().fold(hi, |a, &b| a.max(b));
+                }
+            });
+        }
+        assert_eq!(o.ranges[1], MapRange { min: lo, max: hi });
+        assert!(o.stats.iter().all(|s| s.clipped == 0.0));
+    }
+
+    #[test]
+    fn bad_options_are_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        write_images(dir.path(), 2);
+        let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
+        let e = observe_set(&Fake, &set, &CalibOptions { holdout: 1.0, ..CalibOptions::default() }).unwrap_err();
+        assert!(e.to_string().contains("holdout 1"), "{e}");
+        // Holding out every other image of two leaves one.
+        let o = observe_set(&Fake, &set, &CalibOptions { holdout: 0.5, ..CalibOptions::default() }).unwrap();
+        assert_eq!((o.calibration, o.evaluation), (vec![0], vec![1]));
+    }
+}
