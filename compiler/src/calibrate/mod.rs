@@ -9,8 +9,10 @@
 pub mod images;
 pub mod observe;
 pub mod ranges;
+pub mod report;
 
 pub use images::{ImageError, ImageSet, Sample};
+pub use report::{LayerRow, OutputAgreement, Report};
 pub use observe::{Method, DEFAULT_BINS};
 pub use ranges::{MapRange, Ranges, RangesError};
 
@@ -28,6 +30,23 @@ pub trait MapSource: Sync {
     fn map_count(&self) -> usize;
     /// Runs one input.
     fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32]));
+}
+
+impl MapSource for crate::reference::Reference<'_> {
+    fn map_count(&self) -> usize {
+        self.graph().map_count()
+    }
+    fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32])) {
+        // Inputs come from an `ImageSet` bound to this graph, so their
+        // length always matches and the reference cannot refuse them.
+        self.run_with(input, visit).expect("sample has the input's length");
+    }
+}
+
+/// Calibrates `graph` on `images` with its float reference: the library
+/// entry point (the CLI and build scripts call this).
+pub fn run(graph: &Graph, images: &ImageSet, opts: &CalibOptions) -> Result<Calibration, CalibError> {
+    run_with_source(graph, &crate::reference::Reference::new(graph), images, opts)
 }
 
 /// Options of a calibration run.
