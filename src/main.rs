@@ -18,6 +18,8 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
+    /// Show a graph's layers, shapes, parameters and multiply-accumulates.
+    Inspect(cmd::inspect::Args),
     /// Choose int8 ranges from sample images and report what int8 costs.
     Calibrate(cmd::calibrate::Args),
 }
@@ -25,6 +27,7 @@ enum Command {
 fn main() {
     let cli = Cli::parse();
     let result = match cli.command {
+        Command::Inspect(args) => cmd::inspect::run(&args),
         Command::Calibrate(args) => cmd::calibrate::run(&args),
     };
     if let Err(e) = result {

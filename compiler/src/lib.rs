@@ -7,7 +7,9 @@
 pub mod calibrate;
 pub mod frontend;
 pub mod graph;
+pub mod inspect;
 pub mod lower;
+pub mod reference;
 pub mod util;
 pub mod zoo;
 
