@@ -1,7 +1,7 @@
 //! 2-D convolution over HWC maps: im2col of one output pixel into the
 //! widened patch, then contiguous dot products per output channel.
 
-use crate::dot::{dot2_wide, dot_wide, fill_wide, put_wide, widen_into};
+use crate::dot::{dot2_wide, dot_wide, tail_wide, widen_into};
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 
 /// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
@@ -148,13 +148,13 @@ pub struct ConvParams {
     pub out: OutputQuant,
 }
 
-/// Bytes of `patch` scratch a convolution needs: `2 · kh · kw · C_in`.
+/// Length (in `i16` elements) of the `patch` scratch a convolution needs:
+/// `kh · kw · C_in`.
 ///
 /// The patch holds one output pixel's receptive field, every element
-/// widened to a little-endian 16-bit value (two bytes), laid out as
-/// `[group][ky][kx][channel within group]`.
+/// widened to `i16`, laid out as `[group][ky][kx][channel within group]`.
 pub const fn conv_patch_len(kh: usize, kw: usize, c_in: usize) -> usize {
-    2 * kh * kw * c_in
+    kh * kw * c_in
 }
 
 /// Checks shared by the convolution paths; returns `(taps, cpg, opg)`.
@@ -242,7 +242,7 @@ pub fn conv2d(
     requant: &[Requant],
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
-    patch: &mut [i8],
+    patch: &mut [i16],
 ) -> Result<(), Error> {
     let (taps, cpg, opg) = check_conv(
         arena.len(),
@@ -257,7 +257,7 @@ pub fn conv2d(
     )?;
     let w = &p.window;
     let seg = taps * cpg; // elements per group segment and per weight row
-    let patch = &mut patch[..2 * taps * input.c];
+    let patch = &mut patch[..taps * input.c];
     let weights = &weights[..output.c * seg];
     let pointwise = w.kh == 1
         && w.kw == 1
@@ -283,7 +283,7 @@ pub fn conv2d(
                 for ((((o, row), xw), &b), rq) in out
                     .iter_mut()
                     .zip(weights.chunks_exact(seg))
-                    .zip(patch.chunks_exact(2 * seg))
+                    .zip(patch.chunks_exact(seg))
                     .zip(bias)
                     .zip(requant)
                 {
@@ -291,7 +291,7 @@ pub fn conv2d(
                     *o = rq.apply(acc, p.out);
                 }
             } else {
-                for (g, xw) in patch.chunks_exact(2 * seg).enumerate() {
+                for (g, xw) in patch.chunks_exact(seg).enumerate() {
                     let o0 = g * opg;
                     channel_rows(
                         xw,
@@ -312,23 +312,28 @@ pub fn conv2d(
 /// pass.
 #[inline]
 fn channel_rows(
-    xw: &[i8],
+    xw: &[i16],
     weights: &[i8],
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
 ) {
-    let seg = xw.len() / 2;
+    let seg = xw.len();
     if seg == 0 {
         return;
     }
+    let tail = seg - seg % 16;
     let mut rows = weights.chunks_exact(2 * seg);
     let mut outs = out.chunks_exact_mut(2);
     let mut k = 0;
     for (pair, o) in (&mut rows).zip(&mut outs) {
         let (w0, w1) = pair.split_at(seg);
-        let acc = dot2_wide(xw, w0, w1);
+        let mut acc = dot2_wide(xw, xw, w0, w1);
+        if tail < seg {
+            acc[0] = acc[0].wrapping_add(tail_wide(&xw[tail..], &w0[tail..]));
+            acc[1] = acc[1].wrapping_add(tail_wide(&xw[tail..], &w1[tail..]));
+        }
         o[0] = requant[k].apply(bias[k].wrapping_add(acc[0]), out_q);
         o[1] = requant[k + 1].apply(bias[k + 1].wrapping_add(acc[1]), out_q);
         k += 2;
@@ -352,7 +357,7 @@ fn gather(
     ox: usize,
     cpg: usize,
     seg: usize,
-    patch: &mut [i8],
+    patch: &mut [i16],
 ) {
     let groups = p.groups;
     let base_y = oy * w.step_y;
@@ -365,9 +370,9 @@ fn gather(
             let xx = base_x + kx * w.dilation_x;
             let inside = row_in && xx >= w.pad.left && xx - w.pad.left < input.w;
             if groups == 1 {
-                let dst = &mut patch[2 * t * cpg..2 * (t + 1) * cpg];
+                let dst = &mut patch[t * cpg..(t + 1) * cpg];
                 if !inside {
-                    fill_wide(dst, p.input_zp);
+                    dst.fill(p.input_zp as i16);
                     continue;
                 }
                 let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
@@ -375,8 +380,8 @@ fn gather(
                 match transform {
                     None => widen_into(dst, src),
                     Some(tr) => {
-                        for (ch, (d, &v)) in dst.chunks_exact_mut(2).zip(src).enumerate() {
-                            put_wide(d, tr.apply(ch, v));
+                        for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                            *d = tr.apply(ch, v) as i16;
                         }
                     }
                 }
@@ -387,10 +392,10 @@ fn gather(
                     0
                 };
                 for g in 0..groups {
-                    let at = 2 * (g * seg + t * cpg);
-                    let dst = &mut patch[at..at + 2 * cpg];
+                    let at = g * seg + t * cpg;
+                    let dst = &mut patch[at..at + cpg];
                     if !inside {
-                        fill_wide(dst, p.input_zp);
+                        dst.fill(p.input_zp as i16);
                         continue;
                     }
                     let c0 = g * cpg;
@@ -398,8 +403,8 @@ fn gather(
                     match transform {
                         None => widen_into(dst, src),
                         Some(tr) => {
-                            for (ci, (d, &v)) in dst.chunks_exact_mut(2).zip(src).enumerate() {
-                                put_wide(d, tr.apply(c0 + ci, v));
+                            for (ci, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                                *d = tr.apply(c0 + ci, v) as i16;
                             }
                         }
                     }

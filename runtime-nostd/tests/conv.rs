@@ -191,7 +191,7 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
         rt.as_ref(),
     );
     let before = arena.clone();
-    let mut patch = vec![0i8; conv_patch_len(p.kh, p.kw, c.cin)];
+    let mut patch = vec![0i16; conv_patch_len(p.kh, p.kw, c.cin)];
     conv2d(
         &mut arena,
         input,

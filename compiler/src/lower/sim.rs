@@ -62,7 +62,7 @@ pub struct Simulator<'q> {
     q: &'q QGraph,
     refs: Vec<MapRef>,
     arena: Vec<i8>,
-    patch: Vec<i8>,
+    patch: Vec<i16>,
     /// Runtime multipliers of each conv/linear step.
     requant: Vec<Vec<Requant>>,
 }
