@@ -23,10 +23,23 @@ fn dense_net_simulation_matches_float_within_a_few_steps() {
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     // Every dense layer and the transition read their concatenation through
     // a fused BN-ReLU; the head's BN-ReLU feeds a pool, so it is a step.
-    let fused = q.steps.iter().filter(|s| matches!(&s.kernel, QKernel::Conv2d(c) if c.transform.is_some())).count();
+    let fused = q
+        .steps
+        .iter()
+        .filter(|s| matches!(&s.kernel, QKernel::Conv2d(c) if c.transform.is_some()))
+        .count();
     assert_eq!(fused, 3 + 2 + 1);
-    assert_eq!(q.steps.iter().filter(|s| matches!(s.kernel, QKernel::Channel(_))).count(), 1);
-    assert!(!q.steps.iter().any(|s| s.name.contains("bn") && matches!(s.kernel, QKernel::Conv2d(_))));
+    assert_eq!(
+        q.steps
+            .iter()
+            .filter(|s| matches!(s.kernel, QKernel::Channel(_)))
+            .count(),
+        1
+    );
+    assert!(!q
+        .steps
+        .iter()
+        .any(|s| s.name.contains("bn") && matches!(s.kernel, QKernel::Conv2d(_))));
 
     let out = q.map(q.output);
     let mut sim = Simulator::new(&q);
@@ -38,11 +51,19 @@ fn dense_net_simulation_matches_float_within_a_few_steps() {
         for (c, f) in codes.iter().zip(&float) {
             worst = worst.max((dequantize(*c, out.qp) - f).abs() / out.qp.scale);
         }
-        let am = |v: &[f32]| v.iter().enumerate().fold(0, |b, (i, &a)| if a > v[b] { i } else { b });
+        let am = |v: &[f32]| {
+            v.iter()
+                .enumerate()
+                .fold(0, |b, (i, &a)| if a > v[b] { i } else { b })
+        };
         let deq: Vec<f32> = codes.iter().map(|&c| dequantize(c, out.qp)).collect();
         agree += usize::from(am(&deq) == am(&float));
     }
-    eprintln!("dense small: worst output error {worst:.2} steps of {}, arg-max agreement {agree}/{}", out.qp.scale, images.len());
+    eprintln!(
+        "dense small: worst output error {worst:.2} steps of {}, arg-max agreement {agree}/{}",
+        out.qp.scale,
+        images.len()
+    );
     // Fifteen int8 layers deep, each adding at most half a step of rounding
     // at its own scale: the logits stay within a few output steps.
     assert!(worst <= 4.0, "worst output error {worst} steps");
@@ -56,14 +77,21 @@ fn fused_transform_equals_materialised_bn_relu_code_for_code() {
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     let (mut checked, mut exact) = (0usize, 0usize);
     for s in &q.steps {
-        let QKernel::Conv2d(c) = &s.kernel else { continue };
+        let QKernel::Conv2d(c) = &s.kernel else {
+            continue;
+        };
         let Some(t) = &c.transform else { continue };
         // layers: conv, then the fused batch norm and ReLU.
-        let Op::BatchNorm(bn) = &g.layer(s.layers[1]).op else { panic!("{}: no fused batch norm", s.name) };
+        let Op::BatchNorm(bn) = &g.layer(s.layers[1]).op else {
+            panic!("{}: no fused batch norm", s.name)
+        };
         assert!(matches!(g.layer(s.layers[2]).op, Op::Relu));
         let relu_out = s.layers[2].output();
         let dom = activation_qparams(ranges.get(relu_out));
-        assert_eq!(c.input_zp, dom.zero_point, "padding must be the transformed domain's zero");
+        assert_eq!(
+            c.input_zp, dom.zero_point,
+            "padding must be the transformed domain's zero"
+        );
         let src = q.map(s.inputs[0]).qp;
         for (ch, &(a, b)) in bn.affine().iter().enumerate() {
             for code in -128..=127i32 {
@@ -71,7 +99,11 @@ fn fused_transform_equals_materialised_bn_relu_code_for_code() {
                 let y = (a * dequantize(code as i8, src) + b).max(0.0);
                 let want = quantize(y, dom) as i32;
                 let got = apply_transform(t, ch, code as i8) as i32;
-                assert!((got - want).abs() <= 1, "{} channel {ch} code {code}: fused {got}, materialised {want}", s.name);
+                assert!(
+                    (got - want).abs() <= 1,
+                    "{} channel {ch} code {code}: fused {got}, materialised {want}",
+                    s.name
+                );
                 exact += usize::from(got == want);
                 checked += 1;
             }
@@ -87,9 +119,24 @@ fn concatenation_chain_shares_one_quantization() {
     let (g, images) = small();
     let ranges = calibrate(&g, &images);
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
-    let qp_of = |name: &str| q.maps.iter().find(|m| m.name == name).unwrap_or_else(|| panic!("no map {name}")).qp;
+    let qp_of = |name: &str| {
+        q.maps
+            .iter()
+            .find(|m| m.name == name)
+            .unwrap_or_else(|| panic!("no map {name}"))
+            .qp
+    };
     // Block 0: the stem output (x0), every concat and every new feature map.
-    let members = ["stem.relu", "b0.l0.cat", "b0.l1.cat", "b0.l2.cat", "b0.out", "b0.l0.conv2", "b0.l1.conv2", "b0.l2.conv2"];
+    let members = [
+        "stem.relu",
+        "b0.l0.cat",
+        "b0.l1.cat",
+        "b0.l2.cat",
+        "b0.out",
+        "b0.l0.conv2",
+        "b0.l1.conv2",
+        "b0.l2.conv2",
+    ];
     let shared = qp_of("b0.out");
     for m in members {
         assert_eq!(qp_of(m), shared, "{m}");
@@ -105,8 +152,16 @@ fn concatenation_chain_shares_one_quantization() {
     // Block 1 is a separate group.
     assert_ne!(qp_of("b1.out"), shared);
     // Producers write the shared scale directly: the concat is a copy.
-    for s in q.steps.iter().filter(|s| matches!(s.kernel, QKernel::Concat)) {
-        assert!(s.inputs.iter().all(|&m| q.map(m).qp == q.map(s.output).qp), "{}", s.name);
+    for s in q
+        .steps
+        .iter()
+        .filter(|s| matches!(s.kernel, QKernel::Concat))
+    {
+        assert!(
+            s.inputs.iter().all(|&m| q.map(m).qp == q.map(s.output).qp),
+            "{}",
+            s.name
+        );
     }
 }
 
@@ -117,22 +172,36 @@ fn lowering_is_deterministic() {
     let a = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     let b = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     assert_eq!(a, b);
-    assert_eq!(serde_json::to_string(&a).unwrap(), serde_json::to_string(&b).unwrap());
+    assert_eq!(
+        serde_json::to_string(&a).unwrap(),
+        serde_json::to_string(&b).unwrap()
+    );
 }
 
 #[test]
 fn input_transform_fusion_ram_saved_on_dense_networks() {
     let small = dense_net(&DenseSpec::small(), 7);
-    let q = lower(&small, &flat_ranges(&small, -2.0, 2.0), &LowerOptions::default()).unwrap();
+    let q = lower(
+        &small,
+        &flat_ranges(&small, -2.0, 2.0),
+        &LowerOptions::default(),
+    )
+    .unwrap();
     let s = fusion_savings(&q);
-    eprintln!("dense small [3,12,12]: {} fused convolutions, largest avoided map {} B, total {} B", s.fused, s.largest, s.total);
+    eprintln!(
+        "dense small [3,12,12]: {} fused convolutions, largest avoided map {} B, total {} B",
+        s.fused, s.largest, s.total
+    );
     // Largest: the transition's input, 8 + 3·4 = 20 channels at 12×12.
     assert_eq!((s.fused, s.largest), (6, 20 * 12 * 12));
 
     let g = dense_net(&DenseSpec::densenet121(), 1);
     let q = lower(&g, &flat_ranges(&g, -2.0, 2.0), &LowerOptions::default()).unwrap();
     let s = fusion_savings(&q);
-    eprintln!("DenseNet-121 [3,224,224]: {} fused convolutions, largest avoided map {} B, total {} B", s.fused, s.largest, s.total);
+    eprintln!(
+        "DenseNet-121 [3,224,224]: {} fused convolutions, largest avoided map {} B, total {} B",
+        s.fused, s.largest, s.total
+    );
     // 58 dense layers + 3 transitions; the largest is the first transition's
     // input: 64 + 6·32 = 256 channels at 56×56 (Huang et al. 2017, Table 1).
     assert_eq!(s.fused, 58 + 3);

@@ -81,9 +81,22 @@ mod tests {
 
     /// Naive reference: the affine formula of [`AffineTransform`] written out
     /// with plain i64 arithmetic and floor division.
-    fn naive_affine(x: i8, mul: i32, add: i32, shift: u32, zp_in: i32, zp_out: i32, min: i8, max: i8) -> i8 {
+    fn naive_affine(
+        x: i8,
+        mul: i32,
+        add: i32,
+        shift: u32,
+        zp_in: i32,
+        zp_out: i32,
+        min: i8,
+        max: i8,
+    ) -> i8 {
         let t = (x as i64 - zp_in as i64) * mul as i64 + add as i64;
-        let t = if shift == 0 { t } else { (t + (1i64 << (shift - 1))).div_euclid(1i64 << shift) };
+        let t = if shift == 0 {
+            t
+        } else {
+            (t + (1i64 << (shift - 1))).div_euclid(1i64 << shift)
+        };
         (t + zp_out as i64).clamp(min as i64, max as i64) as i8
     }
 
@@ -96,7 +109,15 @@ mod tests {
         }
         let mul = [3 << 20, -(5 << 19), 1 << 16];
         let add = [7 << 18, 0, -(123 << 16)];
-        let a = AffineTransform { mul: &mul, add: &add, shift: 20, zp_in: -5, zp_out: -128, min: -128, max: 100 };
+        let a = AffineTransform {
+            mul: &mul,
+            add: &add,
+            shift: 20,
+            zp_in: -5,
+            zp_out: -128,
+            min: -128,
+            max: 100,
+        };
         let t = InputTransform::Affine(a);
         let src = MapRef::new(0, h, w, c);
         let dst = MapRef::new(18, h, w, c);
@@ -115,13 +136,28 @@ mod tests {
     fn table_transform_and_overlap_refused() {
         let mut table = [0i8; 512];
         for (i, v) in table.iter_mut().enumerate() {
-            *v = if i < 256 { (i as u8 as i8).wrapping_neg() } else { 7 };
+            *v = if i < 256 {
+                (i as u8 as i8).wrapping_neg()
+            } else {
+                7
+            };
         }
         let mut arena = [1i8, -2, 3, -4, 0, 0, 0, 0];
         let t = InputTransform::Table(&table);
-        channel_transform(&mut arena, MapRef::new(0, 1, 2, 2), MapRef::new(4, 1, 2, 2), &t).unwrap();
+        channel_transform(
+            &mut arena,
+            MapRef::new(0, 1, 2, 2),
+            MapRef::new(4, 1, 2, 2),
+            &t,
+        )
+        .unwrap();
         assert_eq!(arena[4..], [-1, 7, -3, 7]);
-        let r = channel_transform(&mut arena, MapRef::new(0, 1, 2, 2), MapRef::new(2, 1, 2, 2), &t);
+        let r = channel_transform(
+            &mut arena,
+            MapRef::new(0, 1, 2, 2),
+            MapRef::new(2, 1, 2, 2),
+            &t,
+        );
         assert_eq!(r, Err(Error::Overlap));
     }
 

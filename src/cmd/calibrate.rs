@@ -3,6 +3,7 @@
 
 use anyhow::Context;
 use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, Method};
+use ingot_compiler::lower::LowerOptions;
 use std::path::PathBuf;
 
 /// Arguments of `ingot calibrate`.
@@ -50,10 +51,16 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     let cal = calibrate::run(&graph, &images, &opts)?;
     let out = match &args.output {
         Some(p) => p.clone(),
-        None => args.graph.parent().unwrap_or_else(|| std::path::Path::new("")).join(format!("{}.ranges.json", graph.name())),
+        None => args
+            .graph
+            .parent()
+            .unwrap_or_else(|| std::path::Path::new(""))
+            .join(format!("{}.ranges.json", graph.name())),
     };
-    cal.ranges.save(&graph, &out).with_context(|| format!("{}: cannot write the ranges file", out.display()))?;
-    let report = calibrate::report(&graph, &images, &cal, true)?;
+    cal.ranges
+        .save(&graph, &out)
+        .with_context(|| format!("{}: cannot write the ranges file", out.display()))?;
+    let report = calibrate::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
     if args.json {
         let mut v = serde_json::to_value(&report)?;
         v["ranges_file"] = serde_json::Value::String(out.display().to_string());

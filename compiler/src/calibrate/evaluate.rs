@@ -13,7 +13,9 @@
 
 use super::{Calibration, ImageError, ImageSet, OutputAgreement, Report};
 use crate::graph::{Graph, MapId};
-use crate::lower::{self, LowerError, LowerOptions, QGraph, QMapId, QParams, SimError, SimInput, Simulator};
+use crate::lower::{
+    self, LowerError, LowerOptions, QGraph, QMapId, QParams, SimError, SimInput, Simulator,
+};
 use crate::reference::Reference;
 use rayon::prelude::*;
 
@@ -102,8 +104,11 @@ pub fn evaluate(
 ) -> Result<Evaluation, EvalError> {
     let q = lower::lower(graph, &cal.ranges, lower_opts)?;
     let stored = stored_maps(graph, &q);
-    let (on, indices) =
-        if cal.evaluation.is_empty() { ("calibration", cal.calibration.clone()) } else { ("held-out", cal.evaluation.clone()) };
+    let (on, indices) = if cal.evaluation.is_empty() {
+        ("calibration", cal.calibration.clone())
+    } else {
+        ("held-out", cal.evaluation.clone())
+    };
     let reference = Reference::new(graph);
     let pb = super::progress_bar(indices.len() as u64, progress, "int8 evaluation");
     let results: Vec<(usize, Result<PerImage, EvalError>)> = indices
@@ -120,7 +125,8 @@ pub fn evaluate(
     pb.finish_and_clear();
 
     let mut sums = vec![(0.0f64, 0.0f64); graph.map_count()];
-    let (mut n, mut agree, mut labelled, mut float_ok, mut int8_ok) = (0usize, 0usize, 0usize, 0usize, 0usize);
+    let (mut n, mut agree, mut labelled, mut float_ok, mut int8_ok) =
+        (0usize, 0usize, 0usize, 0usize, 0usize);
     let mut skipped = Vec::new();
     let mut used = Vec::new();
     for (i, r) in results {
@@ -159,7 +165,11 @@ pub fn evaluate(
         on,
         images: used,
         qparams: stored.iter().map(|s| s.map(|id| q.map(id).qp)).collect(),
-        sqnr_db: stored.iter().zip(&sums).map(|(s, &(sig, noise))| s.and_then(|_| sqnr_db(sig, noise))).collect(),
+        sqnr_db: stored
+            .iter()
+            .zip(&sums)
+            .map(|(s, &(sig, noise))| s.and_then(|_| sqnr_db(sig, noise)))
+            .collect(),
         output,
         skipped,
     })
@@ -193,21 +203,32 @@ fn one_image(
         .map(|(s, f)| match (s, f) {
             (Some(id), Some(x)) => {
                 let xq = sim.map_chw_f32(*id);
-                x.iter().zip(&xq).fold((0.0, 0.0), |(sig, noise), (&a, &b)| {
-                    let d = a as f64 - b as f64;
-                    (sig + a as f64 * a as f64, noise + d * d)
-                })
+                x.iter()
+                    .zip(&xq)
+                    .fold((0.0, 0.0), |(sig, noise), (&a, &b)| {
+                        let d = a as f64 - b as f64;
+                        (sig + a as f64 * a as f64, noise + d * d)
+                    })
             }
             _ => (0.0, 0.0),
         })
         .collect();
     let int8_out = sim.map_chw_f32(q.output);
-    Ok(PerImage { sums, float_top1: argmax(&float_out), int8_top1: argmax(&int8_out), label: sample.label })
+    Ok(PerImage {
+        sums,
+        float_top1: argmax(&float_out),
+        int8_top1: argmax(&int8_out),
+        label: sample.label,
+    })
 }
 
 impl Report {
     /// Adds an int8 evaluation to the report.
-    pub fn add_evaluation(&mut self, ev: &Evaluation) {
+    pub fn add_evaluation(&mut self, images: &ImageSet, ev: &Evaluation) {
+        for (i, why) in &ev.skipped {
+            self.skipped
+                .push((images.entries()[*i].name.clone(), why.clone()));
+        }
         for row in &mut self.layers {
             let i = row.map as usize;
             row.scale = ev.qparams[i].map(|q| q.scale);

@@ -155,13 +155,21 @@ fn extension_kind(path: &Path) -> Option<SampleKind> {
 }
 
 fn read_dir_sorted(dir: &Path) -> Result<Vec<(String, PathBuf, bool)>, ImageError> {
-    let io = |source| ImageError::Io { path: dir.to_path_buf(), source };
+    let io = |source| ImageError::Io {
+        path: dir.to_path_buf(),
+        source,
+    };
     let mut out = Vec::new();
     for e in std::fs::read_dir(dir).map_err(io)? {
         let e = e.map_err(io)?;
         let path = e.path();
         // Follows symbolic links, so a linked class folder works.
-        let is_dir = std::fs::metadata(&path).map_err(|source| ImageError::Io { path: path.clone(), source })?.is_dir();
+        let is_dir = std::fs::metadata(&path)
+            .map_err(|source| ImageError::Io {
+                path: path.clone(),
+                source,
+            })?
+            .is_dir();
         out.push((e.file_name().to_string_lossy().into_owned(), path, is_dir));
     }
     out.sort_by(|a, b| a.0.as_bytes().cmp(b.0.as_bytes()));
@@ -177,23 +185,43 @@ impl ImageSet {
     }
 
     /// [`ImageSet::open`] from an input description and class labels.
-    pub fn open_for(dir: &Path, spec: &InputSpec, labels: &[String]) -> Result<ImageSet, ImageError> {
+    pub fn open_for(
+        dir: &Path,
+        spec: &InputSpec,
+        labels: &[String],
+    ) -> Result<ImageSet, ImageError> {
         let mut entries = Vec::new();
         let mut ignored = Vec::new();
-        let mut push = |name: String, path: PathBuf, label: Option<usize>, ignored: &mut Vec<PathBuf>| match extension_kind(&path) {
-            Some(kind) => entries.push(Entry { path, name, label, kind }),
-            None => ignored.push(path),
-        };
+        let mut push =
+            |name: String, path: PathBuf, label: Option<usize>, ignored: &mut Vec<PathBuf>| {
+                match extension_kind(&path) {
+                    Some(kind) => entries.push(Entry {
+                        path,
+                        name,
+                        label,
+                        kind,
+                    }),
+                    None => ignored.push(path),
+                }
+            };
         for (name, path, is_dir) in read_dir_sorted(dir)? {
             if !is_dir {
                 push(name, path, None, &mut ignored);
                 continue;
             }
-            let label = labels.iter().position(|l| *l == name).ok_or_else(|| ImageError::UnknownClass {
-                path: path.clone(),
-                name: name.clone(),
-                labels: if labels.is_empty() { "none".into() } else { labels.join(", ") },
-            })?;
+            let label =
+                labels
+                    .iter()
+                    .position(|l| *l == name)
+                    .ok_or_else(|| ImageError::UnknownClass {
+                        path: path.clone(),
+                        name: name.clone(),
+                        labels: if labels.is_empty() {
+                            "none".into()
+                        } else {
+                            labels.join(", ")
+                        },
+                    })?;
             for (file, fpath, fis_dir) in read_dir_sorted(&path)? {
                 if fis_dir {
                     ignored.push(fpath);
@@ -204,9 +232,17 @@ impl ImageSet {
         }
         entries.sort_by(|a, b| a.name.as_bytes().cmp(b.name.as_bytes()));
         if entries.is_empty() {
-            return Err(ImageError::Empty { path: dir.to_path_buf(), extensions: PICTURE_EXTENSIONS.join(", ") });
+            return Err(ImageError::Empty {
+                path: dir.to_path_buf(),
+                extensions: PICTURE_EXTENSIONS.join(", "),
+            });
         }
-        Ok(ImageSet { root: dir.to_path_buf(), spec: spec.clone(), entries, ignored })
+        Ok(ImageSet {
+            root: dir.to_path_buf(),
+            spec: spec.clone(),
+            entries,
+            ignored,
+        })
     }
 
     /// The folder.
@@ -241,11 +277,21 @@ impl ImageSet {
             SampleKind::Picture => {
                 let pixels = load_pixels(&e.path, &self.spec)?;
                 let input = preprocess(&self.spec, &pixels);
-                Ok(Sample { index, label: e.label, pixels: Some(pixels), input })
+                Ok(Sample {
+                    index,
+                    label: e.label,
+                    pixels: Some(pixels),
+                    input,
+                })
             }
             SampleKind::Npy => {
                 let input = read_npy(&e.path, self.spec.shape)?;
-                Ok(Sample { index, label: e.label, pixels: None, input })
+                Ok(Sample {
+                    index,
+                    label: e.label,
+                    pixels: None,
+                    input,
+                })
             }
         }
     }
@@ -258,11 +304,20 @@ impl ImageSet {
 
 /// Decodes a picture file to `spec`'s colour and size: HWC bytes.
 pub fn load_pixels(path: &Path, spec: &InputSpec) -> Result<Vec<u8>, ImageError> {
-    let decode = |message: String| ImageError::Decode { path: path.to_path_buf(), message };
+    let decode = |message: String| ImageError::Decode {
+        path: path.to_path_buf(),
+        message,
+    };
     let reader = image::ImageReader::open(path)
-        .map_err(|source| ImageError::Io { path: path.to_path_buf(), source })?
+        .map_err(|source| ImageError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?
         .with_guessed_format()
-        .map_err(|source| ImageError::Io { path: path.to_path_buf(), source })?;
+        .map_err(|source| ImageError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
     let img = reader.decode().map_err(|e| decode(e.to_string()))?;
     let (w, h) = (spec.shape.w as u32, spec.shape.h as u32);
     let resize = |iw: u32, ih: u32| iw != w || ih != h;
@@ -290,8 +345,9 @@ pub fn preprocess(spec: &InputSpec, pixels: &[u8]) -> Vec<f32> {
     debug_assert_eq!(pixels.len(), c * h * w);
     // One table per channel: 256 entries, the exact values the int8 path's
     // input table is built from.
-    let tables: Vec<[f32; 256]> =
-        (0..c).map(|ch| std::array::from_fn(|p| spec.preprocess(ch, p as u8))).collect();
+    let tables: Vec<[f32; 256]> = (0..c)
+        .map(|ch| std::array::from_fn(|p| spec.preprocess(ch, p as u8)))
+        .collect();
     let mut out = vec![0.0f32; c * h * w];
     for (ch, table) in tables.iter().enumerate() {
         let plane = &mut out[ch * h * w..(ch + 1) * h * w];
@@ -305,8 +361,14 @@ pub fn preprocess(spec: &InputSpec, pixels: &[u8]) -> Vec<f32> {
 /// Reads a `.npy` file holding little-endian `float32` values in C order,
 /// of shape exactly `[C, H, W]` of `shape`.
 pub fn read_npy(path: &Path, shape: Shape) -> Result<Vec<f32>, ImageError> {
-    let bytes = std::fs::read(path).map_err(|source| ImageError::Io { path: path.to_path_buf(), source })?;
-    parse_npy(&bytes, shape).map_err(|message| ImageError::Npy { path: path.to_path_buf(), message })
+    let bytes = std::fs::read(path).map_err(|source| ImageError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    parse_npy(&bytes, shape).map_err(|message| ImageError::Npy {
+        path: path.to_path_buf(),
+        message,
+    })
 }
 
 /// The `.npy` parser behind [`read_npy`]: NumPy format 1.0, 2.0 or 3.0.
@@ -322,34 +384,65 @@ pub fn parse_npy(bytes: &[u8], shape: Shape) -> Result<Vec<f32>, String> {
             if bytes.len() < 12 {
                 return Err("truncated header".into());
             }
-            (u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]) as usize, 12)
+            (
+                u32::from_le_bytes([bytes[8], bytes[9], bytes[10], bytes[11]]) as usize,
+                12,
+            )
         }
         v => return Err(format!("unsupported format version {v}.{}", bytes[7])),
     };
-    let end = start.checked_add(header_len).filter(|&e| e <= bytes.len()).ok_or("truncated header")?;
+    let end = start
+        .checked_add(header_len)
+        .filter(|&e| e <= bytes.len())
+        .ok_or("truncated header")?;
     let header = std::str::from_utf8(&bytes[start..end]).map_err(|_| "header is not text")?;
     let dict = parse_header(header)?;
-    let descr = dict.iter().find(|(k, _)| k == "descr").map(|(_, v)| v.as_str()).ok_or("header has no 'descr'")?;
+    let descr = dict
+        .iter()
+        .find(|(k, _)| k == "descr")
+        .map(|(_, v)| v.as_str())
+        .ok_or("header has no 'descr'")?;
     if descr != "'<f4'" {
-        return Err(format!("dtype {descr} is not supported; expected little-endian float32 ('<f4')"));
+        return Err(format!(
+            "dtype {descr} is not supported; expected little-endian float32 ('<f4')"
+        ));
     }
-    match dict.iter().find(|(k, _)| k == "fortran_order").map(|(_, v)| v.as_str()) {
+    match dict
+        .iter()
+        .find(|(k, _)| k == "fortran_order")
+        .map(|(_, v)| v.as_str())
+    {
         Some("False") => {}
-        Some("True") => return Err("Fortran (column-major) order is not supported; save in C order".into()),
+        Some("True") => {
+            return Err("Fortran (column-major) order is not supported; save in C order".into())
+        }
         other => return Err(format!("bad 'fortran_order': {other:?}")),
     }
-    let shape_text = dict.iter().find(|(k, _)| k == "shape").map(|(_, v)| v.as_str()).ok_or("header has no 'shape'")?;
+    let shape_text = dict
+        .iter()
+        .find(|(k, _)| k == "shape")
+        .map(|(_, v)| v.as_str())
+        .ok_or("header has no 'shape'")?;
     let dims = parse_shape(shape_text)?;
     let want = [shape.c, shape.h, shape.w];
     if dims != want {
-        return Err(format!("shape {dims:?} does not match the graph input [C, H, W] = {want:?}"));
+        return Err(format!(
+            "shape {dims:?} does not match the graph input [C, H, W] = {want:?}"
+        ));
     }
     let n = shape.len();
     let data = &bytes[end..];
     if data.len() != n * 4 {
-        return Err(format!("expected {} bytes of data for {n} float32 values, found {}", n * 4, data.len()));
+        return Err(format!(
+            "expected {} bytes of data for {n} float32 values, found {}",
+            n * 4,
+            data.len()
+        ));
     }
-    let values: Vec<f32> = data.chunks_exact(4).map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]])).collect();
+    let values: Vec<f32> = data
+        .chunks_exact(4)
+        .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+        .collect();
     if let Some(i) = values.iter().position(|v| !v.is_finite()) {
         return Err(format!("value {i} is not finite ({})", values[i]));
     }
@@ -360,7 +453,10 @@ pub fn parse_npy(bytes: &[u8], shape: Shape) -> Result<Vec<f32>, String> {
 /// (values trimmed, keys unquoted). Only the shapes NumPy writes are handled.
 fn parse_header(header: &str) -> Result<Vec<(String, String)>, String> {
     let t = header.trim();
-    let inner = t.strip_prefix('{').and_then(|s| s.strip_suffix('}')).ok_or("header is not a dict literal")?;
+    let inner = t
+        .strip_prefix('{')
+        .and_then(|s| s.strip_suffix('}'))
+        .ok_or("header is not a dict literal")?;
     let mut items = Vec::new();
     let (mut depth, mut quote, mut from) = (0i32, None::<char>, 0usize);
     let mut parts = Vec::new();
@@ -380,7 +476,9 @@ fn parse_header(header: &str) -> Result<Vec<(String, String)>, String> {
     }
     parts.push(&inner[from..]);
     for p in parts.into_iter().map(str::trim).filter(|p| !p.is_empty()) {
-        let (k, v) = p.split_once(':').ok_or_else(|| format!("bad header entry `{p}`"))?;
+        let (k, v) = p
+            .split_once(':')
+            .ok_or_else(|| format!("bad header entry `{p}`"))?;
         let k = k.trim().trim_matches(|c| c == '\'' || c == '"').to_string();
         items.push((k, v.trim().to_string()));
     }
@@ -388,12 +486,18 @@ fn parse_header(header: &str) -> Result<Vec<(String, String)>, String> {
 }
 
 fn parse_shape(text: &str) -> Result<Vec<usize>, String> {
-    let inner = text.strip_prefix('(').and_then(|s| s.strip_suffix(')')).ok_or_else(|| format!("bad shape `{text}`"))?;
+    let inner = text
+        .strip_prefix('(')
+        .and_then(|s| s.strip_suffix(')'))
+        .ok_or_else(|| format!("bad shape `{text}`"))?;
     inner
         .split(',')
         .map(str::trim)
         .filter(|s| !s.is_empty())
-        .map(|s| s.parse::<usize>().map_err(|_| format!("bad shape `{text}`")))
+        .map(|s| {
+            s.parse::<usize>()
+                .map_err(|_| format!("bad shape `{text}`"))
+        })
         .collect()
 }
 
@@ -402,7 +506,13 @@ fn parse_shape(text: &str) -> Result<Vec<usize>, String> {
 pub fn npy_bytes(values: &[f32], dims: &[usize]) -> Vec<u8> {
     let shape = match dims {
         [d] => format!("({d},)"),
-        _ => format!("({})", dims.iter().map(|d| d.to_string()).collect::<Vec<_>>().join(", ")),
+        _ => format!(
+            "({})",
+            dims.iter()
+                .map(|d| d.to_string())
+                .collect::<Vec<_>>()
+                .join(", ")
+        ),
     };
     let mut header = format!("{{'descr': '<f4', 'fortran_order': False, 'shape': {shape}, }}");
     // Pad with spaces so the data starts on a 64-byte boundary; end with '\n'.
@@ -461,7 +571,12 @@ mod tests {
         for i in 0..3 {
             // Lossless formats give back the bytes written.
             let s = set.load(i).unwrap();
-            assert_eq!(s.pixels.as_deref(), Some(img.as_raw().as_slice()), "{}", set.entries()[i].name);
+            assert_eq!(
+                s.pixels.as_deref(),
+                Some(img.as_raw().as_slice()),
+                "{}",
+                set.entries()[i].name
+            );
             assert_eq!(s.input.len(), 64);
             assert_eq!(s.input[9], (img.as_raw()[9] as f32 / 255.0 - 0.5) / 0.25);
             assert_eq!(s.label, None);
@@ -469,7 +584,12 @@ mod tests {
         // JPEG is lossy: close to the gradient.
         let s = set.load(3).unwrap();
         let px = s.pixels.unwrap();
-        let worst = px.iter().zip(img.as_raw()).map(|(a, b)| (*a as i32 - *b as i32).abs()).max().unwrap();
+        let worst = px
+            .iter()
+            .zip(img.as_raw())
+            .map(|(a, b)| (*a as i32 - *b as i32).abs())
+            .max()
+            .unwrap();
         assert!(worst <= 12, "{worst}");
     }
 
@@ -479,11 +599,13 @@ mod tests {
         // (ITU-R BT.709: 0.2126 R + 0.7152 G + 0.0722 B): pure red 255 gives
         // 54, pure green 182, pure blue 18.
         let dir = tempfile::tempdir().unwrap();
-        let img = RgbImage::from_fn(3, 1, |x, _| Rgb(match x {
-            0 => [255, 0, 0],
-            1 => [0, 255, 0],
-            _ => [0, 0, 255],
-        }));
+        let img = RgbImage::from_fn(3, 1, |x, _| {
+            Rgb(match x {
+                0 => [255, 0, 0],
+                1 => [0, 255, 0],
+                _ => [0, 0, 255],
+            })
+        });
         img.save(dir.path().join("rgb.png")).unwrap();
         let set = ImageSet::open_for(dir.path(), &spec(1, 1, 3), &[]).unwrap();
         assert_eq!(set.load(0).unwrap().pixels.unwrap(), [54, 182, 18]);
@@ -500,8 +622,12 @@ mod tests {
     fn resizes_to_the_input_size() {
         let dir = tempfile::tempdir().unwrap();
         // 32x16: left half black, right half white; the graph wants 8x4.
-        GrayImage::from_fn(32, 16, |x, _| Luma([if x < 16 { 0 } else { 255 }])).save(dir.path().join("half.png")).unwrap();
-        GrayImage::from_pixel(5, 7, Luma([77])).save(dir.path().join("flat.png")).unwrap();
+        GrayImage::from_fn(32, 16, |x, _| Luma([if x < 16 { 0 } else { 255 }]))
+            .save(dir.path().join("half.png"))
+            .unwrap();
+        GrayImage::from_pixel(5, 7, Luma([77]))
+            .save(dir.path().join("flat.png"))
+            .unwrap();
         let set = ImageSet::open_for(dir.path(), &spec(1, 4, 8), &[]).unwrap();
         let half = set.load(1).unwrap().pixels.unwrap();
         assert_eq!(half.len(), 32);
@@ -518,12 +644,26 @@ mod tests {
         let labels = vec!["cat".to_string(), "dog".to_string()];
         for (class, file) in [("dog", "x.png"), ("cat", "b.png"), ("cat", "a.png")] {
             std::fs::create_dir_all(dir.path().join(class)).unwrap();
-            gradient(4, 4).save(dir.path().join(class).join(file)).unwrap();
+            gradient(4, 4)
+                .save(dir.path().join(class).join(file))
+                .unwrap();
         }
         gradient(4, 4).save(dir.path().join("loose.png")).unwrap();
         let set = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &labels).unwrap();
-        let got: Vec<(&str, Option<usize>)> = set.entries().iter().map(|e| (e.name.as_str(), e.label)).collect();
-        assert_eq!(got, [("cat/a.png", Some(0)), ("cat/b.png", Some(0)), ("dog/x.png", Some(1)), ("loose.png", None)]);
+        let got: Vec<(&str, Option<usize>)> = set
+            .entries()
+            .iter()
+            .map(|e| (e.name.as_str(), e.label))
+            .collect();
+        assert_eq!(
+            got,
+            [
+                ("cat/a.png", Some(0)),
+                ("cat/b.png", Some(0)),
+                ("dog/x.png", Some(1)),
+                ("loose.png", None)
+            ]
+        );
         assert!(set.has_labels());
         assert_eq!(set.load(2).unwrap().label, Some(1));
     }
@@ -535,7 +675,10 @@ mod tests {
         std::fs::create_dir_all(dir.path().join("zebra")).unwrap();
         let labels = vec!["cat".to_string(), "dog".to_string()];
         let e = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &labels).unwrap_err();
-        assert!(matches!(e, ImageError::UnknownClass { ref name, .. } if name == "zebra"), "{e}");
+        assert!(
+            matches!(e, ImageError::UnknownClass { ref name, .. } if name == "zebra"),
+            "{e}"
+        );
         let msg = e.to_string();
         assert!(msg.contains("`zebra`") && msg.contains("cat, dog"), "{msg}");
         let e = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &[]).unwrap_err();
@@ -546,7 +689,11 @@ mod tests {
     fn corrupt_file_error_names_it() {
         let dir = tempfile::tempdir().unwrap();
         gradient(4, 4).save(dir.path().join("good.png")).unwrap();
-        std::fs::write(dir.path().join("broken.png"), b"\x89PNG\r\n\x1a\nthis is not a png").unwrap();
+        std::fs::write(
+            dir.path().join("broken.png"),
+            b"\x89PNG\r\n\x1a\nthis is not a png",
+        )
+        .unwrap();
         let set = ImageSet::open_for(dir.path(), &spec(1, 4, 4), &[]).unwrap();
         let e = set.load(0).unwrap_err();
         assert!(matches!(e, ImageError::Decode { .. }), "{e}");
@@ -593,12 +740,24 @@ mod tests {
         let cases: Vec<(&str, Vec<u8>, &str)> = vec![
             ("dtype.npy", f8, "'<f8'"),
             ("shape.npy", npy_bytes(&[0.0; 4], &[4]), "does not match"),
-            ("short.npy", {
-                let full = npy_bytes(&[0.0; 4], &[1, 2, 2]);
-                full[..full.len() - 8].to_vec()
-            }, "expected 16 bytes of data for 4 float32 values, found 8"),
-            ("magic.npy", b"PK\x03\x04 not numpy at all".to_vec(), "magic"),
-            ("nan.npy", npy_bytes(&[0.0, f32::NAN, 0.0, 0.0], &[1, 2, 2]), "not finite"),
+            (
+                "short.npy",
+                {
+                    let full = npy_bytes(&[0.0; 4], &[1, 2, 2]);
+                    full[..full.len() - 8].to_vec()
+                },
+                "expected 16 bytes of data for 4 float32 values, found 8",
+            ),
+            (
+                "magic.npy",
+                b"PK\x03\x04 not numpy at all".to_vec(),
+                "magic",
+            ),
+            (
+                "nan.npy",
+                npy_bytes(&[0.0, f32::NAN, 0.0, 0.0], &[1, 2, 2]),
+                "not finite",
+            ),
         ];
         for (name, bytes, needle) in cases {
             let path = dir.path().join(name);
@@ -608,7 +767,11 @@ mod tests {
             assert!(matches!(e, ImageError::Npy { .. }), "{msg}");
             assert!(msg.contains(name) && msg.contains(needle), "{name}: {msg}");
         }
-        let fortran = replace(npy_bytes(&[0.0; 4], &[1, 2, 2]), b"'fortran_order': False", b"'fortran_order': True ");
+        let fortran = replace(
+            npy_bytes(&[0.0; 4], &[1, 2, 2]),
+            b"'fortran_order': False",
+            b"'fortran_order': True ",
+        );
         assert!(parse_npy(&fortran, shape).unwrap_err().contains("Fortran"));
     }
 }

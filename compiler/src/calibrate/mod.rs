@@ -6,15 +6,17 @@
 //! observers of [`observe`] and returns [`Ranges`] plus per-map statistics.
 //! A `holdout` share of the images is kept apart for evaluation.
 
+pub mod evaluate;
 pub mod images;
 pub mod observe;
 pub mod ranges;
 pub mod report;
 
+pub use evaluate::{evaluate, EvalError, Evaluation};
 pub use images::{ImageError, ImageSet, Sample};
-pub use report::{LayerRow, OutputAgreement, Report};
 pub use observe::{Method, DEFAULT_BINS};
 pub use ranges::{MapRange, Ranges, RangesError};
+pub use report::{LayerRow, OutputAgreement, Report};
 
 use crate::graph::{Graph, MapId};
 use indicatif::{ProgressBar, ProgressStyle};
@@ -39,14 +41,45 @@ impl MapSource for crate::reference::Reference<'_> {
     fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32])) {
         // Inputs come from an `ImageSet` bound to this graph, so their
         // length always matches and the reference cannot refuse them.
-        self.run_with(input, visit).expect("sample has the input's length");
+        self.run_with(input, visit)
+            .expect("sample has the input's length");
     }
 }
 
 /// Calibrates `graph` on `images` with its float reference: the library
 /// entry point (the CLI and build scripts call this).
-pub fn run(graph: &Graph, images: &ImageSet, opts: &CalibOptions) -> Result<Calibration, CalibError> {
-    run_with_source(graph, &crate::reference::Reference::new(graph), images, opts)
+pub fn run(
+    graph: &Graph,
+    images: &ImageSet,
+    opts: &CalibOptions,
+) -> Result<Calibration, CalibError> {
+    run_with_source(
+        graph,
+        &crate::reference::Reference::new(graph),
+        images,
+        opts,
+    )
+}
+
+/// The full report of a calibration: ranges and statistics per map and,
+/// when `int8` is set, the int8 evaluation (lowering with `lower_opts`, the
+/// integer simulator against the float reference; see [`evaluate()`]).
+pub fn report(
+    graph: &Graph,
+    images: &ImageSet,
+    cal: &Calibration,
+    opts: &CalibOptions,
+    int8: Option<&crate::lower::LowerOptions>,
+) -> Result<Report, EvalError> {
+    let mut r = Report::new(graph, images, cal);
+    match int8 {
+        Some(lo) => {
+            let ev = evaluate(graph, images, cal, lo, opts.skip_bad, opts.progress)?;
+            r.add_evaluation(images, &ev);
+        }
+        None => r.not_evaluated = Some("not requested".into()),
+    }
+    Ok(r)
 }
 
 /// Options of a calibration run.
@@ -66,7 +99,13 @@ pub struct CalibOptions {
 
 impl Default for CalibOptions {
     fn default() -> Self {
-        CalibOptions { method: Method::MinMax, bins: DEFAULT_BINS, holdout: 0.0, skip_bad: false, progress: false }
+        CalibOptions {
+            method: Method::MinMax,
+            bins: DEFAULT_BINS,
+            holdout: 0.0,
+            skip_bad: false,
+            progress: false,
+        }
     }
 }
 
@@ -155,7 +194,9 @@ pub fn progress_bar(len: u64, wanted: bool, message: &str) -> ProgressBar {
         return ProgressBar::hidden();
     }
     let pb = ProgressBar::new(len);
-    if let Ok(style) = ProgressStyle::with_template("{msg} [{bar:30}] {pos}/{len} images ({per_sec}, eta {eta})") {
+    if let Ok(style) =
+        ProgressStyle::with_template("{msg} [{bar:30}] {pos}/{len} images ({per_sec}, eta {eta})")
+    {
         pb.set_style(style.progress_chars("=> "));
     }
     pb.set_message(message.to_string());
@@ -252,22 +293,42 @@ pub fn run_with_source<S: MapSource + ?Sized>(
         images: o.calibration.len(),
         maps: o.ranges,
     };
-    Ok(Calibration { ranges, stats: o.stats, calibration: o.calibration, evaluation: o.evaluation, skipped: o.skipped })
+    Ok(Calibration {
+        ranges,
+        stats: o.stats,
+        calibration: o.calibration,
+        evaluation: o.evaluation,
+        skipped: o.skipped,
+    })
 }
 
 /// The graph-independent core of calibration: both passes over the
 /// calibration images of `images` and the choice of every map's range.
-pub fn observe_set<S: MapSource + ?Sized>(src: &S, images: &ImageSet, opts: &CalibOptions) -> Result<Observed, CalibError> {
+pub fn observe_set<S: MapSource + ?Sized>(
+    src: &S,
+    images: &ImageSet,
+    opts: &CalibOptions,
+) -> Result<Observed, CalibError> {
     if !(0.0..1.0).contains(&opts.holdout) {
-        return Err(CalibError::Options(format!("holdout {} is not in [0, 1)", opts.holdout)));
+        return Err(CalibError::Options(format!(
+            "holdout {} is not in [0, 1)",
+            opts.holdout
+        )));
     }
     if opts.bins < 2 {
-        return Err(CalibError::Options(format!("{} histogram bins; need at least 2", opts.bins)));
+        return Err(CalibError::Options(format!(
+            "{} histogram bins; need at least 2",
+            opts.bins
+        )));
     }
     let n_maps = src.map_count();
     let (cal_all, evaluation) = split(images.len(), opts.holdout);
     let passes = if opts.method.needs_histogram() { 2 } else { 1 };
-    let pb = progress_bar((passes * cal_all.len()) as u64, opts.progress, "calibrating");
+    let pb = progress_bar(
+        (passes * cal_all.len()) as u64,
+        opts.progress,
+        "calibrating",
+    );
 
     let (ext, bad) = pass(
         src,
@@ -280,10 +341,24 @@ pub fn observe_set<S: MapSource + ?Sized>(src: &S, images: &ImageSet, opts: &Cal
         |a, b| a.merge(&b),
     )?;
     let bad_set: std::collections::BTreeSet<usize> = bad.iter().map(|(i, _)| *i).collect();
-    let calibration: Vec<usize> = cal_all.iter().copied().filter(|i| !bad_set.contains(i)).collect();
-    let skipped: Vec<Skipped> = bad.into_iter().map(|(index, e)| Skipped { index, reason: e.to_string() }).collect();
+    let calibration: Vec<usize> = cal_all
+        .iter()
+        .copied()
+        .filter(|i| !bad_set.contains(i))
+        .collect();
+    let skipped: Vec<Skipped> = bad
+        .into_iter()
+        .map(|(index, e)| Skipped {
+            index,
+            reason: e.to_string(),
+        })
+        .collect();
     if calibration.is_empty() {
-        return Err(CalibError::NoImages { listed: images.len(), held_out: evaluation.len(), skipped: skipped.len() });
+        return Err(CalibError::NoImages {
+            listed: images.len(),
+            held_out: evaluation.len(),
+            skipped: skipped.len(),
+        });
     }
 
     let hist = if opts.method.needs_histogram() {
@@ -311,9 +386,20 @@ pub fn observe_set<S: MapSource + ?Sized>(src: &S, images: &ImageSet, opts: &Cal
     let stats = choices
         .iter()
         .zip(&ext.maps)
-        .map(|(c, mm)| MapStats { observed: mm.range(), clipped: c.clipped, values: mm.count, nonfinite: mm.nonfinite })
+        .map(|(c, mm)| MapStats {
+            observed: mm.range(),
+            clipped: c.clipped,
+            values: mm.count,
+            nonfinite: mm.nonfinite,
+        })
         .collect();
-    Ok(Observed { ranges: choices.iter().map(|c| c.range).collect(), stats, calibration, evaluation, skipped })
+    Ok(Observed {
+        ranges: choices.iter().map(|c| c.range).collect(),
+        stats,
+        calibration,
+        evaluation,
+        skipped,
+    })
 }
 
 #[cfg(test)]
@@ -332,7 +418,10 @@ mod tests {
         }
         fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32])) {
             visit(MapId(0), input);
-            let a: Vec<f32> = input.iter().map(|x| 3.0 * x - 0.2 + (7.0 * x).sin()).collect();
+            let a: Vec<f32> = input
+                .iter()
+                .map(|x| 3.0 * x - 0.2 + (7.0 * x).sin())
+                .collect();
             visit(MapId(1), &a);
             let b: Vec<f32> = a.iter().map(|x| (x * x * x).max(0.0)).collect();
             visit(MapId(2), &b);
@@ -359,12 +448,19 @@ mod tests {
     }
 
     fn in_pool<T: Send>(threads: usize, f: impl FnOnce() -> T + Send) -> T {
-        rayon::ThreadPoolBuilder::new().num_threads(threads).build().unwrap().install(f)
+        rayon::ThreadPoolBuilder::new()
+            .num_threads(threads)
+            .build()
+            .unwrap()
+            .install(f)
     }
 
     #[test]
     fn holdout_split_is_even_and_exact() {
-        assert_eq!(split(10, 0.2), ((0..10).filter(|i| *i != 4 && *i != 9).collect(), vec![4, 9]));
+        assert_eq!(
+            split(10, 0.2),
+            ((0..10).filter(|i| *i != 4 && *i != 9).collect(), vec![4, 9])
+        );
         assert_eq!(split(5, 0.0), (vec![0, 1, 2, 3, 4], vec![]));
         let (cal, eval) = split(1000, 0.25);
         assert_eq!((cal.len(), eval.len()), (750, 250));
@@ -376,18 +472,37 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         write_images(dir.path(), 40);
         let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
-        for method in [Method::MinMax, Method::Percentile(99.0), Method::Mse, Method::Kl] {
-            let opts = CalibOptions { method, holdout: 0.1, ..CalibOptions::default() };
+        for method in [
+            Method::MinMax,
+            Method::Percentile(99.0),
+            Method::Mse,
+            Method::Kl,
+        ] {
+            let opts = CalibOptions {
+                method,
+                holdout: 0.1,
+                ..CalibOptions::default()
+            };
             let one = in_pool(1, || observe_set(&Fake, &set, &opts).unwrap());
             let two = in_pool(2, || observe_set(&Fake, &set, &opts).unwrap());
             assert_eq!(one, two, "{method}");
             // Bit-identical, not merely close.
             for (a, b) in one.ranges.iter().zip(&two.ranges) {
-                assert_eq!((a.min.to_bits(), a.max.to_bits()), (b.min.to_bits(), b.max.to_bits()));
+                assert_eq!(
+                    (a.min.to_bits(), a.max.to_bits()),
+                    (b.min.to_bits(), b.max.to_bits())
+                );
             }
             assert_eq!((one.calibration.len(), one.evaluation.len()), (36, 4));
-            assert!(one.ranges[1].min < 0.0 && one.ranges[1].max > 0.0, "{method}: {:?}", one.ranges[1]);
-            assert_eq!(one.ranges[2].min, 0.0, "{method}: a ReLU map gets a one-sided range");
+            assert!(
+                one.ranges[1].min < 0.0 && one.ranges[1].max > 0.0,
+                "{method}: {:?}",
+                one.ranges[1]
+            );
+            assert_eq!(
+                one.ranges[2].min, 0.0,
+                "{method}: a ReLU map gets a one-sided range"
+            );
             assert_eq!(one.stats[0].values, 36 * 64);
         }
     }
@@ -399,11 +514,22 @@ mod tests {
         std::fs::write(dir.path().join("img001.png"), b"garbage").unwrap();
         std::fs::write(dir.path().join("img003.png"), b"more garbage").unwrap();
         let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
-        let opts = CalibOptions { method: Method::Kl, skip_bad: true, ..CalibOptions::default() };
+        let opts = CalibOptions {
+            method: Method::Kl,
+            skip_bad: true,
+            ..CalibOptions::default()
+        };
         let o = observe_set(&Fake, &set, &opts).unwrap();
         assert_eq!(o.calibration, [0, 2, 4]);
-        assert_eq!(o.skipped.iter().map(|s| s.index).collect::<Vec<_>>(), [1, 3]);
-        assert!(o.skipped[0].reason.contains("img001.png"), "{}", o.skipped[0].reason);
+        assert_eq!(
+            o.skipped.iter().map(|s| s.index).collect::<Vec<_>>(),
+            [1, 3]
+        );
+        assert!(
+            o.skipped[0].reason.contains("img001.png"),
+            "{}",
+            o.skipped[0].reason
+        );
         assert_eq!(o.stats[0].values, 3 * 64);
         // Without skip_bad the first bad file is the error.
         let e = observe_set(&Fake, &set, &CalibOptions::default()).unwrap_err();
@@ -434,10 +560,26 @@ mod tests {
         let dir = tempfile::tempdir().unwrap();
         write_images(dir.path(), 2);
         let set = ImageSet::open_for(dir.path(), &spec(), &[]).unwrap();
-        let e = observe_set(&Fake, &set, &CalibOptions { holdout: 1.0, ..CalibOptions::default() }).unwrap_err();
+        let e = observe_set(
+            &Fake,
+            &set,
+            &CalibOptions {
+                holdout: 1.0,
+                ..CalibOptions::default()
+            },
+        )
+        .unwrap_err();
         assert!(e.to_string().contains("holdout 1"), "{e}");
         // Holding out every other image of two leaves one.
-        let o = observe_set(&Fake, &set, &CalibOptions { holdout: 0.5, ..CalibOptions::default() }).unwrap();
+        let o = observe_set(
+            &Fake,
+            &set,
+            &CalibOptions {
+                holdout: 0.5,
+                ..CalibOptions::default()
+            },
+        )
+        .unwrap();
         assert_eq!((o.calibration, o.evaluation), (vec![0], vec![1]));
     }
 }

@@ -98,7 +98,9 @@ impl FromStr for Method {
                 let p = s.strip_prefix("percentile:").ok_or_else(|| {
                     format!("unknown method `{s}`; expected minmax, percentile:P (e.g. percentile:99.99), mse or kl")
                 })?;
-                let v: f64 = p.parse().map_err(|_| format!("percentile `{p}` is not a number"))?;
+                let v: f64 = p
+                    .parse()
+                    .map_err(|_| format!("percentile `{p}` is not a number"))?;
                 if !(v > 0.0 && v <= 100.0) {
                     return Err(format!("percentile {v} is not in (0, 100]"));
                 }
@@ -124,7 +126,12 @@ pub struct MinMax {
 
 impl Default for MinMax {
     fn default() -> Self {
-        MinMax { min: f32::INFINITY, max: f32::NEG_INFINITY, count: 0, nonfinite: 0 }
+        MinMax {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY,
+            count: 0,
+            nonfinite: 0,
+        }
     }
 }
 
@@ -159,7 +166,11 @@ impl MinMax {
         if self.count == 0 {
             MapRange { min: 0.0, max: 0.0 }
         } else {
-            MapRange { min: self.min, max: self.max }.with_zero()
+            MapRange {
+                min: self.min,
+                max: self.max,
+            }
+            .with_zero()
         }
     }
 }
@@ -174,7 +185,9 @@ pub struct Extremes {
 impl Extremes {
     /// Nothing seen yet, for `n` maps.
     pub fn new(n: usize) -> Self {
-        Extremes { maps: vec![MinMax::default(); n] }
+        Extremes {
+            maps: vec![MinMax::default(); n],
+        }
     }
     /// Adds one map's values.
     pub fn observe(&mut self, m: MapId, values: &[f32]) {
@@ -201,7 +214,10 @@ pub struct SideHist {
 
 impl SideHist {
     fn new(limit: f32, bins: usize) -> Self {
-        SideHist { limit: limit.max(0.0), counts: vec![0; bins] }
+        SideHist {
+            limit: limit.max(0.0),
+            counts: vec![0; bins],
+        }
     }
 
     /// Number of values.
@@ -248,14 +264,25 @@ impl MapHist {
     /// Empty histogram over the range of `mm` with `bins` bins per side.
     pub fn new(mm: &MinMax, bins: usize) -> Self {
         let r = mm.range();
-        MapHist { pos: SideHist::new(r.max, bins), neg: SideHist::new(-r.min, bins) }
+        MapHist {
+            pos: SideHist::new(r.max, bins),
+            neg: SideHist::new(-r.min, bins),
+        }
     }
 
     /// Adds values (non-finite ones are skipped, as in pass 1).
     pub fn observe(&mut self, values: &[f32]) {
         let n = self.pos.counts.len() as f64;
-        let sp = if self.pos.limit > 0.0 { n / self.pos.limit as f64 } else { 0.0 };
-        let sn = if self.neg.limit > 0.0 { n / self.neg.limit as f64 } else { 0.0 };
+        let sp = if self.pos.limit > 0.0 {
+            n / self.pos.limit as f64
+        } else {
+            0.0
+        };
+        let sn = if self.neg.limit > 0.0 {
+            n / self.neg.limit as f64
+        } else {
+            0.0
+        };
         for &v in values {
             if !v.is_finite() {
                 continue;
@@ -291,7 +318,9 @@ pub struct Histograms {
 impl Histograms {
     /// Empty histograms over the pass-1 ranges.
     pub fn new(ext: &Extremes, bins: usize) -> Self {
-        Histograms { maps: ext.maps.iter().map(|m| MapHist::new(m, bins)).collect() }
+        Histograms {
+            maps: ext.maps.iter().map(|m| MapHist::new(m, bins)).collect(),
+        }
     }
     /// Adds one map's values.
     pub fn observe(&mut self, m: MapId, values: &[f32]) {
@@ -321,31 +350,57 @@ pub struct Choice {
 pub fn choose(method: Method, mm: &MinMax, hist: Option<&MapHist>) -> Choice {
     let observed = mm.range();
     let h = match (method, hist) {
-        (Method::MinMax, _) | (_, None) => return Choice { range: observed, clipped: 0.0 },
+        (Method::MinMax, _) | (_, None) => {
+            return Choice {
+                range: observed,
+                clipped: 0.0,
+            }
+        }
         (_, Some(h)) => h,
     };
     let bins = h.pos.counts.len();
     let total = h.pos.total() + h.neg.total();
     if total == 0 {
-        return Choice { range: observed, clipped: 0.0 };
+        return Choice {
+            range: observed,
+            clipped: 0.0,
+        };
     }
     let (kp, kn) = match method {
         Method::MinMax => unreachable!(),
         Method::Percentile(p) => {
             let allowed = ((1.0 - p / 100.0) * total as f64).floor() as u64;
-            (percentile_edge(&h.pos.counts, allowed), percentile_edge(&h.neg.counts, allowed))
+            (
+                percentile_edge(&h.pos.counts, allowed),
+                percentile_edge(&h.neg.counts, allowed),
+            )
         }
         Method::Mse => mse_edges(h),
         Method::Kl => {
             let (np, nn) = (h.pos.total(), h.neg.total());
             let levels = |other: u64| if other == 0 { 256 } else { 128 };
-            let kp = if np == 0 { bins } else { kl_threshold(&h.pos.counts, levels(nn)) };
-            let kn = if nn == 0 { bins } else { kl_threshold(&h.neg.counts, levels(np)) };
+            let kp = if np == 0 {
+                bins
+            } else {
+                kl_threshold(&h.pos.counts, levels(nn))
+            };
+            let kn = if nn == 0 {
+                bins
+            } else {
+                kl_threshold(&h.neg.counts, levels(np))
+            };
             (kp, kn)
         }
     };
     let clipped = (h.pos.beyond(kp) + h.neg.beyond(kn)) as f64 / total as f64;
-    Choice { range: MapRange { min: -h.neg.edge(kn), max: h.pos.edge(kp) }.with_zero(), clipped }
+    Choice {
+        range: MapRange {
+            min: -h.neg.edge(kn),
+            max: h.pos.edge(kp),
+        }
+        .with_zero(),
+        clipped,
+    }
 }
 
 /// The smallest edge `k` in `0..=bins` such that at most `allowed` values lie
@@ -412,7 +467,10 @@ fn mse_error(h: &MapHist, mp: &Moments, mn: &Moments, kp: usize, kn: usize) -> f
 fn mse_edges(h: &MapHist) -> (usize, usize) {
     let bins = h.pos.counts.len();
     let (mp, mn) = (Moments::new(&h.pos.counts), Moments::new(&h.neg.counts));
-    let (has_p, has_n) = (h.pos.total() > 0 && h.pos.limit > 0.0, h.neg.total() > 0 && h.neg.limit > 0.0);
+    let (has_p, has_n) = (
+        h.pos.total() > 0 && h.pos.limit > 0.0,
+        h.neg.total() > 0 && h.neg.limit > 0.0,
+    );
     let (mut kp, mut kn) = (if has_p { bins } else { 0 }, if has_n { bins } else { 0 });
     // First-minimum searches over one end with the other fixed; each round
     // cannot increase the error, and the rounds are few and deterministic.
@@ -477,7 +535,14 @@ pub fn kl_threshold(counts: &[u64], levels: usize) -> usize {
     best.0
 }
 
-fn kl_at(counts: &[u64], levels: usize, k: usize, beyond: u64, p: &mut [f64], q: &mut [f64]) -> f64 {
+fn kl_at(
+    counts: &[u64],
+    levels: usize,
+    k: usize,
+    beyond: u64,
+    p: &mut [f64],
+    q: &mut [f64],
+) -> f64 {
     for i in 0..k - 1 {
         p[i] = counts[i] as f64;
     }
@@ -487,7 +552,11 @@ fn kl_at(counts: &[u64], levels: usize, k: usize, beyond: u64, p: &mut [f64], q:
         let mass: u64 = counts[a..b].iter().sum();
         let nonzero = p[a..b].iter().filter(|&&v| v > 0.0).count();
         for i in a..b {
-            q[i] = if p[i] > 0.0 { mass as f64 / nonzero as f64 } else { 0.0 };
+            q[i] = if p[i] > 0.0 {
+                mass as f64 / nonzero as f64
+            } else {
+                0.0
+            };
         }
     }
     let (sp, sq): (f64, f64) = (p[..k].iter().sum(), q[..k].iter().sum());
@@ -528,13 +597,19 @@ mod tests {
     #[test]
     fn method_parses_and_prints() {
         assert_eq!("minmax".parse::<Method>().unwrap(), Method::MinMax);
-        assert_eq!("percentile:99.99".parse::<Method>().unwrap(), Method::Percentile(99.99));
+        assert_eq!(
+            "percentile:99.99".parse::<Method>().unwrap(),
+            Method::Percentile(99.99)
+        );
         assert_eq!("mse".parse::<Method>().unwrap(), Method::Mse);
         assert_eq!("kl".parse::<Method>().unwrap(), Method::Kl);
         assert_eq!(Method::Percentile(99.9).to_string(), "percentile:99.9");
         assert!("percentile:0".parse::<Method>().is_err());
         assert!("percentile:101".parse::<Method>().is_err());
-        assert!("entropy".parse::<Method>().unwrap_err().contains("unknown method `entropy`"));
+        assert!("entropy"
+            .parse::<Method>()
+            .unwrap_err()
+            .contains("unknown method `entropy`"));
     }
 
     #[test]
@@ -591,7 +666,9 @@ mod tests {
 
     /// Exponential quantiles `-ln(1 - (i + ½)/n)`: a long, thinning tail.
     fn exponential(n: usize) -> Vec<f32> {
-        (0..n).map(|i| -(1.0 - (i as f64 + 0.5) / n as f64).ln() as f32).collect()
+        (0..n)
+            .map(|i| -(1.0 - (i as f64 + 0.5) / n as f64).ln() as f32)
+            .collect()
     }
 
     #[test]
@@ -608,7 +685,12 @@ mod tests {
         // Without the outliers the tail alone is clipped, less hard.
         let (mm2, h2) = hist_of(&exponential(100_000), 2048);
         let kl2 = choose(Method::Kl, &mm2, Some(&h2));
-        assert!(kl2.range.max > 4.6 && kl2.range.max < mm2.max, "{:?} vs {}", kl2.range, mm2.max);
+        assert!(
+            kl2.range.max > 4.6 && kl2.range.max < mm2.max,
+            "{:?} vs {}",
+            kl2.range,
+            mm2.max
+        );
         assert_eq!(kl.range.min, 0.0);
         assert!(kl.clipped > 0.0 && kl.clipped < 0.01, "{}", kl.clipped);
         assert_eq!(choose(Method::MinMax, &mm, Some(&h)).range.max, 100.0);
@@ -627,15 +709,32 @@ mod tests {
         assert_eq!(percentile_edge(&counts, 1), 8);
         assert_eq!(percentile_edge(&counts, 0), 10);
         assert_eq!(percentile_edge(&counts, 100), 0);
-        let h = MapHist { pos: SideHist { limit: 10.0, counts }, neg: SideHist { limit: 0.0, counts: vec![0; 10] } };
-        let mm = MinMax { min: 0.0, max: 10.0, count: 100, nonfinite: 0 };
+        let h = MapHist {
+            pos: SideHist {
+                limit: 10.0,
+                counts,
+            },
+            neg: SideHist {
+                limit: 0.0,
+                counts: vec![0; 10],
+            },
+        };
+        let mm = MinMax {
+            min: 0.0,
+            max: 10.0,
+            count: 100,
+            nonfinite: 0,
+        };
         let c = choose(Method::Percentile(95.0), &mm, Some(&h));
         assert_eq!(c.range, MapRange { min: 0.0, max: 6.0 });
         assert!((c.clipped - 0.04).abs() < 1e-12);
         let c = choose(Method::Percentile(99.0), &mm, Some(&h));
         assert_eq!(c.range, MapRange { min: 0.0, max: 8.0 });
         assert!((c.clipped - 0.01).abs() < 1e-12);
-        assert_eq!(choose(Method::Percentile(100.0), &mm, Some(&h)).range.max, 10.0);
+        assert_eq!(
+            choose(Method::Percentile(100.0), &mm, Some(&h)).range.max,
+            10.0
+        );
     }
 
     #[test]
@@ -667,7 +766,11 @@ mod tests {
         assert_eq!(minmax.clipped, 0.0);
         assert!((mse.range.max - 4.38).abs() < 0.05, "{:?}", mse.range);
         assert_eq!(mse.range.min, 0.0);
-        assert!((mse.clipped - 1.0 / 1_000_001.0).abs() < 1e-12, "{}", mse.clipped);
+        assert!(
+            (mse.clipped - 1.0 / 1_000_001.0).abs() < 1e-12,
+            "{}",
+            mse.clipped
+        );
     }
 
     #[test]
@@ -685,7 +788,9 @@ mod tests {
         // 10⁶ values in [-1, 1] and one at -10: the negative end is clipped
         // (same trade-off as above with Δ = (t + 1)/255), the positive end
         // kept.
-        let mut v: Vec<f32> = (0..=1_000_000).map(|i| i as f32 / 500_000.0 - 1.0).collect();
+        let mut v: Vec<f32> = (0..=1_000_000)
+            .map(|i| i as f32 / 500_000.0 - 1.0)
+            .collect();
         v.push(-10.0);
         let (mm, h) = hist_of(&v, 2048);
         let c = choose(Method::Mse, &mm, Some(&h));
@@ -698,7 +803,9 @@ mod tests {
         let counts = [3u64, 0, 7, 1, 4, 2];
         let m = Moments::new(&counts);
         for k in 0..=counts.len() {
-            let direct: f64 = (k..counts.len()).map(|i| counts[i] as f64 * (i as f64 + 0.5 - k as f64).powi(2)).sum();
+            let direct: f64 = (k..counts.len())
+                .map(|i| counts[i] as f64 * (i as f64 + 0.5 - k as f64).powi(2))
+                .sum();
             assert!((m.clip(k) - direct).abs() < 1e-9, "k = {k}");
         }
         assert_eq!(m.inside(2), 3.0);

@@ -81,14 +81,21 @@ pub struct Report {
 impl Report {
     /// The report of a calibration before any int8 evaluation.
     pub fn new(graph: &Graph, images: &ImageSet, cal: &Calibration) -> Report {
-        let names = |ix: &[usize]| ix.iter().map(|&i| images.entries()[i].name.clone()).collect();
+        let names = |ix: &[usize]| {
+            ix.iter()
+                .map(|&i| images.entries()[i].name.clone())
+                .collect()
+        };
         let layers = (0..graph.map_count())
             .map(|i| {
                 let m = MapId(i as u32);
                 LayerRow {
                     map: m.0,
                     name: graph.map_name(m).to_string(),
-                    op: m.producer().map_or("input", |l| graph.layer(l).op.kind()).to_string(),
+                    op: m
+                        .producer()
+                        .map_or("input", |l| graph.layer(l).op.kind())
+                        .to_string(),
                     range: cal.ranges.maps[i],
                     observed: cal.stats[i].observed,
                     clipped: cal.stats[i].clipped,
@@ -106,8 +113,16 @@ impl Report {
             calibration: names(&cal.calibration),
             evaluation: names(&cal.evaluation),
             evaluated_on: "none".into(),
-            skipped: cal.skipped.iter().map(|s| (images.entries()[s.index].name.clone(), s.reason.clone())).collect(),
-            ignored: images.ignored().iter().map(|p| p.display().to_string()).collect(),
+            skipped: cal
+                .skipped
+                .iter()
+                .map(|s| (images.entries()[s.index].name.clone(), s.reason.clone()))
+                .collect(),
+            ignored: images
+                .ignored()
+                .iter()
+                .map(|p| p.display().to_string())
+                .collect(),
             layers,
             output: None,
             not_evaluated: None,
@@ -146,9 +161,20 @@ impl fmt::Display for Report {
             }
         }
         if !self.ignored.is_empty() {
-            writeln!(f, "ignored {} file(s) that are not images (first: {})", self.ignored.len(), self.ignored[0])?;
+            writeln!(
+                f,
+                "ignored {} file(s) that are not images (first: {})",
+                self.ignored.len(),
+                self.ignored[0]
+            )?;
         }
-        let name_w = self.layers.iter().map(|r| r.name.len()).max().unwrap_or(4).clamp(4, 48);
+        let name_w = self
+            .layers
+            .iter()
+            .map(|r| r.name.len())
+            .max()
+            .unwrap_or(4)
+            .clamp(4, 48);
         let mut t = String::new();
         writeln!(
             t,
@@ -182,7 +208,9 @@ impl fmt::Display for Report {
                     self.evaluated_on,
                     pct(o.top1_agreement)
                 )?;
-                if let (Some(fa), Some(ia), Some(d)) = (o.float_accuracy, o.int8_accuracy, o.drop_pp) {
+                if let (Some(fa), Some(ia), Some(d)) =
+                    (o.float_accuracy, o.int8_accuracy, o.drop_pp)
+                {
                     writeln!(
                         f,
                         "accuracy on {} labelled image(s): float {}, int8 {}, drop {:.2} percentage points",

@@ -23,7 +23,10 @@ pub mod ir;
 pub mod quant;
 pub mod sim;
 
-pub use ir::{ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId, QParams, QPool, QStep, StepId};
+pub use ir::{
+    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
+    QParams, QPool, QStep, StepId,
+};
 pub use quant::Activation;
 pub use sim::{SimError, SimInput, Simulator};
 
@@ -145,7 +148,13 @@ enum Role {
     /// Same stored map as its input.
     Alias,
     /// A step writing float map `out`.
-    Step { out: MapId, bn: Option<LayerId>, act: Activation, act_layer: Option<LayerId>, pre: Option<PreAct> },
+    Step {
+        out: MapId,
+        bn: Option<LayerId>,
+        act: Activation,
+        act_layer: Option<LayerId>,
+        pre: Option<PreAct>,
+    },
 }
 
 fn act_of(op: &Op) -> Option<Activation> {
@@ -194,23 +203,53 @@ fn plan(g: &Graph) -> Result<Vec<Role>, LowerError> {
                     }
                 }
                 let (act, act_layer) = fold_act(&mut out, &mut role);
-                Role::Step { out, bn, act, act_layer, pre: pre[i].take() }
+                Role::Step {
+                    out,
+                    bn,
+                    act,
+                    act_layer,
+                    pre: pre[i].take(),
+                }
             }
             Op::Linear(_) | Op::Add | Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool => {
                 let (act, act_layer) = fold_act(&mut out, &mut role);
-                Role::Step { out, bn: None, act, act_layer, pre: None }
+                Role::Step {
+                    out,
+                    bn: None,
+                    act,
+                    act_layer,
+                    pre: None,
+                }
             }
             Op::BatchNorm(_) => {
                 let (act, act_layer) = fold_act(&mut out, &mut role);
                 match sole(out) {
                     Some(j) if matches!(g.layer(j).op, Op::Conv2d(_)) => {
-                        pre[j.index()] = Some(PreAct { bn: id, relu: act_layer, act, src: layer.inputs[0], t: out });
+                        pre[j.index()] = Some(PreAct {
+                            bn: id,
+                            relu: act_layer,
+                            act,
+                            src: layer.inputs[0],
+                            t: out,
+                        });
                         Role::Absorbed
                     }
-                    _ => Role::Step { out, bn: Some(id), act, act_layer, pre: None },
+                    _ => Role::Step {
+                        out,
+                        bn: Some(id),
+                        act,
+                        act_layer,
+                        pre: None,
+                    },
                 }
             }
-            Op::Relu | Op::Relu6 | Op::Concat => Role::Step { out, bn: None, act: Activation::None, act_layer: None, pre: None },
+            Op::Relu | Op::Relu6 | Op::Concat => Role::Step {
+                out,
+                bn: None,
+                act: Activation::None,
+                act_layer: None,
+                pre: None,
+            },
             Op::Dropout | Op::Flatten => Role::Alias,
             Op::Softmax => {
                 if id.output() != g.output() || !g.consumers(id.output()).is_empty() {
@@ -229,7 +268,11 @@ fn plan(g: &Graph) -> Result<Vec<Role>, LowerError> {
 
 fn unsupported(g: &Graph, id: LayerId, message: impl Into<String>) -> LowerError {
     let l = g.layer(id);
-    LowerError::Unsupported { layer: l.name.clone(), op: l.op.kind(), message: message.into() }
+    LowerError::Unsupported {
+        layer: l.name.clone(),
+        op: l.op.kind(),
+        message: message.into(),
+    }
 }
 
 /// Union-find over float map indices, path-halving, union by smaller index
@@ -268,7 +311,12 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         }
     }
     let stored = |m: MapId, id: LayerId| -> Result<MapId, LowerError> {
-        canon[m.index()].ok_or_else(|| LowerError::Internal(format!("layer `{}` reads map {m}, which is folded away", g.layer(id).name)))
+        canon[m.index()].ok_or_else(|| {
+            LowerError::Internal(format!(
+                "layer `{}` reads map {m}, which is folded away",
+                g.layer(id).name
+            ))
+        })
     };
 
     // Pass 2: concatenation groups and quantization of stored maps.
@@ -289,7 +337,10 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
             let r = ranges.maps[m].with_zero();
             class_range[root] = Some(match class_range[root] {
                 None => r,
-                Some(u) => crate::calibrate::MapRange { min: u.min.min(r.min), max: u.max.max(r.max) },
+                Some(u) => crate::calibrate::MapRange {
+                    min: u.min.min(r.min),
+                    max: u.max.max(r.max),
+                },
             });
         }
     }
@@ -312,7 +363,9 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
             match writer[m] {
                 Some(l) if matches!(g.layer(l).op, Op::MaxPool2d(_)) => {
                     let src = stored(g.layer(l).inputs[0], l)?;
-                    qp[src.index()].ok_or_else(|| LowerError::Internal("max pool input not quantized yet".into()))?
+                    qp[src.index()].ok_or_else(|| {
+                        LowerError::Internal("max pool input not quantized yet".into())
+                    })?
                 }
                 _ => activation_qparams(ranges.maps[m]),
             }
@@ -321,12 +374,28 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
     }
 
     // Pass 3: maps and steps.
-    let mut b = Builder { g, opts, maps: Vec::new(), steps: Vec::new(), qmap: vec![None; nm] };
+    let mut b = Builder {
+        g,
+        opts,
+        maps: Vec::new(),
+        steps: Vec::new(),
+        qmap: vec![None; nm],
+    };
     let in_qp = qp[0].ok_or_else(|| LowerError::Internal("input not quantized".into()))?;
     b.add_map(MapId::INPUT, in_qp, g.shape(MapId::INPUT));
     for id in g.layer_ids() {
-        let Role::Step { out, bn, act, act_layer, pre } = roles[id.index()].clone() else { continue };
-        let out_qp = qp[out.index()].ok_or_else(|| LowerError::Internal(format!("map {out} not quantized")))?;
+        let Role::Step {
+            out,
+            bn,
+            act,
+            act_layer,
+            pre,
+        } = roles[id.index()].clone()
+        else {
+            continue;
+        };
+        let out_qp = qp[out.index()]
+            .ok_or_else(|| LowerError::Internal(format!("map {out} not quantized")))?;
         let mut layers = vec![id];
         layers.extend(pre.map(|p| p.bn));
         layers.extend(pre.and_then(|p| p.relu));
@@ -334,8 +403,10 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         layers.extend(act_layer);
         b.step(id, out, out_qp, bn, act, pre, layers, &canon, ranges)?;
     }
-    let out_canon = canon[g.output().index()].ok_or_else(|| LowerError::Internal("graph output folded away".into()))?;
-    let output = b.qmap[out_canon.index()].ok_or_else(|| LowerError::Internal("graph output not stored".into()))?;
+    let out_canon = canon[g.output().index()]
+        .ok_or_else(|| LowerError::Internal("graph output folded away".into()))?;
+    let output = b.qmap[out_canon.index()]
+        .ok_or_else(|| LowerError::Internal("graph output not stored".into()))?;
     if b.maps[output.index()].shape != g.shape(g.output()) {
         return Err(LowerError::Unsupported {
             layer: g.map_name(g.output()).into(),
@@ -343,7 +414,10 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
             message: format!("the graph output is a flattened {} map; int8 maps are stored HWC, so flattening is only supported into a linear layer", b.maps[output.index()].shape),
         });
     }
-    let softmax_dropped = g.output().producer().is_some_and(|l| matches!(g.layer(l).op, Op::Softmax));
+    let softmax_dropped = g
+        .output()
+        .producer()
+        .is_some_and(|l| matches!(g.layer(l).op, Op::Softmax));
     let q = QGraph {
         name: g.name().into(),
         labels: g.labels().to_vec(),
@@ -370,7 +444,11 @@ fn check_ranges(g: &Graph, ranges: &Ranges) -> Result<(), LowerError> {
     }
     for (i, r) in ranges.maps.iter().enumerate() {
         if !(r.min.is_finite() && r.max.is_finite() && r.min <= r.max) {
-            return Err(LowerError::BadRange { map: g.map_name(MapId(i as u32)).into(), min: r.min, max: r.max });
+            return Err(LowerError::BadRange {
+                map: g.map_name(MapId(i as u32)).into(),
+                min: r.min,
+                max: r.max,
+            });
         }
     }
     Ok(())
@@ -379,7 +457,9 @@ fn check_ranges(g: &Graph, ranges: &Ranges) -> Result<(), LowerError> {
 /// `pixel_table[c·256 + p] = clamp(round(((p·pixel_scale − mean[c]) / std[c]) / s_in) + z_in)`.
 pub fn pixel_table(g: &Graph, qp: QParams) -> Vec<i8> {
     let spec = g.input();
-    (0..spec.shape.c).flat_map(|c| (0..=255u8).map(move |p| quant::quantize(spec.preprocess(c, p), qp))).collect()
+    (0..spec.shape.c)
+        .flat_map(|c| (0..=255u8).map(move |p| quant::quantize(spec.preprocess(c, p), qp)))
+        .collect()
 }
 
 /// Folds an inference batch norm into the convolution before it:
@@ -449,18 +529,38 @@ struct Builder<'a> {
 impl Builder<'_> {
     fn add_map(&mut self, m: MapId, qp: QParams, shape: Shape) -> QMapId {
         let id = QMapId(self.maps.len() as u32);
-        self.maps.push(QMap { name: self.g.map_name(m).into(), shape, qp, float_map: m });
+        self.maps.push(QMap {
+            name: self.g.map_name(m).into(),
+            shape,
+            qp,
+            float_map: m,
+        });
         self.qmap[m.index()] = Some(id);
         id
     }
 
-    fn input_map(&self, id: LayerId, m: MapId, canon: &[Option<MapId>]) -> Result<QMapId, LowerError> {
+    fn input_map(
+        &self,
+        id: LayerId,
+        m: MapId,
+        canon: &[Option<MapId>],
+    ) -> Result<QMapId, LowerError> {
         canon[m.index()]
             .and_then(|c| self.qmap[c.index()])
-            .ok_or_else(|| LowerError::Internal(format!("layer `{}` reads map {m} before it is stored", self.g.layer(id).name)))
+            .ok_or_else(|| {
+                LowerError::Internal(format!(
+                    "layer `{}` reads map {m} before it is stored",
+                    self.g.layer(id).name
+                ))
+            })
     }
 
-    fn mult(&self, id: LayerId, what: impl Into<String>, value: f64) -> Result<Multiplier, LowerError> {
+    fn mult(
+        &self,
+        id: LayerId,
+        what: impl Into<String>,
+        value: f64,
+    ) -> Result<Multiplier, LowerError> {
         multiplier(value).ok_or_else(|| LowerError::Multiplier {
             layer: self.g.layer(id).name.clone(),
             op: self.g.layer(id).op.kind(),
@@ -491,7 +591,10 @@ impl Builder<'_> {
             Some(p) => vec![p.src],
             None => layer.inputs.clone(),
         };
-        let inputs = read.iter().map(|&m| self.input_map(id, m, canon)).collect::<Result<Vec<_>, _>>()?;
+        let inputs = read
+            .iter()
+            .map(|&m| self.input_map(id, m, canon))
+            .collect::<Result<Vec<_>, _>>()?;
         for (&m, &q) in read.iter().zip(&inputs) {
             let stored = self.maps[q.index()].shape;
             if stored != g.shape(m) && !matches!(layer.op, Op::Linear(_)) {
@@ -506,25 +609,43 @@ impl Builder<'_> {
                     None => (None, in_qp[0]),
                     Some(p) => {
                         let Op::BatchNorm(bnp) = &g.layer(p.bn).op else {
-                            return Err(LowerError::Internal("pre-activation without batch norm".into()));
+                            return Err(LowerError::Internal(
+                                "pre-activation without batch norm".into(),
+                            ));
                         };
                         let dom = activation_qparams(ranges.maps[p.t.index()]);
-                        let ab: Vec<(f64, f64)> = bnp.affine().iter().map(|&(a, b)| (a as f64, b as f64)).collect();
-                        let t = affine_transform(&ab, in_qp[0], dom, activation_clamp(p.act, dom)).ok_or_else(|| LowerError::Multiplier {
-                            layer: g.layer(p.bn).name.clone(),
-                            op: "batch_norm",
-                            what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
-                            value: ab.iter().fold(0f64, |m, &(a, _)| m.max(a.abs())) * in_qp[0].scale as f64 / dom.scale as f64,
-                        })?;
+                        let ab: Vec<(f64, f64)> = bnp
+                            .affine()
+                            .iter()
+                            .map(|&(a, b)| (a as f64, b as f64))
+                            .collect();
+                        let t = affine_transform(&ab, in_qp[0], dom, activation_clamp(p.act, dom))
+                            .ok_or_else(|| LowerError::Multiplier {
+                                layer: g.layer(p.bn).name.clone(),
+                                op: "batch_norm",
+                                what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
+                                value: ab.iter().fold(0f64, |m, &(a, _)| m.max(a.abs()))
+                                    * in_qp[0].scale as f64
+                                    / dom.scale as f64,
+                            })?;
                         (Some(t), dom)
                     }
                 };
                 let (w, bias) = match bn {
                     Some(l) => match &g.layer(l).op {
                         Op::BatchNorm(bnp) => fold_batch_norm(conv, bnp),
-                        _ => return Err(LowerError::Internal("folded layer is not a batch norm".into())),
+                        _ => {
+                            return Err(LowerError::Internal(
+                                "folded layer is not a batch norm".into(),
+                            ))
+                        }
                     },
-                    None => (conv.weight.data.clone(), conv.bias.as_ref().map_or_else(|| vec![0.0; conv.out_channels], |t| t.data.clone())),
+                    None => (
+                        conv.weight.data.clone(),
+                        conv.bias
+                            .as_ref()
+                            .map_or_else(|| vec![0.0; conv.out_channels], |t| t.data.clone()),
+                    ),
                 };
                 let [kh, kw] = conv.kernel;
                 let cpg = conv.in_channels / conv.groups;
@@ -534,13 +655,22 @@ impl Builder<'_> {
                     for i in 0..cpg {
                         for y in 0..kh {
                             for x in 0..kw {
-                                hwc[((o * kh + y) * kw + x) * cpg + i] = w[((o * cpg + i) * kh + y) * kw + x];
+                                hwc[((o * kh + y) * kw + x) * cpg + i] =
+                                    w[((o * cpg + i) * kh + y) * kw + x];
                             }
                         }
                     }
                 }
                 let qw = quantize_weights(&hwc, conv.out_channels, self.opts.per_channel);
-                let (bias, requant) = self.bias_and_requant(id, &qw, &bias, dom, out_qp, g.shape(read[0]), out_shape)?;
+                let (bias, requant) = self.bias_and_requant(
+                    id,
+                    &qw,
+                    &bias,
+                    dom,
+                    out_qp,
+                    g.shape(read[0]),
+                    out_shape,
+                )?;
                 QKernel::Conv2d(QConv {
                     out_channels: conv.out_channels,
                     in_channels: conv.in_channels,
@@ -572,8 +702,12 @@ impl Builder<'_> {
                     }
                 }
                 let qw = quantize_weights(&wq, lin.out_features, self.opts.per_channel);
-                let bias: Vec<f32> = lin.bias.as_ref().map_or_else(|| vec![0.0; lin.out_features], |t| t.data.clone());
-                let (bias, requant) = self.bias_and_requant(id, &qw, &bias, in_qp[0], out_qp, src, out_shape)?;
+                let bias: Vec<f32> = lin
+                    .bias
+                    .as_ref()
+                    .map_or_else(|| vec![0.0; lin.out_features], |t| t.data.clone());
+                let (bias, requant) =
+                    self.bias_and_requant(id, &qw, &bias, in_qp[0], out_qp, src, out_shape)?;
                 QKernel::Linear(QLinear {
                     out_features: lin.out_features,
                     in_features: lin.in_features,
@@ -588,18 +722,42 @@ impl Builder<'_> {
                 let requant = if in_qp[0] == out_qp {
                     None
                 } else {
-                    Some(self.mult(id, "s_in/s_out", in_qp[0].scale as f64 / out_qp.scale as f64)?)
+                    Some(self.mult(
+                        id,
+                        "s_in/s_out",
+                        in_qp[0].scale as f64 / out_qp.scale as f64,
+                    )?)
                 };
-                QKernel::MaxPool(QPool { kernel: p.kernel, stride: p.stride, padding: p.padding, requant, clamp })
+                QKernel::MaxPool(QPool {
+                    kernel: p.kernel,
+                    stride: p.stride,
+                    padding: p.padding,
+                    requant,
+                    clamp,
+                })
             }
             Op::AvgPool2d(p) => {
                 let n = (p.kernel[0] * p.kernel[1]) as f64;
-                let r = self.mult(id, "s_in/(s_out·kh·kw)", in_qp[0].scale as f64 / (out_qp.scale as f64 * n))?;
-                QKernel::AvgPool(QPool { kernel: p.kernel, stride: p.stride, padding: p.padding, requant: Some(r), clamp })
+                let r = self.mult(
+                    id,
+                    "s_in/(s_out·kh·kw)",
+                    in_qp[0].scale as f64 / (out_qp.scale as f64 * n),
+                )?;
+                QKernel::AvgPool(QPool {
+                    kernel: p.kernel,
+                    stride: p.stride,
+                    padding: p.padding,
+                    requant: Some(r),
+                    clamp,
+                })
             }
             Op::GlobalAvgPool => {
                 let s = g.shape(read[0]);
-                let r = self.mult(id, "s_in/(s_out·h·w)", in_qp[0].scale as f64 / (out_qp.scale as f64 * s.pixels() as f64))?;
+                let r = self.mult(
+                    id,
+                    "s_in/(s_out·h·w)",
+                    in_qp[0].scale as f64 / (out_qp.scale as f64 * s.pixels() as f64),
+                )?;
                 QKernel::GlobalAvgPool(QPool {
                     kernel: [s.h, s.w],
                     stride: [1, 1],
@@ -624,33 +782,71 @@ impl Builder<'_> {
                     what: "input or output rescaling (s_a, s_b, s_out)".into(),
                     value: in_qp[0].scale.max(in_qp[1].scale) as f64 / out_qp.scale as f64,
                 })?;
-                let m = |r: ingot_rt::Requant| Multiplier { mult: r.mult, shift: r.shift };
-                QKernel::Add(QAdd { a: m(p.a_rq), b: m(p.b_rq), out: m(p.out_rq), left_shift: p.left_shift, clamp })
+                let m = |r: ingot_rt::Requant| Multiplier {
+                    mult: r.mult,
+                    shift: r.shift,
+                };
+                QKernel::Add(QAdd {
+                    a: m(p.a_rq),
+                    b: m(p.b_rq),
+                    out: m(p.out_rq),
+                    left_shift: p.left_shift,
+                    clamp,
+                })
             }
             Op::Concat => QKernel::Concat,
             Op::BatchNorm(bnp) => {
-                let ab: Vec<(f64, f64)> = bnp.affine().iter().map(|&(a, b)| (a as f64, b as f64)).collect();
+                let ab: Vec<(f64, f64)> = bnp
+                    .affine()
+                    .iter()
+                    .map(|&(a, b)| (a as f64, b as f64))
+                    .collect();
                 QKernel::Channel(self.transform(id, &ab, in_qp[0], out_qp, clamp)?)
             }
             Op::Relu | Op::Relu6 => {
                 let act = act_of(&layer.op).unwrap_or(Activation::None);
                 let ab = vec![(1.0, 0.0); out_shape.c];
-                QKernel::Channel(self.transform(id, &ab, in_qp[0], out_qp, activation_clamp(act, out_qp))?)
+                QKernel::Channel(self.transform(
+                    id,
+                    &ab,
+                    in_qp[0],
+                    out_qp,
+                    activation_clamp(act, out_qp),
+                )?)
             }
-            Op::Dropout | Op::Flatten | Op::Softmax => return Err(LowerError::Internal(format!("alias layer `{}` planned as a step", layer.name))),
+            Op::Dropout | Op::Flatten | Op::Softmax => {
+                return Err(LowerError::Internal(format!(
+                    "alias layer `{}` planned as a step",
+                    layer.name
+                )))
+            }
         };
         let stored_shape = out_shape;
         let qid = self.add_map(out, out_qp, stored_shape);
-        self.steps.push(QStep { name: layer.name.clone(), layers, inputs, output: qid, kernel });
+        self.steps.push(QStep {
+            name: layer.name.clone(),
+            layers,
+            inputs,
+            output: qid,
+            kernel,
+        });
         Ok(())
     }
 
-    fn transform(&self, id: LayerId, ab: &[(f64, f64)], qin: QParams, qout: QParams, clamp: Clamp) -> Result<ChannelTransform, LowerError> {
+    fn transform(
+        &self,
+        id: LayerId,
+        ab: &[(f64, f64)],
+        qin: QParams,
+        qout: QParams,
+        clamp: Clamp,
+    ) -> Result<ChannelTransform, LowerError> {
         affine_transform(ab, qin, qout, clamp).ok_or_else(|| LowerError::Multiplier {
             layer: self.g.layer(id).name.clone(),
             op: self.g.layer(id).op.kind(),
             what: "channel transform multiplier a·s_in/s_out".into(),
-            value: ab.iter().fold(0f64, |m, &(a, _)| m.max(a.abs())) * qin.scale as f64 / qout.scale as f64,
+            value: ab.iter().fold(0f64, |m, &(a, _)| m.max(a.abs())) * qin.scale as f64
+                / qout.scale as f64,
         })
     }
 
@@ -678,7 +874,12 @@ impl Builder<'_> {
             let sum: i64 = row.iter().map(|&w| w as i64).sum();
             let f = bq - qin.zero_point as f64 * sum as f64;
             if !(bq.abs() <= i32::MAX as f64 && f.abs() <= i32::MAX as f64) {
-                return Err(LowerError::BiasOverflow { layer: layer.name.clone(), op: layer.op.kind(), channel: o, value: f });
+                return Err(LowerError::BiasOverflow {
+                    layer: layer.name.clone(),
+                    op: layer.op.kind(),
+                    channel: o,
+                    value: f,
+                });
             }
             let f = f as i32;
             if !ingot_rt::acc_fits(row, f) {
@@ -692,7 +893,11 @@ impl Builder<'_> {
                 });
             }
             folded.push(f);
-            requant.push(self.mult(id, format!("output channel {o} multiplier s_in·s_w/s_out"), s_acc / qout.scale as f64)?);
+            requant.push(self.mult(
+                id,
+                format!("output channel {o} multiplier s_in·s_w/s_out"),
+                s_acc / qout.scale as f64,
+            )?);
         }
         Ok((folded, requant))
     }

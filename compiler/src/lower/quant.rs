@@ -32,10 +32,16 @@ pub fn activation_qparams(r: MapRange) -> QParams {
     let (min, max) = (r.min as f64, r.max as f64);
     let scale = ((max - min) / 255.0) as f32;
     if !(scale.is_normal() && scale > 0.0) {
-        return QParams { scale: DEGENERATE_SCALE, zero_point: -128 };
+        return QParams {
+            scale: DEGENERATE_SCALE,
+            zero_point: -128,
+        };
     }
     let zp = round_half_up(-128.0 - min / scale as f64).clamp(-128.0, 127.0) as i32;
-    QParams { scale, zero_point: zp }
+    QParams {
+        scale,
+        zero_point: zp,
+    }
 }
 
 /// The int8 code of a real value: `clamp(round(v / scale) + zero_point)`,
@@ -59,12 +65,18 @@ pub fn multiplier(m: f64) -> Option<Multiplier> {
     if m.is_finite() && m.abs() < 2f64.powi(-32) {
         return Some(Multiplier { mult: 0, shift: 0 });
     }
-    Requant::from_real(m).map(|r| Multiplier { mult: r.mult, shift: r.shift })
+    Requant::from_real(m).map(|r| Multiplier {
+        mult: r.mult,
+        shift: r.shift,
+    })
 }
 
 /// The runtime form of a multiplier.
 pub fn to_requant(m: Multiplier) -> Requant {
-    Requant { mult: m.mult, shift: m.shift }
+    Requant {
+        mult: m.mult,
+        shift: m.shift,
+    }
 }
 
 /// A fused activation.
@@ -83,11 +95,20 @@ pub enum Activation {
 pub fn activation_clamp(act: Activation, qp: QParams) -> Clamp {
     let z = qp.zero_point.clamp(-128, 127) as i8;
     match act {
-        Activation::None => Clamp { min: i8::MIN, max: i8::MAX },
-        Activation::Relu => Clamp { min: z, max: i8::MAX },
+        Activation::None => Clamp {
+            min: i8::MIN,
+            max: i8::MAX,
+        },
+        Activation::Relu => Clamp {
+            min: z,
+            max: i8::MAX,
+        },
         Activation::Relu6 => {
             let six = round_half_up(6.0 / qp.scale as f64).min(255.0) as i32;
-            Clamp { min: z, max: (qp.zero_point + six).clamp(-128, 127) as i8 }
+            Clamp {
+                min: z,
+                max: (qp.zero_point + six).clamp(-128, 127) as i8,
+            }
         }
     }
 }
@@ -146,7 +167,12 @@ pub fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> QuantizedW
 /// input code is first reduced to a value that still saturates. Returns
 /// `None` when even `shift = 0` cannot hold a multiplier (one input step
 /// worth more than 2^31 output steps).
-pub fn affine_transform(ab: &[(f64, f64)], qin: QParams, qout: QParams, clamp: Clamp) -> Option<ChannelTransform> {
+pub fn affine_transform(
+    ab: &[(f64, f64)],
+    qin: QParams,
+    qout: QParams,
+    clamp: Clamp,
+) -> Option<ChannelTransform> {
     let (si, so) = (qin.scale as f64, qout.scale as f64);
     let reals: Vec<(f64, f64)> = ab
         .iter()
@@ -159,7 +185,9 @@ pub fn affine_transform(ab: &[(f64, f64)], qin: QParams, qout: QParams, clamp: C
     if reals.iter().any(|(m, a)| !m.is_finite() || !a.is_finite()) {
         return None;
     }
-    let maxv = reals.iter().fold(0f64, |acc, &(m, a)| acc.max(m.abs()).max(a.abs()));
+    let maxv = reals
+        .iter()
+        .fold(0f64, |acc, &(m, a)| acc.max(m.abs()).max(a.abs()));
     let limit = (i32::MAX - 1) as f64;
     let mut shift: i32 = 62;
     while shift >= 0 && maxv * 2f64.powi(shift) >= limit {
@@ -188,10 +216,20 @@ pub fn apply_transform(t: &ChannelTransform, ch: usize, x: i8) -> i8 {
 }
 
 /// Calls `f` with the runtime view of a transform.
-pub fn with_runtime_transform<R>(t: &ChannelTransform, f: impl FnOnce(&ingot_rt::InputTransform<'_>) -> R) -> R {
+pub fn with_runtime_transform<R>(
+    t: &ChannelTransform,
+    f: impl FnOnce(&ingot_rt::InputTransform<'_>) -> R,
+) -> R {
     match t {
-        ChannelTransform::Affine { mul, add, shift, zp_in, zp_out, clamp } => {
-            f(&ingot_rt::InputTransform::Affine(ingot_rt::AffineTransform {
+        ChannelTransform::Affine {
+            mul,
+            add,
+            shift,
+            zp_in,
+            zp_out,
+            clamp,
+        } => f(&ingot_rt::InputTransform::Affine(
+            ingot_rt::AffineTransform {
                 mul,
                 add,
                 shift: *shift,
@@ -199,8 +237,8 @@ pub fn with_runtime_transform<R>(t: &ChannelTransform, f: impl FnOnce(&ingot_rt:
                 zp_out: *zp_out,
                 min: clamp.min,
                 max: clamp.max,
-            }))
-        }
+            },
+        )),
         ChannelTransform::Table(t) => f(&ingot_rt::InputTransform::Table(t)),
     }
 }
@@ -212,7 +250,10 @@ mod tests {
     #[test]
     fn activation_qparams_follow_the_affine_formula() {
         // [-1, 3]: scale 4/255, zero point round(-128 + 63.75) = -64.
-        let qp = activation_qparams(MapRange { min: -1.0, max: 3.0 });
+        let qp = activation_qparams(MapRange {
+            min: -1.0,
+            max: 3.0,
+        });
         assert!((qp.scale - 4.0 / 255.0).abs() < 1e-9);
         assert_eq!(qp.zero_point, -64);
         // Real zero is exactly representable (Jacob et al. 2018, §2.1).
@@ -222,9 +263,22 @@ mod tests {
         assert_eq!(relu.zero_point, -128);
         assert!((relu.scale - 2.0 / 255.0).abs() < 1e-9);
         // Negative-only: zero point 127.
-        assert_eq!(activation_qparams(MapRange { min: -2.0, max: -1.0 }).zero_point, 127);
+        assert_eq!(
+            activation_qparams(MapRange {
+                min: -2.0,
+                max: -1.0
+            })
+            .zero_point,
+            127
+        );
         let dead = activation_qparams(MapRange { min: 0.0, max: 0.0 });
-        assert_eq!(dead, QParams { scale: DEGENERATE_SCALE, zero_point: -128 });
+        assert_eq!(
+            dead,
+            QParams {
+                scale: DEGENERATE_SCALE,
+                zero_point: -128
+            }
+        );
         assert_eq!(quantize(0.0, dead), -128);
     }
 
@@ -238,10 +292,19 @@ mod tests {
 
     #[test]
     fn relu6_clamp_stops_at_six() {
-        let qp = QParams { scale: 0.05, zero_point: -128 };
+        let qp = QParams {
+            scale: 0.05,
+            zero_point: -128,
+        };
         let c = activation_clamp(Activation::Relu6, qp);
         assert_eq!((c.min, c.max), (-128, -8)); // -128 + round(6 / 0.05) = -8
-        assert_eq!(activation_clamp(Activation::Relu, qp), Clamp { min: -128, max: 127 });
+        assert_eq!(
+            activation_clamp(Activation::Relu, qp),
+            Clamp {
+                min: -128,
+                max: 127
+            }
+        );
     }
 
     #[test]
@@ -259,8 +322,14 @@ mod tests {
 
     #[test]
     fn affine_transform_reproduces_the_real_map() {
-        let qin = QParams { scale: 0.1, zero_point: -20 };
-        let qout = QParams { scale: 0.05, zero_point: -128 };
+        let qin = QParams {
+            scale: 0.1,
+            zero_point: -20,
+        };
+        let qout = QParams {
+            scale: 0.05,
+            zero_point: -128,
+        };
         let ab = [(1.5, 0.2), (-0.7, 1.0), (0.0, 0.0)];
         let t = affine_transform(&ab, qin, qout, activation_clamp(Activation::Relu, qout)).unwrap();
         for (c, &(a, b)) in ab.iter().enumerate() {
@@ -268,7 +337,10 @@ mod tests {
                 let y = (a * 0.1 * (q + 20) as f64 + b).max(0.0);
                 let want = (round_half_up(y / 0.05) - 128.0).clamp(-128.0, 127.0) as i32;
                 let got = apply_transform(&t, c, q as i8) as i32;
-                assert!((got - want).abs() <= 1, "channel {c} code {q}: {got} vs {want}");
+                assert!(
+                    (got - want).abs() <= 1,
+                    "channel {c} code {q}: {got} vs {want}"
+                );
             }
         }
     }

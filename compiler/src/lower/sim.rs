@@ -85,13 +85,24 @@ impl<'q> Simulator<'q> {
 
     /// A simulator with a given layout (one `MapRef` per map, e.g. from a
     /// memory plan) and arena size.
-    pub fn with_layout(q: &'q QGraph, refs: Vec<MapRef>, arena_len: usize) -> Result<Self, SimError> {
+    pub fn with_layout(
+        q: &'q QGraph,
+        refs: Vec<MapRef>,
+        arena_len: usize,
+    ) -> Result<Self, SimError> {
         if refs.len() != q.maps.len() {
-            return Err(SimError::Layout(format!("{} map refs for {} maps", refs.len(), q.maps.len())));
+            return Err(SimError::Layout(format!(
+                "{} map refs for {} maps",
+                refs.len(),
+                q.maps.len()
+            )));
         }
         for (r, m) in refs.iter().zip(&q.maps) {
             if (r.h, r.w, r.c) != (m.shape.h, m.shape.w, m.shape.c) || !r.fits(arena_len) {
-                return Err(SimError::Layout(format!("map `{}` {}: {r:?} does not match it or leaves the arena", m.name, m.shape)));
+                return Err(SimError::Layout(format!(
+                    "map `{}` {}: {r:?} does not match it or leaves the arena",
+                    m.name, m.shape
+                )));
             }
         }
         Ok(Self::build(q, refs, arena_len))
@@ -102,7 +113,11 @@ impl<'q> Simulator<'q> {
             .steps
             .iter()
             .filter_map(|s| match &s.kernel {
-                QKernel::Conv2d(c) => Some(ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels)),
+                QKernel::Conv2d(c) => Some(ingot_rt::conv_patch_len(
+                    c.kernel[0],
+                    c.kernel[1],
+                    c.in_channels,
+                )),
                 _ => None,
             })
             .max()
@@ -116,7 +131,13 @@ impl<'q> Simulator<'q> {
                 _ => Vec::new(),
             })
             .collect();
-        Simulator { q, refs, arena: vec![0; arena_len], patch: vec![0; patch_len], requant }
+        Simulator {
+            q,
+            refs,
+            arena: vec![0; arena_len],
+            patch: vec![0; patch_len],
+            requant,
+        }
     }
 
     /// The graph being simulated.
@@ -131,8 +152,18 @@ impl<'q> Simulator<'q> {
         let inp = q.map(q.input);
         let r = self.refs[q.input.index()];
         let n = inp.shape.len();
-        let len_err = |got| SimError::InputLength { map: inp.name.clone(), shape: inp.shape, got, expected: n };
-        let kerr = |error| SimError::Kernel { step: u32::MAX, name: "input".into(), kernel: "input", error };
+        let len_err = |got| SimError::InputLength {
+            map: inp.name.clone(),
+            shape: inp.shape,
+            got,
+            expected: n,
+        };
+        let kerr = |error| SimError::Kernel {
+            step: u32::MAX,
+            name: "input".into(),
+            kernel: "input",
+            error,
+        };
         match input {
             SimInput::Codes(v) => {
                 if v.len() != n {
@@ -145,7 +176,9 @@ impl<'q> Simulator<'q> {
                     return Err(len_err(v.len()));
                 }
                 let (c, hw) = (inp.shape.c, inp.shape.pixels());
-                let codes: Vec<i8> = (0..n).map(|i| quant::quantize(v[(i % c) * hw + i / c], inp.qp)).collect();
+                let codes: Vec<i8> = (0..n)
+                    .map(|i| quant::quantize(v[(i % c) * hw + i / c], inp.qp))
+                    .collect();
                 ingot_rt::copy_in(&codes, &mut self.arena, r).map_err(kerr)?;
             }
             SimInput::Pixels(v) => {
@@ -158,7 +191,12 @@ impl<'q> Simulator<'q> {
         for id in q.step_ids() {
             self.step(id).map_err(|error| {
                 let s = q.step(id);
-                SimError::Kernel { step: id.0, name: s.name.clone(), kernel: s.kernel.kind(), error }
+                SimError::Kernel {
+                    step: id.0,
+                    name: s.name.clone(),
+                    kernel: s.kernel.kind(),
+                    error,
+                }
             })?;
         }
         Ok(self.map_hwc(q.output))
@@ -169,7 +207,9 @@ impl<'q> Simulator<'q> {
         let out = self.refs[s.output.index()];
         let input = self.refs[s.inputs[0].index()];
         let in_zp = self.q.map(s.inputs[0]).qp.zero_point;
-        let oq = |c: super::Clamp| OutputQuant::clamped(self.q.map(s.output).qp.zero_point, c.min, c.max);
+        let oq = |c: super::Clamp| {
+            OutputQuant::clamped(self.q.map(s.output).qp.zero_point, c.min, c.max)
+        };
         let arena = &mut self.arena;
         match &s.kernel {
             QKernel::Conv2d(c) => {
@@ -190,11 +230,33 @@ impl<'q> Simulator<'q> {
                 let rq = &self.requant[id.index()];
                 let patch = &mut self.patch;
                 match &c.transform {
-                    None => ingot_rt::conv2d(arena, input, out, &c.weights, &c.bias, rq, &p, None, patch),
-                    Some(t) => with_runtime_transform(t, |t| ingot_rt::conv2d(arena, input, out, &c.weights, &c.bias, rq, &p, Some(t), patch)),
+                    None => ingot_rt::conv2d(
+                        arena, input, out, &c.weights, &c.bias, rq, &p, None, patch,
+                    ),
+                    Some(t) => with_runtime_transform(t, |t| {
+                        ingot_rt::conv2d(
+                            arena,
+                            input,
+                            out,
+                            &c.weights,
+                            &c.bias,
+                            rq,
+                            &p,
+                            Some(t),
+                            patch,
+                        )
+                    }),
                 }
             }
-            QKernel::Linear(l) => ingot_rt::linear(arena, input, out, &l.weights, &l.bias, &self.requant[id.index()], oq(l.clamp)),
+            QKernel::Linear(l) => ingot_rt::linear(
+                arena,
+                input,
+                out,
+                &l.weights,
+                &l.bias,
+                &self.requant[id.index()],
+                oq(l.clamp),
+            ),
             QKernel::MaxPool(p) | QKernel::AvgPool(p) => {
                 let w = ingot_rt::Window {
                     kh: p.kernel[0],
@@ -205,7 +267,11 @@ impl<'q> Simulator<'q> {
                     dilation_x: 1,
                     pad: rt_padding(p.padding),
                 };
-                let pq = PoolQuant { in_zp, requant: p.requant.map(to_requant), out: oq(p.clamp) };
+                let pq = PoolQuant {
+                    in_zp,
+                    requant: p.requant.map(to_requant),
+                    out: oq(p.clamp),
+                };
                 if matches!(s.kernel, QKernel::MaxPool(_)) {
                     ingot_rt::max_pool2d(arena, input, out, &w, &pq)
                 } else {
@@ -213,7 +279,11 @@ impl<'q> Simulator<'q> {
                 }
             }
             QKernel::GlobalAvgPool(p) => {
-                let pq = PoolQuant { in_zp, requant: p.requant.map(to_requant), out: oq(p.clamp) };
+                let pq = PoolQuant {
+                    in_zp,
+                    requant: p.requant.map(to_requant),
+                    out: oq(p.clamp),
+                };
                 ingot_rt::global_avg_pool(arena, input, out, &pq)
             }
             QKernel::Add(a) => {
@@ -238,7 +308,9 @@ impl<'q> Simulator<'q> {
                 }
                 Ok(())
             }
-            QKernel::Channel(t) => with_runtime_transform(t, |t| ingot_rt::channel_transform(arena, input, out, t)),
+            QKernel::Channel(t) => {
+                with_runtime_transform(t, |t| ingot_rt::channel_transform(arena, input, out, t))
+            }
         }
     }
 
@@ -253,7 +325,9 @@ impl<'q> Simulator<'q> {
 
     /// The codes of every map after the last run, indexed by [`QMapId`].
     pub fn maps_hwc(&self) -> Vec<Vec<i8>> {
-        (0..self.q.maps.len() as u32).map(|i| self.map_hwc(QMapId(i))).collect()
+        (0..self.q.maps.len() as u32)
+            .map(|i| self.map_hwc(QMapId(i)))
+            .collect()
     }
 
     /// A map after the last run, dequantized, in the float graph's
@@ -262,12 +336,19 @@ impl<'q> Simulator<'q> {
         let map = self.q.map(m);
         let hwc = self.map_hwc(m);
         let (c, hw) = (map.shape.c, map.shape.pixels());
-        (0..hwc.len()).map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], map.qp)).collect()
+        (0..hwc.len())
+            .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], map.qp))
+            .collect()
     }
 }
 
 fn rt_padding(p: crate::graph::Padding) -> ingot_rt::Padding {
-    ingot_rt::Padding { top: p.top, left: p.left, bottom: p.bottom, right: p.right }
+    ingot_rt::Padding {
+        top: p.top,
+        left: p.left,
+        bottom: p.bottom,
+        right: p.right,
+    }
 }
 
 /// Runs one image on a fresh naive-layout simulator and returns the output

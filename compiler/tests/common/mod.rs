@@ -47,7 +47,14 @@ impl Net {
             layers: Vec::new(),
             store: TensorStore::new("test.safetensors"),
             rng: Rng(seed),
-            input: InputFile { name: "x".into(), shape: vec![c, h, w], pixel_scale: None, mean: None, std: None, color: None },
+            input: InputFile {
+                name: "x".into(),
+                shape: vec![c, h, w],
+                pixel_scale: None,
+                mean: None,
+                std: None,
+                color: None,
+            },
         }
     }
 
@@ -57,10 +64,21 @@ impl Net {
 
     /// He-initialised convolution, square kernel; returns its name.
     #[allow(clippy::too_many_arguments)]
-    pub fn conv(&mut self, name: &str, input: &str, cin: usize, cout: usize, k: usize, stride: usize, pad: usize, groups: usize) -> String {
+    pub fn conv(
+        &mut self,
+        name: &str,
+        input: &str,
+        cin: usize,
+        cout: usize,
+        k: usize,
+        stride: usize,
+        pad: usize,
+        groups: usize,
+    ) -> String {
         let fan_in = cin / groups * k * k;
         let w = self.normal_vec(cout * fan_in, (2.0 / fan_in as f32).sqrt());
-        self.store.insert(format!("{name}.weight"), vec![cout, cin / groups, k, k], w);
+        self.store
+            .insert(format!("{name}.weight"), vec![cout, cin / groups, k, k], w);
         let b = self.normal_vec(cout, 0.1);
         self.store.insert(format!("{name}.bias"), vec![cout], b);
         let mut l = LayerFile::conv2d(name, input, true, stride, pad);
@@ -77,7 +95,12 @@ impl Net {
         let b: Vec<f32> = (0..c).map(|_| self.rng.range(-0.5, 0.5)).collect();
         let m: Vec<f32> = (0..c).map(|_| self.rng.range(-0.3, 0.3)).collect();
         let v: Vec<f32> = (0..c).map(|_| self.rng.range(0.5, 2.0)).collect();
-        for (s, d) in [("weight", g), ("bias", b), ("running_mean", m), ("running_var", v)] {
+        for (s, d) in [
+            ("weight", g),
+            ("bias", b),
+            ("running_mean", m),
+            ("running_var", v),
+        ] {
             self.store.insert(format!("{name}.{s}"), vec![c], d);
         }
         self.layers.push(LayerFile::batch_norm(name, input));
@@ -89,7 +112,15 @@ impl Net {
         name.into()
     }
 
-    pub fn pool(&mut self, name: &str, op: &str, input: &str, k: usize, s: usize, pad: usize) -> String {
+    pub fn pool(
+        &mut self,
+        name: &str,
+        op: &str,
+        input: &str,
+        k: usize,
+        s: usize,
+        pad: usize,
+    ) -> String {
         let mut l = LayerFile::pool(name, op, input, k, s);
         if pad > 0 {
             l = l.attr("padding", pad);
@@ -100,7 +131,8 @@ impl Net {
 
     pub fn linear(&mut self, name: &str, input: &str, inf: usize, outf: usize) -> String {
         let w = self.normal_vec(outf * inf, (1.0 / inf as f32).sqrt());
-        self.store.insert(format!("{name}.weight"), vec![outf, inf], w);
+        self.store
+            .insert(format!("{name}.weight"), vec![outf, inf], w);
         let b = self.normal_vec(outf, 0.1);
         self.store.insert(format!("{name}.bias"), vec![outf], b);
         self.layers.push(LayerFile::linear(name, input, true));
@@ -122,7 +154,8 @@ impl Net {
             layers: self.layers.clone(),
             output: output.into(),
         };
-        frontend::validate(&file, &self.store, Path::new("test.json")).expect("test graph validates")
+        frontend::validate(&file, &self.store, Path::new("test.json"))
+            .expect("test graph validates")
     }
 }
 
@@ -146,18 +179,47 @@ impl DenseSpec {
     /// DenseNet-121 (Huang et al. 2017, Table 1): 224×224 RGB, blocks of
     /// 6/12/24/16 layers, growth 32, bottleneck 4·32, compression 0.5.
     pub fn densenet121() -> Self {
-        DenseSpec { input: [3, 224, 224], stem: 64, stem_k: 7, stem_stride: 2, stem_pool: true, blocks: vec![6, 12, 24, 16], growth: 32, bottleneck: Some(128), classes: 1000 }
+        DenseSpec {
+            input: [3, 224, 224],
+            stem: 64,
+            stem_k: 7,
+            stem_stride: 2,
+            stem_pool: true,
+            blocks: vec![6, 12, 24, 16],
+            growth: 32,
+            bottleneck: Some(128),
+            classes: 1000,
+        }
     }
     /// A small two-block version for simulation tests.
     pub fn small() -> Self {
-        DenseSpec { input: [3, 12, 12], stem: 8, stem_k: 3, stem_stride: 1, stem_pool: false, blocks: vec![3, 2], growth: 4, bottleneck: Some(8), classes: 5 }
+        DenseSpec {
+            input: [3, 12, 12],
+            stem: 8,
+            stem_k: 3,
+            stem_stride: 1,
+            stem_pool: false,
+            blocks: vec![3, 2],
+            growth: 4,
+            bottleneck: Some(8),
+            classes: 5,
+        }
     }
 }
 
 pub fn dense_net(spec: &DenseSpec, seed: u64) -> Graph {
     let [c, h, w] = spec.input;
     let mut n = Net::new(c, h, w, seed);
-    let mut x = n.conv("stem", "x", c, spec.stem, spec.stem_k, spec.stem_stride, spec.stem_k / 2, 1);
+    let mut x = n.conv(
+        "stem",
+        "x",
+        c,
+        spec.stem,
+        spec.stem_k,
+        spec.stem_stride,
+        spec.stem_k / 2,
+        1,
+    );
     x = n.bn("stem.bn", &x, spec.stem);
     x = n.op("stem.relu", "relu", &x);
     if spec.stem_pool {
@@ -225,13 +287,21 @@ pub fn eval(g: &Graph, x: &[f32]) -> Vec<Vec<f32>> {
                             for i in 0..cpg {
                                 for ky in 0..kh {
                                     for kx in 0..kw {
-                                        let yy = (oy * c.stride[0] + ky * c.dilation[0]) as isize - c.padding.top as isize;
-                                        let xx = (ox * c.stride[1] + kx * c.dilation[1]) as isize - c.padding.left as isize;
-                                        if yy < 0 || xx < 0 || yy >= s_in.h as isize || xx >= s_in.w as isize {
+                                        let yy = (oy * c.stride[0] + ky * c.dilation[0]) as isize
+                                            - c.padding.top as isize;
+                                        let xx = (ox * c.stride[1] + kx * c.dilation[1]) as isize
+                                            - c.padding.left as isize;
+                                        if yy < 0
+                                            || xx < 0
+                                            || yy >= s_in.h as isize
+                                            || xx >= s_in.w as isize
+                                        {
                                             continue;
                                         }
-                                        let v = x[((g0 + i) * s_in.h + yy as usize) * s_in.w + xx as usize];
-                                        acc += c.weight.data[((o * cpg + i) * kh + ky) * kw + kx] * v;
+                                        let v = x[((g0 + i) * s_in.h + yy as usize) * s_in.w
+                                            + xx as usize];
+                                        acc +=
+                                            c.weight.data[((o * cpg + i) * kh + ky) * kw + kx] * v;
                                     }
                                 }
                             }
@@ -244,7 +314,10 @@ pub fn eval(g: &Graph, x: &[f32]) -> Vec<Vec<f32>> {
             Op::BatchNorm(b) => {
                 let aff = b.affine();
                 let hw = s_in.pixels();
-                x.iter().enumerate().map(|(i, &v)| aff[i / hw].0 * v + aff[i / hw].1).collect()
+                x.iter()
+                    .enumerate()
+                    .map(|(i, &v)| aff[i / hw].0 * v + aff[i / hw].1)
+                    .collect()
             }
             Op::Relu => x.iter().map(|&v| v.max(0.0)).collect(),
             Op::Relu6 => x.iter().map(|&v| v.clamp(0.0, 6.0)).collect(),
@@ -258,9 +331,15 @@ pub fn eval(g: &Graph, x: &[f32]) -> Vec<Vec<f32>> {
                             let mut s = 0f32;
                             for ky in 0..p.kernel[0] {
                                 for kx in 0..p.kernel[1] {
-                                    let yy = (oy * p.stride[0] + ky) as isize - p.padding.top as isize;
-                                    let xx = (ox * p.stride[1] + kx) as isize - p.padding.left as isize;
-                                    if yy < 0 || xx < 0 || yy >= s_in.h as isize || xx >= s_in.w as isize {
+                                    let yy =
+                                        (oy * p.stride[0] + ky) as isize - p.padding.top as isize;
+                                    let xx =
+                                        (ox * p.stride[1] + kx) as isize - p.padding.left as isize;
+                                    if yy < 0
+                                        || xx < 0
+                                        || yy >= s_in.h as isize
+                                        || xx >= s_in.w as isize
+                                    {
                                         continue;
                                     }
                                     let v = x[(ch * s_in.h + yy as usize) * s_in.w + xx as usize];
@@ -268,18 +347,26 @@ pub fn eval(g: &Graph, x: &[f32]) -> Vec<Vec<f32>> {
                                     s += v;
                                 }
                             }
-                            y[(ch * s_out.h + oy) * s_out.w + ox] = if max { m } else { s / (p.kernel[0] * p.kernel[1]) as f32 };
+                            y[(ch * s_out.h + oy) * s_out.w + ox] = if max {
+                                m
+                            } else {
+                                s / (p.kernel[0] * p.kernel[1]) as f32
+                            };
                         }
                     }
                 }
                 y
             }
-            Op::GlobalAvgPool => x.chunks(s_in.pixels()).map(|c| c.iter().sum::<f32>() / c.len() as f32).collect(),
+            Op::GlobalAvgPool => x
+                .chunks(s_in.pixels())
+                .map(|c| c.iter().sum::<f32>() / c.len() as f32)
+                .collect(),
             Op::Flatten | Op::Dropout => x.clone(),
             Op::Linear(lin) => (0..lin.out_features)
                 .map(|o| {
                     let row = &lin.weight.data[o * lin.in_features..(o + 1) * lin.in_features];
-                    lin.bias.as_ref().map_or(0.0, |b| b.data[o]) + row.iter().zip(x.iter()).map(|(a, b)| a * b).sum::<f32>()
+                    lin.bias.as_ref().map_or(0.0, |b| b.data[o])
+                        + row.iter().zip(x.iter()).map(|(a, b)| a * b).sum::<f32>()
                 })
                 .collect(),
             Op::Concat => ins.iter().flat_map(|v| v.iter().copied()).collect(),
@@ -299,12 +386,20 @@ pub fn eval(g: &Graph, x: &[f32]) -> Vec<Vec<f32>> {
 
 /// A random `[C, H, W]` input in `[-1, 1]`.
 pub fn random_input(g: &Graph, rng: &mut Rng) -> Vec<f32> {
-    (0..g.shape(MapId::INPUT).len()).map(|_| rng.range(-1.0, 1.0)).collect()
+    (0..g.shape(MapId::INPUT).len())
+        .map(|_| rng.range(-1.0, 1.0))
+        .collect()
 }
 
 /// Min/max ranges of every map over `images`.
 pub fn calibrate(g: &Graph, images: &[Vec<f32>]) -> Ranges {
-    let mut r = vec![MapRange { min: f32::INFINITY, max: f32::NEG_INFINITY }; g.map_count()];
+    let mut r = vec![
+        MapRange {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY
+        };
+        g.map_count()
+    ];
     for x in images {
         for (m, v) in eval(g, x).iter().enumerate() {
             for &a in v {
@@ -313,10 +408,22 @@ pub fn calibrate(g: &Graph, images: &[Vec<f32>]) -> Ranges {
             }
         }
     }
-    Ranges { graph: g.name().into(), graph_hash: String::new(), method: "minmax".into(), images: images.len(), maps: r }
+    Ranges {
+        graph: g.name().into(),
+        graph_hash: String::new(),
+        method: "minmax".into(),
+        images: images.len(),
+        maps: r,
+    }
 }
 
 /// Every map with the same synthetic range (for tests that need only shapes).
 pub fn flat_ranges(g: &Graph, min: f32, max: f32) -> Ranges {
-    Ranges { graph: g.name().into(), graph_hash: String::new(), method: "synthetic".into(), images: 0, maps: vec![MapRange { min, max }; g.map_count()] }
+    Ranges {
+        graph: g.name().into(),
+        graph_hash: String::new(),
+        method: "synthetic".into(),
+        images: 0,
+        maps: vec![MapRange { min, max }; g.map_count()],
+    }
 }
