@@ -203,10 +203,37 @@ pub fn progress_bar(len: u64, wanted: bool, message: &str) -> ProgressBar {
     pb
 }
 
+/// What a calibration pass accumulates per map.
+pub trait Accumulate: Send {
+    /// Adds one map's values of one image.
+    fn observe(&mut self, m: MapId, values: &[f32]);
+    /// Combines two partial accumulations. Must be exact and order-free
+    /// (counts, minima, maxima) so results do not depend on threads.
+    fn merge(self, other: &Self) -> Self;
+}
+
+impl Accumulate for Extremes {
+    fn observe(&mut self, m: MapId, values: &[f32]) {
+        Extremes::observe(self, m, values)
+    }
+    fn merge(self, other: &Self) -> Self {
+        Extremes::merge(self, other)
+    }
+}
+
+impl Accumulate for Histograms {
+    fn observe(&mut self, m: MapId, values: &[f32]) {
+        Histograms::observe(self, m, values)
+    }
+    fn merge(self, other: &Self) -> Self {
+        Histograms::merge(self, other)
+    }
+}
+
 /// One pass over `indices`: loads each image, runs it through `src`, and
-/// folds every map into an accumulator. Accumulators are combined with
-/// `merge`, which must be exact and order-free (counts, minima, maxima) so
-/// the result does not depend on the thread count. Unreadable images are
+/// folds every map into accumulators made by `init`, combined with
+/// [`Accumulate::merge`] (exact, so the result does not depend on the
+/// thread count). Unreadable images are
 /// returned sorted by index when `skip_bad`; otherwise the first one (by
 /// index, among those met) is the error.
 pub fn pass<S, A>(
@@ -216,12 +243,10 @@ pub fn pass<S, A>(
     skip_bad: bool,
     pb: &ProgressBar,
     init: impl Fn() -> A + Sync + Send,
-    observe: impl Fn(&mut A, MapId, &[f32]) + Sync + Send,
-    merge: impl Fn(A, A) -> A + Sync + Send,
 ) -> Result<(A, Vec<(usize, ImageError)>), ImageError>
 where
     S: MapSource + ?Sized,
-    A: Send,
+    A: Accumulate,
 {
     let failed = AtomicBool::new(false);
     let (acc, mut bad) = indices
@@ -233,7 +258,7 @@ where
                     return (acc, bad);
                 }
                 match set.load(i) {
-                    Ok(sample) => src.run(&sample.input, &mut |m, v| observe(&mut acc, m, v)),
+                    Ok(sample) => src.run(&sample.input, &mut |m, v| acc.observe(m, v)),
                     Err(e) => {
                         failed.store(true, Ordering::Relaxed);
                         bad.push((i, e));
@@ -247,7 +272,7 @@ where
             || (init(), Vec::new()),
             |(a, mut ba), (b, bb)| {
                 ba.extend(bb);
-                (merge(a, b), ba)
+                (a.merge(&b), ba)
             },
         );
     bad.sort_by_key(|(i, _)| *i);
@@ -337,8 +362,6 @@ pub fn observe_set<S: MapSource + ?Sized>(
         opts.skip_bad,
         &pb,
         || Extremes::new(n_maps),
-        |a, m, v| a.observe(m, v),
-        |a, b| a.merge(&b),
     )?;
     let bad_set: std::collections::BTreeSet<usize> = bad.iter().map(|(i, _)| *i).collect();
     let calibration: Vec<usize> = cal_all
@@ -363,16 +386,9 @@ pub fn observe_set<S: MapSource + ?Sized>(
 
     let hist = if opts.method.needs_histogram() {
         pb.set_message("histograms");
-        let (h, _) = pass(
-            src,
-            images,
-            &calibration,
-            opts.skip_bad,
-            &pb,
-            || Histograms::new(&ext, opts.bins),
-            |a, m, v| a.observe(m, v),
-            |a, b| a.merge(&b),
-        )?;
+        let (h, _) = pass(src, images, &calibration, opts.skip_bad, &pb, || {
+            Histograms::new(&ext, opts.bins)
+        })?;
         Some(h)
     } else {
         None
