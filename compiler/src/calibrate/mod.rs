@@ -355,14 +355,9 @@ pub fn observe_set<S: MapSource + ?Sized>(
         "calibrating",
     );
 
-    let (ext, bad) = pass(
-        src,
-        images,
-        &cal_all,
-        opts.skip_bad,
-        &pb,
-        || Extremes::new(n_maps),
-    )?;
+    let (ext, bad) = pass(src, images, &cal_all, opts.skip_bad, &pb, || {
+        Extremes::new(n_maps)
+    })?;
     let bad_set: std::collections::BTreeSet<usize> = bad.iter().map(|(i, _)| *i).collect();
     let calibration: Vec<usize> = cal_all
         .iter()
