@@ -20,6 +20,8 @@ struct Cli {
 enum Command {
     /// Show a graph's layers, shapes, parameters and multiply-accumulates.
     Inspect(cmd::inspect::Args),
+    /// Choose int8 ranges from sample images and report what int8 costs.
+    Calibrate(cmd::calibrate::Args),
     /// Plan the feature-map arena: order, offsets, lower bound, budget.
     Plan(cmd::plan::Args),
     /// Compile a graph into a no_std Rust module and its weights file.
@@ -30,6 +32,7 @@ fn main() {
     let cli = Cli::parse();
     let result = match cli.command {
         Command::Inspect(args) => cmd::inspect::run(&args),
+        Command::Calibrate(args) => cmd::calibrate::run(&args),
         Command::Plan(args) => cmd::plan::run(&args),
         Command::Build(args) => cmd::build::run(&args),
     };

@@ -1,0 +1,229 @@
+//! The calibration report: per layer the chosen range and what it costs,
+//! and at the output what int8 costs in decisions.
+
+use super::{Calibration, ImageSet, MapRange};
+use crate::graph::{Graph, MapId};
+use serde::Serialize;
+use std::fmt::{self, Write as _};
+
+/// One row of the report: one map of the float graph.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LayerRow {
+    /// Map index.
+    pub map: u32,
+    /// Map name (the input's or its layer's).
+    pub name: String,
+    /// Op of the producing layer (`input` for the graph input).
+    pub op: String,
+    /// Chosen range.
+    pub range: MapRange,
+    /// Observed range on the calibration images.
+    pub observed: MapRange,
+    /// Share of calibration values beyond the range (bin resolution).
+    pub clipped: f64,
+    /// Int8 scale of the stored map holding this value, if it is stored.
+    pub scale: Option<f32>,
+    /// Int8 zero point, likewise.
+    pub zero_point: Option<i32>,
+    /// SQNR of the int8 map against the float map over the evaluation
+    /// images, in dB (`None` when not stored or not evaluated; infinite
+    /// when exact).
+    pub sqnr_db: Option<f64>,
+}
+
+/// Decisions at the output, int8 against float.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OutputAgreement {
+    /// Images compared.
+    pub images: usize,
+    /// Share of images where the int8 and float arg-max agree.
+    pub top1_agreement: f64,
+    /// Images with a class label.
+    pub labelled: usize,
+    /// Float top-1 accuracy on the labelled images.
+    pub float_accuracy: Option<f64>,
+    /// Int8 top-1 accuracy on the labelled images.
+    pub int8_accuracy: Option<f64>,
+    /// Float minus int8 accuracy, in percentage points.
+    pub drop_pp: Option<f64>,
+}
+
+/// Everything `ingot calibrate` prints.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Report {
+    /// Graph name.
+    pub graph: String,
+    /// Method.
+    pub method: String,
+    /// Image folder.
+    pub folder: String,
+    /// Samples listed.
+    pub listed: usize,
+    /// Names of the images observed.
+    pub calibration: Vec<String>,
+    /// Names of the images held out for evaluation.
+    pub evaluation: Vec<String>,
+    /// Which images the SQNR and agreement figures are measured on:
+    /// `held-out`, `calibration`, or `none` (not evaluated).
+    pub evaluated_on: String,
+    /// Unreadable images skipped, with the reason.
+    pub skipped: Vec<(String, String)>,
+    /// Files in the folder that are not samples.
+    pub ignored: Vec<String>,
+    /// One row per map.
+    pub layers: Vec<LayerRow>,
+    /// Output comparison, when evaluated.
+    pub output: Option<OutputAgreement>,
+    /// Why no evaluation was made, if none was.
+    pub not_evaluated: Option<String>,
+}
+
+impl Report {
+    /// The report of a calibration before any int8 evaluation.
+    pub fn new(graph: &Graph, images: &ImageSet, cal: &Calibration) -> Report {
+        let names = |ix: &[usize]| {
+            ix.iter()
+                .map(|&i| images.entries()[i].name.clone())
+                .collect()
+        };
+        let layers = (0..graph.map_count())
+            .map(|i| {
+                let m = MapId(i as u32);
+                LayerRow {
+                    map: m.0,
+                    name: graph.map_name(m).to_string(),
+                    op: m
+                        .producer()
+                        .map_or("input", |l| graph.layer(l).op.kind())
+                        .to_string(),
+                    range: cal.ranges.maps[i],
+                    observed: cal.stats[i].observed,
+                    clipped: cal.stats[i].clipped,
+                    scale: None,
+                    zero_point: None,
+                    sqnr_db: None,
+                }
+            })
+            .collect();
+        Report {
+            graph: graph.name().to_string(),
+            method: cal.ranges.method.clone(),
+            folder: images.root().display().to_string(),
+            listed: images.len(),
+            calibration: names(&cal.calibration),
+            evaluation: names(&cal.evaluation),
+            evaluated_on: "none".into(),
+            skipped: cal
+                .skipped
+                .iter()
+                .map(|s| (images.entries()[s.index].name.clone(), s.reason.clone()))
+                .collect(),
+            ignored: images
+                .ignored()
+                .iter()
+                .map(|p| p.display().to_string())
+                .collect(),
+            layers,
+            output: None,
+            not_evaluated: None,
+        }
+    }
+}
+
+fn pct(x: f64) -> String {
+    format!("{:.2}%", 100.0 * x)
+}
+
+fn db(x: Option<f64>) -> String {
+    match x {
+        None => "-".into(),
+        Some(v) if v.is_infinite() => "exact".into(),
+        Some(v) => format!("{v:.1}"),
+    }
+}
+
+impl fmt::Display for Report {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        writeln!(
+            f,
+            "graph `{}`, method {}: {} images listed in {}, {} calibration, {} held out",
+            self.graph,
+            self.method,
+            self.listed,
+            self.folder,
+            self.calibration.len(),
+            self.evaluation.len()
+        )?;
+        if !self.skipped.is_empty() {
+            writeln!(f, "skipped {} unreadable image(s):", self.skipped.len())?;
+            for (_, why) in &self.skipped {
+                writeln!(f, "  {why}")?;
+            }
+        }
+        if !self.ignored.is_empty() {
+            writeln!(
+                f,
+                "ignored {} file(s) that are not images (first: {})",
+                self.ignored.len(),
+                self.ignored[0]
+            )?;
+        }
+        let name_w = self
+            .layers
+            .iter()
+            .map(|r| r.name.len())
+            .max()
+            .unwrap_or(4)
+            .clamp(4, 48);
+        let mut t = String::new();
+        writeln!(
+            t,
+            "{:>4}  {:<name_w$}  {:<15}  {:>23}  {:>10}  {:>5}  {:>8}  {:>9}",
+            "map", "name", "op", "range", "scale", "zp", "clipped", "SQNR dB"
+        )?;
+        for r in &self.layers {
+            let range = format!("[{:.4}, {:.4}]", r.range.min, r.range.max);
+            let scale = r.scale.map_or("-".into(), |s| format!("{s:.3e}"));
+            let zp = r.zero_point.map_or("-".into(), |z| z.to_string());
+            writeln!(
+                t,
+                "{:>4}  {:<name_w$}  {:<15}  {:>23}  {:>10}  {:>5}  {:>8}  {:>9}",
+                r.map,
+                r.name,
+                r.op,
+                range,
+                scale,
+                zp,
+                pct(r.clipped),
+                db(r.sqnr_db)
+            )?;
+        }
+        f.write_str(&t)?;
+        match (&self.output, &self.not_evaluated) {
+            (Some(o), _) => {
+                writeln!(
+                    f,
+                    "output, on {} {} image(s): int8 top-1 agrees with float on {}",
+                    o.images,
+                    self.evaluated_on,
+                    pct(o.top1_agreement)
+                )?;
+                if let (Some(fa), Some(ia), Some(d)) =
+                    (o.float_accuracy, o.int8_accuracy, o.drop_pp)
+                {
+                    writeln!(
+                        f,
+                        "accuracy on {} labelled image(s): float {}, int8 {}, drop {:.2} percentage points",
+                        o.labelled,
+                        pct(fa),
+                        pct(ia),
+                        d
+                    )?;
+                }
+            }
+            (None, Some(why)) => writeln!(f, "not evaluated in int8: {why}")?,
+            (None, None) => {}
+        }
+        Ok(())
+    }
+}

@@ -1,0 +1,73 @@
+//! `ingot calibrate`: observe the float network on sample images, choose
+//! int8 ranges, write the ranges file and report.
+
+use anyhow::Context;
+use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, Method};
+use ingot_compiler::lower::LowerOptions;
+use std::path::PathBuf;
+
+/// Arguments of `ingot calibrate`.
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The graph file (`*.graph.json`).
+    pub graph: PathBuf,
+    /// Folder of sample images (PNG, JPEG, BMP, PGM or .npy), optionally
+    /// one sub-folder per class.
+    #[arg(long)]
+    pub images: PathBuf,
+    /// Range choice: minmax, percentile:P (e.g. percentile:99.99), mse or kl.
+    #[arg(long, default_value = "minmax", value_parser = parse_method)]
+    pub method: Method,
+    /// Where to write the ranges file [default: `<graph name>.ranges.json`
+    /// beside the graph file].
+    #[arg(short, long)]
+    pub output: Option<PathBuf>,
+    /// Share of the images kept apart for evaluation (every 1/F-th image).
+    #[arg(long, default_value_t = 0.0)]
+    pub holdout: f64,
+    /// Skip unreadable images (they are counted and listed) instead of failing.
+    #[arg(long)]
+    pub skip_bad: bool,
+    /// Print the report as JSON on standard output.
+    #[arg(long)]
+    pub json: bool,
+}
+
+fn parse_method(s: &str) -> Result<Method, String> {
+    s.parse()
+}
+
+/// Runs the command.
+pub fn run(args: &Args) -> anyhow::Result<()> {
+    let graph = ingot_compiler::load(&args.graph)?;
+    let images = ImageSet::open(&args.images, &graph)?;
+    let opts = CalibOptions {
+        method: args.method,
+        holdout: args.holdout,
+        skip_bad: args.skip_bad,
+        progress: true,
+        ..CalibOptions::default()
+    };
+    let cal = calibrate::run(&graph, &images, &opts)?;
+    let out = match &args.output {
+        Some(p) => p.clone(),
+        None => args
+            .graph
+            .parent()
+            .unwrap_or_else(|| std::path::Path::new(""))
+            .join(format!("{}.ranges.json", graph.name())),
+    };
+    cal.ranges
+        .save(&graph, &out)
+        .with_context(|| format!("{}: cannot write the ranges file", out.display()))?;
+    let report = calibrate::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
+    if args.json {
+        let mut v = serde_json::to_value(&report)?;
+        v["ranges_file"] = serde_json::Value::String(out.display().to_string());
+        println!("{}", serde_json::to_string_pretty(&v)?);
+    } else {
+        print!("{report}");
+        println!("ranges written to {}", out.display());
+    }
+    Ok(())
+}

@@ -1,0 +1,145 @@
+//! End-to-end tests of `ingot calibrate`: the built binary on a zoo graph
+//! and PGM images written by the test (binary PGM, `P5`, written by hand).
+
+use ingot_compiler::zoo;
+use std::path::Path;
+use std::process::Command;
+
+fn ingot() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_ingot"))
+}
+
+fn write_pgm(path: &Path, w: usize, h: usize, seed: u64) {
+    let mut rng = zoo::Rng::new(seed);
+    let mut bytes = format!("P5\n{w} {h}\n255\n").into_bytes();
+    bytes.extend((0..w * h).map(|_| (rng.next_u64() >> 56) as u8));
+    std::fs::write(path, bytes).unwrap();
+}
+
+fn setup(dir: &Path) -> std::path::PathBuf {
+    let graph = zoo::plain_stack(&zoo::PlainStackConfig::default(), 2)
+        .write(dir, "plain")
+        .unwrap();
+    for c in 0..2 {
+        let d = dir.join(format!("images/class{c}"));
+        std::fs::create_dir_all(&d).unwrap();
+        for i in 0..10 {
+            write_pgm(&d.join(format!("{i}.pgm")), 28, 28, (c * 100 + i) as u64);
+        }
+    }
+    graph
+}
+
+#[test]
+fn calibrate_writes_ranges_and_prints_json() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    let out_file = dir.path().join("r.json");
+    let out = ingot()
+        .args(["calibrate"])
+        .arg(&graph)
+        .arg("--images")
+        .arg(dir.path().join("images"))
+        .args(["--method", "kl", "--holdout", "0.2", "--json", "-o"])
+        .arg(&out_file)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["method"], "kl");
+    assert_eq!(v["calibration"].as_array().unwrap().len(), 16);
+    assert_eq!(v["evaluation"].as_array().unwrap().len(), 4);
+    assert_eq!(v["evaluated_on"], "held-out");
+    assert_eq!(v["output"]["images"], 4);
+    assert_eq!(v["layers"].as_array().unwrap().len(), 9);
+    let ranges: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
+    assert_eq!(ranges["format"], "ingot.ranges.v1");
+    assert_eq!(ranges["images"], 16);
+    assert_eq!(ranges["maps"]["relu1"]["min"], 0.0);
+}
+
+#[test]
+fn calibrate_prints_a_table_and_defaults_the_output_path() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    let out = ingot()
+        .arg("calibrate")
+        .arg(&graph)
+        .arg("--images")
+        .arg(dir.path().join("images"))
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let text = String::from_utf8(out.stdout).unwrap();
+    assert!(
+        text.contains("method minmax") && text.contains("relu1") && text.contains("SQNR dB"),
+        "{text}"
+    );
+    assert!(text.contains("int8 top-1 agrees"), "{text}");
+    assert!(
+        dir.path().join("plain_stack.ranges.json").exists(),
+        "{text}"
+    );
+}
+
+#[test]
+fn calibrate_reports_bad_files_and_skips_them_on_request() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    std::fs::write(
+        dir.path().join("images/class1/bad.pgm"),
+        b"P5\n28 28\n255\nshort",
+    )
+    .unwrap();
+    let run = |extra: &[&str]| {
+        ingot()
+            .arg("calibrate")
+            .arg(&graph)
+            .arg("--images")
+            .arg(dir.path().join("images"))
+            .args(extra)
+            .output()
+            .unwrap()
+    };
+    let out = run(&[]);
+    assert_eq!(out.status.code(), Some(1));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("bad.pgm"), "{err}");
+    let out = run(&["--skip-bad", "--json"]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["skipped"].as_array().unwrap().len(), 1);
+    assert_eq!(v["calibration"].as_array().unwrap().len(), 20);
+    let out = run(&["--method", "entropy"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("unknown method `entropy`"));
+}
+
+#[test]
+fn unknown_class_folder_is_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    std::fs::create_dir_all(dir.path().join("images/kitten")).unwrap();
+    let out = ingot()
+        .arg("calibrate")
+        .arg(&graph)
+        .arg("--images")
+        .arg(dir.path().join("images"))
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("`kitten`"));
+}
