@@ -1,0 +1,1 @@
+//! Markdown, JSON and SVG reports (filled in below).
