@@ -10,6 +10,7 @@ pub mod frontend;
 pub mod graph;
 pub mod lower;
 pub mod util;
+pub mod zoo;
 
 pub use frontend::{load, LoadError};
 pub use graph::{Graph, LayerId, MapId, Op, Shape};

@@ -1,7 +1,7 @@
 //! 2-D convolution over HWC maps: im2col of one output pixel into the
 //! widened patch, then contiguous dot products per output channel.
 
-use crate::dot::{dot_wide, fill_wide, put_wide, widen_into};
+use crate::dot::{dot2_wide, dot_wide, fill_wide, put_wide, widen_into};
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 
 /// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
@@ -293,21 +293,49 @@ pub fn conv2d(
             } else {
                 for (g, xw) in patch.chunks_exact(2 * seg).enumerate() {
                     let o0 = g * opg;
-                    let rows = weights[o0 * seg..(o0 + opg) * seg].chunks_exact(seg);
-                    for (((o, row), &b), rq) in out[o0..o0 + opg]
-                        .iter_mut()
-                        .zip(rows)
-                        .zip(&bias[o0..o0 + opg])
-                        .zip(&requant[o0..o0 + opg])
-                    {
-                        let acc = b.wrapping_add(dot_wide(xw, row));
-                        *o = rq.apply(acc, p.out);
-                    }
+                    channel_rows(
+                        xw,
+                        &weights[o0 * seg..(o0 + opg) * seg],
+                        &bias[o0..o0 + opg],
+                        &requant[o0..o0 + opg],
+                        p.out,
+                        &mut out[o0..o0 + opg],
+                    );
                 }
             }
         }
     }
     Ok(())
+}
+
+/// Output channels of one group for one pixel, two weight rows per patch
+/// pass.
+#[inline]
+fn channel_rows(
+    xw: &[i8],
+    weights: &[i8],
+    bias: &[i32],
+    requant: &[Requant],
+    out_q: OutputQuant,
+    out: &mut [i8],
+) {
+    let seg = xw.len() / 2;
+    if seg == 0 {
+        return;
+    }
+    let mut rows = weights.chunks_exact(2 * seg);
+    let mut outs = out.chunks_exact_mut(2);
+    let mut k = 0;
+    for (pair, o) in (&mut rows).zip(&mut outs) {
+        let (w0, w1) = pair.split_at(seg);
+        let acc = dot2_wide(xw, w0, w1);
+        o[0] = requant[k].apply(bias[k].wrapping_add(acc[0]), out_q);
+        o[1] = requant[k + 1].apply(bias[k + 1].wrapping_add(acc[1]), out_q);
+        k += 2;
+    }
+    if let (Some(o), Some(&b), Some(rq)) = (outs.into_remainder().first_mut(), bias.get(k), requant.get(k)) {
+        *o = rq.apply(b.wrapping_add(dot_wide(xw, rows.remainder())), out_q);
+    }
 }
 
 /// Gathers the receptive field of output pixel `(oy, ox)` into `patch`,

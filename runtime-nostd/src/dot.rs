@@ -18,50 +18,75 @@ fn wide_at(xw: &[i8], i: usize) -> i32 {
     i16::from_le_bytes([xw[2 * i] as u8, xw[2 * i + 1] as u8]) as i32
 }
 
+/// Sums the lanes of an accumulator array.
+#[inline(always)]
+fn lane_sum(acc: &[i32; 16]) -> i32 {
+    let mut t: i32 = 0;
+    for &a in acc {
+        t = t.wrapping_add(a);
+    }
+    t
+}
+
 /// `Σ x[i]·w[i]` over `w.len()` terms, with `x` stored widened in `xw`
 /// (`xw.len() >= 2 * w.len()`).
-#[inline]
+#[inline(never)]
 pub(crate) fn dot_wide(xw: &[i8], w: &[i8]) -> i32 {
     let n = w.len();
     let xw = &xw[..2 * n];
-    let mut total: i32 = 0;
-    // Main loop: 32 MACs per step.
-    let mut acc = [0i32; 32];
-    let xc = xw.chunks_exact(64);
-    let wc = w.chunks_exact(32);
+    let mut acc = [0i32; 16];
+    let xc = xw.chunks_exact(32);
+    let wc = w.chunks_exact(16);
     let (xr, wr) = (xc.remainder(), wc.remainder());
     for (x, w) in xc.zip(wc) {
-        let x: &[i8; 64] = x.try_into().unwrap_or(&[0; 64]);
-        let w: &[i8; 32] = w.try_into().unwrap_or(&[0; 32]);
-        for j in 0..32 {
+        for j in 0..16 {
             let xv = i16::from_le_bytes([x[2 * j] as u8, x[2 * j + 1] as u8]) as i32;
             acc[j] = acc[j].wrapping_add(xv.wrapping_mul(w[j] as i32));
         }
     }
-    for a in acc {
-        total = total.wrapping_add(a);
-    }
-    // One optional 16-wide step.
-    let mut acc16 = [0i32; 16];
-    let xc = xr.chunks_exact(32);
-    let wc = wr.chunks_exact(16);
-    let (xr, wr) = (xc.remainder(), wc.remainder());
-    for (x, w) in xc.zip(wc) {
-        let x: &[i8; 32] = x.try_into().unwrap_or(&[0; 32]);
-        let w: &[i8; 16] = w.try_into().unwrap_or(&[0; 16]);
+    lane_sum(&acc).wrapping_add(tail_wide(xr, wr))
+}
+
+/// Two rows at once: `[Σ x·w0, Σ x·w1]` over `w0.len()` terms
+/// (`w1.len() >= w0.len()`, `xw.len() >= 2 * w0.len()`).
+///
+/// Each 16-lane step loads the patch once for both rows. The two
+/// per-row inner loops are kept separate (rather than interleaved in one
+/// loop body): that is the shape LLVM turns into `pmaddwd` on SSE2.
+#[inline(never)]
+pub(crate) fn dot2_wide(xw: &[i8], w0: &[i8], w1: &[i8]) -> [i32; 2] {
+    let n = w0.len();
+    let xw = &xw[..2 * n];
+    let w1 = &w1[..n];
+    let mut s0 = [0i32; 16];
+    let mut s1 = [0i32; 16];
+    let xc = xw.chunks_exact(32);
+    let ac = w0.chunks_exact(16);
+    let bc = w1.chunks_exact(16);
+    let (xr, ar, br) = (xc.remainder(), ac.remainder(), bc.remainder());
+    for ((x, a), b) in xc.zip(ac).zip(bc) {
         for j in 0..16 {
             let xv = i16::from_le_bytes([x[2 * j] as u8, x[2 * j + 1] as u8]) as i32;
-            acc16[j] = acc16[j].wrapping_add(xv.wrapping_mul(w[j] as i32));
+            s0[j] = s0[j].wrapping_add(xv.wrapping_mul(a[j] as i32));
+        }
+        for j in 0..16 {
+            let xv = i16::from_le_bytes([x[2 * j] as u8, x[2 * j + 1] as u8]) as i32;
+            s1[j] = s1[j].wrapping_add(xv.wrapping_mul(b[j] as i32));
         }
     }
-    for a in acc16 {
-        total = total.wrapping_add(a);
-    }
-    // Scalar tail, in channel pairs.
-    let pairs = wr.len() / 2;
-    for k in 0..pairs {
-        let a = wide_at(xr, 2 * k).wrapping_mul(wr[2 * k] as i32);
-        let b = wide_at(xr, 2 * k + 1).wrapping_mul(wr[2 * k + 1] as i32);
+    [
+        lane_sum(&s0).wrapping_add(tail_wide(xr, ar)),
+        lane_sum(&s1).wrapping_add(tail_wide(xr, br)),
+    ]
+}
+
+/// Scalar tail (fewer than 16 terms), in channel pairs.
+#[inline(always)]
+fn tail_wide(xr: &[i8], wr: &[i8]) -> i32 {
+    let mut total: i32 = 0;
+    for (x, w) in xr.chunks_exact(4).zip(wr.chunks_exact(2)) {
+        let a = (i16::from_le_bytes([x[0] as u8, x[1] as u8]) as i32).wrapping_mul(w[0] as i32);
+        let b = (i16::from_le_bytes([x[2] as u8, x[3] as u8]) as i32).wrapping_mul(w[1] as i32);
         total = total.wrapping_add(a.wrapping_add(b));
     }
     if wr.len() % 2 == 1 {
