@@ -5,7 +5,10 @@
 
 use ingot_compiler::check::compare::{compare_outputs, first_differing_step};
 use ingot_compiler::check::runner::{self, BuildConfig, TraceMode};
-use ingot_compiler::check::{icount, size, ModuleFiles, RunOn};
+use ingot_compiler::check::compare::Thresholds;
+use ingot_compiler::check::pipeline::{self, CheckData, CheckPlan, StepInfo};
+use ingot_compiler::check::size::Budget;
+use ingot_compiler::check::{emulation_or_skip, icount, size, ModuleFiles, RunOn};
 use std::path::{Path, PathBuf};
 
 fn fixture_dir() -> PathBuf {
@@ -49,6 +52,9 @@ fn standin_on_host_and_emulated_m4_is_bit_identical() {
     let m = ModuleFiles::find(&fixture_dir(), Some("standin")).unwrap();
     let (il, ol) = lens(&m);
     assert_eq!((il, ol), (64, 3));
+    if !emulation_or_skip(RunOn::M4) {
+        return;
+    }
     let inputs = images(6, il, 42);
     let c = cfg(TraceMode::Maps);
 
@@ -100,6 +106,9 @@ fn standin_on_host_and_emulated_m4_is_bit_identical() {
 
 #[test]
 fn instruction_count_calibration_on_m4_recovers_the_known_sequence() {
+    if !emulation_or_skip(RunOn::M4) {
+        return;
+    }
     let c = cfg(TraceMode::Off);
     let cal = icount::calibrate(RunOn::M4, &c).unwrap();
     eprintln!("calibration: {cal:?}");
@@ -144,4 +153,68 @@ fn a_flipped_weight_byte_is_caught_and_its_layer_named() {
         assert!(diff.differing > 0);
         std::fs::remove_dir_all(&dir).unwrap();
     }
+}
+
+/// The whole check over plain arrays: the stand-in's own host outputs play
+/// the integer simulator, a float reference that disagrees on some images
+/// plays the float model, and `--max-drop 0` must fail naming the figure.
+#[test]
+fn check_with_max_drop_zero_fails_on_a_model_that_loses_accuracy() {
+    let m = ModuleFiles::find(&fixture_dir(), Some("standin")).unwrap();
+    let (il, ol) = lens(&m);
+    let inputs = images(10, il, 99);
+    let c = cfg(TraceMode::Maps);
+    let good = runner::build(&m, RunOn::Host, &c).unwrap().run(&inputs, il, Some(ol), &c).unwrap();
+    let int8_pred: Vec<usize> = good.outputs.iter().map(|o| ingot_compiler::check::compare::argmax_i8(o)).collect();
+    // The float model is right on every image; int8 is wrong where the
+    // label was moved to another class.
+    let labels: Vec<usize> = int8_pred.iter().enumerate().map(|(i, &p)| if i % 4 == 0 { (p + 1) % 3 } else { p }).collect();
+    let float: Vec<Vec<f32>> = labels.iter().map(|&l| (0..3).map(|k| if k == l { 5.0 } else { -5.0 }).collect()).collect();
+    let data = CheckData {
+        model: "standin".into(),
+        inputs,
+        input_len: il,
+        output_len: ol,
+        output_scale: 0.125,
+        output_zero_point: 0,
+        sim_outputs: Some(good.outputs.clone()),
+        sim_trace: Some(good.trace.clone()),
+        float_outputs: Some(float),
+        labels: Some(labels),
+        class_names: vec!["left".into(), "middle".into(), "right".into()],
+        steps: vec![
+            StepInfo { name: "conv1".into(), kind: "conv2d".into(), macs: 2304 },
+            StepInfo { name: "pool1".into(), kind: "max_pool".into(), macs: 0 },
+            StepInfo { name: "fc".into(), kind: "linear".into(), macs: 192 },
+        ],
+        ..CheckData::default()
+    };
+    let on = if emulation_or_skip(RunOn::M4) { RunOn::M4 } else { RunOn::Host };
+    let plan = CheckPlan {
+        on,
+        build: c.clone(),
+        budget: Budget { flash: Some(1 << 20), ram: Some(64 << 10) },
+        thresholds: Thresholds { max_drop_pp: Some(0.0), min_agreement: None },
+    };
+    let r = pipeline::run_check(&m, &data, &plan).unwrap();
+    assert!(r.bit_exact.as_ref().unwrap().identical());
+    assert_eq!(r.first_differing_layer, None);
+    let acc = r.accuracy.as_ref().unwrap();
+    assert_eq!(acc.float_accuracy, 1.0);
+    assert!((acc.drop_pp - 30.0).abs() < 1e-9, "{acc:?}");
+    assert_eq!(r.failures.len(), 1, "{:?}", r.failures);
+    assert!(r.failures[0].starts_with("accuracy drop: 30.00 pp"), "{:?}", r.failures);
+    if on == RunOn::M4 {
+        let i = r.instructions.as_ref().unwrap();
+        assert!(i.per_inference_mean > 2496 && i.per_mac.unwrap() > 1.0, "{i:?}");
+        assert_eq!(r.layers.len(), 3);
+        assert!(r.layers.iter().all(|l| l.instructions.is_some_and(|n| n > 0)), "{:?}", r.layers);
+        let z = r.sizes.as_ref().unwrap();
+        assert!(z.over_budget.is_empty() && z.stack_used.is_some(), "{z:?}");
+        eprintln!("{}", ingot_compiler::check::report::markdown(&r));
+    }
+
+    let lenient = CheckPlan { thresholds: Thresholds { max_drop_pp: Some(30.0), min_agreement: Some(0.7) }, on: RunOn::Host, ..plan };
+    let r = pipeline::run_check(&m, &data, &lenient).unwrap();
+    assert!(r.failures.is_empty(), "{:?}", r.failures);
 }

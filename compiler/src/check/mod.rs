@@ -22,6 +22,7 @@
 pub mod compare;
 pub mod icount;
 pub mod io;
+pub mod pipeline;
 pub mod report;
 pub mod runner;
 pub mod size;
@@ -290,5 +291,31 @@ impl ModuleFiles {
             extra,
             name: stem,
         })
+    }
+}
+
+/// Whether the emulated runs of `on` can happen here: `Ok` when QEMU and
+/// the Rust target are installed, else the error naming what to install.
+pub fn emulation_ready(on: RunOn, qemu: &std::path::Path) -> Result<()> {
+    let Some(b) = on.board() else {
+        return Ok(());
+    };
+    runner::require_qemu(qemu)?;
+    runner::require_rust_target(b.triple)
+}
+
+/// For tests: true when `on` can be emulated here. When it cannot, prints
+/// why and returns false, unless `INGOT_REQUIRE_EMULATION=1` (set by CI),
+/// in which case it panics with the install command.
+pub fn emulation_or_skip(on: RunOn) -> bool {
+    match emulation_ready(on, std::path::Path::new("qemu-system-arm")) {
+        Ok(()) => true,
+        Err(e) if std::env::var("INGOT_REQUIRE_EMULATION").is_ok_and(|v| v == "1") => {
+            panic!("emulation required (INGOT_REQUIRE_EMULATION=1): {e}")
+        }
+        Err(e) => {
+            eprintln!("skipping the {on} emulator check: {e}");
+            false
+        }
     }
 }

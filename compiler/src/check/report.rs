@@ -208,7 +208,10 @@ pub fn markdown(r: &CheckReport) -> String {
                 per_mac
             );
         }
-        s.push_str("\nPer-layer SQNR chart: `sqnr.svg`.\n\n");
+        if r.layers.iter().any(|l| l.sqnr_db.is_some()) {
+            s.push_str("\nPer-layer SQNR chart: `sqnr.svg`.\n");
+        }
+        s.push('\n');
     }
 
     if let Some(i) = &r.instructions {
