@@ -1,6 +1,35 @@
 //! `ingot`: command-line front of the ingot compiler.
+//!
+//! Each subcommand lives in its own file under `cmd/` and only parses its
+//! arguments and prints; the work is done by the `ingot-compiler` library.
+
+mod cmd;
+
+use clap::{Parser, Subcommand};
+
+/// Compile a trained convolutional network into fixed-point no_std Rust for
+/// microcontrollers.
+#[derive(Debug, Parser)]
+#[command(name = "ingot", version, about)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Build a generated module, run it on the host or an emulated Cortex-M
+    /// core, and compare it with the integer simulator and the float model.
+    Check(cmd::check::Args),
+}
 
 fn main() {
-    eprintln!("ingot: no command yet");
-    std::process::exit(2);
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Check(args) => cmd::check::run(&args),
+    };
+    if let Err(e) = result {
+        eprintln!("ingot: error: {e:#}");
+        std::process::exit(1);
+    }
 }
