@@ -10,7 +10,13 @@ fn standin() -> std::path::PathBuf {
 
 fn inputs_file(dir: &Path) -> std::path::PathBuf {
     let p = dir.join("inputs.bin");
-    let inputs: Vec<Vec<i8>> = (0..4).map(|i| (0..64).map(|k| ((k * 7 + i * 13) % 256) as u8 as i8).collect()).collect();
+    let inputs: Vec<Vec<i8>> = (0..4)
+        .map(|i| {
+            (0..64)
+                .map(|k| ((k * 7 + i * 13) % 256) as u8 as i8)
+                .collect()
+        })
+        .collect();
     io::write_inputs(&p, 64, &inputs).unwrap();
     p
 }
@@ -33,10 +39,19 @@ fn check_module_on_m4_reports_and_fails_naming_the_flash_budget() {
         .output()
         .unwrap();
     let stdout = String::from_utf8_lossy(&ok.stdout);
-    assert!(ok.status.success(), "{stdout}\n{}", String::from_utf8_lossy(&ok.stderr));
+    assert!(
+        ok.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&ok.stderr)
+    );
     assert!(stdout.contains("**Result: pass.**"), "{stdout}");
-    assert!(stdout.contains("Executed instructions per inference"), "{stdout}");
-    let json: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap()).unwrap();
+    assert!(
+        stdout.contains("Executed instructions per inference"),
+        "{stdout}"
+    );
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
     assert!(json["instructions"]["per_inference_mean"].as_u64().unwrap() > 2496);
 
     let over = Command::new(env!("CARGO_BIN_EXE_ingot"))
@@ -48,7 +63,10 @@ fn check_module_on_m4_reports_and_fails_naming_the_flash_budget() {
         .unwrap();
     let stderr = String::from_utf8_lossy(&over.stderr);
     assert!(!over.status.success());
-    assert!(stderr.contains("check failed: flash") && stderr.contains("exceeds the budget of 1000 B"), "{stderr}");
+    assert!(
+        stderr.contains("check failed: flash") && stderr.contains("exceeds the budget of 1000 B"),
+        "{stderr}"
+    );
 }
 
 #[test]
@@ -73,5 +91,8 @@ fn check_rejects_unknown_cores_and_wrong_input_lengths() {
         .unwrap();
     assert!(!out.status.success());
     let e = String::from_utf8_lossy(&out.stderr);
-    assert!(e.contains("inputs of 10 values; the module takes 64"), "{e}");
+    assert!(
+        e.contains("inputs of 10 values; the module takes 64"),
+        "{e}"
+    );
 }

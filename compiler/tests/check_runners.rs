@@ -3,10 +3,10 @@
 //! Emulator tests need `qemu-system-arm` and the thumb targets
 //! (`.ci/install-emulation.sh`).
 
-use ingot_compiler::check::compare::{compare_outputs, first_differing_step};
-use ingot_compiler::check::runner::{self, BuildConfig, TraceMode};
 use ingot_compiler::check::compare::Thresholds;
+use ingot_compiler::check::compare::{compare_outputs, first_differing_step};
 use ingot_compiler::check::pipeline::{self, CheckData, CheckPlan, StepInfo};
+use ingot_compiler::check::runner::{self, BuildConfig, TraceMode};
 use ingot_compiler::check::size::Budget;
 use ingot_compiler::check::{emulation_or_skip, icount, size, ModuleFiles, RunOn};
 use std::path::{Path, PathBuf};
@@ -64,7 +64,11 @@ fn standin_on_host_and_emulated_m4_is_bit_identical() {
     assert_eq!(h.trace.len(), 6 * 3, "3 traced steps per image");
     assert!(h.counts.is_none());
     // Not all-equal outputs: the network actually depends on its input.
-    assert!(h.outputs.iter().any(|o| o != &h.outputs[0]), "{:?}", h.outputs);
+    assert!(
+        h.outputs.iter().any(|o| o != &h.outputs[0]),
+        "{:?}",
+        h.outputs
+    );
 
     let fw = runner::build(&m, RunOn::M4, &c).unwrap();
     let e = fw.run(&inputs, il, Some(ol), &c).unwrap();
@@ -136,19 +140,27 @@ fn a_flipped_weight_byte_is_caught_and_its_layer_named() {
     let (il, ol) = lens(&good);
     let inputs = images(8, il, 7);
     let c = cfg(TraceMode::Maps);
-    let reference = runner::build(&good, RunOn::Host, &c).unwrap().run(&inputs, il, Some(ol), &c).unwrap();
+    let reference = runner::build(&good, RunOn::Host, &c)
+        .unwrap()
+        .run(&inputs, il, Some(ol), &c)
+        .unwrap();
 
     // (byte offset in the weights, expected first differing step)
     for (offset, step, name) in [(4usize, 0usize, "conv1"), (100, 2, "fc")] {
-        let dir = std::env::temp_dir().join(format!("ingot-corrupt-{}-{offset}", std::process::id()));
+        let dir =
+            std::env::temp_dir().join(format!("ingot-corrupt-{}-{offset}", std::process::id()));
         std::fs::create_dir_all(&dir).unwrap();
         std::fs::copy(&good.source, dir.join("standin.rs")).unwrap();
         let mut w = std::fs::read(fixture_dir().join("standin.weights.bin")).unwrap();
         w[offset] ^= 0x40;
         std::fs::write(dir.join("standin.weights.bin"), &w).unwrap();
         let bad = ModuleFiles::find(&dir, Some("standin")).unwrap();
-        let out = runner::build(&bad, RunOn::Host, &c).unwrap().run(&inputs, il, Some(ol), &c).unwrap();
-        let diff = first_differing_step(&out.trace, &reference.trace).expect("corruption not detected");
+        let out = runner::build(&bad, RunOn::Host, &c)
+            .unwrap()
+            .run(&inputs, il, Some(ol), &c)
+            .unwrap();
+        let diff =
+            first_differing_step(&out.trace, &reference.trace).expect("corruption not detected");
         assert_eq!((diff.step, diff.name.as_str()), (step, name), "{diff:?}");
         assert!(diff.differing > 0);
         std::fs::remove_dir_all(&dir).unwrap();
@@ -164,12 +176,26 @@ fn check_with_max_drop_zero_fails_on_a_model_that_loses_accuracy() {
     let (il, ol) = lens(&m);
     let inputs = images(10, il, 99);
     let c = cfg(TraceMode::Maps);
-    let good = runner::build(&m, RunOn::Host, &c).unwrap().run(&inputs, il, Some(ol), &c).unwrap();
-    let int8_pred: Vec<usize> = good.outputs.iter().map(|o| ingot_compiler::check::compare::argmax_i8(o)).collect();
+    let good = runner::build(&m, RunOn::Host, &c)
+        .unwrap()
+        .run(&inputs, il, Some(ol), &c)
+        .unwrap();
+    let int8_pred: Vec<usize> = good
+        .outputs
+        .iter()
+        .map(|o| ingot_compiler::check::compare::argmax_i8(o))
+        .collect();
     // The float model is right on every image; int8 is wrong where the
     // label was moved to another class.
-    let labels: Vec<usize> = int8_pred.iter().enumerate().map(|(i, &p)| if i % 4 == 0 { (p + 1) % 3 } else { p }).collect();
-    let float: Vec<Vec<f32>> = labels.iter().map(|&l| (0..3).map(|k| if k == l { 5.0 } else { -5.0 }).collect()).collect();
+    let labels: Vec<usize> = int8_pred
+        .iter()
+        .enumerate()
+        .map(|(i, &p)| if i % 4 == 0 { (p + 1) % 3 } else { p })
+        .collect();
+    let float: Vec<Vec<f32>> = labels
+        .iter()
+        .map(|&l| (0..3).map(|k| if k == l { 5.0 } else { -5.0 }).collect())
+        .collect();
     let data = CheckData {
         model: "standin".into(),
         inputs,
@@ -183,18 +209,40 @@ fn check_with_max_drop_zero_fails_on_a_model_that_loses_accuracy() {
         labels: Some(labels),
         class_names: vec!["left".into(), "middle".into(), "right".into()],
         steps: vec![
-            StepInfo { name: "conv1".into(), kind: "conv2d".into(), macs: 2304 },
-            StepInfo { name: "pool1".into(), kind: "max_pool".into(), macs: 0 },
-            StepInfo { name: "fc".into(), kind: "linear".into(), macs: 192 },
+            StepInfo {
+                name: "conv1".into(),
+                kind: "conv2d".into(),
+                macs: 2304,
+            },
+            StepInfo {
+                name: "pool1".into(),
+                kind: "max_pool".into(),
+                macs: 0,
+            },
+            StepInfo {
+                name: "fc".into(),
+                kind: "linear".into(),
+                macs: 192,
+            },
         ],
         ..CheckData::default()
     };
-    let on = if emulation_or_skip(RunOn::M4) { RunOn::M4 } else { RunOn::Host };
+    let on = if emulation_or_skip(RunOn::M4) {
+        RunOn::M4
+    } else {
+        RunOn::Host
+    };
     let plan = CheckPlan {
         on,
         build: c.clone(),
-        budget: Budget { flash: Some(1 << 20), ram: Some(64 << 10) },
-        thresholds: Thresholds { max_drop_pp: Some(0.0), min_agreement: None },
+        budget: Budget {
+            flash: Some(1 << 20),
+            ram: Some(64 << 10),
+        },
+        thresholds: Thresholds {
+            max_drop_pp: Some(0.0),
+            min_agreement: None,
+        },
     };
     let r = pipeline::run_check(&m, &data, &plan).unwrap();
     assert!(r.bit_exact.as_ref().unwrap().identical());
@@ -203,18 +251,77 @@ fn check_with_max_drop_zero_fails_on_a_model_that_loses_accuracy() {
     assert_eq!(acc.float_accuracy, 1.0);
     assert!((acc.drop_pp - 30.0).abs() < 1e-9, "{acc:?}");
     assert_eq!(r.failures.len(), 1, "{:?}", r.failures);
-    assert!(r.failures[0].starts_with("accuracy drop: 30.00 pp"), "{:?}", r.failures);
+    assert!(
+        r.failures[0].starts_with("accuracy drop: 30.00 pp"),
+        "{:?}",
+        r.failures
+    );
     if on == RunOn::M4 {
         let i = r.instructions.as_ref().unwrap();
-        assert!(i.per_inference_mean > 2496 && i.per_mac.unwrap() > 1.0, "{i:?}");
+        assert!(
+            i.per_inference_mean > 2496 && i.per_mac.unwrap() > 1.0,
+            "{i:?}"
+        );
         assert_eq!(r.layers.len(), 3);
-        assert!(r.layers.iter().all(|l| l.instructions.is_some_and(|n| n > 0)), "{:?}", r.layers);
+        assert!(
+            r.layers
+                .iter()
+                .all(|l| l.instructions.is_some_and(|n| n > 0)),
+            "{:?}",
+            r.layers
+        );
         let z = r.sizes.as_ref().unwrap();
         assert!(z.over_budget.is_empty() && z.stack_used.is_some(), "{z:?}");
         eprintln!("{}", ingot_compiler::check::report::markdown(&r));
     }
 
-    let lenient = CheckPlan { thresholds: Thresholds { max_drop_pp: Some(30.0), min_agreement: Some(0.7) }, on: RunOn::Host, ..plan };
+    let lenient = CheckPlan {
+        thresholds: Thresholds {
+            max_drop_pp: Some(30.0),
+            min_agreement: Some(0.7),
+        },
+        on: RunOn::Host,
+        ..plan
+    };
     let r = pipeline::run_check(&m, &data, &lenient).unwrap();
     assert!(r.failures.is_empty(), "{:?}", r.failures);
+}
+
+/// The other cores: the same module gives the same outputs everywhere, and
+/// each core's calibration matches its board clock (25 MHz MPS2, 20 MHz
+/// AN505: 40 and 50 instructions per tick).
+#[test]
+fn standin_is_bit_identical_on_m0plus_m3_m7_and_m33() {
+    let m = ModuleFiles::find(&fixture_dir(), Some("standin")).unwrap();
+    let (il, ol) = lens(&m);
+    let inputs = images(3, il, 5);
+    let c = cfg(TraceMode::Off);
+    let host = runner::build(&m, RunOn::Host, &c)
+        .unwrap()
+        .run(&inputs, il, Some(ol), &c)
+        .unwrap();
+    for on in [RunOn::M0plus, RunOn::M3, RunOn::M7, RunOn::M33] {
+        if !emulation_or_skip(on) {
+            continue;
+        }
+        let fw = runner::build(&m, on, &c).unwrap();
+        let out = fw.run(&inputs, il, Some(ol), &c).unwrap();
+        let exact = compare_outputs(&out.outputs, &host.outputs);
+        assert!(exact.identical(), "{on}: {exact:?}");
+        let cal = icount::calibrate(on, &c).unwrap();
+        let want = 1e9 / on.board().unwrap().core_clock_hz as f64;
+        assert!(
+            (cal.instructions_per_tick - want).abs() < 0.05,
+            "{on}: {cal:?}"
+        );
+        let counts = out.counts.unwrap();
+        let s = size::elf_sizes(&fw.binary).unwrap();
+        eprintln!(
+            "standin {on}: {} instructions/inference, stack {:?} B, flash {} B, static RAM {} B",
+            cal.instructions(counts.run_ticks[0]),
+            counts.stack_bytes,
+            s.flash(),
+            s.static_ram()
+        );
+    }
 }

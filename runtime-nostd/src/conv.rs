@@ -333,7 +333,11 @@ fn channel_rows(
         o[1] = requant[k + 1].apply(bias[k + 1].wrapping_add(acc[1]), out_q);
         k += 2;
     }
-    if let (Some(o), Some(&b), Some(rq)) = (outs.into_remainder().first_mut(), bias.get(k), requant.get(k)) {
+    if let (Some(o), Some(&b), Some(rq)) = (
+        outs.into_remainder().first_mut(),
+        bias.get(k),
+        requant.get(k),
+    ) {
         *o = rq.apply(b.wrapping_add(dot_wide(xw, rows.remainder())), out_q);
     }
 }

@@ -60,7 +60,8 @@ pub struct Args {
 }
 
 fn parse_on(s: &str) -> Result<RunOn, String> {
-    RunOn::parse(s).ok_or_else(|| format!("unknown core `{s}`: expected host, m0plus, m3, m4, m7 or m33"))
+    RunOn::parse(s)
+        .ok_or_else(|| format!("unknown core `{s}`: expected host, m0plus, m3, m4, m7 or m33"))
 }
 
 /// Runs `ingot check`.
@@ -72,22 +73,36 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         // The full pipeline (calibrate → lower → plan → generate → build →
         // run → compare) is wired here once lowering, the integer simulator,
         // the float reference and the code generator are in the library.
-        let graph = a.graph.as_ref().context("a GRAPH.json (or --module DIR) is required")?;
-        let g = ingot_compiler::load(graph).with_context(|| format!("loading {}", graph.display()))?;
+        let graph = a
+            .graph
+            .as_ref()
+            .context("a GRAPH.json (or --module DIR) is required")?;
+        let g =
+            ingot_compiler::load(graph).with_context(|| format!("loading {}", graph.display()))?;
         bail!(
             "checking `{}` from its graph needs lowering, the integer simulator, the float reference and the code generator, which this build does not have yet; generate the module elsewhere and run `ingot check --module DIR --inputs FILE --on CORE`",
             g.name()
         );
     };
     let module = ModuleFiles::find(module_dir, None)?;
-    let src = std::fs::read_to_string(&module.source).with_context(|| format!("reading {}", module.source.display()))?;
-    let input_len = runner::module_const_usize(&src, "INPUT_LEN").context("the module has no `const INPUT_LEN: usize`")?;
-    let output_len = runner::module_const_usize(&src, "OUTPUT_LEN").context("the module has no `const OUTPUT_LEN: usize`")?;
-    let inputs_path = a.inputs.as_ref().context("--module needs --inputs FILE (quantized inputs) until image loading lands")?;
-    let bytes = std::fs::read(inputs_path).with_context(|| format!("reading {}", inputs_path.display()))?;
+    let src = std::fs::read_to_string(&module.source)
+        .with_context(|| format!("reading {}", module.source.display()))?;
+    let input_len = runner::module_const_usize(&src, "INPUT_LEN")
+        .context("the module has no `const INPUT_LEN: usize`")?;
+    let output_len = runner::module_const_usize(&src, "OUTPUT_LEN")
+        .context("the module has no `const OUTPUT_LEN: usize`")?;
+    let inputs_path = a
+        .inputs
+        .as_ref()
+        .context("--module needs --inputs FILE (quantized inputs) until image loading lands")?;
+    let bytes =
+        std::fs::read(inputs_path).with_context(|| format!("reading {}", inputs_path.display()))?;
     let (len, inputs) = io::decode_batch(io::INPUTS_MAGIC, &bytes, "inputs")?;
     if len != input_len {
-        bail!("{} holds inputs of {len} values; the module takes {input_len}", inputs_path.display());
+        bail!(
+            "{} holds inputs of {len} values; the module takes {input_len}",
+            inputs_path.display()
+        );
     }
     let data = CheckData {
         model: module.name.clone(),

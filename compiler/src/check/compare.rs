@@ -96,7 +96,10 @@ pub struct LayerDiff {
 /// module's). `None` when every traced map is identical.
 pub fn first_differing_step(module: &[TraceMap], reference: &[TraceMap]) -> Option<LayerDiff> {
     let index = |t: &[TraceMap]| -> BTreeMap<(usize, usize), usize> {
-        t.iter().enumerate().map(|(i, m)| ((m.step, m.image), i)).collect()
+        t.iter()
+            .enumerate()
+            .map(|(i, m)| ((m.step, m.image), i))
+            .collect()
     };
     let (mi, ri) = (index(module), index(reference));
     let mut keys: Vec<(usize, usize)> = mi.keys().chain(ri.keys()).copied().collect();
@@ -135,7 +138,15 @@ pub fn first_differing_step(module: &[TraceMap], reference: &[TraceMap]) -> Opti
                 });
             }
             (m, r) => {
-                let name = m.or(r).map(|&i| if m.is_some() { &module[i] } else { &reference[i] }.name.clone());
+                let name = m.or(r).map(|&i| {
+                    if m.is_some() {
+                        &module[i]
+                    } else {
+                        &reference[i]
+                    }
+                    .name
+                    .clone()
+                });
                 return Some(LayerDiff {
                     step,
                     name: name.unwrap_or_default(),
@@ -176,7 +187,9 @@ pub fn argmax_f32(v: &[f32]) -> usize {
 
 /// `scale · (q − zero_point)`.
 pub fn dequantize(q: &[i8], scale: f32, zero_point: i32) -> Vec<f32> {
-    q.iter().map(|&v| scale * (v as i32 - zero_point) as f32).collect()
+    q.iter()
+        .map(|&v| scale * (v as i32 - zero_point) as f32)
+        .collect()
 }
 
 /// Dequantized int8 outputs vs float reference outputs.
@@ -193,7 +206,12 @@ pub struct FloatAgreement {
 }
 
 /// Compares dequantized module outputs with float outputs.
-pub fn compare_float(int8: &[Vec<i8>], scale: f32, zero_point: i32, float: &[Vec<f32>]) -> FloatAgreement {
+pub fn compare_float(
+    int8: &[Vec<i8>],
+    scale: f32,
+    zero_point: i32,
+    float: &[Vec<f32>],
+) -> FloatAgreement {
     let images = int8.len().min(float.len());
     let (mut agree, mut sum, mut n, mut max) = (0usize, 0f64, 0usize, 0f64);
     for (q, f) in int8.iter().zip(float) {
@@ -209,7 +227,11 @@ pub fn compare_float(int8: &[Vec<i8>], scale: f32, zero_point: i32, float: &[Vec
     }
     FloatAgreement {
         images,
-        top1_agreement: if images == 0 { 0.0 } else { agree as f64 / images as f64 },
+        top1_agreement: if images == 0 {
+            0.0
+        } else {
+            agree as f64 / images as f64
+        },
         mean_abs_error: if n == 0 { 0.0 } else { sum / n as f64 },
         max_abs_error: max,
     }
@@ -245,11 +267,25 @@ pub struct Accuracy {
 }
 
 /// Accuracy figures from predictions and labels.
-pub fn accuracy(float_pred: &[usize], int8_pred: &[usize], labels: &[usize], classes: usize) -> Accuracy {
+pub fn accuracy(
+    float_pred: &[usize],
+    int8_pred: &[usize],
+    labels: &[usize],
+    classes: usize,
+) -> Accuracy {
     let images = labels.len().min(float_pred.len()).min(int8_pred.len());
     let hits = |p: &[usize]| p.iter().zip(labels).filter(|(a, b)| a == b).count();
-    let frac = |h: usize| if images == 0 { 0.0 } else { h as f64 / images as f64 };
-    let (fa, ia) = (frac(hits(&float_pred[..images])), frac(hits(&int8_pred[..images])));
+    let frac = |h: usize| {
+        if images == 0 {
+            0.0
+        } else {
+            h as f64 / images as f64
+        }
+    };
+    let (fa, ia) = (
+        frac(hits(&float_pred[..images])),
+        frac(hits(&int8_pred[..images])),
+    );
     Accuracy {
         images,
         float_accuracy: fa,
@@ -377,7 +413,10 @@ mod tests {
                 reference: 7
             })
         );
-        assert!(!compare_outputs(&a[..1], &a).identical(), "a missing image is a mismatch");
+        assert!(
+            !compare_outputs(&a[..1], &a).identical(),
+            "a missing image is a mismatch"
+        );
     }
 
     #[test]
@@ -392,7 +431,10 @@ mod tests {
         let mut bad = good.clone();
         bad[3].data = vec![9];
         let d = first_differing_step(&bad, &good).unwrap();
-        assert_eq!((d.step, d.image, d.name.as_str(), d.max_abs_diff), (1, 1, "pool", 2));
+        assert_eq!(
+            (d.step, d.image, d.name.as_str(), d.max_abs_diff),
+            (1, 1, "pool", 2)
+        );
         bad[2].data = vec![5, 0];
         let d = first_differing_step(&bad, &good).unwrap();
         assert_eq!((d.step, d.image, d.first_index, d.differing), (0, 1, 1, 1));
@@ -407,7 +449,11 @@ mod tests {
         let g = compare_float(&q, 0.1, 0, &f);
         assert_eq!(g.top1_agreement, 0.5);
         assert!((g.max_abs_error - 3.0).abs() < 1e-6);
-        assert!((g.mean_abs_error - 5.0 / 6.0).abs() < 1e-6, "{}", g.mean_abs_error);
+        assert!(
+            (g.mean_abs_error - 5.0 / 6.0).abs() < 1e-6,
+            "{}",
+            g.mean_abs_error
+        );
 
         let a = accuracy(&[0, 1, 2, 2], &[0, 1, 1, 1], &[0, 1, 2, 2], 3);
         assert_eq!(a.float_accuracy, 1.0);

@@ -55,7 +55,11 @@ pub struct Calibration {
 impl Calibration {
     /// Derives the factor from measured points (at least two distinct
     /// sizes): least-squares slope of instructions over ticks.
-    pub fn from_points(on: RunOn, timer_overhead_ticks: u64, points: Vec<CalPoint>) -> Result<Calibration> {
+    pub fn from_points(
+        on: RunOn,
+        timer_overhead_ticks: u64,
+        points: Vec<CalPoint>,
+    ) -> Result<Calibration> {
         let n = points.len() as f64;
         if points.len() < 2 {
             return Err(CheckError::Format {
@@ -73,7 +77,8 @@ impl Calibration {
         if sxx == 0.0 {
             return Err(CheckError::Format {
                 file: "calibration".into(),
-                detail: "all calibration loops took the same number of ticks (is -icount on?)".into(),
+                detail: "all calibration loops took the same number of ticks (is -icount on?)"
+                    .into(),
             });
         }
         let f = sxy / sxx;
@@ -83,7 +88,10 @@ impl Calibration {
             .fold(0.0, f64::max);
         Ok(Calibration {
             on,
-            machine: on.board().map(|b| b.machine.to_string()).unwrap_or_default(),
+            machine: on
+                .board()
+                .map(|b| b.machine.to_string())
+                .unwrap_or_default(),
             instructions_per_tick: f,
             timer_overhead_ticks,
             points,
@@ -176,7 +184,11 @@ mod tests {
         assert_eq!(o, 0);
         assert_eq!(pts[1].instructions, 1_020_000);
         let c = Calibration::from_points(RunOn::M4, o, pts).unwrap();
-        assert!((c.instructions_per_tick - 40.0).abs() < 1e-9, "{}", c.instructions_per_tick);
+        assert!(
+            (c.instructions_per_tick - 40.0).abs() < 1e-9,
+            "{}",
+            c.instructions_per_tick
+        );
         assert_eq!(c.instructions(25), 1000);
         assert!(parse_console("hello\n").is_err());
         let flat = vec![

@@ -79,16 +79,21 @@ pub fn decode_batch(magic: &[u8; 4], bytes: &[u8], file: &str) -> Result<(usize,
 /// Writes the inputs file.
 pub fn write_inputs(path: &Path, input_len: usize, inputs: &[Vec<i8>]) -> Result<()> {
     let bytes = encode_batch(INPUTS_MAGIC, input_len, inputs)?;
-    std::fs::write(path, bytes).map_err(|e| CheckError::io(format!("writing {}", path.display()), e))
+    std::fs::write(path, bytes)
+        .map_err(|e| CheckError::io(format!("writing {}", path.display()), e))
 }
 
 /// Reads an outputs file, checking the per-image length.
 pub fn read_outputs(path: &Path, output_len: Option<usize>) -> Result<Vec<Vec<i8>>> {
-    let bytes = std::fs::read(path).map_err(|e| CheckError::io(format!("reading {}", path.display()), e))?;
+    let bytes = std::fs::read(path)
+        .map_err(|e| CheckError::io(format!("reading {}", path.display()), e))?;
     let (len, items) = decode_batch(OUTPUTS_MAGIC, &bytes, "outputs")?;
     if let Some(want) = output_len {
         if len != want {
-            return Err(bad("outputs", format!("output length {len}, expected {want}")));
+            return Err(bad(
+                "outputs",
+                format!("output length {len}, expected {want}"),
+            ));
         }
     }
     Ok(items)
@@ -157,7 +162,8 @@ pub fn decode_trace(bytes: &[u8]) -> Result<Vec<TraceMap>> {
 
 /// Reads a trace file.
 pub fn read_trace(path: &Path) -> Result<Vec<TraceMap>> {
-    let bytes = std::fs::read(path).map_err(|e| CheckError::io(format!("reading {}", path.display()), e))?;
+    let bytes = std::fs::read(path)
+        .map_err(|e| CheckError::io(format!("reading {}", path.display()), e))?;
     decode_trace(&bytes)
 }
 
@@ -199,7 +205,10 @@ pub fn decode_counts(bytes: &[u8]) -> Result<Vec<CountRecord>> {
     }
     let body = &bytes[4..];
     if body.len() % 24 != 0 {
-        return Err(bad("counts", format!("{} bytes is not whole records", body.len())));
+        return Err(bad(
+            "counts",
+            format!("{} bytes is not whole records", body.len()),
+        ));
     }
     body.chunks_exact(24)
         .map(|r| {

@@ -283,7 +283,10 @@ impl ModuleFiles {
         let extra = files
             .iter()
             .filter(|p| **p != source)
-            .filter(|p| p.file_name().is_some_and(|f| f.to_string_lossy().starts_with(&prefix)))
+            .filter(|p| {
+                p.file_name()
+                    .is_some_and(|f| f.to_string_lossy().starts_with(&prefix))
+            })
             .cloned()
             .collect();
         Ok(ModuleFiles {

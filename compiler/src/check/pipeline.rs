@@ -37,7 +37,12 @@ pub fn steps_of(q: &QGraph) -> Vec<StepInfo> {
             let out = q.map(s.output).shape;
             let macs = match &s.kernel {
                 QKernel::Conv2d(c) => {
-                    (out.h * out.w * c.out_channels * c.kernel[0] * c.kernel[1] * (c.in_channels / c.groups.max(1))) as u64
+                    (out.h
+                        * out.w
+                        * c.out_channels
+                        * c.kernel[0]
+                        * c.kernel[1]
+                        * (c.in_channels / c.groups.max(1))) as u64
                 }
                 QKernel::Linear(l) => (l.in_features * l.out_features) as u64,
                 _ => 0,
@@ -147,7 +152,12 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
         trace: TraceMode::Maps,
         ..plan.build.clone()
     };
-    let host = runner::build(module, RunOn::Host, &host_cfg)?.run(&data.inputs, data.input_len, Some(data.output_len), &host_cfg)?;
+    let host = runner::build(module, RunOn::Host, &host_cfg)?.run(
+        &data.inputs,
+        data.input_len,
+        Some(data.output_len),
+        &host_cfg,
+    )?;
 
     let mut report = CheckReport {
         model: data.model.clone(),
@@ -161,44 +171,86 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
 
     let mut emulated_outputs = None;
     if plan.on != RunOn::Host {
-        let cfg = BuildConfig {
+        // Two firmware builds: the plain one links only `run`, as an
+        // application would, and gives the per-inference count, the sizes
+        // and the stack; the traced one links `run_traced` too and gives
+        // the per-step split. Their code differs (the compiler specialises
+        // `run` differently when `run_traced` is also used), so the split is
+        // reported with its own total.
+        let plain_cfg = BuildConfig {
+            trace: TraceMode::Off,
+            ..plan.build.clone()
+        };
+        let fw = runner::build(module, plan.on, &plain_cfg)?;
+        let out = fw.run(
+            &data.inputs,
+            data.input_len,
+            Some(data.output_len),
+            &plain_cfg,
+        )?;
+        let cal = icount::calibrate(plan.on, &plain_cfg)?;
+        let counts = out.counts.clone().unwrap_or_default();
+        let per: Vec<u64> = counts
+            .run_ticks
+            .iter()
+            .map(|&t| cal.instructions(t))
+            .collect();
+        let mean = per.iter().sum::<u64>() / per.len().max(1) as u64;
+        let macs: u64 = data.steps.iter().map(|s| s.macs).sum();
+        let sections = size::elf_sizes(&fw.binary)?;
+        let share = size::module_share(&fw.binary)?;
+        report.sizes = Some(size::size_report(
+            sections,
+            share,
+            counts.stack_bytes,
+            plan.budget,
+        ));
+
+        let traced_cfg = BuildConfig {
             trace: TraceMode::Counts,
             ..plan.build.clone()
         };
-        let fw = runner::build(module, plan.on, &cfg)?;
-        let out = fw.run(&data.inputs, data.input_len, Some(data.output_len), &cfg)?;
-        let cal = icount::calibrate(plan.on, &cfg)?;
-        let counts = out.counts.clone().unwrap_or_default();
-        let per: Vec<u64> = counts.run_ticks.iter().map(|&t| cal.instructions(t)).collect();
-        let mean = per.iter().sum::<u64>() / per.len().max(1) as u64;
-        let macs: u64 = data.steps.iter().map(|s| s.macs).sum();
+        let tfw = runner::build(module, plan.on, &traced_cfg)?;
+        let tout = tfw.run(
+            &data.inputs,
+            data.input_len,
+            Some(data.output_len),
+            &traced_cfg,
+        )?;
+        let tcounts = tout.counts.unwrap_or_default();
+        let images = tcounts.step_ticks.len().max(1) as u64;
+        let steps_n = tcounts.step_ticks.iter().map(Vec::len).max().unwrap_or(0);
+        let step_instr: Vec<u64> = (0..steps_n)
+            .map(|s| {
+                let total: u64 = tcounts
+                    .step_ticks
+                    .iter()
+                    .map(|v| v.get(s).copied().unwrap_or(0))
+                    .sum();
+                cal.instructions(total) / images
+            })
+            .collect();
+        let traced_mean = cal.instructions(tcounts.traced_ticks.iter().sum::<u64>()) / images;
         report.instructions = Some(InstructionFigures {
             per_inference_mean: mean,
             per_inference_min: per.iter().copied().min().unwrap_or(0),
             per_inference_max: per.iter().copied().max().unwrap_or(0),
             macs,
             per_mac: (macs > 0).then(|| mean as f64 / macs as f64),
+            traced_per_inference_mean: Some(traced_mean),
             calibration: cal.clone(),
         });
-        let steps_n = counts.step_ticks.iter().map(Vec::len).max().unwrap_or(0);
-        let step_instr: Vec<u64> = (0..steps_n)
-            .map(|s| {
-                let total: u64 = counts.step_ticks.iter().map(|v| v.get(s).copied().unwrap_or(0)).sum();
-                cal.instructions(total) / counts.step_ticks.len().max(1) as u64
-            })
-            .collect();
         report.layers = layer_rows(data, &step_instr);
-        let sections = size::elf_sizes(&fw.binary)?;
-        let share = size::module_share(&fw.binary)?;
-        report.sizes = Some(size::size_report(sections, share, counts.stack_bytes, plan.budget));
-        let host_vs_emulated = compare::compare_outputs(&out.outputs, &host.outputs);
-        if !host_vs_emulated.identical() {
-            report.failures.push(format!(
-                "host vs {}: {} of {} images differ (same module, different machine: a bug)",
-                plan.on,
-                host_vs_emulated.mismatched_images.len(),
-                host_vs_emulated.images
-            ));
+        for (what, outputs) in [("", &out.outputs), (" (traced build)", &tout.outputs)] {
+            let d = compare::compare_outputs(outputs, &host.outputs);
+            if !d.identical() {
+                report.failures.push(format!(
+                    "host vs {}{what}: {} of {} images differ (same module, different machine: a bug)",
+                    plan.on,
+                    d.mismatched_images.len(),
+                    d.images
+                ));
+            }
         }
         emulated_outputs = Some(out.outputs);
     } else {
@@ -215,10 +267,20 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
     }
     let module_out = emulated_outputs.as_ref().unwrap_or(&host.outputs);
     if let Some(f) = &data.float_outputs {
-        report.float = Some(compare::compare_float(module_out, data.output_scale, data.output_zero_point, f));
+        report.float = Some(compare::compare_float(
+            module_out,
+            data.output_scale,
+            data.output_zero_point,
+            f,
+        ));
     }
     if let (Some(labels), Some(f)) = (&data.labels, &data.float_outputs) {
-        report.accuracy = Some(accuracy_of(module_out, f, labels, data.class_names.len().max(data.output_len)));
+        report.accuracy = Some(accuracy_of(
+            module_out,
+            f,
+            labels,
+            data.class_names.len().max(data.output_len),
+        ));
     }
     let mut fails = compare::check_thresholds(
         report.bit_exact.as_ref(),
@@ -282,13 +344,21 @@ mod tests {
                 data: vec![3],
             },
         ];
-        let v = sqnr_per_step(&t, 3, &[(0.1, 0), (1.0, 0), (1.0, 0)], |_, step| match step {
-            0 => Some(vec![1.0, -1.0]),
-            1 => Some(vec![3.0]),
-            _ => None,
-        });
+        let v = sqnr_per_step(
+            &t,
+            3,
+            &[(0.1, 0), (1.0, 0), (1.0, 0)],
+            |_, step| match step {
+                0 => Some(vec![1.0, -1.0]),
+                1 => Some(vec![3.0]),
+                _ => None,
+            },
+        );
         // step 0: signal 4, noise 0.02 -> 23.01 dB
-        assert!((v[0].unwrap() - 10.0 * (4.0f64 / 0.02).log10()).abs() < 1e-3, "{v:?}");
+        assert!(
+            (v[0].unwrap() - 10.0 * (4.0f64 / 0.02).log10()).abs() < 1e-3,
+            "{v:?}"
+        );
         assert_eq!(v[1], Some(f64::INFINITY));
         assert_eq!(v[2], None);
     }

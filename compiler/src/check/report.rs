@@ -44,6 +44,9 @@ pub struct InstructionFigures {
     pub macs: u64,
     /// `per_inference_mean / macs`.
     pub per_mac: Option<f64>,
+    /// Mean instructions of `run_traced` (hook time excluded) in the
+    /// traced build the per-layer figures come from.
+    pub traced_per_inference_mean: Option<u64>,
     /// The calibration used.
     pub calibration: Calibration,
 }
@@ -232,16 +235,45 @@ pub fn markdown(r: &CheckReport) -> String {
             "These are instructions executed by the emulated core (QEMU {}, `-icount shift=0`), not cycles: QEMU does not model pipelines, caches or wait states. SysTick ticks are converted with a measured {:.3} instructions per tick (resolution ±1 tick per measurement).\n",
             i.calibration.machine, i.calibration.instructions_per_tick
         );
+        if let Some(t) = i.traced_per_inference_mean {
+            let _ = writeln!(
+                s,
+                "The per-layer column comes from a second build that also links `run_traced` (the hook's own time excluded); its code is specialised differently, so the layers add up to its total of {} instructions per inference rather than to the figure above.\n",
+                thousands(t)
+            );
+        }
     }
     if let Some(z) = &r.sizes {
         let _ = writeln!(s, "## Sizes (firmware ELF)\n");
         let _ = writeln!(s, "| figure | bytes | budget |\n|---|---|---|");
         let b = |v: Option<u64>| v.map(thousands).unwrap_or_else(|| "–".into());
-        let _ = writeln!(s, "| flash (vectors + .text + .rodata + .data image) | {} | {} |", thousands(z.flash), b(z.budget.flash));
-        let _ = writeln!(s, "| RAM (.data + .bss + measured stack) | {} | {} |", thousands(z.ram), b(z.budget.ram));
-        let _ = writeln!(s, "| measured stack high-water mark | {} | |", b(z.stack_used));
-        let _ = writeln!(s, "| module code + constants (by symbol) | {} | |", thousands(z.module.flash));
-        let _ = writeln!(s, "| module scratch + input + output | {} | |\n", thousands(z.module.ram));
+        let _ = writeln!(
+            s,
+            "| flash (vectors + .text + .rodata + .data image) | {} | {} |",
+            thousands(z.flash),
+            b(z.budget.flash)
+        );
+        let _ = writeln!(
+            s,
+            "| RAM (.data + .bss + measured stack) | {} | {} |",
+            thousands(z.ram),
+            b(z.budget.ram)
+        );
+        let _ = writeln!(
+            s,
+            "| measured stack high-water mark | {} | |",
+            b(z.stack_used)
+        );
+        let _ = writeln!(
+            s,
+            "| module code + constants (by symbol) | {} | |",
+            thousands(z.module.flash)
+        );
+        let _ = writeln!(
+            s,
+            "| module scratch + input + output | {} | |\n",
+            thousands(z.module.ram)
+        );
         let _ = writeln!(
             s,
             "The ELF is the whole check runner (startup code, semihosting I/O and timing included), so it is an upper bound for the module in an application.\n"
@@ -265,9 +297,16 @@ fn plot_err(e: impl std::fmt::Display) -> CheckError {
 pub fn sqnr_svg(layers: &[LayerFigures]) -> Result<String> {
     let vals: Vec<(String, f64, bool)> = layers
         .iter()
-        .filter_map(|l| l.sqnr_db.map(|v| (format!("{} {}", l.step, l.name), v, v.is_finite())))
+        .filter_map(|l| {
+            l.sqnr_db
+                .map(|v| (format!("{} {}", l.step, l.name), v, v.is_finite()))
+        })
         .collect();
-    let finite_max = vals.iter().filter(|v| v.2).map(|v| v.1).fold(0.0f64, f64::max);
+    let finite_max = vals
+        .iter()
+        .filter(|v| v.2)
+        .map(|v| v.1)
+        .fold(0.0f64, f64::max);
     let top = (finite_max * 1.15).max(10.0);
     let mut svg = String::new();
     {
@@ -287,7 +326,11 @@ pub fn sqnr_svg(layers: &[LayerFigures]) -> Result<String> {
             .configure_mesh()
             .disable_x_mesh()
             .x_labels(n)
-            .x_label_style(("sans-serif", 11).into_font().transform(FontTransform::Rotate90))
+            .x_label_style(
+                ("sans-serif", 11)
+                    .into_font()
+                    .transform(FontTransform::Rotate90),
+            )
             .x_label_formatter(&|v| match v {
                 SegmentValue::CenterOf(i) => names.get(*i).cloned().unwrap_or_default(),
                 _ => String::new(),
@@ -300,7 +343,11 @@ pub fn sqnr_svg(layers: &[LayerFigures]) -> Result<String> {
                 Histogram::vertical(&chart)
                     .style(RGBColor(60, 110, 180).filled())
                     .margin(6)
-                    .data(vals.iter().enumerate().map(|(i, v)| (i, if v.2 { v.1.max(0.0) } else { top })))
+                    .data(
+                        vals.iter()
+                            .enumerate()
+                            .map(|(i, v)| (i, if v.2 { v.1.max(0.0) } else { top })),
+                    ),
             )
             .map_err(plot_err)?;
         root.present().map_err(plot_err)?;
@@ -316,7 +363,8 @@ pub fn confusion_svg(title: &str, m: &[Vec<u64>], labels: &[String]) -> Result<S
     let side = (cell * n) as u32 + 160;
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (side.max(360), side.max(360))).into_drawing_area();
+        let root =
+            SVGBackend::with_string(&mut svg, (side.max(360), side.max(360))).into_drawing_area();
         root.fill(&WHITE).map_err(plot_err)?;
         let mut chart = ChartBuilder::on(&root)
             .caption(title, ("sans-serif", 18))
@@ -334,18 +382,28 @@ pub fn confusion_svg(title: &str, m: &[Vec<u64>], labels: &[String]) -> Result<S
             .x_desc("predicted")
             .y_desc("true")
             .x_label_formatter(&|&i| if i < n { name(i) } else { String::new() })
-            .y_label_formatter(&|&i| if i < n { name(n - 1 - i) } else { String::new() })
+            .y_label_formatter(&|&i| {
+                if i < n {
+                    name(n - 1 - i)
+                } else {
+                    String::new()
+                }
+            })
             .draw()
             .map_err(plot_err)?;
-        let cells = m.iter().enumerate().flat_map(|(t, row)| {
-            row.iter().enumerate().map(move |(p, &v)| (t, p, v))
-        });
+        let cells = m
+            .iter()
+            .enumerate()
+            .flat_map(|(t, row)| row.iter().enumerate().map(move |(p, &v)| (t, p, v)));
         chart
             .draw_series(cells.clone().map(|(t, p, v)| {
                 let f = v as f64 / max as f64;
                 let shade = (255.0 * (1.0 - 0.85 * f)) as u8;
                 let y = n - 1 - t;
-                Rectangle::new([(p, y), (p + 1, y + 1)], RGBColor(shade, shade, 255).filled())
+                Rectangle::new(
+                    [(p, y), (p + 1, y + 1)],
+                    RGBColor(shade, shade, 255).filled(),
+                )
             }))
             .map_err(plot_err)?;
         if n <= 20 {
@@ -364,17 +422,23 @@ pub fn confusion_svg(title: &str, m: &[Vec<u64>], labels: &[String]) -> Result<S
 /// Writes `report.md`, `report.json` and the charts into `dir`, replacing
 /// a previous report there as a whole.
 pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
-    let parent = dir.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."));
-    std::fs::create_dir_all(parent).map_err(|e| CheckError::io(format!("creating {}", parent.display()), e))?;
+    let parent = dir
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    std::fs::create_dir_all(parent)
+        .map_err(|e| CheckError::io(format!("creating {}", parent.display()), e))?;
     let base = dir
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_else(|| "report".into());
     let stage = parent.join(format!(".{base}.staging-{}", unique_suffix()));
     let result = (|| -> Result<()> {
-        std::fs::create_dir_all(&stage).map_err(|e| CheckError::io(format!("creating {}", stage.display()), e))?;
+        std::fs::create_dir_all(&stage)
+            .map_err(|e| CheckError::io(format!("creating {}", stage.display()), e))?;
         let put = |name: &str, bytes: &[u8]| {
-            std::fs::write(stage.join(name), bytes).map_err(|e| CheckError::io(format!("writing {name}"), e))
+            std::fs::write(stage.join(name), bytes)
+                .map_err(|e| CheckError::io(format!("writing {name}"), e))
         };
         put("report.md", markdown(r).as_bytes())?;
         let json = serde_json::to_string_pretty(r).map_err(|e| CheckError::Format {
@@ -388,23 +452,37 @@ pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
         if let Some(a) = &r.accuracy {
             put(
                 "confusion_float.svg",
-                confusion_svg("Float reference: true vs predicted", &a.confusion_float, &r.labels)?.as_bytes(),
+                confusion_svg(
+                    "Float reference: true vs predicted",
+                    &a.confusion_float,
+                    &r.labels,
+                )?
+                .as_bytes(),
             )?;
             put(
                 "confusion_int8.svg",
-                confusion_svg("int8 module: true vs predicted", &a.confusion_int8, &r.labels)?.as_bytes(),
+                confusion_svg(
+                    "int8 module: true vs predicted",
+                    &a.confusion_int8,
+                    &r.labels,
+                )?
+                .as_bytes(),
             )?;
         }
         let old = parent.join(format!(".{base}.old-{}", unique_suffix()));
         let had_old = dir.exists();
         if had_old {
-            std::fs::rename(dir, &old).map_err(|e| CheckError::io(format!("moving aside {}", dir.display()), e))?;
+            std::fs::rename(dir, &old)
+                .map_err(|e| CheckError::io(format!("moving aside {}", dir.display()), e))?;
         }
         if let Err(e) = std::fs::rename(&stage, dir) {
             if had_old {
                 let _ = std::fs::rename(&old, dir);
             }
-            return Err(CheckError::io(format!("renaming the report into {}", dir.display()), e));
+            return Err(CheckError::io(
+                format!("renaming the report into {}", dir.display()),
+                e,
+            ));
         }
         if had_old {
             let _ = std::fs::remove_dir_all(&old);
@@ -449,7 +527,9 @@ mod tests {
                     instructions: None,
                 },
             ],
-            failures: vec!["accuracy drop: 25.00 pp (float 100.00% → int8 75.00%) exceeds --max-drop 0".into()],
+            failures: vec![
+                "accuracy drop: 25.00 pp (float 100.00% → int8 75.00%) exceeds --max-drop 0".into(),
+            ],
             ..CheckReport::default()
         }
     }
@@ -460,8 +540,14 @@ mod tests {
         assert!(md.contains("**Result: FAIL.**"), "{md}");
         assert!(md.contains("accuracy drop: 25.00 pp"));
         assert!(md.contains("| 100.00% | 75.00% | 25.00 pp |"), "{md}");
-        assert!(md.contains("| 0 | conv1 | conv2d | 2 304 | 31.5 | 118 720 | 51.53 |"), "{md}");
-        assert!(md.contains("| 1 | pool1 | max_pool | 0 | exact | – | – |"), "{md}");
+        assert!(
+            md.contains("| 0 | conv1 | conv2d | 2 304 | 31.5 | 118 720 | 51.53 |"),
+            "{md}"
+        );
+        assert!(
+            md.contains("| 1 | pool1 | max_pool | 0 | exact | – | – |"),
+            "{md}"
+        );
         assert!(md.contains("Bit-identical on all 1 images."));
     }
 
@@ -472,14 +558,26 @@ mod tests {
         std::fs::create_dir_all(&dir).unwrap();
         std::fs::write(dir.join("stale.txt"), "old").unwrap();
         write_report(&dir, &sample()).unwrap();
-        assert!(!dir.join("stale.txt").exists(), "old report replaced as a whole");
-        let json: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(dir.join("report.json")).unwrap()).unwrap();
+        assert!(
+            !dir.join("stale.txt").exists(),
+            "old report replaced as a whole"
+        );
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.join("report.json")).unwrap())
+                .unwrap();
         assert_eq!(json["accuracy"]["confusion_int8"][2][1], 1);
         let sqnr = std::fs::read_to_string(dir.join("sqnr.svg")).unwrap();
-        assert!(sqnr.starts_with("<svg") && sqnr.contains("0 conv1"), "{}", &sqnr[..200.min(sqnr.len())]);
+        assert!(
+            sqnr.starts_with("<svg") && sqnr.contains("0 conv1"),
+            "{}",
+            &sqnr[..200.min(sqnr.len())]
+        );
         let conf = std::fs::read_to_string(dir.join("confusion_int8.svg")).unwrap();
         assert!(conf.contains("owl") && conf.contains("<rect"));
-        let leftovers: Vec<_> = std::fs::read_dir(&root).unwrap().map(|e| e.unwrap().file_name()).collect();
+        let leftovers: Vec<_> = std::fs::read_dir(&root)
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
         assert_eq!(leftovers.len(), 1, "{leftovers:?}");
         std::fs::remove_dir_all(&root).unwrap();
     }

@@ -201,7 +201,8 @@ pub(crate) fn write_if_changed(path: &Path, bytes: &[u8]) -> Result<()> {
         return Ok(());
     }
     let dir = path.parent().unwrap_or(Path::new("."));
-    std::fs::create_dir_all(dir).map_err(|e| CheckError::io(format!("creating {}", dir.display()), e))?;
+    std::fs::create_dir_all(dir)
+        .map_err(|e| CheckError::io(format!("creating {}", dir.display()), e))?;
     let tmp = dir.join(format!(".write-{}.tmp", unique_suffix()));
     std::fs::write(&tmp, bytes)
         .and_then(|_| std::fs::rename(&tmp, path))
@@ -251,7 +252,10 @@ fn main() {
 "#;
 
 fn toml_path(p: &Path) -> String {
-    p.display().to_string().replace('\\', "\\\\").replace('"', "\\\"")
+    p.display()
+        .to_string()
+        .replace('\\', "\\\\")
+        .replace('"', "\\\"")
 }
 
 /// The files of a runner project (without the module, which
@@ -270,16 +274,26 @@ pub(crate) fn runner_files(kind: Kind, module_name: &str, cfg: &BuildConfig) -> 
         "cortex-m = {{ version = \"{CORTEX_M}\", features = [\"critical-section-single-core\"] }}\ncortex-m-rt = \"{CORTEX_M_RT}\"\ncortex-m-semihosting = \"{CORTEX_M_SEMIHOSTING}\"\n"
     );
     let (main, deps, board) = match kind {
-        Kind::Host => (
-            HOST_TEMPLATE.replace("@MODULE@", module_name),
-            rt,
-            None,
-        ),
+        Kind::Host => (HOST_TEMPLATE.replace("@MODULE@", module_name), rt, None),
         Kind::Firmware(on) => (
             FIRMWARE_TEMPLATE
                 .replace("@MODULE@", module_name)
-                .replace("@TRACE@", if cfg.trace == TraceMode::Off { "false" } else { "true" })
-                .replace("@TRACE_MAPS@", if cfg.trace == TraceMode::Maps { "true" } else { "false" }),
+                .replace(
+                    "@TRACE@",
+                    if cfg.trace == TraceMode::Off {
+                        "false"
+                    } else {
+                        "true"
+                    },
+                )
+                .replace(
+                    "@TRACE_MAPS@",
+                    if cfg.trace == TraceMode::Maps {
+                        "true"
+                    } else {
+                        "false"
+                    },
+                ),
             format!("{rt}{fw_deps}"),
             on.board(),
         ),
@@ -329,13 +343,16 @@ pub(crate) fn project_files(
     let mut files = runner_files(kind, module_name, cfg);
     if let Some(m) = module {
         for src in std::iter::once(&m.source).chain(&m.extra) {
-            let bytes = std::fs::read(src).map_err(|e| CheckError::io(format!("reading {}", src.display()), e))?;
+            let bytes = std::fs::read(src)
+                .map_err(|e| CheckError::io(format!("reading {}", src.display()), e))?;
             let name = src
                 .file_name()
                 .map(|n| n.to_string_lossy().into_owned())
                 .unwrap_or_default();
             if name == "main.rs" {
-                return Err(CheckError::Module("a module may not be called `main`".into()));
+                return Err(CheckError::Module(
+                    "a module may not be called `main`".into(),
+                ));
             }
             files.push(ProjectFile {
                 path: format!("src/{name}"),
@@ -350,7 +367,11 @@ pub(crate) fn project_files(
         parts.push(&f.bytes);
     }
     let hash = fnv1a(&parts);
-    let name = format!("ingot-runner-{}-{:012x}", kind_tag(kind), hash & 0xffff_ffff_ffff);
+    let name = format!(
+        "ingot-runner-{}-{:012x}",
+        kind_tag(kind),
+        hash & 0xffff_ffff_ffff
+    );
     for f in &mut files {
         if f.path == "Cargo.toml" {
             f.bytes = String::from_utf8_lossy(&f.bytes)
@@ -364,7 +385,10 @@ pub(crate) fn project_files(
 /// The sysroot of the `rustc` cargo will use.
 fn rustc_sysroot() -> Option<PathBuf> {
     let rustc = std::env::var_os("RUSTC").unwrap_or_else(|| "rustc".into());
-    let out = Command::new(rustc).args(["--print", "sysroot"]).output().ok()?;
+    let out = Command::new(rustc)
+        .args(["--print", "sysroot"])
+        .output()
+        .ok()?;
     out.status
         .success()
         .then(|| PathBuf::from(String::from_utf8_lossy(&out.stdout).trim()))
@@ -429,7 +453,11 @@ fn tail(s: &str, lines: usize) -> String {
 }
 
 /// Writes and builds a runner project; returns the binary.
-pub(crate) fn build_project(kind: Kind, module: Option<&ModuleFiles>, cfg: &BuildConfig) -> Result<Runner> {
+pub(crate) fn build_project(
+    kind: Kind,
+    module: Option<&ModuleFiles>,
+    cfg: &BuildConfig,
+) -> Result<Runner> {
     let on = match kind {
         Kind::Host => RunOn::Host,
         Kind::Firmware(on) | Kind::Calibration(on) => on,
@@ -505,7 +533,8 @@ pub(crate) struct RunDir(pub PathBuf);
 impl RunDir {
     pub(crate) fn new(cfg: &BuildConfig) -> Result<RunDir> {
         let d = cfg.build_dir.join("runs").join(unique_suffix());
-        std::fs::create_dir_all(&d).map_err(|e| CheckError::io(format!("creating {}", d.display()), e))?;
+        std::fs::create_dir_all(&d)
+            .map_err(|e| CheckError::io(format!("creating {}", d.display()), e))?;
         Ok(RunDir(d))
     }
 }
@@ -518,10 +547,17 @@ impl Drop for RunDir {
 
 /// Runs `cmd` in `dir` with a wall-clock limit; stdout and stderr go to
 /// files there (no pipe can fill up). Returns (success, console text).
-pub(crate) fn run_with_timeout(mut cmd: Command, dir: &Path, timeout: Duration, what: &str) -> Result<(bool, String)> {
+pub(crate) fn run_with_timeout(
+    mut cmd: Command,
+    dir: &Path,
+    timeout: Duration,
+    what: &str,
+) -> Result<(bool, String)> {
     let out_path = dir.join("console.out");
     let err_path = dir.join("console.err");
-    let open = |p: &Path| std::fs::File::create(p).map_err(|e| CheckError::io(format!("creating {}", p.display()), e));
+    let open = |p: &Path| {
+        std::fs::File::create(p).map_err(|e| CheckError::io(format!("creating {}", p.display()), e))
+    };
     let mut child = cmd
         .current_dir(dir)
         .stdin(Stdio::null())
@@ -571,7 +607,13 @@ pub fn qemu_command(qemu: &Path, board: &Board, elf: &Path) -> Command {
 
 impl Runner {
     /// Runs every input through the module.
-    pub fn run(&self, inputs: &[Vec<i8>], input_len: usize, output_len: Option<usize>, cfg: &BuildConfig) -> Result<RunOutput> {
+    pub fn run(
+        &self,
+        inputs: &[Vec<i8>],
+        input_len: usize,
+        output_len: Option<usize>,
+        cfg: &BuildConfig,
+    ) -> Result<RunOutput> {
         let dir = RunDir::new(cfg)?;
         io::write_inputs(&dir.0.join("input.bin"), input_len, inputs)?;
         let start = Instant::now();
@@ -585,7 +627,12 @@ impl Runner {
                 }
                 run_with_timeout(cmd, &dir.0, cfg.timeout, &what)?
             }
-            Some(board) => run_with_timeout(qemu_command(&cfg.qemu, &board, &self.binary), &dir.0, cfg.timeout, &what)?,
+            Some(board) => run_with_timeout(
+                qemu_command(&cfg.qemu, &board, &self.binary),
+                &dir.0,
+                cfg.timeout,
+                &what,
+            )?,
         };
         let wall = start.elapsed();
         if !ok {
@@ -609,8 +656,12 @@ impl Runner {
         };
         let counts = if self.on.board().is_some() {
             let p = dir.0.join("counts.bin");
-            let bytes = std::fs::read(&p).map_err(|e| CheckError::io(format!("reading {}", p.display()), e))?;
-            Some(Counts::from_records(&io::decode_counts(&bytes)?, inputs.len()))
+            let bytes = std::fs::read(&p)
+                .map_err(|e| CheckError::io(format!("reading {}", p.display()), e))?;
+            Some(Counts::from_records(
+                &io::decode_counts(&bytes)?,
+                inputs.len(),
+            ))
         } else {
             None
         };
@@ -668,17 +719,30 @@ mod tests {
         let (h, fh) = project_files(Kind::Host, Some(&m2), &cfg).unwrap();
         assert!(h.starts_with("ingot-runner-host-"));
         assert!(!fh.iter().any(|f| f.path == "memory.x"));
-        assert_eq!(module_const_usize("pub const INPUT_LEN: usize = 1_024;", "INPUT_LEN"), Some(1024));
-        assert_eq!(module_const_usize("pub const INPUT_LEN: usize = 3;", "OUTPUT_LEN"), None);
+        assert_eq!(
+            module_const_usize("pub const INPUT_LEN: usize = 1_024;", "INPUT_LEN"),
+            Some(1024)
+        );
+        assert_eq!(
+            module_const_usize("pub const INPUT_LEN: usize = 3;", "OUTPUT_LEN"),
+            None
+        );
         std::fs::remove_dir_all(&dir).unwrap();
     }
 
     #[test]
     fn missing_target_and_emulator_name_the_install_command() {
         let e = require_rust_target("thumbv99-none-nonsense").unwrap_err();
-        assert!(e.to_string().contains("rustup target add thumbv99-none-nonsense"), "{e}");
+        assert!(
+            e.to_string()
+                .contains("rustup target add thumbv99-none-nonsense"),
+            "{e}"
+        );
         let e = require_qemu(Path::new("/nonexistent/qemu-system-arm")).unwrap_err();
-        assert!(e.to_string().contains("apt-get install qemu-system-arm"), "{e}");
+        assert!(
+            e.to_string().contains("apt-get install qemu-system-arm"),
+            "{e}"
+        );
     }
 
     #[test]

@@ -130,7 +130,9 @@ pub fn parse_nm(text: &str) -> ModuleShare {
         let Ok(size) = size.parse::<u64>() else {
             continue;
         };
-        let in_module = name.contains("::model::") || name.starts_with("ingot_rt::") || name.contains("<ingot_rt::");
+        let in_module = name.contains("::model::")
+            || name.starts_with("ingot_rt::")
+            || name.contains("<ingot_rt::");
         match kind {
             "t" | "T" | "r" | "R" if in_module => share.flash += size,
             "b" | "B" | "d" | "D"
@@ -184,7 +186,12 @@ pub struct SizeReport {
 }
 
 /// Builds the size report.
-pub fn size_report(sections: ElfSizes, module: ModuleShare, stack_used: Option<u64>, budget: Budget) -> SizeReport {
+pub fn size_report(
+    sections: ElfSizes,
+    module: ModuleShare,
+    stack_used: Option<u64>,
+    budget: Budget,
+) -> SizeReport {
     let flash = sections.flash();
     let ram = sections.static_ram() + stack_used.unwrap_or(0);
     let mut over = Vec::new();
@@ -195,7 +202,9 @@ pub fn size_report(sections: ElfSizes, module: ModuleShare, stack_used: Option<u
     }
     if let Some(b) = budget.ram {
         if ram > b {
-            over.push(format!("RAM {ram} B (static + measured stack) exceeds the budget of {b} B"));
+            over.push(format!(
+                "RAM {ram} B (static + measured stack) exceeds the budget of {b} B"
+            ));
         }
     }
     SizeReport {
@@ -237,7 +246,11 @@ mod tests {
         );
         assert_eq!(r.ram, 2016);
         assert_eq!(r.over_budget.len(), 1);
-        assert!(r.over_budget[0].starts_with("flash 10740 B"), "{:?}", r.over_budget);
+        assert!(
+            r.over_budget[0].starts_with("flash 10740 B"),
+            "{:?}",
+            r.over_budget
+        );
         let ok = size_report(s, ModuleShare::default(), None, Budget::default());
         assert!(ok.over_budget.is_empty());
     }

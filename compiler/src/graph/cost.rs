@@ -66,9 +66,10 @@ pub fn layer_cost(g: &Graph, id: LayerId) -> LayerCost {
             other_ops: in_shape.map_or(0, |s| s.len() as u64),
             ..LayerCost::default()
         },
-        Op::Relu | Op::Relu6 | Op::Add | Op::Softmax => {
-            LayerCost { other_ops: out_len, ..LayerCost::default() }
-        }
+        Op::Relu | Op::Relu6 | Op::Add | Op::Softmax => LayerCost {
+            other_ops: out_len,
+            ..LayerCost::default()
+        },
         Op::Flatten | Op::Concat | Op::Dropout => LayerCost::default(),
     }
 }

@@ -2,4 +2,7 @@
 
 pub mod ir;
 
-pub use ir::{ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId, QParams, QPool, QStep, StepId};
+pub use ir::{
+    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
+    QParams, QPool, QStep, StepId,
+};
