@@ -18,6 +18,8 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
+    /// Show a graph's layers, shapes, parameters and multiply-accumulates.
+    Inspect(cmd::inspect::Args),
     /// Build a generated module, run it on the host or an emulated Cortex-M
     /// core, and compare it with the integer simulator and the float model.
     Check(cmd::check::Args),
@@ -26,6 +28,7 @@ enum Command {
 fn main() {
     let cli = Cli::parse();
     let result = match cli.command {
+        Command::Inspect(args) => cmd::inspect::run(&args),
         Command::Check(args) => cmd::check::run(&args),
     };
     if let Err(e) = result {

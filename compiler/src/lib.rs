@@ -8,7 +8,9 @@ pub mod calibrate;
 pub mod check;
 pub mod frontend;
 pub mod graph;
+pub mod inspect;
 pub mod lower;
+pub mod reference;
 pub mod util;
 pub mod zoo;
 

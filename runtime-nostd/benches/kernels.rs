@@ -69,7 +69,7 @@ fn conv_case(
         input_zp: -3,
         out: OutputQuant::relu(-128),
     };
-    let mut patch = vec![0i8; conv_patch_len(k, k, cin)];
+    let mut patch = vec![0i16; conv_patch_len(k, k, cin)];
     let mul: Vec<i32> = (0..cin).map(|i| 900 + i as i32).collect();
     let addv: Vec<i32> = (0..cin).map(|i| i as i32 * 100 - 800).collect();
     let macs = (oh * ow * cout * k * k * cpg) as u64;

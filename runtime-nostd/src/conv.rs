@@ -1,7 +1,7 @@
 //! 2-D convolution over HWC maps: im2col of one output pixel into the
 //! widened patch, then contiguous dot products per output channel.
 
-use crate::dot::{dot2_wide, dot_wide, fill_wide, put_wide, widen_into};
+use crate::dot::{dot2_wide, dot4_wide, dot_wide, tail_wide, widen_into};
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 
 /// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
@@ -148,13 +148,13 @@ pub struct ConvParams {
     pub out: OutputQuant,
 }
 
-/// Bytes of `patch` scratch a convolution needs: `2 · kh · kw · C_in`.
+/// Length (in `i16` elements) of the `patch` scratch a convolution needs:
+/// `kh · kw · C_in`.
 ///
 /// The patch holds one output pixel's receptive field, every element
-/// widened to a little-endian 16-bit value (two bytes), laid out as
-/// `[group][ky][kx][channel within group]`.
+/// widened to `i16`, laid out as `[group][ky][kx][channel within group]`.
 pub const fn conv_patch_len(kh: usize, kw: usize, c_in: usize) -> usize {
-    2 * kh * kw * c_in
+    kh * kw * c_in
 }
 
 /// Checks shared by the convolution paths; returns `(taps, cpg, opg)`.
@@ -242,7 +242,7 @@ pub fn conv2d(
     requant: &[Requant],
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
-    patch: &mut [i8],
+    patch: &mut [i16],
 ) -> Result<(), Error> {
     let (taps, cpg, opg) = check_conv(
         arena.len(),
@@ -257,7 +257,7 @@ pub fn conv2d(
     )?;
     let w = &p.window;
     let seg = taps * cpg; // elements per group segment and per weight row
-    let patch = &mut patch[..2 * taps * input.c];
+    let patch = &mut patch[..taps * input.c];
     let weights = &weights[..output.c * seg];
     let pointwise = w.kh == 1
         && w.kw == 1
@@ -267,31 +267,40 @@ pub fn conv2d(
         && p.groups == 1
         && transform.is_none();
 
+    // Depthwise (one input channel per group): gather the window tap-major
+    // like a dense convolution (`patch[t][c]`, whole kernel rows copied at
+    // once), then each output channel walks its input channel's column.
+    let depthwise = cpg == 1 && p.groups > 1;
     for oy in 0..output.h {
         for ox in 0..output.w {
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
                 let src = input.pixel(oy, ox);
                 widen_into(patch, &arena[src..src + input.c]);
+            } else if depthwise {
+                gather(arena, &input, w, p, transform, 1, oy, ox, input.c, seg * input.c, patch);
             } else {
-                gather(arena, &input, w, p, transform, oy, ox, cpg, seg, patch);
+                gather(arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch);
             }
             let dst = output.pixel(oy, ox);
             let out = &mut arena[dst..dst + output.c];
-            if opg == 1 && p.groups > 1 {
-                // Depthwise without multiplier: output o reads segment o.
-                for ((((o, row), xw), &b), rq) in out
+            if depthwise {
+                for (o, (((y, row), &b), rq)) in out
                     .iter_mut()
-                    .zip(weights.chunks_exact(seg))
-                    .zip(patch.chunks_exact(2 * seg))
+                    .zip(weights.chunks_exact(taps))
                     .zip(bias)
                     .zip(requant)
+                    .enumerate()
                 {
-                    let acc = b.wrapping_add(dot_wide(xw, row));
-                    *o = rq.apply(acc, p.out);
+                    let col = &patch[o / opg..];
+                    let mut acc = b;
+                    for (x, &wv) in col.iter().step_by(input.c).zip(row) {
+                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+                    }
+                    *y = rq.apply(acc, p.out);
                 }
             } else {
-                for (g, xw) in patch.chunks_exact(2 * seg).enumerate() {
+                for (g, xw) in patch.chunks_exact(seg).enumerate() {
                     let o0 = g * opg;
                     channel_rows(
                         xw,
@@ -308,37 +317,74 @@ pub fn conv2d(
     Ok(())
 }
 
-/// Output channels of one group for one pixel, two weight rows per patch
-/// pass.
+/// Output channels of one group for one pixel: four (then two, then one)
+/// weight rows per pass over the patch.
 #[inline]
 fn channel_rows(
-    xw: &[i8],
+    xw: &[i16],
     weights: &[i8],
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
 ) {
-    let seg = xw.len() / 2;
+    let seg = xw.len();
     if seg == 0 {
         return;
     }
-    let mut rows = weights.chunks_exact(2 * seg);
-    let mut outs = out.chunks_exact_mut(2);
-    let mut k = 0;
-    for (pair, o) in (&mut rows).zip(&mut outs) {
-        let (w0, w1) = pair.split_at(seg);
-        let acc = dot2_wide(xw, w0, w1);
-        o[0] = requant[k].apply(bias[k].wrapping_add(acc[0]), out_q);
-        o[1] = requant[k + 1].apply(bias[k + 1].wrapping_add(acc[1]), out_q);
-        k += 2;
+    if seg < 16 {
+        // Short windows (first layer on a gray image, tiny kernels): plain
+        // scalar rows.
+        for (((o, row), &b), rq) in out
+            .iter_mut()
+            .zip(weights.chunks_exact(seg))
+            .zip(bias)
+            .zip(requant)
+        {
+            let mut acc = b;
+            for (&x, &w) in xw.iter().zip(row) {
+                acc = acc.wrapping_add((x as i32).wrapping_mul(w as i32));
+            }
+            *o = rq.apply(acc, out_q);
+        }
+        return;
     }
-    if let (Some(o), Some(&b), Some(rq)) = (
-        outs.into_remainder().first_mut(),
-        bias.get(k),
-        requant.get(k),
-    ) {
-        *o = rq.apply(b.wrapping_add(dot_wide(xw, rows.remainder())), out_q);
+    let tail = seg - seg % 16;
+    let mut quads = weights.chunks_exact(4 * seg);
+    let mut outs = out.chunks_exact_mut(4);
+    let mut k = 0;
+    for (rows, o) in (&mut quads).zip(&mut outs) {
+        let (a, r) = rows.split_at(seg);
+        let (b, r) = r.split_at(seg);
+        let (c, d) = r.split_at(seg);
+        let mut acc = dot4_wide([xw, xw, xw, xw], [a, b, c, d]);
+        if tail < seg {
+            for (v, w) in acc.iter_mut().zip([a, b, c, d]) {
+                *v = v.wrapping_add(tail_wide(&xw[tail..], &w[tail..]));
+            }
+        }
+        for j in 0..4 {
+            o[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[j]), out_q);
+        }
+        k += 4;
+    }
+    let rest = quads.remainder();
+    let out = outs.into_remainder();
+    let mut j = 0;
+    while j + 2 <= out.len() {
+        let (a, b) = rest[j * seg..(j + 2) * seg].split_at(seg);
+        let mut acc = dot2_wide(xw, xw, a, b);
+        if tail < seg {
+            acc[0] = acc[0].wrapping_add(tail_wide(&xw[tail..], &a[tail..]));
+            acc[1] = acc[1].wrapping_add(tail_wide(&xw[tail..], &b[tail..]));
+        }
+        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[0]), out_q);
+        out[j + 1] = requant[k + j + 1].apply(bias[k + j + 1].wrapping_add(acc[1]), out_q);
+        j += 2;
+    }
+    if j < out.len() {
+        let a = &rest[j * seg..(j + 1) * seg];
+        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
     }
 }
 
@@ -352,26 +398,41 @@ fn gather(
     w: &Window,
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
+    groups: usize,
     oy: usize,
     ox: usize,
     cpg: usize,
     seg: usize,
-    patch: &mut [i8],
+    patch: &mut [i16],
 ) {
-    let groups = p.groups;
     let base_y = oy * w.step_y;
     let base_x = ox * w.step_x;
+    // A whole kernel row is one contiguous run of the arena when the
+    // channels are dense, the kernel is not dilated horizontally and the
+    // row lies inside the map horizontally.
+    let dense_row = groups == 1
+        && transform.is_none()
+        && w.dilation_x == 1
+        && input.stride == input.c
+        && base_x >= w.pad.left
+        && base_x - w.pad.left + w.kw <= input.w;
     for ky in 0..w.kh {
         let yy = base_y + ky * w.dilation_y; // padded coordinate
         let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
+        if dense_row && row_in {
+            let run = w.kw * cpg;
+            let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
+            widen_into(&mut patch[ky * run..(ky + 1) * run], &arena[src..src + run]);
+            continue;
+        }
         for kx in 0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
             let inside = row_in && xx >= w.pad.left && xx - w.pad.left < input.w;
             if groups == 1 {
-                let dst = &mut patch[2 * t * cpg..2 * (t + 1) * cpg];
+                let dst = &mut patch[t * cpg..(t + 1) * cpg];
                 if !inside {
-                    fill_wide(dst, p.input_zp);
+                    dst.fill(p.input_zp as i16);
                     continue;
                 }
                 let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
@@ -379,8 +440,8 @@ fn gather(
                 match transform {
                     None => widen_into(dst, src),
                     Some(tr) => {
-                        for (ch, (d, &v)) in dst.chunks_exact_mut(2).zip(src).enumerate() {
-                            put_wide(d, tr.apply(ch, v));
+                        for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                            *d = tr.apply(ch, v) as i16;
                         }
                     }
                 }
@@ -391,10 +452,10 @@ fn gather(
                     0
                 };
                 for g in 0..groups {
-                    let at = 2 * (g * seg + t * cpg);
-                    let dst = &mut patch[at..at + 2 * cpg];
+                    let at = g * seg + t * cpg;
+                    let dst = &mut patch[at..at + cpg];
                     if !inside {
-                        fill_wide(dst, p.input_zp);
+                        dst.fill(p.input_zp as i16);
                         continue;
                     }
                     let c0 = g * cpg;
@@ -402,8 +463,8 @@ fn gather(
                     match transform {
                         None => widen_into(dst, src),
                         Some(tr) => {
-                            for (ci, (d, &v)) in dst.chunks_exact_mut(2).zip(src).enumerate() {
-                                put_wide(d, tr.apply(c0 + ci, v));
+                            for (ci, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                                *d = tr.apply(c0 + ci, v) as i16;
                             }
                         }
                     }

@@ -1,22 +1,17 @@
 //! The inner products every MAC-heavy kernel runs.
 //!
 //! Two operand forms exist:
-//! * [`dot_wide`]: activations already widened to 16 bits (the conv patch,
-//!   two bytes per element, little-endian) against int8 weights. The weight
-//!   is the only operand that still needs a sign extension in the loop.
+//! * [`dot_wide`] / [`dot2_wide`]: activations already widened to `i16` (the
+//!   convolution patch) against int8 weights. The weight is the only
+//!   operand that still needs a sign extension in the loop.
 //! * [`dot_i8`]: both operands int8 (linear layers read the arena directly).
 //!
-//! Both are written as fixed-width chunk loops over `chunks_exact` with a
-//! lane-array accumulator and a final horizontal sum: no bounds checks in the
-//! loop, and LLVM turns it into `pmaddwd` (x86 SSE2) / channel-pair
-//! multiply-accumulates. Accumulation wraps in i32; the compiler guarantees
-//! it cannot overflow (see [`acc_worst_case`](crate::acc_worst_case)).
-
-/// Reads element `i` of a widened patch.
-#[inline(always)]
-fn wide_at(xw: &[i8], i: usize) -> i32 {
-    i16::from_le_bytes([xw[2 * i] as u8, xw[2 * i + 1] as u8]) as i32
-}
+//! They are written as fixed-width chunk loops over `chunks_exact` with a
+//! 16-lane accumulator array and one horizontal sum at the end: no bounds
+//! checks in the loop, and LLVM turns the `i16 × i8 → i32` lanes into
+//! `pmaddwd` on x86 SSE2 (eight products summed pairwise into four i32
+//! lanes per instruction). Accumulation wraps in i32; the compiler
+//! guarantees it cannot overflow (see [`acc_worst_case`](crate::acc_worst_case)).
 
 /// Sums the lanes of an accumulator array.
 #[inline(always)]
@@ -28,124 +23,126 @@ fn lane_sum(acc: &[i32; 16]) -> i32 {
     t
 }
 
-/// `Σ x[i]·w[i]` over `w.len()` terms, with `x` stored widened in `xw`
-/// (`xw.len() >= 2 * w.len()`).
-#[inline(never)]
-pub(crate) fn dot_wide(xw: &[i8], w: &[i8]) -> i32 {
-    let n = w.len();
-    let xw = &xw[..2 * n];
-    let mut acc = [0i32; 16];
-    let xc = xw.chunks_exact(32);
-    let wc = w.chunks_exact(16);
-    let (xr, wr) = (xc.remainder(), wc.remainder());
-    for (x, w) in xc.zip(wc) {
-        for j in 0..16 {
-            let xv = i16::from_le_bytes([x[2 * j] as u8, x[2 * j + 1] as u8]) as i32;
-            acc[j] = acc[j].wrapping_add(xv.wrapping_mul(w[j] as i32));
-        }
+/// One 16-lane step: `s[j] += x[j] · w[j]`.
+#[inline(always)]
+fn step16(s: &mut [i32; 16], x: &[i16], w: &[i8]) {
+    for j in 0..16 {
+        s[j] = s[j].wrapping_add((x[j] as i32).wrapping_mul(w[j] as i32));
     }
-    lane_sum(&acc).wrapping_add(tail_wide(xr, wr))
 }
 
-/// Two rows at once: `[Σ x·w0, Σ x·w1]` over `w0.len()` terms
-/// (`w1.len() >= w0.len()`, `xw.len() >= 2 * w0.len()`).
-///
-/// Each 16-lane step loads the patch once for both rows. The two
-/// per-row inner loops are kept separate (rather than interleaved in one
-/// loop body): that is the shape LLVM turns into `pmaddwd` on SSE2.
+/// `Σ x[i]·w[i]` over `w.len()` terms (`x.len() >= w.len()`).
 #[inline(never)]
-pub(crate) fn dot2_wide(xw: &[i8], w0: &[i8], w1: &[i8]) -> [i32; 2] {
+pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
+    let n = w.len();
+    let x = &x[..n];
+    let mut s = [0i32; 16];
+    for (xc, wc) in x.chunks_exact(16).zip(w.chunks_exact(16)) {
+        step16(&mut s, xc, wc);
+    }
+    let full = n - n % 16;
+    let t = if full < n {
+        tail_wide(&x[full..], &w[full..])
+    } else {
+        0
+    };
+    lane_sum(&s).wrapping_add(t)
+}
+
+/// Two rows at once: `[Σ x0·w0, Σ x1·w1]` over the first `16·⌊n/16⌋` of
+/// the `n = w0.len()` terms; the caller adds [`tail_wide`] for the rest
+/// (`w1`, `x0`, `x1` at least `n` long).
+///
+/// The convolution passes the same patch as `x0` and `x1`. Taking two
+/// slices keeps the two rows' expression trees independent, so LLVM's SLP
+/// vectorizer costs each row like the single-row loop (and emits
+/// `pmaddwd`), while the pair shares the loop overhead and the call.
+#[inline(never)]
+pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2] {
     let n = w0.len();
-    let xw = &xw[..2 * n];
+    let x0 = &x0[..n];
+    let x1 = &x1[..n];
     let w1 = &w1[..n];
     let mut s0 = [0i32; 16];
     let mut s1 = [0i32; 16];
-    let xc = xw.chunks_exact(32);
-    let ac = w0.chunks_exact(16);
-    let bc = w1.chunks_exact(16);
-    let (xr, ar, br) = (xc.remainder(), ac.remainder(), bc.remainder());
-    for ((x, a), b) in xc.zip(ac).zip(bc) {
-        for j in 0..16 {
-            let xv = i16::from_le_bytes([x[2 * j] as u8, x[2 * j + 1] as u8]) as i32;
-            s0[j] = s0[j].wrapping_add(xv.wrapping_mul(a[j] as i32));
-        }
-        for j in 0..16 {
-            let xv = i16::from_le_bytes([x[2 * j] as u8, x[2 * j + 1] as u8]) as i32;
-            s1[j] = s1[j].wrapping_add(xv.wrapping_mul(b[j] as i32));
-        }
+    for (((xa, xb), a), b) in x0
+        .chunks_exact(16)
+        .zip(x1.chunks_exact(16))
+        .zip(w0.chunks_exact(16))
+        .zip(w1.chunks_exact(16))
+    {
+        step16(&mut s0, xa, a);
+        step16(&mut s1, xb, b);
     }
-    [
-        lane_sum(&s0).wrapping_add(tail_wide(xr, ar)),
-        lane_sum(&s1).wrapping_add(tail_wide(xr, br)),
-    ]
+    [lane_sum(&s0), lane_sum(&s1)]
 }
 
-/// Scalar tail (fewer than 16 terms), in channel pairs.
-#[inline(always)]
-fn tail_wide(xr: &[i8], wr: &[i8]) -> i32 {
+/// Four rows at once, same contract as [`dot2_wide`] with four patch
+/// slices (all the same patch in practice) and four weight rows.
+#[inline(never)]
+pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
+    let n = w[0].len();
+    let (x0, x1, x2, x3) = (&x[0][..n], &x[1][..n], &x[2][..n], &x[3][..n]);
+    let (w0, w1, w2, w3) = (w[0], &w[1][..n], &w[2][..n], &w[3][..n]);
+    let mut s0 = [0i32; 16];
+    let mut s1 = [0i32; 16];
+    let mut s2 = [0i32; 16];
+    let mut s3 = [0i32; 16];
+    let m = n / 16;
+    let (x0, x1, x2, x3) = (&x0[..m * 16], &x1[..m * 16], &x2[..m * 16], &x3[..m * 16]);
+    let (w0, w1, w2, w3) = (&w0[..m * 16], &w1[..m * 16], &w2[..m * 16], &w3[..m * 16]);
+    for i in 0..m {
+        let r = i * 16..i * 16 + 16;
+        step16(&mut s0, &x0[r.clone()], &w0[r.clone()]);
+        step16(&mut s1, &x1[r.clone()], &w1[r.clone()]);
+        step16(&mut s2, &x2[r.clone()], &w2[r.clone()]);
+        step16(&mut s3, &x3[r.clone()], &w3[r]);
+    }
+    [lane_sum(&s0), lane_sum(&s1), lane_sum(&s2), lane_sum(&s3)]
+}
+
+/// Scalar dot product for short runs (tails, depthwise windows), in
+/// channel pairs.
+#[inline(never)]
+pub(crate) fn tail_wide(x: &[i16], w: &[i8]) -> i32 {
     let mut total: i32 = 0;
-    for (x, w) in xr.chunks_exact(4).zip(wr.chunks_exact(2)) {
-        let a = (i16::from_le_bytes([x[0] as u8, x[1] as u8]) as i32).wrapping_mul(w[0] as i32);
-        let b = (i16::from_le_bytes([x[2] as u8, x[3] as u8]) as i32).wrapping_mul(w[1] as i32);
-        total = total.wrapping_add(a.wrapping_add(b));
-    }
-    if wr.len() % 2 == 1 {
-        let k = wr.len() - 1;
-        total = total.wrapping_add(wide_at(xr, k).wrapping_mul(wr[k] as i32));
-    }
-    total
-}
-
-/// `Σ x[i]·w[i]` over `min(x.len(), w.len())` int8 terms.
-#[inline]
-pub(crate) fn dot_i8(x: &[i8], w: &[i8]) -> i32 {
-    let n = x.len().min(w.len());
-    let (x, w) = (&x[..n], &w[..n]);
-    let mut acc = [0i32; 16];
-    let xc = x.chunks_exact(16);
-    let wc = w.chunks_exact(16);
+    let xc = x.chunks_exact(2);
+    let wc = w.chunks_exact(2);
     let (xr, wr) = (xc.remainder(), wc.remainder());
     for (x, w) in xc.zip(wc) {
-        let x: &[i8; 16] = x.try_into().unwrap_or(&[0; 16]);
-        let w: &[i8; 16] = w.try_into().unwrap_or(&[0; 16]);
-        for j in 0..16 {
-            acc[j] = acc[j].wrapping_add((x[j] as i32).wrapping_mul(w[j] as i32));
-        }
+        let a = (x[0] as i32).wrapping_mul(w[0] as i32);
+        let b = (x[1] as i32).wrapping_mul(w[1] as i32);
+        total = total.wrapping_add(a.wrapping_add(b));
     }
-    let mut total: i32 = 0;
-    for a in acc {
-        total = total.wrapping_add(a);
-    }
-    for (&a, &b) in xr.iter().zip(wr) {
+    if let (Some(&a), Some(&b)) = (xr.first(), wr.first()) {
         total = total.wrapping_add((a as i32).wrapping_mul(b as i32));
     }
     total
 }
 
-/// Writes `v` widened to 16 bits into `dst[0..2]` (little-endian).
-#[inline(always)]
-pub(crate) fn put_wide(dst: &mut [i8], v: i8) {
-    let b = (v as i16).to_le_bytes();
-    dst[0] = b[0] as i8;
-    dst[1] = b[1] as i8;
-}
-
-/// Widens every element of `src` into `dst` (`dst.len() >= 2 * src.len()`).
-#[inline(always)]
-pub(crate) fn widen_into(dst: &mut [i8], src: &[i8]) {
-    for (d, &s) in dst.chunks_exact_mut(2).zip(src) {
-        let b = (s as i16).to_le_bytes();
-        d[0] = b[0] as i8;
-        d[1] = b[1] as i8;
+/// `Σ x[i]·w[i]` over `min(x.len(), w.len())` int8 terms.
+#[inline(never)]
+pub(crate) fn dot_i8(x: &[i8], w: &[i8]) -> i32 {
+    let n = x.len().min(w.len());
+    let (x, w) = (&x[..n], &w[..n]);
+    let mut acc = [0i32; 16];
+    for (xc, wc) in x.chunks_exact(16).zip(w.chunks_exact(16)) {
+        for j in 0..16 {
+            acc[j] = acc[j].wrapping_add((xc[j] as i32).wrapping_mul(wc[j] as i32));
+        }
     }
+    let mut total = lane_sum(&acc);
+    let full = n - n % 16;
+    for (&a, &b) in x[full..].iter().zip(&w[full..]) {
+        total = total.wrapping_add((a as i32).wrapping_mul(b as i32));
+    }
+    total
 }
 
-/// Fills `dst` (an even number of bytes) with the widened value `v`.
+/// Widens every element of `src` into `dst` (`dst.len() >= src.len()`).
 #[inline(always)]
-pub(crate) fn fill_wide(dst: &mut [i8], v: i8) {
-    let b = (v as i16).to_le_bytes();
-    for d in dst.chunks_exact_mut(2) {
-        d[0] = b[0] as i8;
-        d[1] = b[1] as i8;
+pub(crate) fn widen_into(dst: &mut [i16], src: &[i8]) {
+    for (d, &s) in dst.iter_mut().zip(src) {
+        *d = s as i16;
     }
 }

@@ -125,12 +125,13 @@
 //! # Kernels
 //!
 //! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
-//! [`global_avg_pool`], [`add`], [`quantize_pixels`], [`copy_in`],
+//! [`global_avg_pool`], [`add`], [`channel_transform`], [`copy_channels`], [`quantize_pixels`], [`copy_in`],
 //! [`copy_out`], [`argmax`], [`dequantize`].
 #![no_std]
 #![forbid(unsafe_code)]
 #![deny(missing_docs)]
 
+mod channel;
 mod conv;
 mod dot;
 mod eltwise;
@@ -142,6 +143,7 @@ mod pool;
 mod requant;
 mod transform;
 
+pub use channel::{channel_transform, copy_channels};
 pub use conv::{conv2d, conv_patch_len, window_out_len, ConvParams, Padding, Window};
 pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;

@@ -25,12 +25,7 @@ impl PoolQuant {
     }
 }
 
-fn check_pool(
-    arena_len: usize,
-    input: &MapRef,
-    output: &MapRef,
-    q: &PoolQuant,
-) -> Result<(), Error> {
+fn check_pool(arena_len: usize, input: &MapRef, output: &MapRef, q: &PoolQuant) -> Result<(), Error> {
     input.check(arena_len)?;
     output.check(arena_len)?;
     if !input.is_disjoint(output) {

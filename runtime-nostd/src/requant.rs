@@ -72,9 +72,10 @@ impl Requant {
     /// is at most `2^61`. The caller must have checked [`is_valid`](Self::is_valid).
     #[inline(always)]
     pub const fn scale(&self, x: i32) -> i64 {
-        let t = self.total_shift();
+        // floor((p + 2^(t-1)) / 2^t) == (floor(p / 2^(t-1)) + 1) >> 1,
+        // which avoids materialising the rounding constant.
         let prod = x as i64 * self.mult as i64;
-        (prod + (1i64 << (t - 1))) >> t
+        ((prod >> (30 + self.shift)) + 1) >> 1
     }
 
     /// Full requantization of an accumulator: `clamp(z_out + scale(acc))`

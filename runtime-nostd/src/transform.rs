@@ -85,7 +85,9 @@ impl InputTransform<'_> {
                     && a.min <= a.max
                     && a.zp_out == pad_value as i32
             }
-            InputTransform::Table(t) => channels.checked_mul(256).is_some_and(|n| t.len() >= n),
+            InputTransform::Table(t) => channels
+                .checked_mul(256)
+                .is_some_and(|n| t.len() >= n),
         }
     }
 }

@@ -46,21 +46,9 @@ struct Case {
 
 fn arb_case() -> impl Strategy<Value = Case> {
     let shape = (1usize..7, 1usize..7, 1usize..4, 1usize..4, 1usize..4);
-    let kernel = (
-        1usize..4,
-        1usize..4,
-        1usize..3,
-        1usize..3,
-        1usize..3,
-        1usize..3,
-    );
+    let kernel = (1usize..4, 1usize..4, 1usize..3, 1usize..3, 1usize..3, 1usize..3);
     let pad = (0usize..3, 0usize..3, 0usize..3, 0usize..3);
-    let quant = (
-        arb_zp(),
-        arb_zp(),
-        0u8..3,
-        prop::collection::vec(arb_requant(), 16),
-    );
+    let quant = (arb_zp(), arb_zp(), 0u8..3, prop::collection::vec(arb_requant(), 16));
     let layout = (0usize..3, any::<bool>(), any::<u64>(), 0u8..3);
     (shape, kernel, pad, quant, layout).prop_map(|(s, k, pd, q, l)| {
         let (h, w, cpg, opg, groups) = s;
@@ -159,12 +147,8 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
         .map(|_| rng.range(-2_000_000, 2_000_000) as i32)
         .collect();
     let table: Vec<i8> = (0..256 * c.cin).map(|_| rng.i8()).collect();
-    let mul: Vec<i32> = (0..c.cin)
-        .map(|_| rng.range(-70000, 70000) as i32)
-        .collect();
-    let addv: Vec<i32> = (0..c.cin)
-        .map(|_| rng.range(-1 << 24, 1 << 24) as i32)
-        .collect();
+    let mul: Vec<i32> = (0..c.cin).map(|_| rng.range(-70000, 70000) as i32).collect();
+    let addv: Vec<i32> = (0..c.cin).map(|_| rng.range(-1 << 24, 1 << 24) as i32).collect();
     let zp_in = rng.range(-128, 127) as i32;
     let shift = rng.range(0, 16) as u32;
     let (rt, tr) = match c.transform {
@@ -207,7 +191,7 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
         rt.as_ref(),
     );
     let before = arena.clone();
-    let mut patch = vec![0i8; conv_patch_len(p.kh, p.kw, c.cin)];
+    let mut patch = vec![0i16; conv_patch_len(p.kh, p.kw, c.cin)];
     conv2d(
         &mut arena,
         input,

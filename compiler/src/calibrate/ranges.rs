@@ -27,10 +27,7 @@ impl MapRange {
     /// The range widened to contain 0, as affine int8 quantization needs
     /// (real zero must be exactly representable; Jacob et al. 2018, §2.1).
     pub fn with_zero(self) -> MapRange {
-        MapRange {
-            min: self.min.min(0.0),
-            max: self.max.max(0.0),
-        }
+        MapRange { min: self.min.min(0.0), max: self.max.max(0.0) }
     }
 }
 
@@ -141,9 +138,7 @@ impl Ranges {
             graph_hash: self.graph_hash.clone(),
             method: self.method.clone(),
             images: self.images,
-            maps: (0..g.map_count())
-                .map(|i| (g.map_name(MapId(i as u32)).to_string(), self.maps[i]))
-                .collect(),
+            maps: (0..g.map_count()).map(|i| (g.map_name(MapId(i as u32)).to_string(), self.maps[i])).collect(),
         }
     }
 
@@ -157,19 +152,10 @@ impl Ranges {
     /// [`graph_hash`] of `g`; pass `None` to skip the staleness check.
     pub fn load(g: &Graph, path: &Path, hash: Option<&str>) -> Result<Ranges, RangesError> {
         let p = path.display().to_string();
-        let text = std::fs::read_to_string(path).map_err(|source| RangesError::Io {
-            path: p.clone(),
-            source,
-        })?;
-        let f: RangesFile = serde_json::from_str(&text).map_err(|e| RangesError::Format {
-            path: p.clone(),
-            message: e.to_string(),
-        })?;
+        let text = std::fs::read_to_string(path).map_err(|source| RangesError::Io { path: p.clone(), source })?;
+        let f: RangesFile = serde_json::from_str(&text).map_err(|e| RangesError::Format { path: p.clone(), message: e.to_string() })?;
         if f.format != RANGES_V1 {
-            return Err(RangesError::Format {
-                path: p,
-                message: format!("`format` is \"{}\", expected \"{RANGES_V1}\"", f.format),
-            });
+            return Err(RangesError::Format { path: p, message: format!("`format` is \"{}\", expected \"{RANGES_V1}\"", f.format) });
         }
         if let Some(h) = hash {
             if f.graph_hash != h || f.graph != g.name() {
@@ -185,26 +171,12 @@ impl Ranges {
         let mut maps = Vec::with_capacity(g.map_count());
         for i in 0..g.map_count() {
             let name = g.map_name(MapId(i as u32));
-            let r = *f.maps.get(name).ok_or_else(|| RangesError::Map {
-                path: p.clone(),
-                map: name.into(),
-                message: "no range in the file".into(),
-            })?;
+            let r = *f.maps.get(name).ok_or_else(|| RangesError::Map { path: p.clone(), map: name.into(), message: "no range in the file".into() })?;
             if !(r.min.is_finite() && r.max.is_finite() && r.min <= r.max) {
-                return Err(RangesError::Map {
-                    path: p.clone(),
-                    map: name.into(),
-                    message: format!("invalid range [{}, {}]", r.min, r.max),
-                });
+                return Err(RangesError::Map { path: p.clone(), map: name.into(), message: format!("invalid range [{}, {}]", r.min, r.max) });
             }
             maps.push(r);
         }
-        Ok(Ranges {
-            graph: f.graph,
-            graph_hash: f.graph_hash,
-            method: f.method,
-            images: f.images,
-            maps,
-        })
+        Ok(Ranges { graph: f.graph, graph_hash: f.graph_hash, method: f.method, images: f.images, maps })
     }
 }

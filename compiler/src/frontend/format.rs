@@ -75,13 +75,7 @@ pub struct LayerFile {
 impl LayerFile {
     /// A layer with one input and no attributes.
     pub fn new(name: impl Into<String>, op: &str, input: impl Into<String>) -> Self {
-        LayerFile {
-            name: name.into(),
-            op: op.into(),
-            input: Some(input.into()),
-            inputs: None,
-            attrs: Map::new(),
-        }
+        LayerFile { name: name.into(), op: op.into(), input: Some(input.into()), inputs: None, attrs: Map::new() }
     }
 
     /// A layer with several inputs (`concat`, `add`).
@@ -134,8 +128,6 @@ impl LayerFile {
 
     /// A pooling layer (`max_pool2d` or `avg_pool2d`) with square kernel and stride.
     pub fn pool(name: &str, op: &str, input: &str, kernel: usize, stride: usize) -> Self {
-        LayerFile::new(name, op, input)
-            .attr("kernel", kernel)
-            .attr("stride", stride)
+        LayerFile::new(name, op, input).attr("kernel", kernel).attr("stride", stride)
     }
 }

@@ -14,8 +14,8 @@ pub use weights::{StoredTensor, TensorStore};
 
 use crate::graph::shape::window_output;
 use crate::graph::{
-    BatchNorm, Color, Conv2d, Graph, InputSpec, Layer, LayerId, Linear, MapId, Op, Padding, Pool2d,
-    Shape, Tensor, Window,
+    BatchNorm, Color, Conv2d, Graph, InputSpec, Layer, LayerId, Linear, MapId, Op, Padding, Pool2d, Shape, Tensor,
+    Window,
 };
 use serde_json::Value;
 use std::collections::HashMap;
@@ -40,10 +40,7 @@ pub const OPS: &[&str] = &[
 
 /// Loads and validates a graph file and the weights file it names.
 pub fn load(path: &Path) -> Result<Graph, LoadError> {
-    let text = std::fs::read_to_string(path).map_err(|source| LoadError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
+    let text = std::fs::read_to_string(path).map_err(|source| LoadError::Io { path: path.to_path_buf(), source })?;
     let file = parse(&text, path)?;
     let weights_path = resolve_weights(path, &file.weights);
     let store = TensorStore::load(&weights_path)?;
@@ -88,10 +85,7 @@ struct Ctx<'a> {
 
 impl Validator<'_> {
     fn graph_err(&self, message: impl Into<String>) -> LoadError {
-        LoadError::Graph {
-            path: self.path.to_path_buf(),
-            message: message.into(),
-        }
+        LoadError::Graph { path: self.path.to_path_buf(), message: message.into() }
     }
 
     fn attr_err(&self, cx: &Ctx, attr: &str, message: impl Into<String>) -> LoadError {
@@ -105,29 +99,16 @@ impl Validator<'_> {
     }
 
     fn inputs_err(&self, cx: &Ctx, message: impl Into<String>) -> LoadError {
-        LoadError::Inputs {
-            path: self.path.to_path_buf(),
-            layer: cx.layer.into(),
-            op: cx.op.into(),
-            message: message.into(),
-        }
+        LoadError::Inputs { path: self.path.to_path_buf(), layer: cx.layer.into(), op: cx.op.into(), message: message.into() }
     }
 
     fn shape_err(&self, cx: &Ctx, message: impl Into<String>) -> LoadError {
-        LoadError::Shape {
-            path: self.path.to_path_buf(),
-            layer: cx.layer.into(),
-            op: cx.op.into(),
-            message: message.into(),
-        }
+        LoadError::Shape { path: self.path.to_path_buf(), layer: cx.layer.into(), op: cx.op.into(), message: message.into() }
     }
 
     fn run(&self, file: &GraphFile) -> Result<Graph, LoadError> {
         if file.format != FORMAT_V1 {
-            return Err(self.graph_err(format!(
-                "`format` is \"{}\"; this version of ingot reads \"{FORMAT_V1}\"",
-                file.format
-            )));
+            return Err(self.graph_err(format!("`format` is \"{}\"; this version of ingot reads \"{FORMAT_V1}\"", file.format)));
         }
         let input = self.input(&file.input)?;
         let mut names: HashMap<&str, MapId> = HashMap::new();
@@ -136,18 +117,10 @@ impl Validator<'_> {
         let mut layers: Vec<Layer> = Vec::with_capacity(file.layers.len());
         // Every layer, including later ones, so a forward reference can be told
         // apart from a name that does not exist at all.
-        let all_names: HashMap<&str, usize> = file
-            .layers
-            .iter()
-            .enumerate()
-            .map(|(i, l)| (l.name.as_str(), i))
-            .collect();
+        let all_names: HashMap<&str, usize> = file.layers.iter().enumerate().map(|(i, l)| (l.name.as_str(), i)).collect();
 
         for (i, lf) in file.layers.iter().enumerate() {
-            let cx = Ctx {
-                layer: &lf.name,
-                op: &lf.op,
-            };
+            let cx = Ctx { layer: &lf.name, op: &lf.op };
             if lf.name.is_empty() {
                 return Err(self.graph_err(format!("layer #{i} has an empty name")));
             }
@@ -168,9 +141,7 @@ impl Validator<'_> {
                 match names.get(n.as_str()) {
                     Some(&m) => inputs.push(m),
                     None if *n == lf.name => {
-                        return Err(
-                            self.inputs_err(&cx, format!("reads its own output `{n}` (a cycle)"))
-                        );
+                        return Err(self.inputs_err(&cx, format!("reads its own output `{n}` (a cycle)")));
                     }
                     None if all_names.contains_key(n.as_str()) => {
                         return Err(self.inputs_err(
@@ -178,12 +149,7 @@ impl Validator<'_> {
                             format!("reads `{n}`, which comes later in `layers`; layers must be listed in execution order and may not form a cycle"),
                         ));
                     }
-                    None => {
-                        return Err(self.inputs_err(
-                            &cx,
-                            format!("reads `{n}`, which is neither the input nor a layer"),
-                        ))
-                    }
+                    None => return Err(self.inputs_err(&cx, format!("reads `{n}`, which is neither the input nor a layer"))),
                 }
             }
             let in_shapes: Vec<Shape> = inputs.iter().map(|m| shapes[m.index()]).collect();
@@ -196,28 +162,18 @@ impl Validator<'_> {
             }
             names.insert(&lf.name, MapId(i as u32 + 1));
             shapes.push(out);
-            layers.push(Layer {
-                name: lf.name.clone(),
-                op,
-                inputs,
-            });
+            layers.push(Layer { name: lf.name.clone(), op, inputs });
         }
 
-        let output = *names.get(file.output.as_str()).ok_or_else(|| {
-            self.graph_err(format!(
-                "`output` names `{}`, which is not a layer",
-                file.output
-            ))
-        })?;
+        let output = *names
+            .get(file.output.as_str())
+            .ok_or_else(|| self.graph_err(format!("`output` names `{}`, which is not a layer", file.output)))?;
         if output == MapId::INPUT {
             return Err(self.graph_err("`output` names the input; the graph computes nothing"));
         }
         for (i, l) in layers.iter().enumerate() {
             if matches!(l.op, Op::Softmax) && MapId(i as u32 + 1) != output {
-                return Err(self.graph_err(format!(
-                    "layer `{}`: softmax is only supported as the output layer",
-                    l.name
-                )));
+                return Err(self.graph_err(format!("layer `{}`: softmax is only supported as the output layer", l.name)));
             }
         }
         let out_shape = shapes[output.index()];
@@ -273,26 +229,20 @@ impl Validator<'_> {
         };
         let want_c = if color == Color::Gray { 1 } else { 3 };
         if c != want_c {
-            return Err(bad(format!(
-                "color {color:?} needs {want_c} channel(s) but the shape has {c}"
-            )));
+            return Err(bad(format!("color {color:?} needs {want_c} channel(s) but the shape has {c}")));
         }
-        let per_channel =
-            |v: &Option<Vec<f32>>, name: &str, default: f32| -> Result<Vec<f32>, LoadError> {
-                match v {
-                    None => Ok(vec![default; c]),
-                    Some(v) if v.len() == c => {
-                        if let Some(x) = v.iter().find(|x| !x.is_finite()) {
-                            return Err(bad(format!("`{name}` holds {x}")));
-                        }
-                        Ok(v.clone())
+        let per_channel = |v: &Option<Vec<f32>>, name: &str, default: f32| -> Result<Vec<f32>, LoadError> {
+            match v {
+                None => Ok(vec![default; c]),
+                Some(v) if v.len() == c => {
+                    if let Some(x) = v.iter().find(|x| !x.is_finite()) {
+                        return Err(bad(format!("`{name}` holds {x}")));
                     }
-                    Some(v) => Err(bad(format!(
-                        "`{name}` has {} values for {c} channel(s)",
-                        v.len()
-                    ))),
+                    Ok(v.clone())
                 }
-            };
+                Some(v) => Err(bad(format!("`{name}` has {} values for {c} channel(s)", v.len()))),
+            }
+        };
         let mean = per_channel(&f.mean, "mean", 0.0)?;
         let std = per_channel(&f.std, "std", 1.0)?;
         if let Some(s) = std.iter().find(|s| **s <= 0.0) {
@@ -300,32 +250,19 @@ impl Validator<'_> {
         }
         let pixel_scale = f.pixel_scale.unwrap_or(1.0 / 255.0);
         if !(pixel_scale.is_finite() && pixel_scale > 0.0) {
-            return Err(bad(format!(
-                "`pixel_scale` must be positive, got {pixel_scale}"
-            )));
+            return Err(bad(format!("`pixel_scale` must be positive, got {pixel_scale}")));
         }
-        Ok(InputSpec {
-            name: f.name.clone(),
-            shape,
-            pixel_scale,
-            mean,
-            std,
-            color,
-        })
+        Ok(InputSpec { name: f.name.clone(), shape, pixel_scale, mean, std, color })
     }
 
     fn input_names(&self, cx: &Ctx, lf: &LayerFile) -> Result<Vec<String>, LoadError> {
         let multi = matches!(lf.op.as_str(), "concat" | "add");
         match (&lf.input, &lf.inputs, multi) {
-            (Some(_), Some(_), _) => {
-                Err(self.inputs_err(cx, "give either `input` or `inputs`, not both"))
-            }
+            (Some(_), Some(_), _) => Err(self.inputs_err(cx, "give either `input` or `inputs`, not both")),
             (None, None, false) => Err(self.inputs_err(cx, "missing `input`")),
             (None, None, true) => Err(self.inputs_err(cx, "missing `inputs`")),
             (Some(i), None, false) => Ok(vec![i.clone()]),
-            (None, Some(_), false) => {
-                Err(self.inputs_err(cx, "takes one map: use `input`, not `inputs`"))
-            }
+            (None, Some(_), false) => Err(self.inputs_err(cx, "takes one map: use `input`, not `inputs`")),
             (_, _, true) => {
                 let list = match (&lf.input, &lf.inputs) {
                     (Some(i), None) => vec![i.clone()],
@@ -336,10 +273,7 @@ impl Validator<'_> {
                     return Err(self.inputs_err(cx, "`inputs` is empty"));
                 }
                 if lf.op == "add" && list.len() != 2 {
-                    return Err(self.inputs_err(
-                        cx,
-                        format!("`add` takes exactly 2 inputs, got {}", list.len()),
-                    ));
+                    return Err(self.inputs_err(cx, format!("`add` takes exactly 2 inputs, got {}", list.len())));
                 }
                 Ok(list)
             }
@@ -354,11 +288,7 @@ impl Validator<'_> {
                     layer: cx.layer.into(),
                     op: cx.op.into(),
                     attr: k.clone(),
-                    allowed: if allowed.is_empty() {
-                        "none".into()
-                    } else {
-                        allowed.join(", ")
-                    },
+                    allowed: if allowed.is_empty() { "none".into() } else { allowed.join(", ") },
                 });
             }
         }
@@ -366,16 +296,12 @@ impl Validator<'_> {
     }
 
     fn tensor(&self, cx: &Ctx, name: &str) -> Result<Tensor, LoadError> {
-        let t = self
-            .store
-            .tensors
-            .get(name)
-            .ok_or_else(|| LoadError::MissingTensor {
-                weights: self.store.path.clone(),
-                layer: cx.layer.into(),
-                op: cx.op.into(),
-                tensor: name.into(),
-            })?;
+        let t = self.store.tensors.get(name).ok_or_else(|| LoadError::MissingTensor {
+            weights: self.store.path.clone(),
+            layer: cx.layer.into(),
+            op: cx.op.into(),
+            tensor: name.into(),
+        })?;
         if let Some((index, &value)) = t.data.iter().enumerate().find(|(_, v)| !v.is_finite()) {
             return Err(LoadError::NonFinite {
                 weights: self.store.path.clone(),
@@ -386,20 +312,10 @@ impl Validator<'_> {
                 value,
             });
         }
-        Ok(Tensor {
-            name: name.into(),
-            shape: t.shape.clone(),
-            data: t.data.clone(),
-        })
+        Ok(Tensor { name: name.into(), shape: t.shape.clone(), data: t.data.clone() })
     }
 
-    fn expect_shape(
-        &self,
-        cx: &Ctx,
-        t: &Tensor,
-        ok: bool,
-        expected: impl Into<String>,
-    ) -> Result<(), LoadError> {
+    fn expect_shape(&self, cx: &Ctx, t: &Tensor, ok: bool, expected: impl Into<String>) -> Result<(), LoadError> {
         if ok {
             Ok(())
         } else {
@@ -418,44 +334,25 @@ impl Validator<'_> {
         match lf.attrs.get(key) {
             None => Ok(None),
             Some(Value::String(s)) => Ok(Some(s.clone())),
-            Some(v) => {
-                Err(self.attr_err(cx, key, format!("expected a tensor name (string), got {v}")))
-            }
+            Some(v) => Err(self.attr_err(cx, key, format!("expected a tensor name (string), got {v}"))),
         }
     }
 
     fn uint(&self, cx: &Ctx, key: &str, v: &Value) -> Result<usize, LoadError> {
         v.as_u64()
             .and_then(|n| usize::try_from(n).ok())
-            .ok_or_else(|| {
-                self.attr_err(cx, key, format!("expected a non-negative integer, got {v}"))
-            })
+            .ok_or_else(|| self.attr_err(cx, key, format!("expected a non-negative integer, got {v}")))
     }
 
     /// An int or `[h, w]` attribute; `positive` refuses zero.
-    fn pair(
-        &self,
-        cx: &Ctx,
-        lf: &LayerFile,
-        key: &str,
-        default: Option<[usize; 2]>,
-        positive: bool,
-    ) -> Result<[usize; 2], LoadError> {
+    fn pair(&self, cx: &Ctx, lf: &LayerFile, key: &str, default: Option<[usize; 2]>, positive: bool) -> Result<[usize; 2], LoadError> {
         let v = match lf.attrs.get(key) {
             None => return default.ok_or_else(|| self.attr_err(cx, key, "missing")),
             Some(v) => v,
         };
         let p = match v {
-            Value::Array(a) if a.len() == 2 => {
-                [self.uint(cx, key, &a[0])?, self.uint(cx, key, &a[1])?]
-            }
-            Value::Array(a) => {
-                return Err(self.attr_err(
-                    cx,
-                    key,
-                    format!("expected an integer or [h, w], got {} values", a.len()),
-                ))
-            }
+            Value::Array(a) if a.len() == 2 => [self.uint(cx, key, &a[0])?, self.uint(cx, key, &a[1])?],
+            Value::Array(a) => return Err(self.attr_err(cx, key, format!("expected an integer or [h, w], got {} values", a.len()))),
             v => {
                 let n = self.uint(cx, key, v)?;
                 [n, n]
@@ -467,15 +364,7 @@ impl Validator<'_> {
         Ok(p)
     }
 
-    fn padding(
-        &self,
-        cx: &Ctx,
-        lf: &LayerFile,
-        input: Shape,
-        kernel: [usize; 2],
-        stride: [usize; 2],
-        dilation: [usize; 2],
-    ) -> Result<Padding, LoadError> {
+    fn padding(&self, cx: &Ctx, lf: &LayerFile, input: Shape, kernel: [usize; 2], stride: [usize; 2], dilation: [usize; 2]) -> Result<Padding, LoadError> {
         let key = "padding";
         match lf.attrs.get(key) {
             None => Ok(Padding::default()),
@@ -510,15 +399,9 @@ impl Validator<'_> {
     fn layer(&self, cx: &Ctx, lf: &LayerFile, ins: &[Shape]) -> Result<(Op, Shape), LoadError> {
         match lf.op.as_str() {
             "conv2d" => {
-                self.check_attrs(
-                    cx,
-                    lf,
-                    &["weight", "bias", "stride", "padding", "dilation", "groups"],
-                )?;
+                self.check_attrs(cx, lf, &["weight", "bias", "stride", "padding", "dilation", "groups"])?;
                 let x = self.one_input(cx, ins);
-                let wname = self
-                    .str_attr(cx, lf, "weight")?
-                    .ok_or_else(|| self.attr_err(cx, "weight", "missing"))?;
+                let wname = self.str_attr(cx, lf, "weight")?.ok_or_else(|| self.attr_err(cx, "weight", "missing"))?;
                 let weight = self.tensor(cx, &wname)?;
                 let groups = match lf.attrs.get("groups") {
                     None => 1,
@@ -527,35 +410,16 @@ impl Validator<'_> {
                 if groups == 0 {
                     return Err(self.attr_err(cx, "groups", "must be at least 1"));
                 }
-                self.expect_shape(
-                    cx,
-                    &weight,
-                    weight.shape.len() == 4,
-                    "4 dimensions [O, I/groups, kH, kW]",
-                )?;
-                let (o, ig, kh, kw) = (
-                    weight.shape[0],
-                    weight.shape[1],
-                    weight.shape[2],
-                    weight.shape[3],
-                );
+                self.expect_shape(cx, &weight, weight.shape.len() == 4, "4 dimensions [O, I/groups, kH, kW]")?;
+                let (o, ig, kh, kw) = (weight.shape[0], weight.shape[1], weight.shape[2], weight.shape[3]);
                 if x.c % groups != 0 {
-                    return Err(self.shape_err(
-                        cx,
-                        format!(
-                            "input {x} has {} channels, not divisible by groups = {groups}",
-                            x.c
-                        ),
-                    ));
+                    return Err(self.shape_err(cx, format!("input {x} has {} channels, not divisible by groups = {groups}", x.c)));
                 }
                 self.expect_shape(
                     cx,
                     &weight,
                     ig == x.c / groups && o % groups == 0 && o > 0 && kh > 0 && kw > 0,
-                    format!(
-                        "[O, {}, kH, kW] with O divisible by groups = {groups} (input {x})",
-                        x.c / groups
-                    ),
+                    format!("[O, {}, kH, kW] with O divisible by groups = {groups} (input {x})", x.c / groups),
                 )?;
                 let bias = match self.str_attr(cx, lf, "bias")? {
                     None => None,
@@ -572,54 +436,27 @@ impl Validator<'_> {
                 let (oh, ow) = window_output(x.h, x.w, kernel, stride, dilation, padding).ok_or_else(|| {
                     self.shape_err(cx, format!("kernel {kh}x{kw} (dilation {dilation:?}, padding {padding:?}) does not fit input {x}"))
                 })?;
-                let conv = Conv2d {
-                    weight,
-                    bias,
-                    out_channels: o,
-                    in_channels: x.c,
-                    kernel,
-                    stride,
-                    padding,
-                    dilation,
-                    groups,
-                };
+                let conv = Conv2d { weight, bias, out_channels: o, in_channels: x.c, kernel, stride, padding, dilation, groups };
                 Ok((Op::Conv2d(conv), Shape::new(o, oh, ow)))
             }
             "batch_norm" => {
                 self.check_attrs(cx, lf, &["prefix", "eps", "momentum"])?;
                 let x = self.one_input(cx, ins);
-                let prefix = self
-                    .str_attr(cx, lf, "prefix")?
-                    .ok_or_else(|| self.attr_err(cx, "prefix", "missing"))?;
+                let prefix = self.str_attr(cx, lf, "prefix")?.ok_or_else(|| self.attr_err(cx, "prefix", "missing"))?;
                 let eps = match lf.attrs.get("eps") {
                     None => 1e-5,
                     Some(v) => v
                         .as_f64()
                         .filter(|e| e.is_finite() && *e >= 0.0)
-                        .ok_or_else(|| {
-                            self.attr_err(
-                                cx,
-                                "eps",
-                                format!("expected a non-negative number, got {v}"),
-                            )
-                        })? as f32,
+                        .ok_or_else(|| self.attr_err(cx, "eps", format!("expected a non-negative number, got {v}")))?
+                        as f32,
                 };
                 let get = |suffix: &str| -> Result<Tensor, LoadError> {
                     let t = self.tensor(cx, &format!("{prefix}.{suffix}"))?;
-                    self.expect_shape(
-                        cx,
-                        &t,
-                        t.shape == [x.c],
-                        format!("[{}] (one per channel of input {x})", x.c),
-                    )?;
+                    self.expect_shape(cx, &t, t.shape == [x.c], format!("[{}] (one per channel of input {x})", x.c))?;
                     Ok(t)
                 };
-                let (gamma, beta, mean, var) = (
-                    get("weight")?,
-                    get("bias")?,
-                    get("running_mean")?,
-                    get("running_var")?,
-                );
+                let (gamma, beta, mean, var) = (get("weight")?, get("bias")?, get("running_mean")?, get("running_var")?);
                 if let Some((i, v)) = var.data.iter().enumerate().find(|(_, v)| **v + eps <= 0.0) {
                     return Err(LoadError::TensorShape {
                         weights: self.store.path.clone(),
@@ -630,17 +467,7 @@ impl Validator<'_> {
                         expected: format!("variances + eps > 0 (channel {i} has {v})"),
                     });
                 }
-                Ok((
-                    Op::BatchNorm(BatchNorm {
-                        prefix,
-                        gamma,
-                        beta,
-                        mean,
-                        var,
-                        eps,
-                    }),
-                    x,
-                ))
+                Ok((Op::BatchNorm(BatchNorm { prefix, gamma, beta, mean, var, eps }), x))
             }
             "relu" | "relu6" | "flatten" | "softmax" | "global_avg_pool" => {
                 self.check_attrs(cx, lf, &[])?;
@@ -663,29 +490,13 @@ impl Validator<'_> {
                 let kernel = self.pair(cx, lf, "kernel", None, true)?;
                 let stride = self.pair(cx, lf, "stride", Some(kernel), true)?;
                 let padding = self.padding(cx, lf, x, kernel, stride, [1, 1])?;
-                if padding.top.max(padding.bottom) >= kernel[0]
-                    || padding.left.max(padding.right) >= kernel[1]
-                {
-                    return Err(self.attr_err(
-                        cx,
-                        "padding",
-                        format!("{padding:?} must be smaller than the kernel {kernel:?}"),
-                    ));
+                if padding.top.max(padding.bottom) >= kernel[0] || padding.left.max(padding.right) >= kernel[1] {
+                    return Err(self.attr_err(cx, "padding", format!("{padding:?} must be smaller than the kernel {kernel:?}")));
                 }
                 let (oh, ow) = window_output(x.h, x.w, kernel, stride, [1, 1], padding)
-                    .ok_or_else(|| {
-                        self.shape_err(cx, format!("window {kernel:?} does not fit input {x}"))
-                    })?;
-                let p = Pool2d {
-                    kernel,
-                    stride,
-                    padding,
-                };
-                let op = if lf.op == "max_pool2d" {
-                    Op::MaxPool2d(p)
-                } else {
-                    Op::AvgPool2d(p)
-                };
+                    .ok_or_else(|| self.shape_err(cx, format!("window {kernel:?} does not fit input {x}")))?;
+                let p = Pool2d { kernel, stride, padding };
+                let op = if lf.op == "max_pool2d" { Op::MaxPool2d(p) } else { Op::AvgPool2d(p) };
                 Ok((op, Shape::new(x.c, oh, ow)))
             }
             "linear" => {
@@ -695,16 +506,9 @@ impl Validator<'_> {
                 if x.h != 1 || x.w != 1 {
                     return Err(self.shape_err(cx, format!("input {x} is not flat; add a `flatten` or `global_avg_pool` layer before it")));
                 }
-                let wname = self
-                    .str_attr(cx, lf, "weight")?
-                    .ok_or_else(|| self.attr_err(cx, "weight", "missing"))?;
+                let wname = self.str_attr(cx, lf, "weight")?.ok_or_else(|| self.attr_err(cx, "weight", "missing"))?;
                 let weight = self.tensor(cx, &wname)?;
-                self.expect_shape(
-                    cx,
-                    &weight,
-                    weight.shape.len() == 2 && weight.shape[1] == n && weight.shape[0] > 0,
-                    format!("[out, {n}] (input {x})"),
-                )?;
+                self.expect_shape(cx, &weight, weight.shape.len() == 2 && weight.shape[1] == n && weight.shape[0] > 0, format!("[out, {n}] (input {x})"))?;
                 let o = weight.shape[0];
                 let bias = match self.str_attr(cx, lf, "bias")? {
                     None => None,
@@ -714,15 +518,7 @@ impl Validator<'_> {
                         Some(t)
                     }
                 };
-                Ok((
-                    Op::Linear(Linear {
-                        weight,
-                        bias,
-                        out_features: o,
-                        in_features: n,
-                    }),
-                    Shape::flat(o),
-                ))
+                Ok((Op::Linear(Linear { weight, bias, out_features: o, in_features: n }), Shape::flat(o)))
             }
             "concat" => {
                 self.check_attrs(cx, lf, &["axis"])?;
@@ -737,22 +533,14 @@ impl Validator<'_> {
                     if (s.h, s.w) != (first.h, first.w) {
                         return Err(self.shape_err(cx, format!("input {k} has shape {s} but input 0 has {first}; concatenated maps need the same height and width")));
                     }
-                    c = c
-                        .checked_add(s.c)
-                        .ok_or_else(|| self.shape_err(cx, "channel count overflows"))?;
+                    c = c.checked_add(s.c).ok_or_else(|| self.shape_err(cx, "channel count overflows"))?;
                 }
                 Ok((Op::Concat, Shape::new(c, first.h, first.w)))
             }
             "add" => {
                 self.check_attrs(cx, lf, &[])?;
                 if ins[0] != ins[1] {
-                    return Err(self.shape_err(
-                        cx,
-                        format!(
-                            "inputs have shapes {} and {}; `add` needs equal shapes",
-                            ins[0], ins[1]
-                        ),
-                    ));
+                    return Err(self.shape_err(cx, format!("inputs have shapes {} and {}; `add` needs equal shapes", ins[0], ins[1])));
                 }
                 Ok((Op::Add, ins[0]))
             }

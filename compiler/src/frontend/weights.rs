@@ -30,38 +30,25 @@ pub struct TensorStore {
 impl TensorStore {
     /// An empty store attributed to `path`.
     pub fn new(path: impl Into<PathBuf>) -> Self {
-        TensorStore {
-            path: path.into(),
-            tensors: BTreeMap::new(),
-        }
+        TensorStore { path: path.into(), tensors: BTreeMap::new() }
     }
 
     /// Adds or replaces a tensor.
     pub fn insert(&mut self, name: impl Into<String>, shape: Vec<usize>, data: Vec<f32>) {
-        assert_eq!(
-            shape.iter().product::<usize>(),
-            data.len(),
-            "tensor data does not match its shape"
-        );
-        self.tensors
-            .insert(name.into(), StoredTensor { shape, data });
+        assert_eq!(shape.iter().product::<usize>(), data.len(), "tensor data does not match its shape");
+        self.tensors.insert(name.into(), StoredTensor { shape, data });
     }
 
     /// Reads a safetensors file.
     pub fn load(path: &Path) -> Result<Self, LoadError> {
-        let bytes = std::fs::read(path).map_err(|source| LoadError::Io {
-            path: path.to_path_buf(),
-            source,
-        })?;
+        let bytes = std::fs::read(path).map_err(|source| LoadError::Io { path: path.to_path_buf(), source })?;
         Self::from_bytes(&bytes, path)
     }
 
     /// Parses safetensors bytes; `path` names them in errors.
     pub fn from_bytes(bytes: &[u8], path: &Path) -> Result<Self, LoadError> {
-        let st = SafeTensors::deserialize(bytes).map_err(|e| LoadError::Safetensors {
-            weights: path.to_path_buf(),
-            message: e.to_string(),
-        })?;
+        let st = SafeTensors::deserialize(bytes)
+            .map_err(|e| LoadError::Safetensors { weights: path.to_path_buf(), message: e.to_string() })?;
         let mut store = TensorStore::new(path);
         for (name, view) in st.tensors() {
             let data = to_f32(&view).ok_or_else(|| LoadError::Dtype {
@@ -69,13 +56,7 @@ impl TensorStore {
                 tensor: name.clone(),
                 dtype: format!("{:?}", view.dtype()),
             })?;
-            store.tensors.insert(
-                name,
-                StoredTensor {
-                    shape: view.shape().to_vec(),
-                    data,
-                },
-            );
+            store.tensors.insert(name, StoredTensor { shape: view.shape().to_vec(), data });
         }
         Ok(store)
     }
@@ -86,22 +67,11 @@ impl TensorStore {
         let raw: Vec<(String, Vec<u8>, Vec<usize>)> = self
             .tensors
             .iter()
-            .map(|(n, t)| {
-                (
-                    n.clone(),
-                    t.data.iter().flat_map(|v| v.to_le_bytes()).collect(),
-                    t.shape.clone(),
-                )
-            })
+            .map(|(n, t)| (n.clone(), t.data.iter().flat_map(|v| v.to_le_bytes()).collect(), t.shape.clone()))
             .collect();
         let views: Vec<(String, TensorView<'_>)> = raw
             .iter()
-            .map(|(n, b, s)| {
-                (
-                    n.clone(),
-                    TensorView::new(Dtype::F32, s.clone(), b).expect("consistent tensor"),
-                )
-            })
+            .map(|(n, b, s)| (n.clone(), TensorView::new(Dtype::F32, s.clone(), b).expect("consistent tensor")))
             .collect();
         safetensors::serialize(views, None).expect("serialising f32 tensors cannot fail")
     }
@@ -115,18 +85,9 @@ impl TensorStore {
 fn to_f32(view: &TensorView<'_>) -> Option<Vec<f32>> {
     let b = view.data();
     Some(match view.dtype() {
-        Dtype::F32 => b
-            .chunks_exact(4)
-            .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
-            .collect(),
-        Dtype::F16 => b
-            .chunks_exact(2)
-            .map(|c| half::f16::from_le_bytes([c[0], c[1]]).to_f32())
-            .collect(),
-        Dtype::BF16 => b
-            .chunks_exact(2)
-            .map(|c| half::bf16::from_le_bytes([c[0], c[1]]).to_f32())
-            .collect(),
+        Dtype::F32 => b.chunks_exact(4).map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]])).collect(),
+        Dtype::F16 => b.chunks_exact(2).map(|c| half::f16::from_le_bytes([c[0], c[1]]).to_f32()).collect(),
+        Dtype::BF16 => b.chunks_exact(2).map(|c| half::bf16::from_le_bytes([c[0], c[1]]).to_f32()).collect(),
         _ => return None,
     })
 }

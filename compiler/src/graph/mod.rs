@@ -340,9 +340,6 @@ impl Graph {
     }
     /// Looks a layer up by name.
     pub fn find_layer(&self, name: &str) -> Option<LayerId> {
-        self.layers
-            .iter()
-            .position(|l| l.name == name)
-            .map(|i| LayerId(i as u32))
+        self.layers.iter().position(|l| l.name == name).map(|i| LayerId(i as u32))
     }
 }

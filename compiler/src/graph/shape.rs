@@ -75,12 +75,7 @@ pub struct Padding {
 impl Padding {
     /// The same padding on all four sides.
     pub const fn uniform(p: usize) -> Self {
-        Padding {
-            top: p,
-            left: p,
-            bottom: p,
-            right: p,
-        }
+        Padding { top: p, left: p, bottom: p, right: p }
     }
 
     /// True when no border is padded.
@@ -128,19 +123,12 @@ impl Window {
 
     /// Padding that makes the output `ceil(input / stride)` long, split with
     /// the odd pixel at the end (the "same" convention of common frameworks).
-    pub fn same_padding(
-        input: usize,
-        kernel: usize,
-        stride: usize,
-        dilation: usize,
-    ) -> Option<(usize, usize)> {
+    pub fn same_padding(input: usize, kernel: usize, stride: usize, dilation: usize) -> Option<(usize, usize)> {
         if stride == 0 {
             return None;
         }
         let out = input.div_ceil(stride);
-        let k = dilation
-            .checked_mul(kernel.checked_sub(1)?)?
-            .checked_add(1)?;
+        let k = dilation.checked_mul(kernel.checked_sub(1)?)?.checked_add(1)?;
         let needed = (out.checked_sub(1)?).checked_mul(stride)?.checked_add(k)?;
         let total = needed.saturating_sub(input);
         Some((total / 2, total - total / 2))
@@ -157,20 +145,8 @@ pub fn window_output(
     dilation: [usize; 2],
     padding: Padding,
 ) -> Option<(usize, usize)> {
-    let wh = Window {
-        kernel: kernel[0],
-        stride: stride[0],
-        dilation: dilation[0],
-        pad_lo: padding.top,
-        pad_hi: padding.bottom,
-    };
-    let ww = Window {
-        kernel: kernel[1],
-        stride: stride[1],
-        dilation: dilation[1],
-        pad_lo: padding.left,
-        pad_hi: padding.right,
-    };
+    let wh = Window { kernel: kernel[0], stride: stride[0], dilation: dilation[0], pad_lo: padding.top, pad_hi: padding.bottom };
+    let ww = Window { kernel: kernel[1], stride: stride[1], dilation: dilation[1], pad_lo: padding.left, pad_hi: padding.right };
     Some((wh.output_len(h)?, ww.output_len(w)?))
 }
 
@@ -179,13 +155,7 @@ mod tests {
     use super::*;
 
     fn w(kernel: usize, stride: usize, pad: usize) -> Window {
-        Window {
-            kernel,
-            stride,
-            dilation: 1,
-            pad_lo: pad,
-            pad_hi: pad,
-        }
+        Window { kernel, stride, dilation: 1, pad_lo: pad, pad_hi: pad }
     }
 
     // Worked examples from Dumoulin & Visin (2016), "A guide to convolution
@@ -207,13 +177,7 @@ mod tests {
         // Fig 2.7: i=6, k=3, s=2, p=1 -> o=3.
         assert_eq!(w(3, 2, 1).output_len(6), Some(3));
         // Fig 5.1 (dilated): i=7, k=3, d=2, s=1, p=0 -> o=3.
-        let d = Window {
-            kernel: 3,
-            stride: 1,
-            dilation: 2,
-            pad_lo: 0,
-            pad_hi: 0,
-        };
+        let d = Window { kernel: 3, stride: 1, dilation: 2, pad_lo: 0, pad_hi: 0 };
         assert_eq!(d.output_len(7), Some(3));
     }
 

@@ -131,17 +131,19 @@ pub fn ref_conv(
                         let ix = (ox * p.sx + kx * p.dx) as i64 - p.pl as i64;
                         for ci in 0..cpg {
                             let ch = g * cpg + ci;
-                            let x: i8 =
-                                if iy < 0 || ix < 0 || iy >= input.h as i64 || ix >= input.w as i64
-                                {
-                                    p.pad_value
-                                } else {
-                                    let v = get(arena, input, iy as usize, ix as usize, ch);
-                                    match tr {
-                                        Some(t) => t.apply(ch, v),
-                                        None => v,
-                                    }
-                                };
+                            let x: i8 = if iy < 0
+                                || ix < 0
+                                || iy >= input.h as i64
+                                || ix >= input.w as i64
+                            {
+                                p.pad_value
+                            } else {
+                                let v = get(arena, input, iy as usize, ix as usize, ch);
+                                match tr {
+                                    Some(t) => t.apply(ch, v),
+                                    None => v,
+                                }
+                            };
                             let wv = weights[((o * p.kh + ky) * p.kw + kx) * cpg + ci];
                             acc += wv as i64 * x as i64;
                         }

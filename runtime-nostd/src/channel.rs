@@ -1,0 +1,139 @@
+//! Element-wise channel kernels: a per-channel transform as a step of its
+//! own, and the channel copy that assembles a concatenation when producers
+//! could not write into its region directly.
+
+use crate::{Error, InputTransform, MapRef};
+
+/// Applies a per-channel transform to every element of `input`, writing
+/// `output[y][x][ch] = t.apply(ch, input[y][x][ch])`.
+///
+/// This is the standalone form of the transform a convolution can fuse into
+/// its input read (batch norm and ReLU of pre-activation networks, or a ReLU
+/// after a concatenation). Both maps have the same shape. In place is
+/// allowed: `output` may be exactly `input` (the same `MapRef`); otherwise
+/// the two must not share elements. For an affine transform, `zp_out` is the
+/// output's zero point (there is no padding, so no other check ties it).
+pub fn channel_transform(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    t: &InputTransform<'_>,
+) -> Result<(), Error> {
+    input.check(arena.len())?;
+    output.check(arena.len())?;
+    if !input.same_shape(&output) {
+        return Err(Error::ShapeMismatch);
+    }
+    if output != input && !output.is_disjoint(&input) {
+        return Err(Error::Overlap);
+    }
+    let valid = match t {
+        InputTransform::Affine(a) => {
+            a.mul.len() >= input.c && a.add.len() >= input.c && a.shift <= 62 && a.min <= a.max
+        }
+        InputTransform::Table(tab) => input.c.checked_mul(256).is_some_and(|n| tab.len() >= n),
+    };
+    if !valid {
+        return Err(Error::BadParams);
+    }
+    for y in 0..input.h {
+        for x in 0..input.w {
+            let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
+            for ch in 0..input.c {
+                // Read before write: element-wise, so in place is exact.
+                let v = t.apply(ch, arena[src + ch]);
+                arena[dst + ch] = v;
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Copies every element of `input` to `output` (same shape; typically
+/// `output` is a channel view of a concatenation region, see
+/// [`MapRef::channels`]). When `output == input` the data is already in
+/// place and nothing is done; otherwise the maps must not share elements.
+pub fn copy_channels(arena: &mut [i8], input: MapRef, output: MapRef) -> Result<(), Error> {
+    input.check(arena.len())?;
+    output.check(arena.len())?;
+    if !input.same_shape(&output) {
+        return Err(Error::ShapeMismatch);
+    }
+    if output == input {
+        return Ok(());
+    }
+    if !output.is_disjoint(&input) {
+        return Err(Error::Overlap);
+    }
+    for y in 0..input.h {
+        for x in 0..input.w {
+            let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
+            arena.copy_within(src..src + input.c, dst);
+        }
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::AffineTransform;
+
+    /// Naive reference: the affine formula of [`AffineTransform`] written out
+    /// with plain i64 arithmetic and floor division.
+    fn naive_affine(x: i8, mul: i32, add: i32, shift: u32, zp_in: i32, zp_out: i32, min: i8, max: i8) -> i8 {
+        let t = (x as i64 - zp_in as i64) * mul as i64 + add as i64;
+        let t = if shift == 0 { t } else { (t + (1i64 << (shift - 1))).div_euclid(1i64 << shift) };
+        (t + zp_out as i64).clamp(min as i64, max as i64) as i8
+    }
+
+    #[test]
+    fn transform_matches_naive_reference_in_place_and_out_of_place() {
+        let (h, w, c) = (2, 3, 3);
+        let mut arena = [0i8; 2 * 18];
+        for (i, v) in arena[..18].iter_mut().enumerate() {
+            *v = (i as i32 * 37 - 128) as i8;
+        }
+        let mul = [3 << 20, -(5 << 19), 1 << 16];
+        let add = [7 << 18, 0, -(123 << 16)];
+        let a = AffineTransform { mul: &mul, add: &add, shift: 20, zp_in: -5, zp_out: -128, min: -128, max: 100 };
+        let t = InputTransform::Affine(a);
+        let src = MapRef::new(0, h, w, c);
+        let dst = MapRef::new(18, h, w, c);
+        channel_transform(&mut arena, src, dst, &t).unwrap();
+        for i in 0..18 {
+            let ch = i % c;
+            let want = naive_affine(arena[i], mul[ch], add[ch], 20, -5, -128, -128, 100);
+            assert_eq!(arena[18 + i], want, "element {i}");
+        }
+        let expected: [i8; 18] = core::array::from_fn(|i| arena[18 + i]);
+        channel_transform(&mut arena, src, src, &t).unwrap();
+        assert_eq!(arena[..18], expected);
+    }
+
+    #[test]
+    fn table_transform_and_overlap_refused() {
+        let mut table = [0i8; 512];
+        for (i, v) in table.iter_mut().enumerate() {
+            *v = if i < 256 { (i as u8 as i8).wrapping_neg() } else { 7 };
+        }
+        let mut arena = [1i8, -2, 3, -4, 0, 0, 0, 0];
+        let t = InputTransform::Table(&table);
+        channel_transform(&mut arena, MapRef::new(0, 1, 2, 2), MapRef::new(4, 1, 2, 2), &t).unwrap();
+        assert_eq!(arena[4..], [-1, 7, -3, 7]);
+        let r = channel_transform(&mut arena, MapRef::new(0, 1, 2, 2), MapRef::new(2, 1, 2, 2), &t);
+        assert_eq!(r, Err(Error::Overlap));
+    }
+
+    #[test]
+    fn copy_into_concat_region_views() {
+        // Two 2x1 maps of 1 and 2 channels copied into a 3-channel region.
+        let mut arena = [10i8, 11, 20, 21, 22, 23, 0, 0, 0, 0, 0, 0];
+        let region = MapRef::new(6, 2, 1, 3);
+        copy_channels(&mut arena, MapRef::new(0, 2, 1, 1), region.channels(0, 1)).unwrap();
+        copy_channels(&mut arena, MapRef::new(2, 2, 1, 2), region.channels(1, 2)).unwrap();
+        assert_eq!(arena[6..], [10, 20, 21, 11, 22, 23]);
+        let bad = copy_channels(&mut arena, MapRef::new(0, 2, 1, 1), MapRef::new(6, 2, 1, 2));
+        assert_eq!(bad, Err(Error::ShapeMismatch));
+    }
+}
