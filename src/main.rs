@@ -26,6 +26,9 @@ enum Command {
     Plan(cmd::plan::Args),
     /// Compile a graph into a no_std Rust module and its weights file.
     Build(cmd::build::Args),
+    /// Build a generated module, run it on the host or an emulated Cortex-M
+    /// core, and compare it with the integer simulator and the float model.
+    Check(cmd::check::Args),
 }
 
 fn main() {
@@ -35,6 +38,7 @@ fn main() {
         Command::Calibrate(args) => cmd::calibrate::run(&args),
         Command::Plan(args) => cmd::plan::run(&args),
         Command::Build(args) => cmd::build::run(&args),
+        Command::Check(args) => cmd::check::run(&args),
     };
     if let Err(e) = result {
         eprintln!("ingot: error: {e:#}");

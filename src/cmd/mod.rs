@@ -1,6 +1,7 @@
 //! One module per subcommand.
 
-pub mod calibrate;
 pub mod build;
+pub mod calibrate;
+pub mod check;
 pub mod inspect;
 pub mod plan;

@@ -1,0 +1,584 @@
+//! The `ingot check` report: `report.md`, `report.json`, and SVG charts
+//! (`sqnr.svg`: per-layer SQNR bars; `confusion_float.svg`,
+//! `confusion_int8.svg`: confusion matrices as heatmaps), written into a
+//! staging directory that is renamed into place, so a report directory is
+//! never half-written.
+
+use super::compare::{Accuracy, BitExact, FloatAgreement, LayerDiff, Thresholds};
+use super::icount::Calibration;
+use super::runner::unique_suffix;
+use super::size::SizeReport;
+use super::{CheckError, Result};
+use plotters::prelude::*;
+use serde::Serialize;
+use std::fmt::Write as _;
+use std::path::Path;
+
+/// Figures of one step.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct LayerFigures {
+    /// Step index.
+    pub step: usize,
+    /// Step name.
+    pub name: String,
+    /// Kernel kind (`conv2d`, `linear`, ...), if known.
+    pub kind: String,
+    /// Multiply-accumulates of the step (0 for steps without any).
+    pub macs: u64,
+    /// SQNR of the step's output against the float reference, dB.
+    pub sqnr_db: Option<f64>,
+    /// Mean executed instructions of the step on the emulated core.
+    pub instructions: Option<u64>,
+}
+
+/// Instruction counts of the emulated runs.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct InstructionFigures {
+    /// Mean instructions per inference (`run`).
+    pub per_inference_mean: u64,
+    /// Smallest over the images.
+    pub per_inference_min: u64,
+    /// Largest over the images.
+    pub per_inference_max: u64,
+    /// Total MACs of the network.
+    pub macs: u64,
+    /// `per_inference_mean / macs`.
+    pub per_mac: Option<f64>,
+    /// Mean instructions of `run_traced` (hook time excluded) in the
+    /// traced build the per-layer figures come from.
+    pub traced_per_inference_mean: Option<u64>,
+    /// The calibration used.
+    pub calibration: Calibration,
+}
+
+/// Everything `ingot check` found.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct CheckReport {
+    /// Network name.
+    pub model: String,
+    /// The module's `MODEL_HASH`, if known.
+    pub model_hash: Option<String>,
+    /// What ran where (board and stand-ins spelled out).
+    pub run_on: String,
+    /// Images checked.
+    pub images: usize,
+    /// Module vs integer simulator.
+    pub bit_exact: Option<BitExact>,
+    /// First step whose map differs from the simulator's.
+    pub first_differing_layer: Option<LayerDiff>,
+    /// Dequantized output vs float reference.
+    pub float: Option<FloatAgreement>,
+    /// With labels: accuracies and confusion matrices.
+    pub accuracy: Option<Accuracy>,
+    /// Class names.
+    pub labels: Vec<String>,
+    /// Per step.
+    pub layers: Vec<LayerFigures>,
+    /// Emulated runs only.
+    pub instructions: Option<InstructionFigures>,
+    /// Emulated runs only.
+    pub sizes: Option<SizeReport>,
+    /// Thresholds checked.
+    pub thresholds: Thresholds,
+    /// Threshold and bit-exactness failures (empty = pass).
+    pub failures: Vec<String>,
+}
+
+fn pct(x: f64) -> String {
+    format!("{:.2}%", x * 100.0)
+}
+
+fn db(x: Option<f64>) -> String {
+    match x {
+        Some(v) if v.is_infinite() && v > 0.0 => "exact".into(),
+        Some(v) if v.is_finite() => format!("{v:.1}"),
+        Some(_) => "-inf".into(),
+        None => "–".into(),
+    }
+}
+
+/// Thousands separators for counts.
+fn thousands(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(' ');
+        }
+        out.push(c);
+    }
+    out
+}
+
+/// Renders the markdown report.
+pub fn markdown(r: &CheckReport) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "# ingot check: {}\n", r.model);
+    if let Some(h) = &r.model_hash {
+        let _ = writeln!(s, "Module hash `{h}`. ");
+    }
+    let _ = writeln!(s, "Ran on {}; {} images.\n", r.run_on, r.images);
+    if r.failures.is_empty() {
+        let _ = writeln!(s, "**Result: pass.**\n");
+    } else {
+        let _ = writeln!(s, "**Result: FAIL.**\n");
+        for f in &r.failures {
+            let _ = writeln!(s, "- {f}");
+        }
+        s.push('\n');
+    }
+
+    let _ = writeln!(s, "## Module vs integer simulator\n");
+    match &r.bit_exact {
+        Some(b) if b.identical() => {
+            let _ = writeln!(s, "Bit-identical on all {} images.\n", b.images);
+        }
+        Some(b) => {
+            let _ = writeln!(
+                s,
+                "**Differs on {} of {} images: this is a bug.**",
+                b.mismatched_images.len(),
+                b.images
+            );
+            if let Some(m) = &b.first {
+                let _ = writeln!(
+                    s,
+                    "First difference: image {}, output {}: module {} vs simulator {}.",
+                    m.image, m.index, m.module, m.reference
+                );
+            }
+            s.push('\n');
+        }
+        None => {
+            let _ = writeln!(s, "Not compared.\n");
+        }
+    }
+    if let Some(d) = &r.first_differing_layer {
+        let _ = writeln!(
+            s,
+            "First differing layer: step {} `{}` (image {}, {} of {} values differ, first at {}, largest difference {}{}).\n",
+            d.step,
+            d.name,
+            d.image,
+            d.differing,
+            d.len,
+            d.first_index,
+            d.max_abs_diff,
+            if d.shape_mismatch { ", map missing or of another length" } else { "" }
+        );
+    }
+
+    if let Some(f) = &r.float {
+        let _ = writeln!(s, "## Against the float reference\n");
+        let _ = writeln!(s, "| figure | value |\n|---|---|");
+        let _ = writeln!(s, "| top-1 agreement | {} |", pct(f.top1_agreement));
+        let _ = writeln!(s, "| mean abs. logit error | {:.4} |", f.mean_abs_error);
+        let _ = writeln!(s, "| max abs. logit error | {:.4} |\n", f.max_abs_error);
+    }
+    if let Some(a) = &r.accuracy {
+        let _ = writeln!(s, "## Accuracy ({} labelled images)\n", a.images);
+        let _ = writeln!(s, "| float | int8 | drop |\n|---|---|---|");
+        let _ = writeln!(
+            s,
+            "| {} | {} | {:.2} pp |\n",
+            pct(a.float_accuracy),
+            pct(a.int8_accuracy),
+            a.drop_pp
+        );
+        let _ = writeln!(
+            s,
+            "Confusion matrices: `confusion_float.svg`, `confusion_int8.svg` (rows: true class, columns: predicted).\n"
+        );
+    }
+
+    if !r.layers.is_empty() {
+        let _ = writeln!(s, "## Layers\n");
+        let _ = writeln!(s, "| step | name | kind | MACs | SQNR (dB) | instructions | instr./MAC |\n|---|---|---|---|---|---|---|");
+        for l in &r.layers {
+            let per_mac = match (l.instructions, l.macs) {
+                (Some(i), m) if m > 0 => format!("{:.2}", i as f64 / m as f64),
+                _ => "–".into(),
+            };
+            let _ = writeln!(
+                s,
+                "| {} | {} | {} | {} | {} | {} | {} |",
+                l.step,
+                l.name,
+                l.kind,
+                thousands(l.macs),
+                db(l.sqnr_db),
+                l.instructions.map(thousands).unwrap_or_else(|| "–".into()),
+                per_mac
+            );
+        }
+        if r.layers.iter().any(|l| l.sqnr_db.is_some()) {
+            s.push_str("\nPer-layer SQNR chart: `sqnr.svg`.\n");
+        }
+        s.push('\n');
+    }
+
+    if let Some(i) = &r.instructions {
+        let _ = writeln!(s, "## Instruction counts\n");
+        let _ = writeln!(
+            s,
+            "Executed instructions per inference: mean {}, min {}, max {}; {} MACs{}.\n",
+            thousands(i.per_inference_mean),
+            thousands(i.per_inference_min),
+            thousands(i.per_inference_max),
+            thousands(i.macs),
+            i.per_mac
+                .map(|p| format!(", {p:.2} instructions per MAC"))
+                .unwrap_or_default()
+        );
+        let _ = writeln!(
+            s,
+            "These are instructions executed by the emulated core (QEMU {}, `-icount shift=0`), not cycles: QEMU does not model pipelines, caches or wait states. SysTick ticks are converted with a measured {:.3} instructions per tick (resolution ±1 tick per measurement).\n",
+            i.calibration.machine, i.calibration.instructions_per_tick
+        );
+        if let Some(t) = i.traced_per_inference_mean {
+            let _ = writeln!(
+                s,
+                "The per-layer column comes from a second build that also links `run_traced` (the hook's own time excluded); its code is specialised differently, so the layers add up to its total of {} instructions per inference rather than to the figure above.\n",
+                thousands(t)
+            );
+        }
+    }
+    if let Some(z) = &r.sizes {
+        let _ = writeln!(s, "## Sizes (firmware ELF)\n");
+        let _ = writeln!(s, "| figure | bytes | budget |\n|---|---|---|");
+        let b = |v: Option<u64>| v.map(thousands).unwrap_or_else(|| "–".into());
+        let _ = writeln!(
+            s,
+            "| flash (vectors + .text + .rodata + .data image) | {} | {} |",
+            thousands(z.flash),
+            b(z.budget.flash)
+        );
+        let _ = writeln!(
+            s,
+            "| RAM (.data + .bss + measured stack) | {} | {} |",
+            thousands(z.ram),
+            b(z.budget.ram)
+        );
+        let _ = writeln!(
+            s,
+            "| measured stack high-water mark | {} | |",
+            b(z.stack_used)
+        );
+        let _ = writeln!(
+            s,
+            "| module code + constants (by symbol) | {} | |",
+            thousands(z.module.flash)
+        );
+        let _ = writeln!(
+            s,
+            "| module scratch + input + output | {} | |\n",
+            thousands(z.module.ram)
+        );
+        let _ = writeln!(
+            s,
+            "The ELF is the whole check runner (startup code, semihosting I/O and timing included), so it is an upper bound for the module in an application.\n"
+        );
+        for o in &z.over_budget {
+            let _ = writeln!(s, "- **{o}**");
+        }
+    }
+    s
+}
+
+fn plot_err(e: impl std::fmt::Display) -> CheckError {
+    CheckError::Format {
+        file: "chart".into(),
+        detail: e.to_string(),
+    }
+}
+
+/// Per-layer SQNR as an SVG bar chart (layers without a finite SQNR are
+/// drawn at the top of the scale and labelled "exact").
+pub fn sqnr_svg(layers: &[LayerFigures]) -> Result<String> {
+    let vals: Vec<(String, f64, bool)> = layers
+        .iter()
+        .filter_map(|l| {
+            l.sqnr_db
+                .map(|v| (format!("{} {}", l.step, l.name), v, v.is_finite()))
+        })
+        .collect();
+    let finite_max = vals
+        .iter()
+        .filter(|v| v.2)
+        .map(|v| v.1)
+        .fold(0.0f64, f64::max);
+    let top = (finite_max * 1.15).max(10.0);
+    let mut svg = String::new();
+    {
+        let width = (160 + 60 * vals.len().max(1)) as u32;
+        let root = SVGBackend::with_string(&mut svg, (width.max(480), 400)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let n = vals.len().max(1);
+        let mut chart = ChartBuilder::on(&root)
+            .caption("Per-layer SQNR vs float reference", ("sans-serif", 18))
+            .margin(12)
+            .x_label_area_size(90)
+            .y_label_area_size(55)
+            .build_cartesian_2d((0..n).into_segmented(), 0.0..top)
+            .map_err(plot_err)?;
+        let names: Vec<String> = vals.iter().map(|v| v.0.clone()).collect();
+        chart
+            .configure_mesh()
+            .disable_x_mesh()
+            .x_labels(n)
+            .x_label_style(
+                ("sans-serif", 11)
+                    .into_font()
+                    .transform(FontTransform::Rotate90),
+            )
+            .x_label_formatter(&|v| match v {
+                SegmentValue::CenterOf(i) => names.get(*i).cloned().unwrap_or_default(),
+                _ => String::new(),
+            })
+            .y_desc("SQNR (dB)")
+            .draw()
+            .map_err(plot_err)?;
+        chart
+            .draw_series(
+                Histogram::vertical(&chart)
+                    .style(RGBColor(60, 110, 180).filled())
+                    .margin(6)
+                    .data(
+                        vals.iter()
+                            .enumerate()
+                            .map(|(i, v)| (i, if v.2 { v.1.max(0.0) } else { top })),
+                    ),
+            )
+            .map_err(plot_err)?;
+        root.present().map_err(plot_err)?;
+    }
+    Ok(svg)
+}
+
+/// A confusion matrix (`[true][predicted]`) as an SVG heatmap with counts.
+pub fn confusion_svg(title: &str, m: &[Vec<u64>], labels: &[String]) -> Result<String> {
+    let n = m.len().max(1);
+    let max = m.iter().flatten().copied().max().unwrap_or(0).max(1);
+    let cell = if n > 20 { 20 } else { 40 };
+    let side = (cell * n) as u32 + 160;
+    let mut svg = String::new();
+    {
+        let root =
+            SVGBackend::with_string(&mut svg, (side.max(360), side.max(360))).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(title, ("sans-serif", 18))
+            .margin(12)
+            .x_label_area_size(70)
+            .y_label_area_size(70)
+            .build_cartesian_2d(0..n, 0..n)
+            .map_err(plot_err)?;
+        let name = |i: usize| labels.get(i).cloned().unwrap_or_else(|| i.to_string());
+        chart
+            .configure_mesh()
+            .disable_mesh()
+            .x_labels(n.min(30))
+            .y_labels(n.min(30))
+            .x_desc("predicted")
+            .y_desc("true")
+            .x_label_formatter(&|&i| if i < n { name(i) } else { String::new() })
+            .y_label_formatter(&|&i| {
+                if i < n {
+                    name(n - 1 - i)
+                } else {
+                    String::new()
+                }
+            })
+            .draw()
+            .map_err(plot_err)?;
+        let cells = m
+            .iter()
+            .enumerate()
+            .flat_map(|(t, row)| row.iter().enumerate().map(move |(p, &v)| (t, p, v)));
+        chart
+            .draw_series(cells.clone().map(|(t, p, v)| {
+                let f = v as f64 / max as f64;
+                let shade = (255.0 * (1.0 - 0.85 * f)) as u8;
+                let y = n - 1 - t;
+                Rectangle::new(
+                    [(p, y), (p + 1, y + 1)],
+                    RGBColor(shade, shade, 255).filled(),
+                )
+            }))
+            .map_err(plot_err)?;
+        if n <= 20 {
+            chart
+                .draw_series(cells.map(|(t, p, v)| {
+                    let y = n - 1 - t;
+                    Text::new(v.to_string(), (p, y + 1), ("sans-serif", 12).into_font())
+                }))
+                .map_err(plot_err)?;
+        }
+        root.present().map_err(plot_err)?;
+    }
+    Ok(svg)
+}
+
+/// Writes `report.md`, `report.json` and the charts into `dir`, replacing
+/// a previous report there as a whole.
+pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
+    let parent = dir
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    std::fs::create_dir_all(parent)
+        .map_err(|e| CheckError::io(format!("creating {}", parent.display()), e))?;
+    let base = dir
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "report".into());
+    let stage = parent.join(format!(".{base}.staging-{}", unique_suffix()));
+    let result = (|| -> Result<()> {
+        std::fs::create_dir_all(&stage)
+            .map_err(|e| CheckError::io(format!("creating {}", stage.display()), e))?;
+        let put = |name: &str, bytes: &[u8]| {
+            std::fs::write(stage.join(name), bytes)
+                .map_err(|e| CheckError::io(format!("writing {name}"), e))
+        };
+        put("report.md", markdown(r).as_bytes())?;
+        let json = serde_json::to_string_pretty(r).map_err(|e| CheckError::Format {
+            file: "report.json".into(),
+            detail: e.to_string(),
+        })?;
+        put("report.json", json.as_bytes())?;
+        if r.layers.iter().any(|l| l.sqnr_db.is_some()) {
+            put("sqnr.svg", sqnr_svg(&r.layers)?.as_bytes())?;
+        }
+        if let Some(a) = &r.accuracy {
+            put(
+                "confusion_float.svg",
+                confusion_svg(
+                    "Float reference: true vs predicted",
+                    &a.confusion_float,
+                    &r.labels,
+                )?
+                .as_bytes(),
+            )?;
+            put(
+                "confusion_int8.svg",
+                confusion_svg(
+                    "int8 module: true vs predicted",
+                    &a.confusion_int8,
+                    &r.labels,
+                )?
+                .as_bytes(),
+            )?;
+        }
+        let old = parent.join(format!(".{base}.old-{}", unique_suffix()));
+        let had_old = dir.exists();
+        if had_old {
+            std::fs::rename(dir, &old)
+                .map_err(|e| CheckError::io(format!("moving aside {}", dir.display()), e))?;
+        }
+        if let Err(e) = std::fs::rename(&stage, dir) {
+            if had_old {
+                let _ = std::fs::rename(&old, dir);
+            }
+            return Err(CheckError::io(
+                format!("renaming the report into {}", dir.display()),
+                e,
+            ));
+        }
+        if had_old {
+            let _ = std::fs::remove_dir_all(&old);
+        }
+        Ok(())
+    })();
+    if result.is_err() {
+        let _ = std::fs::remove_dir_all(&stage);
+    }
+    result
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::check::compare;
+
+    fn sample() -> CheckReport {
+        let acc = compare::accuracy(&[0, 1, 2, 1], &[0, 1, 1, 1], &[0, 1, 2, 1], 3);
+        CheckReport {
+            model: "tiny".into(),
+            run_on: "host".into(),
+            images: 4,
+            bit_exact: Some(compare::compare_outputs(&[vec![1]], &[vec![1]])),
+            labels: vec!["cat".into(), "dog".into(), "owl".into()],
+            accuracy: Some(acc),
+            layers: vec![
+                LayerFigures {
+                    step: 0,
+                    name: "conv1".into(),
+                    kind: "conv2d".into(),
+                    macs: 2304,
+                    sqnr_db: Some(31.5),
+                    instructions: Some(118_720),
+                },
+                LayerFigures {
+                    step: 1,
+                    name: "pool1".into(),
+                    kind: "max_pool".into(),
+                    macs: 0,
+                    sqnr_db: Some(f64::INFINITY),
+                    instructions: None,
+                },
+            ],
+            failures: vec![
+                "accuracy drop: 25.00 pp (float 100.00% → int8 75.00%) exceeds --max-drop 0".into(),
+            ],
+            ..CheckReport::default()
+        }
+    }
+
+    #[test]
+    fn markdown_states_result_figures_and_layers() {
+        let md = markdown(&sample());
+        assert!(md.contains("**Result: FAIL.**"), "{md}");
+        assert!(md.contains("accuracy drop: 25.00 pp"));
+        assert!(md.contains("| 100.00% | 75.00% | 25.00 pp |"), "{md}");
+        assert!(
+            md.contains("| 0 | conv1 | conv2d | 2 304 | 31.5 | 118 720 | 51.53 |"),
+            "{md}"
+        );
+        assert!(
+            md.contains("| 1 | pool1 | max_pool | 0 | exact | – | – |"),
+            "{md}"
+        );
+        assert!(md.contains("Bit-identical on all 1 images."));
+    }
+
+    #[test]
+    fn report_dir_is_replaced_whole_with_charts() {
+        let root = std::env::temp_dir().join(format!("ingot-report-{}", unique_suffix()));
+        let dir = root.join("rep");
+        std::fs::create_dir_all(&dir).unwrap();
+        std::fs::write(dir.join("stale.txt"), "old").unwrap();
+        write_report(&dir, &sample()).unwrap();
+        assert!(
+            !dir.join("stale.txt").exists(),
+            "old report replaced as a whole"
+        );
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(dir.join("report.json")).unwrap())
+                .unwrap();
+        assert_eq!(json["accuracy"]["confusion_int8"][2][1], 1);
+        let sqnr = std::fs::read_to_string(dir.join("sqnr.svg")).unwrap();
+        assert!(
+            sqnr.starts_with("<svg") && sqnr.contains("0 conv1"),
+            "{}",
+            &sqnr[..200.min(sqnr.len())]
+        );
+        let conf = std::fs::read_to_string(dir.join("confusion_int8.svg")).unwrap();
+        assert!(conf.contains("owl") && conf.contains("<rect"));
+        let leftovers: Vec<_> = std::fs::read_dir(&root)
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
+        assert_eq!(leftovers.len(), 1, "{leftovers:?}");
+        std::fs::remove_dir_all(&root).unwrap();
+    }
+}

@@ -1,0 +1,98 @@
+//! `ingot check` from the command line.
+
+use ingot_compiler::check::{emulation_or_skip, io, RunOn};
+use std::path::Path;
+use std::process::Command;
+
+fn standin() -> std::path::PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("compiler/tests/fixtures/standin")
+}
+
+fn inputs_file(dir: &Path) -> std::path::PathBuf {
+    let p = dir.join("inputs.bin");
+    let inputs: Vec<Vec<i8>> = (0..4)
+        .map(|i| {
+            (0..64)
+                .map(|k| ((k * 7 + i * 13) % 256) as u8 as i8)
+                .collect()
+        })
+        .collect();
+    io::write_inputs(&p, 64, &inputs).unwrap();
+    p
+}
+
+#[test]
+fn check_module_on_m4_reports_and_fails_naming_the_flash_budget() {
+    if !emulation_or_skip(RunOn::M4) {
+        return;
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    let inputs = inputs_file(tmp.path());
+    let report = tmp.path().join("report");
+    let ok = Command::new(env!("CARGO_BIN_EXE_ingot"))
+        .args(["check", "--on", "m4", "--module"])
+        .arg(standin())
+        .arg("--inputs")
+        .arg(&inputs)
+        .arg("--report")
+        .arg(&report)
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&ok.stdout);
+    assert!(
+        ok.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&ok.stderr)
+    );
+    assert!(stdout.contains("**Result: pass.**"), "{stdout}");
+    assert!(
+        stdout.contains("Executed instructions per inference"),
+        "{stdout}"
+    );
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
+    assert!(json["instructions"]["per_inference_mean"].as_u64().unwrap() > 2496);
+
+    let over = Command::new(env!("CARGO_BIN_EXE_ingot"))
+        .args(["check", "--on", "m4", "--flash-budget", "1000", "--module"])
+        .arg(standin())
+        .arg("--inputs")
+        .arg(&inputs)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&over.stderr);
+    assert!(!over.status.success());
+    assert!(
+        stderr.contains("check failed: flash") && stderr.contains("exceeds the budget of 1000 B"),
+        "{stderr}"
+    );
+}
+
+#[test]
+fn check_rejects_unknown_cores_and_wrong_input_lengths() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_ingot"))
+        .args(["check", "--on", "m5", "--module"])
+        .arg(standin())
+        .output()
+        .unwrap();
+    assert!(!out.status.success());
+    assert!(String::from_utf8_lossy(&out.stderr).contains("unknown core `m5`"));
+
+    let bad = tmp.path().join("bad.bin");
+    io::write_inputs(&bad, 10, &[vec![0; 10]]).unwrap();
+    let out = Command::new(env!("CARGO_BIN_EXE_ingot"))
+        .args(["check", "--module"])
+        .arg(standin())
+        .arg("--inputs")
+        .arg(&bad)
+        .output()
+        .unwrap();
+    assert!(!out.status.success());
+    let e = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        e.contains("inputs of 10 values; the module takes 64"),
+        "{e}"
+    );
+}
