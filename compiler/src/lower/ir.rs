@@ -311,16 +311,30 @@ impl QGraph {
                 }
             }
             if let Some(m) = s.inputs.iter().find(|m| !written[m.index()]) {
-                return Err(format!("step `{}` reads `{}` before it is written", s.name, self.map(*m).name));
+                return Err(format!(
+                    "step `{}` reads `{}` before it is written",
+                    s.name,
+                    self.map(*m).name
+                ));
             }
             if written[s.output.index()] {
-                return Err(format!("step `{}` writes `{}` a second time", s.name, self.map(s.output).name));
+                return Err(format!(
+                    "step `{}` writes `{}` a second time",
+                    s.name,
+                    self.map(s.output).name
+                ));
             }
             written[s.output.index()] = true;
             let out = self.map(s.output);
             for m in s.inputs.iter().map(|&m| self.map(m)) {
-                if !(-128..=127).contains(&m.qp.zero_point) || m.qp.scale.is_nan() || m.qp.scale <= 0.0 {
-                    return Err(format!("map `{}` has invalid quantization {:?}", m.name, m.qp));
+                if !(-128..=127).contains(&m.qp.zero_point)
+                    || m.qp.scale.is_nan()
+                    || m.qp.scale <= 0.0
+                {
+                    return Err(format!(
+                        "map `{}` has invalid quantization {:?}",
+                        m.name, m.qp
+                    ));
                 }
             }
             match &s.kernel {
@@ -331,7 +345,10 @@ impl QGraph {
                         || c.requant.len() != c.out_channels
                         || out.shape.c != c.out_channels
                     {
-                        return Err(format!("step `{}`: convolution tensors do not match its shape", s.name));
+                        return Err(format!(
+                            "step `{}`: convolution tensors do not match its shape",
+                            s.name
+                        ));
                     }
                 }
                 QKernel::Linear(l)
@@ -340,7 +357,10 @@ impl QGraph {
                         || l.requant.len() != l.out_features
                         || out.shape.len() != l.out_features =>
                 {
-                    return Err(format!("step `{}`: linear tensors do not match its shape", s.name));
+                    return Err(format!(
+                        "step `{}`: linear tensors do not match its shape",
+                        s.name
+                    ));
                 }
                 QKernel::Concat => {
                     let c: usize = s.inputs.iter().map(|&m| self.map(m).shape.c).sum();

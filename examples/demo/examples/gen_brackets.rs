@@ -9,7 +9,9 @@
 //! (default 200), `--per-class N` (default 100).
 
 use anyhow::{bail, Context, Result};
-use ingot_demo::brackets::{calibration_sample, eval_sample, file_name, render, CLASSES, COMMITTED_SEED, SIZE};
+use ingot_demo::brackets::{
+    calibration_sample, eval_sample, file_name, render, CLASSES, COMMITTED_SEED, SIZE,
+};
 use ingot_demo::encode_png_gray;
 use std::path::PathBuf;
 
@@ -49,7 +51,11 @@ fn main() -> Result<()> {
         let dir = out.join("eval").join(name);
         std::fs::create_dir_all(&dir)?;
         for i in 0..per_class {
-            let png = encode_png_gray(SIZE as u32, SIZE as u32, &render(eval_sample(seed, c, i), c));
+            let png = encode_png_gray(
+                SIZE as u32,
+                SIZE as u32,
+                &render(eval_sample(seed, c, i), c),
+            );
             bytes += png.len();
             std::fs::write(dir.join(file_name(i)), png)?;
         }

@@ -120,18 +120,24 @@ impl Net {
 }
 
 fn bytes_of(rows: &[&Row]) -> Vec<f32> {
-    rows.iter().flat_map(|r| r.values.iter().map(|&v| value_to_byte(v) as f32)).collect()
+    rows.iter()
+        .flat_map(|r| r.values.iter().map(|&v| value_to_byte(v) as f32))
+        .collect()
 }
 
 fn to_input(bytes: &[f32], mean: f32, std: f32) -> Result<Tensor> {
     let n = bytes.len() / (SIDE * SIDE);
-    let v: Vec<f32> = bytes.iter().map(|&b| (b * (1.0 / 255.0) - mean) / std).collect();
+    let v: Vec<f32> = bytes
+        .iter()
+        .map(|&b| (b * (1.0 / 255.0) - mean) / std)
+        .collect();
     Ok(Tensor::from_vec(v, (n, 1, SIDE, SIDE), &Device::Cpu)?)
 }
 
 fn write_png(path: &Path, row: &Row) -> Result<()> {
     let px: Vec<u8> = row.values.iter().map(|&v| value_to_byte(v)).collect();
-    std::fs::write(path, encode_png_gray(SIDE as u32, SIDE as u32, &px)).with_context(|| path.display().to_string())
+    std::fs::write(path, encode_png_gray(SIDE as u32, SIDE as u32, &px))
+        .with_context(|| path.display().to_string())
 }
 
 fn main() -> Result<()> {
@@ -152,12 +158,19 @@ fn main() -> Result<()> {
         }
     }
     let mut text = String::new();
-    flate2::read::GzDecoder::new(std::fs::File::open(dir.join("digits.csv.gz")).context("digits.csv.gz")?)
-        .read_to_string(&mut text)?;
+    flate2::read::GzDecoder::new(
+        std::fs::File::open(dir.join("digits.csv.gz")).context("digits.csv.gz")?,
+    )
+    .read_to_string(&mut text)?;
     let rows = parse_csv(&text)?;
     let train: Vec<&Row> = rows.iter().filter(|r| !is_heldout(r.index)).collect();
     let test: Vec<&Row> = rows.iter().filter(|r| is_heldout(r.index)).collect();
-    println!("{} rows: {} train, {} held out", rows.len(), train.len(), test.len());
+    println!(
+        "{} rows: {} train, {} held out",
+        rows.len(),
+        train.len(),
+        test.len()
+    );
 
     // PNG folders.
     let _ = std::fs::remove_dir_all(dir.join("heldout"));
@@ -169,7 +182,10 @@ fn main() -> Result<()> {
     }
     std::fs::create_dir_all(dir.join("calibration"))?;
     for r in train.iter().take(CALIBRATION_IMAGES) {
-        write_png(&dir.join("calibration").join(format!("{:04}.png", r.index)), r)?;
+        write_png(
+            &dir.join("calibration").join(format!("{:04}.png", r.index)),
+            r,
+        )?;
     }
 
     let train_px = bytes_of(&train);
@@ -182,8 +198,18 @@ fn main() -> Result<()> {
 
     let net = Net::new(seed)?;
     let params = net.params();
-    println!("{} trainable values", params.iter().map(|v| v.elem_count()).sum::<usize>());
-    let mut opt = candle_nn::AdamW::new(params, ParamsAdamW { lr, weight_decay: 1e-4, ..Default::default() })?;
+    println!(
+        "{} trainable values",
+        params.iter().map(|v| v.elem_count()).sum::<usize>()
+    );
+    let mut opt = candle_nn::AdamW::new(
+        params,
+        ParamsAdamW {
+            lr,
+            weight_decay: 1e-4,
+            ..Default::default()
+        },
+    )?;
     let img = SIDE * SIDE;
     let steps = train.len() / batch;
     let total = steps * epochs;
@@ -200,8 +226,17 @@ fn main() -> Result<()> {
             for &i in idx {
                 px.extend_from_slice(&train_px[i * img..(i + 1) * img]);
             }
-            let y = Tensor::from_vec(idx.iter().map(|&i| train[i].label as u32).collect::<Vec<_>>(), batch, &Device::Cpu)?;
-            let loss = candle_nn::loss::cross_entropy(&net.forward(&to_input(&px, mean, std)?, true)?, &y)?;
+            let y = Tensor::from_vec(
+                idx.iter()
+                    .map(|&i| train[i].label as u32)
+                    .collect::<Vec<_>>(),
+                batch,
+                &Device::Cpu,
+            )?;
+            let loss = candle_nn::loss::cross_entropy(
+                &net.forward(&to_input(&px, mean, std)?, true)?,
+                &y,
+            )?;
             opt.set_learning_rate(cosine_lr(lr, step, total, steps));
             opt.backward_step(&loss)?;
             loss_sum += loss.to_scalar::<f32>()? as f64;
@@ -209,15 +244,28 @@ fn main() -> Result<()> {
         }
         if (epoch + 1) % 5 == 0 || epoch + 1 == epochs {
             let pred = argmax_rows(&net.forward(&test_x, false)?)?;
-            let acc = pred.iter().zip(&test_y).filter(|(p, t)| p == t).count() as f64 / test_y.len() as f64;
-            println!("epoch {}: loss {:.4}, held-out acc {:.2}%", epoch + 1, loss_sum / steps as f64, 100.0 * acc);
+            let acc = pred.iter().zip(&test_y).filter(|(p, t)| p == t).count() as f64
+                / test_y.len() as f64;
+            println!(
+                "epoch {}: loss {:.4}, held-out acc {:.2}%",
+                epoch + 1,
+                loss_sum / steps as f64,
+                100.0 * acc
+            );
         }
     }
     let train_secs = t_train.elapsed().as_secs_f64();
-    println!("training took {train_secs:.0}s ({epochs} epochs of {} images)", steps * batch);
+    println!(
+        "training took {train_secs:.0}s ({epochs} epochs of {} images)",
+        steps * batch
+    );
     let labels: Vec<String> = (0..10).map(|d| d.to_string()).collect();
     println!("float (eval mode) on the {} held-out rows:", test_y.len());
-    report(&labels, &test_y, &argmax_rows(&net.forward(&test_x, false)?)?);
+    report(
+        &labels,
+        &test_y,
+        &argmax_rows(&net.forward(&test_x, false)?)?,
+    );
 
     let (graph, store) = net.export(mean, std)?;
     let out = dir.join("model");
@@ -225,8 +273,13 @@ fn main() -> Result<()> {
     let gpath = out.join("digits.graph.json");
     store.save(&out.join("digits.safetensors"))?;
     std::fs::write(&gpath, serde_json::to_string_pretty(&graph)? + "\n")?;
-    let g = ingot_compiler::frontend::load(&gpath).map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
-    println!("exported {} ({} layers); it loads and validates", gpath.display(), g.layers().len());
+    let g = ingot_compiler::frontend::load(&gpath)
+        .map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
+    println!(
+        "exported {} ({} layers); it loads and validates",
+        gpath.display(),
+        g.layers().len()
+    );
     println!("total time {:.0}s", t_start.elapsed().as_secs_f64());
     Ok(())
 }

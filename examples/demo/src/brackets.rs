@@ -50,7 +50,10 @@ pub fn calibration_sample(seed: u64, index: usize) -> (u64, usize) {
 
 /// Seed and class of training image `index` (classes in turn).
 pub fn train_sample(seed: u64, index: usize) -> (u64, usize) {
-    (derive(&[seed, TAG_TRAIN, index as u64]), index % CLASSES.len())
+    (
+        derive(&[seed, TAG_TRAIN, index as u64]),
+        index % CLASSES.len(),
+    )
 }
 
 /// `exp(-x)` for `x >= 0` from basic arithmetic only (relative error
@@ -79,7 +82,8 @@ struct ValueNoise {
 
 impl ValueNoise {
     fn lattice(&self, i: i64, j: i64) -> f64 {
-        let h = mix(self.seed ^ mix((i as u64).wrapping_mul(0x1F1F_1F1F) ^ (j as u64).wrapping_mul(0x9E37_79B9)));
+        let h = mix(self.seed
+            ^ mix((i as u64).wrapping_mul(0x1F1F_1F1F) ^ (j as u64).wrapping_mul(0x9E37_79B9)));
         (h >> 11) as f64 * (2.0 / (1u64 << 53) as f64) - 1.0
     }
 
@@ -116,15 +120,23 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
     let slope = rng.range(-0.26, 0.26);
     let norm = (1.0 + slope * slope).sqrt();
     let (cu, su) = (1.0 / norm, slope / norm); // along the streaks
-    let fine = ValueNoise { seed: rng.next_u64() };
-    let coarse = ValueNoise { seed: rng.next_u64() };
+    let fine = ValueNoise {
+        seed: rng.next_u64(),
+    };
+    let coarse = ValueNoise {
+        seed: rng.next_u64(),
+    };
     let fine_amp = rng.range(0.018, 0.04);
     let coarse_amp = rng.range(0.008, 0.022);
     let fine_len = rng.range(12.0, 30.0);
     let (ox, oy) = (rng.range(0.0, 1000.0), rng.range(0.0, 1000.0));
     let light = rng.unit_vector();
     let grad = rng.range(0.0, 0.13);
-    let band = if rng.chance(0.5) { rng.range(0.015, 0.07) } else { 0.0 };
+    let band = if rng.chance(0.5) {
+        rng.range(0.015, 0.07)
+    } else {
+        0.0
+    };
     let band_pos = rng.range(8.0, 56.0);
     let band_w = rng.range(6.0, 16.0);
     for y in 0..SIZE {
@@ -148,7 +160,10 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
             let len = rng.range(15.0, 45.0);
             let dir = rng.unit_vector();
             let (hx, hy) = (dir.0 * len / 2.0, dir.1 * len / 2.0);
-            let (cx, cy) = (rng.range(4.0 + hx.abs(), n - 4.0 - hx.abs()), rng.range(4.0 + hy.abs(), n - 4.0 - hy.abs()));
+            let (cx, cy) = (
+                rng.range(4.0 + hx.abs(), n - 4.0 - hx.abs()),
+                rng.range(4.0 + hy.abs(), n - 4.0 - hy.abs()),
+            );
             let (a, b) = ((cx - hx, cy - hy), (cx + hx, cy + hy));
             let width = rng.range(1.0, 2.0);
             let contrast = rng.sign() * rng.range(0.07, 0.16);
@@ -196,11 +211,20 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
         "stain" => {
             let radius = rng.range(6.0, 14.0);
             let sigma = radius / 2.0;
-            let (cx, cy) = (rng.range(radius * 0.6, n - radius * 0.6), rng.range(radius * 0.6, n - radius * 0.6));
-            let amp = if rng.chance(0.75) { -rng.range(0.045, 0.09) } else { rng.range(0.04, 0.07) };
+            let (cx, cy) = (
+                rng.range(radius * 0.6, n - radius * 0.6),
+                rng.range(radius * 0.6, n - radius * 0.6),
+            );
+            let amp = if rng.chance(0.75) {
+                -rng.range(0.045, 0.09)
+            } else {
+                rng.range(0.04, 0.07)
+            };
             let aspect = rng.range(0.7, 1.0);
             let axis = rng.unit_vector();
-            let edge = ValueNoise { seed: rng.next_u64() };
+            let edge = ValueNoise {
+                seed: rng.next_u64(),
+            };
             for y in 0..SIZE {
                 for x in 0..SIZE {
                     let (dx, dy) = (x as f64 + 0.5 - cx, y as f64 + 0.5 - cy);

@@ -54,11 +54,22 @@ pub fn parse_csv(text: &str) -> anyhow::Result<Vec<Row>> {
             .map(|s| s.trim().parse::<u8>())
             .collect::<Result<_, _>>()
             .map_err(|e| anyhow::anyhow!("row {index}: {e}"))?;
-        anyhow::ensure!(nums.len() == 65, "row {index}: {} values, expected 65", nums.len());
+        anyhow::ensure!(
+            nums.len() == 65,
+            "row {index}: {} values, expected 65",
+            nums.len()
+        );
         let mut values = [0u8; 64];
         values.copy_from_slice(&nums[..64]);
-        anyhow::ensure!(values.iter().all(|&v| v <= 16) && nums[64] <= 9, "row {index}: value out of range");
-        rows.push(Row { index, values, label: nums[64] });
+        anyhow::ensure!(
+            values.iter().all(|&v| v <= 16) && nums[64] <= 9,
+            "row {index}: value out of range"
+        );
+        rows.push(Row {
+            index,
+            values,
+            label: nums[64],
+        });
     }
     Ok(rows)
 }

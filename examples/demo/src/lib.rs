@@ -22,7 +22,11 @@ use std::path::Path;
 pub fn encode_png_gray(width: u32, height: u32, pixels: &[u8]) -> Vec<u8> {
     use image::codecs::png::{CompressionType, FilterType, PngEncoder};
     use image::{ExtendedColorType, ImageEncoder};
-    assert_eq!(pixels.len(), (width * height) as usize, "pixel count does not match the size");
+    assert_eq!(
+        pixels.len(),
+        (width * height) as usize,
+        "pixel count does not match the size"
+    );
     let mut out = Vec::new();
     PngEncoder::new_with_quality(&mut out, CompressionType::Default, FilterType::Adaptive)
         .write_image(pixels, width, height, ExtendedColorType::L8)
@@ -33,7 +37,9 @@ pub fn encode_png_gray(width: u32, height: u32, pixels: &[u8]) -> Vec<u8> {
 /// Reads a PNG (or any format `image` knows) as 8-bit grayscale:
 /// `(width, height, pixels)`.
 pub fn read_gray(path: &Path) -> anyhow::Result<(u32, u32, Vec<u8>)> {
-    let img = image::open(path).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?.to_luma8();
+    let img = image::open(path)
+        .map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?
+        .to_luma8();
     Ok((img.width(), img.height(), img.into_raw()))
 }
 
@@ -55,5 +61,8 @@ pub fn crate_dir() -> &'static Path {
 
 /// The repository root.
 pub fn repo_root() -> std::path::PathBuf {
-    crate_dir().join("../..").canonicalize().expect("the demo crate lives two levels below the repository root")
+    crate_dir()
+        .join("../..")
+        .canonicalize()
+        .expect("the demo crate lives two levels below the repository root")
 }

@@ -15,7 +15,9 @@ pub fn mix(mut x: u64) -> u64 {
 
 /// A seed derived from several integers (order matters).
 pub fn derive(parts: &[u64]) -> u64 {
-    parts.iter().fold(0x1234_5678_9ABC_DEF0, |acc, &p| mix(acc ^ mix(p)))
+    parts
+        .iter()
+        .fold(0x1234_5678_9ABC_DEF0, |acc, &p| mix(acc ^ mix(p)))
 }
 
 impl Rng {

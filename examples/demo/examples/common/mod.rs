@@ -32,18 +32,32 @@ impl Init {
     /// He-normal convolution weight `[o, c, k, k]` (He et al. 2015).
     pub fn conv(&mut self, o: usize, c: usize, k: usize) -> Result<Var> {
         let std = (2.0 / (c * k * k) as f64).sqrt();
-        let v: Vec<f32> = (0..o * c * k * k).map(|_| (self.0.gaussish() * std) as f32).collect();
-        Ok(Var::from_tensor(&Tensor::from_vec(v, (o, c, k, k), &Device::Cpu)?)?)
+        let v: Vec<f32> = (0..o * c * k * k)
+            .map(|_| (self.0.gaussish() * std) as f32)
+            .collect();
+        Ok(Var::from_tensor(&Tensor::from_vec(
+            v,
+            (o, c, k, k),
+            &Device::Cpu,
+        )?)?)
     }
     /// Uniform(+-1/sqrt(i)) linear weight `[o, i]`.
     pub fn linear(&mut self, o: usize, i: usize) -> Result<Var> {
         let b = 1.0 / (i as f64).sqrt();
         let v: Vec<f32> = (0..o * i).map(|_| self.0.range(-b, b) as f32).collect();
-        Ok(Var::from_tensor(&Tensor::from_vec(v, (o, i), &Device::Cpu)?)?)
+        Ok(Var::from_tensor(&Tensor::from_vec(
+            v,
+            (o, i),
+            &Device::Cpu,
+        )?)?)
     }
     /// A constant vector.
     pub fn constant(&mut self, n: usize, value: f32) -> Result<Var> {
-        Ok(Var::from_tensor(&Tensor::from_vec(vec![value; n], n, &Device::Cpu)?)?)
+        Ok(Var::from_tensor(&Tensor::from_vec(
+            vec![value; n],
+            n,
+            &Device::Cpu,
+        )?)?)
     }
 }
 
@@ -59,8 +73,23 @@ pub struct Conv {
 
 impl Conv {
     /// A convolution `c -> o` with a `k x k` kernel.
-    pub fn new(init: &mut Init, c: usize, o: usize, k: usize, pad: usize, bias: bool) -> Result<Self> {
-        Ok(Conv { w: init.conv(o, c, k)?, b: if bias { Some(init.constant(o, 0.0)?) } else { None }, pad })
+    pub fn new(
+        init: &mut Init,
+        c: usize,
+        o: usize,
+        k: usize,
+        pad: usize,
+        bias: bool,
+    ) -> Result<Self> {
+        Ok(Conv {
+            w: init.conv(o, c, k)?,
+            b: if bias {
+                Some(init.constant(o, 0.0)?)
+            } else {
+                None
+            },
+            pad,
+        })
     }
 
     /// `x` `[C, N, H, W]` to `[O, N, OH, OW]`.
@@ -73,7 +102,11 @@ impl Conv {
         let cols = if kh == 1 && kw == 1 && p == 0 {
             x.reshape((c, n * h * wd))?
         } else {
-            let xp = if p > 0 { x.pad_with_zeros(2, p, p)?.pad_with_zeros(3, p, p)? } else { x.clone() };
+            let xp = if p > 0 {
+                x.pad_with_zeros(2, p, p)?.pad_with_zeros(3, p, p)?
+            } else {
+                x.clone()
+            };
             let mut taps = Vec::with_capacity(kh * kw);
             for ky in 0..kh {
                 for kx in 0..kw {
@@ -83,7 +116,11 @@ impl Conv {
             // [C, k*k, N, OH, OW]: rows ordered (c, ky, kx) like the weight.
             Tensor::stack(&taps, 1)?.reshape((c * kh * kw, n * oh * ow))?
         };
-        let y = self.w.as_tensor().reshape((o, c * kh * kw))?.matmul(&cols)?;
+        let y = self
+            .w
+            .as_tensor()
+            .reshape((o, c * kh * kw))?
+            .matmul(&cols)?;
         let y = match &self.b {
             Some(b) => y.broadcast_add(&b.as_tensor().reshape((o, 1))?)?,
             None => y,
@@ -141,9 +178,11 @@ impl Bn {
             let mean = xf.mean_keepdim(1)?;
             let xc = xf.broadcast_sub(&mean)?;
             let var = xc.sqr()?.mean_keepdim(1)?;
-            let rm = ((self.running_mean.as_tensor().detach() * (1.0 - BN_MOMENTUM))? + (mean.detach().flatten_all()? * BN_MOMENTUM)?)?;
+            let rm = ((self.running_mean.as_tensor().detach() * (1.0 - BN_MOMENTUM))?
+                + (mean.detach().flatten_all()? * BN_MOMENTUM)?)?;
             let unbiased = (var.detach().flatten_all()? * (m / (m - 1.0).max(1.0)))?;
-            let rv = ((self.running_var.as_tensor().detach() * (1.0 - BN_MOMENTUM))? + (unbiased * BN_MOMENTUM)?)?;
+            let rv = ((self.running_var.as_tensor().detach() * (1.0 - BN_MOMENTUM))?
+                + (unbiased * BN_MOMENTUM)?)?;
             self.running_mean.set(&rm)?;
             self.running_var.set(&rv)?;
             (xc, (var + BN_EPS)?.sqrt()?.recip()?)
@@ -153,7 +192,9 @@ impl Bn {
             (xf.broadcast_sub(&rm)?, (rv + BN_EPS)?.sqrt()?.recip()?)
         };
         let scale = inv.broadcast_mul(&self.gamma.as_tensor().reshape((c, 1))?)?;
-        let y = xc.broadcast_mul(&scale)?.broadcast_add(&self.beta.as_tensor().reshape((c, 1))?)?;
+        let y = xc
+            .broadcast_mul(&scale)?
+            .broadcast_add(&self.beta.as_tensor().reshape((c, 1))?)?;
         Ok(y.reshape(dims)?)
     }
 
@@ -166,8 +207,16 @@ impl Bn {
     pub fn export(&self, store: &mut TensorStore, name: &str) -> Result<()> {
         put(store, &format!("{name}.weight"), self.gamma.as_tensor())?;
         put(store, &format!("{name}.bias"), self.beta.as_tensor())?;
-        put(store, &format!("{name}.running_mean"), self.running_mean.as_tensor())?;
-        put(store, &format!("{name}.running_var"), self.running_var.as_tensor())?;
+        put(
+            store,
+            &format!("{name}.running_mean"),
+            self.running_mean.as_tensor(),
+        )?;
+        put(
+            store,
+            &format!("{name}.running_var"),
+            self.running_var.as_tensor(),
+        )?;
         Ok(())
     }
 }
@@ -188,11 +237,15 @@ pub struct Fc {
 impl Fc {
     /// A linear layer `i -> o` with bias.
     pub fn new(init: &mut Init, i: usize, o: usize) -> Result<Self> {
-        Ok(Fc { w: init.linear(o, i)?, b: init.constant(o, 0.0)? })
+        Ok(Fc {
+            w: init.linear(o, i)?,
+            b: init.constant(o, 0.0)?,
+        })
     }
     /// `[N, I]` to `[N, O]`.
     pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        Ok(x.matmul(&self.w.as_tensor().t()?)?.broadcast_add(self.b.as_tensor())?)
+        Ok(x.matmul(&self.w.as_tensor().t()?)?
+            .broadcast_add(self.b.as_tensor())?)
     }
     /// Trainable tensors.
     pub fn params(&self) -> Vec<Var> {
@@ -235,7 +288,15 @@ fn put(store: &mut TensorStore, name: &str, t: &Tensor) -> Result<()> {
 pub fn argmax_rows(logits: &Tensor) -> Result<Vec<usize>> {
     let v = logits.to_vec2::<f32>()?;
     Ok(v.iter()
-        .map(|r| r.iter().enumerate().fold((0, f32::NEG_INFINITY), |b, (i, &x)| if x > b.1 { (i, x) } else { b }).0)
+        .map(|r| {
+            r.iter()
+                .enumerate()
+                .fold(
+                    (0, f32::NEG_INFINITY),
+                    |b, (i, &x)| if x > b.1 { (i, x) } else { b },
+                )
+                .0
+        })
         .collect())
 }
 
@@ -252,7 +313,11 @@ pub fn cosine_lr(base: f64, step: usize, total: usize, warmup: usize) -> f64 {
 pub fn mean_std(values: &[f32]) -> (f32, f32) {
     let n = values.len() as f64;
     let mean = values.iter().map(|&v| v as f64).sum::<f64>() / n;
-    let var = values.iter().map(|&v| (v as f64 - mean).powi(2)).sum::<f64>() / n;
+    let var = values
+        .iter()
+        .map(|&v| (v as f64 - mean).powi(2))
+        .sum::<f64>()
+        / n;
     (mean as f32, var.sqrt() as f32)
 }
 
@@ -270,20 +335,35 @@ pub fn report(labels: &[String], truth: &[usize], pred: &[usize]) -> (f64, Vec<f
         }
     }
     let overall = hit.iter().sum::<usize>() as f64 / truth.len().max(1) as f64;
-    let per: Vec<f64> = (0..k).map(|c| hit[c] as f64 / tot[c].max(1) as f64).collect();
-    println!("accuracy {:.2}% ({} / {})", 100.0 * overall, hit.iter().sum::<usize>(), truth.len());
+    let per: Vec<f64> = (0..k)
+        .map(|c| hit[c] as f64 / tot[c].max(1) as f64)
+        .collect();
+    println!(
+        "accuracy {:.2}% ({} / {})",
+        100.0 * overall,
+        hit.iter().sum::<usize>(),
+        truth.len()
+    );
     for c in 0..k {
-        println!("  {:>8}: {:6.2}% ({:3} / {:3})   predicted as {:?}", labels[c], 100.0 * per[c], hit[c], tot[c], confusion[c]);
+        println!(
+            "  {:>8}: {:6.2}% ({:3} / {:3})   predicted as {:?}",
+            labels[c],
+            100.0 * per[c],
+            hit[c],
+            tot[c],
+            confusion[c]
+        );
     }
     (overall, per)
 }
-
 
 /// Makes candle run on one thread unless `CANDLE_NUM_THREADS` or
 /// `RAYON_NUM_THREADS` says otherwise. On a shared two-core machine its
 /// spinning thread pool is slower than one thread; call this first in `main`.
 pub fn default_single_thread() {
-    if std::env::var_os("CANDLE_NUM_THREADS").is_none() && std::env::var_os("RAYON_NUM_THREADS").is_none() {
+    if std::env::var_os("CANDLE_NUM_THREADS").is_none()
+        && std::env::var_os("RAYON_NUM_THREADS").is_none()
+    {
         std::env::set_var("CANDLE_NUM_THREADS", "1");
         std::env::set_var("RAYON_NUM_THREADS", "1");
     }
