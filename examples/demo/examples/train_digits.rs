@@ -156,7 +156,9 @@ fn main() -> Result<()> {
         .read_to_string(&mut text)?;
     let rows = parse_csv(&text)?;
     let train: Vec<&Row> = rows.iter().filter(|r| !is_heldout(r.index)).collect();
-    let test: Vec<&Row> = rows.iter().filter(|r| is_heldout(r.index)).collect();
+    // Held-out rows in the order of the PNG folder tree (label, then row).
+    let mut test: Vec<&Row> = rows.iter().filter(|r| is_heldout(r.index)).collect();
+    test.sort_by_key(|r| (r.label, r.index));
     println!("{} rows: {} train, {} held out", rows.len(), train.len(), test.len());
 
     // PNG folders.
@@ -227,6 +229,8 @@ fn main() -> Result<()> {
     std::fs::write(&gpath, serde_json::to_string_pretty(&graph)? + "\n")?;
     let g = ingot_compiler::frontend::load(&gpath).map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
     println!("exported {} ({} layers); it loads and validates", gpath.display(), g.layers().len());
+    let diff = compare_with_reference(&gpath, &dir.join("heldout"), &net.forward(&test_x, false)?)?;
+    anyhow::ensure!(diff < 1e-3, "the exported graph does not reproduce candle's outputs");
     println!("total time {:.0}s", t_start.elapsed().as_secs_f64());
     Ok(())
 }
