@@ -164,7 +164,9 @@ fn main() -> Result<()> {
     .read_to_string(&mut text)?;
     let rows = parse_csv(&text)?;
     let train: Vec<&Row> = rows.iter().filter(|r| !is_heldout(r.index)).collect();
-    let test: Vec<&Row> = rows.iter().filter(|r| is_heldout(r.index)).collect();
+    // Held-out rows in the order of the PNG folder tree (label, then row).
+    let mut test: Vec<&Row> = rows.iter().filter(|r| is_heldout(r.index)).collect();
+    test.sort_by_key(|r| (r.label, r.index));
     println!(
         "{} rows: {} train, {} held out",
         rows.len(),
@@ -279,6 +281,11 @@ fn main() -> Result<()> {
         "exported {} ({} layers); it loads and validates",
         gpath.display(),
         g.layers().len()
+    );
+    let diff = compare_with_reference(&gpath, &dir.join("heldout"), &net.forward(&test_x, false)?)?;
+    anyhow::ensure!(
+        diff < 1e-3,
+        "the exported graph does not reproduce candle's outputs"
     );
     println!("total time {:.0}s", t_start.elapsed().as_secs_f64());
     Ok(())

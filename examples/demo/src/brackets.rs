@@ -126,14 +126,14 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
     let coarse = ValueNoise {
         seed: rng.next_u64(),
     };
-    let fine_amp = rng.range(0.018, 0.04);
-    let coarse_amp = rng.range(0.008, 0.022);
+    let fine_amp = rng.range(0.015, 0.03);
+    let coarse_amp = rng.range(0.006, 0.016);
     let fine_len = rng.range(12.0, 30.0);
     let (ox, oy) = (rng.range(0.0, 1000.0), rng.range(0.0, 1000.0));
     let light = rng.unit_vector();
-    let grad = rng.range(0.0, 0.13);
+    let grad = rng.range(0.0, 0.10);
     let band = if rng.chance(0.5) {
-        rng.range(0.015, 0.07)
+        rng.range(0.015, 0.05)
     } else {
         0.0
     };
@@ -166,7 +166,7 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
             );
             let (a, b) = ((cx - hx, cy - hy), (cx + hx, cy + hy));
             let width = rng.range(1.0, 2.0);
-            let contrast = rng.sign() * rng.range(0.07, 0.16);
+            let contrast = rng.sign() * rng.range(0.12, 0.25);
             let taper = rng.range(2.0, 6.0);
             for y in 0..SIZE {
                 for x in 0..SIZE {
@@ -182,8 +182,8 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
         "pit" => {
             let r = rng.range(1.5, 3.5);
             let (cx, cy) = (rng.range(6.0, n - 6.0), rng.range(6.0, n - 6.0));
-            let depth = rng.range(0.10, 0.24);
-            let rim = rng.range(0.06, 0.16);
+            let depth = rng.range(0.18, 0.35);
+            let rim = rng.range(0.10, 0.22);
             // The rim faces the light, give or take.
             let side = {
                 let j = rng.unit_vector();
@@ -216,9 +216,9 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
                 rng.range(radius * 0.6, n - radius * 0.6),
             );
             let amp = if rng.chance(0.75) {
-                -rng.range(0.045, 0.09)
+                -rng.range(0.07, 0.13)
             } else {
-                rng.range(0.04, 0.07)
+                rng.range(0.06, 0.10)
             };
             let aspect = rng.range(0.7, 1.0);
             let axis = rng.unit_vector();
@@ -240,7 +240,7 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
     }
 
     // Sensor noise and quantisation.
-    let noise = rng.range(0.008, 0.024);
+    let noise = rng.range(0.006, 0.02);
     img.iter()
         .map(|&v| {
             let v = v + noise * rng.gaussish();

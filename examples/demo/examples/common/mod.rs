@@ -368,3 +368,32 @@ pub fn default_single_thread() {
         std::env::set_var("RAYON_NUM_THREADS", "1");
     }
 }
+
+/// Compares candle's eval-mode logits (`[N, K]`, images in folder order)
+/// with the compiler's f32 reference run on the exported graph over the
+/// same folder tree; prints and returns the largest absolute difference.
+pub fn compare_with_reference(
+    graph: &std::path::Path,
+    dir: &std::path::Path,
+    candle_logits: &Tensor,
+) -> Result<f32> {
+    let acc = ingot_demo::reference_accuracy(graph, dir, usize::MAX)?;
+    let ours = candle_logits.to_vec2::<f32>()?;
+    anyhow::ensure!(
+        ours.len() == acc.outputs.len(),
+        "{} candle rows, {} reference outputs",
+        ours.len(),
+        acc.outputs.len()
+    );
+    let diff = ours
+        .iter()
+        .zip(&acc.outputs)
+        .flat_map(|(a, b)| a.iter().zip(b).map(|(x, y)| (x - y).abs()))
+        .fold(0.0f32, f32::max);
+    println!(
+        "f32 reference on the exported graph: accuracy {:.2}%; largest |candle - reference| logit difference over {} images: {diff:.2e}",
+        100.0 * acc.overall(),
+        ours.len()
+    );
+    Ok(diff)
+}
