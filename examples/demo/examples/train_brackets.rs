@@ -53,7 +53,10 @@ fn block(init: &mut Init, c0: usize) -> Result<Vec<DenseLayer>> {
     (0..LAYERS_PER_BLOCK)
         .map(|k| {
             let c = c0 + k * GROWTH;
-            Ok(DenseLayer { bn: Bn::new(init, c)?, conv: Conv::new(init, c, GROWTH, 3, 1, false)? })
+            Ok(DenseLayer {
+                bn: Bn::new(init, c)?,
+                conv: Conv::new(init, c, GROWTH, 3, 1, false)?,
+            })
         })
         .collect()
 }
@@ -124,8 +127,15 @@ impl Net {
     fn load(&self, path: &std::path::Path) -> Result<()> {
         let store = TensorStore::load(path).map_err(|e| anyhow::anyhow!("{e}"))?;
         for (name, var) in self.named_vars() {
-            let t = store.tensors.get(&name).with_context(|| format!("{}: no tensor `{name}`", path.display()))?;
-            var.set(&Tensor::from_vec(t.data.clone(), t.shape.as_slice(), &Device::Cpu)?)?;
+            let t = store
+                .tensors
+                .get(&name)
+                .with_context(|| format!("{}: no tensor `{name}`", path.display()))?;
+            var.set(&Tensor::from_vec(
+                t.data.clone(),
+                t.shape.as_slice(),
+                &Device::Cpu,
+            )?)?;
         }
         Ok(())
     }
@@ -133,7 +143,11 @@ impl Net {
     fn dense_block(layers: &[DenseLayer], x0: Tensor, train: bool) -> Result<Tensor> {
         let mut feats = vec![x0];
         for l in layers {
-            let inp = if feats.len() == 1 { feats[0].clone() } else { Tensor::cat(&feats, 0)? };
+            let inp = if feats.len() == 1 {
+                feats[0].clone()
+            } else {
+                Tensor::cat(&feats, 0)?
+            };
             let h = l.conv.forward(&bn_relu(&l.bn, &inp, train)?)?;
             feats.push(h);
         }
@@ -145,7 +159,10 @@ impl Net {
         let x = images_to_cnhw(x)?;
         let x0 = self.stem.forward(&x)?;
         let b1 = Self::dense_block(&self.blocks[0], x0, train)?;
-        let t = self.trans_conv.forward(&bn_relu(&self.trans_bn, &b1, train)?)?.avg_pool2d(2)?;
+        let t = self
+            .trans_conv
+            .forward(&bn_relu(&self.trans_bn, &b1, train)?)?
+            .avg_pool2d(2)?;
         let b2 = Self::dense_block(&self.blocks[1], t, train)?;
         let f = global_avg_pool(&bn_relu(&self.final_bn, &b2, train)?)?;
         self.fc.forward(&f)
@@ -170,7 +187,11 @@ impl Net {
                     layers.push(LayerFile::multi(&name, "concat", &refs));
                     name
                 };
-                let (bn_name, relu_name, conv_name) = (format!("{b}.l{k}.bn"), format!("{b}.l{k}.relu"), format!("{b}.l{k}.conv"));
+                let (bn_name, relu_name, conv_name) = (
+                    format!("{b}.l{k}.bn"),
+                    format!("{b}.l{k}.relu"),
+                    format!("{b}.l{k}.conv"),
+                );
                 l.bn.export(&mut store, &bn_name)?;
                 l.conv.export(&mut store, &conv_name)?;
                 layers.push(LayerFile::batch_norm(&bn_name, &inp));
@@ -269,7 +290,11 @@ fn load_eval(dir: &std::path::Path) -> Result<(Vec<f32>, Vec<usize>)> {
     for (c, name) in CLASSES.iter().enumerate() {
         for p in ingot_demo::png_files(&dir.join("eval").join(name))? {
             let (w, h, bytes) = ingot_demo::read_gray(&p)?;
-            anyhow::ensure!((w as usize, h as usize) == (SIZE, SIZE), "{}: {w}x{h}", p.display());
+            anyhow::ensure!(
+                (w as usize, h as usize) == (SIZE, SIZE),
+                "{}: {w}x{h}",
+                p.display()
+            );
             px.extend(bytes.iter().map(|&b| b as f32));
             labels.push(c);
         }
@@ -280,7 +305,10 @@ fn load_eval(dir: &std::path::Path) -> Result<(Vec<f32>, Vec<usize>)> {
 /// Normalised `[n, 1, 64, 64]` tensor from raw byte values.
 fn to_input(bytes: &[f32], mean: f32, std: f32) -> Result<Tensor> {
     let n = bytes.len() / (SIZE * SIZE);
-    let v: Vec<f32> = bytes.iter().map(|&b| (b * (1.0 / 255.0) - mean) / std).collect();
+    let v: Vec<f32> = bytes
+        .iter()
+        .map(|&b| (b * (1.0 / 255.0) - mean) / std)
+        .collect();
     Ok(Tensor::from_vec(v, (n, 1, SIZE, SIZE), &Device::Cpu)?)
 }
 
@@ -290,7 +318,10 @@ fn predict(net: &Net, x: &Tensor) -> Result<(Vec<usize>, Tensor)> {
     for s in (0..n).step_by(50) {
         // Detached: a result keeps its whole autograd graph (every
         // activation of the pass) alive otherwise.
-        outs.push(net.forward(&x.narrow(0, s, 50.min(n - s))?, false)?.detach());
+        outs.push(
+            net.forward(&x.narrow(0, s, 50.min(n - s))?, false)?
+                .detach(),
+        );
     }
     let logits = Tensor::cat(&outs, 0)?;
     Ok((argmax_rows(&logits)?, logits))
@@ -314,10 +345,19 @@ fn main() -> Result<()> {
     let (mean, std) = mean_std(&scaled);
     // Round to values that read back identically from JSON.
     let (mean, std) = ((mean * 1e4).round() / 1e4, (std * 1e4).round() / 1e4);
-    println!("generated {} training images (seed {}) in {:.1}s; mean {mean}, std {std}", a.train, a.seed, t_start.elapsed().as_secs_f64());
+    println!(
+        "generated {} training images (seed {}) in {:.1}s; mean {mean}, std {std}",
+        a.train,
+        a.seed,
+        t_start.elapsed().as_secs_f64()
+    );
     let (eval_px, eval_y) = load_eval(&a.data)?;
     let eval_x = to_input(&eval_px, mean, std)?;
-    println!("eval set: {} images from {}", eval_y.len(), a.data.display());
+    println!(
+        "eval set: {} images from {}",
+        eval_y.len(),
+        a.data.display()
+    );
 
     let net = Net::new(a.seed ^ 0x5EED)?;
     if let Some(p) = &a.init {
@@ -326,8 +366,18 @@ fn main() -> Result<()> {
     }
     let trainable = net.params();
     let params = trainable.iter().map(|v| v.elem_count()).sum::<usize>();
-    println!("{} parameter tensors, {params} trainable values", trainable.len());
-    let mut opt = candle_nn::AdamW::new(trainable, ParamsAdamW { lr: a.lr, weight_decay: 1e-4, ..Default::default() })?;
+    println!(
+        "{} parameter tensors, {params} trainable values",
+        trainable.len()
+    );
+    let mut opt = candle_nn::AdamW::new(
+        trainable,
+        ParamsAdamW {
+            lr: a.lr,
+            weight_decay: 1e-4,
+            ..Default::default()
+        },
+    )?;
 
     let steps_per_epoch = a.train / a.batch;
     let total = steps_per_epoch * a.epochs;
@@ -346,20 +396,33 @@ fn main() -> Result<()> {
                 px.extend_from_slice(&train_px[i * img_len..(i + 1) * img_len]);
             }
             let x = to_input(&px, mean, std)?;
-            let y = Tensor::from_vec(idx.iter().map(|&i| train_y[i]).collect::<Vec<u32>>(), a.batch, &Device::Cpu)?;
+            let y = Tensor::from_vec(
+                idx.iter().map(|&i| train_y[i]).collect::<Vec<u32>>(),
+                a.batch,
+                &Device::Cpu,
+            )?;
             let logits = net.forward(&x, true)?;
             let loss = candle_nn::loss::cross_entropy(&logits, &y)?;
             opt.set_learning_rate(cosine_lr(a.lr, step, total, steps_per_epoch / 2));
             opt.backward_step(&loss)?;
             loss_sum += loss.to_scalar::<f32>()? as f64;
-            hits += argmax_rows(&logits)?.iter().zip(idx).filter(|(p, &i)| **p as u32 == train_y[i]).count();
+            hits += argmax_rows(&logits)?
+                .iter()
+                .zip(idx)
+                .filter(|(p, &i)| **p as u32 == train_y[i])
+                .count();
             step += 1;
             if step % 20 == 0 {
-                println!("  step {step}/{total}: mean loss {:.4} over this epoch, {:.0}s", loss_sum / (b + 1) as f64, t_epoch.elapsed().as_secs_f64());
+                println!(
+                    "  step {step}/{total}: mean loss {:.4} over this epoch, {:.0}s",
+                    loss_sum / (b + 1) as f64,
+                    t_epoch.elapsed().as_secs_f64()
+                );
             }
         }
         let (pred, _) = predict(&net, &eval_x)?;
-        let acc = pred.iter().zip(&eval_y).filter(|(p, t)| p == t).count() as f64 / eval_y.len() as f64;
+        let acc =
+            pred.iter().zip(&eval_y).filter(|(p, t)| p == t).count() as f64 / eval_y.len() as f64;
         println!(
             "epoch {}: loss {:.4}, train acc {:.2}%, eval acc {:.2}%, {:.0}s",
             epoch + 1,
@@ -370,7 +433,11 @@ fn main() -> Result<()> {
         );
     }
     let train_secs = t_train.elapsed().as_secs_f64();
-    println!("training took {train_secs:.0}s ({} epochs of {} images)", a.epochs, steps_per_epoch * a.batch);
+    println!(
+        "training took {train_secs:.0}s ({} epochs of {} images)",
+        a.epochs,
+        steps_per_epoch * a.batch
+    );
 
     let labels: Vec<String> = CLASSES.iter().map(|s| s.to_string()).collect();
     let (pred, logits) = predict(&net, &eval_x)?;
@@ -383,12 +450,20 @@ fn main() -> Result<()> {
         let gpath = a.out.join("brackets.graph.json");
         store.save(&a.out.join("brackets.safetensors"))?;
         std::fs::write(&gpath, serde_json::to_string_pretty(&graph)? + "\n")?;
-        let g = ingot_compiler::frontend::load(&gpath).map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
-        println!("exported {} ({} layers) and its weights; it loads and validates", gpath.display(), g.layers().len());
+        let g = ingot_compiler::frontend::load(&gpath)
+            .map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
+        println!(
+            "exported {} ({} layers) and its weights; it loads and validates",
+            gpath.display(),
+            g.layers().len()
+        );
         let first: Vec<f32> = logits.get(0)?.to_vec1()?;
         println!("eval-mode logits of eval/ok/0000.png: {first:?}");
         let diff = compare_with_reference(&gpath, &a.data.join("eval"), &logits)?;
-        anyhow::ensure!(diff < 1e-3, "the exported graph does not reproduce candle's outputs");
+        anyhow::ensure!(
+            diff < 1e-3,
+            "the exported graph does not reproduce candle's outputs"
+        );
     }
     println!("total time {:.0}s", t_start.elapsed().as_secs_f64());
     Ok(())

@@ -83,14 +83,21 @@ pub struct FolderAccuracy {
 impl FolderAccuracy {
     /// Fraction of all images classified correctly.
     pub fn overall(&self) -> f64 {
-        let (c, t) = self.per_class.iter().fold((0, 0), |a, b| (a.0 + b.0, a.1 + b.1));
+        let (c, t) = self
+            .per_class
+            .iter()
+            .fold((0, 0), |a, b| (a.0 + b.0, a.1 + b.1));
         c as f64 / t.max(1) as f64
     }
 }
 
 /// Runs the graph at `graph_path` in f32 on every `dir/<label>/*.png`
 /// (`limit` images per label at most).
-pub fn reference_accuracy(graph_path: &Path, dir: &Path, limit: usize) -> anyhow::Result<FolderAccuracy> {
+pub fn reference_accuracy(
+    graph_path: &Path,
+    dir: &Path,
+    limit: usize,
+) -> anyhow::Result<FolderAccuracy> {
     let g = ingot_compiler::load(graph_path).map_err(|e| anyhow::anyhow!("{e}"))?;
     let spec = g.input().clone();
     let labels = g.labels().to_vec();
@@ -105,18 +112,35 @@ pub fn reference_accuracy(graph_path: &Path, dir: &Path, limit: usize) -> anyhow
                 p.display(),
                 spec.shape
             );
-            inputs.push(px.iter().map(|&b| spec.preprocess(0, b)).collect::<Vec<f32>>());
+            inputs.push(
+                px.iter()
+                    .map(|&b| spec.preprocess(0, b))
+                    .collect::<Vec<f32>>(),
+            );
             truth.push(c);
         }
     }
-    let outputs = ingot_compiler::reference::Reference::new(&g).run_batch(&inputs).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let outputs = ingot_compiler::reference::Reference::new(&g)
+        .run_batch(&inputs)
+        .map_err(|e| anyhow::anyhow!("{e}"))?;
     let mut per_class = vec![(0usize, 0usize); labels.len()];
     for (o, &t) in outputs.iter().zip(&truth) {
-        let p = o.iter().enumerate().fold((0, f32::NEG_INFINITY), |b, (i, &x)| if x > b.1 { (i, x) } else { b }).0;
+        let p = o
+            .iter()
+            .enumerate()
+            .fold(
+                (0, f32::NEG_INFINITY),
+                |b, (i, &x)| if x > b.1 { (i, x) } else { b },
+            )
+            .0;
         per_class[t].1 += 1;
         if p == t {
             per_class[t].0 += 1;
         }
     }
-    Ok(FolderAccuracy { labels, per_class, outputs })
+    Ok(FolderAccuracy {
+        labels,
+        per_class,
+        outputs,
+    })
 }

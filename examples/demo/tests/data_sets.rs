@@ -1,6 +1,8 @@
 //! The committed data sets are what their generators and READMEs say.
 
-use ingot_demo::brackets::{calibration_sample, eval_sample, file_name, render, CLASSES, COMMITTED_SEED, SIZE};
+use ingot_demo::brackets::{
+    calibration_sample, eval_sample, file_name, render, CLASSES, COMMITTED_SEED, SIZE,
+};
 use ingot_demo::digits::{byte_to_value, is_heldout, value_to_byte, SIDE};
 use ingot_demo::{crate_dir, encode_png_gray, png_files, read_gray, repo_root};
 
@@ -11,13 +13,27 @@ fn committed_bracket_images_regenerate_byte_for_byte() {
         let (seed, class) = calibration_sample(COMMITTED_SEED, i);
         let png = encode_png_gray(SIZE as u32, SIZE as u32, &render(seed, class));
         let path = data.join("calibration").join(file_name(i));
-        assert_eq!(std::fs::read(&path).unwrap(), png, "{} differs from its regeneration", path.display());
+        assert_eq!(
+            std::fs::read(&path).unwrap(),
+            png,
+            "{} differs from its regeneration",
+            path.display()
+        );
     }
     for (c, name) in CLASSES.iter().enumerate() {
         for i in [0usize, 42, 99] {
-            let png = encode_png_gray(SIZE as u32, SIZE as u32, &render(eval_sample(COMMITTED_SEED, c, i), c));
+            let png = encode_png_gray(
+                SIZE as u32,
+                SIZE as u32,
+                &render(eval_sample(COMMITTED_SEED, c, i), c),
+            );
             let path = data.join("eval").join(name).join(file_name(i));
-            assert_eq!(std::fs::read(&path).unwrap(), png, "{} differs from its regeneration", path.display());
+            assert_eq!(
+                std::fs::read(&path).unwrap(),
+                png,
+                "{} differs from its regeneration",
+                path.display()
+            );
         }
     }
 }
@@ -45,9 +61,16 @@ fn generation_is_deterministic_and_classes_differ() {
 
 #[test]
 fn readmes_say_the_demo_data_is_invented() {
-    for p in [crate_dir().join("data/README.md"), crate_dir().join("README.md")] {
+    for p in [
+        crate_dir().join("data/README.md"),
+        crate_dir().join("README.md"),
+    ] {
         let text = std::fs::read_to_string(&p).unwrap();
-        assert!(text.to_lowercase().contains("invented"), "{} must say the data is invented", p.display());
+        assert!(
+            text.to_lowercase().contains("invented"),
+            "{} must say the data is invented",
+            p.display()
+        );
     }
 }
 
@@ -58,7 +81,13 @@ fn optdigits() -> std::path::PathBuf {
 #[test]
 fn optdigits_readme_carries_attribution_and_checksum() {
     let text = std::fs::read_to_string(optdigits().join("README.md")).unwrap();
-    for needle in ["Alpaydin", "Kaynak", "1998", "CC BY 4.0", "09f66e6debdee2cd2b5ae59e0d6abbb73fc2b0e0185d2e1957e9ebb51e23aa22"] {
+    for needle in [
+        "Alpaydin",
+        "Kaynak",
+        "1998",
+        "CC BY 4.0",
+        "09f66e6debdee2cd2b5ae59e0d6abbb73fc2b0e0185d2e1957e9ebb51e23aa22",
+    ] {
         assert!(text.contains(needle), "README lacks `{needle}`");
     }
     let gz = std::fs::read(optdigits().join("digits.csv.gz")).unwrap();
@@ -89,7 +118,10 @@ fn optdigits_png_folders_match_the_csv_exactly() {
             assert_eq!((w as usize, h as usize), (SIDE, SIDE));
             let want: Vec<u8> = row.values.iter().map(|&v| value_to_byte(v)).collect();
             assert_eq!(px, want, "{}", p.display());
-            assert!(px.iter().zip(&row.values).all(|(&b, &v)| byte_to_value(b) == v));
+            assert!(px
+                .iter()
+                .zip(&row.values)
+                .all(|(&b, &v)| byte_to_value(b) == v));
             heldout += 1;
         }
     }
@@ -99,7 +131,11 @@ fn optdigits_png_folders_match_the_csv_exactly() {
     for p in cal {
         let index: usize = p.file_stem().unwrap().to_str().unwrap().parse().unwrap();
         assert!(!is_heldout(index), "calibration uses held-out row {index}");
-        let want: Vec<u8> = rows[index].values.iter().map(|&v| value_to_byte(v)).collect();
+        let want: Vec<u8> = rows[index]
+            .values
+            .iter()
+            .map(|&v| value_to_byte(v))
+            .collect();
         assert_eq!(read_gray(&p).unwrap().2, want);
     }
 }
