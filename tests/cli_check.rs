@@ -155,7 +155,10 @@ fn check_digits_graph_on_host_is_bit_identical_and_accurate() {
             .any(|p| p.to_string_lossy().ends_with(".weights.bin")),
         "{module:?}"
     );
-    assert!(stdout.contains(&module.source.display().to_string()), "{stdout}");
+    assert!(
+        stdout.contains(&module.source.display().to_string()),
+        "{stdout}"
+    );
     assert!(report.join("confusion_int8.svg").is_file());
     assert!(report.join("sqnr.svg").is_file());
 }

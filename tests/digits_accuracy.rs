@@ -43,17 +43,17 @@ fn figures(per_channel: bool) -> Figures {
     .unwrap();
     let sim = p.data.sim_outputs.as_ref().unwrap();
     let float = p.data.float_outputs.as_ref().unwrap();
-    let labels = p.data.labels.as_ref().expect("held-out images are labelled");
+    let labels = p
+        .data
+        .labels
+        .as_ref()
+        .expect("held-out images are labelled");
     let ip: Vec<usize> = sim.iter().map(|v| compare::argmax_i8(v)).collect();
     let fp: Vec<usize> = float.iter().map(|v| compare::argmax_f32(v)).collect();
     let acc = compare::accuracy(&fp, &ip, labels, 10);
-    let agreement = compare::compare_float(
-        sim,
-        p.data.output_scale,
-        p.data.output_zero_point,
-        float,
-    )
-    .top1_agreement;
+    let agreement =
+        compare::compare_float(sim, p.data.output_scale, p.data.output_zero_point, float)
+            .top1_agreement;
     Figures {
         images: labels.len(),
         float_acc: acc.float_accuracy,

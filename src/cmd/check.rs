@@ -284,7 +284,10 @@ fn summary(
             );
         }
         None => {
-            let _ = writeln!(s, "  accuracy:       no labels (images not in class folders)");
+            let _ = writeln!(
+                s,
+                "  accuracy:       no labels (images not in class folders)"
+            );
         }
     }
     if let Some(f) = &r.float {
@@ -304,7 +307,10 @@ fn summary(
             b.images,
             r.first_differing_layer
                 .as_ref()
-                .map_or(String::new(), |d| format!("; first at step {} `{}`", d.step, d.name))
+                .map_or(String::new(), |d| format!(
+                    "; first at step {} `{}`",
+                    d.step, d.name
+                ))
         ),
         None => "not compared".into(),
     };
@@ -323,7 +329,10 @@ fn summary(
             );
         }
         None => {
-            let _ = writeln!(s, "  instructions:   not counted on the host (use --on m0plus|m3|m4|m7|m33)");
+            let _ = writeln!(
+                s,
+                "  instructions:   not counted on the host (use --on m0plus|m3|m4|m7|m33)"
+            );
         }
     }
     let _ = writeln!(

@@ -141,7 +141,11 @@ pub fn prepare(
             let naive = Schedule::naive(&q);
             let gen = codegen::generate(&q, &naive, &gen_opts)
                 .map_err(|e| err("generating the module")(&e))?;
-            (naive, format!("naive (the planned schedule failed: {e})"), gen)
+            (
+                naive,
+                format!("naive (the planned schedule failed: {e})"),
+                gen,
+            )
         }
     };
     let data = compare_data(&g, &set, &q, &schedule, &generated)?;
