@@ -55,6 +55,9 @@ pub struct Args {
     /// RAM budget in bytes (until target profiles carry one).
     #[arg(long)]
     pub ram_budget: Option<u64>,
+    /// Seconds each runner (host or QEMU) may take for the whole image set.
+    #[arg(long, default_value_t = 120)]
+    pub timeout: u64,
     /// `opt-level` of the runner build.
     #[arg(long, default_value = "3")]
     pub opt_level: String,
@@ -104,6 +107,7 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         on: a.on,
         build: BuildConfig {
             opt_level: a.opt_level.clone(),
+            timeout: std::time::Duration::from_secs(a.timeout),
             ..BuildConfig::default()
         },
         budget: Budget {
@@ -173,6 +177,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         on: a.on,
         build: BuildConfig {
             opt_level: a.opt_level.clone(),
+            timeout: std::time::Duration::from_secs(a.timeout),
             ..BuildConfig::default()
         },
         budget: Budget {
