@@ -96,3 +96,102 @@ fn check_rejects_unknown_cores_and_wrong_input_lengths() {
         "{e}"
     );
 }
+
+fn digits() -> std::path::PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/optdigits")
+}
+
+fn check_digits(extra: &[&str], report: &Path) -> std::process::Output {
+    let d = digits();
+    Command::new(env!("CARGO_BIN_EXE_ingot"))
+        .arg("check")
+        .arg(d.join("model/digits.graph.json"))
+        .arg("--calib-images")
+        .arg(d.join("calibration"))
+        .arg("--images")
+        .arg(d.join("heldout"))
+        .arg("--report")
+        .arg(report)
+        .args(extra)
+        .output()
+        .unwrap()
+}
+
+/// The UCI optdigits held-out split (Alpaydin & Kaynak 1998, CC BY 4.0; see
+/// `tests/data/optdigits/README.md`) through the whole pipeline on the host.
+#[test]
+fn check_digits_graph_on_host_is_bit_identical_and_accurate() {
+    let tmp = tempfile::tempdir().unwrap();
+    let report = tmp.path().join("report");
+    let out = check_digits(&[], &report);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(stdout.contains("bit-identical:  yes"), "{stdout}");
+    assert!(stdout.contains("result:         pass"), "{stdout}");
+    assert!(stdout.contains("lower bound"), "{stdout}");
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
+    assert_eq!(json["images"], 360);
+    assert!(json["bit_exact"]["mismatched_images"]
+        .as_array()
+        .unwrap()
+        .is_empty());
+    let float = json["accuracy"]["float_accuracy"].as_f64().unwrap();
+    let drop = json["accuracy"]["drop_pp"].as_f64().unwrap();
+    let agree = json["float"]["top1_agreement"].as_f64().unwrap();
+    assert!(float >= 0.95, "{float}");
+    assert!(drop <= 1.0, "{drop}");
+    assert!(agree >= 0.98, "{agree}");
+    let module = ingot_compiler::check::ModuleFiles::find(&report.join("module"), None).unwrap();
+    assert!(
+        module
+            .extra
+            .iter()
+            .any(|p| p.to_string_lossy().ends_with(".weights.bin")),
+        "{module:?}"
+    );
+    assert!(
+        stdout.contains(&module.source.display().to_string()),
+        "{stdout}"
+    );
+    assert!(report.join("confusion_int8.svg").is_file());
+    assert!(report.join("sqnr.svg").is_file());
+}
+
+#[test]
+fn check_digits_fails_naming_the_figure_over_threshold() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = check_digits(&["--min-agreement", "1.01"], &tmp.path().join("r"));
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(!out.status.success());
+    assert!(stderr.contains("top-1 agreement"), "{stderr}");
+    assert!(stderr.contains("--min-agreement 1.01"), "{stderr}");
+}
+
+#[test]
+fn check_digits_on_m0plus_counts_instructions() {
+    if !emulation_or_skip(RunOn::M0plus) {
+        return;
+    }
+    let tmp = tempfile::tempdir().unwrap();
+    let report = tmp.path().join("report");
+    let out = check_digits(&["--on", "m0plus"], &report);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(stdout.contains("bit-identical:  yes"), "{stdout}");
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
+    let per = json["instructions"]["per_inference_mean"].as_u64().unwrap();
+    let macs = json["instructions"]["macs"].as_u64().unwrap();
+    assert!(macs > 0 && per > macs, "{per} instructions for {macs} MACs");
+}

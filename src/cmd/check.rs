@@ -4,6 +4,7 @@
 use anyhow::{bail, Context};
 use ingot_compiler::check::compare::Thresholds;
 use ingot_compiler::check::pipeline::{self, CheckData, CheckPlan};
+use ingot_compiler::check::prepare::{self, PrepareOptions, RangesFrom};
 use ingot_compiler::check::report;
 use ingot_compiler::check::runner::{self, BuildConfig};
 use ingot_compiler::check::size::Budget;
@@ -54,6 +55,9 @@ pub struct Args {
     /// RAM budget in bytes (until target profiles carry one).
     #[arg(long)]
     pub ram_budget: Option<u64>,
+    /// Seconds each runner (host or QEMU) may take for the whole image set.
+    #[arg(long, default_value_t = 120)]
+    pub timeout: u64,
     /// `opt-level` of the runner build.
     #[arg(long, default_value = "3")]
     pub opt_level: String,
@@ -66,24 +70,12 @@ fn parse_on(s: &str) -> Result<RunOn, String> {
 
 /// Runs `ingot check`.
 pub fn run(a: &Args) -> anyhow::Result<()> {
-    if a.target.is_some() {
-        bail!("--target: target profiles are not available yet; pass --flash-budget/--ram-budget");
-    }
     let Some(module_dir) = &a.module else {
-        // The full pipeline (calibrate → lower → plan → generate → build →
-        // run → compare) is wired here once lowering, the integer simulator,
-        // the float reference and the code generator are in the library.
-        let graph = a
-            .graph
-            .as_ref()
-            .context("a GRAPH.json (or --module DIR) is required")?;
-        let g =
-            ingot_compiler::load(graph).with_context(|| format!("loading {}", graph.display()))?;
-        bail!(
-            "checking `{}` from its graph needs lowering, the integer simulator, the float reference and the code generator, which this build does not have yet; generate the module elsewhere and run `ingot check --module DIR --inputs FILE --on CORE`",
-            g.name()
-        );
+        return run_graph(a);
     };
+    if a.target.is_some() {
+        bail!("--target applies to a GRAPH.json check; with --module pass --flash-budget/--ram-budget");
+    }
     let module = ModuleFiles::find(module_dir, None)?;
     let src = std::fs::read_to_string(&module.source)
         .with_context(|| format!("reading {}", module.source.display()))?;
@@ -115,6 +107,7 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         on: a.on,
         build: BuildConfig {
             opt_level: a.opt_level.clone(),
+            timeout: std::time::Duration::from_secs(a.timeout),
             ..BuildConfig::default()
         },
         budget: Budget {
@@ -136,4 +129,232 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         bail!("check failed: {}", r.failures.join("; "));
     }
     Ok(())
+}
+
+fn thresholds(a: &Args) -> Thresholds {
+    Thresholds {
+        max_drop_pp: a.max_drop,
+        min_agreement: a.min_agreement,
+    }
+}
+
+/// `ingot check GRAPH.json --images DIR`: calibrate (or read ranges), lower,
+/// plan, generate, build, run, compare, report.
+fn run_graph(a: &Args) -> anyhow::Result<()> {
+    let graph = a
+        .graph
+        .as_ref()
+        .context("a GRAPH.json (or --module DIR) is required")?;
+    let images = a
+        .images
+        .as_ref()
+        .context("--images DIR is required to check a graph")?;
+    if a.inputs.is_some() {
+        bail!("--inputs applies to --module only");
+    }
+    let ranges = match (&a.ranges, &a.calib_images) {
+        (Some(r), _) => RangesFrom::File(r.clone()),
+        (None, Some(d)) => RangesFrom::Images(d.clone()),
+        (None, None) => RangesFrom::CheckImages,
+    };
+    let opts = PrepareOptions {
+        ranges,
+        target: a.target.clone(),
+        ..PrepareOptions::default()
+    };
+    let p = prepare::prepare(graph, images, &opts)?;
+    let module_name = p.generated.report.module.clone();
+    let staging = std::env::temp_dir().join(format!(
+        "ingot-check-{}-{}",
+        std::process::id(),
+        std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map(|d| d.as_nanos())
+            .unwrap_or(0)
+    ));
+    let module = prepare::write_module(&staging, &module_name, &p.generated)?;
+    let plan = CheckPlan {
+        on: a.on,
+        build: BuildConfig {
+            opt_level: a.opt_level.clone(),
+            timeout: std::time::Duration::from_secs(a.timeout),
+            ..BuildConfig::default()
+        },
+        budget: Budget {
+            flash: a.flash_budget,
+            ram: a.ram_budget,
+        },
+        thresholds: thresholds(a),
+    };
+    let mut r = pipeline::run_check(&module, &p.data, &plan)?;
+    if let Some(b) = &p.budget {
+        r.failures
+            .extend(b.over.iter().map(|o| format!("target {}: {o}", b.target)));
+    }
+    let module_dir = match &a.report {
+        Some(dir) => {
+            report::write_report(dir, &r)?;
+            let dest = dir.join("module");
+            std::fs::create_dir_all(&dest)
+                .with_context(|| format!("creating {}", dest.display()))?;
+            for f in std::iter::once(&module.source).chain(&module.extra) {
+                let to = dest.join(f.file_name().context("module file name")?);
+                std::fs::copy(f, &to)
+                    .with_context(|| format!("copying {} to {}", f.display(), to.display()))?;
+            }
+            let _ = std::fs::remove_dir_all(&staging);
+            dest
+        }
+        None => staging,
+    };
+    let text = summary(a, &p, &r, &module_dir, &module_name);
+    if let Some(dir) = &a.report {
+        std::fs::write(dir.join("summary.txt"), &text)
+            .with_context(|| format!("writing {}", dir.join("summary.txt").display()))?;
+    }
+    print!("{text}");
+    if !r.failures.is_empty() {
+        bail!("check failed: {}", r.failures.join("; "));
+    }
+    Ok(())
+}
+
+fn pct(x: f64) -> String {
+    format!("{:.2}%", 100.0 * x)
+}
+
+/// The figures a firmware engineer reads first.
+fn summary(
+    a: &Args,
+    p: &prepare::Prepared,
+    r: &report::CheckReport,
+    module_dir: &std::path::Path,
+    module: &str,
+) -> String {
+    use std::fmt::Write as _;
+    let mut s = String::new();
+    let g = &p.generated.report;
+    let _ = writeln!(
+        s,
+        "ingot check {}: {} images on {}",
+        r.model, r.images, r.run_on
+    );
+    let _ = writeln!(s, "  ranges:         {}", p.ranges_note);
+    let _ = writeln!(
+        s,
+        "  scratch RAM:    {} bytes (arena {} + patch {}); lower bound {} bytes ({} schedule)",
+        g.scratch_bytes, g.arena_bytes, g.patch_bytes, p.plan.lower_bound, p.schedule_kind
+    );
+    let _ = write!(s, "  flash:          weights {} bytes", g.weights_bytes);
+    match &r.sizes {
+        Some(z) => {
+            let _ = writeln!(
+                s,
+                "; firmware {} bytes flash, {} bytes static RAM, stack {} on {}",
+                z.flash,
+                z.ram,
+                z.stack_used
+                    .map_or("?".to_string(), |v| format!("{v} bytes")),
+                a.on
+            );
+        }
+        None => {
+            let _ = writeln!(s, " (firmware size: run with --on CORE)");
+        }
+    }
+    if let Some(b) = &p.budget {
+        if b.fits {
+            let _ = writeln!(
+                s,
+                "  target:         fits {} (RAM {} of {} bytes incl. reserve, flash {} of {})",
+                b.target, b.ram_used, b.ram_total, b.flash_used, b.flash_total
+            );
+        } else {
+            let _ = writeln!(
+                s,
+                "  target:         DOES NOT FIT {}: {}",
+                b.target,
+                b.over.join("; ")
+            );
+        }
+    }
+    match &r.accuracy {
+        Some(acc) => {
+            let _ = writeln!(
+                s,
+                "  accuracy:       float {} -> int8 {} (drop {:.2} pp)",
+                pct(acc.float_accuracy),
+                pct(acc.int8_accuracy),
+                acc.drop_pp
+            );
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  accuracy:       no labels (images not in class folders)"
+            );
+        }
+    }
+    if let Some(f) = &r.float {
+        let _ = writeln!(
+            s,
+            "  agreement:      top-1 {} with the float model; logit error mean {:.4}, max {:.4}",
+            pct(f.top1_agreement),
+            f.mean_abs_error,
+            f.max_abs_error
+        );
+    }
+    let bit = match &r.bit_exact {
+        Some(b) if b.identical() => "yes".to_string(),
+        Some(b) => format!(
+            "NO ({} of {} images differ{})",
+            b.mismatched_images.len(),
+            b.images,
+            r.first_differing_layer
+                .as_ref()
+                .map_or(String::new(), |d| format!(
+                    "; first at step {} `{}`",
+                    d.step, d.name
+                ))
+        ),
+        None => "not compared".into(),
+    };
+    let _ = writeln!(s, "  bit-identical:  {bit} (module vs integer simulator)");
+    match &r.instructions {
+        Some(i) => {
+            let _ = writeln!(
+                s,
+                "  instructions:   {} per inference (min {}, max {}), {} per MAC ({} MACs), emulated {}",
+                i.per_inference_mean,
+                i.per_inference_min,
+                i.per_inference_max,
+                i.per_mac.map_or("?".into(), |v| format!("{v:.2}")),
+                i.macs,
+                a.on
+            );
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  instructions:   not counted on the host (use --on m0plus|m3|m4|m7|m33)"
+            );
+        }
+    }
+    let _ = writeln!(
+        s,
+        "  module:         {}/{module}.rs, {}/{module}.weights.bin",
+        module_dir.display(),
+        module_dir.display()
+    );
+    if let Some(d) = &a.report {
+        let _ = writeln!(s, "  report:         {}/report.md", d.display());
+    }
+    if r.failures.is_empty() {
+        let _ = writeln!(s, "  result:         pass");
+    } else {
+        for f in &r.failures {
+            let _ = writeln!(s, "  FAIL:           {f}");
+        }
+    }
+    s
 }

@@ -23,6 +23,7 @@ pub mod compare;
 pub mod icount;
 pub mod io;
 pub mod pipeline;
+pub mod prepare;
 pub mod report;
 pub mod runner;
 pub mod size;

@@ -317,7 +317,7 @@ pub(crate) fn runner_files(kind: Kind, module_name: &str, cfg: &BuildConfig) -> 
     files.push(ProjectFile {
         path: "Cargo.toml".into(),
         bytes: format!(
-            "[package]\nname = \"@NAME@\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n[dependencies]\n{deps}\n{profile}\n# Its own workspace: never part of an enclosing one.\n[workspace]\n"
+            "[package]\nname = \"@NAME@\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n[dependencies]\n{deps}\n# Generated modules gate `run_traced` behind this feature.\n[features]\ndefault = [\"ingot-trace\"]\ningot-trace = []\n\n{profile}\n# Its own workspace: never part of an enclosing one.\n[workspace]\n"
         )
         .into_bytes(),
     });

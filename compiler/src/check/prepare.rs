@@ -1,0 +1,378 @@
+//! From a float graph and image folders to everything [`run_check`] needs:
+//! ranges (a file, or calibration on images), the lowered [`QGraph`], the
+//! memory plan, the generated module on disk, and the comparison data
+//! (int8 inputs, integer simulator outputs and trace, float reference
+//! outputs, labels, per-step SQNR).
+//!
+//! The int8 inputs are quantized once, from the sample's pixel bytes through
+//! the lowered graph's pixel table (or from the `.npy` float input with the
+//! input map's parameters); the same codes go to the simulator and to the
+//! module, so both see identical inputs.
+//!
+//! [`run_check`]: super::pipeline::run_check
+
+use super::pipeline::{CheckData, StepInfo};
+use crate::calibrate::{self, CalibOptions, ImageSet, Ranges};
+use crate::codegen::{self, GenOptions, Generated, MapView, Schedule, TargetInfo};
+use crate::graph::Graph;
+use crate::lower::{self, quant, LowerOptions, QGraph, SimInput, Simulator};
+use crate::plan::{self, Plan, PlanOptions, Target};
+use crate::reference::Reference;
+use std::path::{Path, PathBuf};
+
+/// Where the quantization ranges come from.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum RangesFrom {
+    /// A saved `ingot.ranges.v1` file.
+    File(PathBuf),
+    /// Calibrate on the images of this folder.
+    Images(PathBuf),
+    /// Calibrate on the checked images themselves (optimistic: said so in
+    /// the report).
+    CheckImages,
+}
+
+/// A failure while preparing a check (message names the stage).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct PrepareError(pub String);
+
+fn err(stage: &str) -> impl Fn(&dyn std::fmt::Display) -> PrepareError + '_ {
+    move |e| PrepareError(format!("{stage}: {e}"))
+}
+
+/// What to prepare.
+#[derive(Debug, Clone)]
+pub struct PrepareOptions {
+    /// Ranges source.
+    pub ranges: RangesFrom,
+    /// Weight scales per output channel (default) or per tensor.
+    pub per_channel: bool,
+    /// Target profile for the budget.
+    pub target: Option<PathBuf>,
+    /// Module name (`NAME.rs`); empty: derived from the graph's name.
+    pub module: String,
+}
+
+impl Default for PrepareOptions {
+    fn default() -> Self {
+        PrepareOptions {
+            ranges: RangesFrom::CheckImages,
+            per_channel: true,
+            target: None,
+            module: String::new(),
+        }
+    }
+}
+
+/// Everything prepared.
+#[derive(Debug)]
+pub struct Prepared {
+    /// Comparison data for [`super::pipeline::run_check`].
+    pub data: CheckData,
+    /// The lowered graph.
+    pub q: QGraph,
+    /// The memory plan.
+    pub plan: Plan,
+    /// The schedule the module was generated with.
+    pub schedule: Schedule,
+    /// `planned` or `naive (reason)`.
+    pub schedule_kind: String,
+    /// The generated files.
+    pub generated: Generated,
+    /// The budget against the target profile, if one was given.
+    pub budget: Option<plan::Budget>,
+    /// Where the ranges came from, in words.
+    pub ranges_note: String,
+    /// Image names, in check order.
+    pub image_names: Vec<String>,
+}
+
+/// Loads, calibrates (or reads ranges), lowers, plans, generates, and runs
+/// the integer simulator and the float reference on every image of
+/// `images`.
+pub fn prepare(
+    graph_path: &Path,
+    images: &Path,
+    opts: &PrepareOptions,
+) -> Result<Prepared, PrepareError> {
+    let g = crate::load(graph_path).map_err(|e| err("loading the graph")(&e))?;
+    let set = ImageSet::open(images, &g).map_err(|e| err("--images")(&e))?;
+    if set.is_empty() {
+        return Err(PrepareError(format!(
+            "--images: no images in {}",
+            images.display()
+        )));
+    }
+    let (ranges, ranges_note) = ranges_for(&g, &set, &opts.ranges)?;
+    let q = lower::lower(
+        &g,
+        &ranges,
+        &LowerOptions {
+            per_channel: opts.per_channel,
+        },
+    )
+    .map_err(|e| err("lowering")(&e))?;
+    let p = plan::plan(&q, &PlanOptions::default()).map_err(|e| err("planning")(&e))?;
+    let target = opts
+        .target
+        .as_ref()
+        .map(Target::load)
+        .transpose()
+        .map_err(|e| err("--target")(&e))?;
+    let budget = target.as_ref().map(|t| plan::target::budget(&q, &p, t));
+    let gen_opts = GenOptions {
+        module: if opts.module.is_empty() {
+            module_name(g.name())
+        } else {
+            opts.module.clone()
+        },
+        target: target.as_ref().map(|t| TargetInfo {
+            name: t.name.clone(),
+            ram_bytes: None,
+            flash_bytes: None,
+        }),
+        ..GenOptions::default()
+    };
+    let planned = schedule_of(&q, &p);
+    let (schedule, schedule_kind, generated) = match codegen::generate(&q, &planned, &gen_opts) {
+        Ok(gen) => (planned, "planned".to_string(), gen),
+        Err(e) => {
+            let naive = Schedule::naive(&q);
+            let gen = codegen::generate(&q, &naive, &gen_opts)
+                .map_err(|e| err("generating the module")(&e))?;
+            (
+                naive,
+                format!("naive (the planned schedule failed: {e})"),
+                gen,
+            )
+        }
+    };
+    let data = compare_data(&g, &set, &q, &schedule, &generated)?;
+    Ok(Prepared {
+        data,
+        q,
+        plan: p,
+        schedule,
+        schedule_kind,
+        generated,
+        budget,
+        ranges_note,
+        image_names: set.entries().iter().map(|e| e.name.clone()).collect(),
+    })
+}
+
+fn ranges_for(
+    g: &Graph,
+    set: &ImageSet,
+    from: &RangesFrom,
+) -> Result<(Ranges, String), PrepareError> {
+    let calibrate_on = |s: &ImageSet| {
+        calibrate::run(g, s, &CalibOptions::default())
+            .map(|c| c.ranges)
+            .map_err(|e| err("calibration")(&e))
+    };
+    match from {
+        RangesFrom::File(p) => {
+            let hash = calibrate::ranges::graph_hash(g).map_err(|e| err("hashing the graph")(&e))?;
+            let r = Ranges::load(g, p, Some(&hash)).map_err(|e| err("--ranges")(&e))?;
+            Ok((r, format!("ranges read from {}", p.display())))
+        }
+        RangesFrom::Images(dir) => {
+            let cal = ImageSet::open(dir, g).map_err(|e| err("--calib-images")(&e))?;
+            let r = calibrate_on(&cal)?;
+            Ok((
+                r,
+                format!(
+                    "calibrated (min/max) on {} images of {}",
+                    cal.len(),
+                    dir.display()
+                ),
+            ))
+        }
+        RangesFrom::CheckImages => Ok((
+            calibrate_on(set)?,
+            format!(
+                "calibrated on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
+                set.len(),
+                set.root().display()
+            ),
+        )),
+    }
+}
+
+/// A module name from a graph name: lower case, other characters as `_`,
+/// `model` when nothing usable is left.
+pub fn module_name(graph: &str) -> String {
+    let mut n: String = graph
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() {
+                c.to_ascii_lowercase()
+            } else {
+                '_'
+            }
+        })
+        .collect();
+    if n.starts_with(|c: char| c.is_ascii_digit()) {
+        n.insert_str(0, "m_");
+    }
+    if codegen::is_module_name(&n) {
+        n
+    } else {
+        "model".into()
+    }
+}
+
+/// The schedule of a memory plan (order, views, copying concatenations,
+/// arena); the patch buffer is the generator's own minimum.
+pub fn schedule_of(q: &QGraph, p: &Plan) -> Schedule {
+    Schedule {
+        order: p.order.clone(),
+        views: p
+            .map_views
+            .iter()
+            .map(|v| MapView {
+                offset: v.offset,
+                stride: v.stride,
+            })
+            .collect(),
+        copy_concats: p.copy_concat.clone(),
+        arena_bytes: p.arena_bytes,
+        patch_bytes: codegen::schedule::min_patch_bytes(q),
+    }
+}
+
+/// The int8 input codes (HWC) of one sample: pixel bytes through the
+/// lowered graph's pixel table, or the `[C, H, W]` float input quantized
+/// with the input map's parameters.
+pub fn input_codes(q: &QGraph, sample: &calibrate::Sample) -> Vec<i8> {
+    let m = q.map(q.input);
+    let (c, hw) = (m.shape.c, m.shape.pixels());
+    match &sample.pixels {
+        Some(px) => px
+            .iter()
+            .enumerate()
+            .map(|(i, &p)| q.pixel_table[(i % c) * 256 + p as usize])
+            .collect(),
+        None => (0..c * hw)
+            .map(|i| quant::quantize(sample.input[(i % c) * hw + i / c], m.qp))
+            .collect(),
+    }
+}
+
+fn compare_data(
+    g: &Graph,
+    set: &ImageSet,
+    q: &QGraph,
+    s: &Schedule,
+    generated: &Generated,
+) -> Result<CheckData, PrepareError> {
+    let calls = codegen::calls::step_calls(q, s).map_err(|e| err("schedule")(&e))?;
+    // Trace numbering: the module's executed steps, in order.
+    let traced: Vec<lower::StepId> = calls.iter().map(|c| c.step).collect();
+    let steps: Vec<StepInfo> = {
+        let all = super::pipeline::steps_of(q);
+        traced.iter().map(|s| all[s.index()].clone()).collect()
+    };
+    let reference = Reference::new(g);
+    let mut sim = Simulator::new(q);
+    let out_map = q.map(q.output);
+    let float_out_map = out_map.float_map;
+    let want: Vec<crate::MapId> = traced
+        .iter()
+        .map(|&st| q.map(q.step(st).output).float_map)
+        .collect();
+    let mut data = CheckData {
+        model: q.name.clone(),
+        model_hash: Some(generated.report.model_hash.clone()),
+        input_len: q.map(q.input).shape.len(),
+        output_len: out_map.shape.len(),
+        output_scale: out_map.qp.scale,
+        output_zero_point: out_map.qp.zero_point,
+        class_names: g.labels().to_vec(),
+        steps,
+        ..CheckData::default()
+    };
+    let (mut sim_out, mut trace, mut float_outs, mut labels) =
+        (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+    let mut all_labelled = true;
+    let mut sums = vec![(0f64, 0f64, false); traced.len()];
+    for i in 0..set.len() {
+        let sample = set.load(i).map_err(|e| err("--images")(&e))?;
+        let codes = input_codes(q, &sample);
+        let mut float_maps: Vec<Option<Vec<f32>>> = vec![None; g.map_count()];
+        reference
+            .run_with(&sample.input, |m: crate::MapId, v: &[f32]| {
+                if m == float_out_map || want.contains(&m) {
+                    float_maps[m.index()] = Some(v.to_vec());
+                }
+            })
+            .map_err(|e| err("float reference")(&e))?;
+        let out = sim
+            .run(SimInput::Codes(&codes))
+            .map_err(|e| err("integer simulator")(&e))?;
+        for (k, &st) in traced.iter().enumerate() {
+            let om = q.step(st).output;
+            trace.push(super::io::TraceMap {
+                image: i,
+                step: k,
+                name: q.map(om).name.clone(),
+                data: sim.map_hwc(om),
+            });
+            if let Some(f) = &float_maps[want[k].index()] {
+                let d = sim.map_chw_f32(om);
+                let slot = &mut sums[k];
+                for (&a, &b) in f.iter().zip(&d) {
+                    slot.0 += (a as f64).powi(2);
+                    slot.1 += (a as f64 - b as f64).powi(2);
+                }
+                slot.2 = true;
+            }
+        }
+        sim_out.push(out);
+        float_outs.push(
+            float_maps[float_out_map.index()]
+                .take()
+                .ok_or_else(|| PrepareError("float reference: no output map".into()))?,
+        );
+        match sample.label {
+            Some(l) => labels.push(l),
+            None => all_labelled = false,
+        }
+        data.inputs.push(codes);
+    }
+    data.step_sqnr = sums
+        .into_iter()
+        .map(|(sig, noise, seen)| {
+            seen.then(|| {
+                if noise == 0.0 {
+                    f64::INFINITY
+                } else if sig == 0.0 {
+                    f64::NEG_INFINITY
+                } else {
+                    10.0 * (sig / noise).log10()
+                }
+            })
+        })
+        .collect();
+    data.sim_outputs = Some(sim_out);
+    data.sim_trace = Some(trace);
+    data.float_outputs = Some(float_outs);
+    data.labels = (all_labelled && !labels.is_empty()).then_some(labels);
+    Ok(data)
+}
+
+/// Writes the generated files into `dir` (created) and returns them as
+/// [`super::ModuleFiles`].
+pub fn write_module(
+    dir: &Path,
+    module: &str,
+    generated: &Generated,
+) -> Result<super::ModuleFiles, PrepareError> {
+    std::fs::create_dir_all(dir).map_err(|e| err(&dir.display().to_string())(&e))?;
+    for (name, bytes) in generated.files(module) {
+        std::fs::write(dir.join(&name), bytes).map_err(|e| err(&name)(&e))?;
+    }
+    super::ModuleFiles::find(dir, Some(module)).map_err(|e| err("module")(&e))
+}
