@@ -72,3 +72,101 @@ fn build_needs_ranges_or_images() {
     );
     assert!(!t.path().join("o").exists());
 }
+
+/// A zoo network written to `dir` with min/max ranges of a few random
+/// inputs saved next to it: `(graph path, ranges path)`.
+fn zoo_model(dir: &Path) -> (std::path::PathBuf, std::path::PathBuf) {
+    use ingot_compiler::calibrate::{MapRange, Ranges};
+    let net = ingot_compiler::zoo::residual(
+        &ingot_compiler::zoo::ResidualConfig {
+            input: [3, 16, 16],
+            ..Default::default()
+        },
+        5,
+    );
+    let graph = net.write(dir, "res").unwrap();
+    let g = ingot_compiler::load(&graph).unwrap();
+    let r = ingot_compiler::reference::Reference::new(&g);
+    let mut maps = vec![
+        MapRange {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY
+        };
+        g.map_count()
+    ];
+    for s in 0..2 {
+        r.run_with(&net.random_input(s), |m, v| {
+            for &a in v {
+                maps[m.index()].min = maps[m.index()].min.min(a);
+                maps[m.index()].max = maps[m.index()].max.max(a);
+            }
+        })
+        .unwrap();
+    }
+    let ranges = Ranges {
+        graph: g.name().into(),
+        graph_hash: ingot_compiler::calibrate::ranges::graph_hash(&g).unwrap(),
+        method: "minmax".into(),
+        images: 2,
+        maps,
+    };
+    let path = dir.join("res.ranges.json");
+    ranges.save(&g, &path).unwrap();
+    (graph, path)
+}
+
+#[test]
+fn build_lowers_plans_and_checks_the_target() {
+    let t = tempfile::tempdir().unwrap();
+    let (graph, ranges) = zoo_model(t.path());
+    let target = Path::new(env!("CARGO_MANIFEST_DIR")).join("targets/stm32f446re.toml");
+    let out = t.path().join("out");
+    let o = ingot(&[
+        "build".as_ref(),
+        graph.as_os_str(),
+        "--ranges".as_ref(),
+        ranges.as_os_str(),
+        "--target".as_ref(),
+        target.as_os_str(),
+        "--out".as_ref(),
+        out.as_os_str(),
+    ]);
+    let text = String::from_utf8_lossy(&o.stdout);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(text.contains("lower bound"), "{text}");
+    assert!(text.contains("fits: yes"), "{text}");
+    let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
+    assert!(module.contains("pub fn run"));
+    let weights = std::fs::metadata(out.join("model.weights.bin"))
+        .unwrap()
+        .len();
+    assert!(weights > 0);
+
+    // A part with 4 KiB of RAM is refused, naming the target and the RAM.
+    let tiny = t.path().join("tiny.toml");
+    std::fs::write(
+        &tiny,
+        "name = \"tiny\"\ncore = \"cortex-m0\"\ntriple = \"thumbv6m-none-eabi\"\nclock_hz = 1000000\n\
+         note = \"test\"\n[ram]\nbytes = 4096\nreserve = 0\nnote = \"x\"\n[flash]\nbytes = 1048576\nreserve = 0\nnote = \"x\"\n\
+         [datasheet]\ntitle = \"none\"\ndocument = \"none\"\nrevision = \"none\"\n",
+    )
+    .unwrap();
+    let out2 = t.path().join("out2");
+    let o = ingot(&[
+        "build".as_ref(),
+        graph.as_os_str(),
+        "--ranges".as_ref(),
+        ranges.as_os_str(),
+        "--target".as_ref(),
+        tiny.as_os_str(),
+        "--out".as_ref(),
+        out2.as_os_str(),
+    ]);
+    assert!(!o.status.success());
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        err.contains("does not fit") && err.contains("tiny") && err.contains("RAM"),
+        "{err}"
+    );
+    assert!(!out2.exists());
+}

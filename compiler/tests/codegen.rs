@@ -5,12 +5,21 @@
 //! `ingot-rt` kernels; plus determinism, hostile names, literal mode, an
 //! in-place concatenation schedule, the thumbv7em build and a snapshot.
 //!
+//! The zoo networks are lowered with min/max ranges of the float reference
+//! on random inputs, scheduled by the memory planner, and compared with the
+//! integer simulator (`lower::sim`) instead.
+//!
 //! All networks go into one generated crate, built once per test run.
 
+use ingot_compiler::calibrate::{MapRange, Ranges};
+use ingot_compiler::codegen::pipeline::schedule_of;
 use ingot_compiler::codegen::{
     self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightsMode,
 };
-use ingot_compiler::lower::{QGraph, QKernel};
+use ingot_compiler::lower::{lower, LowerOptions, QGraph, QKernel, SimInput, Simulator};
+use ingot_compiler::plan::{plan, PlanOptions};
+use ingot_compiler::reference::Reference;
+use ingot_compiler::zoo;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;
@@ -43,11 +52,44 @@ fn inputs(q: &QGraph, seed: u64) -> Vec<Vec<i8>> {
 /// Every map of a step in the schedule: `(step index, map name)` → values.
 type Trace = BTreeMap<(usize, usize), Vec<i8>>;
 
+#[derive(Clone)]
 struct Net {
     module: String,
     q: QGraph,
     schedule: Schedule,
     weights: WeightsMode,
+    /// Expected values from the integer simulator (else the interpreter).
+    sim: bool,
+}
+
+/// Min/max ranges of every map of `g` over a few random inputs.
+fn zoo_ranges(net: &zoo::Net) -> Ranges {
+    let g = net.build();
+    let r = Reference::new(&g);
+    let mut maps = vec![
+        MapRange {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY
+        };
+        g.map_count()
+    ];
+    for seed in 0..3 {
+        r.run_with(&net.random_input(seed), |m, v| {
+            let e = &mut maps[m.index()];
+            for &a in v {
+                e.min = e.min.min(a);
+                e.max = e.max.max(a);
+            }
+        })
+        .unwrap();
+    }
+    Ranges {
+        graph: g.name().into(),
+        graph_hash: String::new(),
+        method: "minmax".into(),
+        images: 3,
+        maps,
+    }
 }
 
 impl Net {
@@ -58,11 +100,50 @@ impl Net {
             q,
             schedule,
             weights: WeightsMode::IncludeBytes,
+            sim: false,
         }
     }
 
-    /// The interpreter's output and trace for every input.
+    /// A zoo network: calibrated, lowered, planned; checked against the
+    /// simulator.
+    fn zoo(module: &str, net: zoo::Net) -> Net {
+        let g = net.build();
+        let q = lower(&g, &zoo_ranges(&net), &LowerOptions::default()).unwrap();
+        let p = plan(&q, &PlanOptions::default()).unwrap();
+        let schedule = schedule_of(&q, &p);
+        Net {
+            module: module.into(),
+            q,
+            schedule,
+            weights: WeightsMode::IncludeBytes,
+            sim: true,
+        }
+    }
+
+    /// The simulator's output and every step's map (in schedule order).
+    fn simulated(&self) -> Vec<(Vec<i8>, Trace)> {
+        let steps = calls::step_calls(&self.q, &self.schedule).unwrap();
+        let mut sim = Simulator::new(&self.q);
+        inputs(&self.q, 7)
+            .iter()
+            .enumerate()
+            .map(|(k, x)| {
+                let out = sim.run(SimInput::Codes(x)).unwrap();
+                let t = steps
+                    .iter()
+                    .enumerate()
+                    .map(|(i, sc)| ((k, i), sim.map_hwc(self.q.step(sc.step).output)))
+                    .collect();
+                (out, t)
+            })
+            .collect()
+    }
+
+    /// The expected output and trace for every input.
     fn expected(&self) -> Vec<(Vec<i8>, Trace)> {
+        if self.sim {
+            return self.simulated();
+        }
         let steps = calls::step_calls(&self.q, &self.schedule).unwrap();
         inputs(&self.q, 7)
             .iter()
@@ -123,6 +204,44 @@ fn inplace_schedule(q: &QGraph) -> Schedule {
     s
 }
 
+/// The zoo networks, built once (calibration and planning take a moment).
+fn zoo_nets() -> &'static [Net] {
+    static Z: OnceLock<Vec<Net>> = OnceLock::new();
+    Z.get_or_init(|| {
+        let small_dense = zoo::DenseConfig {
+            input: [1, 24, 24],
+            ..zoo::DenseConfig::demo()
+        };
+        vec![
+            Net::zoo(
+                "zoo_plain",
+                zoo::plain_stack(&zoo::PlainStackConfig::default(), 11),
+            ),
+            Net::zoo("zoo_dense", zoo::dense(&small_dense, 12)),
+            Net::zoo(
+                "zoo_residual",
+                zoo::residual(
+                    &zoo::ResidualConfig {
+                        input: [3, 16, 16],
+                        ..zoo::ResidualConfig::default()
+                    },
+                    13,
+                ),
+            ),
+            Net::zoo(
+                "zoo_depthwise",
+                zoo::depthwise_separable(
+                    &zoo::DepthwiseConfig {
+                        input: [3, 16, 16],
+                        ..zoo::DepthwiseConfig::default()
+                    },
+                    14,
+                ),
+            ),
+        ]
+    })
+}
+
 fn nets() -> Vec<Net> {
     let dense = testnets::dense();
     let mut lit = Net::new("plain_literal", testnets::plain());
@@ -138,6 +257,9 @@ fn nets() -> Vec<Net> {
         lit,
         inplace,
     ]
+    .into_iter()
+    .chain(zoo_nets().iter().cloned())
+    .collect()
 }
 
 fn rt_path() -> PathBuf {
@@ -330,6 +452,48 @@ fn check_net(module: &str) {
     )
     .unwrap();
     assert_eq!(b.pixels[module], q);
+}
+
+/// A zoo network with the planner's schedule: the generated module equals
+/// the integer simulator on every map, and the plan is smaller than naive.
+fn check_zoo(module: &str) {
+    check_net(module);
+    let n = zoo_nets().iter().find(|n| n.module == module).unwrap();
+    let naive = Schedule::naive(&n.q);
+    assert!(
+        n.schedule.arena_bytes < naive.arena_bytes,
+        "{module}: planned arena {} not below naive {}",
+        n.schedule.arena_bytes,
+        naive.arena_bytes
+    );
+}
+
+#[test]
+fn zoo_plain_stack_matches_simulator_with_planned_schedule() {
+    check_zoo("zoo_plain");
+}
+
+#[test]
+fn zoo_dense_matches_simulator_with_planned_schedule() {
+    check_zoo("zoo_dense");
+    // The planner put at least one concatenation in place.
+    let n = zoo_nets().iter().find(|n| n.module == "zoo_dense").unwrap();
+    let concats =
+        n.q.steps
+            .iter()
+            .filter(|s| matches!(s.kernel, QKernel::Concat))
+            .count();
+    assert!(n.schedule.copy_concats.len() < concats);
+}
+
+#[test]
+fn zoo_residual_matches_simulator_with_planned_schedule() {
+    check_zoo("zoo_residual");
+}
+
+#[test]
+fn zoo_depthwise_matches_simulator_with_planned_schedule() {
+    check_zoo("zoo_depthwise");
 }
 
 #[test]

@@ -52,7 +52,7 @@ fn three_layer_chain_by_hand() {
     assert_eq!(p.lower_bound, 768);
     assert_eq!(p.arena_bytes, 768);
     assert_eq!(p.naive_bytes, 1184);
-    assert_eq!(p.patch_bytes, ingot_rt::conv_patch_len(3, 3, 8));
+    assert_eq!(p.patch_bytes, 2 * ingot_rt::conv_patch_len(3, 3, 8));
     assert_eq!(p.heuristic, "greedy-by-size/best-fit");
     assert_eq!(
         view(&q, &p, "c1"),

@@ -35,15 +35,15 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         (None, Some(d)) => pipeline::RangesSource::Images(d.clone()),
         (None, None) => anyhow::bail!("pass --ranges FILE or --images DIR"),
     };
-    let req = pipeline::Request {
+    let req = pipeline::BuildInputs {
         graph: args.graph.clone(),
         ranges,
         target: args.target.clone(),
         module: args.module.clone(),
     };
-    let g = pipeline::compile(&req)?;
-    output::write_all(&args.out, &g.files(&args.module), args.force)?;
-    let r = &g.report;
+    let c = pipeline::compile(&req)?;
+    output::write_all(&args.out, &c.files(&args.module), args.force)?;
+    let r = c.report();
     println!(
         "wrote {m}.rs, {m}.weights.bin, {m}.report.md, {m}.report.json into {out}",
         m = args.module,
@@ -60,5 +60,26 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         r.patch_bytes,
         r.weights_bytes
     );
+    println!(
+        "plan: scratch {} bytes (arena {} + patch {}), lower bound {} bytes, naive {} bytes",
+        c.plan.arena_bytes + c.plan.patch_bytes,
+        c.plan.arena_bytes,
+        c.plan.patch_bytes,
+        c.plan.lower_bound,
+        c.plan.naive_bytes
+    );
+    if let Some(b) = &c.budget {
+        println!(
+            "target {}: RAM {} of {} bytes (headroom {}), flash {} of {} bytes (headroom {}); fits: {}",
+            b.target,
+            b.ram_used,
+            b.ram_total,
+            b.ram_headroom,
+            b.flash_used,
+            b.flash_total,
+            b.flash_headroom,
+            if b.fits { "yes" } else { "no" }
+        );
+    }
     Ok(())
 }

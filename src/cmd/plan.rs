@@ -1,7 +1,7 @@
 //! `ingot plan GRAPH.json [--ranges R.json | --images DIR] [--target T.toml] [--svg OUT.svg] [--json]`.
 
 use anyhow::{bail, Context};
-use ingot_compiler::calibrate::{MapRange, Ranges};
+use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, MapRange, Ranges};
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{self, PlanOptions, Target};
 use std::path::PathBuf;
@@ -40,8 +40,11 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
                 ingot_compiler::calibrate::ranges::graph_hash(&g).context("hashing the graph")?;
             Ranges::load(&g, p, Some(&hash))?
         }
-        (None, Some(_)) => {
-            bail!("--images: calibration from images is not available in this build; pass --ranges")
+        (None, Some(dir)) => {
+            let images = ImageSet::open(dir, &g)?;
+            calibrate::run(&g, &images, &CalibOptions::default())
+                .with_context(|| format!("calibrating on {}", dir.display()))?
+                .ranges
         }
         (None, None) => Ranges {
             graph: g.name().into(),

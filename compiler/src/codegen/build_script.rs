@@ -12,7 +12,7 @@
 //! and in the crate: `mod model { include!(concat!(env!("OUT_DIR"), "/model.rs")); }`.
 
 use super::output::{self, OutputError};
-use super::pipeline::{self, PipelineError, RangesSource, Request};
+use super::pipeline::{self, BuildInputs, PipelineError, RangesSource};
 use super::report::Report;
 use std::path::{Path, PathBuf};
 
@@ -124,12 +124,12 @@ impl Builder {
         self
     }
 
-    fn request(&self) -> Result<Request, BuildError> {
+    fn request(&self) -> Result<BuildInputs, BuildError> {
         let ranges = self
             .ranges
             .clone()
             .ok_or_else(|| BuildError::NoRanges(self.graph.clone()))?;
-        Ok(Request {
+        Ok(BuildInputs {
             graph: self.graph.clone(),
             ranges,
             target: self.target.clone(),
@@ -168,7 +168,9 @@ impl Builder {
                     .target
                     .as_deref()
                     .map(pipeline::load_target)
-                    .transpose()?;
+                    .transpose()?
+                    .as_ref()
+                    .map(pipeline::target_info);
                 let opt = super::GenOptions {
                     module: self.module.clone(),
                     target,
@@ -176,7 +178,7 @@ impl Builder {
                 };
                 super::generate(q, &super::Schedule::naive(q), &opt).map_err(PipelineError::from)?
             }
-            None => pipeline::compile(&self.request()?)?,
+            None => pipeline::compile(&self.request()?)?.generated,
         };
         output::write_all(&out, &g.files(&self.module), true)?;
         Ok(Built {

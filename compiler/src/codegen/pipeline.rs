@@ -1,8 +1,16 @@
 //! From files to generated code: load the graph, obtain ranges (from a
-//! ranges file or by calibrating on images), lower, schedule, generate.
-//! Shared by `ingot build` and the build-script [`Builder`](super::build_script::Builder).
+//! ranges file or by calibrating on images), lower, plan the memory, check
+//! the target budget, generate.
+//!
+//! [`compile`] is the one library entry point: `ingot build`, the
+//! build-script [`Builder`](super::build_script::Builder) and `ingot check`
+//! all call it.
 
 use super::{CodegenError, GenOptions, Generated, Schedule, TargetInfo};
+use crate::calibrate::{CalibError, CalibOptions, ImageError, ImageSet, Ranges, RangesError};
+use crate::lower::{LowerError, LowerOptions, QGraph};
+use crate::plan::{Budget, Plan, PlanError, PlanOptions, Target, TargetError};
+use crate::Graph;
 use std::path::{Path, PathBuf};
 
 /// Where the quantization ranges come from.
@@ -10,24 +18,62 @@ use std::path::{Path, PathBuf};
 pub enum RangesSource {
     /// A saved `ingot.ranges.v1` file.
     File(PathBuf),
-    /// Calibrate on the images in this folder.
+    /// Calibrate on the images in this folder (default [`CalibOptions`]).
     Images(PathBuf),
 }
 
 /// One compilation request.
 #[derive(Debug, Clone)]
-pub struct Request {
+pub struct BuildInputs {
     /// The graph JSON.
     pub graph: PathBuf,
     /// Ranges.
     pub ranges: RangesSource,
-    /// Target TOML, if any.
+    /// Target TOML (`targets/*.toml`), if any: the build fails when the
+    /// model does not fit it.
     pub target: Option<PathBuf>,
     /// Module name.
     pub module: String,
 }
 
-/// Why a compilation failed.
+/// Former name of [`BuildInputs`].
+pub type Request = BuildInputs;
+
+/// Everything one compilation produced, in memory.
+#[derive(Debug, Clone)]
+pub struct Compiled {
+    /// The float graph as loaded.
+    pub graph: Graph,
+    /// The ranges the lowering used.
+    pub ranges: Ranges,
+    /// The lowered int8 graph.
+    pub qgraph: QGraph,
+    /// The memory plan.
+    pub plan: Plan,
+    /// The schedule given to the generator (derived from `plan`).
+    pub schedule: Schedule,
+    /// The target, when one was given.
+    pub target: Option<Target>,
+    /// The budget verdict against `target` (always `fits` when returned
+    /// by [`compile`]; see [`compile_unchecked`]).
+    pub budget: Option<Budget>,
+    /// The generated module, weights and reports.
+    pub generated: Generated,
+}
+
+impl Compiled {
+    /// `(file name, contents)` of every generated file.
+    pub fn files(&self, module: &str) -> Vec<(String, Vec<u8>)> {
+        self.generated.files(module)
+    }
+
+    /// The generation report.
+    pub fn report(&self) -> &super::report::Report {
+        &self.generated.report
+    }
+}
+
+/// Why a compilation failed. `Display` is one readable sentence.
 #[derive(Debug, thiserror::Error)]
 pub enum PipelineError {
     /// The graph did not load.
@@ -35,19 +81,38 @@ pub enum PipelineError {
     Load(Box<crate::LoadError>),
     /// The ranges file is unusable.
     #[error(transparent)]
-    Ranges(#[from] crate::calibrate::RangesError),
+    Ranges(#[from] RangesError),
+    /// The image folder is unusable.
+    #[error(transparent)]
+    Images(#[from] ImageError),
+    /// Calibration failed.
+    #[error("calibration failed: {0}")]
+    Calibrate(#[from] CalibError),
+    /// Lowering failed.
+    #[error("lowering failed: {0}")]
+    Lower(#[from] LowerError),
+    /// Memory planning failed.
+    #[error("memory planning failed: {0}")]
+    Plan(#[from] PlanError),
     /// A step the pipeline needs is not available in this build.
     #[error("{0}")]
     Unavailable(String),
     /// The target file is unusable.
-    #[error("{path}: {msg}")]
-    Target {
-        /// The file.
-        path: PathBuf,
-        /// What is wrong.
-        msg: String,
+    #[error(transparent)]
+    Target(#[from] TargetError),
+    /// The model does not fit the target.
+    #[error("model `{graph}` does not fit target `{target}`: {}", over.join("; "))]
+    Budget {
+        /// Graph name.
+        graph: String,
+        /// Target name.
+        target: String,
+        /// One line per memory that is over.
+        over: Vec<String>,
+        /// The full verdict.
+        budget: Box<Budget>,
     },
-    /// Generation failed (includes "does not fit the target").
+    /// Generation failed.
     #[error(transparent)]
     Codegen(#[from] CodegenError),
     /// File system error.
@@ -69,50 +134,57 @@ impl From<crate::LoadError> for PipelineError {
 impl PipelineError {
     /// True when the model is valid but does not fit the target's memory.
     pub fn is_budget(&self) -> bool {
-        matches!(self, PipelineError::Codegen(CodegenError::Budget { .. }))
+        matches!(
+            self,
+            PipelineError::Budget { .. } | PipelineError::Codegen(CodegenError::Budget { .. })
+        )
     }
 }
 
-/// Reads a target description: `name` and optional `ram_bytes`/`ram_kib`,
-/// `flash_bytes`/`flash_kib` keys (top level or under `[memory]`).
-pub fn load_target(path: &Path) -> Result<TargetInfo, PipelineError> {
-    let text = std::fs::read_to_string(path).map_err(|source| PipelineError::Io {
-        path: path.into(),
-        source,
-    })?;
-    let v: toml::Table = text
-        .parse()
-        .map_err(|e: toml::de::Error| PipelineError::Target {
-            path: path.into(),
-            msg: e.to_string(),
-        })?;
-    let get = |k: &str| -> Option<i64> {
-        v.get(k)
-            .or_else(|| v.get("memory").and_then(|m| m.get(k)))
-            .and_then(|x| x.as_integer())
-    };
-    let bytes = |b: &str, kib: &str| {
-        get(b)
-            .or_else(|| get(kib).map(|k| k * 1024))
-            .map(|n| n.max(0) as usize)
-    };
-    Ok(TargetInfo {
-        name: v
-            .get("name")
-            .and_then(|n| n.as_str())
-            .map(str::to_string)
-            .unwrap_or_else(|| {
-                path.file_stem()
-                    .map(|s| s.to_string_lossy().into_owned())
-                    .unwrap_or_default()
-            }),
-        ram_bytes: bytes("ram_bytes", "ram_kib"),
-        flash_bytes: bytes("flash_bytes", "flash_kib"),
-    })
+impl From<&Plan> for Schedule {
+    fn from(p: &Plan) -> Schedule {
+        Schedule {
+            order: p.order.clone(),
+            views: p
+                .map_views
+                .iter()
+                .map(|v| super::MapView {
+                    offset: v.offset,
+                    stride: v.stride,
+                })
+                .collect(),
+            copy_concats: p.copy_concat.clone(),
+            arena_bytes: p.arena_bytes,
+            patch_bytes: p.patch_bytes,
+        }
+    }
+}
+
+/// The schedule of `plan` for `q`, with the patch buffer at least as large
+/// as the generator's kernels need.
+pub fn schedule_of(q: &QGraph, plan: &Plan) -> Schedule {
+    let mut s = Schedule::from(plan);
+    s.patch_bytes = s.patch_bytes.max(super::schedule::min_patch_bytes(q));
+    s
+}
+
+/// Generator view of a target: its name and the memory left after the
+/// reserves.
+pub fn target_info(t: &Target) -> TargetInfo {
+    TargetInfo {
+        name: t.name.clone(),
+        ram_bytes: Some(t.ram.bytes.saturating_sub(t.ram.reserve) as usize),
+        flash_bytes: Some(t.flash.bytes.saturating_sub(t.flash.reserve) as usize),
+    }
+}
+
+/// Reads a target description (`targets/*.toml`).
+pub fn load_target(path: &Path) -> Result<Target, PipelineError> {
+    Ok(Target::load(path)?)
 }
 
 /// Files the request reads (for `cargo:rerun-if-changed`).
-pub fn inputs(req: &Request) -> Vec<PathBuf> {
+pub fn inputs(req: &BuildInputs) -> Vec<PathBuf> {
     let mut v = vec![req.graph.clone()];
     if let Ok(text) = std::fs::read_to_string(&req.graph) {
         if let Ok(file) = crate::frontend::parse(&text, &req.graph) {
@@ -126,50 +198,96 @@ pub fn inputs(req: &Request) -> Vec<PathBuf> {
     v
 }
 
-/// Runs the whole pipeline in memory.
-pub fn compile(req: &Request) -> Result<Generated, PipelineError> {
-    let target = req.target.as_deref().map(load_target).transpose()?;
-    let graph = crate::load(&req.graph)?;
-    let hash =
-        crate::calibrate::ranges::graph_hash(&graph).map_err(|source| PipelineError::Io {
-            path: req.graph.clone(),
-            source,
-        })?;
-    let (ranges, ranges_hash) = match &req.ranges {
+/// Ranges for `graph` from `src`, and a hash of where they came from.
+pub fn ranges_for(graph: &Graph, src: &RangesSource) -> Result<(Ranges, String), PipelineError> {
+    let hash = crate::calibrate::ranges::graph_hash(graph).map_err(|source| PipelineError::Io {
+        path: PathBuf::from(graph.name()),
+        source,
+    })?;
+    match src {
         RangesSource::File(p) => {
-            let r = crate::calibrate::Ranges::load(&graph, p, Some(&hash))?;
+            let r = Ranges::load(graph, p, Some(&hash))?;
             let bytes = std::fs::read(p).map_err(|source| PipelineError::Io {
                 path: p.clone(),
                 source,
             })?;
-            (
+            Ok((
                 r,
                 format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)),
-            )
-        }
-        RangesSource::Images(_dir) => {
-            return Err(PipelineError::Unavailable(
-                "calibration on images is not available in this build yet; pass a ranges file"
-                    .into(),
             ))
         }
-    };
-    let q = lower(&graph, &ranges)?;
-    let schedule = Schedule::naive(&q);
-    let opt = GenOptions {
-        module: req.module.clone(),
-        target,
-        source_hash: format!("{hash}:{ranges_hash}"),
-        ..GenOptions::default()
-    };
-    Ok(super::generate(&q, &schedule, &opt)?)
+        RangesSource::Images(dir) => {
+            let images = ImageSet::open(dir, graph)?;
+            let cal = crate::calibrate::run(graph, &images, &CalibOptions::default())?;
+            let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
+            Ok((
+                cal.ranges,
+                format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)),
+            ))
+        }
+    }
 }
 
-fn lower(
-    _g: &crate::Graph,
-    _r: &crate::calibrate::Ranges,
-) -> Result<crate::lower::QGraph, PipelineError> {
-    Err(PipelineError::Unavailable(
-        "lowering is not available in this build yet".into(),
-    ))
+/// Runs the whole pipeline in memory; fails with
+/// [`PipelineError::Budget`] when the model does not fit the target.
+pub fn compile(req: &BuildInputs) -> Result<Compiled, PipelineError> {
+    let c = compile_unchecked(req)?;
+    if let Some(b) = &c.budget {
+        if !b.fits {
+            return Err(PipelineError::Budget {
+                graph: c.qgraph.name.clone(),
+                target: b.target.clone(),
+                over: b.over.clone(),
+                budget: Box::new(b.clone()),
+            });
+        }
+    }
+    Ok(c)
+}
+
+/// [`compile`] without refusing a model that is over the target's budget
+/// (the verdict is in [`Compiled::budget`]); for reports.
+pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
+    let target = req.target.as_deref().map(load_target).transpose()?;
+    let graph = crate::load(&req.graph)?;
+    let (ranges, ranges_hash) = ranges_for(&graph, &req.ranges)?;
+    let graph_hash =
+        crate::calibrate::ranges::graph_hash(&graph).map_err(|source| PipelineError::Io {
+            path: req.graph.clone(),
+            source,
+        })?;
+    let q = crate::lower::lower(&graph, &ranges, &LowerOptions::default())?;
+    let plan = crate::plan::plan(&q, &PlanOptions::default())?;
+    let schedule = schedule_of(&q, &plan);
+    let opt = GenOptions {
+        module: req.module.clone(),
+        // The budget is checked below with the planner's figures; the
+        // generator only names the target.
+        target: target.as_ref().map(|t| TargetInfo {
+            name: t.name.clone(),
+            ram_bytes: None,
+            flash_bytes: None,
+        }),
+        source_hash: format!("{graph_hash}:{ranges_hash}"),
+        ..GenOptions::default()
+    };
+    let generated = super::generate(&q, &schedule, &opt)?;
+    let budget = target.as_ref().map(|t| {
+        crate::plan::target::budget_with_weights_file(
+            &q,
+            &plan,
+            t,
+            Some(generated.weights.len() as u64),
+        )
+    });
+    Ok(Compiled {
+        graph,
+        ranges,
+        qgraph: q,
+        plan,
+        schedule,
+        target,
+        budget,
+        generated,
+    })
 }

@@ -140,8 +140,8 @@ pub struct Plan {
     pub buffers: Vec<BufferLife>,
     /// Arena size in bytes.
     pub arena_bytes: usize,
-    /// Convolution patch scratch (outside the arena), the largest
-    /// `ingot_rt::conv_patch_len` of any convolution.
+    /// Convolution patch scratch in bytes (outside the arena): twice the
+    /// largest `ingot_rt::conv_patch_len` (`i16` elements) of any convolution.
     pub patch_bytes: usize,
     /// Largest total of (padded) buffers alive at one step of `order`.
     pub lower_bound: usize,
@@ -204,16 +204,15 @@ pub enum PlanError {
     Verify(String, String),
 }
 
-/// Bytes of convolution patch scratch the graph needs.
+/// Bytes of convolution patch scratch the graph needs: the patch holds
+/// `ingot_rt::conv_patch_len` elements of `i16`, two bytes each.
 pub fn patch_bytes(q: &QGraph) -> usize {
     q.steps
         .iter()
         .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => Some(ingot_rt::conv_patch_len(
-                c.kernel[0],
-                c.kernel[1],
-                q.map(s.inputs[0]).shape.c,
-            )),
+            QKernel::Conv2d(c) => Some(
+                2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], q.map(s.inputs[0]).shape.c),
+            ),
             _ => None,
         })
         .max()

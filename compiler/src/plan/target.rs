@@ -175,6 +175,9 @@ pub struct FlashUse {
     pub transforms: u64,
     /// Code estimate ([`RUNTIME_CODE_BYTES`] + [`STEP_CODE_BYTES`] per step).
     pub code: u64,
+    /// Size of the generated weights file, when it exists: then it replaces
+    /// the sum of the four constant parts above in [`FlashUse::total`].
+    pub weights_file: Option<u64>,
 }
 
 impl FlashUse {
@@ -213,9 +216,16 @@ impl FlashUse {
         f
     }
 
-    /// Sum of all parts.
+    /// Constants: the generated weights file's size when known, else the
+    /// sum of the parts.
+    pub fn constants(&self) -> u64 {
+        self.weights_file
+            .unwrap_or(self.weights + self.biases + self.multipliers + self.transforms)
+    }
+
+    /// Constants and code.
     pub fn total(&self) -> u64 {
-        self.weights + self.biases + self.multipliers + self.transforms + self.code
+        self.constants() + self.code
     }
 }
 
@@ -252,12 +262,24 @@ pub struct Budget {
     pub over: Vec<String>,
 }
 
-/// Checks `plan` of `q` against `t`.
+/// Checks `plan` of `q` against `t` (constants estimated from `q`).
 pub fn budget(q: &QGraph, plan: &Plan, t: &Target) -> Budget {
+    budget_with_weights_file(q, plan, t, None)
+}
+
+/// [`budget`], with the size in bytes of the generated weights file in
+/// place of the estimate of the constants when it is given.
+pub fn budget_with_weights_file(
+    q: &QGraph,
+    plan: &Plan,
+    t: &Target,
+    weights_file: Option<u64>,
+) -> Budget {
     let arena = plan.arena_bytes as u64;
     let patch = plan.patch_bytes as u64;
     let ram_used = arena + patch + t.ram.reserve;
-    let flash = FlashUse::of(q);
+    let mut flash = FlashUse::of(q);
+    flash.weights_file = weights_file;
     let flash_used = flash.total() + t.flash.reserve;
     let ram_headroom = t.ram.bytes as i64 - ram_used as i64;
     let flash_headroom = t.flash.bytes as i64 - flash_used as i64;
@@ -272,7 +294,7 @@ pub fn budget(q: &QGraph, plan: &Plan, t: &Target) -> Budget {
         over.push(format!(
             "flash over by {} bytes: constants {} + code estimate {} + reserve {} = {} > {}",
             -flash_headroom,
-            flash.total() - flash.code,
+            flash.constants(),
             flash.code,
             t.flash.reserve,
             flash_used,
