@@ -16,7 +16,7 @@ use crate::lower::{
     ChannelTransform, Clamp, Multiplier, QConv, QGraph, QKernel, QLinear, QPool, StepId,
 };
 use ingot_rt::{
-    AddParams, ConvParams, InputTransform, MapRef, OutputQuant, Padding, PoolQuant, Requant, Window,
+    AddParams, ConvParams, InputTransform, MapRef, OutputQuant, PoolQuant, Requant, Window,
 };
 
 /// One kernel call.
@@ -101,48 +101,9 @@ fn out_quant(zp: i32, c: Clamp) -> OutputQuant {
     OutputQuant::clamped(zp, c.min, c.max)
 }
 
-fn padding(p: crate::graph::Padding) -> Padding {
-    Padding {
-        top: p.top,
-        left: p.left,
-        bottom: p.bottom,
-        right: p.right,
-    }
-}
-
-fn pool_window(p: &QPool) -> Window {
-    Window {
-        kh: p.kernel[0],
-        kw: p.kernel[1],
-        step_y: p.stride[0],
-        step_x: p.stride[1],
-        dilation_y: 1,
-        dilation_x: 1,
-        pad: padding(p.padding),
-    }
-}
-
 /// The borrowed runtime form of a channel transform.
 pub fn rt_transform(t: &ChannelTransform) -> InputTransform<'_> {
-    match t {
-        ChannelTransform::Affine {
-            mul,
-            add,
-            shift,
-            zp_in,
-            zp_out,
-            clamp,
-        } => InputTransform::Affine(ingot_rt::AffineTransform {
-            mul,
-            add,
-            shift: *shift,
-            zp_in: *zp_in,
-            zp_out: *zp_out,
-            min: clamp.min,
-            max: clamp.max,
-        }),
-        ChannelTransform::Table(t) => InputTransform::Table(t),
-    }
+    t.runtime()
 }
 
 /// Why a step cannot be turned into calls.
@@ -176,15 +137,7 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
             QKernel::Conv2d(c) => {
                 let input_zp = i8::try_from(c.input_zp)
                     .map_err(|_| format!("step `{}`: input zero point out of range", st.name))?;
-                let window = Window {
-                    kh: c.kernel[0],
-                    kw: c.kernel[1],
-                    step_y: c.stride[0],
-                    step_x: c.stride[1],
-                    dilation_y: c.dilation[0],
-                    dilation_x: c.dilation[1],
-                    pad: padding(c.padding),
-                };
+                let window = c.runtime_window();
                 let params = ConvParams {
                     window,
                     groups: c.groups,
@@ -207,13 +160,13 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
             QKernel::MaxPool(p) => vec![Call::MaxPool {
                 input: inp(0)?,
                 output: o,
-                window: pool_window(p),
+                window: p.runtime_window(),
                 q: pool_q(p),
             }],
             QKernel::AvgPool(p) => vec![Call::AvgPool {
                 input: inp(0)?,
                 output: o,
-                window: pool_window(p),
+                window: p.runtime_window(),
                 q: pool_q(p),
             }],
             QKernel::GlobalAvgPool(p) => vec![Call::GlobalAvgPool {

@@ -377,3 +377,72 @@ impl QGraph {
         Ok(())
     }
 }
+
+// Conversions to the runtime's parameter types, in one place, so the
+// integer simulator and the code generator hand the kernels identical values.
+
+impl From<Padding> for ingot_rt::Padding {
+    fn from(p: Padding) -> Self {
+        ingot_rt::Padding {
+            top: p.top,
+            left: p.left,
+            bottom: p.bottom,
+            right: p.right,
+        }
+    }
+}
+
+impl QConv {
+    /// The kernel window in the runtime's terms.
+    pub fn runtime_window(&self) -> ingot_rt::Window {
+        ingot_rt::Window {
+            kh: self.kernel[0],
+            kw: self.kernel[1],
+            step_y: self.stride[0],
+            step_x: self.stride[1],
+            dilation_y: self.dilation[0],
+            dilation_x: self.dilation[1],
+            pad: self.padding.into(),
+        }
+    }
+}
+
+impl QPool {
+    /// The pooling window in the runtime's terms.
+    pub fn runtime_window(&self) -> ingot_rt::Window {
+        ingot_rt::Window {
+            kh: self.kernel[0],
+            kw: self.kernel[1],
+            step_y: self.stride[0],
+            step_x: self.stride[1],
+            dilation_y: 1,
+            dilation_x: 1,
+            pad: self.padding.into(),
+        }
+    }
+}
+
+impl ChannelTransform {
+    /// The runtime's borrowed view of this transform.
+    pub fn runtime(&self) -> ingot_rt::InputTransform<'_> {
+        match self {
+            ChannelTransform::Affine {
+                mul,
+                add,
+                shift,
+                zp_in,
+                zp_out,
+                clamp,
+            } => ingot_rt::InputTransform::Affine(ingot_rt::AffineTransform {
+                mul,
+                add,
+                shift: *shift,
+                zp_in: *zp_in,
+                zp_out: *zp_out,
+                min: clamp.min,
+                max: clamp.max,
+            }),
+            ChannelTransform::Table(t) => ingot_rt::InputTransform::Table(t),
+        }
+    }
+}

@@ -220,27 +220,7 @@ pub fn with_runtime_transform<R>(
     t: &ChannelTransform,
     f: impl FnOnce(&ingot_rt::InputTransform<'_>) -> R,
 ) -> R {
-    match t {
-        ChannelTransform::Affine {
-            mul,
-            add,
-            shift,
-            zp_in,
-            zp_out,
-            clamp,
-        } => f(&ingot_rt::InputTransform::Affine(
-            ingot_rt::AffineTransform {
-                mul,
-                add,
-                shift: *shift,
-                zp_in: *zp_in,
-                zp_out: *zp_out,
-                min: clamp.min,
-                max: clamp.max,
-            },
-        )),
-        ChannelTransform::Table(t) => f(&ingot_rt::InputTransform::Table(t)),
-    }
+    f(&t.runtime())
 }
 
 #[cfg(test)]

@@ -214,15 +214,7 @@ impl<'q> Simulator<'q> {
         match &s.kernel {
             QKernel::Conv2d(c) => {
                 let p = ingot_rt::ConvParams {
-                    window: ingot_rt::Window {
-                        kh: c.kernel[0],
-                        kw: c.kernel[1],
-                        step_y: c.stride[0],
-                        step_x: c.stride[1],
-                        dilation_y: c.dilation[0],
-                        dilation_x: c.dilation[1],
-                        pad: rt_padding(c.padding),
-                    },
+                    window: c.runtime_window(),
                     groups: c.groups,
                     input_zp: c.input_zp.clamp(-128, 127) as i8,
                     out: oq(c.clamp),
@@ -258,15 +250,7 @@ impl<'q> Simulator<'q> {
                 oq(l.clamp),
             ),
             QKernel::MaxPool(p) | QKernel::AvgPool(p) => {
-                let w = ingot_rt::Window {
-                    kh: p.kernel[0],
-                    kw: p.kernel[1],
-                    step_y: p.stride[0],
-                    step_x: p.stride[1],
-                    dilation_y: 1,
-                    dilation_x: 1,
-                    pad: rt_padding(p.padding),
-                };
+                let w = p.runtime_window();
                 let pq = PoolQuant {
                     in_zp,
                     requant: p.requant.map(to_requant),
@@ -339,15 +323,6 @@ impl<'q> Simulator<'q> {
         (0..hwc.len())
             .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], map.qp))
             .collect()
-    }
-}
-
-fn rt_padding(p: crate::graph::Padding) -> ingot_rt::Padding {
-    ingot_rt::Padding {
-        top: p.top,
-        left: p.left,
-        bottom: p.bottom,
-        right: p.right,
     }
 }
 
