@@ -27,11 +27,13 @@ pub fn channel_transform(
     if output != input && !output.is_disjoint(&input) {
         return Err(Error::Overlap);
     }
+    // The pad value does not matter here: validate against the transform's
+    // own output zero point.
     let valid = match t {
         InputTransform::Affine(a) => {
-            a.mul.len() >= input.c && a.add.len() >= input.c && a.shift <= 62 && a.min <= a.max
+            (-128..=127).contains(&a.zp_out) && t.is_valid_for(input.c, a.zp_out as i8)
         }
-        InputTransform::Table(tab) => input.c.checked_mul(256).is_some_and(|n| tab.len() >= n),
+        InputTransform::Table(_) => t.is_valid_for(input.c, 0),
     };
     if !valid {
         return Err(Error::BadParams);

@@ -271,6 +271,17 @@ pub fn conv2d(
     // like a dense convolution (`patch[t][c]`, whole kernel rows copied at
     // once), then each output channel walks its input channel's column.
     let depthwise = cpg == 1 && p.groups > 1;
+    // With a fused input transform each gathered value costs several
+    // instructions, so neighbouring pixels share the columns they overlap
+    // in (stride 1, no dilation, one group): each input value is then
+    // transformed `kh` times instead of `kh·kw`.
+    let slide = transform.is_some()
+        && !pointwise
+        && !depthwise
+        && p.groups == 1
+        && w.kw > 1
+        && w.step_x == 1
+        && w.dilation_x == 1;
     for oy in 0..output.h {
         for ox in 0..output.w {
             if pointwise {
@@ -289,6 +300,25 @@ pub fn conv2d(
                     ox,
                     input.c,
                     seg * input.c,
+                    patch,
+                );
+            } else if slide && ox > 0 {
+                // The patch holds pixel (oy, ox - 1): keep its last
+                // `kw - 1` columns, gather (and transform) only the new one.
+                let run = w.kw * cpg;
+                for row in patch.chunks_exact_mut(run) {
+                    row.copy_within(cpg.., 0);
+                }
+                gather_columns(
+                    arena,
+                    &input,
+                    w,
+                    p.input_zp,
+                    transform,
+                    oy,
+                    ox,
+                    w.kw - 1,
+                    cpg,
                     patch,
                 );
             } else {
@@ -364,10 +394,13 @@ fn channel_rows(
         return;
     }
     let tail = seg - seg % 16;
-    let mut quads = weights.chunks_exact(4 * seg);
-    let mut outs = out.chunks_exact_mut(4);
+    let quad_rows = out.len() / 4 * 4;
+    let (wq, wrest) = weights[..out.len() * seg].split_at(quad_rows * seg);
+    let (oq, orest) = out.split_at_mut(quad_rows);
+    let quads = wq.chunks_exact(4 * seg);
+    let outs = oq.chunks_exact_mut(4);
     let mut k = 0;
-    for (rows, o) in (&mut quads).zip(&mut outs) {
+    for (rows, o) in quads.zip(outs) {
         let (a, r) = rows.split_at(seg);
         let (b, r) = r.split_at(seg);
         let (c, d) = r.split_at(seg);
@@ -382,8 +415,7 @@ fn channel_rows(
         }
         k += 4;
     }
-    let rest = quads.remainder();
-    let out = outs.into_remainder();
+    let (rest, out) = (wrest, orest);
     let mut j = 0;
     while j + 2 <= out.len() {
         let (a, b) = rest[j * seg..(j + 2) * seg].split_at(seg);
@@ -399,6 +431,50 @@ fn channel_rows(
     if j < out.len() {
         let a = &rest[j * seg..(j + 1) * seg];
         out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
+    }
+}
+
+/// Gathers kernel columns `kx0..kw` of output pixel `(oy, ox)` into a
+/// one-group patch (`[ky][kx][ci]`, widened, transformed).
+#[allow(clippy::too_many_arguments)]
+#[inline]
+fn gather_columns(
+    arena: &[i8],
+    input: &MapRef,
+    w: &Window,
+    pad_value: i8,
+    transform: Option<&InputTransform<'_>>,
+    oy: usize,
+    ox: usize,
+    kx0: usize,
+    c: usize,
+    patch: &mut [i16],
+) {
+    let base_y = oy * w.step_y;
+    let base_x = ox * w.step_x;
+    for ky in 0..w.kh {
+        let yy = base_y + ky * w.dilation_y;
+        let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
+        for kx in kx0..w.kw {
+            let t = ky * w.kw + kx;
+            let xx = base_x + kx * w.dilation_x;
+            let dst = &mut patch[t * c..(t + 1) * c];
+            if !(row_in && xx >= w.pad.left && xx - w.pad.left < input.w) {
+                dst.fill(pad_value as i16);
+                continue;
+            }
+            let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
+            let src = &arena[src..src + c];
+            match transform {
+                None => widen_into(dst, src),
+                Some(InputTransform::Affine(a)) => a.apply_pixel(dst, src),
+                Some(tr) => {
+                    for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                        *d = tr.apply(ch, v) as i16;
+                    }
+                }
+            }
+        }
     }
 }
 
@@ -453,6 +529,7 @@ fn gather(
                 let src = &arena[src..src + cpg];
                 match transform {
                     None => widen_into(dst, src),
+                    Some(InputTransform::Affine(a)) => a.apply_pixel(dst, src),
                     Some(tr) => {
                         for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
                             *d = tr.apply(ch, v) as i16;

@@ -12,6 +12,17 @@
 //! `pmaddwd` on x86 SSE2 (eight products summed pairwise into four i32
 //! lanes per instruction). Accumulation wraps in i32; the compiler
 //! guarantees it cannot overflow (see [`acc_worst_case`](crate::acc_worst_case)).
+//!
+//! On Arm (Cortex-M) that shape is wrong: there is no SIMD unit for the
+//! lanes, so sixteen accumulators per row spill to the stack and every MAC
+//! becomes a load, a multiply-accumulate and a store. There the
+//! [`scalar`] forms are used: one accumulator per row, the patch value
+//! loaded once for all rows, two terms per iteration, so each MAC is a
+//! byte load and an `smlabb` plus a shared halfword load and loop step.
+//! Both forms compute the same wrapping sums (a unit test compares them).
+
+#[cfg(target_arch = "arm")]
+pub(crate) use scalar::{dot2_wide, dot4_wide, dot_wide};
 
 /// Sums the lanes of an accumulator array.
 #[inline(always)]
@@ -24,6 +35,7 @@ fn lane_sum(acc: &[i32; 16]) -> i32 {
 }
 
 /// One 16-lane step: `s[j] += x[j] · w[j]`.
+#[cfg(not(target_arch = "arm"))]
 #[inline(always)]
 fn step16(s: &mut [i32; 16], x: &[i16], w: &[i8]) {
     for j in 0..16 {
@@ -32,6 +44,7 @@ fn step16(s: &mut [i32; 16], x: &[i16], w: &[i8]) {
 }
 
 /// `Σ x[i]·w[i]` over `w.len()` terms (`x.len() >= w.len()`).
+#[cfg(not(target_arch = "arm"))]
 #[inline(never)]
 pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
     let n = w.len();
@@ -57,6 +70,7 @@ pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
 /// slices keeps the two rows' expression trees independent, so LLVM's SLP
 /// vectorizer costs each row like the single-row loop (and emits
 /// `pmaddwd`), while the pair shares the loop overhead and the call.
+#[cfg(not(target_arch = "arm"))]
 #[inline(never)]
 pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2] {
     let n = w0.len();
@@ -79,6 +93,7 @@ pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2
 
 /// Four rows at once, same contract as [`dot2_wide`] with four patch
 /// slices (all the same patch in practice) and four weight rows.
+#[cfg(not(target_arch = "arm"))]
 #[inline(never)]
 pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
     let n = w[0].len();
@@ -144,5 +159,149 @@ pub(crate) fn dot_i8(x: &[i8], w: &[i8]) -> i32 {
 pub(crate) fn widen_into(dst: &mut [i16], src: &[i8]) {
     for (d, &s) in dst.iter_mut().zip(src) {
         *d = s as i16;
+    }
+}
+
+/// Register-friendly forms for cores without SIMD lanes (used on Arm; also
+/// compiled on the host so their results can be compared with the lane
+/// forms). Same contracts as the lane forms, except that [`dot4_wide`] and
+/// [`dot2_wide`] read the patch once for every row: all `x` slices must be
+/// the same patch, as the convolution passes them.
+#[cfg_attr(not(target_arch = "arm"), allow(dead_code))]
+pub(crate) mod scalar {
+    /// See [`super::dot_wide`] (all `w.len()` terms).
+    #[inline(never)]
+    pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
+        let x = &x[..w.len()];
+        let (mut a, mut b) = (0i32, 0i32);
+        let (xc, wc) = (x.chunks_exact(2), w.chunks_exact(2));
+        let tail = match (xc.remainder(), wc.remainder()) {
+            (&[xv], &[wv]) => (xv as i32).wrapping_mul(wv as i32),
+            _ => 0,
+        };
+        for (xp, wp) in xc.zip(wc) {
+            a = a.wrapping_add((xp[0] as i32).wrapping_mul(wp[0] as i32));
+            b = b.wrapping_add((xp[1] as i32).wrapping_mul(wp[1] as i32));
+        }
+        a.wrapping_add(b).wrapping_add(tail)
+    }
+
+    /// See [`super::dot2_wide`]; `x1` must be `x0`.
+    #[inline(never)]
+    pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2] {
+        debug_assert!(core::ptr::eq(x0, x1));
+        let _ = x1;
+        let n = w0.len() - w0.len() % 16;
+        let (x, w0, w1) = (&x0[..n], &w0[..n], &w1[..n]);
+        let (mut a, mut b) = (0i32, 0i32);
+        for ((xp, p), q) in x
+            .chunks_exact(2)
+            .zip(w0.chunks_exact(2))
+            .zip(w1.chunks_exact(2))
+        {
+            let (x0, x1) = (xp[0] as i32, xp[1] as i32);
+            a = a
+                .wrapping_add(x0.wrapping_mul(p[0] as i32))
+                .wrapping_add(x1.wrapping_mul(p[1] as i32));
+            b = b
+                .wrapping_add(x0.wrapping_mul(q[0] as i32))
+                .wrapping_add(x1.wrapping_mul(q[1] as i32));
+        }
+        [a, b]
+    }
+
+    /// See [`super::dot4_wide`]; all four `x` must be the same patch.
+    ///
+    /// Two patch values travel in one 32-bit word, so each pair costs one
+    /// load for all four rows, and the halves feed `smlabb`/`smlatb`
+    /// directly.
+    #[inline(never)]
+    pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
+        debug_assert!(x.iter().all(|v| core::ptr::eq(*v, x[0])));
+        let n = w[0].len() - w[0].len() % 16;
+        let xs = &x[0][..n];
+        let (w0, w1, w2, w3) = (&w[0][..n], &w[1][..n], &w[2][..n], &w[3][..n]);
+        let (mut a, mut b, mut c, mut d) = (0i32, 0i32, 0i32, 0i32);
+        for ((((xp, p), q), r), t) in xs
+            .chunks_exact(2)
+            .zip(w0.chunks_exact(2))
+            .zip(w1.chunks_exact(2))
+            .zip(w2.chunks_exact(2))
+            .zip(w3.chunks_exact(2))
+        {
+            let word = (xp[0] as u16 as u32) | ((xp[1] as u16 as u32) << 16);
+            let lo = ((word << 16) as i32) >> 16;
+            let hi = (word as i32) >> 16;
+            a = a
+                .wrapping_add(lo.wrapping_mul(p[0] as i32))
+                .wrapping_add(hi.wrapping_mul(p[1] as i32));
+            b = b
+                .wrapping_add(lo.wrapping_mul(q[0] as i32))
+                .wrapping_add(hi.wrapping_mul(q[1] as i32));
+            c = c
+                .wrapping_add(lo.wrapping_mul(r[0] as i32))
+                .wrapping_add(hi.wrapping_mul(r[1] as i32));
+            d = d
+                .wrapping_add(lo.wrapping_mul(t[0] as i32))
+                .wrapping_add(hi.wrapping_mul(t[1] as i32));
+        }
+        [a, b, c, d]
+    }
+}
+
+#[cfg(all(test, not(target_arch = "arm")))]
+mod tests {
+    use super::*;
+
+    const MAX: usize = 433;
+
+    /// Deterministic values covering the int8/int16 extremes.
+    fn data(seed: u32) -> ([i16; MAX], [[i8; MAX]; 4]) {
+        let mut s = seed;
+        let mut next = move || {
+            s ^= s << 13;
+            s ^= s >> 17;
+            s ^= s << 5;
+            s
+        };
+        let mut x = [0i16; MAX];
+        for (i, v) in x.iter_mut().enumerate() {
+            *v = match i % 7 {
+                0 => i16::MIN,
+                1 => 255,
+                _ => (next() >> 16) as i16 % 300,
+            };
+        }
+        let mut w = [[0i8; MAX]; 4];
+        for (r, row) in w.iter_mut().enumerate() {
+            for (i, v) in row.iter_mut().enumerate() {
+                *v = if (i + r) % 5 == 0 {
+                    -128
+                } else {
+                    (next() >> 24) as i8
+                };
+            }
+        }
+        (x, w)
+    }
+
+    #[test]
+    fn scalar_forms_equal_lane_forms() {
+        for n in [0, 1, 2, 15, 16, 17, 31, 32, 48, 72, 144, MAX] {
+            let (x, w) = data(0x1234_5678 ^ n as u32);
+            let x = &x[..n];
+            let (a, b, c, d) = (&w[0][..n], &w[1][..n], &w[2][..n], &w[3][..n]);
+            assert_eq!(scalar::dot_wide(x, a), dot_wide(x, a), "n={n}");
+            assert_eq!(
+                scalar::dot2_wide(x, x, a, b),
+                dot2_wide(x, x, a, b),
+                "n={n}"
+            );
+            assert_eq!(
+                scalar::dot4_wide([x, x, x, x], [a, b, c, d]),
+                dot4_wide([x, x, x, x], [a, b, c, d]),
+                "n={n}"
+            );
+        }
     }
 }

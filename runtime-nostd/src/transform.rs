@@ -4,15 +4,18 @@
 /// Affine per-channel transform with one common shift:
 ///
 /// ```text
-/// t  = (x - zp_in) * mul[ch] + add[ch]                      (i64)
+/// t  = (x - zp_in) * mul[ch] + add[ch]                      (i32)
 /// t' = (t + (1 << (shift - 1))) >> shift   if shift > 0     (round half up)
 ///    = t                                   if shift == 0
 /// q' = clamp(zp_out + t', min, max)
 /// ```
 ///
 /// `mul` may be negative (a batch-norm with negative gamma). A fused ReLU is
-/// `min = zp_out`. `|x - zp_in| <= 255` and `|mul| < 2^31` keep every step
-/// far inside i64.
+/// `min = zp_out`. Validity ([`InputTransform::is_valid_for`]) requires
+/// `255·|mul| + |add| + 2^(shift-1) < 2^30` for every channel, so every
+/// step fits i32 with room to spare: the transform runs once per gathered
+/// value, and on a 32-bit core 64-bit arithmetic would cost several times
+/// the multiply-accumulates it feeds.
 #[derive(Debug, Clone, Copy)]
 pub struct AffineTransform<'a> {
     /// Per input channel multiplier (at least `C_in` entries).
@@ -20,7 +23,7 @@ pub struct AffineTransform<'a> {
     /// Per input channel additive term, already in units of `2^-shift`
     /// output steps (at least `C_in` entries).
     pub add: &'a [i32],
-    /// Common right shift, `0..=62`.
+    /// Common right shift, `0..=29`.
     pub shift: u32,
     /// Zero point of the stored (untransformed) input.
     pub zp_in: i32,
@@ -48,18 +51,55 @@ impl AffineTransform<'_> {
     /// Transform one value of input channel `ch` (see the type docs).
     #[inline(always)]
     pub fn apply(&self, ch: usize, x: i8) -> i8 {
-        let mut t = (x as i64 - self.zp_in as i64) * self.mul[ch] as i64 + self.add[ch] as i64;
+        self.apply_with(self.mul[ch], self.add[ch], self.rounding(), x)
+    }
+
+    /// `2^(shift-1)`, or 0 without a shift: adding it before the shift
+    /// rounds half up, and `(t + 0) >> 0 == t`.
+    #[inline(always)]
+    pub fn rounding(&self) -> i32 {
         if self.shift > 0 {
-            t = (t + (1i64 << (self.shift - 1))) >> self.shift;
-        }
-        let r = t + self.zp_out as i64;
-        if r < self.min as i64 {
-            self.min
-        } else if r > self.max as i64 {
-            self.max
+            1 << (self.shift - 1)
         } else {
-            r as i8
+            0
         }
+    }
+
+    /// [`apply`](Self::apply) with one channel's `mul` and `add` and
+    /// [`rounding`](Self::rounding) already looked up, for loops that walk
+    /// the channels in order.
+    #[inline(always)]
+    pub fn apply_with(&self, mul: i32, add: i32, rounding: i32, x: i8) -> i8 {
+        let t = (x as i32 - self.zp_in).wrapping_mul(mul) + add;
+        let r = ((t + rounding) >> self.shift) + self.zp_out;
+        r.clamp(self.min as i32, self.max as i32) as i8
+    }
+
+    /// Transforms `src` (channels `0..src.len()` of one pixel) into `dst`,
+    /// widened.
+    #[inline(always)]
+    pub fn apply_pixel(&self, dst: &mut [i16], src: &[i8]) {
+        let n = src.len();
+        let rounding = self.rounding();
+        for ((d, &v), (&m, &a)) in dst[..n]
+            .iter_mut()
+            .zip(src)
+            .zip(self.mul[..n].iter().zip(&self.add[..n]))
+        {
+            *d = self.apply_with(m, a, rounding, v) as i16;
+        }
+    }
+
+    /// True when channel `ch`'s parameters keep [`apply`](Self::apply)
+    /// inside i32 (see the type docs).
+    pub fn fits_i32(&self, ch: usize) -> bool {
+        let round = if self.shift > 0 {
+            1i64 << (self.shift - 1)
+        } else {
+            0
+        };
+        self.shift <= 29
+            && 255 * (self.mul[ch] as i64).abs() + (self.add[ch] as i64).abs() + round < 1 << 30
     }
 }
 
@@ -81,9 +121,11 @@ impl InputTransform<'_> {
             InputTransform::Affine(a) => {
                 a.mul.len() >= channels
                     && a.add.len() >= channels
-                    && a.shift <= 62
                     && a.min <= a.max
                     && a.zp_out == pad_value as i32
+                    && (-255..=255).contains(&a.zp_out)
+                    && (-128..=127).contains(&a.zp_in)
+                    && (0..channels).all(|ch| a.fits_i32(ch))
             }
             InputTransform::Table(t) => channels.checked_mul(256).is_some_and(|n| t.len() >= n),
         }

@@ -162,8 +162,8 @@ pub fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> QuantizedW
 /// mul[c] = round(a[c]·s_in/s_out · 2^shift),  add[c] = round(b[c]/s_out · 2^shift)
 /// ```
 ///
-/// with the largest common `shift` (at most 62) that keeps every `mul` and
-/// `add` inside i32. An `add` so large that the output saturates for every
+/// with the largest common `shift` (at most 29) that keeps the runtime's
+/// i32 evaluation `255·|mul| + |add| + 2^(shift-1)` below 2^30. An `add` so large that the output saturates for every
 /// input code is first reduced to a value that still saturates. Returns
 /// `None` when even `shift = 0` cannot hold a multiplier (one input step
 /// worth more than 2^31 output steps).
@@ -185,12 +185,15 @@ pub fn affine_transform(
     if reals.iter().any(|(m, a)| !m.is_finite() || !a.is_finite()) {
         return None;
     }
-    let maxv = reals
-        .iter()
-        .fold(0f64, |acc, &(m, a)| acc.max(m.abs()).max(a.abs()));
-    let limit = (i32::MAX - 1) as f64;
-    let mut shift: i32 = 62;
-    while shift >= 0 && maxv * 2f64.powi(shift) >= limit {
+    // The runtime evaluates the transform in i32 and requires
+    // 255·|mul| + |add| + 2^(shift-1) < 2^30 (ingot_rt::AffineTransform);
+    // one unit of margin per term absorbs the rounding of mul and add.
+    let worst = reals.iter().fold(0f64, |acc, &(m, a)| {
+        acc.max(255.0 * (m.abs() + 1.0) + a.abs() + 1.0)
+    });
+    let limit = (1u64 << 30) as f64;
+    let mut shift: i32 = 29;
+    while shift >= 0 && worst * 2f64.powi(shift) + 2f64.powi(shift - 1) >= limit {
         shift -= 1;
     }
     if shift < 0 {
