@@ -49,15 +49,19 @@ pub struct Args {
     /// count, input length, then int8 codes).
     #[arg(long, requires = "module")]
     pub inputs: Option<PathBuf>,
-    /// Flash budget in bytes (until target profiles carry one).
+    /// Flash budget in bytes for the firmware ELF (`.text` + `.rodata` +
+    /// `.data`) [default with `--target`: the part's flash less its reserve]
     #[arg(long)]
     pub flash_budget: Option<u64>,
-    /// RAM budget in bytes (until target profiles carry one).
+    /// RAM budget in bytes for the firmware ELF (`.data` + `.bss` + stack
+    /// used) [default with `--target`: the part's RAM less its reserve]
     #[arg(long)]
     pub ram_budget: Option<u64>,
-    /// Seconds each runner (host or QEMU) may take for the whole image set.
-    #[arg(long, default_value_t = 120)]
-    pub timeout: u64,
+    /// Seconds each runner (host or QEMU) may take for the whole image set
+    /// [default: 120 s plus 1 s per 2 million MACs of work, so an emulated
+    /// run of a large set is not cut short]
+    #[arg(long)]
+    pub timeout: Option<u64>,
     /// `opt-level` of the runner build.
     #[arg(long, default_value = "3")]
     pub opt_level: String,
@@ -83,10 +87,9 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         .context("the module has no `const INPUT_LEN: usize`")?;
     let output_len = runner::module_const_usize(&src, "OUTPUT_LEN")
         .context("the module has no `const OUTPUT_LEN: usize`")?;
-    let inputs_path = a
-        .inputs
-        .as_ref()
-        .context("--module needs --inputs FILE (quantized inputs) until image loading lands")?;
+    let inputs_path = a.inputs.as_ref().context(
+        "--module needs --inputs FILE (quantized int8 inputs); to check on images, pass the GRAPH.json instead",
+    )?;
     let bytes =
         std::fs::read(inputs_path).with_context(|| format!("reading {}", inputs_path.display()))?;
     let (len, inputs) = io::decode_batch(io::INPUTS_MAGIC, &bytes, "inputs")?;
@@ -107,7 +110,7 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         on: a.on,
         build: BuildConfig {
             opt_level: a.opt_level.clone(),
-            timeout: std::time::Duration::from_secs(a.timeout),
+            timeout: timeout(a, &data),
             ..BuildConfig::default()
         },
         budget: Budget {
@@ -129,6 +132,19 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         bail!("check failed: {}", r.failures.join("; "));
     }
     Ok(())
+}
+
+/// The runner's wall-clock limit: `--timeout`, or one that grows with the
+/// work. The allowance (1 s per 2 million MACs) assumes about 10 emulated
+/// instructions per MAC (a Cortex-M0+ build) at 20 million instructions per
+/// second under QEMU with `-icount` on a slow, shared machine; it guards
+/// against a hung runner, not a slow one.
+fn timeout(a: &Args, data: &CheckData) -> std::time::Duration {
+    let secs = a.timeout.unwrap_or_else(|| {
+        let macs: u64 = data.steps.iter().map(|s| s.macs).sum();
+        120 + macs.saturating_mul(data.inputs.len() as u64) / 2_000_000
+    });
+    std::time::Duration::from_secs(secs)
 }
 
 fn thresholds(a: &Args) -> Thresholds {
@@ -177,12 +193,21 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         on: a.on,
         build: BuildConfig {
             opt_level: a.opt_level.clone(),
-            timeout: std::time::Duration::from_secs(a.timeout),
+            timeout: timeout(a, &p.data),
             ..BuildConfig::default()
         },
+        // The firmware ELF (module + runner) against the target's memory
+        // less its reserves. Conservative: the measured stack is counted in
+        // the ELF's RAM although the RAM reserve already covers a stack.
         budget: Budget {
-            flash: a.flash_budget,
-            ram: a.ram_budget,
+            flash: a.flash_budget.or(p
+                .budget
+                .as_ref()
+                .map(|b| b.flash_total.saturating_sub(b.flash_reserve))),
+            ram: a.ram_budget.or(p
+                .budget
+                .as_ref()
+                .map(|b| b.ram_total.saturating_sub(b.ram_reserve))),
         },
         thresholds: thresholds(a),
     };

@@ -11,7 +11,7 @@
 use super::compare::{self, Accuracy, Thresholds};
 use super::icount;
 use super::io::TraceMap;
-use super::report::{CheckReport, InstructionFigures, LayerFigures};
+use super::report::{self, CheckReport, InstructionFigures, LayerFigures};
 use super::runner::{self, BuildConfig, TraceMode};
 use super::size::{self, Budget};
 use super::{CheckError, ModuleFiles, Result, RunOn};
@@ -239,8 +239,12 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
             per_mac: (macs > 0).then(|| mean as f64 / macs as f64),
             traced_per_inference_mean: Some(traced_mean),
             calibration: cal.clone(),
+            per_kind: Vec::new(),
         });
         report.layers = layer_rows(data, &step_instr);
+        if let Some(i) = &mut report.instructions {
+            i.per_kind = report::per_kind(&report.layers);
+        }
         for (what, outputs) in [("", &out.outputs), (" (traced build)", &tout.outputs)] {
             let d = compare::compare_outputs(outputs, &host.outputs);
             if !d.identical() {

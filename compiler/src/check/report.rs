@@ -49,6 +49,61 @@ pub struct InstructionFigures {
     pub traced_per_inference_mean: Option<u64>,
     /// The calibration used.
     pub calibration: Calibration,
+    /// Per-layer figures summed by kernel kind (from the traced build).
+    pub per_kind: Vec<KindFigures>,
+}
+
+/// Instructions of the steps of one kernel kind, summed.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct KindFigures {
+    /// Kernel kind (`conv2d`, `linear`, ...).
+    pub kind: String,
+    /// Steps of this kind.
+    pub steps: usize,
+    /// Their MACs.
+    pub macs: u64,
+    /// Their mean instructions per inference.
+    pub instructions: u64,
+    /// `instructions / macs`, for kinds with MACs.
+    pub per_mac: Option<f64>,
+    /// Share of all traced instructions.
+    pub share: f64,
+}
+
+/// Sums per-layer instruction counts by kernel kind, in order of first
+/// appearance; layers without a count are left out.
+pub fn per_kind(layers: &[LayerFigures]) -> Vec<KindFigures> {
+    let total: u64 = layers.iter().filter_map(|l| l.instructions).sum();
+    let mut out: Vec<KindFigures> = Vec::new();
+    for l in layers {
+        let Some(i) = l.instructions else { continue };
+        let k = match out.iter_mut().position(|k| k.kind == l.kind) {
+            Some(p) => &mut out[p],
+            None => {
+                out.push(KindFigures {
+                    kind: l.kind.clone(),
+                    steps: 0,
+                    macs: 0,
+                    instructions: 0,
+                    per_mac: None,
+                    share: 0.0,
+                });
+                out.last_mut().expect("just pushed")
+            }
+        };
+        k.steps += 1;
+        k.macs += l.macs;
+        k.instructions += i;
+    }
+    for k in &mut out {
+        k.per_mac = (k.macs > 0).then(|| k.instructions as f64 / k.macs as f64);
+        k.share = if total > 0 {
+            k.instructions as f64 / total as f64
+        } else {
+            0.0
+        };
+    }
+    out
 }
 
 /// Everything `ingot check` found.
@@ -235,6 +290,25 @@ pub fn markdown(r: &CheckReport) -> String {
             "These are instructions executed by the emulated core (QEMU {}, `-icount shift=0`), not cycles: QEMU does not model pipelines, caches or wait states. SysTick ticks are converted with a measured {:.3} instructions per tick (resolution ±1 tick per measurement).\n",
             i.calibration.machine, i.calibration.instructions_per_tick
         );
+        if !i.per_kind.is_empty() {
+            let _ = writeln!(
+                s,
+                "| kind | steps | MACs | instructions | instr./MAC | share |\n|---|---|---|---|---|---|"
+            );
+            for k in &i.per_kind {
+                let _ = writeln!(
+                    s,
+                    "| {} | {} | {} | {} | {} | {:.1}% |",
+                    k.kind,
+                    k.steps,
+                    thousands(k.macs),
+                    thousands(k.instructions),
+                    k.per_mac.map_or("–".into(), |p| format!("{p:.2}")),
+                    100.0 * k.share
+                );
+            }
+            s.push('\n');
+        }
         if let Some(t) = i.traced_per_inference_mean {
             let _ = writeln!(
                 s,
@@ -499,6 +573,28 @@ pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
 mod tests {
     use super::*;
     use crate::check::compare;
+
+    #[test]
+    fn per_kind_sums_counted_layers_in_order_of_appearance() {
+        let l = |kind: &str, macs, instructions| LayerFigures {
+            kind: kind.into(),
+            macs,
+            instructions,
+            ..LayerFigures::default()
+        };
+        let k = per_kind(&[
+            l("conv2d", 1000, Some(2000)),
+            l("max_pool", 0, Some(500)),
+            l("conv2d", 3000, Some(2500)),
+            l("linear", 10, None),
+        ]);
+        assert_eq!(k.len(), 2);
+        assert_eq!((k[0].kind.as_str(), k[0].steps), ("conv2d", 2));
+        assert_eq!((k[0].macs, k[0].instructions), (4000, 4500));
+        assert_eq!(k[0].per_mac, Some(1.125));
+        assert!((k[0].share - 0.9).abs() < 1e-12);
+        assert_eq!((k[1].kind.as_str(), k[1].per_mac), ("max_pool", None));
+    }
 
     fn sample() -> CheckReport {
         let acc = compare::accuracy(&[0, 1, 2, 1], &[0, 1, 1, 1], &[0, 1, 2, 1], 3);
