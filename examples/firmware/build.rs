@@ -2,9 +2,10 @@
 //!
 //! Uses the committed demo model and its committed ranges
 //! (`examples/demo/model/brackets.{graph,ranges}.json`, written once by
-//! `ingot calibrate`), so the build does not recalibrate. Only when the
-//! model is not in the tree (or its ranges are stale) does it fall back to
-//! a built-in demo-sized network with random weights, with a warning.
+//! `ingot calibrate`), so the build does not recalibrate, and fails when the
+//! model does not fit the demo's Cortex-M4F profile. Only when the model is
+//! not in the tree does it fall back to a built-in demo-sized network with
+//! random weights, with a warning.
 
 use ingot_compiler::build::Builder;
 use std::path::Path;
@@ -14,27 +15,20 @@ fn main() {
     let ranges = Path::new("../demo/model/brackets.ranges.json");
     println!("cargo:rerun-if-changed=../demo/model");
     if graph.exists() && ranges.exists() {
-        match Builder::new(graph)
+        // The demo model is in the tree: any problem with it (stale ranges,
+        // a model that does not fit) fails the build rather than quietly
+        // building the stand-in.
+        Builder::new(graph)
             .ranges(ranges)
+            .target("../../targets/stm32l4r9ai.toml")
             .module("model")
-            .generate()
-        {
-            Ok(_) => return,
-            Err(e) if e.is_budget() => {
-                println!("cargo:warning={e}");
-                eprintln!("error: {e}");
-                std::process::exit(1);
-            }
-            Err(e) => println!(
-                "cargo:warning=demo model not usable ({e}); using the built-in demo-sized network"
-            ),
-        }
-    } else {
-        println!(
-            "cargo:warning=demo model not found at {}; using the built-in demo-sized network",
-            graph.display()
-        );
+            .generate_or_exit();
+        return;
     }
+    println!(
+        "cargo:warning=demo model not found at {}; using the built-in demo-sized network",
+        graph.display()
+    );
     Builder::lowered(ingot_compiler::codegen::testnets::demo_sized())
         .module("model")
         .generate_or_exit();

@@ -15,8 +15,9 @@
 //!   angle, brighter or darker than the metal, moderate contrast;
 //! - `pit`: a small dark disc, radius 1.5-3.5 px, with a bright rim on the
 //!   side facing the light;
-//! - `stain`: a soft, low-contrast, roughly round blob, radius 6-14 px with
-//!   Gaussian falloff, usually darker, sometimes slightly brighter.
+//! - `stain`: a soft, low-contrast, roughly round blob, radius 6-14 px, flat
+//!   in the middle with a soft edge (super-Gaussian falloff), usually
+//!   darker, sometimes slightly brighter.
 
 use crate::rng::{derive, mix, Rng};
 
@@ -133,7 +134,7 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
     let light = rng.unit_vector();
     let grad = rng.range(0.0, 0.10);
     let band = if rng.chance(0.5) {
-        rng.range(0.015, 0.05)
+        rng.range(0.01, 0.035)
     } else {
         0.0
     };
@@ -216,9 +217,9 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
                 rng.range(radius * 0.6, n - radius * 0.6),
             );
             let amp = if rng.chance(0.75) {
-                -rng.range(0.07, 0.13)
+                -rng.range(0.10, 0.16)
             } else {
-                rng.range(0.06, 0.10)
+                rng.range(0.08, 0.12)
             };
             let aspect = rng.range(0.7, 1.0);
             let axis = rng.unit_vector();
@@ -232,7 +233,9 @@ pub fn render(seed: u64, class: usize) -> Vec<u8> {
                     let b = (-dx * axis.1 + dy * axis.0) / aspect;
                     let q = (a * a + b * b) / (sigma * sigma);
                     let wobble = 0.8 + 0.2 * edge.at(x as f64 / 5.0, y as f64 / 5.0);
-                    img[y * SIZE + x] += amp * wobble * exp_neg(q / 2.0);
+                    // A dried film: flat in the middle, soft at the edge
+                    // (a super-Gaussian), unlike the smooth lighting.
+                    img[y * SIZE + x] += amp * wobble * exp_neg(q * q / 8.0);
                 }
             }
         }

@@ -154,7 +154,7 @@ fn demo_model_matches_simulator_on_eval_images() {
     );
 }
 
-/// Lowest accepted accuracy on the sample. Above chance (0.25) only: the
-/// stage-1 brackets model (59% float on the eval set) scores 41.7% here;
-/// raise this to 0.9 when the trained model lands.
-const MIN_ACCURACY: f64 = 0.35;
+/// Lowest accepted int8 accuracy on the sample (the committed model scores
+/// well above it; `ingot check` on the whole evaluation set is the real
+/// measure, see the README).
+const MIN_ACCURACY: f64 = 0.9;

@@ -69,6 +69,8 @@ pub struct Conv {
     pub b: Option<Var>,
     /// Zero padding on every side.
     pub pad: usize,
+    /// Stride (both axes).
+    pub stride: usize,
 }
 
 impl Conv {
@@ -89,7 +91,14 @@ impl Conv {
                 None
             },
             pad,
+            stride: 1,
         })
+    }
+
+    /// The same convolution with stride `s`.
+    pub fn with_stride(mut self, s: usize) -> Self {
+        self.stride = s;
+        self
     }
 
     /// `x` `[C, N, H, W]` to `[O, N, OH, OW]`.
@@ -125,7 +134,20 @@ impl Conv {
             Some(b) => y.broadcast_add(&b.as_tensor().reshape((o, 1))?)?,
             None => y,
         };
-        Ok(y.reshape((o, n, oh, ow))?)
+        let y = y.reshape((o, n, oh, ow))?;
+        if self.stride == 1 {
+            return Ok(y);
+        }
+        // A stride-s output is the stride-1 output at every s-th position
+        // (same padding); computing all of it costs little on the thin
+        // layers this is used for and keeps one im2col path.
+        let s = self.stride;
+        let pick = |len: usize| -> Result<Tensor> {
+            let idx: Vec<u32> = (0..len).step_by(s).map(|i| i as u32).collect();
+            let n = idx.len();
+            Ok(Tensor::from_vec(idx, n, &Device::Cpu)?)
+        };
+        Ok(y.index_select(&pick(oh)?, 2)?.index_select(&pick(ow)?, 3)?)
     }
 
     /// Trainable tensors.
