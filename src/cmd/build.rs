@@ -1,6 +1,11 @@
 //! `ingot build GRAPH.json (--images DIR | --ranges FILE) [--target FILE] --out DIR [--module NAME] [--force]`.
 
+use ingot_compiler::calibrate::Method;
 use ingot_compiler::codegen::{output, pipeline};
+
+fn parse_method(s: &str) -> Result<Method, String> {
+    s.parse()
+}
 use std::path::PathBuf;
 
 /// Arguments of `ingot build`.
@@ -14,6 +19,10 @@ pub struct Args {
     /// Use a saved ranges file (`ingot.ranges.v1`) instead of calibrating.
     #[arg(long)]
     pub ranges: Option<PathBuf>,
+    /// Range choice when calibrating on --images: minmax, percentile:P,
+    /// mse or kl (as `ingot calibrate --method`).
+    #[arg(long, default_value = "minmax", value_parser = parse_method, requires = "images")]
+    pub method: Method,
     /// Target description (TOML); the build fails if the model does not fit.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -32,7 +41,7 @@ pub struct Args {
 pub fn run(args: &Args) -> anyhow::Result<()> {
     let ranges = match (&args.ranges, &args.images) {
         (Some(r), _) => pipeline::RangesSource::File(r.clone()),
-        (None, Some(d)) => pipeline::RangesSource::Images(d.clone()),
+        (None, Some(d)) => pipeline::RangesSource::Images(d.clone(), args.method),
         (None, None) => anyhow::bail!("pass --ranges FILE or --images DIR"),
     };
     let req = pipeline::BuildInputs {

@@ -26,6 +26,10 @@ pub struct Args {
     /// Calibrate on these images instead of reading `--ranges`.
     #[arg(long)]
     pub calib_images: Option<PathBuf>,
+    /// Range choice when calibrating: minmax, percentile:P, mse or kl (as
+    /// `ingot calibrate --method`).
+    #[arg(long, default_value = "minmax", value_parser = parse_method, conflicts_with = "ranges")]
+    pub method: ingot_compiler::calibrate::Method,
     /// Target profile (`targets/NAME.toml`): flash and RAM budget.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -65,6 +69,10 @@ pub struct Args {
     /// `opt-level` of the runner build.
     #[arg(long, default_value = "3")]
     pub opt_level: String,
+}
+
+fn parse_method(s: &str) -> Result<ingot_compiler::calibrate::Method, String> {
+    s.parse()
 }
 
 fn parse_on(s: &str) -> Result<RunOn, String> {
@@ -175,6 +183,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     };
     let opts = PrepareOptions {
         ranges,
+        method: a.method,
         target: a.target.clone(),
         ..PrepareOptions::default()
     };
@@ -275,12 +284,13 @@ fn summary(
         Some(z) => {
             let _ = writeln!(
                 s,
-                "; firmware {} bytes flash, {} bytes static RAM, stack {} on {}",
+                "; firmware ELF on {}: {} bytes flash, {} bytes RAM ({} static + {} stack measured)",
+                a.on,
                 z.flash,
                 z.ram,
+                z.sections.static_ram(),
                 z.stack_used
-                    .map_or("?".to_string(), |v| format!("{v} bytes")),
-                a.on
+                    .map_or("?".to_string(), |v| v.to_string()),
             );
         }
         None => {

@@ -46,6 +46,9 @@ fn err(stage: &str) -> impl Fn(&dyn std::fmt::Display) -> PrepareError + '_ {
 pub struct PrepareOptions {
     /// Ranges source.
     pub ranges: RangesFrom,
+    /// Range method when calibrating (`--calib-images` or the checked
+    /// images).
+    pub method: calibrate::Method,
     /// Weight scales per output channel (default) or per tensor.
     pub per_channel: bool,
     /// Target profile for the budget.
@@ -58,6 +61,7 @@ impl Default for PrepareOptions {
     fn default() -> Self {
         PrepareOptions {
             ranges: RangesFrom::CheckImages,
+            method: calibrate::Method::MinMax,
             per_channel: true,
             target: None,
             module: String::new(),
@@ -104,7 +108,7 @@ pub fn prepare(
             images.display()
         )));
     }
-    let (ranges, ranges_note) = ranges_for(&g, &set, &opts.ranges)?;
+    let (ranges, ranges_note) = ranges_for(&g, &set, &opts.ranges, opts.method)?;
     let q = lower::lower(
         &g,
         &ranges,
@@ -166,9 +170,14 @@ fn ranges_for(
     g: &Graph,
     set: &ImageSet,
     from: &RangesFrom,
+    method: calibrate::Method,
 ) -> Result<(Ranges, String), PrepareError> {
+    let opts = CalibOptions {
+        method,
+        ..CalibOptions::default()
+    };
     let calibrate_on = |s: &ImageSet| {
-        calibrate::run(g, s, &CalibOptions::default())
+        calibrate::run(g, s, &opts)
             .map(|c| c.ranges)
             .map_err(|e| err("calibration")(&e))
     };
@@ -184,7 +193,7 @@ fn ranges_for(
             Ok((
                 r,
                 format!(
-                    "calibrated (min/max) on {} images of {}",
+                    "calibrated ({method}) on {} images of {}",
                     cal.len(),
                     dir.display()
                 ),
@@ -193,7 +202,7 @@ fn ranges_for(
         RangesFrom::CheckImages => Ok((
             calibrate_on(set)?,
             format!(
-                "calibrated on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
+                "calibrated ({method}) on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
                 set.len(),
                 set.root().display()
             ),

@@ -99,9 +99,14 @@ impl Builder {
         self
     }
 
-    /// Calibrate on the images in a folder.
-    pub fn images(mut self, dir: impl AsRef<Path>) -> Self {
-        self.ranges = Some(RangesSource::Images(dir.as_ref().into()));
+    /// Calibrate on the images in a folder (min/max ranges).
+    pub fn images(self, dir: impl AsRef<Path>) -> Self {
+        self.images_with(dir, crate::calibrate::Method::MinMax)
+    }
+
+    /// Calibrate on the images in a folder with the given range method.
+    pub fn images_with(mut self, dir: impl AsRef<Path>, method: crate::calibrate::Method) -> Self {
+        self.ranges = Some(RangesSource::Images(dir.as_ref().into(), method));
         self
     }
 

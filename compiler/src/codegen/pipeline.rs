@@ -14,12 +14,13 @@ use crate::Graph;
 use std::path::{Path, PathBuf};
 
 /// Where the quantization ranges come from.
-#[derive(Debug, Clone, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq)]
 pub enum RangesSource {
     /// A saved `ingot.ranges.v1` file.
     File(PathBuf),
-    /// Calibrate on the images in this folder (default [`CalibOptions`]).
-    Images(PathBuf),
+    /// Calibrate on the images in this folder with this range method
+    /// (otherwise default [`CalibOptions`]).
+    Images(PathBuf, crate::calibrate::Method),
 }
 
 /// One compilation request.
@@ -192,7 +193,7 @@ pub fn inputs(req: &BuildInputs) -> Vec<PathBuf> {
         }
     }
     match &req.ranges {
-        RangesSource::File(p) | RangesSource::Images(p) => v.push(p.clone()),
+        RangesSource::File(p) | RangesSource::Images(p, _) => v.push(p.clone()),
     }
     v.extend(req.target.clone());
     v
@@ -216,9 +217,13 @@ pub fn ranges_for(graph: &Graph, src: &RangesSource) -> Result<(Ranges, String),
                 format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)),
             ))
         }
-        RangesSource::Images(dir) => {
+        RangesSource::Images(dir, method) => {
             let images = ImageSet::open(dir, graph)?;
-            let cal = crate::calibrate::run(graph, &images, &CalibOptions::default())?;
+            let opts = CalibOptions {
+                method: *method,
+                ..CalibOptions::default()
+            };
+            let cal = crate::calibrate::run(graph, &images, &opts)?;
             let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
             Ok((
                 cal.ranges,
