@@ -143,3 +143,61 @@ fn unknown_class_folder_is_named() {
     assert_eq!(out.status.code(), Some(1));
     assert!(String::from_utf8_lossy(&out.stderr).contains("`kitten`"));
 }
+
+/// `--method auto` tries every candidate on the calibration images (the
+/// held-out ones stay untouched), keeps the best top-1 agreement, and says
+/// so in the ranges file and the JSON report.
+#[test]
+fn calibrate_auto_keeps_the_candidate_with_the_best_agreement() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    let out_file = dir.path().join("r.json");
+    let out = ingot()
+        .args(["calibrate"])
+        .arg(&graph)
+        .arg("--images")
+        .arg(dir.path().join("images"))
+        .args(["--method", "auto", "--holdout", "0.2", "--json", "-o"])
+        .arg(&out_file)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let tried = v["auto"]["tried"].as_array().unwrap();
+    let names: Vec<&str> = tried.iter().map(|t| t[0].as_str().unwrap()).collect();
+    assert_eq!(
+        names,
+        [
+            "minmax",
+            "percentile:99.99",
+            "percentile:99.95",
+            "percentile:99.9",
+            "mse",
+            "kl"
+        ]
+    );
+    assert_eq!(
+        v["auto"]["images"], 16,
+        "compared on the calibration images"
+    );
+    let best = tried
+        .iter()
+        .map(|t| t[1].as_f64().unwrap())
+        .fold(f64::MIN, f64::max);
+    let first_best = tried
+        .iter()
+        .find(|t| t[1].as_f64().unwrap() == best)
+        .unwrap();
+    assert_eq!(v["auto"]["chosen"], first_best[0]);
+    let chosen = v["auto"]["chosen"].as_str().unwrap();
+    assert_eq!(v["method"], format!("auto: {chosen}"));
+    let ranges: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
+    assert_eq!(ranges["method"], format!("auto: {chosen}"));
+    // The evaluation in the report is still on the held-out images.
+    assert_eq!(v["evaluated_on"], "held-out");
+}

@@ -506,57 +506,50 @@ fn gather(
         && input.stride == input.c
         && base_x >= w.pad.left
         && base_x - w.pad.left + w.kw <= input.w;
+    if groups == 1 && !dense_row {
+        gather_columns(
+            arena, input, w, p.input_zp, transform, oy, ox, 0, cpg, patch,
+        );
+        return;
+    }
     for ky in 0..w.kh {
         let yy = base_y + ky * w.dilation_y; // padded coordinate
         let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
-        if dense_row && row_in {
+        if dense_row {
             let run = w.kw * cpg;
-            let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
-            widen_into(&mut patch[ky * run..(ky + 1) * run], &arena[src..src + run]);
+            let dst = &mut patch[ky * run..(ky + 1) * run];
+            if row_in {
+                let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
+                widen_into(dst, &arena[src..src + run]);
+            } else {
+                dst.fill(p.input_zp as i16);
+            }
             continue;
         }
+        // Grouped convolutions (groups > 1).
         for kx in 0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
             let inside = row_in && xx >= w.pad.left && xx - w.pad.left < input.w;
-            if groups == 1 {
-                let dst = &mut patch[t * cpg..(t + 1) * cpg];
+            let src = if inside {
+                input.pixel(yy - w.pad.top, xx - w.pad.left)
+            } else {
+                0
+            };
+            for g in 0..groups {
+                let at = g * seg + t * cpg;
+                let dst = &mut patch[at..at + cpg];
                 if !inside {
                     dst.fill(p.input_zp as i16);
                     continue;
                 }
-                let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
-                let src = &arena[src..src + cpg];
+                let c0 = g * cpg;
+                let src = &arena[src + c0..src + c0 + cpg];
                 match transform {
                     None => widen_into(dst, src),
-                    Some(InputTransform::Affine(a)) => a.apply_pixel(dst, src),
                     Some(tr) => {
-                        for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
-                            *d = tr.apply(ch, v) as i16;
-                        }
-                    }
-                }
-            } else {
-                let src = if inside {
-                    input.pixel(yy - w.pad.top, xx - w.pad.left)
-                } else {
-                    0
-                };
-                for g in 0..groups {
-                    let at = g * seg + t * cpg;
-                    let dst = &mut patch[at..at + cpg];
-                    if !inside {
-                        dst.fill(p.input_zp as i16);
-                        continue;
-                    }
-                    let c0 = g * cpg;
-                    let src = &arena[src + c0..src + c0 + cpg];
-                    match transform {
-                        None => widen_into(dst, src),
-                        Some(tr) => {
-                            for (ci, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
-                                *d = tr.apply(c0 + ci, v) as i16;
-                            }
+                        for (ci, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                            *d = tr.apply(c0 + ci, v) as i16;
                         }
                     }
                 }

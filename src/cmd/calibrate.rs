@@ -15,7 +15,10 @@ pub struct Args {
     /// one sub-folder per class.
     #[arg(long)]
     pub images: PathBuf,
-    /// Range choice: minmax, percentile:P (e.g. percentile:99.99), mse or kl.
+    /// Range choice: minmax, percentile:P (e.g. percentile:99.99), mse, kl,
+    /// or auto (each of minmax, percentile:99.99/99.95/99.9, mse and kl is
+    /// tried, and the one whose int8 network agrees best with float on the
+    /// calibration images is kept).
     #[arg(long, default_value = "minmax", value_parser = parse_method)]
     pub method: Method,
     /// Where to write the ranges file [default: `<graph name>.ranges.json`
@@ -64,9 +67,25 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     if args.json {
         let mut v = serde_json::to_value(&report)?;
         v["ranges_file"] = serde_json::Value::String(out.display().to_string());
+        if let Some(a) = &cal.auto {
+            v["auto"] = serde_json::to_value(a)?;
+        }
         println!("{}", serde_json::to_string_pretty(&v)?);
     } else {
         print!("{report}");
+        if let Some(a) = &cal.auto {
+            let tried: Vec<String> = a
+                .tried
+                .iter()
+                .map(|(m, agree)| format!("{m} {:.2}%", 100.0 * agree))
+                .collect();
+            println!(
+                "method auto: int8 top-1 agreement on the {} calibration images: {}; kept {}",
+                a.images,
+                tried.join(", "),
+                a.chosen
+            );
+        }
         println!("ranges written to {}", out.display());
     }
     Ok(())

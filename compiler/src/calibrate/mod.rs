@@ -22,6 +22,7 @@ use crate::graph::{Graph, MapId};
 use indicatif::{ProgressBar, ProgressStyle};
 use observe::{Extremes, Histograms};
 use rayon::prelude::*;
+use serde::Serialize;
 use std::io::IsTerminal;
 use std::sync::atomic::{AtomicBool, Ordering};
 
@@ -169,6 +170,21 @@ pub struct Calibration {
     pub evaluation: Vec<usize>,
     /// Unreadable images skipped (only with `skip_bad`), by index.
     pub skipped: Vec<Skipped>,
+    /// With [`Method::Auto`]: every candidate's int8 top-1 agreement with
+    /// float on the calibration images, in the order tried, and the one
+    /// kept.
+    pub auto: Option<AutoChoice>,
+}
+
+/// How [`Method::Auto`] chose.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AutoChoice {
+    /// `(method, top-1 agreement)` per candidate.
+    pub tried: Vec<(String, f64)>,
+    /// The method kept.
+    pub chosen: String,
+    /// Images the candidates were compared on.
+    pub images: usize,
 }
 
 /// The deterministic holdout split: image `i` of `n` is held out when
@@ -299,6 +315,9 @@ pub struct Observed {
     pub evaluation: Vec<usize>,
     /// Unreadable images skipped.
     pub skipped: Vec<Skipped>,
+    /// With [`Method::Auto`]: the ranges and clipped shares of every
+    /// candidate method (`ranges`/`stats` hold the first's).
+    pub candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)>,
 }
 
 /// Calibrates `graph` on `images` through `src` (normally the float
@@ -311,20 +330,77 @@ pub fn run_with_source<S: MapSource + ?Sized>(
 ) -> Result<Calibration, CalibError> {
     debug_assert_eq!(src.map_count(), graph.map_count());
     let o = observe_set(src, images, opts)?;
-    let ranges = Ranges {
-        graph: graph.name().to_string(),
-        graph_hash: ranges::graph_hash(graph).map_err(CalibError::Hash)?,
-        method: opts.method.to_string(),
-        images: o.calibration.len(),
-        maps: o.ranges,
-    };
-    Ok(Calibration {
-        ranges,
+    let mut cal = Calibration {
+        ranges: Ranges {
+            graph: graph.name().to_string(),
+            graph_hash: ranges::graph_hash(graph).map_err(CalibError::Hash)?,
+            method: opts.method.to_string(),
+            images: o.calibration.len(),
+            maps: o.ranges,
+        },
         stats: o.stats,
         calibration: o.calibration,
         evaluation: o.evaluation,
         skipped: o.skipped,
-    })
+        auto: None,
+    };
+    if !o.candidates.is_empty() {
+        choose_automatically(graph, images, &mut cal, o.candidates, opts)?;
+    }
+    Ok(cal)
+}
+
+/// Resolves [`Method::Auto`]: lowers the network with each candidate's
+/// ranges, runs the integer simulator against the float reference on the
+/// calibration images (never the held-out ones, which stay for an honest
+/// evaluation) and keeps the candidate with the best top-1 agreement.
+fn choose_automatically(
+    graph: &Graph,
+    images: &ImageSet,
+    cal: &mut Calibration,
+    candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)>,
+    opts: &CalibOptions,
+) -> Result<(), CalibError> {
+    let mut tried = Vec::new();
+    let mut best: Option<(f64, Method, Vec<MapRange>, Vec<f64>)> = None;
+    for (method, maps, clipped) in candidates {
+        let trial = Calibration {
+            ranges: Ranges {
+                maps: maps.clone(),
+                method: method.to_string(),
+                ..cal.ranges.clone()
+            },
+            evaluation: Vec::new(),
+            auto: None,
+            ..cal.clone()
+        };
+        let e = evaluate(
+            graph,
+            images,
+            &trial,
+            &crate::lower::LowerOptions::default(),
+            opts.skip_bad,
+            false,
+        )
+        .map_err(|e| CalibError::Options(format!("method auto, trying {method}: {e}")))?;
+        let a = e.output.top1_agreement;
+        tried.push((method.to_string(), a));
+        if best.as_ref().is_none_or(|b| a > b.0) {
+            best = Some((a, method, maps, clipped));
+        }
+    }
+    let (_, method, maps, clipped) = best.expect("at least one candidate");
+    for (s, c) in cal.stats.iter_mut().zip(clipped) {
+        s.clipped = c;
+    }
+    cal.ranges.maps = maps;
+    cal.ranges.method = format!("auto: {method}");
+    cal.auto = Some(AutoChoice {
+        tried,
+        chosen: method.to_string(),
+        images: cal.calibration.len(),
+    });
+    Ok(())
 }
 
 /// The graph-independent core of calibration: both passes over the
@@ -390,10 +466,28 @@ pub fn observe_set<S: MapSource + ?Sized>(
     };
     pb.finish_and_clear();
 
-    let choices: Vec<observe::Choice> = (0..n_maps)
-        .into_par_iter()
-        .map(|i| observe::choose(opts.method, &ext.maps[i], hist.as_ref().map(|h| &h.maps[i])))
-        .collect();
+    let choose_all = |method: Method| -> Vec<observe::Choice> {
+        (0..n_maps)
+            .into_par_iter()
+            .map(|i| observe::choose(method, &ext.maps[i], hist.as_ref().map(|h| &h.maps[i])))
+            .collect()
+    };
+    let candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)> = if opts.method == Method::Auto {
+        Method::AUTO_CANDIDATES
+            .iter()
+            .map(|&m| {
+                let c = choose_all(m);
+                (
+                    m,
+                    c.iter().map(|c| c.range).collect(),
+                    c.iter().map(|c| c.clipped).collect(),
+                )
+            })
+            .collect()
+    } else {
+        Vec::new()
+    };
+    let choices = choose_all(opts.method);
     let stats = choices
         .iter()
         .zip(&ext.maps)
@@ -410,6 +504,7 @@ pub fn observe_set<S: MapSource + ?Sized>(
         calibration,
         evaluation,
         skipped,
+        candidates,
     })
 }
 

@@ -67,9 +67,23 @@ pub enum Method {
     Mse,
     /// Minimise the KL divergence to the quantized histogram.
     Kl,
+    /// Try each of [`Method::AUTO_CANDIDATES`] and keep the one whose int8
+    /// network agrees best with the float network on the calibration
+    /// images (ties go to the earlier candidate).
+    Auto,
 }
 
 impl Method {
+    /// The methods [`Method::Auto`] chooses from, in order of preference.
+    pub const AUTO_CANDIDATES: [Method; 6] = [
+        Method::MinMax,
+        Method::Percentile(99.99),
+        Method::Percentile(99.95),
+        Method::Percentile(99.9),
+        Method::Mse,
+        Method::Kl,
+    ];
+
     /// True when the method needs the histogram pass.
     pub fn needs_histogram(self) -> bool {
         !matches!(self, Method::MinMax)
@@ -80,6 +94,7 @@ impl fmt::Display for Method {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Method::MinMax => f.write_str("minmax"),
+            Method::Auto => f.write_str("auto"),
             Method::Percentile(p) => write!(f, "percentile:{p}"),
             Method::Mse => f.write_str("mse"),
             Method::Kl => f.write_str("kl"),
@@ -94,9 +109,10 @@ impl FromStr for Method {
             "minmax" => Ok(Method::MinMax),
             "mse" => Ok(Method::Mse),
             "kl" => Ok(Method::Kl),
+            "auto" => Ok(Method::Auto),
             _ => {
                 let p = s.strip_prefix("percentile:").ok_or_else(|| {
-                    format!("unknown method `{s}`; expected minmax, percentile:P (e.g. percentile:99.99), mse or kl")
+                    format!("unknown method `{s}`; expected minmax, percentile:P (e.g. percentile:99.99), mse, kl or auto")
                 })?;
                 let v: f64 = p
                     .parse()
@@ -350,7 +366,8 @@ pub struct Choice {
 pub fn choose(method: Method, mm: &MinMax, hist: Option<&MapHist>) -> Choice {
     let observed = mm.range();
     let h = match (method, hist) {
-        (Method::MinMax, _) | (_, None) => {
+        // `Auto` is resolved by the caller; alone it means the observed range.
+        (Method::MinMax | Method::Auto, _) | (_, None) => {
             return Choice {
                 range: observed,
                 clipped: 0.0,
@@ -367,7 +384,7 @@ pub fn choose(method: Method, mm: &MinMax, hist: Option<&MapHist>) -> Choice {
         };
     }
     let (kp, kn) = match method {
-        Method::MinMax => unreachable!(),
+        Method::MinMax | Method::Auto => unreachable!(),
         Method::Percentile(p) => {
             let allowed = ((1.0 - p / 100.0) * total as f64).floor() as u64;
             (

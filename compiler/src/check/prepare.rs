@@ -183,30 +183,32 @@ fn ranges_for(
     };
     match from {
         RangesFrom::File(p) => {
-            let hash = calibrate::ranges::graph_hash(g).map_err(|e| err("hashing the graph")(&e))?;
+            let hash =
+                calibrate::ranges::graph_hash(g).map_err(|e| err("hashing the graph")(&e))?;
             let r = Ranges::load(g, p, Some(&hash)).map_err(|e| err("--ranges")(&e))?;
             Ok((r, format!("ranges read from {}", p.display())))
         }
         RangesFrom::Images(dir) => {
             let cal = ImageSet::open(dir, g).map_err(|e| err("--calib-images")(&e))?;
             let r = calibrate_on(&cal)?;
-            Ok((
-                r,
-                format!(
-                    "calibrated ({method}) on {} images of {}",
-                    cal.len(),
-                    dir.display()
-                ),
-            ))
+            let note = format!(
+                "calibrated ({}) on {} images of {}",
+                r.method,
+                cal.len(),
+                dir.display()
+            );
+            Ok((r, note))
         }
-        RangesFrom::CheckImages => Ok((
-            calibrate_on(set)?,
-            format!(
-                "calibrated ({method}) on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
+        RangesFrom::CheckImages => {
+            let r = calibrate_on(set)?;
+            let note = format!(
+                "calibrated ({}) on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
+                r.method,
                 set.len(),
                 set.root().display()
-            ),
-        )),
+            );
+            Ok((r, note))
+        }
     }
 }
 
