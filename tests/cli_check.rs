@@ -195,3 +195,38 @@ fn check_digits_on_m0plus_counts_instructions() {
     let macs = json["instructions"]["macs"].as_u64().unwrap();
     assert!(macs > 0 && per > macs, "{per} instructions for {macs} MACs");
 }
+
+/// `ingot check` itself on the other emulated cores: Cortex-M3, M7 and
+/// M33 (thumbv8m.main) give the host's outputs bit for bit and report
+/// instruction counts and ELF sizes.
+#[test]
+fn check_digits_on_m3_m7_and_m33() {
+    for (on, name) in [(RunOn::M3, "m3"), (RunOn::M7, "m7"), (RunOn::M33, "m33")] {
+        if !emulation_or_skip(on) {
+            continue;
+        }
+        let tmp = tempfile::tempdir().unwrap();
+        let report = tmp.path().join("report");
+        let out = check_digits(&["--on", name], &report);
+        let stdout = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            out.status.success(),
+            "{name}: {stdout}\n{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        assert!(stdout.contains("bit-identical:  yes"), "{name}: {stdout}");
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+                .unwrap();
+        assert!(
+            json["run_on"].as_str().unwrap().contains(name),
+            "{name}: {}",
+            json["run_on"]
+        );
+        assert!(json["instructions"]["per_inference_mean"].as_u64().unwrap() > 456_704);
+        assert!(
+            json["sizes"]["flash"].as_u64().unwrap() > 20_424,
+            "weights alone"
+        );
+    }
+}
