@@ -131,3 +131,37 @@ fn readme_main_command_on_emulated_cortex_m4() {
         "per-kind table lacks conv2d: {kinds:?}"
     );
 }
+
+/// The demo loses a little accuracy in int8 (the README's figures), so
+/// `--max-drop 0` must fail and name the figure, as a build pipeline gating
+/// on it would need.
+#[test]
+fn max_drop_zero_fails_on_the_demo_naming_the_drop() {
+    let tmp = tempfile::tempdir().unwrap();
+    let args: Vec<String> = [
+        "check",
+        "examples/demo/model/brackets.graph.json",
+        "--ranges",
+        "examples/demo/model/brackets.ranges.json",
+        "--images",
+        "examples/demo/data/eval",
+        "--max-drop",
+        "0",
+        "--report",
+    ]
+    .iter()
+    .map(|s| s.to_string())
+    .chain([tmp.path().join("r").display().to_string()])
+    .collect();
+    let (out, text) = run(&args);
+    assert!(!out.status.success(), "{text}");
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        stderr.contains("check failed: accuracy drop: 0.50 pp")
+            && stderr.contains("exceeds --max-drop 0"),
+        "{stderr}"
+    );
+    // The report is still written, marked as failed.
+    let md = std::fs::read_to_string(tmp.path().join("r/report.md")).unwrap();
+    assert!(md.contains("**Result: FAIL.**"), "{md}");
+}
