@@ -394,13 +394,10 @@ fn channel_rows(
         return;
     }
     let tail = seg - seg % 16;
-    let quad_rows = out.len() / 4 * 4;
-    let (wq, wrest) = weights[..out.len() * seg].split_at(quad_rows * seg);
-    let (oq, orest) = out.split_at_mut(quad_rows);
-    let quads = wq.chunks_exact(4 * seg);
-    let outs = oq.chunks_exact_mut(4);
+    let mut quads = weights.chunks_exact(4 * seg);
+    let mut outs = out.chunks_exact_mut(4);
     let mut k = 0;
-    for (rows, o) in quads.zip(outs) {
+    for (rows, o) in (&mut quads).zip(&mut outs) {
         let (a, r) = rows.split_at(seg);
         let (b, r) = r.split_at(seg);
         let (c, d) = r.split_at(seg);
@@ -415,7 +412,8 @@ fn channel_rows(
         }
         k += 4;
     }
-    let (rest, out) = (wrest, orest);
+    let rest = quads.remainder();
+    let out = outs.into_remainder();
     let mut j = 0;
     while j + 2 <= out.len() {
         let (a, b) = rest[j * seg..(j + 2) * seg].split_at(seg);

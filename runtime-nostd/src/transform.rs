@@ -93,13 +93,13 @@ impl AffineTransform<'_> {
     /// True when channel `ch`'s parameters keep [`apply`](Self::apply)
     /// inside i32 (see the type docs).
     pub fn fits_i32(&self, ch: usize) -> bool {
-        let round = if self.shift > 0 {
-            1i64 << (self.shift - 1)
-        } else {
-            0
-        };
+        // The shift is checked first: `rounding` would overflow for a
+        // shift of 32 or more.
         self.shift <= 29
-            && 255 * (self.mul[ch] as i64).abs() + (self.add[ch] as i64).abs() + round < 1 << 30
+            && 255 * (self.mul[ch] as i64).abs()
+                + (self.add[ch] as i64).abs()
+                + i64::from(self.rounding())
+                < 1 << 30
     }
 }
 
@@ -129,5 +129,40 @@ impl InputTransform<'_> {
             }
             InputTransform::Table(t) => channels.checked_mul(256).is_some_and(|n| t.len() >= n),
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn affine<'a>(mul: &'a [i32], add: &'a [i32], shift: u32) -> AffineTransform<'a> {
+        AffineTransform {
+            mul,
+            add,
+            shift,
+            zp_in: 0,
+            zp_out: -128,
+            min: -128,
+            max: 127,
+        }
+    }
+
+    #[test]
+    fn validity_is_the_i32_bound_and_never_overflows() {
+        // 255·4096 + 1000 + 2^9 is far below 2^30.
+        let t = InputTransform::Affine(affine(&[4096], &[1000], 10));
+        assert!(t.is_valid_for(1, -128));
+        // 255·2^23 > 2^30.
+        let t = InputTransform::Affine(affine(&[1 << 23], &[0], 10));
+        assert!(!t.is_valid_for(1, -128));
+        // A shift past the i32 width is refused, not a shift overflow.
+        for shift in [30, 31, 32, 40, 62, 200] {
+            let t = InputTransform::Affine(affine(&[1], &[0], shift));
+            assert!(!t.is_valid_for(1, -128), "shift {shift}");
+        }
+        // The pad value must be the output zero point.
+        let t = InputTransform::Affine(affine(&[1], &[0], 0));
+        assert!(!t.is_valid_for(1, 0));
     }
 }
