@@ -2,10 +2,6 @@
 
 use ingot_compiler::calibrate::Method;
 use ingot_compiler::codegen::{output, pipeline};
-
-fn parse_method(s: &str) -> Result<Method, String> {
-    s.parse()
-}
 use std::path::PathBuf;
 
 /// Arguments of `ingot build`.
@@ -20,8 +16,8 @@ pub struct Args {
     #[arg(long)]
     pub ranges: Option<PathBuf>,
     /// Range choice when calibrating on --images: minmax, percentile:P,
-    /// mse or kl (as `ingot calibrate --method`).
-    #[arg(long, default_value = "minmax", value_parser = parse_method, requires = "images")]
+    /// mse, kl or auto (as `ingot calibrate --method`).
+    #[arg(long, default_value = "minmax", value_parser = super::parse_method, requires = "images")]
     pub method: Method,
     /// Target description (TOML); the build fails if the model does not fit.
     #[arg(long)]

@@ -19,7 +19,7 @@ pub struct Args {
     /// or auto (each of minmax, percentile:99.99/99.95/99.9, mse and kl is
     /// tried, and the one whose int8 network agrees best with float on the
     /// calibration images is kept).
-    #[arg(long, default_value = "minmax", value_parser = parse_method)]
+    #[arg(long, default_value = "minmax", value_parser = super::parse_method)]
     pub method: Method,
     /// Where to write the ranges file [default: `<graph name>.ranges.json`
     /// beside the graph file].
@@ -34,10 +34,6 @@ pub struct Args {
     /// Print the report as JSON on standard output.
     #[arg(long)]
     pub json: bool,
-}
-
-fn parse_method(s: &str) -> Result<Method, String> {
-    s.parse()
 }
 
 /// Runs the command.

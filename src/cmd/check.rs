@@ -26,9 +26,9 @@ pub struct Args {
     /// Calibrate on these images instead of reading `--ranges`.
     #[arg(long)]
     pub calib_images: Option<PathBuf>,
-    /// Range choice when calibrating: minmax, percentile:P, mse or kl (as
-    /// `ingot calibrate --method`).
-    #[arg(long, default_value = "minmax", value_parser = parse_method, conflicts_with = "ranges")]
+    /// Range choice when calibrating: minmax, percentile:P, mse, kl or auto
+    /// (as `ingot calibrate --method`).
+    #[arg(long, default_value = "minmax", value_parser = super::parse_method, conflicts_with = "ranges")]
     pub method: ingot_compiler::calibrate::Method,
     /// Target profile (`targets/NAME.toml`): flash and RAM budget.
     #[arg(long)]
@@ -69,10 +69,6 @@ pub struct Args {
     /// `opt-level` of the runner build.
     #[arg(long, default_value = "3")]
     pub opt_level: String,
-}
-
-fn parse_method(s: &str) -> Result<ingot_compiler::calibrate::Method, String> {
-    s.parse()
 }
 
 fn parse_on(s: &str) -> Result<RunOn, String> {

@@ -163,10 +163,11 @@ pub fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> QuantizedW
 /// ```
 ///
 /// with the largest common `shift` (at most 29) that keeps the runtime's
-/// i32 evaluation `255·|mul| + |add| + 2^(shift-1)` below 2^30. An `add` so large that the output saturates for every
-/// input code is first reduced to a value that still saturates. Returns
-/// `None` when even `shift = 0` cannot hold a multiplier (one input step
-/// worth more than 2^31 output steps).
+/// i32 evaluation `255·|mul| + |add| + 2^(shift-1)` below 2^30. An `add` so
+/// large that the output saturates for every input code is first reduced to
+/// a value that still saturates. Returns `None` when even `shift = 0`
+/// cannot hold a multiplier (one input step worth more than about 2^22
+/// output steps).
 pub fn affine_transform(
     ab: &[(f64, f64)],
     qin: QParams,
