@@ -196,8 +196,9 @@ fn check_digits_on_m0plus_counts_instructions() {
     assert!(macs > 0 && per > macs, "{per} instructions for {macs} MACs");
 }
 
-/// `ingot check` itself on the other emulated cores: Cortex-M3, M7 and
-/// M33 (thumbv8m.main) give the host's outputs bit for bit and report
+/// `ingot check` itself on the other emulated cores, on the UCI optdigits
+/// held-out split (Alpaydin & Kaynak 1998): Cortex-M3, M7 and M33
+/// (thumbv8m.main) give the host's outputs bit for bit and report
 /// instruction counts and ELF sizes.
 #[test]
 fn check_digits_on_m3_m7_and_m33() {
