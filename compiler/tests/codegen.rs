@@ -14,7 +14,7 @@
 use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::codegen::pipeline::schedule_of;
 use ingot_compiler::codegen::{
-    self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightsMode,
+    self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightForm, WeightsMode,
 };
 use ingot_compiler::lower::{lower, LowerOptions, QGraph, QKernel, SimInput, Simulator};
 use ingot_compiler::plan::{plan, PlanOptions};
@@ -58,6 +58,8 @@ struct Net {
     q: QGraph,
     schedule: Schedule,
     weights: WeightsMode,
+    /// Convolution weight form.
+    form: WeightForm,
     /// Expected values from the integer simulator (else the interpreter).
     sim: bool,
 }
@@ -100,6 +102,7 @@ impl Net {
             q,
             schedule,
             weights: WeightsMode::IncludeBytes,
+            form: WeightForm::Int8,
             sim: false,
         }
     }
@@ -116,6 +119,7 @@ impl Net {
             q,
             schedule,
             weights: WeightsMode::IncludeBytes,
+            form: WeightForm::Int8,
             sim: true,
         }
     }
@@ -248,6 +252,16 @@ fn nets() -> Vec<Net> {
     lit.weights = WeightsMode::Literal;
     let mut inplace = Net::new("dense_inplace", dense.clone());
     inplace.schedule = inplace_schedule(&dense);
+    // The paired weight form (Cortex-M4/M7 kernels), from the weights file
+    // and from literal arrays, beside grouped convolutions that stay int8.
+    let paired = |module: &str, q: QGraph, weights: WeightsMode| Net {
+        form: WeightForm::Pairs,
+        weights,
+        ..Net::new(module, q)
+    };
+    let mut zoo_dense_pairs = zoo_nets()[1].clone();
+    zoo_dense_pairs.module = "zoo_dense_pairs".into();
+    zoo_dense_pairs.form = WeightForm::Pairs;
     vec![
         Net::new("plain", testnets::plain()),
         Net::new("dense", dense),
@@ -256,6 +270,18 @@ fn nets() -> Vec<Net> {
         Net::new("hostile", testnets::hostile_names()),
         lit,
         inplace,
+        paired("dense_pairs", testnets::dense(), WeightsMode::IncludeBytes),
+        paired(
+            "plain_pairs_literal",
+            testnets::plain(),
+            WeightsMode::Literal,
+        ),
+        paired(
+            "depthwise_pairs",
+            testnets::depthwise(),
+            WeightsMode::IncludeBytes,
+        ),
+        zoo_dense_pairs,
     ]
     .into_iter()
     .chain(zoo_nets().iter().cloned())
@@ -303,7 +329,7 @@ fn build() -> &'static Result<Built, String> {
         let mut lib = String::from("#![no_std]\n#![forbid(unsafe_code)]\n#![deny(warnings)]\n");
         let mut runner = String::from(RUNNER_HEAD);
         for n in &nets {
-            let opt = GenOptions { module: n.module.clone(), weights: n.weights, ..GenOptions::default() };
+            let opt = GenOptions { module: n.module.clone(), weights: n.weights, weight_form: n.form, ..GenOptions::default() };
             let g = generate(&n.q, &n.schedule, &opt).map_err(|e| format!("{}: {e}", n.module))?;
             for (name, bytes) in g.files(&n.module) {
                 put(&dir.join("src").join(name), &bytes);
@@ -597,6 +623,34 @@ fn hostile_names_compile_and_behave_like_plain() {
     assert!(
         text.contains(r#"panic!(\"boom\")"#),
         "the name should appear escaped"
+    );
+}
+
+/// The paired weight form gives the same maps as int8 on every network
+/// (the expected values come from the int8 interpreter or the simulator),
+/// and only one-group convolutions take it.
+#[test]
+fn paired_weights_match_int8_bit_for_bit() {
+    for (paired, int8) in [
+        ("dense_pairs", "dense"),
+        ("plain_pairs_literal", "plain"),
+        ("depthwise_pairs", "depthwise"),
+        ("zoo_dense_pairs", "zoo_dense"),
+    ] {
+        check_net(paired);
+        let b = built();
+        for (p, i) in b.runs[paired].iter().zip(&b.runs[int8]) {
+            assert_eq!(p.0, i.0, "{paired} vs {int8}");
+        }
+        let text = std::fs::read_to_string(b.dir.join(format!("src/{paired}.rs"))).unwrap();
+        assert!(text.contains("ingot_rt::conv2d_paired("), "{paired}");
+        assert!(text.contains("ingot_rt::pair_rows::<"), "{paired}");
+    }
+    // Grouped and depthwise convolutions keep int8 weights.
+    let text = std::fs::read_to_string(built().dir.join("src/depthwise_pairs.rs")).unwrap();
+    assert!(
+        text.contains("ingot_rt::conv2d("),
+        "depthwise layers stay int8"
     );
 }
 

@@ -1,7 +1,9 @@
 //! 2-D convolution over HWC maps: im2col of one output pixel into the
 //! widened patch, then contiguous dot products per output channel.
 
-use crate::dot::{dot2_wide, dot4_wide, dot_wide, tail_wide, widen_into};
+use crate::dot::{
+    dot2_wide, dot4_pairs, dot4_wide, dot_pairs_few, dot_wide, tail_wide, widen_into,
+};
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 
 /// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
@@ -149,12 +151,86 @@ pub struct ConvParams {
 }
 
 /// Length (in `i16` elements) of the `patch` scratch a convolution needs:
-/// `kh · kw · C_in`.
+/// `kh · kw · C_in`, rounded up to an even number.
 ///
 /// The patch holds one output pixel's receptive field, every element
 /// widened to `i16`, laid out as `[group][ky][kx][channel within group]`.
+/// The paired kernels ([`conv2d_paired`]) read it two elements at a time,
+/// hence the even length; the odd element out meets a zero weight.
 pub const fn conv_patch_len(kh: usize, kw: usize, c_in: usize) -> usize {
-    kh * kw * c_in
+    (kh * kw * c_in + 1) & !1
+}
+
+/// Length in words of `rows` weight rows of `k` int8 weights in the paired
+/// layout of [`pair_rows`]: `rows · ⌈k / 2⌉`.
+pub const fn paired_len(rows: usize, k: usize) -> usize {
+    rows * k.div_ceil(2)
+}
+
+/// Rearranges int8 weight rows `w = [rows][k]` into the paired layout the
+/// [`conv2d_paired`] kernel reads, as a fixed-size array (generated modules
+/// evaluate it at compile time). See [`pair_rows_into`] for the layout.
+///
+/// Panics (a compile error in a `const`) when `N != paired_len(rows, k)` or
+/// `w` is shorter than `rows · k`.
+pub const fn pair_rows<const N: usize>(w: &[i8], rows: usize, k: usize) -> [u32; N] {
+    let mut v = [0u32; N];
+    pair_rows_into(w, rows, k, &mut v);
+    v
+}
+
+/// Writes the paired layout of int8 weight rows `w = [rows][k]` into `out`.
+///
+/// Each word holds two consecutive weights of one row as `i16`, the first
+/// in the low half; an odd `k` gets a zero weight at the end of every row.
+/// Rows go in blocks of four (the last block holds the one to three rows
+/// left over); within a block, word `p` of every row in turn, so a block is
+/// read front to back, one word per row per pair of patch elements.
+///
+/// Panics when `out.len() != paired_len(rows, k)` or `w` is shorter than
+/// `rows · k`.
+pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) {
+    assert!(
+        out.len() == paired_len(rows, k),
+        "pair_rows: the output must hold paired_len(rows, k) words"
+    );
+    assert!(
+        w.len() >= rows * k,
+        "pair_rows: fewer than rows * k weights"
+    );
+    let kp = k.div_ceil(2);
+    let mut o = 0;
+    let mut r0 = 0;
+    while r0 < rows {
+        let block = if rows - r0 < 4 { rows - r0 } else { 4 };
+        let mut p = 0;
+        while p < kp {
+            let mut r = 0;
+            while r < block {
+                let row = (r0 + r) * k;
+                let lo = w[row + 2 * p] as i16 as u16 as u32;
+                let hi = if 2 * p + 1 < k {
+                    w[row + 2 * p + 1] as i16 as u16 as u32
+                } else {
+                    0
+                };
+                out[o] = lo | (hi << 16);
+                o += 1;
+                r += 1;
+            }
+            p += 1;
+        }
+        r0 += block;
+    }
+}
+
+/// The stored form of a convolution's weights.
+#[derive(Clone, Copy)]
+enum Rows<'a> {
+    /// `[C_out][kh][kw][C_in / groups]`, int8.
+    Bytes(&'a [i8]),
+    /// [`pair_rows`] of the same rows (one group).
+    Pairs(&'a [u32]),
 }
 
 /// Checks shared by the convolution paths; returns `(taps, cpg, opg)`.
@@ -163,7 +239,7 @@ fn check_conv(
     arena_len: usize,
     input: &MapRef,
     output: &MapRef,
-    weights: &[i8],
+    weights: Rows<'_>,
     bias: &[i32],
     requant: &[Requant],
     p: &ConvParams,
@@ -197,7 +273,16 @@ fn check_conv(
         .checked_mul(taps)
         .and_then(|v| v.checked_mul(cpg))
         .ok_or(Error::BadParams)?;
-    if weights.len() < need_w
+    let enough = match weights {
+        Rows::Bytes(w) => w.len() >= need_w,
+        Rows::Pairs(w) => {
+            if p.groups != 1 {
+                return Err(Error::BadParams);
+            }
+            w.len() >= paired_len(output.c, taps * cpg)
+        }
+    };
+    if !enough
         || bias.len() < output.c
         || requant.len() < output.c
         || patch_len < conv_patch_len(w.kh, w.kw, input.c)
@@ -244,11 +329,67 @@ pub fn conv2d(
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
 ) -> Result<(), Error> {
+    conv_core(
+        arena,
+        input,
+        output,
+        Rows::Bytes(weights),
+        bias,
+        requant,
+        p,
+        transform,
+        patch,
+    )
+}
+
+/// [`conv2d`] with the weights in the paired layout of [`pair_rows`]
+/// (`weights = pair_rows(w, C_out, kh·kw·C_in)`), for cores with 16-bit
+/// multiply-accumulate instructions (Cortex-M4, M7): there every pair of
+/// patch elements costs one load for four rows, one load and two
+/// multiply-accumulates per row. One group only (`p.groups == 1`, else
+/// [`Error::BadParams`]). Same results as [`conv2d`], bit for bit.
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_paired(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u32],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+) -> Result<(), Error> {
+    conv_core(
+        arena,
+        input,
+        output,
+        Rows::Pairs(weights),
+        bias,
+        requant,
+        p,
+        transform,
+        patch,
+    )
+}
+
+#[allow(clippy::too_many_arguments)]
+fn conv_core(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    rows: Rows<'_>,
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+) -> Result<(), Error> {
     let (taps, cpg, opg) = check_conv(
         arena.len(),
         &input,
         &output,
-        weights,
+        rows,
         bias,
         requant,
         p,
@@ -257,8 +398,12 @@ pub fn conv2d(
     )?;
     let w = &p.window;
     let seg = taps * cpg; // elements per group segment and per weight row
-    let patch = &mut patch[..taps * input.c];
-    let weights = &weights[..output.c * seg];
+                          // The paired kernels read the patch in pairs: with one group and an
+                          // odd length, the element after the last meets a zero weight.
+    let (patch, weights): (_, &[i8]) = match rows {
+        Rows::Bytes(wb) => (&mut patch[..taps * input.c], &wb[..output.c * seg]),
+        Rows::Pairs(_) => (&mut patch[..seg.div_ceil(2) * 2], &[]),
+    };
     let pointwise = w.kh == 1
         && w.kw == 1
         && w.step_y == 1
@@ -343,6 +488,8 @@ pub fn conv2d(
                     }
                     *y = rq.apply(acc, p.out);
                 }
+            } else if let Rows::Pairs(pw) = rows {
+                paired_rows(patch, pw, bias, requant, p.out, out);
             } else {
                 for (g, xw) in patch.chunks_exact(seg).enumerate() {
                     let o0 = g * opg;
@@ -429,6 +576,40 @@ fn channel_rows(
     if j < out.len() {
         let a = &rest[j * seg..(j + 1) * seg];
         out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
+    }
+}
+
+/// All output channels of one pixel from paired weights (one group): four
+/// rows per pass over the patch, then the one to three left over.
+#[inline]
+fn paired_rows(
+    xw: &[i16],
+    weights: &[u32],
+    bias: &[i32],
+    requant: &[Requant],
+    out_q: OutputQuant,
+    out: &mut [i8],
+) {
+    let kp = xw.len() / 2;
+    let m = out.len();
+    let quads = m / 4;
+    let (head, rest) = weights[..m * kp].split_at(quads * 4 * kp);
+    for (q, block) in head.chunks_exact(4 * kp).enumerate() {
+        let acc = dot4_pairs(xw, block);
+        for (j, a) in acc.into_iter().enumerate() {
+            let o = 4 * q + j;
+            out[o] = requant[o].apply(bias[o].wrapping_add(a), out_q);
+        }
+    }
+    let left = m - 4 * quads;
+    if left > 0 {
+        let mut acc = [0i32; 3];
+        let acc = &mut acc[..left];
+        dot_pairs_few(xw, rest, acc);
+        for (j, a) in acc.iter().enumerate() {
+            let o = 4 * quads + j;
+            out[o] = requant[o].apply(bias[o].wrapping_add(*a), out_q);
+        }
     }
 }
 

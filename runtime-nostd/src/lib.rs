@@ -156,7 +156,10 @@ mod requant;
 mod transform;
 
 pub use channel::{channel_transform, copy_channels};
-pub use conv::{conv2d, conv_patch_len, window_out_len, ConvParams, Padding, Window};
+pub use conv::{
+    conv2d, conv2d_paired, conv_patch_len, pair_rows, pair_rows_into, paired_len, window_out_len,
+    ConvParams, Padding, Window,
+};
 pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};

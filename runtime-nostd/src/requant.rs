@@ -80,9 +80,30 @@ impl Requant {
 
     /// Full requantization of an accumulator: `clamp(z_out + scale(acc))`
     /// into the output's activation range.
+    ///
+    /// The usual total shift (32 or more) takes a 32-bit path with the same
+    /// result: `floor(p / 2^s) = floor(floor(p / 2^32) / 2^(s-32))`, and the
+    /// high word of the product is what `smull` leaves in a register, so
+    /// no 64-bit shift or compare is needed (Cortex-M: about 10
+    /// instructions instead of 45).
     #[inline(always)]
     pub const fn apply(&self, acc: i32, out: OutputQuant) -> i8 {
-        out.finish(self.scale(acc))
+        let s = 30 + self.shift;
+        // An out-of-range zero point (refused by the kernels) takes the i64
+        // path so the sum below cannot overflow.
+        if s < 32 || out.zero_point.wrapping_add(128) as u32 > 255 {
+            return out.finish(self.scale(acc));
+        }
+        let hi = ((acc as i64 * self.mult as i64) >> 32) as i32;
+        // |hi| < 2^30 (see `scale`), so neither step overflows.
+        let r = (((hi >> (s - 32)) + 1) >> 1) + out.zero_point;
+        if r < out.min as i32 {
+            out.min
+        } else if r > out.max as i32 {
+            out.max
+        } else {
+            r as i8
+        }
     }
 
     /// Host-side constructor from a real multiplier.

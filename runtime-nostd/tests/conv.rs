@@ -238,6 +238,31 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
         }
     }
     assert_eq!(restored, before, "conv2d wrote outside its output view");
+    if c.groups == 1 {
+        // The paired form must give the same bytes and touch nothing else.
+        let k = p.kh * p.kw * c.cin;
+        let mut pairs = vec![0u32; paired_len(c.cout, k)];
+        pair_rows_into(&weights, c.cout, k, &mut pairs);
+        let mut arena2 = before.clone();
+        conv2d_paired(
+            &mut arena2,
+            input,
+            output,
+            &pairs,
+            &bias,
+            &c.rq,
+            &ConvParams {
+                window: win,
+                groups: 1,
+                input_zp: p.pad_value,
+                out: OutputQuant::clamped(p.zp_out, p.lo, p.hi),
+            },
+            tr.as_ref(),
+            &mut patch,
+        )
+        .unwrap();
+        assert_eq!(arena2, arena, "conv2d_paired differs from conv2d");
+    }
     Some((got, want))
 }
 

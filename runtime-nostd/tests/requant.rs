@@ -143,6 +143,23 @@ proptest! {
         prop_assert_eq!(r.scale(x), ref_scale(x as i64, r));
     }
 
+    /// `apply` (32-bit path for total shifts of 32 and more) equals the
+    /// exact rounded value, offset and clamped in i128, for every valid
+    /// multiplier, input, zero point and clamp range.
+    #[test]
+    fn apply_equals_exact_clamped_value(
+        x in any::<i32>(),
+        r in arb_rq(),
+        zp in -128i32..=127,
+        lo in any::<i8>(),
+        span in 0u8..=255,
+    ) {
+        let hi = (lo as i32 + span as i32).min(127) as i8;
+        let out = OutputQuant::clamped(zp, lo, hi);
+        let want = (ref_scale(x as i64, r) as i128 + zp as i128).clamp(lo as i128, hi as i128) as i8;
+        prop_assert_eq!(r.apply(x, out), want);
+    }
+
     /// from_real is within half a mantissa step of the real multiplier.
     #[test]
     fn from_real_is_accurate(m in 1e-9f64..1e8) {

@@ -1,7 +1,7 @@
 //! `ingot build GRAPH.json (--images DIR | --ranges FILE) [--target FILE] --out DIR [--module NAME] [--force]`.
 
 use ingot_compiler::calibrate::Method;
-use ingot_compiler::codegen::{output, pipeline};
+use ingot_compiler::codegen::{output, pipeline, WeightForm};
 use std::path::PathBuf;
 
 /// Arguments of `ingot build`.
@@ -31,6 +31,11 @@ pub struct Args {
     /// Overwrite files in --out that ingot did not write.
     #[arg(long)]
     pub force: bool,
+    /// How convolution weights are stored: int8, or pairs (16-bit pairs for
+    /// the Cortex-M4/M7 16-bit multiply-accumulates, twice the flash)
+    /// [default: by the --target core, else int8]
+    #[arg(long)]
+    pub weight_form: Option<WeightForm>,
 }
 
 /// Compiles in memory, then writes all files into `--out` or none.
@@ -45,6 +50,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         ranges,
         target: args.target.clone(),
         module: args.module.clone(),
+        weight_form: args.weight_form,
     };
     let c = pipeline::compile(&req)?;
     output::write_all(&args.out, &c.files(&args.module), args.force)?;
@@ -55,7 +61,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         out = args.out.display()
     );
     println!(
-        "{}: {} steps, {} parameters, {} MACs; RAM {} bytes (arena {} + patch {}), weights {} bytes",
+        "{}: {} steps, {} parameters, {} MACs; RAM {} bytes (arena {} + patch {}), weights {} bytes ({} in flash, {} form)",
         r.network,
         r.layers.len(),
         r.params,
@@ -63,7 +69,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         r.scratch_bytes,
         r.arena_bytes,
         r.patch_bytes,
-        r.weights_bytes
+        r.weights_bytes,
+        r.weights_flash_bytes,
+        r.weight_form
     );
     println!(
         "plan: scratch {} bytes (arena {} + patch {}), lower bound {} bytes, naive {} bytes",

@@ -9,6 +9,7 @@ use ingot_compiler::check::report;
 use ingot_compiler::check::runner::{self, BuildConfig};
 use ingot_compiler::check::size::Budget;
 use ingot_compiler::check::{io, ModuleFiles, RunOn};
+use ingot_compiler::codegen::WeightForm;
 use std::path::PathBuf;
 
 /// Arguments of `ingot check`.
@@ -69,6 +70,11 @@ pub struct Args {
     /// `opt-level` of the runner build.
     #[arg(long, default_value = "3")]
     pub opt_level: String,
+    /// How convolution weights are stored: int8, or pairs (16-bit pairs for
+    /// the Cortex-M4/M7 16-bit multiply-accumulates, twice the flash)
+    /// [default: by the --target core, else by the --on core, else int8]
+    #[arg(long)]
+    pub weight_form: Option<WeightForm>,
 }
 
 fn parse_on(s: &str) -> Result<RunOn, String> {
@@ -177,10 +183,14 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         (None, Some(d)) => RangesFrom::Images(d.clone()),
         (None, None) => RangesFrom::CheckImages,
     };
+    // Without a target profile, the core the module runs on decides.
+    let on_core =
+        (a.target.is_none() && a.on != RunOn::Host).then(|| WeightForm::for_core(a.on.name()));
     let opts = PrepareOptions {
         ranges,
         method: a.method,
         target: a.target.clone(),
+        weight_form: a.weight_form.or(on_core),
         ..PrepareOptions::default()
     };
     let p = prepare::prepare(graph, images, &opts)?;

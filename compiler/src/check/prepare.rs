@@ -55,6 +55,9 @@ pub struct PrepareOptions {
     pub target: Option<PathBuf>,
     /// Module name (`NAME.rs`); empty: derived from the graph's name.
     pub module: String,
+    /// How convolution weights are stored; `None`: the target's core
+    /// decides (int8 without a target).
+    pub weight_form: Option<codegen::WeightForm>,
 }
 
 impl Default for PrepareOptions {
@@ -65,6 +68,7 @@ impl Default for PrepareOptions {
             per_channel: true,
             target: None,
             module: String::new(),
+            weight_form: None,
         }
     }
 }
@@ -136,6 +140,7 @@ pub fn prepare(
             ram_bytes: None,
             flash_bytes: None,
         }),
+        weight_form: codegen::pipeline::weight_form_for(opts.weight_form, target.as_ref()),
         ..GenOptions::default()
     };
     let planned = schedule_of(&q, &p);

@@ -25,6 +25,7 @@ pub struct Builder {
     module: String,
     out_dir: Option<PathBuf>,
     lowered: Option<Box<crate::lower::QGraph>>,
+    weight_form: Option<super::WeightForm>,
 }
 
 /// What [`Builder::generate`] wrote.
@@ -82,6 +83,7 @@ impl Builder {
             module: "model".into(),
             out_dir: None,
             lowered: None,
+            weight_form: None,
         }
     }
 
@@ -123,6 +125,14 @@ impl Builder {
         self
     }
 
+    /// How convolution weights are stored (default: chosen by the target's
+    /// core, see [`WeightForm::for_core`](super::WeightForm::for_core); int8
+    /// without a target).
+    pub fn weight_form(mut self, form: super::WeightForm) -> Self {
+        self.weight_form = Some(form);
+        self
+    }
+
     /// Output folder instead of `OUT_DIR`.
     pub fn out_dir(mut self, dir: impl AsRef<Path>) -> Self {
         self.out_dir = Some(dir.as_ref().into());
@@ -139,6 +149,7 @@ impl Builder {
             ranges,
             target: self.target.clone(),
             module: self.module.clone(),
+            weight_form: self.weight_form,
         })
     }
 
@@ -173,12 +184,11 @@ impl Builder {
                     .target
                     .as_deref()
                     .map(pipeline::load_target)
-                    .transpose()?
-                    .as_ref()
-                    .map(pipeline::target_info);
+                    .transpose()?;
                 let opt = super::GenOptions {
                     module: self.module.clone(),
-                    target,
+                    target: target.as_ref().map(pipeline::target_info),
+                    weight_form: pipeline::weight_form_for(self.weight_form, target.as_ref()),
                     ..super::GenOptions::default()
                 };
                 super::generate(q, &super::Schedule::naive(q), &opt).map_err(PipelineError::from)?

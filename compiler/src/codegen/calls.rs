@@ -22,12 +22,14 @@ use ingot_rt::{
 /// One kernel call.
 #[derive(Debug, Clone)]
 pub enum Call<'a> {
-    /// `ingot_rt::conv2d`.
+    /// `ingot_rt::conv2d`, or `ingot_rt::conv2d_paired` when `paired`.
     Conv {
         input: MapRef,
         output: MapRef,
         conv: &'a QConv,
         params: ConvParams,
+        /// Weights in the paired layout (see [`set_weight_form`]).
+        paired: bool,
     },
     /// `ingot_rt::linear`.
     Linear {
@@ -109,6 +111,33 @@ pub fn rt_transform(t: &ChannelTransform) -> InputTransform<'_> {
 /// Why a step cannot be turned into calls.
 pub type CallError = String;
 
+/// True when a convolution can take the paired weight layout (one group).
+pub fn pairs_apply(c: &QConv) -> bool {
+    c.groups == 1
+}
+
+/// Switches every convolution that can take it to the paired layout when
+/// `form` is [`WeightForm::Pairs`](super::WeightForm::Pairs) (calls from
+/// [`step_calls`] start in int8).
+pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
+    for sc in steps {
+        for c in &mut sc.calls {
+            if let Call::Conv { conv, paired, .. } = c {
+                *paired = form == super::WeightForm::Pairs && pairs_apply(conv);
+            }
+        }
+    }
+}
+
+/// The paired layout of a convolution's weights (`ingot_rt::pair_rows`).
+pub fn paired_weights(c: &QConv) -> Vec<u32> {
+    let rows = c.out_channels;
+    let k = c.weights.len() / rows.max(1);
+    let mut v = vec![0u32; ingot_rt::paired_len(rows, k)];
+    ingot_rt::pair_rows_into(&c.weights, rows, k, &mut v);
+    v
+}
+
 /// All calls of the schedule, in its order.
 pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>, CallError> {
     let mut out = Vec::with_capacity(s.order.len());
@@ -149,6 +178,7 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
                     output: o,
                     conv: c,
                     params,
+                    paired: false,
                 }]
             }
             QKernel::Linear(l) => vec![Call::Linear {
@@ -225,9 +255,23 @@ pub fn run_call(
             output,
             conv,
             params,
+            paired,
         } => {
             let t = conv.transform.as_ref().map(rt_transform);
             let rq: Vec<Requant> = conv.requant.iter().map(|&m| requant(m)).collect();
+            if *paired {
+                return ingot_rt::conv2d_paired(
+                    arena,
+                    *input,
+                    *output,
+                    &paired_weights(conv),
+                    &conv.bias,
+                    &rq,
+                    params,
+                    t.as_ref(),
+                    patch,
+                );
+            }
             ingot_rt::conv2d(
                 arena,
                 *input,

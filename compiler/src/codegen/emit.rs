@@ -188,12 +188,68 @@ fn tensor_static(ctx: &Ctx<'_>, lits: &mut Literals, name: &Ident, e: &Entry) ->
     }
 }
 
+/// A convolution's weights in the paired layout: the int8 rows of the
+/// weights file, rearranged by `ingot_rt::pair_rows` at compile time.
+fn paired_static(
+    ctx: &Ctx<'_>,
+    lits: &mut Literals,
+    name: &Ident,
+    e: &Entry,
+    rows: usize,
+) -> TokenStream {
+    let k = e.len / rows.max(1);
+    let words = ingot_rt::paired_len(rows, k);
+    let (n, np, r, kk, at) = (us(e.len), us(words), us(rows), us(k), us(e.offset));
+    let off = format_ident!("OFF_{}", name);
+    let bytes = format_ident!("I8_{}", name);
+    let (off_item, src) = match ctx.opt.weights {
+        WeightsMode::IncludeBytes => (quote!(const #off: usize = #at;), quote!(i8s::<#n>(#off))),
+        WeightsMode::Literal => (quote!(), lits.marker(array_text(ctx.blob, e))),
+    };
+    // A `const`, not a `static`: only the paired words reach flash.
+    let bytes_item = quote!(const #bytes: [i8; #n] = #src;);
+    let what = format!(
+        "{} int8 weights at byte {} of the weights file ({rows} rows of {k}), \
+         as {words} words of two `i16` for `ingot_rt::conv2d_paired`.",
+        e.len, e.offset
+    );
+    quote! {
+        #off_item
+        #bytes_item
+        #[doc = #what]
+        pub(super) static #name: [u32; #np] = ingot_rt::pair_rows::<#np>(&#bytes, #r, #kk);
+    }
+}
+
 /// The private data module: weights, parameters.
 fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
     let q = ctx.q;
     let mut items = TokenStream::new();
+    let paired: Vec<usize> = ctx
+        .calls
+        .iter()
+        .filter(|sc| {
+            sc.calls
+                .iter()
+                .any(|c| matches!(c, Call::Conv { paired: true, .. }))
+        })
+        .map(|sc| sc.step.index())
+        .collect();
     for (i, st) in q.steps.iter().enumerate() {
         let stem = &ctx.stems[i];
+        if let (true, Some(e), QKernel::Conv2d(c)) = (
+            paired.contains(&i),
+            ctx.blob.find(i, Role::Weights),
+            &st.kernel,
+        ) {
+            items.extend(paired_static(
+                ctx,
+                lits,
+                &id(Role::Weights.prefix(), stem),
+                e,
+                c.out_channels,
+            ));
+        }
         for role in [
             Role::Weights,
             Role::Bias,
@@ -202,6 +258,9 @@ fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
             Role::TransformAdd,
             Role::TransformTable,
         ] {
+            if role == Role::Weights && paired.contains(&i) {
+                continue;
+            }
             if let Some(e) = ctx.blob.find(i, role) {
                 items.extend(tensor_static(ctx, lits, &id(role.prefix(), stem), e));
             }
@@ -392,6 +451,7 @@ fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
                     input,
                     output,
                     conv,
+                    paired,
                     ..
                 } => {
                     let (i, o) = (map_ref(*input), map_ref(*output));
@@ -403,7 +463,12 @@ fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
                     } else {
                         quote!(None)
                     };
-                    quote!(ingot_rt::conv2d(arena, #i, #o, &#w, &#b, &#r, &#p, #t, patch))
+                    let f = if *paired {
+                        quote!(conv2d_paired)
+                    } else {
+                        quote!(conv2d)
+                    };
+                    quote!(ingot_rt::#f(arena, #i, #o, &#w, &#b, &#r, &#p, #t, patch))
                 }
                 Call::Linear {
                     input, output, out, ..

@@ -53,6 +53,56 @@ pub enum WeightsMode {
     Literal,
 }
 
+/// How convolution weights are stored in the module.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
+pub enum WeightForm {
+    /// int8, as in the weights file; `ingot_rt::conv2d` (every core).
+    #[default]
+    Int8,
+    /// Pairs of `i16` in 32-bit words, rows interleaved in blocks of four
+    /// (`ingot_rt::pair_rows`), for `ingot_rt::conv2d_paired`: cores with
+    /// the DSP extension's 16-bit multiply-accumulates (Cortex-M4, M7) run
+    /// about half the instructions per MAC, for twice the flash of those
+    /// weights. Depthwise and grouped convolutions and linear layers stay
+    /// int8.
+    Pairs,
+}
+
+impl WeightForm {
+    /// The form for a core name as the target profiles spell it
+    /// (`cortex-m4f`, `cortex-m7`, `m4`...): pairs where every variant of
+    /// the core has the DSP extension (Cortex-M4 and M7), int8 elsewhere
+    /// (on the M33 the extension is optional, on the M0+ and M3 absent).
+    pub fn for_core(core: &str) -> WeightForm {
+        let c = core.trim().to_ascii_lowercase();
+        let c = c.strip_prefix("cortex-").unwrap_or(&c);
+        if c.starts_with("m4") || c.starts_with("m7") {
+            WeightForm::Pairs
+        } else {
+            WeightForm::Int8
+        }
+    }
+
+    /// Name in reports and on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            WeightForm::Int8 => "int8",
+            WeightForm::Pairs => "pairs",
+        }
+    }
+}
+
+impl std::str::FromStr for WeightForm {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "int8" => Ok(WeightForm::Int8),
+            "pairs" => Ok(WeightForm::Pairs),
+            _ => Err(format!("unknown weight form `{s}` (int8 or pairs)")),
+        }
+    }
+}
+
 /// The memory budget of a target, as far as the generator checks it.
 #[derive(Debug, Clone, PartialEq, Eq, Default)]
 pub struct TargetInfo {
@@ -79,6 +129,8 @@ pub struct GenOptions {
     /// Run every kernel call once at generation time (default true). Turning
     /// it off only skips the dry run, not the static checks.
     pub dry_run: bool,
+    /// How convolution weights are stored (default int8).
+    pub weight_form: WeightForm,
 }
 
 impl Default for GenOptions {
@@ -89,6 +141,7 @@ impl Default for GenOptions {
             weights: WeightsMode::default(),
             source_hash: String::new(),
             dry_run: true,
+            weight_form: WeightForm::Int8,
         }
     }
 }
@@ -162,6 +215,24 @@ pub enum CodegenError {
     },
 }
 
+/// Bytes the paired weights of `q` take in flash beyond their int8 bytes in
+/// the weights file (0 for [`WeightForm::Int8`]).
+pub fn pair_growth(q: &QGraph, form: WeightForm) -> usize {
+    if form != WeightForm::Pairs {
+        return 0;
+    }
+    q.steps
+        .iter()
+        .filter_map(|st| match &st.kernel {
+            crate::lower::QKernel::Conv2d(c) if calls::pairs_apply(c) => {
+                let k = c.weights.len() / c.out_channels.max(1);
+                Some(4 * ingot_rt::paired_len(c.out_channels, k) - c.weights.len())
+            }
+            _ => None,
+        })
+        .sum()
+}
+
 /// FNV-1a, 64 bit: a stable hash for `MODEL_HASH`.
 pub fn fnv1a(h: u64, bytes: &[u8]) -> u64 {
     let mut h = h;
@@ -191,10 +262,10 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
         .map_err(|e| CodegenError::Graph(q.name.clone(), e))?;
     calls::check_schedule(q, s).map_err(CodegenError::Schedule)?;
     if let Some(t) = &opt.target {
-        let blob_len = blob::build(q).bytes.len();
+        let flash = blob::build(q).bytes.len() + pair_growth(q, opt.weight_form);
         for (what, need, have) in [
             ("RAM (scratch)", s.arena_bytes + s.patch_bytes, t.ram_bytes),
-            ("flash (weights)", blob_len, t.flash_bytes),
+            ("flash (weights)", flash, t.flash_bytes),
         ] {
             if let Some(have) = have {
                 if need > have {
@@ -208,7 +279,8 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
             }
         }
     }
-    let steps = calls::step_calls(q, s).map_err(CodegenError::Schedule)?;
+    let mut steps = calls::step_calls(q, s).map_err(CodegenError::Schedule)?;
+    calls::set_weight_form(&mut steps, opt.weight_form);
     if opt.dry_run {
         let zp = q.map(q.input).qp.zero_point as i8;
         let input = vec![zp; q.map(q.input).shape.len()];

@@ -6,7 +6,7 @@
 //! build-script [`Builder`](super::build_script::Builder) and `ingot check`
 //! all call it.
 
-use super::{CodegenError, GenOptions, Generated, Schedule, TargetInfo};
+use super::{CodegenError, GenOptions, Generated, Schedule, TargetInfo, WeightForm};
 use crate::calibrate::{CalibError, CalibOptions, ImageError, ImageSet, Ranges, RangesError};
 use crate::lower::{LowerError, LowerOptions, QGraph};
 use crate::plan::{Budget, Plan, PlanError, PlanOptions, Target, TargetError};
@@ -35,6 +35,17 @@ pub struct BuildInputs {
     pub target: Option<PathBuf>,
     /// Module name.
     pub module: String,
+    /// How convolution weights are stored; `None`: chosen by the target's
+    /// core ([`WeightForm::for_core`]), int8 without a target.
+    pub weight_form: Option<WeightForm>,
+}
+
+/// The weight form of a request: the explicit choice, else the target
+/// core's, else int8.
+pub fn weight_form_for(explicit: Option<WeightForm>, target: Option<&Target>) -> WeightForm {
+    explicit
+        .or_else(|| target.map(|t| WeightForm::for_core(&t.core)))
+        .unwrap_or_default()
 }
 
 /// Former name of [`BuildInputs`].
@@ -274,6 +285,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
             flash_bytes: None,
         }),
         source_hash: format!("{graph_hash}:{ranges_hash}"),
+        weight_form: weight_form_for(req.weight_form, target.as_ref()),
         ..GenOptions::default()
     };
     let generated = super::generate(&q, &schedule, &opt)?;
@@ -282,7 +294,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
             &q,
             &plan,
             t,
-            Some(generated.weights.len() as u64),
+            Some(generated.report.weights_flash_bytes as u64),
         )
     });
     Ok(Compiled {

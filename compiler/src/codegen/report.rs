@@ -57,6 +57,11 @@ pub struct Report {
     pub scratch_bytes: usize,
     /// Weights file size.
     pub weights_bytes: usize,
+    /// How convolution weights are stored in the module.
+    pub weight_form: &'static str,
+    /// Flash the module's tensors take: the weights file's bytes, plus the
+    /// growth of paired convolution weights.
+    pub weights_flash_bytes: usize,
     /// Weights file bytes by section.
     pub weights_sections: Vec<(Section, usize)>,
     /// Parameters (weights + biases).
@@ -115,6 +120,8 @@ pub fn build(
         patch_bytes: s.patch_bytes,
         scratch_bytes: s.arena_bytes + s.patch_bytes,
         weights_bytes: blob.bytes.len(),
+        weight_form: opt.weight_form.name(),
+        weights_flash_bytes: blob.bytes.len() + super::pair_growth(q, opt.weight_form),
         weights_sections: blob.section_bytes(),
         params: layers.iter().map(|l| l.params).sum(),
         macs: layers.iter().map(|l| l.macs).sum(),
@@ -146,10 +153,18 @@ impl Report {
                 "- RAM: scratch {} bytes (arena {} + patch {})",
                 self.scratch_bytes, self.arena_bytes, self.patch_bytes
             ),
-            format!(
-                "- flash for weights: {} bytes; parameters {}; {} MACs per inference",
-                self.weights_bytes, self.params, self.macs
-            ),
+            if self.weights_flash_bytes == self.weights_bytes {
+                format!(
+                    "- flash for weights: {} bytes; parameters {}; {} MACs per inference",
+                    self.weights_bytes, self.params, self.macs
+                )
+            } else {
+                format!(
+                    "- flash for weights: {} bytes (convolution weights in 16-bit pairs; \
+                     weights file {} bytes); parameters {}; {} MACs per inference",
+                    self.weights_flash_bytes, self.weights_bytes, self.params, self.macs
+                )
+            },
         ];
         let parts: Vec<String> = self
             .weights_sections

@@ -108,6 +108,7 @@ fn demo_model_matches_simulator_on_eval_images() {
         ranges: RangesSource::File(demo().join("model/brackets.ranges.json")),
         target: None,
         module: "model".into(),
+        weight_form: None,
     })
     .unwrap();
     assert!(
