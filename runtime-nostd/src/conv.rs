@@ -224,6 +224,30 @@ pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) {
     }
 }
 
+/// True when [`conv2d_paired`] can run from a buffer of whole input rows
+/// instead of a per-pixel patch: step and dilation 1, one group, and an
+/// even number of elements per kernel row (`kw · C_in`), so every kernel
+/// row starts a new pair of the weight layout.
+pub const fn conv_rows_apply(w: &Window, groups: usize, c_in: usize) -> bool {
+    groups == 1
+        && w.step_y == 1
+        && w.step_x == 1
+        && w.dilation_y == 1
+        && w.dilation_x == 1
+        && (w.kw * c_in) % 2 == 0
+}
+
+/// Length (in `i16` elements) of the row buffer [`conv2d_paired`] uses
+/// when [`conv_rows_apply`] holds and `patch` is at least this long: `kh`
+/// padded input rows, `(pad.left + w_in + pad.right) · C_in` each.
+///
+/// Each input value is then transformed (or widened) once per inference
+/// instead of once per kernel row it falls under, and a pixel's dot
+/// products read its window straight out of the buffered rows.
+pub const fn conv_rows_len(w: &Window, w_in: usize, c_in: usize) -> usize {
+    w.kh * (w.pad.left + w_in + w.pad.right) * c_in
+}
+
 /// The stored form of a convolution's weights.
 #[derive(Clone, Copy)]
 enum Rows<'a> {
@@ -397,9 +421,20 @@ fn conv_core(
         patch.len(),
     )?;
     let w = &p.window;
-    let seg = taps * cpg; // elements per group segment and per weight row
-                          // The paired kernels read the patch in pairs: with one group and an
-                          // odd length, the element after the last meets a zero weight.
+    // Elements per group segment and per weight row.
+    let seg = taps * cpg;
+    if let Rows::Pairs(pw) = rows {
+        if conv_rows_apply(w, p.groups, input.c)
+            && patch.len() >= conv_rows_len(w, input.w, input.c)
+        {
+            conv_rows(
+                arena, &input, &output, pw, bias, requant, p, transform, patch,
+            );
+            return Ok(());
+        }
+    }
+    // The paired kernels read the patch in pairs: with one group and an
+    // odd length, the element after the last meets a zero weight.
     let (patch, weights): (_, &[i8]) = match rows {
         Rows::Bytes(wb) => (&mut patch[..taps * input.c], &wb[..output.c * seg]),
         Rows::Pairs(_) => (&mut patch[..seg.div_ceil(2) * 2], &[]),
@@ -576,6 +611,124 @@ fn channel_rows(
     if j < out.len() {
         let a = &rest[j * seg..(j + 1) * seg];
         out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
+    }
+}
+
+/// [`conv2d_paired`] from a ring of `kh` padded, transformed input rows
+/// (see [`conv_rows_len`]); the caller checked [`conv_rows_apply`], the
+/// shapes and the buffer length.
+#[allow(clippy::too_many_arguments)]
+fn conv_rows(
+    arena: &mut [i8],
+    input: &MapRef,
+    output: &MapRef,
+    weights: &[u32],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    ring: &mut [i16],
+) {
+    let w = &p.window;
+    let c = input.c;
+    let row_len = (w.pad.left + input.w + w.pad.right) * c;
+    let ring = &mut ring[..w.kh * row_len];
+    let run = w.kw * c; // elements of one kernel row, even
+    let row_pairs = run / 2;
+    let kp = w.kh * row_pairs; // pairs per weight row
+    let m = output.c;
+    let quads = m / 4;
+    let left = m % 4;
+    let (head, rest) = weights[..m * kp].split_at(quads * 4 * kp);
+    for oy in 0..output.h {
+        // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh.
+        // Going down one output row brings in one new input row.
+        let first = if oy == 0 { 0 } else { oy + w.kh - 1 };
+        for yy in first..oy + w.kh {
+            let slot = yy % w.kh;
+            fill_row(
+                arena,
+                input,
+                w,
+                p.input_zp,
+                transform,
+                yy,
+                &mut ring[slot * row_len..(slot + 1) * row_len],
+            );
+        }
+        for ox in 0..output.w {
+            let dst = output.pixel(oy, ox);
+            let out = &mut arena[dst..dst + m];
+            for (q, block) in head.chunks_exact(4 * kp).enumerate() {
+                let mut acc = [0i32; 4];
+                for ky in 0..w.kh {
+                    let at = ((oy + ky) % w.kh) * row_len + ox * c;
+                    let part = dot4_pairs(
+                        &ring[at..at + run],
+                        &block[4 * ky * row_pairs..4 * (ky + 1) * row_pairs],
+                    );
+                    for (a, v) in acc.iter_mut().zip(part) {
+                        *a = a.wrapping_add(v);
+                    }
+                }
+                for (j, a) in acc.into_iter().enumerate() {
+                    let o = 4 * q + j;
+                    out[o] = requant[o].apply(bias[o].wrapping_add(a), p.out);
+                }
+            }
+            if left > 0 {
+                let mut acc = [0i32; 3];
+                let acc = &mut acc[..left];
+                for ky in 0..w.kh {
+                    let at = ((oy + ky) % w.kh) * row_len + ox * c;
+                    dot_pairs_few(
+                        &ring[at..at + run],
+                        &rest[left * ky * row_pairs..left * (ky + 1) * row_pairs],
+                        acc,
+                    );
+                }
+                for (j, a) in acc.iter().enumerate() {
+                    let o = 4 * quads + j;
+                    out[o] = requant[o].apply(bias[o].wrapping_add(*a), p.out);
+                }
+            }
+        }
+    }
+}
+
+/// Padded input row `yy` (widened, transformed) into `dst`: padding
+/// columns and rows outside the map take `pad_value`.
+fn fill_row(
+    arena: &[i8],
+    input: &MapRef,
+    w: &Window,
+    pad_value: i8,
+    transform: Option<&InputTransform<'_>>,
+    yy: usize,
+    dst: &mut [i16],
+) {
+    let c = input.c;
+    if yy < w.pad.top || yy - w.pad.top >= input.h {
+        dst.fill(pad_value as i16);
+        return;
+    }
+    let iy = yy - w.pad.top;
+    let (lead, body) = dst.split_at_mut(w.pad.left * c);
+    lead.fill(pad_value as i16);
+    let (body, tail) = body.split_at_mut(input.w * c);
+    tail.fill(pad_value as i16);
+    for (ix, d) in body.chunks_exact_mut(c).enumerate() {
+        let src = input.pixel(iy, ix);
+        let src = &arena[src..src + c];
+        match transform {
+            None => widen_into(d, src),
+            Some(InputTransform::Affine(a)) => a.apply_pixel(d, src),
+            Some(tr) => {
+                for (ch, (v, &x)) in d.iter_mut().zip(src).enumerate() {
+                    *v = tr.apply(ch, x) as i16;
+                }
+            }
+        }
     }
 }
 

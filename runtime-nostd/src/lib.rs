@@ -157,8 +157,8 @@ mod transform;
 
 pub use channel::{channel_transform, copy_channels};
 pub use conv::{
-    conv2d, conv2d_paired, conv_patch_len, pair_rows, pair_rows_into, paired_len, window_out_len,
-    ConvParams, Padding, Window,
+    conv2d, conv2d_paired, conv_patch_len, conv_rows_apply, conv_rows_len, pair_rows,
+    pair_rows_into, paired_len, window_out_len, ConvParams, Padding, Window,
 };
 pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;

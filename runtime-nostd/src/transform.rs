@@ -86,6 +86,7 @@ impl AffineTransform<'_> {
             .zip(src)
             .zip(self.mul[..n].iter().zip(&self.add[..n]))
         {
+            crate::dot::no_unroll();
             *d = self.apply_with(m, a, rounding, v) as i16;
         }
     }

@@ -285,7 +285,15 @@ fn summary(
         "  scratch RAM:    {} bytes (arena {} + patch {}); lower bound {} bytes ({} schedule)",
         g.scratch_bytes, g.arena_bytes, g.patch_bytes, p.plan.lower_bound, p.schedule_kind
     );
-    let _ = write!(s, "  flash:          weights {} bytes", g.weights_bytes);
+    if g.weights_flash_bytes == g.weights_bytes {
+        let _ = write!(s, "  flash:          weights {} bytes", g.weights_bytes);
+    } else {
+        let _ = write!(
+            s,
+            "  flash:          weights {} bytes ({} form)",
+            g.weights_flash_bytes, g.weight_form
+        );
+    }
     match &r.sizes {
         Some(z) => {
             let _ = writeln!(

@@ -2,6 +2,7 @@
 
 use anyhow::{bail, Context};
 use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, MapRange, Ranges};
+use ingot_compiler::codegen::{pipeline, WeightForm};
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{self, PlanOptions, Target};
 use std::path::PathBuf;
@@ -29,6 +30,11 @@ pub struct Args {
     /// Print the report as JSON instead of text.
     #[arg(long)]
     pub json: bool,
+    /// Convolution weight form the module will use (int8 or pairs; pairs
+    /// adds row buffers to the patch scratch) [default: by the --target
+    /// core, else int8]
+    #[arg(long)]
+    pub weight_form: Option<WeightForm>,
 }
 
 /// Lowers, plans, prints; fails when the plan does not fit the target.
@@ -61,8 +67,17 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         },
     };
     let q = lower(&g, &ranges, &LowerOptions::default())?;
-    let p = plan::plan(&q, &PlanOptions::default())?;
     let target = args.target.as_ref().map(Target::load).transpose()?;
+    // The patch scratch depends on the kernels `build` will use for this
+    // target (see `ingot build --weight-form`).
+    let weight_form = pipeline::weight_form_for(args.weight_form, target.as_ref());
+    let p = plan::plan(
+        &q,
+        &PlanOptions {
+            weight_form,
+            ..PlanOptions::default()
+        },
+    )?;
     let report = plan::report(&q, &p, target.as_ref());
     if let Some(svg) = &args.svg {
         plan::svg::write(&q, &p, svg).map_err(anyhow::Error::msg)?;

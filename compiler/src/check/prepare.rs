@@ -121,13 +121,21 @@ pub fn prepare(
         },
     )
     .map_err(|e| err("lowering")(&e))?;
-    let p = plan::plan(&q, &PlanOptions::default()).map_err(|e| err("planning")(&e))?;
     let target = opts
         .target
         .as_ref()
         .map(Target::load)
         .transpose()
         .map_err(|e| err("--target")(&e))?;
+    let weight_form = codegen::pipeline::weight_form_for(opts.weight_form, target.as_ref());
+    let p = plan::plan(
+        &q,
+        &PlanOptions {
+            weight_form,
+            ..PlanOptions::default()
+        },
+    )
+    .map_err(|e| err("planning")(&e))?;
     let budget = target.as_ref().map(|t| plan::target::budget(&q, &p, t));
     let gen_opts = GenOptions {
         module: if opts.module.is_empty() {
@@ -140,7 +148,7 @@ pub fn prepare(
             ram_bytes: None,
             flash_bytes: None,
         }),
-        weight_form: codegen::pipeline::weight_form_for(opts.weight_form, target.as_ref()),
+        weight_form,
         ..GenOptions::default()
     };
     let planned = schedule_of(&q, &p);

@@ -258,6 +258,19 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
     if !is_module_name(&opt.module) {
         return Err(CodegenError::ModuleName(opt.module.clone()));
     }
+    // The paired form's row buffers may need a larger patch than the
+    // schedule was made with.
+    let need = crate::plan::patch_bytes_for(q, opt.weight_form);
+    let grown;
+    let s = if s.patch_bytes < need {
+        grown = Schedule {
+            patch_bytes: need,
+            ..s.clone()
+        };
+        &grown
+    } else {
+        s
+    };
     q.verify()
         .map_err(|e| CodegenError::Graph(q.name.clone(), e))?;
     calls::check_schedule(q, s).map_err(CodegenError::Schedule)?;

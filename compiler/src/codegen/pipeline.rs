@@ -273,7 +273,14 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
             source,
         })?;
     let q = crate::lower::lower(&graph, &ranges, &LowerOptions::default())?;
-    let plan = crate::plan::plan(&q, &PlanOptions::default())?;
+    let weight_form = weight_form_for(req.weight_form, target.as_ref());
+    let plan = crate::plan::plan(
+        &q,
+        &PlanOptions {
+            weight_form,
+            ..PlanOptions::default()
+        },
+    )?;
     let schedule = schedule_of(&q, &plan);
     let opt = GenOptions {
         module: req.module.clone(),
@@ -285,7 +292,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
             flash_bytes: None,
         }),
         source_hash: format!("{graph_hash}:{ranges_hash}"),
-        weight_form: weight_form_for(req.weight_form, target.as_ref()),
+        weight_form,
         ..GenOptions::default()
     };
     let generated = super::generate(&q, &schedule, &opt)?;

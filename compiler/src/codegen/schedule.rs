@@ -59,18 +59,8 @@ impl Schedule {
     }
 }
 
-/// The patch size in bytes the convolutions of `q` need: twice the largest
-/// `ingot_rt::conv_patch_len` (in `i16`) over all convolution steps (0
-/// without any).
+/// The patch size in bytes the convolutions of `q` need with int8 weights
+/// (see [`crate::plan::patch_bytes`]).
 pub fn min_patch_bytes(q: &QGraph) -> usize {
-    q.steps
-        .iter()
-        .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => {
-                Some(2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], c.in_channels))
-            }
-            _ => None,
-        })
-        .max()
-        .unwrap_or(0)
+    crate::plan::patch_bytes(q)
 }

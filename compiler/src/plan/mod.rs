@@ -72,6 +72,9 @@ pub struct PlanOptions {
     /// Also plan with every concatenation copying, for
     /// [`Plan::copying_bytes`] (default true).
     pub compare_copying: bool,
+    /// The convolution weight form the module will use: the paired form's
+    /// row buffers make the patch scratch larger ([`patch_bytes_for`]).
+    pub weight_form: crate::codegen::WeightForm,
 }
 
 impl Default for PlanOptions {
@@ -86,6 +89,7 @@ impl Default for PlanOptions {
             contiguous_kinds: Vec::new(),
             verify: cfg!(debug_assertions),
             compare_copying: true,
+            weight_form: crate::codegen::WeightForm::Int8,
         }
     }
 }
@@ -141,8 +145,13 @@ pub struct Plan {
     /// Arena size in bytes.
     pub arena_bytes: usize,
     /// Convolution patch scratch in bytes (outside the arena): twice the
-    /// largest `ingot_rt::conv_patch_len` (`i16` elements) of any convolution.
+    /// largest `ingot_rt::conv_patch_len` (`i16` elements) of any
+    /// convolution, or of its row buffer with paired weights
+    /// ([`patch_bytes_for`]).
     pub patch_bytes: usize,
+    /// The weight form the patch was sized for (and the flash budget
+    /// counts).
+    pub weight_form: crate::codegen::WeightForm,
     /// Largest total of (padded) buffers alive at one step of `order`.
     pub lower_bound: usize,
     /// Sum of all maps, each in its own bytes, no reuse.
@@ -204,15 +213,34 @@ pub enum PlanError {
     Verify(String, String),
 }
 
-/// Bytes of convolution patch scratch the graph needs: the patch holds
-/// `ingot_rt::conv_patch_len` elements of `i16`, two bytes each.
+/// Bytes of convolution patch scratch the graph needs with int8 weights:
+/// the patch holds `ingot_rt::conv_patch_len` elements of `i16`, two bytes
+/// each.
 pub fn patch_bytes(q: &QGraph) -> usize {
+    patch_bytes_for(q, crate::codegen::WeightForm::Int8)
+}
+
+/// [`patch_bytes`] for a weight form: with paired weights, a convolution
+/// that can run from whole input rows (`ingot_rt::conv_rows_apply`) gets
+/// room for `ingot_rt::conv_rows_len` elements instead.
+pub fn patch_bytes_for(q: &QGraph, form: crate::codegen::WeightForm) -> usize {
     q.steps
         .iter()
         .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => Some(
-                2 * ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], q.map(s.inputs[0]).shape.c),
-            ),
+            QKernel::Conv2d(c) => {
+                let input = q.map(s.inputs[0]).shape;
+                let patch = ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], input.c);
+                let w = c.runtime_window();
+                let rows = if form == crate::codegen::WeightForm::Pairs
+                    && crate::codegen::calls::pairs_apply(c)
+                    && ingot_rt::conv_rows_apply(&w, c.groups, input.c)
+                {
+                    ingot_rt::conv_rows_len(&w, input.w, input.c)
+                } else {
+                    0
+                };
+                Some(2 * patch.max(rows))
+            }
             _ => None,
         })
         .max()
@@ -488,7 +516,8 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
         in_place: chosen.in_place,
         buffers,
         arena_bytes: arena as usize,
-        patch_bytes: patch_bytes(q),
+        patch_bytes: patch_bytes_for(q, opts.weight_form),
+        weight_form: opts.weight_form,
         lower_bound: lb as usize,
         naive_bytes: naive,
         copying_bytes: 0,

@@ -46,6 +46,8 @@ pub struct PlanReport {
     pub arena_bytes: usize,
     /// Patch bytes (outside the arena).
     pub patch_bytes: usize,
+    /// Convolution weight form the patch and flash figures assume.
+    pub weight_form: &'static str,
     /// Lower bound.
     pub lower_bound: usize,
     /// Arena / lower bound.
@@ -120,6 +122,7 @@ pub fn report(q: &QGraph, plan: &Plan, target: Option<&Target>) -> PlanReport {
         network: q.name.clone(),
         arena_bytes: plan.arena_bytes,
         patch_bytes: plan.patch_bytes,
+        weight_form: plan.weight_form.name(),
         lower_bound: plan.lower_bound,
         ratio: plan.ratio(),
         naive_bytes: plan.naive_bytes,
@@ -192,8 +195,13 @@ impl fmt::Display for PlanReport {
         )?;
         writeln!(
             f,
-            "patch        {:>10} B  (outside the arena)",
-            self.patch_bytes
+            "patch        {:>10} B  (outside the arena; {})",
+            self.patch_bytes,
+            if self.weight_form == "pairs" {
+                "row buffers of the paired convolutions"
+            } else {
+                "int8 convolution patch"
+            }
         )?;
         writeln!(
             f,

@@ -165,7 +165,8 @@ impl Target {
 /// Flash taken by the network's constants and code.
 #[derive(Debug, Clone, Default, PartialEq, Serialize)]
 pub struct FlashUse {
-    /// int8 weights.
+    /// Convolution and linear weights: one byte each, two for convolutions
+    /// stored in 16-bit pairs.
     pub weights: u64,
     /// 32-bit biases.
     pub biases: u64,
@@ -181,8 +182,13 @@ pub struct FlashUse {
 }
 
 impl FlashUse {
-    /// Measures `q`.
+    /// Measures `q` with int8 weights.
     pub fn of(q: &QGraph) -> FlashUse {
+        Self::of_form(q, crate::codegen::WeightForm::Int8)
+    }
+
+    /// Measures `q` with the given weight form.
+    pub fn of_form(q: &QGraph, form: crate::codegen::WeightForm) -> FlashUse {
         let mut f = FlashUse {
             transforms: q.pixel_table.len() as u64,
             ..FlashUse::default()
@@ -212,6 +218,7 @@ impl FlashUse {
                 QKernel::Concat => {}
             }
         }
+        f.weights += crate::codegen::pair_growth(q, form) as u64;
         f.code = RUNTIME_CODE_BYTES + STEP_CODE_BYTES * q.steps.len() as u64;
         f
     }
@@ -278,7 +285,7 @@ pub fn budget_with_weights_file(
     let arena = plan.arena_bytes as u64;
     let patch = plan.patch_bytes as u64;
     let ram_used = arena + patch + t.ram.reserve;
-    let mut flash = FlashUse::of(q);
+    let mut flash = FlashUse::of_form(q, plan.weight_form);
     flash.weights_file = weights_file;
     let flash_used = flash.total() + t.flash.reserve;
     let ram_headroom = t.ram.bytes as i64 - ram_used as i64;

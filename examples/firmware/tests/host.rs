@@ -106,11 +106,14 @@ fn demo_model_matches_simulator_on_eval_images() {
     let c = pipeline::compile(&BuildInputs {
         graph: demo().join("model/brackets.graph.json"),
         ranges: RangesSource::File(demo().join("model/brackets.ranges.json")),
-        target: None,
+        target: Some(demo().join("../../targets/stm32l4r9ai.toml")),
         module: "model".into(),
         weight_form: None,
     })
     .unwrap();
+    // The Cortex-M4F profile gives the paired weight form (the host runs
+    // the same module as the firmware).
+    assert!(c.generated.module.contains("ingot_rt::conv2d_paired("));
     assert!(
         c.generated.module.contains(model::MODEL_HASH),
         "the compiled-in module is not this compilation"
