@@ -170,3 +170,57 @@ fn build_lowers_plans_and_checks_the_target() {
     );
     assert!(!out2.exists());
 }
+
+#[test]
+fn weight_form_follows_the_target_core_and_the_flag() {
+    let t = tempfile::tempdir().unwrap();
+    let (graph, ranges) = zoo_model(t.path());
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let build = |name: &str, extra: &[&str]| {
+        let out = t.path().join(name);
+        let mut args: Vec<std::ffi::OsString> = vec![
+            "build".into(),
+            graph.clone().into(),
+            "--ranges".into(),
+            ranges.clone().into(),
+            "--out".into(),
+            out.clone().into(),
+        ];
+        args.extend(extra.iter().map(|a| a.into()));
+        let refs: Vec<&std::ffi::OsStr> = args.iter().map(|a| a.as_os_str()).collect();
+        let o = ingot(&refs);
+        (o, out)
+    };
+    let m4 = root.join("targets/stm32f446re.toml");
+    let m0 = root.join("targets/rp2040.toml");
+    let m4 = m4.to_str().unwrap();
+    let m0 = m0.to_str().unwrap();
+    // A Cortex-M4F part: paired weights, twice the flash for them.
+    let (o, out) = build("m4", &["--target", m4]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let text = String::from_utf8_lossy(&o.stdout).to_string();
+    assert!(text.contains("pairs form"), "{text}");
+    let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
+    assert!(module.contains("ingot_rt::conv2d_paired("));
+    let json: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("model.report.json")).unwrap()).unwrap();
+    assert_eq!(json["weight_form"], "pairs");
+    assert!(
+        json["weights_flash_bytes"].as_u64().unwrap() > json["weights_bytes"].as_u64().unwrap()
+    );
+    // The flag overrides the core.
+    let (o, out) = build("m4-int8", &["--target", m4, "--weight-form", "int8"]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
+    assert!(!module.contains("conv2d_paired"));
+    // A Cortex-M0+ part (no DSP extension): int8.
+    let (o, out) = build("m0", &["--target", m0]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
+    assert!(!module.contains("conv2d_paired"));
+    // An unknown form is refused, naming the choices.
+    let (o, _) = build("bad", &["--weight-form", "int16"]);
+    assert!(!o.status.success());
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(err.contains("int8 or pairs"), "{err}");
+}

@@ -92,6 +92,33 @@ impl WeightForm {
     }
 }
 
+#[cfg(test)]
+mod weight_form_tests {
+    use super::WeightForm;
+
+    /// Cortex-M4 and M7 always have the DSP extension's 16-bit
+    /// multiply-accumulates (common practice: Arm's core summaries); the
+    /// M0+ and M3 never, the M33 only as an option.
+    #[test]
+    fn paired_only_where_every_variant_has_the_dsp_extension() {
+        for core in ["cortex-m4", "cortex-m4f", "Cortex-M7", "m4", "m7"] {
+            assert_eq!(WeightForm::for_core(core), WeightForm::Pairs, "{core}");
+        }
+        for core in [
+            "cortex-m0+",
+            "m0plus",
+            "cortex-m3",
+            "cortex-m33",
+            "xtensa-lx7",
+            "",
+        ] {
+            assert_eq!(WeightForm::for_core(core), WeightForm::Int8, "{core}");
+        }
+        assert_eq!("pairs".parse::<WeightForm>(), Ok(WeightForm::Pairs));
+        assert!("i16".parse::<WeightForm>().is_err());
+    }
+}
+
 impl std::str::FromStr for WeightForm {
     type Err = String;
     fn from_str(s: &str) -> Result<Self, String> {
