@@ -290,8 +290,8 @@ fn summary(
     } else {
         let _ = write!(
             s,
-            "  flash:          weights {} bytes ({} form)",
-            g.weights_flash_bytes, g.weight_form
+            "  flash:          weights {} bytes in 16-bit pairs (weights file {} bytes)",
+            g.weights_flash_bytes, g.weights_bytes
         );
     }
     match &r.sizes {
@@ -308,7 +308,7 @@ fn summary(
             );
         }
         None => {
-            let _ = writeln!(s, " (firmware size: run with --on CORE)");
+            let _ = writeln!(s, "; firmware size: run with --on CORE");
         }
     }
     if let Some(b) = &p.budget {
