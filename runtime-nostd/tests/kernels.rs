@@ -33,6 +33,16 @@ fn rand_arena(n: usize, seed: u64) -> Vec<i8> {
 }
 
 proptest! {
+    /// The power-of-two shortcut of `div_round` is the same floor division
+    /// (exact reference in i128).
+    #[test]
+    fn div_round_matches_exact_floor(s in -(1i64 << 40)..(1i64 << 40), k in 0u32..20, odd in 1i64..50) {
+        for n in [1i64 << k, odd, odd * (1 << (k % 5))] {
+            let want = (2 * s as i128 + n as i128).div_euclid(2 * n as i128) as i64;
+            prop_assert_eq!(div_round(s, n), want, "s={} n={}", s, n);
+        }
+    }
+
     #[test]
     fn linear_matches_reference(
         (h, w, c, extra) in (1usize..4, 1usize..4, 1usize..20, 0usize..3),
