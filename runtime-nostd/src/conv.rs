@@ -372,6 +372,12 @@ pub fn conv2d(
 /// patch elements costs one load for four rows, one load and two
 /// multiply-accumulates per row. One group only (`p.groups == 1`, else
 /// [`Error::BadParams`]). Same results as [`conv2d`], bit for bit.
+///
+/// When [`conv_rows_apply`] holds and `patch` has at least
+/// [`conv_rows_len`] elements, the kernel keeps a ring of `kh` padded,
+/// transformed input rows in `patch` instead of gathering a patch per
+/// pixel; otherwise `patch` needs [`conv_patch_len`] elements as for
+/// [`conv2d`].
 #[allow(clippy::too_many_arguments)]
 pub fn conv2d_paired(
     arena: &mut [i8],

@@ -239,51 +239,36 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
     }
     assert_eq!(restored, before, "conv2d wrote outside its output view");
     if c.groups == 1 {
-        // The paired form must give the same bytes and touch nothing else.
+        // The paired form must give the same bytes and touch nothing else:
+        // with the per-pixel patch, and with room for whole input rows (the
+        // row path, where it applies).
         let k = p.kh * p.kw * c.cin;
         let mut pairs = vec![0u32; paired_len(c.cout, k)];
         pair_rows_into(&weights, c.cout, k, &mut pairs);
-        let mut arena2 = before.clone();
-        conv2d_paired(
-            &mut arena2,
-            input,
-            output,
-            &pairs,
-            &bias,
-            &c.rq,
-            &ConvParams {
-                window: win,
-                groups: 1,
-                input_zp: p.pad_value,
-                out: OutputQuant::clamped(p.zp_out, p.lo, p.hi),
-            },
-            tr.as_ref(),
-            &mut patch,
-        )
-        .unwrap();
-        assert_eq!(arena2, arena, "conv2d_paired differs from conv2d");
-        // With room for whole input rows it takes the row path where that
-        // applies; the bytes are the same either way.
-        let mut rows = vec![0i16; conv_rows_len(&win, c.w, c.cin).max(patch.len())];
-        let mut arena3 = before.clone();
-        conv2d_paired(
-            &mut arena3,
-            input,
-            output,
-            &pairs,
-            &bias,
-            &c.rq,
-            &ConvParams {
-                window: win,
-                groups: 1,
-                input_zp: p.pad_value,
-                out: OutputQuant::clamped(p.zp_out, p.lo, p.hi),
-            },
-            tr.as_ref(),
-            &mut rows,
-        )
-        .unwrap();
-        assert_eq!(arena3, arena, "conv2d_paired (rows) differs from conv2d");
+        let params = ConvParams {
+            window: win,
+            groups: 1,
+            input_zp: p.pad_value,
+            out: OutputQuant::clamped(p.zp_out, p.lo, p.hi),
+        };
+        let rows_len = conv_rows_len(&win, c.w, c.cin).max(patch.len());
+        for (what, len) in [("patch", patch.len()), ("rows", rows_len)] {
+            let mut scratch = vec![0i16; len];
+            let mut a = before.clone();
+            conv2d_paired(
+                &mut a,
+                input,
+                output,
+                &pairs,
+                &bias,
+                &c.rq,
+                &params,
+                tr.as_ref(),
+                &mut scratch,
+            )
+            .unwrap();
+            assert_eq!(a, arena, "conv2d_paired ({what}) differs from conv2d");
+        }
     }
     Some((got, want))
 }
