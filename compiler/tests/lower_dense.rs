@@ -11,7 +11,7 @@ use ingot_compiler::lower::{fusion_savings, lower, LowerOptions, QKernel, SimInp
 
 fn small() -> (ingot_compiler::Graph, Vec<Vec<f32>>) {
     let g = dense_net(&DenseSpec::small(), 7);
-    let mut rng = Rng(11);
+    let mut rng = Rng::new(11);
     let images: Vec<Vec<f32>> = (0..8).map(|_| random_input(&g, &mut rng)).collect();
     (g, images)
 }

@@ -14,7 +14,7 @@ use ingot_compiler::lower::{
 };
 
 fn images(g: &ingot_compiler::Graph, n: usize, seed: u64) -> Vec<Vec<f32>> {
-    let mut rng = Rng(seed);
+    let mut rng = Rng::new(seed);
     (0..n).map(|_| random_input(g, &mut rng)).collect()
 }
 

@@ -8,24 +8,24 @@ use ingot_compiler::frontend::{self, GraphFile, InputFile, LayerFile, TensorStor
 use ingot_compiler::graph::{Graph, MapId, Op};
 use std::path::Path;
 
-/// SplitMix64: deterministic test data.
-pub struct Rng(pub u64);
+/// Deterministic test data: the zoo's SplitMix64 generator, with the f32
+/// Box-Muller normal these tests were calibrated with.
+pub struct Rng(ingot_compiler::zoo::Rng);
 
 impl Rng {
+    pub fn new(seed: u64) -> Rng {
+        Rng(ingot_compiler::zoo::Rng::new(seed))
+    }
     pub fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9e37_79b9_7f4a_7c15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        z ^ (z >> 31)
+        self.0.next_u64()
     }
     pub fn uniform(&mut self) -> f32 {
-        (self.next_u64() >> 40) as f32 / (1u64 << 24) as f32
+        self.0.uniform()
     }
     pub fn range(&mut self, lo: f32, hi: f32) -> f32 {
-        lo + (hi - lo) * self.uniform()
+        self.0.range(lo, hi)
     }
-    /// Standard normal (Box-Muller).
+    /// Standard normal (Box-Muller in f32; `zoo::Rng::normal` uses f64).
     pub fn normal(&mut self) -> f32 {
         let u1 = self.uniform().max(1e-7);
         let u2 = self.uniform();
@@ -46,7 +46,7 @@ impl Net {
         Net {
             layers: Vec::new(),
             store: TensorStore::new("test.safetensors"),
-            rng: Rng(seed),
+            rng: Rng::new(seed),
             input: InputFile {
                 name: "x".into(),
                 shape: vec![c, h, w],
