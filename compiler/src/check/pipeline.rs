@@ -63,6 +63,8 @@ pub struct CheckData {
     pub model: String,
     /// The module's hash, if known.
     pub model_hash: Option<String>,
+    /// The module's convolution weight form (`int8`, `pairs`), if known.
+    pub weight_form: Option<String>,
     /// Quantized inputs, one per image (`INPUT_LEN` codes each).
     pub inputs: Vec<Vec<i8>>,
     /// Elements of one input.
@@ -162,6 +164,7 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
     let mut report = CheckReport {
         model: data.model.clone(),
         model_hash: data.model_hash.clone(),
+        weight_form: data.weight_form.clone(),
         run_on: plan.on.describe(),
         images: data.inputs.len(),
         labels: data.class_names.clone(),

@@ -310,6 +310,7 @@ fn compare_data(
     let mut data = CheckData {
         model: q.name.clone(),
         model_hash: Some(generated.report.model_hash.clone()),
+        weight_form: Some(generated.report.weight_form.to_string()),
         input_len: q.map(q.input).shape.len(),
         output_len: out_map.shape.len(),
         output_scale: out_map.qp.scale,

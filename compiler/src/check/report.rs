@@ -113,6 +113,8 @@ pub struct CheckReport {
     pub model: String,
     /// The module's `MODEL_HASH`, if known.
     pub model_hash: Option<String>,
+    /// The module's convolution weight form (`int8`, `pairs`), if known.
+    pub weight_form: Option<String>,
     /// What ran where (board and stand-ins spelled out).
     pub run_on: String,
     /// Images checked.
@@ -171,6 +173,18 @@ pub fn markdown(r: &CheckReport) -> String {
     let _ = writeln!(s, "# ingot check: {}\n", r.model);
     if let Some(h) = &r.model_hash {
         let _ = writeln!(s, "Module hash `{h}`. ");
+    }
+    match r.weight_form.as_deref() {
+        Some("pairs") => {
+            let _ = writeln!(
+                s,
+                "Convolution weights in 16-bit pairs (`ingot_rt::conv2d_paired`). "
+            );
+        }
+        Some(f) => {
+            let _ = writeln!(s, "Convolution weights in {f}. ");
+        }
+        None => {}
     }
     let _ = writeln!(s, "Ran on {}; {} images.\n", r.run_on, r.images);
     if r.failures.is_empty() {
