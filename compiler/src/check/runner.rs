@@ -19,6 +19,9 @@ use std::time::{Duration, Instant};
 const FIRMWARE_TEMPLATE: &str = include_str!("templates/firmware.rs");
 const HOST_TEMPLATE: &str = include_str!("templates/host.rs");
 const CALIB_TEMPLATE: &str = include_str!("templates/calib.rs");
+/// The SysTick wrap counter and clock both Cortex-M runners use, spliced in
+/// at `@SYSTICK@`.
+const SYSTICK_TEMPLATE: &str = include_str!("templates/systick.rs");
 
 /// Exact versions of the firmware-side crates (runner crates only).
 const CORTEX_M: &str = "=0.7.10";
@@ -277,6 +280,7 @@ pub(crate) fn runner_files(kind: Kind, module_name: &str, cfg: &BuildConfig) -> 
         Kind::Host => (HOST_TEMPLATE.replace("@MODULE@", module_name), rt, None),
         Kind::Firmware(on) => (
             FIRMWARE_TEMPLATE
+                .replace("@SYSTICK@", SYSTICK_TEMPLATE)
                 .replace("@MODULE@", module_name)
                 .replace(
                     "@TRACE@",
@@ -297,7 +301,11 @@ pub(crate) fn runner_files(kind: Kind, module_name: &str, cfg: &BuildConfig) -> 
             format!("{rt}{fw_deps}"),
             on.board(),
         ),
-        Kind::Calibration(on) => (CALIB_TEMPLATE.to_string(), fw_deps, on.board()),
+        Kind::Calibration(on) => (
+            CALIB_TEMPLATE.replace("@SYSTICK@", SYSTICK_TEMPLATE),
+            fw_deps,
+            on.board(),
+        ),
     };
     let mut files = vec![ProjectFile {
         path: "src/main.rs".into(),

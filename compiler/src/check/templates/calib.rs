@@ -15,26 +15,8 @@ use cortex_m_semihosting::{debug, hprintln};
 // A short period (65 536 ticks) so that the longer loops below span
 // several wraps and exercise the wrap counting the runner relies on.
 const RELOAD: u32 = 0x0000_FFFF;
-static WRAPS: AtomicU32 = AtomicU32::new(0);
 
-#[exception]
-fn SysTick() {
-    WRAPS.store(WRAPS.load(Ordering::Relaxed).wrapping_add(1), Ordering::Relaxed);
-}
-
-#[inline(never)]
-fn now() -> u64 {
-    cortex_m::interrupt::free(|_| {
-        let v = SYST::get_current();
-        let w = WRAPS.load(Ordering::Relaxed) as u64;
-        if SCB::is_pendst_pending() {
-            let v2 = SYST::get_current();
-            (w + 1) * (RELOAD as u64 + 1) + u64::from(RELOAD - v2)
-        } else {
-            w * (RELOAD as u64 + 1) + u64::from(RELOAD - v)
-        }
-    })
-}
+@SYSTICK@
 
 /// `n` iterations (n >= 1) of 102 instructions each.
 #[inline(never)]

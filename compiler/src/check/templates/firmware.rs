@@ -23,35 +23,12 @@ const TRACE_MAPS: bool = @TRACE_MAPS@;
 const RELOAD: u32 = 0x00FF_FFFF;
 const PAINT: u32 = 0xA5C3_5A3C;
 
-static WRAPS: AtomicU32 = AtomicU32::new(0);
-
 static mut SCRATCH: model::Scratch = model::Scratch::new();
 static mut INPUT: [i8; model::INPUT_LEN] = [0; model::INPUT_LEN];
 static mut OUTPUT: [i8; model::OUTPUT_LEN] = [0; model::OUTPUT_LEN];
 static mut OUTPUT2: [i8; model::OUTPUT_LEN] = [0; model::OUTPUT_LEN];
 
-#[exception]
-fn SysTick() {
-    // Single core, and the only writer: load + store is enough (ARMv6-M has
-    // no atomic read-modify-write).
-    WRAPS.store(WRAPS.load(Ordering::Relaxed).wrapping_add(1), Ordering::Relaxed);
-}
-
-/// Ticks since the timer started: wraps · period + elapsed in this period.
-#[inline(never)]
-fn now() -> u64 {
-    cortex_m::interrupt::free(|_| {
-        let v = SYST::get_current();
-        let w = WRAPS.load(Ordering::Relaxed) as u64;
-        if SCB::is_pendst_pending() {
-            // Wrapped, handler not run yet: re-read inside the new period.
-            let v2 = SYST::get_current();
-            (w + 1) * (RELOAD as u64 + 1) + u64::from(RELOAD - v2)
-        } else {
-            w * (RELOAD as u64 + 1) + u64::from(RELOAD - v)
-        }
-    })
-}
+@SYSTICK@
 
 fn fail(what: &str) -> ! {
     hprintln!("ingot-runner: {}", what);
