@@ -30,18 +30,17 @@ fn setup(dir: &Path) -> std::path::PathBuf {
     graph
 }
 
-#[test]
-fn calibrate_writes_ranges_and_prints_json() {
-    let dir = tempfile::tempdir().unwrap();
-    let graph = setup(dir.path());
-    let out_file = dir.path().join("r.json");
+/// `ingot calibrate GRAPH --images DIR --method METHOD --holdout 0.2 --json
+/// -o OUT` on the test set of `setup`; must succeed. Returns the JSON it
+/// printed.
+fn calibrate_json(dir: &Path, graph: &Path, method: &str, out_file: &Path) -> serde_json::Value {
     let out = ingot()
         .args(["calibrate"])
-        .arg(&graph)
+        .arg(graph)
         .arg("--images")
-        .arg(dir.path().join("images"))
-        .args(["--method", "kl", "--holdout", "0.2", "--json", "-o"])
-        .arg(&out_file)
+        .arg(dir.join("images"))
+        .args(["--method", method, "--holdout", "0.2", "--json", "-o"])
+        .arg(out_file)
         .output()
         .unwrap();
     assert!(
@@ -49,7 +48,15 @@ fn calibrate_writes_ranges_and_prints_json() {
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+#[test]
+fn calibrate_writes_ranges_and_prints_json() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    let out_file = dir.path().join("r.json");
+    let v = calibrate_json(dir.path(), &graph, "kl", &out_file);
     assert_eq!(v["method"], "kl");
     assert_eq!(v["calibration"].as_array().unwrap().len(), 16);
     assert_eq!(v["evaluation"].as_array().unwrap().len(), 4);
@@ -152,21 +159,7 @@ fn calibrate_auto_keeps_the_candidate_with_the_best_agreement() {
     let dir = tempfile::tempdir().unwrap();
     let graph = setup(dir.path());
     let out_file = dir.path().join("r.json");
-    let out = ingot()
-        .args(["calibrate"])
-        .arg(&graph)
-        .arg("--images")
-        .arg(dir.path().join("images"))
-        .args(["--method", "auto", "--holdout", "0.2", "--json", "-o"])
-        .arg(&out_file)
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let v = calibrate_json(dir.path(), &graph, "auto", &out_file);
     let tried = v["auto"]["tried"].as_array().unwrap();
     let names: Vec<&str> = tried.iter().map(|t| t[0].as_str().unwrap()).collect();
     assert_eq!(
