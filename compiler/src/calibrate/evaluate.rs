@@ -175,6 +175,62 @@ pub fn evaluate(
     })
 }
 
+/// Top-1 agreement with the float network of each lowering in `qs`, on the
+/// images `indices` (unreadable images are skipped with `skip_bad`, else an
+/// error). The float reference runs once per image and each lowering's
+/// simulator once: for choosing among range candidates, where
+/// [`evaluate`]'s per-layer SQNR is not needed.
+pub fn agreements(
+    graph: &Graph,
+    images: &ImageSet,
+    indices: &[usize],
+    qs: &[QGraph],
+    skip_bad: bool,
+) -> Result<Vec<f64>, EvalError> {
+    let reference = Reference::new(graph);
+    // Per image: the float top-1 and each lowering's, or None if skipped.
+    type Top1s = Option<(usize, Vec<usize>)>;
+    let per_image: Vec<Result<Top1s, EvalError>> = indices
+        .par_iter()
+        .map_init(
+            || qs.iter().map(Simulator::new).collect::<Vec<_>>(),
+            |sims, &i| {
+                let sample = match images.load(i) {
+                    Ok(s) => s,
+                    Err(_) if skip_bad => return Ok(None),
+                    Err(e) => return Err(e.into()),
+                };
+                let float_out = reference
+                    .run_with(&sample.input, |_, _| {})
+                    .expect("sample has the input's length");
+                let mut int8 = Vec::with_capacity(qs.len());
+                for (sim, q) in sims.iter_mut().zip(qs) {
+                    match &sample.pixels {
+                        Some(p) => sim.run(SimInput::Pixels(p))?,
+                        None => sim.run(SimInput::Chw(&sample.input))?,
+                    };
+                    int8.push(argmax(&sim.map_chw_f32(q.output)));
+                }
+                Ok(Some((argmax(&float_out), int8)))
+            },
+        )
+        .collect();
+    let mut agree = vec![0usize; qs.len()];
+    let mut n = 0usize;
+    for r in per_image {
+        if let Some((f, int8)) = r? {
+            n += 1;
+            for (a, t) in agree.iter_mut().zip(int8) {
+                *a += (t == f) as usize;
+            }
+        }
+    }
+    Ok(agree
+        .into_iter()
+        .map(|a| if n == 0 { 0.0 } else { a as f64 / n as f64 })
+        .collect())
+}
+
 fn one_image(
     graph: &Graph,
     images: &ImageSet,

@@ -361,29 +361,23 @@ fn choose_automatically(
     candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)>,
     opts: &CalibOptions,
 ) -> Result<(), CalibError> {
+    let mut lowered = Vec::with_capacity(candidates.len());
+    for (method, maps, _) in &candidates {
+        let ranges = Ranges {
+            maps: maps.clone(),
+            method: method.to_string(),
+            ..cal.ranges.clone()
+        };
+        lowered.push(
+            crate::lower::lower(graph, &ranges, &crate::lower::LowerOptions::default())
+                .map_err(|e| CalibError::Options(format!("method auto, trying {method}: {e}")))?,
+        );
+    }
+    let agree = evaluate::agreements(graph, images, &cal.calibration, &lowered, opts.skip_bad)
+        .map_err(|e| CalibError::Options(format!("method auto: {e}")))?;
     let mut tried = Vec::new();
     let mut best: Option<(f64, Method, Vec<MapRange>, Vec<f64>)> = None;
-    for (method, maps, clipped) in candidates {
-        let trial = Calibration {
-            ranges: Ranges {
-                maps: maps.clone(),
-                method: method.to_string(),
-                ..cal.ranges.clone()
-            },
-            evaluation: Vec::new(),
-            auto: None,
-            ..cal.clone()
-        };
-        let e = evaluate(
-            graph,
-            images,
-            &trial,
-            &crate::lower::LowerOptions::default(),
-            opts.skip_bad,
-            false,
-        )
-        .map_err(|e| CalibError::Options(format!("method auto, trying {method}: {e}")))?;
-        let a = e.output.top1_agreement;
+    for ((method, maps, clipped), a) in candidates.into_iter().zip(agree) {
         tried.push((method.to_string(), a));
         if best.as_ref().is_none_or(|b| a > b.0) {
             best = Some((a, method, maps, clipped));
