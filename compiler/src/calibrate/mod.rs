@@ -460,40 +460,46 @@ pub fn observe_set<S: MapSource + ?Sized>(
     };
     pb.finish_and_clear();
 
-    let choose_all = |method: Method| -> Vec<observe::Choice> {
-        (0..n_maps)
+    // Every map's range and clipped share under one method.
+    let choose_all = |method: Method| -> (Vec<MapRange>, Vec<f64>) {
+        let c: Vec<observe::Choice> = (0..n_maps)
             .into_par_iter()
             .map(|i| observe::choose(method, &ext.maps[i], hist.as_ref().map(|h| &h.maps[i])))
-            .collect()
+            .collect();
+        (
+            c.iter().map(|c| c.range).collect(),
+            c.iter().map(|c| c.clipped).collect(),
+        )
     };
     let candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)> = if opts.method == Method::Auto {
         Method::AUTO_CANDIDATES
             .iter()
             .map(|&m| {
-                let c = choose_all(m);
-                (
-                    m,
-                    c.iter().map(|c| c.range).collect(),
-                    c.iter().map(|c| c.clipped).collect(),
-                )
+                let (r, c) = choose_all(m);
+                (m, r, c)
             })
             .collect()
     } else {
         Vec::new()
     };
-    let choices = choose_all(opts.method);
-    let stats = choices
+    // Until `auto` has chosen, it holds its first candidate (min/max, what
+    // `choose` gives `Auto` alone), so that one is not computed twice.
+    let (ranges, clipped) = match candidates.first() {
+        Some((_, r, c)) => (r.clone(), c.clone()),
+        None => choose_all(opts.method),
+    };
+    let stats = clipped
         .iter()
         .zip(&ext.maps)
-        .map(|(c, mm)| MapStats {
+        .map(|(&clipped, mm)| MapStats {
             observed: mm.range(),
-            clipped: c.clipped,
+            clipped,
             values: mm.count,
             nonfinite: mm.nonfinite,
         })
         .collect();
     Ok(Observed {
-        ranges: choices.iter().map(|c| c.range).collect(),
+        ranges,
         stats,
         calibration,
         evaluation,
