@@ -620,6 +620,36 @@ fn channel_rows(
     }
 }
 
+/// Channels `c0..c0 + dst.len()` of one input pixel (`src`), transformed
+/// if there is a transform, widened into `dst`.
+#[inline(always)]
+fn load_pixel(dst: &mut [i16], src: &[i8], transform: Option<&InputTransform<'_>>, c0: usize) {
+    match transform {
+        None => widen_into(dst, src),
+        Some(InputTransform::Affine(a)) if c0 == 0 => a.apply_pixel(dst, src),
+        Some(tr) => {
+            for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
+                *d = tr.apply(c0 + ch, v) as i16;
+            }
+        }
+    }
+}
+
+/// `out[j] = clamp(z_out + requant[j].scale(bias[j] + acc[j]))` for the
+/// `acc.len()` channels given.
+#[inline(always)]
+fn requantize_into(
+    out: &mut [i8],
+    acc: &[i32],
+    bias: &[i32],
+    requant: &[Requant],
+    out_q: OutputQuant,
+) {
+    for (((o, &a), &b), rq) in out.iter_mut().zip(acc).zip(bias).zip(requant) {
+        *o = rq.apply(b.wrapping_add(a), out_q);
+    }
+}
+
 /// [`conv2d_paired`] from a ring of `kh` padded, transformed input rows
 /// (see [`conv_rows_len`]); the caller checked [`conv_rows_apply`], the
 /// shapes and the buffer length.
@@ -677,10 +707,8 @@ fn conv_rows(
                         *a = a.wrapping_add(v);
                     }
                 }
-                for (j, a) in acc.into_iter().enumerate() {
-                    let o = 4 * q + j;
-                    out[o] = requant[o].apply(bias[o].wrapping_add(a), p.out);
-                }
+                let o = 4 * q;
+                requantize_into(&mut out[o..], &acc, &bias[o..], &requant[o..], p.out);
             }
             if left > 0 {
                 let mut acc = [0i32; 3];
@@ -693,10 +721,8 @@ fn conv_rows(
                         acc,
                     );
                 }
-                for (j, a) in acc.iter().enumerate() {
-                    let o = 4 * quads + j;
-                    out[o] = requant[o].apply(bias[o].wrapping_add(*a), p.out);
-                }
+                let o = 4 * quads;
+                requantize_into(&mut out[o..], acc, &bias[o..], &requant[o..], p.out);
             }
         }
     }
@@ -725,16 +751,7 @@ fn fill_row(
     tail.fill(pad_value as i16);
     for (ix, d) in body.chunks_exact_mut(c).enumerate() {
         let src = input.pixel(iy, ix);
-        let src = &arena[src..src + c];
-        match transform {
-            None => widen_into(d, src),
-            Some(InputTransform::Affine(a)) => a.apply_pixel(d, src),
-            Some(tr) => {
-                for (ch, (v, &x)) in d.iter_mut().zip(src).enumerate() {
-                    *v = tr.apply(ch, x) as i16;
-                }
-            }
-        }
+        load_pixel(d, &arena[src..src + c], transform, 0);
     }
 }
 
@@ -755,20 +772,16 @@ fn paired_rows(
     let (head, rest) = weights[..m * kp].split_at(quads * 4 * kp);
     for (q, block) in head.chunks_exact(4 * kp).enumerate() {
         let acc = dot4_pairs(xw, block);
-        for (j, a) in acc.into_iter().enumerate() {
-            let o = 4 * q + j;
-            out[o] = requant[o].apply(bias[o].wrapping_add(a), out_q);
-        }
+        let o = 4 * q;
+        requantize_into(&mut out[o..], &acc, &bias[o..], &requant[o..], out_q);
     }
     let left = m - 4 * quads;
     if left > 0 {
         let mut acc = [0i32; 3];
         let acc = &mut acc[..left];
         dot_pairs_few(xw, rest, acc);
-        for (j, a) in acc.iter().enumerate() {
-            let o = 4 * quads + j;
-            out[o] = requant[o].apply(bias[o].wrapping_add(*a), out_q);
-        }
+        let o = 4 * quads;
+        requantize_into(&mut out[o..], acc, &bias[o..], &requant[o..], out_q);
     }
 }
 
@@ -802,16 +815,7 @@ fn gather_columns(
                 continue;
             }
             let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
-            let src = &arena[src..src + c];
-            match transform {
-                None => widen_into(dst, src),
-                Some(InputTransform::Affine(a)) => a.apply_pixel(dst, src),
-                Some(tr) => {
-                    for (ch, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
-                        *d = tr.apply(ch, v) as i16;
-                    }
-                }
-            }
+            load_pixel(dst, &arena[src..src + c], transform, 0);
         }
     }
 }
@@ -882,15 +886,7 @@ fn gather(
                     continue;
                 }
                 let c0 = g * cpg;
-                let src = &arena[src + c0..src + c0 + cpg];
-                match transform {
-                    None => widen_into(dst, src),
-                    Some(tr) => {
-                        for (ci, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
-                            *d = tr.apply(c0 + ci, v) as i16;
-                        }
-                    }
-                }
+                load_pixel(dst, &arena[src + c0..src + c0 + cpg], transform, c0);
             }
         }
     }

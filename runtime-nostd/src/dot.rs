@@ -169,11 +169,18 @@ fn word(lo: i16, hi: i16) -> u32 {
     (lo as u16 as u32) | ((hi as u16 as u32) << 16)
 }
 
+/// The two signed 16-bit halves of a word, low first (the shapes LLVM
+/// maps onto the bottom/top operand selection of `smlabb` and friends).
+#[inline(always)]
+fn halves(v: u32) -> (i32, i32) {
+    (((v << 16) as i32) >> 16, (v as i32) >> 16)
+}
+
 /// `acc + lo(x)·lo(w) + hi(x)·hi(w)`, each half a signed 16-bit value.
 #[inline(always)]
 fn mac_pair(acc: i32, x: u32, w: u32) -> i32 {
-    let (xl, xh) = (((x << 16) as i32) >> 16, (x as i32) >> 16);
-    let (wl, wh) = (((w << 16) as i32) >> 16, (w as i32) >> 16);
+    let (xl, xh) = halves(x);
+    let (wl, wh) = halves(w);
     acc.wrapping_add(xl.wrapping_mul(wl))
         .wrapping_add(xh.wrapping_mul(wh))
 }
@@ -290,9 +297,7 @@ pub(crate) mod scalar {
             .zip(w2.chunks_exact(2))
             .zip(w3.chunks_exact(2))
         {
-            let word = (xp[0] as u16 as u32) | ((xp[1] as u16 as u32) << 16);
-            let lo = ((word << 16) as i32) >> 16;
-            let hi = (word as i32) >> 16;
+            let (lo, hi) = super::halves(super::word(xp[0], xp[1]));
             a = a
                 .wrapping_add(lo.wrapping_mul(p[0] as i32))
                 .wrapping_add(hi.wrapping_mul(p[1] as i32));
