@@ -129,10 +129,15 @@ pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
     }
 }
 
+/// `(rows, k)` of a convolution's weights: one row of `k` weights per
+/// output channel.
+pub fn weight_rows(c: &QConv) -> (usize, usize) {
+    (c.out_channels, c.weights.len() / c.out_channels.max(1))
+}
+
 /// The paired layout of a convolution's weights (`ingot_rt::pair_rows`).
 pub fn paired_weights(c: &QConv) -> Vec<u32> {
-    let rows = c.out_channels;
-    let k = c.weights.len() / rows.max(1);
+    let (rows, k) = weight_rows(c);
     let mut v = vec![0u32; ingot_rt::paired_len(rows, k)];
     ingot_rt::pair_rows_into(&c.weights, rows, k, &mut v);
     v

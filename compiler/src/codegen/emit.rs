@@ -195,9 +195,8 @@ fn paired_static(
     lits: &mut Literals,
     name: &Ident,
     e: &Entry,
-    rows: usize,
+    (rows, k): (usize, usize),
 ) -> TokenStream {
-    let k = e.len / rows.max(1);
     let words = ingot_rt::paired_len(rows, k);
     let (n, np, r, kk, at) = (us(e.len), us(words), us(rows), us(k), us(e.offset));
     let off = format_ident!("OFF_{}", name);
@@ -247,7 +246,7 @@ fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
                 lits,
                 &id(Role::Weights.prefix(), stem),
                 e,
-                c.out_channels,
+                super::calls::weight_rows(c),
             ));
         }
         for role in [

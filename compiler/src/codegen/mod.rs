@@ -252,8 +252,8 @@ pub fn pair_growth(q: &QGraph, form: WeightForm) -> usize {
         .iter()
         .filter_map(|st| match &st.kernel {
             crate::lower::QKernel::Conv2d(c) if calls::pairs_apply(c) => {
-                let k = c.weights.len() / c.out_channels.max(1);
-                Some(4 * ingot_rt::paired_len(c.out_channels, k) - c.weights.len())
+                let (rows, k) = calls::weight_rows(c);
+                Some(4 * ingot_rt::paired_len(rows, k) - c.weights.len())
             }
             _ => None,
         })
