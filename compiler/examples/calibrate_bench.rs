@@ -13,7 +13,7 @@
 //!
 //! Optional argument: a comma-separated list of case names to run.
 
-use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, Method};
+use ingot_compiler::calibrate::{CalibOptions, ImageSet, Method};
 use ingot_compiler::zoo::{self, DenseConfig, Rng};
 use std::path::Path;
 use std::time::Instant;
@@ -119,7 +119,7 @@ fn child(name: &str, images: usize, method: &str) {
         ..CalibOptions::default()
     };
     let t = Instant::now();
-    let cal = calibrate::run(&graph, &set, &opts).expect("calibrate");
+    let cal = ingot_compiler::agree::run(&graph, &set, &opts).expect("calibrate");
     let secs = t.elapsed().as_secs_f64();
     assert_eq!(cal.ranges.images, images);
     println!(

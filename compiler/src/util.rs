@@ -27,3 +27,19 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     }
     result
 }
+
+/// FNV-1a offset basis (64 bit).
+pub const FNV_BASIS: u64 = 0xcbf2_9ce4_8422_2325;
+
+/// FNV-1a, 64 bit (Fowler, Noll and Vo; constants from memory, checked by
+/// the module hashes of the snapshot tests): `h` continued over `bytes`;
+/// start from [`FNV_BASIS`]. The one stable hash of the crate: file
+/// identities in ranges files, `MODEL_HASH`, runner project names.
+pub fn fnv1a(h: u64, bytes: &[u8]) -> u64 {
+    let mut h = h;
+    for &b in bytes {
+        h ^= b as u64;
+        h = h.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    h
+}

@@ -111,7 +111,8 @@ fn report_measures_int8_against_float_on_held_out_images() {
     };
     let cal = calibrate::run(&graph, &set, &opts).unwrap();
     let report =
-        calibrate::report(&graph, &set, &cal, &opts, Some(&LowerOptions::default())).unwrap();
+        ingot_compiler::agree::report(&graph, &set, &cal, &opts, Some(&LowerOptions::default()))
+            .unwrap();
     assert_eq!(report.evaluated_on, "held-out");
     assert_eq!(report.evaluation.len(), 10);
     assert!(report

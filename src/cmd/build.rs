@@ -1,7 +1,8 @@
 //! `ingot build GRAPH.json (--images DIR | --ranges FILE) [--target FILE] --out DIR [--module NAME] [--force]`.
 
 use ingot_compiler::calibrate::Method;
-use ingot_compiler::codegen::{output, pipeline, WeightForm};
+use ingot_compiler::codegen::{output, WeightForm};
+use ingot_compiler::driver as pipeline;
 use std::path::PathBuf;
 
 /// Arguments of `ingot build`.

@@ -2,7 +2,8 @@
 //! int8 ranges, write the ranges file and report.
 
 use anyhow::Context;
-use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, Method};
+use ingot_compiler::agree;
+use ingot_compiler::calibrate::{CalibOptions, ImageSet, Method};
 use ingot_compiler::lower::LowerOptions;
 use std::path::PathBuf;
 
@@ -47,7 +48,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         progress: true,
         ..CalibOptions::default()
     };
-    let cal = calibrate::run(&graph, &images, &opts)?;
+    let cal = agree::run(&graph, &images, &opts)?;
     let out = match &args.output {
         Some(p) => p.clone(),
         None => args
@@ -59,7 +60,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     cal.ranges
         .save(&graph, &out)
         .with_context(|| format!("{}: cannot write the ranges file", out.display()))?;
-    let report = calibrate::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
+    let report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
     if args.json {
         let mut v = serde_json::to_value(&report)?;
         v["ranges_file"] = serde_json::Value::String(out.display().to_string());

@@ -10,6 +10,7 @@ use ingot_compiler::check::runner::{self, BuildConfig};
 use ingot_compiler::check::size::Budget;
 use ingot_compiler::check::{io, ModuleFiles, RunOn};
 use ingot_compiler::codegen::WeightForm;
+use ingot_compiler::driver;
 use std::path::PathBuf;
 
 /// Arguments of `ingot check`.
@@ -183,14 +184,12 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         (None, Some(d)) => RangesFrom::Images(d.clone()),
         (None, None) => RangesFrom::CheckImages,
     };
-    // Without a target profile, the core the module runs on decides.
-    let on_core =
-        (a.target.is_none() && a.on != RunOn::Host).then(|| WeightForm::for_core(a.on.name()));
+    let run_core = (a.on != RunOn::Host).then(|| a.on.name());
     let opts = PrepareOptions {
         ranges,
         method: a.method,
         target: a.target.clone(),
-        weight_form: a.weight_form.or(on_core),
+        weight_form: driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core),
         ..PrepareOptions::default()
     };
     let p = prepare::prepare(graph, images, &opts)?;
@@ -212,17 +211,14 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
             ..BuildConfig::default()
         },
         // The firmware ELF (module + runner) against the target's memory
-        // less its reserves. Conservative: the measured stack is counted in
-        // the ELF's RAM although the RAM reserve already covers a stack.
+        // less its reserves.
         budget: Budget {
-            flash: a.flash_budget.or(p
-                .budget
-                .as_ref()
-                .map(|b| b.flash_total.saturating_sub(b.flash_reserve))),
-            ram: a.ram_budget.or(p
-                .budget
-                .as_ref()
-                .map(|b| b.ram_total.saturating_sub(b.ram_reserve))),
+            flash: a
+                .flash_budget
+                .or(p.budget.as_ref().map(|b| driver::firmware_budget(b).0)),
+            ram: a
+                .ram_budget
+                .or(p.budget.as_ref().map(|b| driver::firmware_budget(b).1)),
         },
         thresholds: thresholds(a),
     };

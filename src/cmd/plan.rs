@@ -2,7 +2,8 @@
 
 use anyhow::{bail, Context};
 use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, MapRange, Ranges};
-use ingot_compiler::codegen::{pipeline, WeightForm};
+use ingot_compiler::codegen::WeightForm;
+use ingot_compiler::driver as pipeline;
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{self, PlanOptions, Target};
 use std::path::PathBuf;

@@ -6,13 +6,11 @@
 //! observers of [`observe`] and returns [`Ranges`] plus per-map statistics.
 //! A `holdout` share of the images is kept apart for evaluation.
 
-pub mod evaluate;
 pub mod images;
 pub mod observe;
-pub mod ranges;
+pub use crate::ranges;
 pub mod report;
 
-pub use evaluate::{evaluate, EvalError, Evaluation};
 pub use images::{ImageError, ImageSet, Sample};
 pub use observe::{Method, DEFAULT_BINS};
 pub use ranges::{MapRange, Ranges, RangesError};
@@ -47,8 +45,10 @@ impl MapSource for crate::reference::Reference<'_> {
     }
 }
 
-/// Calibrates `graph` on `images` with its float reference: the library
-/// entry point (the CLI and build scripts call this).
+/// Calibrates `graph` on `images` with its float reference. Under
+/// [`Method::Auto`] the candidates are left in [`Calibration::candidates`]
+/// for `agree::choose` (choosing needs the lowered network);
+/// `agree::run` does both.
 pub fn run(
     graph: &Graph,
     images: &ImageSet,
@@ -60,27 +60,6 @@ pub fn run(
         images,
         opts,
     )
-}
-
-/// The full report of a calibration: ranges and statistics per map and,
-/// when `int8` is set, the int8 evaluation (lowering with `lower_opts`, the
-/// integer simulator against the float reference; see [`evaluate()`]).
-pub fn report(
-    graph: &Graph,
-    images: &ImageSet,
-    cal: &Calibration,
-    opts: &CalibOptions,
-    int8: Option<&crate::lower::LowerOptions>,
-) -> Result<Report, EvalError> {
-    let mut r = Report::new(graph, images, cal);
-    match int8 {
-        Some(lo) => {
-            let ev = evaluate(graph, images, cal, lo, opts.skip_bad, opts.progress)?;
-            r.add_evaluation(images, &ev);
-        }
-        None => r.not_evaluated = Some("not requested".into()),
-    }
-    Ok(r)
 }
 
 /// Options of a calibration run.
@@ -174,6 +153,10 @@ pub struct Calibration {
     /// float on the calibration images, in the order tried, and the one
     /// kept.
     pub auto: Option<AutoChoice>,
+    /// With [`Method::Auto`], until `agree::choose` has chosen: every
+    /// candidate method's ranges and clipped shares (`ranges` holds the
+    /// first's). Empty otherwise.
+    pub candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)>,
 }
 
 /// How [`Method::Auto`] chose.
@@ -330,7 +313,7 @@ pub fn run_with_source<S: MapSource + ?Sized>(
 ) -> Result<Calibration, CalibError> {
     debug_assert_eq!(src.map_count(), graph.map_count());
     let o = observe_set(src, images, opts)?;
-    let mut cal = Calibration {
+    let cal = Calibration {
         ranges: Ranges {
             graph: graph.name().to_string(),
             graph_hash: ranges::graph_hash(graph).map_err(CalibError::Hash)?,
@@ -343,58 +326,9 @@ pub fn run_with_source<S: MapSource + ?Sized>(
         evaluation: o.evaluation,
         skipped: o.skipped,
         auto: None,
+        candidates: o.candidates,
     };
-    if !o.candidates.is_empty() {
-        choose_automatically(graph, images, &mut cal, o.candidates, opts)?;
-    }
     Ok(cal)
-}
-
-/// Resolves [`Method::Auto`]: lowers the network with each candidate's
-/// ranges, runs the integer simulator against the float reference on the
-/// calibration images (never the held-out ones, which stay for an honest
-/// evaluation) and keeps the candidate with the best top-1 agreement.
-fn choose_automatically(
-    graph: &Graph,
-    images: &ImageSet,
-    cal: &mut Calibration,
-    candidates: Vec<(Method, Vec<MapRange>, Vec<f64>)>,
-    opts: &CalibOptions,
-) -> Result<(), CalibError> {
-    let mut lowered = Vec::with_capacity(candidates.len());
-    for (method, maps, _) in &candidates {
-        let ranges = Ranges {
-            maps: maps.clone(),
-            method: method.to_string(),
-            ..cal.ranges.clone()
-        };
-        lowered.push(
-            crate::lower::lower(graph, &ranges, &crate::lower::LowerOptions::default())
-                .map_err(|e| CalibError::Options(format!("method auto, trying {method}: {e}")))?,
-        );
-    }
-    let agree = evaluate::agreements(graph, images, &cal.calibration, &lowered, opts.skip_bad)
-        .map_err(|e| CalibError::Options(format!("method auto: {e}")))?;
-    let mut tried = Vec::new();
-    let mut best: Option<(f64, Method, Vec<MapRange>, Vec<f64>)> = None;
-    for ((method, maps, clipped), a) in candidates.into_iter().zip(agree) {
-        tried.push((method.to_string(), a));
-        if best.as_ref().is_none_or(|b| a > b.0) {
-            best = Some((a, method, maps, clipped));
-        }
-    }
-    let (_, method, maps, clipped) = best.expect("at least one candidate");
-    for (s, c) in cal.stats.iter_mut().zip(clipped) {
-        s.clipped = c;
-    }
-    cal.ranges.maps = maps;
-    cal.ranges.method = format!("auto: {method}");
-    cal.auto = Some(AutoChoice {
-        tried,
-        chosen: method.to_string(),
-        images: cal.calibration.len(),
-    });
-    Ok(())
 }
 
 /// The graph-independent core of calibration: both passes over the

@@ -163,27 +163,13 @@ pub fn first_differing_step(module: &[TraceMap], reference: &[TraceMap]) -> Opti
     None
 }
 
-/// Index of the largest value, first on ties.
+/// Index of the largest value, first on ties (`ingot_rt::argmax`, what the
+/// generated module's `argmax` calls).
 pub fn argmax_i8(v: &[i8]) -> usize {
-    let mut best = 0;
-    for (i, &x) in v.iter().enumerate() {
-        if x > v[best] {
-            best = i;
-        }
-    }
-    best
+    ingot_rt::argmax(v)
 }
 
-/// Index of the largest value, first on ties; NaN never wins.
-pub fn argmax_f32(v: &[f32]) -> usize {
-    let mut best = 0;
-    for (i, &x) in v.iter().enumerate() {
-        if v[best].is_nan() || x > v[best] {
-            best = i;
-        }
-    }
-    best
-}
+pub use crate::measure::argmax_f32;
 
 /// `scale · (q − zero_point)`.
 pub fn dequantize(q: &[i8], scale: f32, zero_point: i32) -> Vec<f32> {
@@ -305,13 +291,7 @@ pub fn sqnr_db(reference: &[f32], test: &[f32]) -> f64 {
         s += (r as f64).powi(2);
         n += (r as f64 - t as f64).powi(2);
     }
-    if n == 0.0 {
-        f64::INFINITY
-    } else if s == 0.0 {
-        f64::NEG_INFINITY
-    } else {
-        10.0 * (s / n).log10()
-    }
+    crate::measure::sqnr_db(s, n).unwrap_or(f64::INFINITY)
 }
 
 /// SQNR of one layer over a batch.

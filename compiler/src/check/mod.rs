@@ -14,6 +14,11 @@
 //! * [`io`] holds the little binary file formats the runners exchange.
 //! * [`compare`] and [`report`] turn outputs into figures, markdown, JSON
 //!   and SVG.
+//! * [`prepare`] gets a module and the comparison data ready (ranges,
+//!   lowering, plan and generation through [`crate::driver`], then the
+//!   integer simulator and the float reference on every image).
+//! * [`pipeline`] runs a prepared module on its core and compares
+//!   ([`pipeline::run_check`]).
 //!
 //! Instruction counts are counts of instructions the emulated core executed
 //! (on its real instruction set), not cycles: QEMU does not model pipelines,

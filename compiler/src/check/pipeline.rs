@@ -118,17 +118,7 @@ pub fn sqnr_per_step(
         slot.2 = true;
     }
     acc.into_iter()
-        .map(|(s, n, seen)| {
-            seen.then(|| {
-                if n == 0.0 {
-                    f64::INFINITY
-                } else if s == 0.0 {
-                    f64::NEG_INFINITY
-                } else {
-                    10.0 * (s / n).log10()
-                }
-            })
-        })
+        .map(|(s, n, seen)| seen.then(|| crate::measure::sqnr_db(s, n).unwrap_or(f64::INFINITY)))
         .collect()
 }
 

@@ -13,7 +13,7 @@
 
 use super::pipeline::{CheckData, StepInfo};
 use crate::calibrate::{self, CalibOptions, ImageSet, Ranges};
-use crate::codegen::{self, GenOptions, Generated, MapView, Schedule, TargetInfo};
+use crate::codegen::{self, GenOptions, Generated, Schedule, TargetInfo};
 use crate::graph::Graph;
 use crate::lower::{self, quant, LowerOptions, QGraph, SimInput, Simulator};
 use crate::plan::{self, Plan, PlanOptions, Target};
@@ -127,7 +127,7 @@ pub fn prepare(
         .map(Target::load)
         .transpose()
         .map_err(|e| err("--target")(&e))?;
-    let weight_form = codegen::pipeline::weight_form_for(opts.weight_form, target.as_ref());
+    let weight_form = crate::driver::weight_form_for(opts.weight_form, target.as_ref());
     let p = plan::plan(
         &q,
         &PlanOptions {
@@ -151,7 +151,7 @@ pub fn prepare(
         weight_form,
         ..GenOptions::default()
     };
-    let planned = schedule_of(&q, &p);
+    let planned = crate::driver::schedule_of(&q, &p);
     let (schedule, schedule_kind, generated) = match codegen::generate(&q, &planned, &gen_opts) {
         Ok(gen) => (planned, "planned".to_string(), gen),
         Err(e) => {
@@ -190,7 +190,7 @@ fn ranges_for(
         ..CalibOptions::default()
     };
     let calibrate_on = |s: &ImageSet| {
-        calibrate::run(g, s, &opts)
+        crate::agree::run(g, s, &opts)
             .map(|c| c.ranges)
             .map_err(|e| err("calibration")(&e))
     };
@@ -245,25 +245,6 @@ pub fn module_name(graph: &str) -> String {
         n
     } else {
         "model".into()
-    }
-}
-
-/// The schedule of a memory plan (order, views, copying concatenations,
-/// arena); the patch buffer is the generator's own minimum.
-pub fn schedule_of(q: &QGraph, p: &Plan) -> Schedule {
-    Schedule {
-        order: p.order.clone(),
-        views: p
-            .map_views
-            .iter()
-            .map(|v| MapView {
-                offset: v.offset,
-                stride: v.stride,
-            })
-            .collect(),
-        copy_concats: p.copy_concat.clone(),
-        arena_bytes: p.arena_bytes,
-        patch_bytes: codegen::schedule::min_patch_bytes(q),
     }
 }
 
@@ -370,15 +351,7 @@ fn compare_data(
     data.step_sqnr = sums
         .into_iter()
         .map(|(sig, noise, seen)| {
-            seen.then(|| {
-                if noise == 0.0 {
-                    f64::INFINITY
-                } else if sig == 0.0 {
-                    f64::NEG_INFINITY
-                } else {
-                    10.0 * (sig / noise).log10()
-                }
-            })
+            seen.then(|| crate::measure::sqnr_db(sig, noise).unwrap_or(f64::INFINITY))
         })
         .collect();
     data.sim_outputs = Some(sim_out);

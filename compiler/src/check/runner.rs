@@ -173,15 +173,11 @@ pub struct RunOutput {
 
 /// 64-bit FNV-1a; names runner projects after their contents.
 pub(crate) fn fnv1a(parts: &[&[u8]]) -> u64 {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    let mut h = crate::util::FNV_BASIS;
     for p in parts {
-        for &b in *p {
-            h ^= b as u64;
-            h = h.wrapping_mul(0x0100_0000_01b3);
-        }
+        h = crate::util::fnv1a(h, p);
         // Separator so ("ab","c") and ("a","bc") differ.
-        h ^= 0xff;
-        h = h.wrapping_mul(0x0100_0000_01b3);
+        h = crate::util::fnv1a(h, &[0xff]);
     }
     h
 }

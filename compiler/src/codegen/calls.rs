@@ -11,10 +11,11 @@
 //! So the generated module cannot pass parameters the compiler did not
 //! validate.
 
-use super::schedule::Schedule;
 use crate::lower::{
     ChannelTransform, Clamp, Multiplier, QConv, QGraph, QKernel, QLinear, QPool, StepId,
 };
+pub use crate::plan::form::{pairs_apply, weight_rows};
+use crate::plan::Schedule;
 use ingot_rt::{
     AddParams, ConvParams, InputTransform, MapRef, OutputQuant, PoolQuant, Requant, Window,
 };
@@ -111,11 +112,6 @@ pub fn rt_transform(t: &ChannelTransform) -> InputTransform<'_> {
 /// Why a step cannot be turned into calls.
 pub type CallError = String;
 
-/// True when a convolution can take the paired weight layout (one group).
-pub fn pairs_apply(c: &QConv) -> bool {
-    c.groups == 1
-}
-
 /// Switches every convolution that can take it to the paired layout when
 /// `form` is [`WeightForm::Pairs`](super::WeightForm::Pairs) (calls from
 /// [`step_calls`] start in int8).
@@ -127,12 +123,6 @@ pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
             }
         }
     }
-}
-
-/// `(rows, k)` of a convolution's weights: one row of `k` weights per
-/// output channel.
-pub fn weight_rows(c: &QConv) -> (usize, usize) {
-    (c.out_channels, c.weights.len() / c.out_channels.max(1))
 }
 
 /// The paired layout of a convolution's weights (`ingot_rt::pair_rows`).

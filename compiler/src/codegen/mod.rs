@@ -27,17 +27,18 @@
 //! ```
 
 pub mod blob;
-pub mod build_script;
 pub mod calls;
 pub mod emit;
 pub mod names;
 pub mod output;
-pub mod pipeline;
 pub mod report;
-pub mod schedule;
 pub mod testnets;
 
-pub use schedule::{MapView, Schedule};
+// The weight form and the schedule are the planner's (it sizes the patch
+// buffer for the form); re-exported under their former paths.
+pub use crate::plan::form::{pair_growth, WeightForm};
+pub use crate::plan::schedule;
+pub use crate::plan::{MapView, Schedule};
 
 use crate::lower::QGraph;
 
@@ -51,83 +52,6 @@ pub enum WeightsMode {
     /// Every tensor as a literal array in the `.rs` file (for comparison; the
     /// weights file is still written but not read).
     Literal,
-}
-
-/// How convolution weights are stored in the module.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
-pub enum WeightForm {
-    /// int8, as in the weights file; `ingot_rt::conv2d` (every core).
-    #[default]
-    Int8,
-    /// Pairs of `i16` in 32-bit words, rows interleaved in blocks of four
-    /// (`ingot_rt::pair_rows`), for `ingot_rt::conv2d_paired`: cores with
-    /// the DSP extension's 16-bit multiply-accumulates (Cortex-M4, M7) run
-    /// about half the instructions per MAC, for twice the flash of those
-    /// weights. Depthwise and grouped convolutions and linear layers stay
-    /// int8.
-    Pairs,
-}
-
-impl WeightForm {
-    /// The form for a core name as the target profiles spell it
-    /// (`cortex-m4f`, `cortex-m7`, `m4`...): pairs where every variant of
-    /// the core has the DSP extension (Cortex-M4 and M7), int8 elsewhere
-    /// (on the M33 the extension is optional, on the M0+ and M3 absent).
-    pub fn for_core(core: &str) -> WeightForm {
-        let c = core.trim().to_ascii_lowercase();
-        let c = c.strip_prefix("cortex-").unwrap_or(&c);
-        if c.starts_with("m4") || c.starts_with("m7") {
-            WeightForm::Pairs
-        } else {
-            WeightForm::Int8
-        }
-    }
-
-    /// Name in reports and on the command line.
-    pub fn name(self) -> &'static str {
-        match self {
-            WeightForm::Int8 => "int8",
-            WeightForm::Pairs => "pairs",
-        }
-    }
-}
-
-#[cfg(test)]
-mod weight_form_tests {
-    use super::WeightForm;
-
-    /// Cortex-M4 and M7 always have the DSP extension's 16-bit
-    /// multiply-accumulates (common practice: Arm's core summaries); the
-    /// M0+ and M3 never, the M33 only as an option.
-    #[test]
-    fn paired_only_where_every_variant_has_the_dsp_extension() {
-        for core in ["cortex-m4", "cortex-m4f", "Cortex-M7", "m4", "m7"] {
-            assert_eq!(WeightForm::for_core(core), WeightForm::Pairs, "{core}");
-        }
-        for core in [
-            "cortex-m0+",
-            "m0plus",
-            "cortex-m3",
-            "cortex-m33",
-            "xtensa-lx7",
-            "",
-        ] {
-            assert_eq!(WeightForm::for_core(core), WeightForm::Int8, "{core}");
-        }
-        assert_eq!("pairs".parse::<WeightForm>(), Ok(WeightForm::Pairs));
-        assert!("i16".parse::<WeightForm>().is_err());
-    }
-}
-
-impl std::str::FromStr for WeightForm {
-    type Err = String;
-    fn from_str(s: &str) -> Result<Self, String> {
-        match s {
-            "int8" => Ok(WeightForm::Int8),
-            "pairs" => Ok(WeightForm::Pairs),
-            _ => Err(format!("unknown weight form `{s}` (int8 or pairs)")),
-        }
-    }
 }
 
 /// The memory budget of a target, as far as the generator checks it.
@@ -242,36 +166,8 @@ pub enum CodegenError {
     },
 }
 
-/// Bytes the paired weights of `q` take in flash beyond their int8 bytes in
-/// the weights file (0 for [`WeightForm::Int8`]).
-pub fn pair_growth(q: &QGraph, form: WeightForm) -> usize {
-    if form != WeightForm::Pairs {
-        return 0;
-    }
-    q.steps
-        .iter()
-        .filter_map(|st| match &st.kernel {
-            crate::lower::QKernel::Conv2d(c) if calls::pairs_apply(c) => {
-                let (rows, k) = calls::weight_rows(c);
-                Some(4 * ingot_rt::paired_len(rows, k) - c.weights.len())
-            }
-            _ => None,
-        })
-        .sum()
-}
-
-/// FNV-1a, 64 bit: a stable hash for `MODEL_HASH`.
-pub fn fnv1a(h: u64, bytes: &[u8]) -> u64 {
-    let mut h = h;
-    for &b in bytes {
-        h ^= b as u64;
-        h = h.wrapping_mul(0x0000_0100_0000_01b3);
-    }
-    h
-}
-
-/// FNV-1a offset basis.
-pub const FNV_BASIS: u64 = 0xcbf2_9ce4_8422_2325;
+// The hash of `MODEL_HASH`, under its former path.
+pub use crate::util::{fnv1a, FNV_BASIS};
 
 /// True for `[A-Za-z_][A-Za-z0-9_]*`.
 pub fn is_module_name(s: &str) -> bool {

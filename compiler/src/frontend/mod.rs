@@ -793,8 +793,3 @@ impl Validator<'_> {
         }
     }
 }
-
-/// Finds a layer by name in a graph file, for tools that edit files.
-pub fn layer_index(file: &GraphFile, name: &str) -> Option<usize> {
-    file.layers.iter().position(|l| l.name == name)
-}

@@ -30,8 +30,8 @@ pub use ir::{
 pub use quant::Activation;
 pub use sim::{SimError, SimInput, Simulator};
 
-use crate::calibrate::Ranges;
 use crate::graph::{BatchNorm, Conv2d, Graph, LayerId, MapId, Op, Shape};
+use crate::ranges::Ranges;
 use quant::{activation_clamp, activation_qparams, affine_transform, multiplier, quantize_weights};
 
 /// Choices of the lowering.
@@ -329,7 +329,7 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         }
     }
     let mut members = vec![0usize; nm];
-    let mut class_range: Vec<Option<crate::calibrate::MapRange>> = vec![None; nm];
+    let mut class_range: Vec<Option<crate::ranges::MapRange>> = vec![None; nm];
     for (m, c) in canon.iter().enumerate() {
         if *c == Some(MapId(m as u32)) {
             let root = classes.find(m);
@@ -337,7 +337,7 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
             let r = ranges.maps[m].with_zero();
             class_range[root] = Some(match class_range[root] {
                 None => r,
-                Some(u) => crate::calibrate::MapRange {
+                Some(u) => crate::ranges::MapRange {
                     min: u.min.min(r.min),
                     max: u.max.max(r.max),
                 },

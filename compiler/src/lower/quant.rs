@@ -6,7 +6,7 @@
 //! symmetric per output channel (Krishnamoorthi 2018, §3.1).
 
 use super::ir::{ChannelTransform, Clamp, Multiplier, QParams};
-use crate::calibrate::MapRange;
+use crate::ranges::MapRange;
 use ingot_rt::Requant;
 
 /// Scale given to a map whose calibrated range is the single point 0 (a dead

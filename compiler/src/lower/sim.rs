@@ -307,13 +307,6 @@ impl<'q> Simulator<'q> {
         v
     }
 
-    /// The codes of every map after the last run, indexed by [`QMapId`].
-    pub fn maps_hwc(&self) -> Vec<Vec<i8>> {
-        (0..self.q.maps.len() as u32)
-            .map(|i| self.map_hwc(QMapId(i)))
-            .collect()
-    }
-
     /// A map after the last run, dequantized, in the float graph's
     /// `[C, H, W]` order (for comparison with the float reference).
     pub fn map_chw_f32(&self, m: QMapId) -> Vec<f32> {
@@ -324,10 +317,4 @@ impl<'q> Simulator<'q> {
             .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], map.qp))
             .collect()
     }
-}
-
-/// Runs one image on a fresh naive-layout simulator and returns the output
-/// codes.
-pub fn simulate(q: &QGraph, input: SimInput<'_>) -> Result<Vec<i8>, SimError> {
-    Simulator::new(q).run(input)
 }

@@ -29,11 +29,13 @@
 //! are rounded up to it for placement and for the lower bound. Members of a
 //! region sit at their channel offset inside it and are not aligned.
 
+pub mod form;
 pub(crate) mod liveness;
 pub(crate) mod order;
 pub(crate) mod place;
 pub(crate) mod regions;
 pub mod report;
+pub mod schedule;
 pub mod svg;
 pub mod synth;
 pub mod target;
@@ -43,7 +45,9 @@ use crate::lower::{QGraph, QKernel, QMapId, StepId};
 use serde::Serialize;
 use std::time::Instant;
 
+pub use form::{patch_bytes, patch_bytes_for, WeightForm};
 pub use report::{report, PlanReport};
+pub use schedule::Schedule;
 pub use target::{Budget, Target, TargetError};
 
 /// Knobs of the planner.
@@ -74,7 +78,7 @@ pub struct PlanOptions {
     pub compare_copying: bool,
     /// The convolution weight form the module will use: the paired form's
     /// row buffers make the patch scratch larger ([`patch_bytes_for`]).
-    pub weight_form: crate::codegen::WeightForm,
+    pub weight_form: WeightForm,
 }
 
 impl Default for PlanOptions {
@@ -89,7 +93,7 @@ impl Default for PlanOptions {
             contiguous_kinds: Vec::new(),
             verify: cfg!(debug_assertions),
             compare_copying: true,
-            weight_form: crate::codegen::WeightForm::Int8,
+            weight_form: WeightForm::Int8,
         }
     }
 }
@@ -151,7 +155,7 @@ pub struct Plan {
     pub patch_bytes: usize,
     /// The weight form the patch was sized for (and the flash budget
     /// counts).
-    pub weight_form: crate::codegen::WeightForm,
+    pub weight_form: WeightForm,
     /// Largest total of (padded) buffers alive at one step of `order`.
     pub lower_bound: usize,
     /// Sum of all maps, each in its own bytes, no reuse.
@@ -211,40 +215,6 @@ pub enum PlanError {
     /// The verifier rejected the plan (a planner bug).
     #[error("plan of `{0}` failed verification: {1}")]
     Verify(String, String),
-}
-
-/// Bytes of convolution patch scratch the graph needs with int8 weights:
-/// the patch holds `ingot_rt::conv_patch_len` elements of `i16`, two bytes
-/// each.
-pub fn patch_bytes(q: &QGraph) -> usize {
-    patch_bytes_for(q, crate::codegen::WeightForm::Int8)
-}
-
-/// [`patch_bytes`] for a weight form: with paired weights, a convolution
-/// that can run from whole input rows (`ingot_rt::conv_rows_apply`) gets
-/// room for `ingot_rt::conv_rows_len` elements instead.
-pub fn patch_bytes_for(q: &QGraph, form: crate::codegen::WeightForm) -> usize {
-    q.steps
-        .iter()
-        .filter_map(|s| match &s.kernel {
-            QKernel::Conv2d(c) => {
-                let input = q.map(s.inputs[0]).shape;
-                let patch = ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], input.c);
-                let w = c.runtime_window();
-                let rows = if form == crate::codegen::WeightForm::Pairs
-                    && crate::codegen::calls::pairs_apply(c)
-                    && ingot_rt::conv_rows_apply(&w, c.groups, input.c)
-                {
-                    ingot_rt::conv_rows_len(&w, input.w, input.c)
-                } else {
-                    0
-                };
-                Some(2 * patch.max(rows))
-            }
-            _ => None,
-        })
-        .max()
-        .unwrap_or(0)
 }
 
 /// Plans the arena of `q`.

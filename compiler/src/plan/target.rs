@@ -184,11 +184,11 @@ pub struct FlashUse {
 impl FlashUse {
     /// Measures `q` with int8 weights.
     pub fn of(q: &QGraph) -> FlashUse {
-        Self::of_form(q, crate::codegen::WeightForm::Int8)
+        Self::of_form(q, super::WeightForm::Int8)
     }
 
     /// Measures `q` with the given weight form.
-    pub fn of_form(q: &QGraph, form: crate::codegen::WeightForm) -> FlashUse {
+    pub fn of_form(q: &QGraph, form: super::WeightForm) -> FlashUse {
         let mut f = FlashUse {
             transforms: q.pixel_table.len() as u64,
             ..FlashUse::default()
@@ -218,7 +218,7 @@ impl FlashUse {
                 QKernel::Concat => {}
             }
         }
-        f.weights += crate::codegen::pair_growth(q, form) as u64;
+        f.weights += super::form::pair_growth(q, form) as u64;
         f.code = RUNTIME_CODE_BYTES + STEP_CODE_BYTES * q.steps.len() as u64;
         f
     }

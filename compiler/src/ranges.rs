@@ -122,12 +122,9 @@ pub enum RangesError {
 /// FNV-1a 64 of the graph file and weights file bytes, as 16 hex digits:
 /// identifies the exact model a calibration or a generated module came from.
 pub fn graph_hash(g: &Graph) -> std::io::Result<String> {
-    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    let mut h = crate::util::FNV_BASIS;
     for p in [g.source(), g.weights_path()] {
-        for b in std::fs::read(p)? {
-            h ^= b as u64;
-            h = h.wrapping_mul(0x0000_0100_0000_01b3);
-        }
+        h = crate::util::fnv1a(h, &std::fs::read(p)?);
     }
     Ok(format!("{h:016x}"))
 }

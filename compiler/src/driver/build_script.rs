@@ -11,9 +11,9 @@
 //!
 //! and in the crate: `mod model { include!(concat!(env!("OUT_DIR"), "/model.rs")); }`.
 
-use super::output::{self, OutputError};
-use super::pipeline::{self, BuildInputs, PipelineError, RangesSource};
-use super::report::Report;
+use crate::codegen::output::{self, OutputError};
+use crate::codegen::report::Report;
+use crate::driver::{self as pipeline, BuildInputs, PipelineError, RangesSource};
 use std::path::{Path, PathBuf};
 
 /// Configures and runs one generation from a build script.
@@ -25,7 +25,7 @@ pub struct Builder {
     module: String,
     out_dir: Option<PathBuf>,
     lowered: Option<Box<crate::lower::QGraph>>,
-    weight_form: Option<super::WeightForm>,
+    weight_form: Option<crate::codegen::WeightForm>,
 }
 
 /// What [`Builder::generate`] wrote.
@@ -126,9 +126,9 @@ impl Builder {
     }
 
     /// How convolution weights are stored (default: chosen by the target's
-    /// core, see [`WeightForm::for_core`](super::WeightForm::for_core); int8
+    /// core, see [`WeightForm::for_core`](crate::codegen::WeightForm::for_core); int8
     /// without a target).
-    pub fn weight_form(mut self, form: super::WeightForm) -> Self {
+    pub fn weight_form(mut self, form: crate::codegen::WeightForm) -> Self {
         self.weight_form = Some(form);
         self
     }
@@ -185,13 +185,14 @@ impl Builder {
                     .as_deref()
                     .map(pipeline::load_target)
                     .transpose()?;
-                let opt = super::GenOptions {
+                let opt = crate::codegen::GenOptions {
                     module: self.module.clone(),
                     target: target.as_ref().map(pipeline::target_info),
                     weight_form: pipeline::weight_form_for(self.weight_form, target.as_ref()),
-                    ..super::GenOptions::default()
+                    ..crate::codegen::GenOptions::default()
                 };
-                super::generate(q, &super::Schedule::naive(q), &opt).map_err(PipelineError::from)?
+                crate::codegen::generate(q, &crate::codegen::Schedule::naive(q), &opt)
+                    .map_err(PipelineError::from)?
             }
             None => pipeline::compile(&self.request()?)?.generated,
         };

@@ -2,12 +2,18 @@
 //! ranges file or by calibrating on images), lower, plan the memory, check
 //! the target budget, generate.
 //!
-//! [`compile`] is the one library entry point: `ingot build`, the
-//! build-script [`Builder`](super::build_script::Builder) and `ingot check`
-//! all call it.
+//! The driver comes after the stages it assembles (`codegen` and all before
+//! it) and before the harness (`check`), which uses it. [`compile`] is the
+//! library entry point for `ingot build` and the build-script
+//! [`Builder`](build_script::Builder); `ingot check` and `ingot plan` use
+//! its stage functions ([`ranges_for`], [`weight_form_for`],
+//! [`schedule_of`], [`load_target`]).
 
-use super::{CodegenError, GenOptions, Generated, Schedule, TargetInfo, WeightForm};
-use crate::calibrate::{CalibError, CalibOptions, ImageError, ImageSet, Ranges, RangesError};
+pub mod build_script;
+
+use crate::agree::AgreeError;
+use crate::calibrate::{CalibOptions, ImageError, ImageSet, Ranges, RangesError};
+use crate::codegen::{self, CodegenError, GenOptions, Generated, Schedule, TargetInfo, WeightForm};
 use crate::lower::{LowerError, LowerOptions, QGraph};
 use crate::plan::{Budget, Plan, PlanError, PlanOptions, Target, TargetError};
 use crate::Graph;
@@ -48,9 +54,6 @@ pub fn weight_form_for(explicit: Option<WeightForm>, target: Option<&Target>) ->
         .unwrap_or_default()
 }
 
-/// Former name of [`BuildInputs`].
-pub type Request = BuildInputs;
-
 /// Everything one compilation produced, in memory.
 #[derive(Debug, Clone)]
 pub struct Compiled {
@@ -80,7 +83,7 @@ impl Compiled {
     }
 
     /// The generation report.
-    pub fn report(&self) -> &super::report::Report {
+    pub fn report(&self) -> &codegen::report::Report {
         &self.generated.report
     }
 }
@@ -99,7 +102,7 @@ pub enum PipelineError {
     Images(#[from] ImageError),
     /// Calibration failed.
     #[error("calibration failed: {0}")]
-    Calibrate(#[from] CalibError),
+    Calibrate(#[from] AgreeError),
     /// Lowering failed.
     #[error("lowering failed: {0}")]
     Lower(#[from] LowerError),
@@ -153,31 +156,36 @@ impl PipelineError {
     }
 }
 
-impl From<&Plan> for Schedule {
-    fn from(p: &Plan) -> Schedule {
-        Schedule {
-            order: p.order.clone(),
-            views: p
-                .map_views
-                .iter()
-                .map(|v| super::MapView {
-                    offset: v.offset,
-                    stride: v.stride,
-                })
-                .collect(),
-            copy_concats: p.copy_concat.clone(),
-            arena_bytes: p.arena_bytes,
-            patch_bytes: p.patch_bytes,
-        }
-    }
-}
-
 /// The schedule of `plan` for `q`, with the patch buffer at least as large
-/// as the generator's kernels need.
+/// as the generator's kernels need (the one schedule the CLI, build scripts
+/// and the harness generate with).
 pub fn schedule_of(q: &QGraph, plan: &Plan) -> Schedule {
     let mut s = Schedule::from(plan);
-    s.patch_bytes = s.patch_bytes.max(super::schedule::min_patch_bytes(q));
+    s.patch_bytes = s.patch_bytes.max(crate::plan::schedule::min_patch_bytes(q));
     s
+}
+
+/// The weight form to ask for when a module will run on `run_core` (a core
+/// name as [`WeightForm::for_core`] reads it; `None` on the host): the
+/// explicit choice; else, without a target profile, the run core's; else
+/// `None`, which leaves the choice to the profile ([`weight_form_for`]).
+pub fn weight_form_for_run(
+    explicit: Option<WeightForm>,
+    has_target: bool,
+    run_core: Option<&str>,
+) -> Option<WeightForm> {
+    explicit.or_else(|| run_core.filter(|_| !has_target).map(WeightForm::for_core))
+}
+
+/// The memory a firmware image built around the module may use on a
+/// budget's target: `(flash, RAM)` in bytes, each memory less its reserve.
+/// Conservative: a stack measured in the image's RAM is counted although the
+/// RAM reserve already covers one.
+pub fn firmware_budget(b: &Budget) -> (u64, u64) {
+    (
+        b.flash_total.saturating_sub(b.flash_reserve),
+        b.ram_total.saturating_sub(b.ram_reserve),
+    )
 }
 
 /// Generator view of a target: its name and the memory left after the
@@ -225,7 +233,7 @@ pub fn ranges_for(graph: &Graph, src: &RangesSource) -> Result<(Ranges, String),
             })?;
             Ok((
                 r,
-                format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)),
+                format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
             ))
         }
         RangesSource::Images(dir, method) => {
@@ -234,11 +242,11 @@ pub fn ranges_for(graph: &Graph, src: &RangesSource) -> Result<(Ranges, String),
                 method: *method,
                 ..CalibOptions::default()
             };
-            let cal = crate::calibrate::run(graph, &images, &opts)?;
+            let cal = crate::agree::run(graph, &images, &opts)?;
             let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
             Ok((
                 cal.ranges,
-                format!("{:016x}", super::fnv1a(super::FNV_BASIS, &bytes)),
+                format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
             ))
         }
     }
@@ -295,7 +303,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
         weight_form,
         ..GenOptions::default()
     };
-    let generated = super::generate(&q, &schedule, &opt)?;
+    let generated = codegen::generate(&q, &schedule, &opt)?;
     let budget = target.as_ref().map(|t| {
         crate::plan::target::budget_with_weights_file(
             &q,

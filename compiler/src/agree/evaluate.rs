@@ -11,7 +11,7 @@
 //! the float input for `.npy` samples. Per-image sums are combined in image
 //! order, so the figures do not depend on the thread count.
 
-use super::{Calibration, ImageError, ImageSet, OutputAgreement, Report};
+use crate::calibrate::{Calibration, ImageError, ImageSet, OutputAgreement, Report};
 use crate::graph::{Graph, MapId};
 use crate::lower::{
     self, LowerError, LowerOptions, QGraph, QMapId, QParams, SimError, SimInput, Simulator,
@@ -51,26 +51,8 @@ pub struct Evaluation {
     pub skipped: Vec<(usize, String)>,
 }
 
-/// `10 log10(signal / noise)`: infinite for zero noise, and `None` when
-/// the signal is zero too (an all-zero map has no ratio).
-pub fn sqnr_db(signal: f64, noise: f64) -> Option<f64> {
-    if noise == 0.0 {
-        (signal > 0.0).then_some(f64::INFINITY)
-    } else {
-        Some(10.0 * (signal / noise).log10())
-    }
-}
-
-/// Index of the largest value, the first one on ties.
-pub fn argmax(v: &[f32]) -> usize {
-    let mut best = 0;
-    for (i, &x) in v.iter().enumerate() {
-        if x > v[best] {
-            best = i;
-        }
-    }
-    best
-}
+// Under their former paths.
+pub use crate::measure::{argmax_f32 as argmax, sqnr_db};
 
 struct PerImage {
     sums: Vec<(f64, f64)>,
@@ -110,7 +92,7 @@ pub fn evaluate(
         ("held-out", cal.evaluation.clone())
     };
     let reference = Reference::new(graph);
-    let pb = super::progress_bar(indices.len() as u64, progress, "int8 evaluation");
+    let pb = crate::calibrate::progress_bar(indices.len() as u64, progress, "int8 evaluation");
     let results: Vec<(usize, Result<PerImage, EvalError>)> = indices
         .par_iter()
         .map_init(

@@ -1,21 +1,12 @@
-//! What the generator needs from memory planning.
-//!
-//! The code generator does not depend on the planner's types: it takes a
-//! [`Schedule`] (execution order, where every map lives in the arena, which
-//! concatenations must copy, and the two buffer sizes).
+//! What the generator needs from memory planning: a [`Schedule`]
+//! (execution order, where every map lives in the arena, which
+//! concatenations must copy, and the two buffer sizes), the planner's
+//! output in the form the generator reads.
 //! [`Schedule::naive`] gives every map its own region, which is always
 //! valid and lets the generator be tested on its own.
 
+use super::{MapView, Plan};
 use crate::lower::{QGraph, QKernel, StepId};
-
-/// Where one map lives in the arena.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
-pub struct MapView {
-    /// Arena index of element `(0, 0, 0)`.
-    pub offset: usize,
-    /// Pixel stride (`>= c`; larger inside a concatenation region).
-    pub stride: usize,
-}
 
 /// Execution order and memory layout of a [`QGraph`].
 #[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
@@ -60,7 +51,19 @@ impl Schedule {
 }
 
 /// The patch size in bytes the convolutions of `q` need with int8 weights
-/// (see [`crate::plan::patch_bytes`]).
+/// (see [`super::patch_bytes`]).
 pub fn min_patch_bytes(q: &QGraph) -> usize {
-    crate::plan::patch_bytes(q)
+    super::patch_bytes(q)
+}
+
+impl From<&Plan> for Schedule {
+    fn from(p: &Plan) -> Schedule {
+        Schedule {
+            order: p.order.clone(),
+            views: p.map_views.clone(),
+            copy_concats: p.copy_concat.clone(),
+            arena_bytes: p.arena_bytes,
+            patch_bytes: p.patch_bytes,
+        }
+    }
 }

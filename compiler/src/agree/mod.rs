@@ -1,0 +1,127 @@
+//! int8 against float on sample images: what lowering costs, and the
+//! choice among candidate ranges by how well the int8 network agrees with
+//! the float one.
+//!
+//! This stage comes after [`lower`](crate::lower) because it needs the
+//! integer simulator; calibration ([`crate::calibrate`]) only observes the
+//! float network. [`run`] is calibration with `--method auto` resolved;
+//! [`report`] adds the int8 evaluation to a calibration report.
+
+pub mod evaluate;
+
+pub use evaluate::{evaluate, EvalError, Evaluation};
+
+use crate::calibrate::{self, AutoChoice, CalibError, CalibOptions, Calibration, ImageSet, Method};
+use crate::graph::Graph;
+use crate::lower::{LowerError, LowerOptions};
+use crate::ranges::{MapRange, Ranges};
+
+/// Why [`run`] failed.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum AgreeError {
+    /// Calibration itself failed.
+    #[error(transparent)]
+    Calibrate(#[from] CalibError),
+    /// Lowering refused one candidate's ranges.
+    #[error("method auto, trying {method}: {error}")]
+    Lower {
+        /// The candidate method.
+        method: Method,
+        /// Why lowering failed.
+        error: LowerError,
+    },
+    /// Comparing the candidates' int8 networks with float failed.
+    #[error("method auto: {0}")]
+    Agreement(EvalError),
+}
+
+/// Calibrates `graph` on `images` ([`calibrate::run`]) and, under
+/// [`Method::Auto`], keeps the candidate whose int8 network agrees best
+/// with float ([`choose`]): the entry point the CLI, build scripts and the
+/// harness use.
+pub fn run(
+    graph: &Graph,
+    images: &ImageSet,
+    opts: &CalibOptions,
+) -> Result<Calibration, AgreeError> {
+    let mut cal = calibrate::run(graph, images, opts)?;
+    choose(graph, images, &mut cal, opts)?;
+    Ok(cal)
+}
+
+/// Resolves [`Method::Auto`] (nothing to do for other methods): lowers the
+/// network with each candidate's ranges, runs the integer simulator against
+/// the float reference on the calibration images (never the held-out ones,
+/// which stay for an honest evaluation) and keeps the candidate with the
+/// best top-1 agreement.
+pub fn choose(
+    graph: &Graph,
+    images: &ImageSet,
+    cal: &mut Calibration,
+    opts: &CalibOptions,
+) -> Result<(), AgreeError> {
+    let candidates = std::mem::take(&mut cal.candidates);
+    if candidates.is_empty() {
+        return Ok(());
+    }
+    let mut lowered = Vec::with_capacity(candidates.len());
+    for (method, maps, _) in &candidates {
+        let ranges = Ranges {
+            maps: maps.clone(),
+            method: method.to_string(),
+            ..cal.ranges.clone()
+        };
+        lowered.push(
+            crate::lower::lower(graph, &ranges, &LowerOptions::default()).map_err(|error| {
+                AgreeError::Lower {
+                    method: *method,
+                    error,
+                }
+            })?,
+        );
+    }
+    let agree = evaluate::agreements(graph, images, &cal.calibration, &lowered, opts.skip_bad)
+        .map_err(AgreeError::Agreement)?;
+    let mut tried = Vec::new();
+    let mut best: Option<(f64, Method, Vec<MapRange>, Vec<f64>)> = None;
+    for ((method, maps, clipped), a) in candidates.into_iter().zip(agree) {
+        tried.push((method.to_string(), a));
+        if best.as_ref().is_none_or(|b| a > b.0) {
+            best = Some((a, method, maps, clipped));
+        }
+    }
+    let (_, method, maps, clipped) = best.expect("at least one candidate");
+    for (s, c) in cal.stats.iter_mut().zip(clipped) {
+        s.clipped = c;
+    }
+    cal.ranges.maps = maps;
+    cal.ranges.method = format!("auto: {method}");
+    cal.auto = Some(AutoChoice {
+        tried,
+        chosen: method.to_string(),
+        images: cal.calibration.len(),
+    });
+    Ok(())
+}
+
+/// The full report of a calibration: ranges and statistics per map and,
+/// when `int8` is set, the int8 evaluation (lowering with `lower_opts`, the
+/// integer simulator against the float reference; see [`evaluate()`]).
+pub fn report(
+    graph: &Graph,
+    images: &ImageSet,
+    cal: &Calibration,
+    opts: &CalibOptions,
+    int8: Option<&LowerOptions>,
+) -> Result<calibrate::Report, EvalError> {
+    let mut r = calibrate::Report::new(graph, images, cal);
+    match int8 {
+        Some(lo) => {
+            let ev = evaluate(graph, images, cal, lo, opts.skip_bad, opts.progress)?;
+            r.add_evaluation(images, &ev);
+        }
+        None => r.not_evaluated = Some("not requested".into()),
+    }
+    Ok(r)
+}

@@ -1,0 +1,146 @@
+//! What a target core implies for the module: the form its convolution
+//! weights take, and the patch and row buffers that form needs. The planner
+//! sizes the scratch with it and the generator emits it, so both read it
+//! here.
+
+use crate::lower::{QConv, QGraph, QKernel};
+
+/// How convolution weights are stored in the module.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
+pub enum WeightForm {
+    /// int8, as in the weights file; `ingot_rt::conv2d` (every core).
+    #[default]
+    Int8,
+    /// Pairs of `i16` in 32-bit words, rows interleaved in blocks of four
+    /// (`ingot_rt::pair_rows`), for `ingot_rt::conv2d_paired`: cores with
+    /// the DSP extension's 16-bit multiply-accumulates (Cortex-M4, M7) run
+    /// about half the instructions per MAC, for twice the flash of those
+    /// weights. Depthwise and grouped convolutions and linear layers stay
+    /// int8.
+    Pairs,
+}
+
+impl WeightForm {
+    /// The form for a core name as the target profiles spell it
+    /// (`cortex-m4f`, `cortex-m7`, `m4`...): pairs where every variant of
+    /// the core has the DSP extension (Cortex-M4 and M7), int8 elsewhere
+    /// (on the M33 the extension is optional, on the M0+ and M3 absent).
+    pub fn for_core(core: &str) -> WeightForm {
+        let c = core.trim().to_ascii_lowercase();
+        let c = c.strip_prefix("cortex-").unwrap_or(&c);
+        if c.starts_with("m4") || c.starts_with("m7") {
+            WeightForm::Pairs
+        } else {
+            WeightForm::Int8
+        }
+    }
+
+    /// Name in reports and on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            WeightForm::Int8 => "int8",
+            WeightForm::Pairs => "pairs",
+        }
+    }
+}
+
+impl std::str::FromStr for WeightForm {
+    type Err = String;
+    fn from_str(s: &str) -> Result<Self, String> {
+        match s {
+            "int8" => Ok(WeightForm::Int8),
+            "pairs" => Ok(WeightForm::Pairs),
+            _ => Err(format!("unknown weight form `{s}` (int8 or pairs)")),
+        }
+    }
+}
+
+/// True when a convolution can take the paired weight layout (one group).
+pub fn pairs_apply(c: &QConv) -> bool {
+    c.groups == 1
+}
+
+/// `(rows, k)` of a convolution's weights: one row of `k` weights per
+/// output channel.
+pub fn weight_rows(c: &QConv) -> (usize, usize) {
+    (c.out_channels, c.weights.len() / c.out_channels.max(1))
+}
+
+/// Bytes the paired weights of `q` take in flash beyond their int8 bytes in
+/// the weights file (0 for [`WeightForm::Int8`]).
+pub fn pair_growth(q: &QGraph, form: WeightForm) -> usize {
+    if form != WeightForm::Pairs {
+        return 0;
+    }
+    q.steps
+        .iter()
+        .filter_map(|st| match &st.kernel {
+            QKernel::Conv2d(c) if pairs_apply(c) => {
+                let (rows, k) = weight_rows(c);
+                Some(4 * ingot_rt::paired_len(rows, k) - c.weights.len())
+            }
+            _ => None,
+        })
+        .sum()
+}
+
+/// Bytes of convolution patch scratch the graph needs with int8 weights:
+/// the patch holds `ingot_rt::conv_patch_len` elements of `i16`, two bytes
+/// each.
+pub fn patch_bytes(q: &QGraph) -> usize {
+    patch_bytes_for(q, WeightForm::Int8)
+}
+
+/// [`patch_bytes`] for a weight form: with paired weights, a convolution
+/// that can run from whole input rows (`ingot_rt::conv_rows_apply`) gets
+/// room for `ingot_rt::conv_rows_len` elements instead.
+pub fn patch_bytes_for(q: &QGraph, form: WeightForm) -> usize {
+    q.steps
+        .iter()
+        .filter_map(|s| match &s.kernel {
+            QKernel::Conv2d(c) => {
+                let input = q.map(s.inputs[0]).shape;
+                let patch = ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], input.c);
+                let w = c.runtime_window();
+                let rows = if form == WeightForm::Pairs
+                    && pairs_apply(c)
+                    && ingot_rt::conv_rows_apply(&w, c.groups, input.c)
+                {
+                    ingot_rt::conv_rows_len(&w, input.w, input.c)
+                } else {
+                    0
+                };
+                Some(2 * patch.max(rows))
+            }
+            _ => None,
+        })
+        .max()
+        .unwrap_or(0)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::WeightForm;
+
+    /// Cortex-M4 and M7 always have the DSP extension's 16-bit
+    /// multiply-accumulates (common practice: Arm's core summaries); the
+    /// M0+ and M3 never, the M33 only as an option.
+    #[test]
+    fn paired_only_where_every_variant_has_the_dsp_extension() {
+        for core in ["cortex-m4", "cortex-m4f", "Cortex-M7", "m4", "m7"] {
+            assert_eq!(WeightForm::for_core(core), WeightForm::Pairs, "{core}");
+        }
+        for core in [
+            "cortex-m0+",
+            "m0plus",
+            "cortex-m3",
+            "cortex-m33",
+            "xtensa-lx7",
+            "",
+        ] {
+            assert_eq!(WeightForm::for_core(core), WeightForm::Int8, "{core}");
+        }
+        assert_eq!("pairs".parse::<WeightForm>(), Ok(WeightForm::Pairs));
+        assert!("i16".parse::<WeightForm>().is_err());
+    }
+}
