@@ -9,6 +9,7 @@ pub mod check;
 pub mod codegen;
 pub mod frontend;
 pub mod graph;
+pub mod guard;
 pub mod inspect;
 pub mod lower;
 pub mod plan;
