@@ -41,7 +41,25 @@ fn main() {
         Command::Check(args) => cmd::check::run(&args),
     };
     if let Err(e) = result {
-        eprintln!("ingot: error: {e:#}");
+        eprintln!("ingot: error: {}", message(&e));
         std::process::exit(1);
     }
+}
+
+/// The error and its causes joined by `: `, leaving out a cause whose text
+/// is already there: most of ingot's errors print their source themselves,
+/// and `{:#}` would repeat it.
+fn message(e: &anyhow::Error) -> String {
+    let mut s = String::new();
+    for cause in e.chain() {
+        let t = cause.to_string();
+        if s.contains(&t) {
+            continue;
+        }
+        if !s.is_empty() {
+            s.push_str(": ");
+        }
+        s.push_str(&t);
+    }
+    s
 }

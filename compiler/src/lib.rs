@@ -20,6 +20,7 @@ pub mod codegen;
 pub mod driver;
 pub mod frontend;
 pub mod graph;
+pub mod guard;
 pub mod inspect;
 pub mod lower;
 pub mod measure;

@@ -146,19 +146,35 @@ impl Ranges {
 
     /// Writes the file atomically.
     pub fn save(&self, g: &Graph, path: &Path) -> std::io::Result<()> {
-        let text = serde_json::to_string_pretty(&self.to_file(g)).expect("ranges serialise") + "\n";
-        crate::util::write_atomic(path, text.as_bytes())
+        crate::util::write_atomic(path, self.to_json(g).as_bytes())
+    }
+
+    /// The file's text, as [`Ranges::save`] writes it.
+    pub fn to_json(&self, g: &Graph) -> String {
+        serde_json::to_string_pretty(&self.to_file(g)).expect("ranges serialise") + "\n"
     }
 
     /// Reads a ranges file and matches it to `g`. `hash` is the current
     /// [`graph_hash`] of `g`; pass `None` to skip the staleness check.
     pub fn load(g: &Graph, path: &Path, hash: Option<&str>) -> Result<Ranges, RangesError> {
+        let text = crate::guard::read_text_bounded(path, crate::guard::MAX_JSON_BYTES).map_err(
+            |source| RangesError::Io {
+                path: path.display().to_string(),
+                source,
+            },
+        )?;
+        Self::parse(g, &text, path, hash)
+    }
+
+    /// [`Ranges::load`] on the file's text; `path` names it in errors.
+    pub fn parse(
+        g: &Graph,
+        text: &str,
+        path: &Path,
+        hash: Option<&str>,
+    ) -> Result<Ranges, RangesError> {
         let p = path.display().to_string();
-        let text = std::fs::read_to_string(path).map_err(|source| RangesError::Io {
-            path: p.clone(),
-            source,
-        })?;
-        let f: RangesFile = serde_json::from_str(&text).map_err(|e| RangesError::Format {
+        let f: RangesFile = serde_json::from_str(text).map_err(|e| RangesError::Format {
             path: p.clone(),
             message: e.to_string(),
         })?;

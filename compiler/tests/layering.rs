@@ -17,6 +17,7 @@ use std::path::{Path, PathBuf};
 /// of later stages build networks with.
 const ORDER: &[&str] = &[
     "util",
+    "guard",
     "measure",
     "graph",
     "frontend",

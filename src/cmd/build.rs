@@ -54,6 +54,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         weight_form: args.weight_form,
     };
     let c = pipeline::compile(&req)?;
+    super::print_warnings(&c.graph);
     output::write_all(&args.out, &c.files(&args.module), args.force)?;
     let r = c.report();
     println!(

@@ -4,6 +4,7 @@
 use anyhow::Context;
 use ingot_compiler::agree;
 use ingot_compiler::calibrate::{CalibOptions, ImageSet, Method};
+use ingot_compiler::codegen::output;
 use ingot_compiler::lower::LowerOptions;
 use std::path::PathBuf;
 
@@ -35,11 +36,16 @@ pub struct Args {
     /// Print the report as JSON on standard output.
     #[arg(long)]
     pub json: bool,
+    /// Overwrite an existing ranges file that ingot did not write (never
+    /// one of the command's inputs).
+    #[arg(long)]
+    pub force: bool,
 }
 
 /// Runs the command.
 pub fn run(args: &Args) -> anyhow::Result<()> {
     let graph = ingot_compiler::load(&args.graph)?;
+    super::print_warnings(&graph);
     let images = ImageSet::open(&args.images, &graph)?;
     let opts = CalibOptions {
         method: args.method,
@@ -55,11 +61,24 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
             .graph
             .parent()
             .unwrap_or_else(|| std::path::Path::new(""))
-            .join(format!("{}.ranges.json", graph.name())),
+            // The name comes from the graph file: made one plain file-name
+            // component so it cannot point outside the graph's folder.
+            .join(format!(
+                "{}.ranges.json",
+                ingot_compiler::guard::file_stem(graph.name())
+            )),
     };
-    cal.ranges
-        .save(&graph, &out)
-        .with_context(|| format!("{}: cannot write the ranges file", out.display()))?;
+    output::write_file(
+        &out,
+        cal.ranges.to_json(&graph).as_bytes(),
+        &[
+            ("graph file", &args.graph),
+            ("weights file", graph.weights_path()),
+            ("images folder", &args.images),
+        ],
+        args.force,
+    )
+    .context("cannot write the ranges file")?;
     let report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
     if args.json {
         let mut v = serde_json::to_value(&report)?;

@@ -38,13 +38,17 @@ pub struct Args {
     /// Where to run: host, m0plus, m3, m4, m7 or m33.
     #[arg(long, default_value = "host", value_parser = parse_on)]
     pub on: RunOn,
-    /// Largest allowed accuracy drop, percentage points.
-    #[arg(long)]
+    /// Largest allowed accuracy drop, percentage points (a finite number)
+    /// [default: 5]
+    #[arg(long, value_parser = parse_finite)]
     pub max_drop: Option<f64>,
-    /// Smallest allowed top-1 agreement with the float model, fraction.
-    #[arg(long)]
+    /// Smallest allowed top-1 agreement with the float model, fraction (a
+    /// finite number) [default: 0.9]
+    #[arg(long, value_parser = parse_finite)]
     pub min_agreement: Option<f64>,
-    /// Report folder (markdown, JSON, SVG); replaced as a whole.
+    /// Report folder (markdown, JSON, SVG, the module); replaced as a whole
+    /// if an earlier `check --report` wrote it (it holds `.ingot-report`)
+    /// or it is empty, refused otherwise.
     #[arg(long)]
     pub report: Option<PathBuf>,
     /// Check an already generated module folder (`NAME.rs` +
@@ -78,6 +82,23 @@ pub struct Args {
     pub weight_form: Option<WeightForm>,
 }
 
+/// Gates applied when `--max-drop` / `--min-agreement` are not given, so an
+/// int8 module whose accuracy collapsed never reads "pass". Lenient on
+/// purpose: a drop of more than 5 points or agreement below 90% means the
+/// ranges or the model are broken, not that int8 costs a little.
+const DEFAULT_MAX_DROP_PP: f64 = 5.0;
+const DEFAULT_MIN_AGREEMENT: f64 = 0.9;
+
+/// A threshold must be a finite number: NaN compares false with everything
+/// and would switch its gate off.
+fn parse_finite(s: &str) -> Result<f64, String> {
+    match s.trim().parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(v) => Err(format!("{v} is not a finite number")),
+        Err(e) => Err(e.to_string()),
+    }
+}
+
 fn parse_on(s: &str) -> Result<RunOn, String> {
     RunOn::parse(s)
         .ok_or_else(|| format!("unknown core `{s}`: expected host, m0plus, m3, m4, m7 or m33"))
@@ -88,6 +109,7 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
     let Some(module_dir) = &a.module else {
         return run_graph(a);
     };
+    refuse_foreign_report(a)?;
     if a.target.is_some() {
         bail!("--target applies to a GRAPH.json check; with --module pass --flash-budget/--ram-budget");
     }
@@ -128,10 +150,7 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
             flash: a.flash_budget,
             ram: a.ram_budget,
         },
-        thresholds: Thresholds {
-            max_drop_pp: a.max_drop,
-            min_agreement: a.min_agreement,
-        },
+        thresholds: thresholds(a),
     };
     let r = pipeline::run_check(&module, &data, &plan)?;
     if let Some(dir) = &a.report {
@@ -158,16 +177,28 @@ fn timeout(a: &Args, data: &CheckData) -> std::time::Duration {
     std::time::Duration::from_secs(secs)
 }
 
+/// Refuses a `--report` folder ingot may not replace before any work is
+/// done (`write_report` checks again when it writes).
+fn refuse_foreign_report(a: &Args) -> anyhow::Result<()> {
+    match &a.report {
+        Some(d) if !report::replaceable(d) => {
+            Err(ingot_compiler::check::CheckError::ForeignReport(d.clone()).into())
+        }
+        _ => Ok(()),
+    }
+}
+
 fn thresholds(a: &Args) -> Thresholds {
     Thresholds {
-        max_drop_pp: a.max_drop,
-        min_agreement: a.min_agreement,
+        max_drop_pp: Some(a.max_drop.unwrap_or(DEFAULT_MAX_DROP_PP)),
+        min_agreement: Some(a.min_agreement.unwrap_or(DEFAULT_MIN_AGREEMENT)),
     }
 }
 
 /// `ingot check GRAPH.json --images DIR`: calibrate (or read ranges), lower,
 /// plan, generate, build, run, compare, report.
 fn run_graph(a: &Args) -> anyhow::Result<()> {
+    refuse_foreign_report(a)?;
     let graph = a
         .graph
         .as_ref()
@@ -194,14 +225,13 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     };
     let p = prepare::prepare(graph, images, &opts)?;
     let module_name = p.generated.report.module.clone();
-    let staging = std::env::temp_dir().join(format!(
-        "ingot-check-{}-{}",
-        std::process::id(),
-        std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .map(|d| d.as_nanos())
-            .unwrap_or(0)
-    ));
+    // Removed when this function returns, on success or failure; with
+    // --report the module is copied into the report first.
+    let staging_dir = tempfile::Builder::new()
+        .prefix(&format!("ingot-check-{}-", std::process::id()))
+        .tempdir()
+        .context("creating a temporary folder for the module")?;
+    let staging = staging_dir.path().to_path_buf();
     let module = prepare::write_module(&staging, &module_name, &p.generated)?;
     let plan = CheckPlan {
         on: a.on,
@@ -238,12 +268,11 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
                 std::fs::copy(f, &to)
                     .with_context(|| format!("copying {} to {}", f.display(), to.display()))?;
             }
-            let _ = std::fs::remove_dir_all(&staging);
-            dest
+            Some(dest)
         }
-        None => staging,
+        None => None,
     };
-    let text = summary(a, &p, &r, &module_dir, &module_name);
+    let text = summary(a, &p, &r, module_dir.as_deref(), &module_name);
     if let Some(dir) = &a.report {
         std::fs::write(dir.join("summary.txt"), &text)
             .with_context(|| format!("writing {}", dir.join("summary.txt").display()))?;
@@ -264,7 +293,7 @@ fn summary(
     a: &Args,
     p: &prepare::Prepared,
     r: &report::CheckReport,
-    module_dir: &std::path::Path,
+    module_dir: Option<&std::path::Path>,
     module: &str,
 ) -> String {
     use std::fmt::Write as _;
@@ -385,12 +414,22 @@ fn summary(
             );
         }
     }
-    let _ = writeln!(
-        s,
-        "  module:         {}/{module}.rs, {}/{module}.weights.bin",
-        module_dir.display(),
-        module_dir.display()
-    );
+    match module_dir {
+        Some(d) => {
+            let _ = writeln!(
+                s,
+                "  module:         {}/{module}.rs, {}/{module}.weights.bin",
+                d.display(),
+                d.display()
+            );
+        }
+        None => {
+            let _ = writeln!(
+                s,
+                "  module:         not kept (pass --report DIR to keep it)"
+            );
+        }
+    }
     if let Some(d) = &a.report {
         let _ = writeln!(s, "  report:         {}/report.md", d.display());
     }

@@ -16,6 +16,7 @@ pub struct Args {
 /// Loads the graph and prints its report.
 pub fn run(args: &Args) -> anyhow::Result<()> {
     let graph = ingot_compiler::load(&args.graph)?;
+    super::print_warnings(&graph);
     let report = ingot_compiler::inspect::report(&graph);
     if args.json {
         let text = serde_json::to_string_pretty(&report).context("serialising the report")?;

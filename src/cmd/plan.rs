@@ -2,7 +2,7 @@
 
 use anyhow::{bail, Context};
 use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, MapRange, Ranges};
-use ingot_compiler::codegen::WeightForm;
+use ingot_compiler::codegen::{output, WeightForm};
 use ingot_compiler::driver as pipeline;
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{self, PlanOptions, Target};
@@ -31,6 +31,10 @@ pub struct Args {
     /// Print the report as JSON instead of text.
     #[arg(long)]
     pub json: bool,
+    /// Overwrite an existing `--svg` file that ingot did not write (never
+    /// one of the command's inputs).
+    #[arg(long)]
+    pub force: bool,
     /// Convolution weight form the module will use (int8 or pairs; pairs
     /// adds row buffers to the patch scratch) [default: by the --target
     /// core, else int8]
@@ -41,6 +45,7 @@ pub struct Args {
 /// Lowers, plans, prints; fails when the plan does not fit the target.
 pub fn run(args: &Args) -> anyhow::Result<()> {
     let g = ingot_compiler::load(&args.graph)?;
+    super::print_warnings(&g);
     let ranges = match (&args.ranges, &args.images) {
         (Some(p), _) => {
             let hash =
@@ -81,7 +86,16 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     )?;
     let report = plan::report(&q, &p, target.as_ref());
     if let Some(svg) = &args.svg {
-        plan::svg::write(&q, &p, svg).map_err(anyhow::Error::msg)?;
+        let picture = plan::svg::render(&q, &p).map_err(anyhow::Error::msg)?;
+        let mut inputs = vec![
+            ("graph file", args.graph.as_path()),
+            ("weights file", g.weights_path()),
+        ];
+        inputs.extend(args.ranges.as_deref().map(|r| ("ranges file", r)));
+        inputs.extend(args.images.as_deref().map(|d| ("images folder", d)));
+        inputs.extend(args.target.as_deref().map(|t| ("target profile", t)));
+        output::write_file(svg, picture.as_bytes(), &inputs, args.force)
+            .context("cannot write the picture")?;
     }
     if args.json {
         println!(

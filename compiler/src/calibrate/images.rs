@@ -304,21 +304,29 @@ impl ImageSet {
 
 /// Decodes a picture file to `spec`'s colour and size: HWC bytes.
 pub fn load_pixels(path: &Path, spec: &InputSpec) -> Result<Vec<u8>, ImageError> {
+    let bytes =
+        crate::guard::read_bounded(path, crate::guard::MAX_IMAGE_BYTES).map_err(|source| {
+            ImageError::Io {
+                path: path.to_path_buf(),
+                source,
+            }
+        })?;
+    decode_pixels(&bytes, path, spec)
+}
+
+/// [`load_pixels`] on a picture file's bytes; `path` names it in errors.
+pub fn decode_pixels(bytes: &[u8], path: &Path, spec: &InputSpec) -> Result<Vec<u8>, ImageError> {
     let decode = |message: String| ImageError::Decode {
         path: path.to_path_buf(),
         message,
     };
-    let reader = image::ImageReader::open(path)
-        .map_err(|source| ImageError::Io {
-            path: path.to_path_buf(),
-            source,
-        })?
+    let reader = image::ImageReader::new(std::io::Cursor::new(bytes))
         .with_guessed_format()
         .map_err(|source| ImageError::Io {
             path: path.to_path_buf(),
             source,
         })?;
-    let img = reader.decode().map_err(|e| decode(e.to_string()))?;
+    let img = reader.decode().map_err(|e| decode(tidy(&e.to_string())))?;
     let (w, h) = (spec.shape.w as u32, spec.shape.h as u32);
     let resize = |iw: u32, ih: u32| iw != w || ih != h;
     Ok(match spec.color {
@@ -337,6 +345,23 @@ pub fn load_pixels(path: &Path, spec: &InputSpec) -> Result<Vec<u8>, ImageError>
             buf.into_raw()
         }
     })
+}
+
+/// A decoder message as one readable line: the PNG decoder prints chunk
+/// types as a Rust debug dump (`ChunkType { type: IHDR, critical: true,
+/// ... }`), which is reduced to the chunk's name.
+fn tidy(message: &str) -> String {
+    const DUMP: &str = "ChunkType { type: ";
+    let mut s = message.replace(['\n', '\r'], " ");
+    while let Some(start) = s.find(DUMP) {
+        let name: String = s[start + DUMP.len()..]
+            .chars()
+            .take_while(char::is_ascii_alphanumeric)
+            .collect();
+        let end = s[start..].find('}').map_or(s.len(), |e| start + e + 1);
+        s.replace_range(start..end, &name);
+    }
+    s
 }
 
 /// HWC bytes to the `[C, H, W]` float input.
@@ -361,10 +386,13 @@ pub fn preprocess(spec: &InputSpec, pixels: &[u8]) -> Vec<f32> {
 /// Reads a `.npy` file holding little-endian `float32` values in C order,
 /// of shape exactly `[C, H, W]` of `shape`.
 pub fn read_npy(path: &Path, shape: Shape) -> Result<Vec<f32>, ImageError> {
-    let bytes = std::fs::read(path).map_err(|source| ImageError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
+    let bytes =
+        crate::guard::read_bounded(path, crate::guard::MAX_IMAGE_BYTES).map_err(|source| {
+            ImageError::Io {
+                path: path.to_path_buf(),
+                source,
+            }
+        })?;
     parse_npy(&bytes, shape).map_err(|message| ImageError::Npy {
         path: path.to_path_buf(),
         message,
@@ -532,6 +560,17 @@ pub fn npy_bytes(values: &[f32], dims: &[usize]) -> Vec<u8> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Issue 14, defect 10: a corrupt PNG gave a debug dump.
+    #[test]
+    fn decoder_messages_are_one_plain_line() {
+        let m = "Format error decoding Png: CRC error: expected 0x1 have 0x2 while decoding ChunkType { type: IHDR, critical: true, private: false, reserved: false, safecopy: false } chunk.";
+        assert_eq!(
+            tidy(m),
+            "Format error decoding Png: CRC error: expected 0x1 have 0x2 while decoding IHDR chunk."
+        );
+        assert_eq!(tidy("a\nb"), "a b");
+    }
     use image::{GrayImage, Luma, Rgb, RgbImage};
 
     fn spec(c: usize, h: usize, w: usize) -> InputSpec {

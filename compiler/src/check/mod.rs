@@ -223,6 +223,10 @@ pub enum CheckError {
     /// The module directory does not hold a module.
     #[error("module: {0}")]
     Module(String),
+    /// The report folder exists and ingot did not create it, so replacing
+    /// it could delete a user's files.
+    #[error("{0}: exists and is not a report folder written by ingot (no {marker} inside); choose a new folder or remove it yourself", marker = report::REPORT_MARKER)]
+    ForeignReport(PathBuf),
 }
 
 impl CheckError {

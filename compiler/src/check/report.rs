@@ -507,9 +507,32 @@ pub fn confusion_svg(title: &str, m: &[Vec<u64>], labels: &[String]) -> Result<S
     Ok(svg)
 }
 
+/// File ingot writes into every report folder; only a folder holding it
+/// (or an empty one) is ever replaced.
+pub const REPORT_MARKER: &str = ".ingot-report";
+const REPORT_MARKER_TEXT: &str =
+    "This folder was written by `ingot check --report`; the next run with the same --report replaces it as a whole.\n";
+
+/// Whether `dir` may be replaced as a whole: it does not exist, is an empty
+/// folder, or holds the [`REPORT_MARKER`] of an earlier report.
+pub fn replaceable(dir: &Path) -> bool {
+    match std::fs::symlink_metadata(dir) {
+        Err(_) => true,
+        Ok(m) if m.is_dir() => {
+            dir.join(REPORT_MARKER).is_file()
+                || std::fs::read_dir(dir).is_ok_and(|mut d| d.next().is_none())
+        }
+        Ok(_) => false,
+    }
+}
+
 /// Writes `report.md`, `report.json` and the charts into `dir`, replacing
-/// a previous report there as a whole.
+/// a previous report there as a whole. A folder ingot did not write (no
+/// [`REPORT_MARKER`], not empty) is refused and left untouched.
 pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
+    if !replaceable(dir) {
+        return Err(CheckError::ForeignReport(dir.to_path_buf()));
+    }
     let parent = dir
         .parent()
         .filter(|p| !p.as_os_str().is_empty())
@@ -528,6 +551,7 @@ pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
             std::fs::write(stage.join(name), bytes)
                 .map_err(|e| CheckError::io(format!("writing {name}"), e))
         };
+        put(REPORT_MARKER, REPORT_MARKER_TEXT.as_bytes())?;
         put("report.md", markdown(r).as_bytes())?;
         let json = serde_json::to_string_pretty(r).map_err(|e| CheckError::Format {
             file: "report.json".into(),
@@ -666,8 +690,10 @@ mod tests {
         let root = std::env::temp_dir().join(format!("ingot-report-{}", unique_suffix()));
         let dir = root.join("rep");
         std::fs::create_dir_all(&dir).unwrap();
+        write_report(&dir, &sample()).unwrap();
         std::fs::write(dir.join("stale.txt"), "old").unwrap();
         write_report(&dir, &sample()).unwrap();
+        assert!(dir.join(REPORT_MARKER).is_file());
         assert!(
             !dir.join("stale.txt").exists(),
             "old report replaced as a whole"
@@ -690,5 +716,29 @@ mod tests {
             .collect();
         assert_eq!(leftovers.len(), 1, "{leftovers:?}");
         std::fs::remove_dir_all(&root).unwrap();
+    }
+
+    /// Issue 14, defect 1: a folder ingot did not write is never replaced.
+    #[test]
+    fn a_folder_without_the_marker_is_refused_and_kept() {
+        let root = tempfile::tempdir().unwrap();
+        let dir = root.path().join("work");
+        std::fs::create_dir_all(dir.join("src")).unwrap();
+        std::fs::write(dir.join("paper.tex"), "mine").unwrap();
+        std::fs::write(dir.join("src/main.rs"), "fn main() {}").unwrap();
+        let e = write_report(&dir, &sample()).unwrap_err();
+        assert!(matches!(e, CheckError::ForeignReport(_)), "{e}");
+        assert!(e.to_string().contains(REPORT_MARKER), "{e}");
+        assert_eq!(
+            std::fs::read_to_string(dir.join("paper.tex")).unwrap(),
+            "mine"
+        );
+        assert!(dir.join("src/main.rs").is_file());
+        assert!(!dir.join("report.md").exists());
+        // A plain file in the report's place is not replaced either.
+        let f = root.path().join("file");
+        std::fs::write(&f, "x").unwrap();
+        assert!(write_report(&f, &sample()).is_err());
+        assert_eq!(std::fs::read_to_string(&f).unwrap(), "x");
     }
 }

@@ -65,9 +65,13 @@ impl Namer {
 }
 
 /// A name made safe and readable for documentation: control characters
-/// (newlines included) are escaped as `\n`, `\u{..}`, and the Markdown
-/// table separator `|` and backtick are replaced. The result still goes
-/// through a `quote` string literal.
+/// (newlines included) are escaped as `\n`, `\u{..}`, and so is every
+/// other character that does not print ([`is_hidden`]: bidi overrides,
+/// zero-width and other format characters, separators other than the
+/// space, private-use and unassigned code points), which rustc refuses in
+/// comments or which would make the text read differently from what it
+/// holds. The Markdown table separator `|` and backtick are replaced. The
+/// result still goes through a `quote` string literal.
 pub fn for_doc(name: &str) -> String {
     let mut s = String::new();
     for ch in name.chars() {
@@ -75,10 +79,31 @@ pub fn for_doc(name: &str) -> String {
             '|' => s.push('¦'),
             '`' => s.push('\''),
             c if c.is_control() => s.extend(c.escape_default()),
+            c if is_hidden(c) => s.extend(c.escape_unicode()),
             c => s.push(c),
         }
     }
     s
+}
+
+/// Whether `c` does not print as itself: Unicode general categories Cc,
+/// Cf, Cs, Co, Cn, Zl, Zp, and Zs other than the ASCII space. These are the
+/// categories `char::escape_debug` (and so a `quote` string literal)
+/// escapes as well, so docs and literals agree.
+pub fn is_hidden(c: char) -> bool {
+    use unicode_properties::{GeneralCategory as G, UnicodeGeneralCategory};
+    c != ' '
+        && matches!(
+            c.general_category(),
+            G::Control
+                | G::Format
+                | G::Surrogate
+                | G::PrivateUse
+                | G::Unassigned
+                | G::LineSeparator
+                | G::ParagraphSeparator
+                | G::SpaceSeparator
+        )
 }
 
 #[cfg(test)]
@@ -119,6 +144,31 @@ mod tests {
         assert_eq!(n.unique("a-b"), "A_B_2");
         assert_eq!(n.unique("a b"), "A_B_3");
         assert_eq!(n.unique("A_B_2"), "A_B_2_2");
+    }
+
+    /// Issue 14, defect 6. The code points are those rustc's
+    /// `text_direction_codepoint_in_comment` lint names (U+202A..U+202E,
+    /// U+2066..U+2069), plus zero-width and separator characters (Unicode
+    /// general categories Cf, Zl, Zp, Zs; Unicode Standard, chapter 4).
+    #[test]
+    fn doc_names_escape_bidi_and_invisible_characters() {
+        for c in ('\u{202a}'..='\u{202e}')
+            .chain('\u{2066}'..='\u{2069}')
+            .chain([
+                '\u{200b}', '\u{200e}', '\u{200f}', '\u{feff}', '\u{2028}', '\u{a0}', '\u{e000}',
+            ])
+        {
+            let d = for_doc(&format!("a{c}b"));
+            assert!(!d.contains(c), "U+{:04X} left in {d:?}", c as u32);
+            assert_eq!(d, format!("a\\u{{{:x}}}b", c as u32));
+            // A string literal escapes the same characters.
+            assert!(
+                format!("{:?}", c.to_string()).contains("\\u{"),
+                "U+{:04X}",
+                c as u32
+            );
+        }
+        assert_eq!(for_doc("größe λ→ünï"), "größe λ→ünï");
     }
 
     #[test]

@@ -24,6 +24,17 @@ pub enum OutputError {
     /// A file exists that ingot did not write.
     #[error("{0}: exists and was not written by ingot (not listed in {MANIFEST}); pass --force to overwrite it")]
     Foreign(PathBuf),
+    /// The output path is one of the command's own input files.
+    #[error("{path}: is the {what} this command reads; refusing to write over an input")]
+    Input {
+        /// The output path.
+        path: PathBuf,
+        /// Which input it is (`graph file`, `weights file`, ...).
+        what: String,
+    },
+    /// The output path is not a regular file.
+    #[error("{0}: not a regular file; refusing to write over it")]
+    NotFile(PathBuf),
     /// The output path is not a folder.
     #[error("{0}: not a directory")]
     NotDir(PathBuf),
@@ -73,16 +84,18 @@ pub fn write_all(out: &Path, files: &[(String, Vec<u8>)], force: bool) -> Result
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
         _ => PathBuf::from("."),
     };
-    std::fs::create_dir_all(&parent).map_err(io(&parent))?;
+    std::fs::create_dir_all(&parent).map_err(io(out))?;
     let stamp = std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
         .map(|d| d.as_nanos())
         .unwrap_or(0);
     let tmp = parent.join(format!(".ingot-tmp-{}-{stamp}", std::process::id()));
     let result = (|| {
-        std::fs::create_dir(&tmp).map_err(io(&tmp))?;
+        // Errors name the output folder the user chose, not the temporary
+        // folder beside it.
+        std::fs::create_dir(&tmp).map_err(io(out))?;
         for (name, bytes) in files {
-            write_synced(&tmp.join(name), bytes)?;
+            write_synced(&tmp.join(name), bytes).map_err(|e| e.at(&out.join(name)))?;
             listed.insert(name.clone());
         }
         let mut m = String::from(MANIFEST_HEADER);
@@ -91,7 +104,7 @@ pub fn write_all(out: &Path, files: &[(String, Vec<u8>)], force: bool) -> Result
             m.push_str(n);
             m.push('\n');
         }
-        write_synced(&tmp.join(MANIFEST), m.as_bytes())?;
+        write_synced(&tmp.join(MANIFEST), m.as_bytes()).map_err(|e| e.at(&out.join(MANIFEST)))?;
         std::fs::create_dir_all(out).map_err(io(out))?;
         for name in files.iter().map(|(n, _)| n.as_str()).chain([MANIFEST]) {
             std::fs::rename(tmp.join(name), out.join(name)).map_err(io(&out.join(name)))?;
@@ -100,6 +113,72 @@ pub fn write_all(out: &Path, files: &[(String, Vec<u8>)], force: bool) -> Result
     })();
     let _ = std::fs::remove_dir_all(&tmp);
     result
+}
+
+impl OutputError {
+    /// The same error attributed to `path`.
+    fn at(self, path: &Path) -> OutputError {
+        match self {
+            OutputError::Io { source, .. } => OutputError::Io {
+                path: path.to_path_buf(),
+                source,
+            },
+            e => e,
+        }
+    }
+}
+
+/// Writes one file atomically (`util::write_atomic`) under the same rule as
+/// [`write_all`]: never over one of `inputs` (`(what, path)`, compared by
+/// canonical path, so a second name of the same file is caught too), and
+/// over an existing file only if the folder's manifest lists it or `force`.
+/// The file is then added to the manifest of its folder.
+pub fn write_file(
+    path: &Path,
+    bytes: &[u8],
+    inputs: &[(&str, &Path)],
+    force: bool,
+) -> Result<(), OutputError> {
+    for (what, input) in inputs {
+        if crate::guard::same_file(path, input) {
+            return Err(OutputError::Input {
+                path: path.to_path_buf(),
+                what: (*what).to_string(),
+            });
+        }
+    }
+    let dir = match path.parent() {
+        Some(d) if !d.as_os_str().is_empty() => d.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .ok_or_else(|| OutputError::NotFile(path.to_path_buf()))?;
+    if name == MANIFEST {
+        return Err(OutputError::NotFile(path.to_path_buf()));
+    }
+    let mut listed = manifest(&dir);
+    if let Ok(m) = std::fs::symlink_metadata(path) {
+        if !m.is_file() {
+            return Err(OutputError::NotFile(path.to_path_buf()));
+        }
+        if !listed.contains(&name) && !force {
+            return Err(OutputError::Foreign(path.to_path_buf()));
+        }
+    }
+    crate::util::write_atomic(path, bytes).map_err(io(path))?;
+    if listed.insert(name) {
+        let mut m = String::from(MANIFEST_HEADER);
+        m.push('\n');
+        for n in &listed {
+            m.push_str(n);
+            m.push('\n');
+        }
+        let mpath = dir.join(MANIFEST);
+        crate::util::write_atomic(&mpath, m.as_bytes()).map_err(io(&mpath))?;
+    }
+    Ok(())
 }
 
 fn write_synced(path: &Path, bytes: &[u8]) -> Result<(), OutputError> {

@@ -485,7 +485,9 @@ pub fn hostile_names() -> QGraph {
         "r#fn",
         "line\nbreak\r\n// x",
         "größe_ß→λ",
-        "fc",
+        // Bidi overrides and isolates (issue 14, defect 6): rustc refuses
+        // them unescaped in comments and docs.
+        "fc\u{202e}txt.exe\u{2066}",
     ];
     for (s, n) in g.steps.iter_mut().zip(names) {
         s.name = n.to_string();
@@ -502,12 +504,12 @@ pub fn hostile_names() -> QGraph {
     for (m, n) in g.maps.iter_mut().zip(maps) {
         m.name = n.to_string();
     }
-    g.name = "evil */ \"name\"\nnext".into();
+    g.name = "evil */ \"name\"\nnext\u{202e}\u{2069}\u{200b}".into();
     g.labels = vec![
         "\"quoted\"".into(),
         "*/".into(),
         "new\nline".into(),
-        "ünï".into(),
+        "ünï\u{2067}".into(),
         "\\".into(),
     ];
     g

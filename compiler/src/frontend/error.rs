@@ -151,6 +151,19 @@ pub enum LoadError {
         /// What the parser said.
         message: String,
     },
+    /// The commands would need more memory than allowed (an estimate from
+    /// the shapes, made before allocating).
+    #[error("{path}: the feature maps and weights of this graph need about {need} bytes, more than the limit of {limit} bytes (set {env} to raise it)")]
+    TooLarge {
+        /// The graph file.
+        path: PathBuf,
+        /// Estimated bytes.
+        need: u64,
+        /// The limit in force.
+        limit: u64,
+        /// The variable that sets the limit.
+        env: &'static str,
+    },
     /// The input shapes of a layer do not fit its op.
     #[error("{path}: layer `{layer}` ({op}): {message}")]
     Shape {

@@ -9,6 +9,7 @@
 // boxing it would cost readability for nothing.
 #![allow(clippy::result_large_err)]
 
+pub mod checks;
 mod error;
 pub mod format;
 pub mod weights;
@@ -43,25 +44,57 @@ pub const OPS: &[&str] = &[
     "dropout",
 ];
 
+/// Smallest difference allowed between the preprocessed values of pixels 0
+/// and 255. A usual normalisation spreads them over about 1 to 5; a spread
+/// 20 orders of magnitude smaller (a `pixel_scale` of 1e-45, a `std` of
+/// 1e38) leaves the network a constant input, and no int8 scale can
+/// resolve it.
+pub const MIN_INPUT_SPREAD: f32 = 1e-20;
+
 /// Loads and validates a graph file and the weights file it names.
 pub fn load(path: &Path) -> Result<Graph, LoadError> {
-    let text = std::fs::read_to_string(path).map_err(|source| LoadError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
+    let text =
+        crate::guard::read_text_bounded(path, crate::guard::MAX_JSON_BYTES).map_err(|source| {
+            LoadError::Io {
+                path: path.to_path_buf(),
+                source,
+            }
+        })?;
     let file = parse(&text, path)?;
     let weights_path = resolve_weights(path, &file.weights);
     let store = TensorStore::load(&weights_path)?;
-    validate(&file, &store, path)
+    let g = validate(&file, &store, path)?;
+    checks::check_memory(&g, path, crate::guard::memory_limit())?;
+    Ok(g)
 }
 
 /// Parses graph JSON; `path` names it in errors.
 pub fn parse(text: &str, path: &Path) -> Result<GraphFile, LoadError> {
-    serde_json::from_str(text).map_err(|e| LoadError::Json {
-        path: path.to_path_buf(),
-        line: e.line(),
-        column: e.column(),
-        message: e.to_string(),
+    serde_json::from_str(text).map_err(|e| {
+        // serde's message for valid JSON of the wrong kind names our struct
+        // ("invalid length 0, expected struct GraphFile"); say it in words.
+        let kind = match serde_json::from_str::<Value>(text) {
+            Ok(Value::Object(_)) | Err(_) => None,
+            Ok(Value::Array(_)) => Some("an array"),
+            Ok(Value::String(_)) => Some("a string"),
+            Ok(Value::Number(_)) => Some("a number"),
+            Ok(Value::Bool(_)) => Some("a boolean"),
+            Ok(Value::Null) => Some("null"),
+        };
+        match kind {
+            Some(k) => LoadError::Graph {
+                path: path.to_path_buf(),
+                message: format!(
+                    "the file holds {k}; a graph file is one JSON object {{\"format\": \"{FORMAT_V1}\", \"name\": ..., \"layers\": [...], ...}}"
+                ),
+            },
+            None => LoadError::Json {
+                path: path.to_path_buf(),
+                line: e.line(),
+                column: e.column(),
+                message: e.to_string(),
+            },
+        }
     })
 }
 
@@ -309,14 +342,33 @@ impl Validator<'_> {
                 "`pixel_scale` must be positive, got {pixel_scale}"
             )));
         }
-        Ok(InputSpec {
+        let spec = InputSpec {
             name: f.name.clone(),
             shape,
             pixel_scale,
             mean,
             std,
             color,
-        })
+        };
+        // A preprocessing that maps every pixel byte to the same float (a
+        // tiny `pixel_scale`, a huge `std`) or past f32 leaves the network
+        // a constant input: nothing to calibrate or classify.
+        for ch in 0..c {
+            let (lo, hi) = (spec.preprocess(ch, 0), spec.preprocess(ch, 255));
+            if !(lo.is_finite() && hi.is_finite()) {
+                return Err(bad(format!(
+                    "channel {ch}: pixels 0 and 255 become {lo} and {hi}; `pixel_scale`, `mean` and `std` must keep them finite"
+                )));
+            }
+            // `lo`, `hi` are finite here, so the spread is a number.
+            if (hi - lo).abs() < MIN_INPUT_SPREAD {
+                return Err(bad(format!(
+                    "channel {ch}: pixels 0 and 255 become {lo} and {hi} (pixel_scale {pixel_scale}, mean {}, std {}): the input would be constant",
+                    spec.mean[ch], spec.std[ch]
+                )));
+            }
+        }
+        Ok(spec)
     }
 
     fn input_names(&self, cx: &Ctx, lf: &LayerFile) -> Result<Vec<String>, LoadError> {

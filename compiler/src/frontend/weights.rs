@@ -49,10 +49,19 @@ impl TensorStore {
 
     /// Reads a safetensors file.
     pub fn load(path: &Path) -> Result<Self, LoadError> {
-        let bytes = std::fs::read(path).map_err(|source| LoadError::Io {
-            path: path.to_path_buf(),
-            source,
-        })?;
+        let bytes = crate::guard::read_safetensors(path, crate::guard::memory_limit()).map_err(
+            |source| match source.kind() {
+                // The header contradicts the file: malformed, not unreadable.
+                std::io::ErrorKind::InvalidData => LoadError::Safetensors {
+                    weights: path.to_path_buf(),
+                    message: source.to_string(),
+                },
+                _ => LoadError::Io {
+                    path: path.to_path_buf(),
+                    source,
+                },
+            },
+        )?;
         Self::from_bytes(&bytes, path)
     }
 

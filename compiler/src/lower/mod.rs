@@ -34,6 +34,29 @@ use crate::graph::{BatchNorm, Conv2d, Graph, LayerId, MapId, Op, Shape};
 use crate::ranges::Ranges;
 use quant::{activation_clamp, activation_qparams, affine_transform, multiplier, quantize_weights};
 
+/// Most taps an average pool's window may have: `255·taps` (the largest
+/// centred int8 sum) stays below `i32::MAX`, and `ingot-rt`'s
+/// `global_avg_pool` takes fewer than `2^23` pixels.
+pub const MAX_POOL_TAPS: usize = (1 << 23) - 1;
+
+/// Largest magnitude of a calibrated range end. Activations of a float
+/// network trained in f32 are many orders of magnitude below this; ends
+/// like ±1e38 come from broken files, and their scales leave no usable
+/// int8 step.
+pub const MAX_RANGE_ABS: f32 = 1e9;
+
+/// Refuses an average pool whose int32 sum could wrap.
+fn pool_taps(layer: &crate::graph::Layer, taps: usize) -> Result<(), LowerError> {
+    if taps > MAX_POOL_TAPS {
+        return Err(LowerError::PoolOverflow {
+            layer: layer.name.clone(),
+            op: layer.op.kind(),
+            taps,
+        });
+    }
+    Ok(())
+}
+
 /// Choices of the lowering.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct LowerOptions {
@@ -63,7 +86,8 @@ pub enum LowerError {
         /// Maps in the graph.
         expected: usize,
     },
-    /// A range is not finite or has `min > max`.
+    /// A range is not finite, has `min > max`, or an end beyond
+    /// [`MAX_RANGE_ABS`].
     #[error("map `{map}`: calibrated range [{min}, {max}] is not usable")]
     BadRange {
         /// Map name.
@@ -72,6 +96,12 @@ pub enum LowerError {
         min: f32,
         /// Upper end.
         max: f32,
+    },
+    /// Every map's range is a single value.
+    #[error("graph `{graph}`: every calibrated range is a single value (min = max); the calibration images or the ranges file carry no information")]
+    DegenerateRanges {
+        /// Graph name.
+        graph: String,
     },
     /// A scale ratio cannot be expressed as a fixed-point multiplier.
     #[error("layer `{layer}` ({op}): {what} = {value:e} cannot be represented as a fixed-point multiplier (needs 2^-32 <= |M| < 2^30); check the calibrated ranges of its input and output")]
@@ -112,6 +142,17 @@ pub enum LowerError {
         channel: usize,
         /// Worst-case accumulator magnitude.
         worst: i64,
+    },
+    /// An average pool's window is so large that the int32 sum of its
+    /// centred taps (each up to 255 in magnitude) could overflow.
+    #[error("layer `{layer}` ({op}): a window of {taps} taps may sum to 255·{taps}, beyond int32; at most {max} taps are supported (use a smaller window or pool in stages)", max = MAX_POOL_TAPS)]
+    PoolOverflow {
+        /// Layer name.
+        layer: String,
+        /// Op name.
+        op: &'static str,
+        /// Taps in one window (`kh·kw`, or `h·w` for a global pool).
+        taps: usize,
     },
     /// A pattern the int8 lowering does not handle.
     #[error("layer `{layer}` ({op}): {message}")]
@@ -443,13 +484,26 @@ fn check_ranges(g: &Graph, ranges: &Ranges) -> Result<(), LowerError> {
         });
     }
     for (i, r) in ranges.maps.iter().enumerate() {
-        if !(r.min.is_finite() && r.max.is_finite() && r.min <= r.max) {
+        if !(r.min.is_finite()
+            && r.max.is_finite()
+            && r.min <= r.max
+            && r.min.abs() <= MAX_RANGE_ABS
+            && r.max.abs() <= MAX_RANGE_ABS)
+        {
             return Err(LowerError::BadRange {
                 map: g.map_name(MapId(i as u32)).into(),
                 min: r.min,
                 max: r.max,
             });
         }
+    }
+    // Every map collapsed to one value: the ranges say the network computes
+    // a constant (a calibration on blank images, or an edited file); no
+    // int8 network can be built from that.
+    if ranges.maps.iter().all(|r| r.min == r.max) {
+        return Err(LowerError::DegenerateRanges {
+            graph: g.name().into(),
+        });
     }
     Ok(())
 }
@@ -741,6 +795,7 @@ impl Builder<'_> {
                 })
             }
             Op::AvgPool2d(p) => {
+                pool_taps(layer, p.kernel[0].saturating_mul(p.kernel[1]))?;
                 let n = (p.kernel[0] * p.kernel[1]) as f64;
                 let r = self.mult(
                     id,
@@ -757,6 +812,7 @@ impl Builder<'_> {
             }
             Op::GlobalAvgPool => {
                 let s = g.shape(read[0]);
+                pool_taps(layer, s.pixels())?;
                 let r = self.mult(
                     id,
                     "s_in/(s_out·h·w)",

@@ -33,7 +33,7 @@ pub fn render(q: &QGraph, plan: &Plan) -> Result<String, String> {
 /// Renders the plan into an SVG file.
 pub fn write(q: &QGraph, plan: &Plan, path: &Path) -> Result<(), String> {
     let s = render(q, plan)?;
-    std::fs::write(path, s).map_err(|e| format!("{}: {e}", path.display()))
+    crate::util::write_atomic(path, s.as_bytes()).map_err(|e| format!("{}: {e}", path.display()))
 }
 
 fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::error::Error>> {

@@ -116,10 +116,12 @@ impl Target {
     /// Reads and checks a profile.
     pub fn load(path: impl AsRef<Path>) -> Result<Target, TargetError> {
         let path = path.as_ref();
-        let text = std::fs::read_to_string(path).map_err(|source| TargetError::Io {
-            path: path.into(),
-            source,
-        })?;
+        let text = crate::guard::read_text_bounded(path, crate::guard::MAX_JSON_BYTES).map_err(
+            |source| TargetError::Io {
+                path: path.into(),
+                source,
+            },
+        )?;
         Target::parse(&text, path)
     }
 
