@@ -11,6 +11,7 @@
 
 mod error;
 pub mod format;
+pub mod onnx;
 pub mod weights;
 
 pub use error::LoadError;
