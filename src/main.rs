@@ -18,6 +18,8 @@ struct Cli {
 
 #[derive(Debug, Subcommand)]
 enum Command {
+    /// Import a trained network from an ONNX model into ingot's graph format.
+    Import(cmd::import::Args),
     /// Show a graph's layers, shapes, parameters and multiply-accumulates.
     Inspect(cmd::inspect::Args),
     /// Choose int8 ranges from sample images and report what int8 costs.
@@ -34,6 +36,7 @@ enum Command {
 fn main() {
     let cli = Cli::parse();
     let result = match cli.command {
+        Command::Import(args) => cmd::import::run(&args),
         Command::Inspect(args) => cmd::inspect::run(&args),
         Command::Calibrate(args) => cmd::calibrate::run(&args),
         Command::Plan(args) => cmd::plan::run(&args),

@@ -3,6 +3,7 @@
 pub mod build;
 pub mod calibrate;
 pub mod check;
+pub mod import;
 pub mod inspect;
 pub mod plan;
 

@@ -12,6 +12,7 @@
 pub mod checks;
 mod error;
 pub mod format;
+pub mod onnx;
 pub mod weights;
 
 pub use error::LoadError;
