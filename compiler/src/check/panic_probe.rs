@@ -133,7 +133,7 @@ pub fn build_probe(
     files.push((
         "Cargo.toml".into(),
         format!(
-            "[package]\nname = \"{name}\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n[dependencies]\ningot-rt = {{ path = \"{rt}\" }}\n\n[profile.release]\nopt-level = {opt}\ndebug = false\nlto = true\ncodegen-units = 1\npanic = \"abort\"\n\n# Its own workspace: never part of an enclosing one.\n[workspace]\n"
+            "[package]\nname = \"{name}\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n[dependencies]\ningot-rt = {{ path = \"{rt}\" }}\n\n# Generated modules gate `run_traced` behind this feature (off here).\n[features]\ningot-trace = []\n\n[profile.release]\nopt-level = {opt}\ndebug = false\nlto = true\ncodegen-units = 1\npanic = \"abort\"\n\n# Its own workspace: never part of an enclosing one.\n[workspace]\n"
         )
         .into_bytes(),
     ));
