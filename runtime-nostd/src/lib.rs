@@ -167,6 +167,14 @@
 //! The float helpers and [`pair_rows`] (meant for `const` evaluation, where
 //! its panic is a compile error) are outside the inference path.
 //!
+//! One limit: the guarantee is for builds in which this crate is compiled
+//! as one codegen unit or with LTO (the check runners and the probe use
+//! both). With rustc's default of several codegen units and no LTO, up to
+//! five `Zip::new` instances of the dot products' constant-size chunk
+//! iterators can stay out of line in this crate's object code, each with a
+//! division-by-zero check that never fires; firmware without LTO should
+//! set `[profile.release.package.ingot-rt] codegen-units = 1`.
+//!
 //! # Kernels
 //!
 //! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
