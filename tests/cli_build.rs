@@ -201,7 +201,7 @@ fn weight_form_follows_the_target_core_and_the_flag() {
     let text = String::from_utf8_lossy(&o.stdout).to_string();
     assert!(text.contains("pairs form"), "{text}");
     let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
-    assert!(module.contains("ingot_rt::conv2d_paired("));
+    assert!(module.contains("ingot_rt::checked::Conv2dPaired::new("));
     let json: serde_json::Value =
         serde_json::from_slice(&std::fs::read(out.join("model.report.json")).unwrap()).unwrap();
     assert_eq!(json["weight_form"], "pairs");
@@ -212,12 +212,12 @@ fn weight_form_follows_the_target_core_and_the_flag() {
     let (o, out) = build("m4-int8", &["--target", m4, "--weight-form", "int8"]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
-    assert!(!module.contains("conv2d_paired"));
+    assert!(!module.contains("Conv2dPaired"));
     // A Cortex-M0+ part (no DSP extension): int8.
     let (o, out) = build("m0", &["--target", m0]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
-    assert!(!module.contains("conv2d_paired"));
+    assert!(!module.contains("Conv2dPaired"));
     // An unknown form is refused, naming the choices.
     let (o, _) = build("bad", &["--weight-form", "int16"]);
     assert!(!o.status.success());

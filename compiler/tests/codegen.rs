@@ -552,10 +552,10 @@ fn inplace_concat_schedule_matches_interpreter_and_naive() {
     }
     // And the in-place module emits no copy for its concatenations.
     let text = std::fs::read_to_string(b.dir.join("src/dense_inplace.rs")).unwrap();
-    assert!(!text.contains("copy_channels"));
+    assert!(!text.contains("CopyChannels"));
     assert!(std::fs::read_to_string(b.dir.join("src/dense.rs"))
         .unwrap()
-        .contains("copy_channels"));
+        .contains("CopyChannels"));
 }
 
 #[test]
@@ -643,13 +643,16 @@ fn paired_weights_match_int8_bit_for_bit() {
             assert_eq!(p.0, i.0, "{paired} vs {int8}");
         }
         let text = std::fs::read_to_string(b.dir.join(format!("src/{paired}.rs"))).unwrap();
-        assert!(text.contains("ingot_rt::conv2d_paired("), "{paired}");
+        assert!(
+            text.contains("ingot_rt::checked::Conv2dPaired::new("),
+            "{paired}"
+        );
         assert!(text.contains("ingot_rt::pair_rows::<"), "{paired}");
     }
     // Grouped and depthwise convolutions keep int8 weights.
     let text = std::fs::read_to_string(built().dir.join("src/depthwise_pairs.rs")).unwrap();
     assert!(
-        text.contains("ingot_rt::conv2d("),
+        text.contains("ingot_rt::checked::Conv2d::new("),
         "depthwise layers stay int8"
     );
 }

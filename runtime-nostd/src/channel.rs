@@ -2,6 +2,7 @@
 //! own, and the channel copy that assembles a concatenation when producers
 //! could not write into its region directly.
 
+use crate::eltwise::same;
 use crate::{Error, InputTransform, MapRef};
 
 /// Applies a per-channel transform to every element of `input`, writing
@@ -19,36 +20,72 @@ pub fn channel_transform(
     output: MapRef,
     t: &InputTransform<'_>,
 ) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
+    let a = check_transform(arena.len(), input, output, *t)?;
+    transform_run(arena, &a);
+    Ok(())
+}
+
+/// A channel transform that passed [`check_transform`]: running it cannot
+/// fail.
+#[derive(Clone, Copy)]
+pub(crate) struct TransformArgs<'a> {
+    pub(crate) input: MapRef,
+    pub(crate) output: MapRef,
+    pub(crate) t: InputTransform<'a>,
+}
+
+/// The checks of [`channel_transform`] (a `const fn`, see
+/// [`crate::checked`]).
+pub(crate) const fn check_transform<'a>(
+    n: usize,
+    input: MapRef,
+    output: MapRef,
+    t: InputTransform<'a>,
+) -> Result<TransformArgs<'a>, Error> {
+    if let Err(e) = input.check(n) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(n) {
+        return Err(e);
+    }
     if !input.same_shape(&output) {
         return Err(Error::ShapeMismatch);
     }
-    if output != input && !output.is_disjoint(&input) {
+    if !same(&output, &input) && !output.is_disjoint(&input) {
         return Err(Error::Overlap);
     }
     // The pad value does not matter here: validate against the transform's
     // own output zero point.
-    let valid = match t {
+    let valid = match &t {
         InputTransform::Affine(a) => {
-            (-128..=127).contains(&a.zp_out) && t.is_valid_for(input.c, a.zp_out as i8)
+            a.zp_out >= -128 && a.zp_out <= 127 && t.is_valid_for(input.c, a.zp_out as i8)
         }
         InputTransform::Table(_) => t.is_valid_for(input.c, 0),
     };
     if !valid {
         return Err(Error::BadParams);
     }
+    Ok(TransformArgs { input, output, t })
+}
+
+/// Runs a checked channel transform.
+pub(crate) fn transform_run(arena: &mut [i8], a: &TransformArgs<'_>) {
+    let (input, output, t) = (a.input, a.output, &a.t);
     for y in 0..input.h {
         for x in 0..input.w {
             let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
             for ch in 0..input.c {
                 // Read before write: element-wise, so in place is exact.
-                let v = t.apply(ch, arena[src + ch]);
-                arena[dst + ch] = v;
+                let Some(&v) = arena.get(src + ch) else {
+                    return;
+                };
+                let Some(d) = arena.get_mut(dst + ch) else {
+                    return;
+                };
+                *d = t.apply(ch, v);
             }
         }
     }
-    Ok(())
 }
 
 /// Copies every element of `input` to `output` (same shape; typically
@@ -56,24 +93,51 @@ pub fn channel_transform(
 /// [`MapRef::channels`]). When `output == input` the data is already in
 /// place and nothing is done; otherwise the maps must not share elements.
 pub fn copy_channels(arena: &mut [i8], input: MapRef, output: MapRef) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
+    let a = check_copy(arena.len(), input, output)?;
+    copy_run(arena, &a);
+    Ok(())
+}
+
+/// The checks of [`copy_channels`] (a `const fn`, see [`crate::checked`]).
+pub(crate) const fn check_copy(
+    n: usize,
+    input: MapRef,
+    output: MapRef,
+) -> Result<(MapRef, MapRef), Error> {
+    if let Err(e) = input.check(n) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(n) {
+        return Err(e);
+    }
     if !input.same_shape(&output) {
         return Err(Error::ShapeMismatch);
     }
-    if output == input {
-        return Ok(());
-    }
-    if !output.is_disjoint(&input) {
+    if !same(&output, &input) && !output.is_disjoint(&input) {
         return Err(Error::Overlap);
+    }
+    Ok((input, output))
+}
+
+/// Runs a checked channel copy.
+pub(crate) fn copy_run(arena: &mut [i8], &(input, output): &(MapRef, MapRef)) {
+    if input == output {
+        return;
     }
     for y in 0..input.h {
         for x in 0..input.w {
             let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
-            arena.copy_within(src..src + input.c, dst);
+            for ch in 0..input.c {
+                let Some(&v) = arena.get(src + ch) else {
+                    return;
+                };
+                let Some(d) = arena.get_mut(dst + ch) else {
+                    return;
+                };
+                *d = v;
+            }
         }
     }
-    Ok(())
 }
 
 #[cfg(test)]

@@ -5,6 +5,7 @@ use crate::dot::{
     dot2_wide, dot4_pairs, dot4_wide, dot_pairs_few, dot_wide, tail_wide, widen_into,
 };
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
+use core::num::NonZeroUsize;
 
 /// Zero-padding amounts (in input pixels) on each side; may be asymmetric.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
@@ -171,11 +172,14 @@ pub const fn paired_len(rows: usize, k: usize) -> usize {
 /// [`conv2d_paired`] kernel reads, as a fixed-size array (generated modules
 /// evaluate it at compile time). See [`pair_rows_into`] for the layout.
 ///
-/// Panics (a compile error in a `const`) when `N != paired_len(rows, k)` or
-/// `w` is shorter than `rows · k`.
+/// Panics (a compile error in a `const` or `static`, which is where
+/// generated modules call it) when `N != paired_len(rows, k)` or `w` is
+/// shorter than `rows · k`.
 pub const fn pair_rows<const N: usize>(w: &[i8], rows: usize, k: usize) -> [u32; N] {
     let mut v = [0u32; N];
-    pair_rows_into(w, rows, k, &mut v);
+    if pair_rows_into(w, rows, k, &mut v).is_err() {
+        panic!("pair_rows: N must be paired_len(rows, k) and w hold rows * k weights");
+    }
     v
 }
 
@@ -187,17 +191,16 @@ pub const fn pair_rows<const N: usize>(w: &[i8], rows: usize, k: usize) -> [u32;
 /// left over); within a block, word `p` of every row in turn, so a block is
 /// read front to back, one word per row per pair of patch elements.
 ///
-/// Panics when `out.len() != paired_len(rows, k)` or `w` is shorter than
-/// `rows · k`.
-pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) {
-    assert!(
-        out.len() == paired_len(rows, k),
-        "pair_rows: the output must hold paired_len(rows, k) words"
-    );
-    assert!(
-        w.len() >= rows * k,
-        "pair_rows: fewer than rows * k weights"
-    );
+/// [`Error::BufferTooSmall`] (and nothing written) when
+/// `out.len() != paired_len(rows, k)` or `w` is shorter than `rows · k`.
+pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) -> Result<(), Error> {
+    let need = match rows.checked_mul(k) {
+        Some(n) => n,
+        None => return Err(Error::BufferTooSmall),
+    };
+    if out.len() != paired_len(rows, k) || w.len() < need {
+        return Err(Error::BufferTooSmall);
+    }
     let kp = k.div_ceil(2);
     let mut o = 0;
     let mut r0 = 0;
@@ -208,13 +211,21 @@ pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) {
             let mut r = 0;
             while r < block {
                 let row = (r0 + r) * k;
-                let lo = w[row + 2 * p] as i16 as u16 as u32;
-                let hi = if 2 * p + 1 < k {
+                // The explicit comparisons (always true after the length
+                // checks above) let the optimiser drop the bounds checks.
+                let lo = if row + 2 * p < w.len() {
+                    w[row + 2 * p] as i16 as u16 as u32
+                } else {
+                    0
+                };
+                let hi = if 2 * p + 1 < k && row + 2 * p + 1 < w.len() {
                     w[row + 2 * p + 1] as i16 as u16 as u32
                 } else {
                     0
                 };
-                out[o] = lo | (hi << 16);
+                if o < out.len() {
+                    out[o] = lo | (hi << 16);
+                }
                 o += 1;
                 r += 1;
             }
@@ -222,6 +233,7 @@ pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) {
         }
         r0 += block;
     }
+    Ok(())
 }
 
 /// True when [`conv2d_paired`] can run from a buffer of whole input rows
@@ -250,29 +262,49 @@ pub const fn conv_rows_len(w: &Window, w_in: usize, c_in: usize) -> usize {
 
 /// The stored form of a convolution's weights.
 #[derive(Clone, Copy)]
-enum Rows<'a> {
+pub(crate) enum Rows<'a> {
     /// `[C_out][kh][kw][C_in / groups]`, int8.
     Bytes(&'a [i8]),
     /// [`pair_rows`] of the same rows (one group).
     Pairs(&'a [u32]),
 }
 
-/// Checks shared by the convolution paths; returns `(taps, cpg, opg)`.
+/// A convolution call whose maps, buffers and parameters passed
+/// [`check_conv`]: running it cannot fail.
+#[derive(Clone, Copy)]
+pub(crate) struct ConvArgs<'a> {
+    pub(crate) input: MapRef,
+    pub(crate) output: MapRef,
+    pub(crate) rows: Rows<'a>,
+    pub(crate) bias: &'a [i32],
+    pub(crate) requant: &'a [Requant],
+    pub(crate) p: ConvParams,
+    pub(crate) transform: Option<InputTransform<'a>>,
+    /// Paired weights read from a ring of input rows (see [`conv_rows_len`]).
+    pub(crate) ring: bool,
+}
+
+/// Every check of a convolution call, in a `const fn` so that generated
+/// modules run it at compile time ([`crate::checked`]).
 #[allow(clippy::too_many_arguments)]
-fn check_conv(
+pub(crate) const fn check_conv<'a>(
     arena_len: usize,
-    input: &MapRef,
-    output: &MapRef,
-    weights: Rows<'_>,
-    bias: &[i32],
-    requant: &[Requant],
-    p: &ConvParams,
-    transform: Option<&InputTransform<'_>>,
     patch_len: usize,
-) -> Result<(usize, usize, usize), Error> {
-    input.check(arena_len)?;
-    output.check(arena_len)?;
-    if !input.is_disjoint(output) {
+    input: MapRef,
+    output: MapRef,
+    rows: Rows<'a>,
+    bias: &'a [i32],
+    requant: &'a [Requant],
+    p: ConvParams,
+    transform: Option<InputTransform<'a>>,
+) -> Result<ConvArgs<'a>, Error> {
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
+    if !input.is_disjoint(&output) {
         return Err(Error::Overlap);
     }
     let w = &p.window;
@@ -291,13 +323,14 @@ fn check_conv(
     }
     let taps = w.taps();
     let cpg = input.c / p.groups;
-    let opg = output.c / p.groups;
-    let need_w = output
-        .c
-        .checked_mul(taps)
-        .and_then(|v| v.checked_mul(cpg))
-        .ok_or(Error::BadParams)?;
-    let enough = match weights {
+    let need_w = match output.c.checked_mul(taps) {
+        Some(v) => match v.checked_mul(cpg) {
+            Some(v) => v,
+            None => return Err(Error::BadParams),
+        },
+        None => return Err(Error::BadParams),
+    };
+    let enough = match rows {
         Rows::Bytes(w) => w.len() >= need_w,
         Rows::Pairs(w) => {
             if p.groups != 1 {
@@ -313,15 +346,27 @@ fn check_conv(
     {
         return Err(Error::BufferTooSmall);
     }
-    if !requant[..output.c].iter().all(Requant::is_valid) {
+    if !crate::requant::all_valid(requant, output.c) {
         return Err(Error::BadParams);
     }
-    if let Some(t) = transform {
+    if let Some(t) = &transform {
         if !t.is_valid_for(input.c, p.input_zp) {
             return Err(Error::BadParams);
         }
     }
-    Ok((taps, cpg, opg))
+    let ring = matches!(rows, Rows::Pairs(_))
+        && conv_rows_apply(w, p.groups, input.c)
+        && patch_len >= conv_rows_len(w, input.w, input.c);
+    Ok(ConvArgs {
+        input,
+        output,
+        rows,
+        bias,
+        requant,
+        p,
+        transform,
+        ring,
+    })
 }
 
 /// 2-D convolution (any kernel, step, dilation, asymmetric padding, groups,
@@ -353,17 +398,19 @@ pub fn conv2d(
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
 ) -> Result<(), Error> {
-    conv_core(
-        arena,
+    let a = check_conv(
+        arena.len(),
+        patch.len(),
         input,
         output,
         Rows::Bytes(weights),
         bias,
         requant,
-        p,
-        transform,
-        patch,
-    )
+        *p,
+        transform.copied(),
+    )?;
+    conv_run(arena, &a, patch);
+    Ok(())
 }
 
 /// [`conv2d`] with the weights in the paired layout of [`pair_rows`]
@@ -390,60 +437,58 @@ pub fn conv2d_paired(
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
 ) -> Result<(), Error> {
-    conv_core(
-        arena,
+    let a = check_conv(
+        arena.len(),
+        patch.len(),
         input,
         output,
         Rows::Pairs(weights),
         bias,
         requant,
-        p,
-        transform,
-        patch,
-    )
+        *p,
+        transform.copied(),
+    )?;
+    conv_run(arena, &a, patch);
+    Ok(())
 }
 
-#[allow(clippy::too_many_arguments)]
-fn conv_core(
-    arena: &mut [i8],
-    input: MapRef,
-    output: MapRef,
-    rows: Rows<'_>,
-    bias: &[i32],
-    requant: &[Requant],
-    p: &ConvParams,
-    transform: Option<&InputTransform<'_>>,
-    patch: &mut [i16],
-) -> Result<(), Error> {
-    let (taps, cpg, opg) = check_conv(
-        arena.len(),
-        &input,
-        &output,
-        rows,
-        bias,
-        requant,
-        p,
-        transform,
-        patch.len(),
-    )?;
+/// Runs a checked convolution. Every slice is taken with `get`: after
+/// [`check_conv`] none of them can be out of range, and the early returns
+/// (which cannot happen) are what leaves no panic path in the binary.
+pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    let (input, output, p) = (a.input, a.output, &a.p);
+    let transform = a.transform.as_ref();
+    let (bias, requant) = (a.bias, a.requant);
     let w = &p.window;
+    let c_in = input.c;
+    if c_in == 0 || p.groups == 0 {
+        return;
+    }
+    let taps = w.taps();
+    let cpg = c_in / p.groups;
+    let opg = output.c / p.groups;
     // Elements per group segment and per weight row.
     let seg = taps * cpg;
-    if let Rows::Pairs(pw) = rows {
-        if conv_rows_apply(w, p.groups, input.c)
-            && patch.len() >= conv_rows_len(w, input.w, input.c)
-        {
-            conv_rows(
-                arena, &input, &output, pw, bias, requant, p, transform, patch,
-            );
-            return Ok(());
-        }
+    if seg == 0 {
+        return;
+    }
+    if let (Rows::Pairs(pw), true) = (a.rows, a.ring) {
+        conv_rows(
+            arena, &input, &output, pw, bias, requant, p, transform, patch,
+        );
+        return;
     }
     // The paired kernels read the patch in pairs: with one group and an
     // odd length, the element after the last meets a zero weight.
-    let (patch, weights): (_, &[i8]) = match rows {
-        Rows::Bytes(wb) => (&mut patch[..taps * input.c], &wb[..output.c * seg]),
-        Rows::Pairs(_) => (&mut patch[..seg.div_ceil(2) * 2], &[]),
+    let (patch, weights): (_, &[i8]) = match a.rows {
+        Rows::Bytes(wb) => match (patch.get_mut(..taps * c_in), wb.get(..output.c * seg)) {
+            (Some(x), Some(wv)) => (x, wv),
+            _ => return,
+        },
+        Rows::Pairs(_) => match patch.get_mut(..seg.div_ceil(2) * 2) {
+            Some(x) => (x, &[]),
+            None => return,
+        },
     };
     let pointwise = w.kh == 1
         && w.kw == 1
@@ -468,12 +513,22 @@ fn conv_core(
         && w.kw > 1
         && w.step_x == 1
         && w.dilation_x == 1;
+    // Chunk sizes below are written `n.max(1)`: the guards make every one
+    // nonzero, but only the `max` lets the optimiser drop the chunk
+    // iterators' zero-size assertion (a panic path) everywhere.
+    let run = w.kw * cpg;
+    if run == 0 || taps == 0 || (opg == 0 && output.c > 0) {
+        return;
+    }
     for oy in 0..output.h {
         for ox in 0..output.w {
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
                 let src = input.pixel(oy, ox);
-                widen_into(patch, &arena[src..src + input.c]);
+                let Some(s) = arena.get(src..src + c_in) else {
+                    return;
+                };
+                widen_into(patch, s);
             } else if depthwise {
                 gather(
                     arena,
@@ -484,16 +539,23 @@ fn conv_core(
                     1,
                     oy,
                     ox,
-                    input.c,
-                    seg * input.c,
+                    c_in,
+                    seg * c_in,
                     patch,
                 );
             } else if slide && ox > 0 {
                 // The patch holds pixel (oy, ox - 1): keep its last
                 // `kw - 1` columns, gather (and transform) only the new one.
-                let run = w.kw * cpg;
-                for row in patch.chunks_exact_mut(run) {
-                    row.copy_within(cpg.., 0);
+                for row in patch.chunks_exact_mut(run.max(1)) {
+                    // By hand, not `copy_within`: its range checks stay
+                    // in the binary as panic paths.
+                    for i in cpg..row.len() {
+                        if let Some(&v) = row.get(i) {
+                            if let Some(d) = row.get_mut(i - cpg) {
+                                *d = v;
+                            }
+                        }
+                    }
                 }
                 gather_columns(
                     arena,
@@ -513,40 +575,43 @@ fn conv_core(
                 );
             }
             let dst = output.pixel(oy, ox);
-            let out = &mut arena[dst..dst + output.c];
+            let Some(out) = arena.get_mut(dst..dst + output.c) else {
+                return;
+            };
             if depthwise {
-                for (o, (((y, row), &b), rq)) in out
-                    .iter_mut()
-                    .zip(weights.chunks_exact(taps))
-                    .zip(bias)
-                    .zip(requant)
-                    .enumerate()
-                {
-                    let col = &patch[o / opg..];
+                // By hand, not `zip`: see `conv_rows`.
+                let mut rows = weights.chunks_exact(taps.max(1));
+                for (o, ((y, &b), rq)) in out.iter_mut().zip(bias).zip(requant).enumerate() {
+                    let Some(row) = rows.next() else {
+                        return;
+                    };
+                    let Some(col) = patch.get(o.checked_div(opg).unwrap_or(0)..) else {
+                        return;
+                    };
                     let mut acc = b;
-                    for (x, &wv) in col.iter().step_by(input.c).zip(row) {
+                    for (x, &wv) in col.iter().step_by(c_in.max(1)).zip(row) {
                         acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
                     }
                     *y = rq.apply(acc, p.out);
                 }
-            } else if let Rows::Pairs(pw) = rows {
+            } else if let Rows::Pairs(pw) = a.rows {
                 paired_rows(patch, pw, bias, requant, p.out, out);
             } else {
-                for (g, xw) in patch.chunks_exact(seg).enumerate() {
+                for (g, xw) in patch.chunks_exact(seg.max(1)).enumerate() {
                     let o0 = g * opg;
-                    channel_rows(
-                        xw,
-                        &weights[o0 * seg..(o0 + opg) * seg],
-                        &bias[o0..o0 + opg],
-                        &requant[o0..o0 + opg],
-                        p.out,
-                        &mut out[o0..o0 + opg],
-                    );
+                    let (Some(wg), Some(bg), Some(rg), Some(og)) = (
+                        weights.get(o0 * seg..(o0 + opg) * seg),
+                        bias.get(o0..o0 + opg),
+                        requant.get(o0..o0 + opg),
+                        out.get_mut(o0..o0 + opg),
+                    ) else {
+                        return;
+                    };
+                    channel_rows(xw, wg, bg, rg, p.out, og);
                 }
             }
         }
     }
-    Ok(())
 }
 
 /// Output channels of one group for one pixel: four (then two, then one)
@@ -567,12 +632,12 @@ fn channel_rows(
     if seg < 16 {
         // Short windows (first layer on a gray image, tiny kernels): plain
         // scalar rows.
-        for (((o, row), &b), rq) in out
-            .iter_mut()
-            .zip(weights.chunks_exact(seg))
-            .zip(bias)
-            .zip(requant)
-        {
+        // By hand, not `zip`: see `conv_rows`.
+        let mut rows = weights.chunks_exact(seg.max(1));
+        for ((o, &b), rq) in out.iter_mut().zip(bias).zip(requant) {
+            let Some(row) = rows.next() else {
+                return;
+            };
             let mut acc = b;
             for (&x, &w) in xw.iter().zip(row) {
                 acc = acc.wrapping_add((x as i32).wrapping_mul(w as i32));
@@ -582,41 +647,55 @@ fn channel_rows(
         return;
     }
     let tail = seg - seg % 16;
-    let mut quads = weights.chunks_exact(4 * seg);
+    let (Some(xt), true) = (xw.get(tail..), weights.len() >= out.len() * seg) else {
+        return;
+    };
+    let mut quads = weights.chunks_exact((4 * seg).max(1));
     let mut outs = out.chunks_exact_mut(4);
-    let mut k = 0;
-    for (rows, o) in (&mut quads).zip(&mut outs) {
-        let (a, r) = rows.split_at(seg);
-        let (b, r) = r.split_at(seg);
-        let (c, d) = r.split_at(seg);
-        let mut acc = dot4_wide([xw, xw, xw, xw], [a, b, c, d]);
+    let mut bq = bias.chunks_exact(4);
+    let mut rq = requant.chunks_exact(4);
+    for (((rows, o), b), r) in (&mut quads).zip(&mut outs).zip(&mut bq).zip(&mut rq) {
+        let Some((a, rest)) = rows.split_at_checked(seg) else {
+            return;
+        };
+        let Some((b_, rest)) = rest.split_at_checked(seg) else {
+            return;
+        };
+        let Some((c, d)) = rest.split_at_checked(seg) else {
+            return;
+        };
+        let mut acc = dot4_wide([xw, xw, xw, xw], [a, b_, c, d]);
         if tail < seg {
-            for (v, w) in acc.iter_mut().zip([a, b, c, d]) {
-                *v = v.wrapping_add(tail_wide(&xw[tail..], &w[tail..]));
+            for (v, w) in acc.iter_mut().zip([a, b_, c, d]) {
+                if let Some(wt) = w.get(tail..) {
+                    *v = v.wrapping_add(tail_wide(xt, wt));
+                }
             }
         }
-        for j in 0..4 {
-            o[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[j]), out_q);
-        }
-        k += 4;
+        requantize_into(o, &acc, b, r, out_q);
     }
     let rest = quads.remainder();
     let out = outs.into_remainder();
-    let mut j = 0;
-    while j + 2 <= out.len() {
-        let (a, b) = rest[j * seg..(j + 2) * seg].split_at(seg);
-        let mut acc = dot2_wide(xw, xw, a, b);
+    let (bias, requant) = (bq.remainder(), rq.remainder());
+    let mut pairs = rest.chunks_exact((2 * seg).max(1));
+    let mut outs = out.chunks_exact_mut(2);
+    let mut bp = bias.chunks_exact(2);
+    let mut rp = requant.chunks_exact(2);
+    for (((rows, o), b), r) in (&mut pairs).zip(&mut outs).zip(&mut bp).zip(&mut rp) {
+        let Some((a, b_)) = rows.split_at_checked(seg) else {
+            return;
+        };
+        let mut acc = dot2_wide(xw, xw, a, b_);
         if tail < seg {
-            acc[0] = acc[0].wrapping_add(tail_wide(&xw[tail..], &a[tail..]));
-            acc[1] = acc[1].wrapping_add(tail_wide(&xw[tail..], &b[tail..]));
+            if let (Some(at), Some(bt)) = (a.get(tail..), b_.get(tail..)) {
+                acc[0] = acc[0].wrapping_add(tail_wide(xt, at));
+                acc[1] = acc[1].wrapping_add(tail_wide(xt, bt));
+            }
         }
-        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(acc[0]), out_q);
-        out[j + 1] = requant[k + j + 1].apply(bias[k + j + 1].wrapping_add(acc[1]), out_q);
-        j += 2;
+        requantize_into(o, &acc, b, r, out_q);
     }
-    if j < out.len() {
-        let a = &rest[j * seg..(j + 1) * seg];
-        out[j] = requant[k + j].apply(bias[k + j].wrapping_add(dot_wide(xw, a)), out_q);
+    if let ([o], [b], [r]) = (outs.into_remainder(), bp.remainder(), rp.remainder()) {
+        *o = r.apply(b.wrapping_add(dot_wide(xw, pairs.remainder())), out_q);
     }
 }
 
@@ -667,62 +746,92 @@ fn conv_rows(
 ) {
     let w = &p.window;
     let c = input.c;
+    let Some(kh) = NonZeroUsize::new(w.kh) else {
+        return;
+    };
     let row_len = (w.pad.left + input.w + w.pad.right) * c;
-    let ring = &mut ring[..w.kh * row_len];
+    let Some(ring) = ring.get_mut(..w.kh * row_len) else {
+        return;
+    };
     let run = w.kw * c; // elements of one kernel row, even
     let row_pairs = run / 2;
     let kp = w.kh * row_pairs; // pairs per weight row
     let m = output.c;
     let quads = m / 4;
     let left = m % 4;
-    let (head, rest) = weights[..m * kp].split_at(quads * 4 * kp);
+    if kp == 0 || row_pairs == 0 {
+        return;
+    }
+    let Some((head, rest)) = weights
+        .get(..m * kp)
+        .and_then(|v| v.split_at_checked(quads * 4 * kp))
+    else {
+        return;
+    };
+    let (Some(bias), Some(requant)) = (bias.get(..m), requant.get(..m)) else {
+        return;
+    };
+    let (Some((bias4, bias_left)), Some((rq4, rq_left))) = (
+        bias.split_at_checked(quads * 4),
+        requant.split_at_checked(quads * 4),
+    ) else {
+        return;
+    };
     for oy in 0..output.h {
         // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh.
         // Going down one output row brings in one new input row.
         let first = if oy == 0 { 0 } else { oy + w.kh - 1 };
         for yy in first..oy + w.kh {
-            let slot = yy % w.kh;
-            fill_row(
-                arena,
-                input,
-                w,
-                p.input_zp,
-                transform,
-                yy,
-                &mut ring[slot * row_len..(slot + 1) * row_len],
-            );
+            let slot = yy % kh;
+            let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
+                return;
+            };
+            fill_row(arena, input, w, p.input_zp, transform, yy, dst);
         }
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
-            let out = &mut arena[dst..dst + m];
-            for (q, block) in head.chunks_exact(4 * kp).enumerate() {
+            let Some(out) = arena.get_mut(dst..dst + m) else {
+                return;
+            };
+            let Some((out4, out_left)) = out.split_at_mut_checked(quads * 4) else {
+                return;
+            };
+            // Chunk iterators are advanced by hand: `zip` over two of them
+            // can leave a call that divides by the (nonzero) chunk size,
+            // with its division-by-zero panic path.
+            let (mut blocks, mut bs, mut rs) = (
+                head.chunks_exact((4 * kp).max(1)),
+                bias4.chunks_exact(4),
+                rq4.chunks_exact(4),
+            );
+            for o in out4.chunks_exact_mut(4) {
+                let (Some(block), Some(b), Some(r)) = (blocks.next(), bs.next(), rs.next()) else {
+                    return;
+                };
                 let mut acc = [0i32; 4];
-                for ky in 0..w.kh {
-                    let at = ((oy + ky) % w.kh) * row_len + ox * c;
-                    let part = dot4_pairs(
-                        &ring[at..at + run],
-                        &block[4 * ky * row_pairs..4 * (ky + 1) * row_pairs],
-                    );
+                for (ky, wk) in block.chunks_exact((4 * row_pairs).max(1)).enumerate() {
+                    let at = ((oy + ky) % kh) * row_len + ox * c;
+                    let Some(x) = ring.get(at..at + run) else {
+                        return;
+                    };
+                    let part = dot4_pairs(x, wk);
                     for (a, v) in acc.iter_mut().zip(part) {
                         *a = a.wrapping_add(v);
                     }
                 }
-                let o = 4 * q;
-                requantize_into(&mut out[o..], &acc, &bias[o..], &requant[o..], p.out);
+                requantize_into(o, &acc, b, r, p.out);
             }
             if left > 0 {
                 let mut acc = [0i32; 3];
                 let acc = &mut acc[..left];
-                for ky in 0..w.kh {
-                    let at = ((oy + ky) % w.kh) * row_len + ox * c;
-                    dot_pairs_few(
-                        &ring[at..at + run],
-                        &rest[left * ky * row_pairs..left * (ky + 1) * row_pairs],
-                        acc,
-                    );
+                for (ky, wk) in rest.chunks_exact((left * row_pairs).max(1)).enumerate() {
+                    let at = ((oy + ky) % kh) * row_len + ox * c;
+                    let Some(x) = ring.get(at..at + run) else {
+                        return;
+                    };
+                    dot_pairs_few(x, wk, acc);
                 }
-                let o = 4 * quads;
-                requantize_into(&mut out[o..], acc, &bias[o..], &requant[o..], p.out);
+                requantize_into(out_left, acc, bias_left, rq_left, p.out);
             }
         }
     }
@@ -740,18 +849,25 @@ fn fill_row(
     dst: &mut [i16],
 ) {
     let c = input.c;
-    if yy < w.pad.top || yy - w.pad.top >= input.h {
+    if yy < w.pad.top || yy - w.pad.top >= input.h || c == 0 {
         dst.fill(pad_value as i16);
         return;
     }
     let iy = yy - w.pad.top;
-    let (lead, body) = dst.split_at_mut(w.pad.left * c);
+    let Some((lead, body)) = dst.split_at_mut_checked(w.pad.left * c) else {
+        return;
+    };
     lead.fill(pad_value as i16);
-    let (body, tail) = body.split_at_mut(input.w * c);
+    let Some((body, tail)) = body.split_at_mut_checked(input.w * c) else {
+        return;
+    };
     tail.fill(pad_value as i16);
-    for (ix, d) in body.chunks_exact_mut(c).enumerate() {
+    for (ix, d) in body.chunks_exact_mut(c.max(1)).enumerate() {
         let src = input.pixel(iy, ix);
-        load_pixel(d, &arena[src..src + c], transform, 0);
+        let Some(s) = arena.get(src..src + c) else {
+            return;
+        };
+        load_pixel(d, s, transform, 0);
     }
 }
 
@@ -769,19 +885,43 @@ fn paired_rows(
     let kp = xw.len() / 2;
     let m = out.len();
     let quads = m / 4;
-    let (head, rest) = weights[..m * kp].split_at(quads * 4 * kp);
-    for (q, block) in head.chunks_exact(4 * kp).enumerate() {
-        let acc = dot4_pairs(xw, block);
-        let o = 4 * q;
-        requantize_into(&mut out[o..], &acc, &bias[o..], &requant[o..], out_q);
+    if kp == 0 {
+        return;
     }
-    let left = m - 4 * quads;
+    let Some((head, rest)) = weights
+        .get(..m * kp)
+        .and_then(|v| v.split_at_checked(quads * 4 * kp))
+    else {
+        return;
+    };
+    let (Some((bias4, bias_left)), Some((rq4, rq_left))) = (
+        bias.split_at_checked(quads * 4),
+        requant.split_at_checked(quads * 4),
+    ) else {
+        return;
+    };
+    let Some((out4, out_left)) = out.split_at_mut_checked(quads * 4) else {
+        return;
+    };
+    // By hand, not `zip`: see `conv_rows`.
+    let (mut blocks, mut bs, mut rs) = (
+        head.chunks_exact((4 * kp).max(1)),
+        bias4.chunks_exact(4),
+        rq4.chunks_exact(4),
+    );
+    for o in out4.chunks_exact_mut(4) {
+        let (Some(block), Some(b), Some(r)) = (blocks.next(), bs.next(), rs.next()) else {
+            return;
+        };
+        let acc = dot4_pairs(xw, block);
+        requantize_into(o, &acc, b, r, out_q);
+    }
+    let left = m % 4;
     if left > 0 {
         let mut acc = [0i32; 3];
         let acc = &mut acc[..left];
         dot_pairs_few(xw, rest, acc);
-        let o = 4 * quads;
-        requantize_into(&mut out[o..], acc, &bias[o..], &requant[o..], out_q);
+        requantize_into(out_left, acc, bias_left, rq_left, out_q);
     }
 }
 
@@ -809,13 +949,18 @@ fn gather_columns(
         for kx in kx0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
-            let dst = &mut patch[t * c..(t + 1) * c];
+            let Some(dst) = patch.get_mut(t * c..(t + 1) * c) else {
+                return;
+            };
             if !(row_in && xx >= w.pad.left && xx - w.pad.left < input.w) {
                 dst.fill(pad_value as i16);
                 continue;
             }
             let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
-            load_pixel(dst, &arena[src..src + c], transform, 0);
+            let Some(s) = arena.get(src..src + c) else {
+                return;
+            };
+            load_pixel(dst, s, transform, 0);
         }
     }
 }
@@ -859,10 +1004,15 @@ fn gather(
         let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
         if dense_row {
             let run = w.kw * cpg;
-            let dst = &mut patch[ky * run..(ky + 1) * run];
+            let Some(dst) = patch.get_mut(ky * run..(ky + 1) * run) else {
+                return;
+            };
             if row_in {
                 let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
-                widen_into(dst, &arena[src..src + run]);
+                let Some(s) = arena.get(src..src + run) else {
+                    return;
+                };
+                widen_into(dst, s);
             } else {
                 dst.fill(p.input_zp as i16);
             }
@@ -880,13 +1030,18 @@ fn gather(
             };
             for g in 0..groups {
                 let at = g * seg + t * cpg;
-                let dst = &mut patch[at..at + cpg];
+                let Some(dst) = patch.get_mut(at..at + cpg) else {
+                    return;
+                };
                 if !inside {
                     dst.fill(p.input_zp as i16);
                     continue;
                 }
                 let c0 = g * cpg;
-                load_pixel(dst, &arena[src + c0..src + c0 + cpg], transform, c0);
+                let Some(s) = arena.get(src + c0..src + c0 + cpg) else {
+                    return;
+                };
+                load_pixel(dst, s, transform, c0);
             }
         }
     }

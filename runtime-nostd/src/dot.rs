@@ -48,17 +48,16 @@ fn step16(s: &mut [i32; 16], x: &[i16], w: &[i8]) {
 #[inline(never)]
 pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
     let n = w.len();
-    let x = &x[..n];
+    let Some(x) = x.get(..n) else {
+        return 0;
+    };
     let mut s = [0i32; 16];
-    for (xc, wc) in x.chunks_exact(16).zip(w.chunks_exact(16)) {
+    let (xc, wc) = (x.chunks_exact(16), w.chunks_exact(16));
+    let (xr, wr) = (xc.remainder(), wc.remainder());
+    for (xc, wc) in xc.zip(wc) {
         step16(&mut s, xc, wc);
     }
-    let full = n - n % 16;
-    let t = if full < n {
-        tail_wide(&x[full..], &w[full..])
-    } else {
-        0
-    };
+    let t = if !wr.is_empty() { tail_wide(xr, wr) } else { 0 };
     lane_sum(&s).wrapping_add(t)
 }
 
@@ -74,9 +73,9 @@ pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
 #[inline(never)]
 pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2] {
     let n = w0.len();
-    let x0 = &x0[..n];
-    let x1 = &x1[..n];
-    let w1 = &w1[..n];
+    let (Some(x0), Some(x1), Some(w1)) = (x0.get(..n), x1.get(..n), w1.get(..n)) else {
+        return [0; 2];
+    };
     let mut s0 = [0i32; 16];
     let mut s1 = [0i32; 16];
     for (((xa, xb), a), b) in x0
@@ -96,17 +95,24 @@ pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2
 #[cfg(not(target_arch = "arm"))]
 #[inline(never)]
 pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
-    let n = w[0].len();
-    let (x0, x1, x2, x3) = (&x[0][..n], &x[1][..n], &x[2][..n], &x[3][..n]);
-    let (w0, w1, w2, w3) = (w[0], &w[1][..n], &w[2][..n], &w[3][..n]);
+    let n = w[0].len() / 16 * 16;
+    let (Some(x0), Some(x1), Some(x2), Some(x3)) =
+        (x[0].get(..n), x[1].get(..n), x[2].get(..n), x[3].get(..n))
+    else {
+        return [0; 4];
+    };
+    let (Some(w0), Some(w1), Some(w2), Some(w3)) =
+        (w[0].get(..n), w[1].get(..n), w[2].get(..n), w[3].get(..n))
+    else {
+        return [0; 4];
+    };
     let mut s0 = [0i32; 16];
     let mut s1 = [0i32; 16];
     let mut s2 = [0i32; 16];
     let mut s3 = [0i32; 16];
-    let m = n / 16;
-    let (x0, x1, x2, x3) = (&x0[..m * 16], &x1[..m * 16], &x2[..m * 16], &x3[..m * 16]);
-    let (w0, w1, w2, w3) = (&w0[..m * 16], &w1[..m * 16], &w2[..m * 16], &w3[..m * 16]);
-    for i in 0..m {
+    // Host only (Arm uses `scalar`): the indexed form is the one the SLP
+    // vectorizer turns into `pmaddwd`; its bounds checks fold away.
+    for i in 0..n / 16 {
         let r = i * 16..i * 16 + 16;
         step16(&mut s0, &x0[r.clone()], &w0[r.clone()]);
         step16(&mut s1, &x1[r.clone()], &w1[r.clone()]);
@@ -139,16 +145,19 @@ pub(crate) fn tail_wide(x: &[i16], w: &[i8]) -> i32 {
 #[inline(never)]
 pub(crate) fn dot_i8(x: &[i8], w: &[i8]) -> i32 {
     let n = x.len().min(w.len());
-    let (x, w) = (&x[..n], &w[..n]);
+    let (Some(x), Some(w)) = (x.get(..n), w.get(..n)) else {
+        return 0;
+    };
     let mut acc = [0i32; 16];
-    for (xc, wc) in x.chunks_exact(16).zip(w.chunks_exact(16)) {
+    let (xc, wc) = (x.chunks_exact(16), w.chunks_exact(16));
+    let (xr, wr) = (xc.remainder(), wc.remainder());
+    for (xc, wc) in xc.zip(wc) {
         for j in 0..16 {
             acc[j] = acc[j].wrapping_add((xc[j] as i32).wrapping_mul(wc[j] as i32));
         }
     }
     let mut total = lane_sum(&acc);
-    let full = n - n % 16;
-    for (&a, &b) in x[full..].iter().zip(&w[full..]) {
+    for (&a, &b) in xr.iter().zip(wr) {
         total = total.wrapping_add((a as i32).wrapping_mul(b as i32));
     }
     total
@@ -222,6 +231,9 @@ pub(crate) fn dot4_pairs(x: &[i16], w: &[u32]) -> [i32; 4] {
 #[inline(never)]
 pub(crate) fn dot_pairs_few(x: &[i16], w: &[u32], acc: &mut [i32]) {
     let m = acc.len();
+    if m == 0 {
+        return;
+    }
     for (xp, q) in x.chunks_exact(2).zip(w.chunks_exact(m)) {
         let xv = word(xp[0], xp[1]);
         for (s, &wv) in acc.iter_mut().zip(q) {
@@ -240,7 +252,9 @@ pub(crate) mod scalar {
     /// See [`super::dot_wide`] (all `w.len()` terms).
     #[inline(never)]
     pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
-        let x = &x[..w.len()];
+        let Some(x) = x.get(..w.len()) else {
+            return 0;
+        };
         let (mut a, mut b) = (0i32, 0i32);
         let (xc, wc) = (x.chunks_exact(2), w.chunks_exact(2));
         let tail = match (xc.remainder(), wc.remainder()) {
@@ -260,7 +274,9 @@ pub(crate) mod scalar {
         debug_assert!(core::ptr::eq(x0, x1));
         let _ = x1;
         let n = w0.len() - w0.len() % 16;
-        let (x, w0, w1) = (&x0[..n], &w0[..n], &w1[..n]);
+        let (Some(x), Some(w0), Some(w1)) = (x0.get(..n), w0.get(..n), w1.get(..n)) else {
+            return [0; 2];
+        };
         let (mut a, mut b) = (0i32, 0i32);
         for ((xp, p), q) in x
             .chunks_exact(2)
@@ -287,8 +303,15 @@ pub(crate) mod scalar {
     pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
         debug_assert!(x.iter().all(|v| core::ptr::eq(*v, x[0])));
         let n = w[0].len() - w[0].len() % 16;
-        let xs = &x[0][..n];
-        let (w0, w1, w2, w3) = (&w[0][..n], &w[1][..n], &w[2][..n], &w[3][..n]);
+        let (Some(xs), Some(w0), Some(w1), Some(w2), Some(w3)) = (
+            x[0].get(..n),
+            w[0].get(..n),
+            w[1].get(..n),
+            w[2].get(..n),
+            w[3].get(..n),
+        ) else {
+            return [0; 4];
+        };
         let (mut a, mut b, mut c, mut d) = (0i32, 0i32, 0i32, 0i32);
         for ((((xp, p), q), r), t) in xs
             .chunks_exact(2)

@@ -74,9 +74,11 @@ impl AddParams {
     }
 
     /// True when every field is in range.
-    pub fn is_valid(&self) -> bool {
-        (-128..=127).contains(&self.a_zp)
-            && (-128..=127).contains(&self.b_zp)
+    pub const fn is_valid(&self) -> bool {
+        self.a_zp >= -128
+            && self.a_zp <= 127
+            && self.b_zp >= -128
+            && self.b_zp <= 127
             && self.a_rq.is_valid()
             && self.b_rq.is_valid()
             && self.out_rq.is_valid()
@@ -113,27 +115,71 @@ pub fn add(
     output: MapRef,
     p: &AddParams,
 ) -> Result<(), Error> {
-    let n = arena.len();
-    a.check(n)?;
-    b.check(n)?;
-    output.check(n)?;
+    let args = check_add(arena.len(), a, b, output, *p)?;
+    add_run(arena, &args);
+    Ok(())
+}
+
+/// An addition that passed [`check_add`]: running it cannot fail.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct AddArgs {
+    pub(crate) a: MapRef,
+    pub(crate) b: MapRef,
+    pub(crate) output: MapRef,
+    pub(crate) p: AddParams,
+}
+
+/// The checks of [`add`] (a `const fn`, see [`crate::checked`]).
+pub(crate) const fn check_add(
+    n: usize,
+    a: MapRef,
+    b: MapRef,
+    output: MapRef,
+    p: AddParams,
+) -> Result<AddArgs, Error> {
+    if let Err(e) = a.check(n) {
+        return Err(e);
+    }
+    if let Err(e) = b.check(n) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(n) {
+        return Err(e);
+    }
     if !a.same_shape(&b) || !a.same_shape(&output) {
         return Err(Error::ShapeMismatch);
     }
-    if (output != a && !output.is_disjoint(&a)) || (output != b && !output.is_disjoint(&b)) {
+    if (!same(&output, &a) && !output.is_disjoint(&a))
+        || (!same(&output, &b) && !output.is_disjoint(&b))
+    {
         return Err(Error::Overlap);
     }
     if !p.is_valid() {
         return Err(Error::BadParams);
     }
+    Ok(AddArgs { a, b, output, p })
+}
+
+/// `x == y` for maps, in a `const fn`.
+pub(crate) const fn same(x: &MapRef, y: &MapRef) -> bool {
+    x.offset == y.offset && x.h == y.h && x.w == y.w && x.c == y.c && x.stride == y.stride
+}
+
+/// Runs a checked addition.
+pub(crate) fn add_run(arena: &mut [i8], args: &AddArgs) {
+    let (a, b, output, p) = (args.a, args.b, args.output, &args.p);
     for y in 0..a.h {
         for x in 0..a.w {
             let (pa, pb, po) = (a.pixel(y, x), b.pixel(y, x), output.pixel(y, x));
             for ch in 0..a.c {
-                let v = p.apply(arena[pa + ch], arena[pb + ch]);
-                arena[po + ch] = v;
+                let (Some(&va), Some(&vb)) = (arena.get(pa + ch), arena.get(pb + ch)) else {
+                    return;
+                };
+                let Some(d) = arena.get_mut(po + ch) else {
+                    return;
+                };
+                *d = p.apply(va, vb);
             }
         }
     }
-    Ok(())
 }

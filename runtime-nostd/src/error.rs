@@ -20,3 +20,32 @@ pub enum Error {
     /// not support.
     Overlap,
 }
+
+impl Error {
+    /// Stops constant evaluation with the reason: the compile-time refusal
+    /// of a [`checked`](crate::checked) call, whose error rustc reports at
+    /// the `static` being built (named after the step in generated
+    /// modules). Meant for `const` and `static` initializers only, where
+    /// the panic is a compile error; inlined, so it leaves no code in a
+    /// binary that uses it that way.
+    #[inline(always)]
+    pub const fn refuse(self) -> ! {
+        match self {
+            Error::MapOutOfBounds => {
+                panic!("ingot-rt refuses the call: a map reaches past the arena or has stride < c")
+            }
+            Error::ShapeMismatch => {
+                panic!("ingot-rt refuses the call: map shapes do not agree with the parameters")
+            }
+            Error::BufferTooSmall => panic!(
+                "ingot-rt refuses the call: a weight, bias, requantization, table or scratch slice is too short"
+            ),
+            Error::BadParams => {
+                panic!("ingot-rt refuses the call: a parameter is out of its documented range")
+            }
+            Error::Overlap => {
+                panic!("ingot-rt refuses the call: the output shares bytes with an input")
+            }
+        }
+    }
+}

@@ -1,6 +1,7 @@
 //! Getting data into and out of the arena.
 
 use crate::{Error, MapRef};
+use core::num::NonZeroUsize;
 
 /// Quantizes camera bytes into the input map through a per-channel table.
 ///
@@ -14,52 +15,112 @@ pub fn quantize_pixels(
     output: MapRef,
     table: &[i8],
 ) -> Result<(), Error> {
-    output.check(arena.len())?;
-    if pixels.len() < output.len() || table.len() < 256 * output.c {
-        return Err(Error::BufferTooSmall);
+    check_pixels(arena.len(), pixels.len(), output, table)?;
+    pixels_run(pixels, arena, output, table);
+    Ok(())
+}
+
+/// The checks of [`quantize_pixels`] (a `const fn`, see [`crate::checked`]).
+pub(crate) const fn check_pixels(
+    arena_len: usize,
+    pixels_len: usize,
+    output: MapRef,
+    table: &[i8],
+) -> Result<(), Error> {
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
     }
+    match output.c.checked_mul(256) {
+        Some(t) if pixels_len >= output.len() && table.len() >= t => Ok(()),
+        _ => Err(Error::BufferTooSmall),
+    }
+}
+
+/// Runs a checked [`quantize_pixels`].
+pub(crate) fn pixels_run(pixels: &[u8], arena: &mut [i8], output: MapRef, table: &[i8]) {
     if output.c == 0 {
-        return Ok(());
+        return;
     }
-    for (px, src) in pixels[..output.len()].chunks_exact(output.c).enumerate() {
+    // One 256-entry row per channel: a `u8` index into a row is always in
+    // range (the optimiser sees it too; the `get` costs nothing).
+    let rows = table.chunks_exact(256);
+    let Some(pixels) = pixels.get(..output.len()) else {
+        return;
+    };
+    for (px, src) in pixels.chunks_exact(output.c.max(1)).enumerate() {
         let dst = output.offset + px * output.stride;
-        for (ch, (d, &v)) in arena[dst..dst + output.c].iter_mut().zip(src).enumerate() {
-            *d = table[ch * 256 + v as usize];
+        let Some(d) = arena.get_mut(dst..dst + output.c) else {
+            return;
+        };
+        // By hand, not `zip`: see `linear`.
+        let mut rows = rows.clone();
+        for (d, &v) in d.iter_mut().zip(src) {
+            let Some(row) = rows.next() else {
+                return;
+            };
+            if let Some(&q) = row.get(v as usize) {
+                *d = q;
+            }
         }
     }
-    Ok(())
 }
 
 /// Copies an already-quantized HWC int8 input (`h·w·c` values) into a map.
 pub fn copy_in(src: &[i8], arena: &mut [i8], output: MapRef) -> Result<(), Error> {
-    output.check(arena.len())?;
-    if src.len() < output.len() {
+    check_io(arena.len(), src.len(), output)?;
+    copy_in_run(src, arena, output);
+    Ok(())
+}
+
+/// The checks of [`copy_in`] and [`copy_out`]: the map fits the arena and
+/// the dense side holds `h·w·c` values.
+pub(crate) const fn check_io(arena_len: usize, dense_len: usize, map: MapRef) -> Result<(), Error> {
+    if let Err(e) = map.check(arena_len) {
+        return Err(e);
+    }
+    if dense_len < map.len() {
         return Err(Error::BufferTooSmall);
-    }
-    if output.c == 0 {
-        return Ok(());
-    }
-    for (px, s) in src[..output.len()].chunks_exact(output.c).enumerate() {
-        let dst = output.offset + px * output.stride;
-        arena[dst..dst + output.c].copy_from_slice(s);
     }
     Ok(())
 }
 
+/// Runs a checked [`copy_in`].
+pub(crate) fn copy_in_run(src: &[i8], arena: &mut [i8], output: MapRef) {
+    let (Some(src), Some(c)) = (src.get(..output.len()), NonZeroUsize::new(output.c)) else {
+        return;
+    };
+    for (px, s) in src.chunks_exact(c.get()).enumerate() {
+        let dst = output.offset + px * output.stride;
+        let Some(d) = arena.get_mut(dst..dst + output.c) else {
+            return;
+        };
+        for (d, &s) in d.iter_mut().zip(s) {
+            *d = s;
+        }
+    }
+}
+
 /// Copies a map out of the arena into a dense HWC slice (`h·w·c` values).
 pub fn copy_out(arena: &[i8], input: MapRef, dst: &mut [i8]) -> Result<(), Error> {
-    input.check(arena.len())?;
-    if dst.len() < input.len() {
-        return Err(Error::BufferTooSmall);
-    }
-    if input.c == 0 {
-        return Ok(());
-    }
-    for (px, d) in dst[..input.len()].chunks_exact_mut(input.c).enumerate() {
-        let s = input.offset + px * input.stride;
-        d.copy_from_slice(&arena[s..s + input.c]);
-    }
+    check_io(arena.len(), dst.len(), input)?;
+    copy_out_run(arena, input, dst);
     Ok(())
+}
+
+/// Runs a checked [`copy_out`].
+pub(crate) fn copy_out_run(arena: &[i8], input: MapRef, dst: &mut [i8]) {
+    let (Some(dst), Some(c)) = (dst.get_mut(..input.len()), NonZeroUsize::new(input.c)) else {
+        return;
+    };
+    for (px, d) in dst.chunks_exact_mut(c.get()).enumerate() {
+        let s = input.offset + px * input.stride;
+        let Some(s) = arena.get(s..s + input.c) else {
+            return;
+        };
+        for (d, &s) in d.iter_mut().zip(s) {
+            *d = s;
+        }
+    }
 }
 
 /// Index of the largest value; on ties the **first** maximum wins. Returns

@@ -134,6 +134,47 @@
 //! with an all-int8 dot product (each weight is used once, so there is
 //! nothing to amortize a widening over).
 //!
+//! # No panics
+//!
+//! Firmware that panics halts, so nothing the generated `run` reaches can
+//! panic, and this is proven rather than hoped:
+//!
+//! * **Checked once, at compile time.** Every kernel has a checked form in
+//!   [`checked`]: a type built only by a `const fn` that runs all of the
+//!   kernel's checks (maps inside the arena, shapes, buffer lengths,
+//!   parameter ranges) against the arena and patch lengths given as const
+//!   parameters. Generated modules build each call in a `static`, so a call
+//!   this crate would refuse is a compile error of the module
+//!   ([`Error::refuse`]), not an error ignored at run time; `run` takes the
+//!   arena as `&mut [i8; A]` and returns nothing. The `Result`-returning
+//!   functions run the same checks at run time, for the compiler's integer
+//!   simulator, which reports a refusal as an error.
+//! * **No panic path in the bodies.** After the checks, kernel bodies reach
+//!   memory only through iterators, `chunks_exact` with sizes written
+//!   `n.max(1)`, `get`/`get_mut` and checked splits whose `None` arms return
+//!   (unreachable after the checks); divisors are `NonZeroUsize` or checked
+//!   (`checked_div_euclid`); there is no `clamp` (its assertion), no
+//!   `copy_within`/`copy_from_slice` (their range checks) and no formatting.
+//!   Chunk iterators are advanced by hand rather than zipped where `zip`
+//!   could leave a division by the chunk size outside the optimiser's view.
+//! * **Enforced at link time.** ingot's CI (`compiler/tests/panic_never.rs`)
+//!   links the demo's module and every zoo network's module for
+//!   `thumbv7em-none-eabihf` and `thumbv6m-none-eabi` in release with a
+//!   panic handler that calls a function defined nowhere: one surviving
+//!   panic path fails the link. `ingot check --on CORE` reports the count
+//!   ("panic call sites") for the module it checks.
+//!
+//! The float helpers and [`pair_rows`] (meant for `const` evaluation, where
+//! its panic is a compile error) are outside the inference path.
+//!
+//! One limit: the guarantee is for builds in which this crate is compiled
+//! as one codegen unit or with LTO (the check runners and the probe use
+//! both). With rustc's default of several codegen units and no LTO, up to
+//! five `Zip::new` instances of the dot products' constant-size chunk
+//! iterators can stay out of line in this crate's object code, each with a
+//! division-by-zero check that never fires; firmware without LTO should
+//! set `[profile.release.package.ingot-rt] codegen-units = 1`.
+//!
 //! # Kernels
 //!
 //! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
@@ -144,6 +185,7 @@
 #![deny(missing_docs)]
 
 mod channel;
+pub mod checked;
 mod conv;
 mod dot;
 mod eltwise;

@@ -25,8 +25,38 @@ pub fn linear(
     requant: &[Requant],
     out: OutputQuant,
 ) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
+    let a = check_linear(arena.len(), input, output, weights, bias, requant, out)?;
+    linear_run(arena, &a);
+    Ok(())
+}
+
+/// A linear call that passed [`check_linear`]: running it cannot fail.
+#[derive(Clone, Copy)]
+pub(crate) struct LinearArgs<'a> {
+    pub(crate) input: MapRef,
+    pub(crate) output: MapRef,
+    pub(crate) weights: &'a [i8],
+    pub(crate) bias: &'a [i32],
+    pub(crate) requant: &'a [Requant],
+    pub(crate) out: OutputQuant,
+}
+
+/// The checks of [`linear`] (a `const fn`, see [`crate::checked`]).
+pub(crate) const fn check_linear<'a>(
+    arena_len: usize,
+    input: MapRef,
+    output: MapRef,
+    weights: &'a [i8],
+    bias: &'a [i32],
+    requant: &'a [Requant],
+    out: OutputQuant,
+) -> Result<LinearArgs<'a>, Error> {
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
     if !input.is_disjoint(&output) {
         return Err(Error::Overlap);
     }
@@ -35,36 +65,68 @@ pub fn linear(
     }
     let n_in = input.len();
     let n_out = output.len();
-    let need_w = n_in.checked_mul(n_out).ok_or(Error::BadParams)?;
+    let need_w = match n_in.checked_mul(n_out) {
+        Some(v) => v,
+        None => return Err(Error::BadParams),
+    };
     if weights.len() < need_w || bias.len() < n_out || requant.len() < n_out {
         return Err(Error::BufferTooSmall);
     }
-    if !requant[..n_out].iter().all(Requant::is_valid) {
+    if !crate::requant::all_valid(requant, n_out) {
         return Err(Error::BadParams);
     }
     if n_in == 0 {
         return Err(Error::ShapeMismatch);
     }
+    Ok(LinearArgs {
+        input,
+        output,
+        weights,
+        bias,
+        requant,
+        out,
+    })
+}
+
+/// Runs a checked linear layer.
+pub(crate) fn linear_run(arena: &mut [i8], a: &LinearArgs<'_>) {
+    let (input, output) = (a.input, a.output);
+    let n_in = input.len();
+    if n_in == 0 || input.c == 0 {
+        return;
+    }
     let contiguous = input.stride == input.c || input.pixels() == 1;
-    let mut o = 0;
+    // Advanced by hand, not zipped: `zip` over a chunk iterator can leave
+    // a call that divides by the chunk size, a division-by-zero panic path.
+    let mut rows = a.weights.chunks_exact(n_in.max(1));
+    let mut params = a.bias.iter().zip(a.requant);
     for oy in 0..output.h {
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
             for oc in 0..output.c {
-                let row = &weights[o * n_in..(o + 1) * n_in];
-                let mut acc = bias[o];
+                let (Some(row), Some((&b, rq))) = (rows.next(), params.next()) else {
+                    return;
+                };
+                let mut acc = b;
                 if contiguous {
-                    acc = acc.wrapping_add(dot_i8(&arena[input.offset..input.offset + n_in], row));
+                    let Some(x) = arena.get(input.offset..input.offset + n_in) else {
+                        return;
+                    };
+                    acc = acc.wrapping_add(dot_i8(x, row));
                 } else {
-                    for (px, wrow) in row.chunks_exact(input.c).enumerate() {
+                    for (px, wrow) in row.chunks_exact(input.c.max(1)).enumerate() {
                         let s = input.offset + px * input.stride;
-                        acc = acc.wrapping_add(dot_i8(&arena[s..s + input.c], wrow));
+                        let Some(x) = arena.get(s..s + input.c) else {
+                            return;
+                        };
+                        acc = acc.wrapping_add(dot_i8(x, wrow));
                     }
                 }
-                arena[dst + oc] = requant[o].apply(acc, out);
-                o += 1;
+                let Some(d) = arena.get_mut(dst + oc) else {
+                    return;
+                };
+                *d = rq.apply(acc, a.out);
             }
         }
     }
-    Ok(())
 }

@@ -18,21 +18,38 @@ pub struct PoolQuant {
 }
 
 impl PoolQuant {
-    fn is_valid(&self) -> bool {
+    const fn is_valid(&self) -> bool {
         self.out.is_valid()
-            && (-128..=127).contains(&self.in_zp)
-            && self.requant.is_none_or(|r| r.is_valid())
+            && self.in_zp >= -128
+            && self.in_zp <= 127
+            && match self.requant {
+                Some(r) => r.is_valid(),
+                None => true,
+            }
     }
 }
 
-fn check_pool(
+/// A pooling call that passed its checks: running it cannot fail.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct PoolArgs {
+    pub(crate) input: MapRef,
+    pub(crate) output: MapRef,
+    pub(crate) window: Window,
+    pub(crate) q: PoolQuant,
+}
+
+const fn check_pool(
     arena_len: usize,
     input: &MapRef,
     output: &MapRef,
     q: &PoolQuant,
 ) -> Result<(), Error> {
-    input.check(arena_len)?;
-    output.check(arena_len)?;
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
     if !input.is_disjoint(output) {
         return Err(Error::Overlap);
     }
@@ -45,8 +62,59 @@ fn check_pool(
     Ok(())
 }
 
+/// The checks of [`max_pool2d`] and [`avg_pool2d`] (a `const fn`, see
+/// [`crate::checked`]).
+pub(crate) const fn check_window_pool(
+    arena_len: usize,
+    input: MapRef,
+    output: MapRef,
+    window: Window,
+    q: PoolQuant,
+) -> Result<PoolArgs, Error> {
+    if let Err(e) = check_pool(arena_len, &input, &output, &q) {
+        return Err(e);
+    }
+    if window.dilation_y == 0 || window.dilation_x == 0 {
+        return Err(Error::BadParams);
+    }
+    if !window.matches(input.h, input.w, output.h, output.w) {
+        return Err(Error::ShapeMismatch);
+    }
+    Ok(PoolArgs {
+        input,
+        output,
+        window,
+        q,
+    })
+}
+
+/// The checks of [`global_avg_pool`] (a `const fn`, see [`crate::checked`]).
+pub(crate) const fn check_global_pool(
+    arena_len: usize,
+    input: MapRef,
+    output: MapRef,
+    q: PoolQuant,
+) -> Result<PoolArgs, Error> {
+    if let Err(e) = check_pool(arena_len, &input, &output, &q) {
+        return Err(e);
+    }
+    if output.h != 1 || output.w != 1 || input.pixels() == 0 {
+        return Err(Error::ShapeMismatch);
+    }
+    if input.pixels() >= 1 << 23 {
+        return Err(Error::BadParams);
+    }
+    Ok(PoolArgs {
+        input,
+        output,
+        window: Window::square(1, 1, 0),
+        q,
+    })
+}
+
 /// Rounded division `round(s / n)` with ties toward +∞:
-/// `floor((2s + n) / (2n))`, `n > 0`.
+/// `floor((2s + n) / (2n))`, `n > 0` (0 for `n <= 0`, which no kernel
+/// passes).
 #[inline(always)]
 pub const fn div_round(s: i64, n: i64) -> i64 {
     if n > 0 && n & (n - 1) == 0 {
@@ -55,7 +123,10 @@ pub const fn div_round(s: i64, n: i64) -> i64 {
         // costs about a hundred instructions on a 32-bit core.
         (2 * s + n) >> (n.trailing_zeros() + 1)
     } else {
-        (2 * s + n).div_euclid(2 * n)
+        match (2 * s + n).checked_div_euclid(2 * n) {
+            Some(v) => v,
+            None => 0,
+        }
     }
 }
 
@@ -73,14 +144,14 @@ pub fn max_pool2d(
     window: &Window,
     q: &PoolQuant,
 ) -> Result<(), Error> {
-    check_pool(arena.len(), &input, &output, q)?;
-    if window.dilation_y == 0 || window.dilation_x == 0 {
-        return Err(Error::BadParams);
-    }
-    if !window.matches(input.h, input.w, output.h, output.w) {
-        return Err(Error::ShapeMismatch);
-    }
-    let w = window;
+    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
+    max_pool_run(arena, &a);
+    Ok(())
+}
+
+/// Runs a checked max pooling.
+pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs) {
+    let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
     for oy in 0..output.h {
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
@@ -96,23 +167,28 @@ pub fn max_pool2d(
                         if xx < w.pad.left || xx - w.pad.left >= input.w {
                             continue;
                         }
-                        let v = arena[input.index(yy - w.pad.top, xx - w.pad.left, ch)] as i32;
-                        if v > m {
-                            m = v;
+                        let Some(&v) = arena.get(input.index(yy - w.pad.top, xx - w.pad.left, ch))
+                        else {
+                            return;
+                        };
+                        if v as i32 > m {
+                            m = v as i32;
                         }
                     }
                 }
                 if m == i32::MIN {
                     m = q.in_zp;
                 }
-                arena[dst + ch] = match q.requant {
+                let Some(d) = arena.get_mut(dst + ch) else {
+                    return;
+                };
+                *d = match q.requant {
                     None => q.out.finish(m as i64 - q.out.zero_point as i64),
                     Some(r) => r.apply(m - q.in_zp, q.out),
                 };
             }
         }
     }
-    Ok(())
 }
 
 /// Average pooling. Every one of the `kh·kw` taps counts; padded taps are
@@ -130,14 +206,14 @@ pub fn avg_pool2d(
     window: &Window,
     q: &PoolQuant,
 ) -> Result<(), Error> {
-    check_pool(arena.len(), &input, &output, q)?;
-    if window.dilation_y == 0 || window.dilation_x == 0 {
-        return Err(Error::BadParams);
-    }
-    if !window.matches(input.h, input.w, output.h, output.w) {
-        return Err(Error::ShapeMismatch);
-    }
-    let w = window;
+    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
+    avg_pool_run(arena, &a);
+    Ok(())
+}
+
+/// Runs a checked average pooling.
+pub(crate) fn avg_pool_run(arena: &mut [i8], a: &PoolArgs) {
+    let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
     let n = w.taps() as i64;
     for oy in 0..output.h {
         for ox in 0..output.w {
@@ -154,18 +230,23 @@ pub fn avg_pool2d(
                         if xx < w.pad.left || xx - w.pad.left >= input.w {
                             continue;
                         }
-                        let v = arena[input.index(yy - w.pad.top, xx - w.pad.left, ch)] as i32;
-                        s = s.wrapping_add(v - q.in_zp);
+                        let Some(&v) = arena.get(input.index(yy - w.pad.top, xx - w.pad.left, ch))
+                        else {
+                            return;
+                        };
+                        s = s.wrapping_add(v as i32 - q.in_zp);
                     }
                 }
-                arena[dst + ch] = match q.requant {
+                let Some(d) = arena.get_mut(dst + ch) else {
+                    return;
+                };
+                *d = match q.requant {
                     None => q.out.finish(div_round(s as i64, n)),
                     Some(r) => r.apply(s, q.out),
                 };
             }
         }
     }
-    Ok(())
 }
 
 /// Global average pooling to a `1×1×C` output: average pooling with the
@@ -178,23 +259,29 @@ pub fn global_avg_pool(
     output: MapRef,
     q: &PoolQuant,
 ) -> Result<(), Error> {
-    check_pool(arena.len(), &input, &output, q)?;
-    if output.h != 1 || output.w != 1 || input.pixels() == 0 {
-        return Err(Error::ShapeMismatch);
-    }
-    if input.pixels() >= 1 << 23 {
-        return Err(Error::BadParams);
-    }
+    let a = check_global_pool(arena.len(), input, output, *q)?;
+    global_pool_run(arena, &a);
+    Ok(())
+}
+
+/// Runs a checked global average pooling.
+pub(crate) fn global_pool_run(arena: &mut [i8], a: &PoolArgs) {
+    let (input, output, q) = (a.input, a.output, &a.q);
     let n = input.pixels() as i64;
     for ch in 0..input.c {
         let mut s: i32 = 0;
         for px in 0..input.pixels() {
-            s += arena[input.offset + px * input.stride + ch] as i32 - q.in_zp;
+            let Some(&v) = arena.get(input.offset + px * input.stride + ch) else {
+                return;
+            };
+            s += v as i32 - q.in_zp;
         }
-        arena[output.offset + ch] = match q.requant {
+        let Some(d) = arena.get_mut(output.offset + ch) else {
+            return;
+        };
+        *d = match q.requant {
             None => q.out.finish(div_round(s as i64, n)),
             Some(r) => r.apply(s, q.out),
         };
     }
-    Ok(())
 }

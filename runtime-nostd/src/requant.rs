@@ -167,6 +167,22 @@ impl Requant {
     }
 }
 
+/// True when the first `n` multipliers exist and are all valid (a `const
+/// fn`, so generated modules can run it at compile time).
+pub(crate) const fn all_valid(requant: &[Requant], n: usize) -> bool {
+    if requant.len() < n {
+        return false;
+    }
+    let mut i = 0;
+    while i < n {
+        if !requant[i].is_valid() {
+            return false;
+        }
+        i += 1;
+    }
+    true
+}
+
 /// Output zero point and fused activation clamp.
 ///
 /// Every kernel finishes an output value as

@@ -48,16 +48,22 @@ pub enum InputTransform<'a> {
 }
 
 impl AffineTransform<'_> {
-    /// Transform one value of input channel `ch` (see the type docs).
+    /// Transform one value of input channel `ch` (see the type docs). A
+    /// channel without parameters (`ch >= mul.len()`, which a validated
+    /// transform never sees) transforms as `mul = add = 0`.
     #[inline(always)]
     pub fn apply(&self, ch: usize, x: i8) -> i8 {
-        self.apply_with(self.mul[ch], self.add[ch], self.rounding(), x)
+        let (m, a) = match (self.mul.get(ch), self.add.get(ch)) {
+            (Some(&m), Some(&a)) => (m, a),
+            _ => (0, 0),
+        };
+        self.apply_with(m, a, self.rounding(), x)
     }
 
     /// `2^(shift-1)`, or 0 without a shift: adding it before the shift
     /// rounds half up, and `(t + 0) >> 0 == t`.
     #[inline(always)]
-    pub fn rounding(&self) -> i32 {
+    pub const fn rounding(&self) -> i32 {
         if self.shift > 0 {
             1 << (self.shift - 1)
         } else {
@@ -72,63 +78,96 @@ impl AffineTransform<'_> {
     pub fn apply_with(&self, mul: i32, add: i32, rounding: i32, x: i8) -> i8 {
         let t = (x as i32 - self.zp_in).wrapping_mul(mul) + add;
         let r = ((t + rounding) >> self.shift) + self.zp_out;
-        r.clamp(self.min as i32, self.max as i32) as i8
+        // Not `clamp`: its `min <= max` assertion is a panic path, and the
+        // checks already guarantee it.
+        r.max(self.min as i32).min(self.max as i32) as i8
     }
 
     /// Transforms `src` (channels `0..src.len()` of one pixel) into `dst`,
-    /// widened.
+    /// widened. Does nothing when `dst`, `mul` or `add` is shorter than
+    /// `src` (a validated transform never is).
     #[inline(always)]
     pub fn apply_pixel(&self, dst: &mut [i16], src: &[i8]) {
         let n = src.len();
         let rounding = self.rounding();
-        for ((d, &v), (&m, &a)) in dst[..n]
-            .iter_mut()
-            .zip(src)
-            .zip(self.mul[..n].iter().zip(&self.add[..n]))
-        {
+        let (Some(dst), Some(mul), Some(add)) =
+            (dst.get_mut(..n), self.mul.get(..n), self.add.get(..n))
+        else {
+            return;
+        };
+        for ((d, &v), (&m, &a)) in dst.iter_mut().zip(src).zip(mul.iter().zip(add)) {
             crate::dot::no_unroll();
             *d = self.apply_with(m, a, rounding, v) as i16;
         }
     }
 
-    /// True when channel `ch`'s parameters keep [`apply`](Self::apply)
-    /// inside i32 (see the type docs).
+    /// True when channel `ch`'s parameters exist and keep
+    /// [`apply`](Self::apply) inside i32 (see the type docs).
     pub fn fits_i32(&self, ch: usize) -> bool {
+        match (self.mul.get(ch), self.add.get(ch)) {
+            (Some(&m), Some(&a)) => self.fits(m, a),
+            _ => false,
+        }
+    }
+
+    /// [`fits_i32`](Self::fits_i32) for one channel's `mul` and `add`.
+    const fn fits(&self, mul: i32, add: i32) -> bool {
         // The shift is checked first: `rounding` would overflow for a
         // shift of 32 or more.
         self.shift <= 29
-            && 255 * (self.mul[ch] as i64).abs()
-                + (self.add[ch] as i64).abs()
-                + i64::from(self.rounding())
-                < 1 << 30
+            && 255 * (mul as i64).abs() + (add as i64).abs() + (self.rounding() as i64) < 1 << 30
+    }
+
+    /// True when the first `channels` channels all fit (see
+    /// [`fits_i32`](Self::fits_i32)).
+    const fn all_fit(&self, channels: usize) -> bool {
+        if self.mul.len() < channels || self.add.len() < channels {
+            return false;
+        }
+        let mut ch = 0;
+        while ch < channels {
+            if !self.fits(self.mul[ch], self.add[ch]) {
+                return false;
+            }
+            ch += 1;
+        }
+        true
     }
 }
 
 impl InputTransform<'_> {
     /// Transform one value of input channel `ch`.
+    /// Out-of-range channels (never seen by a validated transform) give the
+    /// value 0 from a table.
     #[inline(always)]
     pub fn apply(&self, ch: usize, x: i8) -> i8 {
         match self {
             InputTransform::Affine(a) => a.apply(ch, x),
-            InputTransform::Table(t) => t[ch * 256 + (x as u8) as usize],
+            InputTransform::Table(t) => match t.get(ch * 256 + (x as u8) as usize) {
+                Some(&v) => v,
+                None => 0,
+            },
         }
     }
 
     /// True when the per-channel data covers `channels` input channels and
     /// the parameters are in range (`pad_value` is the convolution's
     /// `input_zp`, which an affine transform's `zp_out` must equal).
-    pub fn is_valid_for(&self, channels: usize, pad_value: i8) -> bool {
+    pub const fn is_valid_for(&self, channels: usize, pad_value: i8) -> bool {
         match self {
             InputTransform::Affine(a) => {
-                a.mul.len() >= channels
-                    && a.add.len() >= channels
-                    && a.min <= a.max
+                a.min <= a.max
                     && a.zp_out == pad_value as i32
-                    && (-255..=255).contains(&a.zp_out)
-                    && (-128..=127).contains(&a.zp_in)
-                    && (0..channels).all(|ch| a.fits_i32(ch))
+                    && a.zp_out >= -255
+                    && a.zp_out <= 255
+                    && a.zp_in >= -128
+                    && a.zp_in <= 127
+                    && a.all_fit(channels)
             }
-            InputTransform::Table(t) => channels.checked_mul(256).is_some_and(|n| t.len() >= n),
+            InputTransform::Table(t) => match channels.checked_mul(256) {
+                Some(n) => t.len() >= n,
+                None => false,
+            },
         }
     }
 }

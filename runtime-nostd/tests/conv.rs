@@ -244,7 +244,7 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
         // row path, where it applies).
         let k = p.kh * p.kw * c.cin;
         let mut pairs = vec![0u32; paired_len(c.cout, k)];
-        pair_rows_into(&weights, c.cout, k, &mut pairs);
+        pair_rows_into(&weights, c.cout, k, &mut pairs).expect("pair_rows_into: lengths agree");
         let params = ConvParams {
             window: win,
             groups: 1,

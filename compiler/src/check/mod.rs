@@ -11,6 +11,8 @@
 //! * [`icount`] calibrates SysTick ticks to executed instructions with a
 //!   known instruction sequence.
 //! * [`size`] reads section sizes of the firmware ELF.
+//! * [`panic_probe`] links the inference path alone and counts (or forbids)
+//!   its panic call sites.
 //! * [`io`] holds the little binary file formats the runners exchange.
 //! * [`compare`] and [`report`] turn outputs into figures, markdown, JSON
 //!   and SVG.
@@ -27,6 +29,7 @@
 pub mod compare;
 pub mod icount;
 pub mod io;
+pub mod panic_probe;
 pub mod pipeline;
 pub mod prepare;
 pub mod report;

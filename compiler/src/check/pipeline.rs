@@ -11,6 +11,7 @@
 use super::compare::{self, Accuracy, Thresholds};
 use super::icount;
 use super::io::TraceMap;
+use super::panic_probe::{self, Handler};
 use super::report::{self, CheckReport, InstructionFigures, LayerFigures};
 use super::runner::{self, BuildConfig, TraceMode};
 use super::size::{self, Budget};
@@ -198,6 +199,12 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
             counts.stack_bytes,
             plan.budget,
         ));
+        // The inference path alone, linked as firmware links it: the
+        // runner's own code (semihosting, formatting) is not counted.
+        if let (Some(b), Some(z)) = (plan.on.board(), report.sizes.as_mut()) {
+            let probe = panic_probe::build_probe(module, b.triple, Handler::Count, &plain_cfg)?;
+            z.panic_sites = Some(panic_probe::panic_sites(&probe)?);
+        }
 
         let traced_cfg = BuildConfig {
             trace: TraceMode::Counts,

@@ -357,6 +357,13 @@ pub fn markdown(r: &CheckReport) -> String {
             "| module code + constants (by symbol) | {} | |",
             thousands(z.module.flash)
         );
+        if let Some(p) = &z.panic_sites {
+            let _ = writeln!(
+                s,
+                "| panic call sites: {} (inference path linked alone, release) | | |",
+                p.total
+            );
+        }
         let _ = writeln!(
             s,
             "| module scratch + input + output | {} | |\n",

@@ -432,7 +432,7 @@ pub fn require_qemu(qemu: &Path) -> Result<()> {
     }
 }
 
-fn nested_cargo(cfg: &BuildConfig) -> Command {
+pub(crate) fn nested_cargo(cfg: &BuildConfig) -> Command {
     let mut c = Command::new(&cfg.cargo);
     // The runner is its own build: flags meant for the enclosing one (or a
     // host-only RUSTFLAGS) must not leak into a Cortex-M build.

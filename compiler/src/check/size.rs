@@ -183,6 +183,9 @@ pub struct SizeReport {
     pub budget: Budget,
     /// Over-budget messages (empty = within budget).
     pub over_budget: Vec<String>,
+    /// Panic call sites of the inference path linked alone in release (the
+    /// counting panic probe, `check::panic_probe`); `None` when not built.
+    pub panic_sites: Option<super::panic_probe::PanicSites>,
 }
 
 /// Builds the size report.
@@ -215,6 +218,7 @@ pub fn size_report(
         ram,
         budget,
         over_budget: over,
+        panic_sites: None,
     }
 }
 

@@ -129,7 +129,11 @@ pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
 pub fn paired_weights(c: &QConv) -> Vec<u32> {
     let (rows, k) = weight_rows(c);
     let mut v = vec![0u32; ingot_rt::paired_len(rows, k)];
-    ingot_rt::pair_rows_into(&c.weights, rows, k, &mut v);
+    // `weight_rows` derives `k` from the weight count, so the lengths agree;
+    // were they not, the kernel's own length check refuses the empty rows.
+    if ingot_rt::pair_rows_into(&c.weights, rows, k, &mut v).is_err() {
+        v.clear();
+    }
     v
 }
 

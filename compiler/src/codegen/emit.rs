@@ -352,6 +352,7 @@ fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
             }
         }
     }
+    items.extend(checked_calls(ctx));
     let pt = ctx.blob.pixel_table();
     items.extend(tensor_static(
         ctx,
@@ -439,13 +440,27 @@ fn pool_quant(p: &ingot_rt::PoolQuant) -> TokenStream {
     quote!(ingot_rt::PoolQuant { in_zp: #z, requant: #r, out: #o })
 }
 
-/// The statements of `forward`.
-fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
-    let mut body = TokenStream::new();
-    for (k, sc) in ctx.calls.iter().enumerate() {
+/// Identifier of the checked call `k` of a step with `n` calls.
+fn call_id(stem: &str, k: usize, n: usize) -> Ident {
+    if n == 1 {
+        id("K", stem)
+    } else {
+        id("K", &format!("{stem}_{k}"))
+    }
+}
+
+/// `static K_*: ingot_rt::checked::*` of every call: built by a `const fn`
+/// that runs all of the kernel's checks while rustc compiles the module, so
+/// a call `ingot-rt` would refuse is a compile error naming the static,
+/// never a runtime event (see `ingot_rt::checked`).
+fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
+    let mut items = TokenStream::new();
+    let (a, p) = (quote!({ super::ARENA_BYTES }), quote!({ super::PATCH_LEN }));
+    for sc in ctx.calls {
         let stem = &ctx.stems[sc.step.index()];
-        for c in &sc.calls {
-            let call = match c {
+        let n = sc.calls.len();
+        for (k, c) in sc.calls.iter().enumerate() {
+            let (ty, new) = match c {
                 Call::Conv {
                     input,
                     output,
@@ -454,20 +469,23 @@ fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
                     ..
                 } => {
                     let (i, o) = (map_ref(*input), map_ref(*output));
-                    let (w, b, r, p) =
+                    let (w, b, r, pp) =
                         (id("W", stem), id("B", stem), id("RQ", stem), id("P", stem));
                     let t = if conv.transform.is_some() {
                         let t = id("T", stem);
-                        quote!(Some(&#t))
+                        quote!(Some(#t))
                     } else {
                         quote!(None)
                     };
-                    let f = if *paired {
-                        quote!(conv2d_paired)
+                    let kind = if *paired {
+                        quote!(Conv2dPaired)
                     } else {
-                        quote!(conv2d)
+                        quote!(Conv2d)
                     };
-                    quote!(ingot_rt::#f(arena, #i, #o, &#w, &#b, &#r, &#p, #t, patch))
+                    (
+                        quote!(ingot_rt::checked::#kind<'static, #a, #p>),
+                        quote!(ingot_rt::checked::#kind::new(#i, #o, &#w, &#b, &#r, #pp, #t)),
+                    )
                 }
                 Call::Linear {
                     input, output, out, ..
@@ -475,39 +493,95 @@ fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
                     let (i, o) = (map_ref(*input), map_ref(*output));
                     let (w, b, r) = (id("W", stem), id("B", stem), id("RQ", stem));
                     let oq = out_quant(out);
-                    quote!(ingot_rt::linear(arena, #i, #o, &#w, &#b, &#r, #oq))
+                    (
+                        quote!(ingot_rt::checked::Linear<'static, #a>),
+                        quote!(ingot_rt::checked::Linear::new(#i, #o, &#w, &#b, &#r, #oq)),
+                    )
                 }
                 Call::MaxPool { input, output, .. } | Call::AvgPool { input, output, .. } => {
-                    let f = if matches!(c, Call::MaxPool { .. }) {
-                        quote!(max_pool2d)
+                    let kind = if matches!(c, Call::MaxPool { .. }) {
+                        quote!(MaxPool2d)
                     } else {
-                        quote!(avg_pool2d)
+                        quote!(AvgPool2d)
                     };
                     let (i, o) = (map_ref(*input), map_ref(*output));
                     let (pw, pq) = (id("PW", stem), id("PQ", stem));
-                    quote!(ingot_rt::#f(arena, #i, #o, &#pw, &#pq))
+                    (
+                        quote!(ingot_rt::checked::#kind<#a>),
+                        quote!(ingot_rt::checked::#kind::new(#i, #o, #pw, #pq)),
+                    )
                 }
                 Call::GlobalAvgPool { input, output, .. } => {
                     let (i, o) = (map_ref(*input), map_ref(*output));
                     let pq = id("PQ", stem);
-                    quote!(ingot_rt::global_avg_pool(arena, #i, #o, &#pq))
+                    (
+                        quote!(ingot_rt::checked::GlobalAvgPool<#a>),
+                        quote!(ingot_rt::checked::GlobalAvgPool::new(#i, #o, #pq)),
+                    )
                 }
-                Call::Add { a, b, output, .. } => {
-                    let (a, b, o) = (map_ref(*a), map_ref(*b), map_ref(*output));
+                Call::Add {
+                    a: x, b: y, output, ..
+                } => {
+                    let (x, y, o) = (map_ref(*x), map_ref(*y), map_ref(*output));
                     let ap = id("AP", stem);
-                    quote!(ingot_rt::add(arena, #a, #b, #o, &#ap))
+                    (
+                        quote!(ingot_rt::checked::Add<#a>),
+                        quote!(ingot_rt::checked::Add::new(#x, #y, #o, #ap)),
+                    )
                 }
                 Call::Copy { src, dst } => {
-                    let (s, d) = (map_ref(*src), map_ref(*dst));
-                    quote!(ingot_rt::copy_channels(arena, #s, #d))
+                    let (x, d) = (map_ref(*src), map_ref(*dst));
+                    (
+                        quote!(ingot_rt::checked::CopyChannels<#a>),
+                        quote!(ingot_rt::checked::CopyChannels::new(#x, #d)),
+                    )
                 }
                 Call::Channel { input, output, .. } => {
                     let (i, o) = (map_ref(*input), map_ref(*output));
                     let t = id("T", stem);
-                    quote!(ingot_rt::channel_transform(arena, #i, #o, &#t))
+                    (
+                        quote!(ingot_rt::checked::ChannelTransform<'static, #a>),
+                        quote!(ingot_rt::checked::ChannelTransform::new(#i, #o, #t)),
+                    )
                 }
             };
-            body.extend(quote!(ok(#call);));
+            let k = call_id(stem, k, n);
+            items.extend(quote! {
+                pub(super) static #k: #ty = match #new { Ok(k) => k, Err(e) => e.refuse() };
+            });
+        }
+    }
+    let q = ctx.q;
+    let input = q.map(q.input);
+    let (ih, iw, ic) = (us(input.shape.h), us(input.shape.w), us(input.shape.c));
+    let in_view = map_ref(super::calls::map_ref(q, ctx.s, q.input));
+    let out_view = map_ref(super::calls::map_ref(q, ctx.s, q.output));
+    items.extend(quote! {
+        pub(super) static COPY_IN: ingot_rt::checked::CopyIn<#a, { super::INPUT_LEN }> =
+            match ingot_rt::checked::CopyIn::new(#in_view) { Ok(k) => k, Err(e) => e.refuse() };
+        pub(super) static COPY_OUT: ingot_rt::checked::CopyOut<#a, { super::OUTPUT_LEN }> =
+            match ingot_rt::checked::CopyOut::new(#out_view) { Ok(k) => k, Err(e) => e.refuse() };
+        pub(super) static QUANTIZE: ingot_rt::checked::QuantizePixels<'static, { super::INPUT_LEN }> =
+            match ingot_rt::checked::QuantizePixels::new(ingot_rt::MapRef::new(0, #ih, #iw, #ic), &PIXEL_TABLE) {
+                Ok(k) => k,
+                Err(e) => e.refuse(),
+            };
+    });
+    items
+}
+
+/// The statements of `forward`.
+fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
+    let mut body = TokenStream::new();
+    for (k, sc) in ctx.calls.iter().enumerate() {
+        let stem = &ctx.stems[sc.step.index()];
+        let n = sc.calls.len();
+        for (j, c) in sc.calls.iter().enumerate() {
+            let kid = call_id(stem, j, n);
+            body.extend(match c {
+                Call::Conv { .. } => quote!(#kid.run(arena, patch);),
+                _ => quote!(#kid.run(arena);),
+            });
         }
         let k = us(k);
         let out = map_ref(super::calls::map_ref(
@@ -515,7 +589,7 @@ fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
             ctx.s,
             ctx.q.step(sc.step).output,
         ));
-        body.extend(quote!(trace(#k, #out, arena);));
+        body.extend(quote!(trace(#k, #out, arena.as_slice());));
     }
     body
 }
@@ -559,8 +633,6 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         .map(|m| m.len())
         .max()
         .unwrap_or(0));
-    let in_view = map_ref(super::calls::map_ref(q, s, q.input));
-    let out_view = map_ref(super::calls::map_ref(q, s, q.output));
     let softmax = q.softmax_dropped;
 
     let mut lits = Literals(Vec::new());
@@ -573,7 +645,7 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         "`input` holds int8 codes in HWC order (see [`quantize_pixels`] for camera bytes); `output` receives the int8 codes of the output map (see [`argmax`], [`dequantize`]).".into(),
         "The call cannot fail and allocates nothing: it uses only `scratch`, the weights in flash and the stack of the kernels. No floating point is used.".into(),
         String::new(),
-        "Every kernel call was executed with exactly these parameters by the compiler when this module was generated, so the kernels' own checks cannot fail here; their `Result` is checked with `debug_assert!` only (a failure would mean `ingot-rt` changed since generation).".into(),
+        "Every kernel call is an `ingot_rt::checked` value built in a `static` by a `const fn` that runs all of the kernel's checks while rustc compiles this module: a call `ingot-rt` would refuse is a compile error, and the calls made here return nothing and cannot fail. The kernels reached from here contain no panic path (checked at link time in ingot's CI).".into(),
     ];
     if softmax {
         run_doc.push(String::new());
@@ -652,9 +724,9 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         #run_doc
         pub fn run(scratch: &mut Scratch, input: &[i8; INPUT_LEN], output: &mut [i8; OUTPUT_LEN]) {
             let Scratch { arena, patch } = scratch;
-            ok(ingot_rt::copy_in(input, arena, #in_view));
+            ingot_data::COPY_IN.run(input, arena);
             forward(arena, patch, &mut |_, _, _| {});
-            ok(ingot_rt::copy_out(arena, #out_view, output));
+            ingot_data::COPY_OUT.run(arena, output);
         }
 
         /// Largest strided map a trace must compact.
@@ -672,25 +744,29 @@ pub fn module(ctx: &Ctx<'_>) -> String {
             f: &mut dyn FnMut(usize, &str, &[i8]),
         ) {
             let Scratch { arena, patch } = scratch;
-            ok(ingot_rt::copy_in(input, arena, #in_view));
+            ingot_data::COPY_IN.run(input, arena);
             let mut buf = [0i8; TRACE_BYTES];
             forward(arena, patch, &mut |step, m: ingot_rt::MapRef, a: &[i8]| {
                 let name = STEP_MAP_NAMES[step];
+                // A debug hook: the maps are the schedule's own, so these
+                // panics (the only ones in the module) cannot fire.
                 if m.stride == m.c || m.pixels() <= 1 {
                     f(step, name, &a[m.offset..m.offset + m.len()]);
                 } else {
                     let b = &mut buf[..m.len()];
-                    ok(ingot_rt::copy_out(a, m, b));
+                    if let Err(e) = ingot_rt::copy_out(a, m, b) {
+                        panic!("ingot trace: step {step} map out of place: {e:?}");
+                    }
                     f(step, name, b);
                 }
             });
-            ok(ingot_rt::copy_out(arena, #out_view, output));
+            ingot_data::COPY_OUT.run(arena, output);
         }
 
         /// Camera bytes (HWC, one `u8` per channel) to input codes through the
         /// model's pixel table (normalisation and input quantization folded).
         pub fn quantize_pixels(pixels: &[u8; INPUT_LEN], input: &mut [i8; INPUT_LEN]) {
-            ok(ingot_rt::quantize_pixels(pixels, input, ingot_rt::MapRef::new(0, #ih, #iw, #ic), &ingot_data::PIXEL_TABLE));
+            ingot_data::QUANTIZE.run(pixels, input);
         }
 
         /// Index of the largest output code (first one on ties): the class.
@@ -706,17 +782,9 @@ pub fn module(ctx: &Ctx<'_>) -> String {
             }
         }
 
-        /// A kernel result. Parameters were validated at generation time, so this is
-        /// only a debug check; in release builds an (impossible) error is ignored
-        /// rather than panicking.
-        #[inline(always)]
-        fn ok(r: Result<(), ingot_rt::Error>) {
-            debug_assert!(r.is_ok(), "ingot-rt refused a call validated at generation time: {:?}", r);
-        }
-
         /// The schedule: every kernel call in order, `trace` after each step.
         #[allow(unused_variables)]
-        fn forward<T: FnMut(usize, ingot_rt::MapRef, &[i8])>(arena: &mut [i8], patch: &mut [i16], trace: &mut T) {
+        fn forward<T: FnMut(usize, ingot_rt::MapRef, &[i8])>(arena: &mut [i8; ARENA_BYTES], patch: &mut [i16; PATCH_LEN], trace: &mut T) {
             use ingot_data::*;
             #body
         }

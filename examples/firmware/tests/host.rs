@@ -122,7 +122,10 @@ fn demo_model_matches_simulator_on_eval_images() {
     .unwrap();
     // The Cortex-M4F profile gives the paired weight form (the host runs
     // the same module as the firmware).
-    assert!(c.generated.module.contains("ingot_rt::conv2d_paired("));
+    assert!(c
+        .generated
+        .module
+        .contains("ingot_rt::checked::Conv2dPaired::new("));
     assert!(
         c.generated.module.contains(model::MODEL_HASH),
         "the compiled-in module is not this compilation"

@@ -1,0 +1,221 @@
+//! Link-time proof that a generated module's inference path cannot panic.
+//!
+//! The demo's module and every zoo network's module are built for
+//! `thumbv7em-none-eabihf` (paired weights, as for Cortex-M4/M7) and
+//! `thumbv6m-none-eabi` (int8 weights, as for Cortex-M0+), in release, as
+//! the panic probe of `check::panic_probe`: one inference, linked with a
+//! panic handler that calls a function defined nowhere. Any panic path
+//! left in `run`, `quantize_pixels`, `argmax` or the `ingot-rt` kernels
+//! they reach keeps that call alive and fails the link (the "panic never"
+//! technique, common practice in embedded Rust).
+//!
+//! The 121-layer network is left out by default (its module takes minutes
+//! of rustc per target and reaches no kernel the smaller dense network does
+//! not); `INGOT_PANIC_NEVER_LARGE=1` adds it.
+//!
+//! Needs the two Rust targets; without them the test prints a notice and
+//! passes, unless `INGOT_REQUIRE_EMULATION=1` (set by CI).
+
+use ingot_compiler::calibrate::{MapRange, Ranges};
+use ingot_compiler::check::panic_probe::{build_probe, panic_sites, Handler};
+use ingot_compiler::check::runner::{require_rust_target, BuildConfig};
+use ingot_compiler::check::ModuleFiles;
+use ingot_compiler::codegen::pipeline::{compile, schedule_of, BuildInputs, RangesSource};
+use ingot_compiler::codegen::{generate, GenOptions, WeightForm};
+use ingot_compiler::lower::{lower, LowerOptions};
+use ingot_compiler::plan::{plan, PlanOptions};
+use ingot_compiler::reference::Reference;
+use ingot_compiler::zoo;
+use std::path::{Path, PathBuf};
+
+/// The targets and the weight form their cores use.
+const TARGETS: [(&str, WeightForm); 2] = [
+    ("thumbv7em-none-eabihf", WeightForm::Pairs),
+    ("thumbv6m-none-eabi", WeightForm::Int8),
+];
+
+fn targets_or_skip() -> bool {
+    for (t, _) in TARGETS {
+        if let Err(e) = require_rust_target(t) {
+            if std::env::var("INGOT_REQUIRE_EMULATION").is_ok_and(|v| v == "1") {
+                panic!("Rust target required (INGOT_REQUIRE_EMULATION=1): {e}");
+            }
+            eprintln!("skipping the panic-never check: {e}");
+            return false;
+        }
+    }
+    true
+}
+
+/// Min/max ranges of every map of a zoo network over a few random inputs.
+fn zoo_ranges(net: &zoo::Net) -> Ranges {
+    let g = net.build();
+    let r = Reference::new(&g);
+    let mut maps = vec![
+        MapRange {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY
+        };
+        g.map_count()
+    ];
+    for seed in 0..3 {
+        r.run_with(&net.random_input(seed), |m, v| {
+            let e = &mut maps[m.index()];
+            for &a in v {
+                e.min = e.min.min(a);
+                e.max = e.max.max(a);
+            }
+        })
+        .unwrap();
+    }
+    Ranges {
+        graph: g.name().into(),
+        graph_hash: String::new(),
+        method: "minmax".into(),
+        images: 3,
+        maps,
+    }
+}
+
+/// Every zoo network: the one place this test names them.
+fn zoo_nets() -> Vec<(&'static str, zoo::Net)> {
+    let mut v = vec![
+        (
+            "zoo_plain",
+            zoo::plain_stack(&zoo::PlainStackConfig::default(), 11),
+        ),
+        ("zoo_dense", zoo::dense_small(12)),
+        (
+            "zoo_residual",
+            zoo::residual(&zoo::ResidualConfig::default(), 13),
+        ),
+        (
+            "zoo_depthwise",
+            zoo::depthwise_separable(&zoo::DepthwiseConfig::default(), 14),
+        ),
+    ];
+    if std::env::var("INGOT_PANIC_NEVER_LARGE").is_ok_and(|v| v == "1") {
+        v.push(("zoo_densenet121", zoo::densenet121(15)));
+    }
+    v
+}
+
+fn write_module(dir: &Path, files: Vec<(String, Vec<u8>)>, name: &str) -> ModuleFiles {
+    std::fs::create_dir_all(dir).unwrap();
+    for (f, bytes) in files {
+        std::fs::write(dir.join(f), bytes).unwrap();
+    }
+    ModuleFiles::find(dir, Some(name)).unwrap()
+}
+
+fn out_dir() -> PathBuf {
+    let d = Path::new(env!("CARGO_TARGET_TMPDIR")).join("panic-never");
+    std::fs::create_dir_all(&d).unwrap();
+    d
+}
+
+/// Builds the never-panic probe of `module` for `triple`; on failure also
+/// builds the counting probe so the message lists the panic sites left.
+fn assert_links(module: &ModuleFiles, triple: &str, cfg: &BuildConfig) {
+    if let Err(e) = build_probe(module, triple, Handler::Never, cfg) {
+        let sites = build_probe(module, triple, Handler::Count, cfg)
+            .and_then(|elf| panic_sites(&elf))
+            .map(|s| format!("{:?}", s.by_target))
+            .unwrap_or_else(|e| e.to_string());
+        panic!(
+            "module `{}` for {triple} keeps a panic path: {e}\npanic sites: {sites}",
+            module.name
+        );
+    }
+}
+
+fn cfg() -> BuildConfig {
+    BuildConfig {
+        build_dir: out_dir().join("build"),
+        ..BuildConfig::default()
+    }
+}
+
+#[test]
+fn demo_module_links_without_panic_paths() {
+    if !targets_or_skip() {
+        return;
+    }
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("..");
+    let model = root.join("examples/demo/model");
+    let cfg = cfg();
+    for (triple, form) in TARGETS {
+        let c = compile(&BuildInputs {
+            graph: model.join("brackets.graph.json"),
+            ranges: RangesSource::File(model.join("brackets.ranges.json")),
+            target: None,
+            module: "brackets".into(),
+            weight_form: Some(form),
+        })
+        .unwrap();
+        let m = write_module(
+            &out_dir().join(format!("demo-{triple}")),
+            c.files("brackets"),
+            "brackets",
+        );
+        assert_links(&m, triple, &cfg);
+    }
+}
+
+#[test]
+fn zoo_modules_link_without_panic_paths() {
+    if !targets_or_skip() {
+        return;
+    }
+    let cfg = cfg();
+    for (name, net) in zoo_nets() {
+        let g = net.build();
+        let q = lower(&g, &zoo_ranges(&net), &LowerOptions::default()).unwrap();
+        let p = plan(&q, &PlanOptions::default()).unwrap();
+        let s = schedule_of(&q, &p);
+        for (triple, form) in TARGETS {
+            let gen = generate(
+                &q,
+                &s,
+                &GenOptions {
+                    module: name.into(),
+                    weight_form: form,
+                    ..GenOptions::default()
+                },
+            )
+            .unwrap();
+            let m = write_module(
+                &out_dir().join(format!("{name}-{triple}")),
+                gen.files(name),
+                name,
+            );
+            assert_links(&m, triple, &cfg);
+        }
+    }
+}
+
+#[test]
+fn counting_probe_finds_a_planted_panic() {
+    // The check must be able to fail: a module whose `argmax` indexes out
+    // of the output (`OUTPUT_LEN + k` with `k` opaque) keeps a bounds check.
+    if !targets_or_skip() {
+        return;
+    }
+    let dir = out_dir().join("planted");
+    std::fs::create_dir_all(&dir).unwrap();
+    std::fs::write(
+        dir.join("planted.rs"),
+        "pub const INPUT_LEN: usize = 4;\npub const OUTPUT_LEN: usize = 2;\n\
+         pub struct Scratch;\nimpl Scratch { pub const fn new() -> Self { Scratch } }\n\
+         pub fn quantize_pixels(_: &[u8; INPUT_LEN], _: &mut [i8; INPUT_LEN]) {}\n\
+         pub fn run(_: &mut Scratch, i: &[i8; INPUT_LEN], o: &mut [i8; OUTPUT_LEN]) { o[0] = i[0]; }\n\
+         pub fn argmax(o: &[i8; OUTPUT_LEN]) -> usize { o[core::hint::black_box(5)] as usize }\n",
+    )
+    .unwrap();
+    let m = ModuleFiles::find(&dir, Some("planted")).unwrap();
+    let cfg = cfg();
+    let (triple, _) = TARGETS[0];
+    assert!(build_probe(&m, triple, Handler::Never, &cfg).is_err());
+    let sites = panic_sites(&build_probe(&m, triple, Handler::Count, &cfg).unwrap()).unwrap();
+    assert!(sites.total >= 1, "{sites:?}");
+}
