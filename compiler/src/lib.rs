@@ -13,6 +13,7 @@ pub mod inspect;
 pub mod lower;
 pub mod plan;
 pub mod reference;
+pub mod stats;
 pub mod util;
 pub mod zoo;
 
