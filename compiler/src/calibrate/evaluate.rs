@@ -129,6 +129,8 @@ pub fn evaluate(
         (0usize, 0usize, 0usize, 0usize, 0usize);
     let mut skipped = Vec::new();
     let mut used = Vec::new();
+    // (float, int8, label) of each labelled image, for the paired figures.
+    let mut predictions = Vec::new();
     for (i, r) in results {
         let r = match r {
             Ok(r) => r,
@@ -149,6 +151,7 @@ pub fn evaluate(
             labelled += 1;
             float_ok += (r.float_top1 == l) as usize;
             int8_ok += (r.int8_top1 == l) as usize;
+            predictions.push((r.float_top1, r.int8_top1, l));
         }
     }
     let share = |a: usize, b: usize| if b == 0 { 0.0 } else { a as f64 / b as f64 };
@@ -160,7 +163,11 @@ pub fn evaluate(
         float_accuracy: (labelled > 0).then_some(fa),
         int8_accuracy: (labelled > 0).then_some(ia),
         drop_pp: (labelled > 0).then_some(100.0 * (fa - ia)),
+        paired: None,
+        escapes: None,
+        predictions,
     };
+    let output = output.with_statistics(&[], &[]);
     Ok(Evaluation {
         on,
         images: used,

@@ -13,12 +13,14 @@
 //! * [`size`] reads section sizes of the firmware ELF.
 //! * [`io`] holds the little binary file formats the runners exchange.
 //! * [`compare`] and [`report`] turn outputs into figures, markdown, JSON
-//!   and SVG.
+//!   and SVG; [`accuracy`] adds how sure the accuracy figures are
+//!   (paired comparison, escapes and overkill, changed images).
 //!
 //! Instruction counts are counts of instructions the emulated core executed
 //! (on its real instruction set), not cycles: QEMU does not model pipelines,
 //! caches, wait states or multi-cycle instructions.
 
+pub mod accuracy;
 pub mod compare;
 pub mod icount;
 pub mod io;
