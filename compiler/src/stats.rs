@@ -372,14 +372,31 @@ impl PairedAccuracy {
         if self.settles(max_pp).is_some() {
             return None;
         }
+        // Targets already reached by the approximation are no advice: the
+        // score interval is wider than the approximation when
+        // disagreements are rare, so then ask for twice the images.
+        let targets: Vec<String> = [
+            (self.images_for_1pp, "±1 pp"),
+            (self.images_for_half_pp, "±0.5 pp"),
+        ]
+        .iter()
+        .filter(|(n, _)| *n > self.images)
+        .map(|(n, w)| format!("about {n} in all for a {w} interval"))
+        .collect();
+        let more = if targets.is_empty() {
+            format!(
+                "at least {} in all (disagreements are too rare here for the usual estimate)",
+                2 * self.images
+            )
+        } else {
+            targets.join(", ")
+        };
         Some(format!(
             "the drop's 95% interval ({}) includes the --max-drop limit of {} pp, so these {} images cannot tell whether int8 stays within it; \
-             label more images: about {} for a ±1 pp interval, {} for ±0.5 pp",
+             label more images: {more}",
             interval_pp(self.drop_interval_pp),
             max_pp,
             self.images,
-            self.images_for_1pp,
-            self.images_for_half_pp
         ))
     }
 }
