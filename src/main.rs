@@ -30,7 +30,7 @@ enum Command {
     Build(cmd::build::Args),
     /// Build a generated module, run it on the host or an emulated Cortex-M
     /// core, and compare it with the integer simulator and the float model.
-    Check(cmd::check::Args),
+    Check(Box<cmd::check::Args>),
 }
 
 fn main() {

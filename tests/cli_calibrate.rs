@@ -194,3 +194,48 @@ fn calibrate_auto_keeps_the_candidate_with_the_best_agreement() {
     // The evaluation in the report is still on the held-out images.
     assert_eq!(v["evaluated_on"], "held-out");
 }
+
+/// The held-out report gives the paired figures and, with `--good`,
+/// escapes and overkill; an unknown good class is named with the graph's
+/// labels.
+#[test]
+fn calibrate_holdout_reports_the_paired_comparison_and_escapes() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    let run = |good: &str| {
+        ingot()
+            .arg("calibrate")
+            .arg(&graph)
+            .arg("--images")
+            .arg(dir.path().join("images"))
+            .args(["--holdout", "0.2", "--good", good, "-o"])
+            .arg(dir.path().join("r.json"))
+            .output()
+            .unwrap()
+    };
+    let out = run("class0");
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(text.contains("accuracy on 4 labelled image(s)"), "{text}");
+    assert!(
+        text.contains("drop 95% interval") && text.contains("Newcombe 1998"),
+        "{text}"
+    );
+    assert!(text.contains("in int8 only; exact McNemar p = "), "{text}");
+    assert!(
+        text.contains("labelled images would give a ±1 pp interval"),
+        "{text}"
+    );
+    assert!(text.contains("escapes (good: class0): float "), "{text}");
+    let bad = run("fine");
+    let e = String::from_utf8_lossy(&bad.stderr);
+    assert!(!bad.status.success());
+    assert!(
+        e.contains("good class `fine`") && e.contains("class0, class1"),
+        "{e}"
+    );
+}

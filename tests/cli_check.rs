@@ -231,3 +231,75 @@ fn check_digits_on_m3_m7_and_m33() {
         );
     }
 }
+
+/// The accuracy statistics on the UCI optdigits held-out split (Alpaydin &
+/// Kaynak 1998), with digit 0 standing in for the "good part" class:
+/// escapes lead, then the drop with its interval, the discordant pairs,
+/// McNemar's p and the images needed; the same figures in JSON and
+/// Markdown; `--max-drop-upper` fails when the interval reaches past it.
+#[test]
+fn check_digits_reports_intervals_escapes_and_gates_on_the_interval() {
+    let tmp = tempfile::tempdir().unwrap();
+    let report = tmp.path().join("report");
+    let out = check_digits(&["--good", "0", "--max-drop", "0.5"], &report);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let pos = |s: &str| {
+        stdout
+            .find(s)
+            .unwrap_or_else(|| panic!("no `{s}` in\n{stdout}"))
+    };
+    assert!(pos("  escapes:        int8 ") < pos("  accuracy:       float"));
+    assert!(pos("  overkill:       int8 ") < pos("  accuracy:       float"));
+    assert!(pos("  escapes/class:  int8 1 ") > 0);
+    assert!(pos("  drop 95% CI:    ") > pos("  accuracy:       float"));
+    pos("(Newcombe 1998, method 10)");
+    pos(" in int8 only; exact McNemar p = ");
+    pos("  images needed:  about ");
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
+    let p = &json["paired"];
+    assert_eq!(p["images"], 360);
+    let (b, c) = (
+        p["float_only"].as_u64().unwrap(),
+        p["int8_only"].as_u64().unwrap(),
+    );
+    let drop = json["accuracy"]["drop_pp"].as_f64().unwrap();
+    assert!((p["drop_pp"].as_f64().unwrap() - drop).abs() < 1e-9);
+    assert!((drop - 100.0 * (b as f64 - c as f64) / 360.0).abs() < 1e-9);
+    let (lo, hi) = (
+        p["drop_interval_pp"]["lo"].as_f64().unwrap(),
+        p["drop_interval_pp"]["hi"].as_f64().unwrap(),
+    );
+    assert!(lo <= drop && drop <= hi && hi > lo, "{p}");
+    let e = &json["escapes"];
+    assert_eq!(e["good_classes"][0], "0");
+    assert_eq!(e["int8"]["per_class"].as_array().unwrap().len(), 9);
+    let md = std::fs::read_to_string(report.join("report.md")).unwrap();
+    assert!(md.contains("## Escapes and overkill (good: 0)"), "{md}");
+    assert!(md.contains("| exact McNemar test, two-sided p |"), "{md}");
+    // The changed-images file exists exactly when some image changed.
+    let changed = json["changed"].as_array().unwrap().len();
+    assert!(
+        changed as u64 >= b + c,
+        "{changed} changed, {b} + {c} discordant"
+    );
+    assert_eq!(report.join("changed_images.csv").is_file(), changed > 0);
+
+    let strict = check_digits(
+        &["--max-drop-upper", &format!("{:.2}", hi - 0.1)],
+        &tmp.path().join("r2"),
+    );
+    let stderr = String::from_utf8_lossy(&strict.stderr);
+    assert!(!strict.status.success());
+    assert!(stderr.contains("--max-drop-upper"), "{stderr}");
+    let bad = check_digits(&["--good", "ten"], &tmp.path().join("r3"));
+    let stderr = String::from_utf8_lossy(&bad.stderr);
+    assert!(!bad.status.success());
+    assert!(stderr.contains("good class `ten`"), "{stderr}");
+}

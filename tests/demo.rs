@@ -62,6 +62,14 @@ fn assert_documented_bounds(report: &Path, text: &str) -> serde_json::Value {
     assert!(text.contains("bit-identical:  yes"), "{text}");
     assert!(text.contains("target:         fits STM32L4R9AI"), "{text}");
     assert!(text.contains("result:         pass"), "{text}");
+    // The README's walkthrough explains these lines (`--good ok`).
+    for line in [
+        "  escapes:        int8 ",
+        "  discordant:     ",
+        "  images needed:  about ",
+    ] {
+        assert!(text.contains(line), "no `{line}` in {text}");
+    }
     let json: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
             .unwrap();

@@ -27,6 +27,7 @@ pub mod measure;
 pub mod plan;
 pub mod ranges;
 pub mod reference;
+pub mod stats;
 pub mod util;
 pub mod zoo;
 

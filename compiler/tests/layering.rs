@@ -19,6 +19,7 @@ const ORDER: &[&str] = &[
     "util",
     "guard",
     "measure",
+    "stats",
     "graph",
     "frontend",
     "zoo",

@@ -8,7 +8,7 @@
 
 use ingot_compiler::calibrate::images::ImageSet;
 use ingot_compiler::calibrate::Method;
-use ingot_compiler::codegen::pipeline::{self, BuildInputs, RangesSource};
+use ingot_compiler::driver::{self as pipeline, BuildInputs, RangesSource};
 use ingot_compiler::frontend::onnx::{self, ImportOptions};
 use ingot_compiler::reference::Reference;
 use std::path::{Path, PathBuf};

@@ -20,7 +20,7 @@ use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::check::panic_probe::{build_probe, panic_sites, Handler};
 use ingot_compiler::check::runner::{require_rust_target, BuildConfig};
 use ingot_compiler::check::ModuleFiles;
-use ingot_compiler::codegen::pipeline::{compile, schedule_of, BuildInputs, RangesSource};
+use ingot_compiler::driver::{compile, schedule_of, BuildInputs, RangesSource};
 use ingot_compiler::codegen::{generate, GenOptions, WeightForm};
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{plan, PlanOptions};

@@ -33,6 +33,10 @@ pub struct Args {
     /// Skip unreadable images (they are counted and listed) instead of failing.
     #[arg(long)]
     pub skip_bad: bool,
+    /// Classes that mean "good part" (comma-separated graph labels): the
+    /// held-out evaluation then reports escapes and overkill.
+    #[arg(long, value_name = "CLASS[,CLASS]", value_delimiter = ',')]
+    pub good: Vec<String>,
     /// Print the report as JSON on standard output.
     #[arg(long)]
     pub json: bool,
@@ -46,6 +50,8 @@ pub struct Args {
 pub fn run(args: &Args) -> anyhow::Result<()> {
     let graph = ingot_compiler::load(&args.graph)?;
     super::print_warnings(&graph);
+    let good = ingot_compiler::stats::good_classes(&args.good, graph.labels())
+        .map_err(|e| anyhow::anyhow!("--good: {}: {e}", args.graph.display()))?;
     let images = ImageSet::open(&args.images, &graph)?;
     let opts = CalibOptions {
         method: args.method,
@@ -79,7 +85,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         args.force,
     )
     .context("cannot write the ranges file")?;
-    let report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
+    let mut report =
+        agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
+    report.set_good_classes(&good, graph.labels());
     if args.json {
         let mut v = serde_json::to_value(&report)?;
         v["ranges_file"] = serde_json::Value::String(out.display().to_string());

@@ -5,12 +5,13 @@ use anyhow::{bail, Context};
 use ingot_compiler::check::compare::Thresholds;
 use ingot_compiler::check::pipeline::{self, CheckData, CheckPlan};
 use ingot_compiler::check::prepare::{self, PrepareOptions, RangesFrom};
-use ingot_compiler::check::report;
 use ingot_compiler::check::runner::{self, BuildConfig};
 use ingot_compiler::check::size::Budget;
+use ingot_compiler::check::{accuracy, report};
 use ingot_compiler::check::{io, ModuleFiles, RunOn};
 use ingot_compiler::codegen::WeightForm;
 use ingot_compiler::driver;
+use ingot_compiler::stats::{self, Gates};
 use std::path::PathBuf;
 
 /// Arguments of `ingot check`.
@@ -46,6 +47,23 @@ pub struct Args {
     /// finite number) [default: 0.9]
     #[arg(long, value_parser = parse_finite)]
     pub min_agreement: Option<f64>,
+    /// Largest allowed upper end of the accuracy drop's 95% interval,
+    /// percentage points: fails when the images cannot rule out a larger
+    /// drop.
+    #[arg(long, value_name = "PP")]
+    pub max_drop_upper: Option<f64>,
+    /// Classes that mean "good part" (comma-separated graph labels):
+    /// reports escapes (defect predicted good) and overkill (good
+    /// predicted defect).
+    #[arg(long, value_name = "CLASS[,CLASS]", value_delimiter = ',')]
+    pub good: Vec<String>,
+    /// Largest allowed number of int8 escapes (needs --good).
+    #[arg(long, value_name = "N")]
+    pub max_escapes: Option<u64>,
+    /// Largest allowed number of escapes int8 adds to the float model's
+    /// (needs --good).
+    #[arg(long, value_name = "N")]
+    pub max_added_escapes: Option<u64>,
     /// Report folder (markdown, JSON, SVG, the module); replaced as a whole
     /// if an earlier `check --report` wrote it (it holds `.ingot-report`)
     /// or it is empty, refused otherwise.
@@ -152,7 +170,11 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
         },
         thresholds: thresholds(a),
     };
-    let r = pipeline::run_check(&module, &data, &plan)?;
+    if !a.good.is_empty() {
+        bail!("--good needs labelled images: pass the GRAPH.json and --images");
+    }
+    let mut r = pipeline::run_check(&module, &data, &plan)?;
+    apply_gates(a, &mut r);
     if let Some(dir) = &a.report {
         report::write_report(dir, &r)?;
         eprintln!("report written to {}", dir.display());
@@ -186,6 +208,22 @@ fn refuse_foreign_report(a: &Args) -> anyhow::Result<()> {
         }
         _ => Ok(()),
     }
+}
+
+
+fn gates(a: &Args) -> Gates {
+    Gates {
+        max_drop_upper_pp: a.max_drop_upper,
+        max_escapes: a.max_escapes,
+        max_added_escapes: a.max_added_escapes,
+    }
+}
+
+/// Applies the statistics gates to a finished report.
+fn apply_gates(a: &Args, r: &mut report::CheckReport) {
+    r.gates = gates(a);
+    let fails = r.gates.failures(r.paired.as_ref(), r.escapes.as_ref());
+    r.failures.extend(fails);
 }
 
 fn thresholds(a: &Args) -> Thresholds {
@@ -223,7 +261,10 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         weight_form: driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core),
         ..PrepareOptions::default()
     };
-    let p = prepare::prepare(graph, images, &opts)?;
+    let mut p = prepare::prepare(graph, images, &opts)?;
+    p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)
+        .map_err(|e| anyhow::anyhow!("--good: {}: {e}", graph.display()))?;
+    p.data.image_names = p.image_names.clone();
     let module_name = p.generated.report.module.clone();
     // Removed when this function returns, on success or failure; with
     // --report the module is copied into the report first.
@@ -253,6 +294,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         thresholds: thresholds(a),
     };
     let mut r = pipeline::run_check(&module, &p.data, &plan)?;
+    apply_gates(a, &mut r);
     if let Some(b) = &p.budget {
         r.failures
             .extend(b.over.iter().map(|o| format!("target {}: {o}", b.target)));
@@ -352,23 +394,16 @@ fn summary(
             );
         }
     }
-    match &r.accuracy {
-        Some(acc) => {
-            let _ = writeln!(
-                s,
-                "  accuracy:       float {} -> int8 {} (drop {:.2} pp)",
-                pct(acc.float_accuracy),
-                pct(acc.int8_accuracy),
-                acc.drop_pp
-            );
-        }
-        None => {
-            let _ = writeln!(
-                s,
-                "  accuracy:       no labels (images not in class folders)"
-            );
-        }
-    }
+    let acc_line = match &r.accuracy {
+        Some(acc) => format!(
+            "  accuracy:       float {} -> int8 {} (drop {:.2} pp)\n",
+            pct(acc.float_accuracy),
+            pct(acc.int8_accuracy),
+            acc.drop_pp
+        ),
+        None => "  accuracy:       no labels (images not in class folders)\n".to_string(),
+    };
+    s.push_str(&accuracy::summary_lines(r, &acc_line));
     if let Some(f) = &r.float {
         let _ = writeln!(
             s,

@@ -111,6 +111,8 @@ pub fn evaluate(
         (0usize, 0usize, 0usize, 0usize, 0usize);
     let mut skipped = Vec::new();
     let mut used = Vec::new();
+    // (float, int8, label) of each labelled image, for the paired figures.
+    let mut predictions = Vec::new();
     for (i, r) in results {
         let r = match r {
             Ok(r) => r,
@@ -131,6 +133,7 @@ pub fn evaluate(
             labelled += 1;
             float_ok += (r.float_top1 == l) as usize;
             int8_ok += (r.int8_top1 == l) as usize;
+            predictions.push((r.float_top1, r.int8_top1, l));
         }
     }
     let share = |a: usize, b: usize| if b == 0 { 0.0 } else { a as f64 / b as f64 };
@@ -142,7 +145,11 @@ pub fn evaluate(
         float_accuracy: (labelled > 0).then_some(fa),
         int8_accuracy: (labelled > 0).then_some(ia),
         drop_pp: (labelled > 0).then_some(100.0 * (fa - ia)),
+        paired: None,
+        escapes: None,
+        predictions,
     };
+    let output = output.with_statistics(&[], &[]);
     Ok(Evaluation {
         on,
         images: used,

@@ -46,6 +46,38 @@ pub struct OutputAgreement {
     pub int8_accuracy: Option<f64>,
     /// Float minus int8 accuracy, in percentage points.
     pub drop_pp: Option<f64>,
+    /// Float against int8 on the same labelled images (discordant pairs,
+    /// McNemar, intervals, images needed).
+    pub paired: Option<crate::stats::PairedAccuracy>,
+    /// Escapes and overkill, when good classes are named.
+    pub escapes: Option<crate::stats::Escapes>,
+    /// `(float, int8, true class)` of each labelled image.
+    #[serde(skip)]
+    pub predictions: Vec<(usize, usize, usize)>,
+}
+
+impl OutputAgreement {
+    /// Fills the paired figures and, when `good` names classes (indices
+    /// into `names`), escapes and overkill.
+    pub fn with_statistics(mut self, good: &[usize], names: &[String]) -> OutputAgreement {
+        let f: Vec<usize> = self.predictions.iter().map(|p| p.0).collect();
+        let i: Vec<usize> = self.predictions.iter().map(|p| p.1).collect();
+        let l: Vec<usize> = self.predictions.iter().map(|p| p.2).collect();
+        self.paired = crate::stats::paired_accuracy(&f, &i, &l);
+        self.escapes = (!good.is_empty() && !l.is_empty())
+            .then(|| crate::stats::escapes(&f, &i, &l, good, names));
+        self
+    }
+}
+
+impl Report {
+    /// Adds escapes and overkill for the classes `good` (indices into the
+    /// graph's labels `names`) to an evaluated report.
+    pub fn set_good_classes(&mut self, good: &[usize], names: &[String]) {
+        if let Some(o) = self.output.take() {
+            self.output = Some(o.with_statistics(good, names));
+        }
+    }
 }
 
 /// Everything `ingot calibrate` prints.
@@ -220,10 +252,57 @@ impl fmt::Display for Report {
                         d
                     )?;
                 }
+                if let Some(p) = &o.paired {
+                    write_paired(f, p, o.escapes.as_ref())?;
+                }
             }
             (None, Some(why)) => writeln!(f, "not evaluated in int8: {why}")?,
             (None, None) => {}
         }
         Ok(())
     }
+}
+
+/// The paired figures and escapes under the accuracy line.
+fn write_paired(
+    f: &mut fmt::Formatter<'_>,
+    p: &crate::stats::PairedAccuracy,
+    e: Option<&crate::stats::Escapes>,
+) -> fmt::Result {
+    use crate::stats::{interval_pct, interval_pp, p_value};
+    writeln!(
+        f,
+        "  drop 95% interval {} (Newcombe 1998, method 10); float {}, int8 {} (Wilson)",
+        interval_pp(p.drop_interval_pp),
+        interval_pct(Some(p.float_interval)),
+        interval_pct(Some(p.int8_interval))
+    )?;
+    writeln!(
+        f,
+        "  {} image(s) right in float only, {} in int8 only; exact McNemar p = {}",
+        p.float_only,
+        p.int8_only,
+        p_value(p.mcnemar_p, p.mcnemar_log10_p)
+    )?;
+    writeln!(
+        f,
+        "  about {} labelled images would give a ±1 pp interval, {} a ±0.5 pp one",
+        p.images_for_1pp, p.images_for_half_pp
+    )?;
+    if let Some(e) = e {
+        writeln!(
+            f,
+            "  escapes (good: {}): float {} of {} defects, int8 {} ({}); overkill: float {} of {} good, int8 {} ({})",
+            e.good_classes.join(", "),
+            e.float.escapes,
+            e.float.defects,
+            e.int8.escapes,
+            interval_pct(e.int8.escape_interval),
+            e.float.overkill,
+            e.float.good,
+            e.int8.overkill,
+            interval_pct(e.int8.overkill_interval)
+        )?;
+    }
+    Ok(())
 }

@@ -15,7 +15,8 @@
 //!   its panic call sites.
 //! * [`io`] holds the little binary file formats the runners exchange.
 //! * [`compare`] and [`report`] turn outputs into figures, markdown, JSON
-//!   and SVG.
+//!   and SVG; [`accuracy`] adds how sure the accuracy figures are
+//!   (paired comparison, escapes and overkill, changed images).
 //! * [`prepare`] gets a module and the comparison data ready (ranges,
 //!   lowering, plan and generation through [`crate::driver`], then the
 //!   integer simulator and the float reference on every image).
@@ -26,6 +27,7 @@
 //! (on its real instruction set), not cycles: QEMU does not model pipelines,
 //! caches, wait states or multi-cycle instructions.
 
+pub mod accuracy;
 pub mod compare;
 pub mod icount;
 pub mod io;

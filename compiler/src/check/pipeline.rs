@@ -86,6 +86,11 @@ pub struct CheckData {
     pub labels: Option<Vec<usize>>,
     /// Class names.
     pub class_names: Vec<String>,
+    /// Classes that mean "good part" (indices into `class_names`); empty:
+    /// no escapes and overkill.
+    pub good_classes: Vec<usize>,
+    /// Image file names, in check order (for the changed-images list).
+    pub image_names: Vec<String>,
     /// Steps (names, kinds, MACs).
     pub steps: Vec<StepInfo>,
     /// SQNR per step against the float reference, dB (computed by the
@@ -286,6 +291,7 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
             data.class_names.len().max(data.output_len),
         ));
     }
+    super::accuracy::add_statistics(&mut report, data, module_out);
     let mut fails = compare::check_thresholds(
         report.bit_exact.as_ref(),
         report.float.as_ref(),

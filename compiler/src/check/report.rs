@@ -135,8 +135,17 @@ pub struct CheckReport {
     pub instructions: Option<InstructionFigures>,
     /// Emulated runs only.
     pub sizes: Option<SizeReport>,
+    /// With labels: float against int8 on the same images (discordant
+    /// pairs, McNemar, intervals, images needed).
+    pub paired: Option<crate::stats::PairedAccuracy>,
+    /// With labels and good classes: escapes and overkill.
+    pub escapes: Option<crate::stats::Escapes>,
+    /// Images float and int8 classify differently.
+    pub changed: Vec<super::accuracy::ChangedImage>,
     /// Thresholds checked.
     pub thresholds: Thresholds,
+    /// Gates on the statistics (interval, escapes).
+    pub gates: crate::stats::Gates,
     /// Threshold and bit-exactness failures (empty = pass).
     pub failures: Vec<String>,
 }
@@ -259,6 +268,7 @@ pub fn markdown(r: &CheckReport) -> String {
             "Confusion matrices: `confusion_float.svg`, `confusion_int8.svg` (rows: true class, columns: predicted).\n"
         );
     }
+    s.push_str(&super::accuracy::markdown(r));
 
     if !r.layers.is_empty() {
         let _ = writeln!(s, "## Layers\n");
@@ -567,6 +577,10 @@ pub fn write_report(dir: &Path, r: &CheckReport) -> Result<()> {
         put("report.json", json.as_bytes())?;
         if r.layers.iter().any(|l| l.sqnr_db.is_some()) {
             put("sqnr.svg", sqnr_svg(&r.layers)?.as_bytes())?;
+        }
+        if !r.changed.is_empty() {
+            let csv = super::accuracy::changed_csv(&r.changed, &r.labels);
+            put("changed_images.csv", csv.as_bytes())?;
         }
         if let Some(a) = &r.accuracy {
             put(
