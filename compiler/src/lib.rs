@@ -5,6 +5,7 @@
 //! into a checked [`graph::Graph`]; [`reference`] runs it in f32.
 
 pub mod calibrate;
+pub mod camera;
 pub mod check;
 pub mod codegen;
 pub mod frontend;

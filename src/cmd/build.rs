@@ -36,6 +36,9 @@ pub struct Args {
     /// [default: by the --target core, else int8]
     #[arg(long)]
     pub weight_form: Option<WeightForm>,
+    /// Camera frames in (adds `FRAME_BYTES` and `frame_to_input`).
+    #[command(flatten)]
+    pub camera: super::camera::CameraArgs,
 }
 
 /// Compiles in memory, then writes all files into `--out` or none.
@@ -51,6 +54,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         target: args.target.clone(),
         module: args.module.clone(),
         weight_form: args.weight_form,
+        camera: args.camera.camera()?,
     };
     let c = pipeline::compile(&req)?;
     output::write_all(&args.out, &c.files(&args.module), args.force)?;

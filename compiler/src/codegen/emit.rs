@@ -565,6 +565,10 @@ pub fn module(ctx: &Ctx<'_>) -> String {
 
     let mut lits = Literals(Vec::new());
     let data = data_module(ctx, &mut lits);
+    let camera = match &ctx.opt.camera {
+        Some(cam) => super::camera::tokens(q, cam).unwrap_or_default(),
+        None => TokenStream::new(),
+    };
     let body = forward_body(ctx);
 
     let mut run_doc = vec![
@@ -692,6 +696,8 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         pub fn quantize_pixels(pixels: &[u8; INPUT_LEN], input: &mut [i8; INPUT_LEN]) {
             ok(ingot_rt::quantize_pixels(pixels, input, ingot_rt::MapRef::new(0, #ih, #iw, #ic), &ingot_data::PIXEL_TABLE));
         }
+
+        #camera
 
         /// Index of the largest output code (first one on ties): the class.
         pub fn argmax(output: &[i8; OUTPUT_LEN]) -> usize {

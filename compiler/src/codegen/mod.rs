@@ -29,6 +29,7 @@
 pub mod blob;
 pub mod build_script;
 pub mod calls;
+pub mod camera;
 pub mod emit;
 pub mod names;
 pub mod output;
@@ -158,6 +159,8 @@ pub struct GenOptions {
     pub dry_run: bool,
     /// How convolution weights are stored (default int8).
     pub weight_form: WeightForm,
+    /// The camera, when frames come in (adds `FRAME_*` and `frame_to_input`).
+    pub camera: Option<crate::camera::Camera>,
 }
 
 impl Default for GenOptions {
@@ -169,6 +172,7 @@ impl Default for GenOptions {
             source_hash: String::new(),
             dry_run: true,
             weight_form: WeightForm::Int8,
+            camera: None,
         }
     }
 }
@@ -240,6 +244,9 @@ pub enum CodegenError {
         /// Available bytes.
         have: usize,
     },
+    /// The camera does not fit the network's input or the kernel's limits.
+    #[error(transparent)]
+    Camera(#[from] crate::camera::CameraError),
 }
 
 /// Bytes the paired weights of `q` take in flash beyond their int8 bytes in
@@ -284,6 +291,9 @@ pub fn is_module_name(s: &str) -> bool {
 pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated, CodegenError> {
     if !is_module_name(&opt.module) {
         return Err(CodegenError::ModuleName(opt.module.clone()));
+    }
+    if let Some(cam) = &opt.camera {
+        camera::params(q, cam)?;
     }
     // The paired form's row buffers may need a larger patch than the
     // schedule was made with.

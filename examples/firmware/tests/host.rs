@@ -109,6 +109,7 @@ fn demo_model_matches_simulator_on_eval_images() {
         target: Some(demo().join("../../targets/stm32l4r9ai.toml")),
         module: "model".into(),
         weight_form: None,
+        camera: None,
     })
     .unwrap();
     // The Cortex-M4F profile gives the paired weight form (the host runs
