@@ -15,6 +15,7 @@
 
 pub mod agree;
 pub mod calibrate;
+pub mod camera;
 pub mod check;
 pub mod codegen;
 pub mod driver;

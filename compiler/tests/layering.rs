@@ -18,6 +18,7 @@ use std::path::{Path, PathBuf};
 const ORDER: &[&str] = &[
     "util",
     "guard",
+    "camera",
     "measure",
     "stats",
     "graph",

@@ -84,6 +84,7 @@ fn round_trip(onnx_name: &str, stem: &str, native: &str, calib: &str, eval: &str
             target: None,
             module: stem.into(),
             weight_form: None,
+            camera: None,
         })
         .unwrap()
         .files(stem)

@@ -20,8 +20,8 @@ use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::check::panic_probe::{build_probe, panic_sites, Handler};
 use ingot_compiler::check::runner::{require_rust_target, BuildConfig};
 use ingot_compiler::check::ModuleFiles;
-use ingot_compiler::driver::{compile, schedule_of, BuildInputs, RangesSource};
 use ingot_compiler::codegen::{generate, GenOptions, WeightForm};
+use ingot_compiler::driver::{compile, schedule_of, BuildInputs, RangesSource};
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{plan, PlanOptions};
 use ingot_compiler::reference::Reference;
@@ -151,6 +151,7 @@ fn demo_module_links_without_panic_paths() {
             target: None,
             module: "brackets".into(),
             weight_form: Some(form),
+            camera: None,
         })
         .unwrap();
         let m = write_module(

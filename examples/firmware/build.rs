@@ -3,7 +3,8 @@
 //! Uses the committed demo model and its committed ranges
 //! (`examples/demo/model/brackets.{graph,ranges}.json`, written once by
 //! `ingot calibrate`), so the build does not recalibrate, and fails when the
-//! model does not fit the demo's Cortex-M4F profile. Only when the model is
+//! model does not fit the demo's Cortex-M4F profile with its bench camera
+//! (`examples/demo/bench-camera.toml`). Only when the model is
 //! not in the tree does it fall back to a built-in demo-sized network with
 //! random weights, with a warning.
 
@@ -20,7 +21,9 @@ fn main() {
         // building the stand-in.
         Builder::new(graph)
             .ranges(ranges)
-            .target("../../targets/stm32l4r9ai.toml")
+            // The demo part with its bench camera (`[camera]`): the module
+            // also gets `FRAME_BYTES` and `frame_to_input`.
+            .target("../demo/bench-camera.toml")
             .module("model")
             .generate_or_exit();
         return;
@@ -30,6 +33,11 @@ fn main() {
         graph.display()
     );
     Builder::lowered(ingot_compiler::codegen::testnets::demo_sized())
+        .camera(ingot_compiler::camera::Camera::new(
+            ingot_compiler::camera::Format::Rgb565le,
+            320,
+            240,
+        ))
         .module("model")
         .generate_or_exit();
 }

@@ -53,7 +53,8 @@ use crate::pool::{
     avg_pool_run, check_global_pool, check_window_pool, global_pool_run, max_pool_run, PoolArgs,
 };
 use crate::{
-    AddParams, ConvParams, Error, InputTransform, MapRef, OutputQuant, PoolQuant, Requant, Window,
+    AddParams, ConvParams, Error, FrameParams, InputTransform, MapRef, OutputQuant, PoolQuant,
+    Requant, Window,
 };
 
 /// A checked [`conv2d`](crate::conv2d) call for an arena of `A` bytes and
@@ -332,5 +333,33 @@ impl<'a, const N: usize> QuantizePixels<'a, N> {
     /// The quantization; cannot fail.
     pub fn run(&self, pixels: &[u8; N], input: &mut [i8; N]) {
         pixels_run(pixels, input, self.output, self.table);
+    }
+}
+
+/// A checked [`convert_frame`](crate::convert_frame) from a frame of `F`
+/// bytes into an input of `N` codes.
+#[derive(Debug, Clone, Copy)]
+pub struct ConvertFrame<'a, const F: usize, const N: usize> {
+    params: FrameParams,
+    table: &'a [i8],
+}
+
+impl<'a, const F: usize, const N: usize> ConvertFrame<'a, F, N> {
+    /// Checks what [`convert_frame`](crate::convert_frame) checks at run
+    /// time: the frame holds `params.frame_bytes()` bytes, the input
+    /// `params.input_len()` codes, the table 256 entries per channel.
+    pub const fn new(params: FrameParams, table: &'a [i8]) -> Result<Self, Error> {
+        let c = params.config().out_c as usize;
+        if F < params.frame_bytes() || N < params.input_len() || table.len() < 256 * c {
+            return Err(Error::BufferTooSmall);
+        }
+        Ok(ConvertFrame { params, table })
+    }
+
+    /// The conversion; cannot fail.
+    pub fn run(&self, frame: &[u8; F], input: &mut [i8; N]) {
+        // The only refusal of `convert_frame` is a short buffer, which
+        // `new` ruled out for these lengths.
+        let _ = crate::convert_frame(frame, &self.params, self.table, input);
     }
 }

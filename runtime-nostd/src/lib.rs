@@ -179,7 +179,8 @@
 //!
 //! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
 //! [`global_avg_pool`], [`add`], [`channel_transform`], [`copy_channels`], [`quantize_pixels`], [`copy_in`],
-//! [`copy_out`], [`argmax`], [`dequantize`].
+//! [`copy_out`], [`argmax`], [`dequantize`]; camera frames in:
+//! [`convert_frame`] (see [`FrameConfig`]).
 #![no_std]
 #![forbid(unsafe_code)]
 #![deny(missing_docs)]
@@ -190,6 +191,7 @@ mod conv;
 mod dot;
 mod eltwise;
 mod error;
+mod frame;
 mod io;
 mod linear;
 mod map;
@@ -204,6 +206,9 @@ pub use conv::{
 };
 pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;
+pub use frame::{
+    convert_frame, FrameConfig, FrameError, FrameParams, Luma, PixelFormat, Resize, Roi,
+};
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
 pub use linear::linear;
 pub use map::MapRef;

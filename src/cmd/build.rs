@@ -37,6 +37,9 @@ pub struct Args {
     /// [default: by the --target core, else int8]
     #[arg(long)]
     pub weight_form: Option<WeightForm>,
+    /// Camera frames in (adds `FRAME_BYTES` and `frame_to_input`).
+    #[command(flatten)]
+    pub camera: super::camera::CameraArgs,
 }
 
 /// Compiles in memory, then writes all files into `--out` or none.
@@ -52,6 +55,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         target: args.target.clone(),
         module: args.module.clone(),
         weight_form: args.weight_form,
+        camera: args.camera.camera()?,
     };
     let c = pipeline::compile(&req)?;
     super::print_warnings(&c.graph);

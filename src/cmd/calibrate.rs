@@ -85,8 +85,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         args.force,
     )
     .context("cannot write the ranges file")?;
-    let mut report =
-        agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
+    let mut report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
     report.set_good_classes(&good, graph.labels());
     if args.json {
         let mut v = serde_json::to_value(&report)?;

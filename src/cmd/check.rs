@@ -210,7 +210,6 @@ fn refuse_foreign_report(a: &Args) -> anyhow::Result<()> {
     }
 }
 
-
 fn gates(a: &Args) -> Gates {
     Gates {
         max_drop_upper_pp: a.max_drop_upper,

@@ -2,6 +2,7 @@
 
 pub mod build;
 pub mod calibrate;
+pub mod camera;
 pub mod check;
 pub mod import;
 pub mod inspect;

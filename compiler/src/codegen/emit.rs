@@ -637,6 +637,10 @@ pub fn module(ctx: &Ctx<'_>) -> String {
 
     let mut lits = Literals(Vec::new());
     let data = data_module(ctx, &mut lits);
+    let camera = match &ctx.opt.camera {
+        Some(cam) => super::camera::tokens(q, cam).unwrap_or_default(),
+        None => TokenStream::new(),
+    };
     let body = forward_body(ctx);
 
     let mut run_doc = vec![
@@ -768,6 +772,8 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         pub fn quantize_pixels(pixels: &[u8; INPUT_LEN], input: &mut [i8; INPUT_LEN]) {
             ingot_data::QUANTIZE.run(pixels, input);
         }
+
+        #camera
 
         /// Index of the largest output code (first one on ties): the class.
         pub fn argmax(output: &[i8; OUTPUT_LEN]) -> usize {

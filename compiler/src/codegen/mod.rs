@@ -28,6 +28,7 @@
 
 pub mod blob;
 pub mod calls;
+pub mod camera;
 pub mod emit;
 pub mod names;
 pub mod output;
@@ -82,6 +83,8 @@ pub struct GenOptions {
     pub dry_run: bool,
     /// How convolution weights are stored (default int8).
     pub weight_form: WeightForm,
+    /// The camera, when frames come in (adds `FRAME_*` and `frame_to_input`).
+    pub camera: Option<crate::camera::Camera>,
 }
 
 impl Default for GenOptions {
@@ -93,6 +96,7 @@ impl Default for GenOptions {
             source_hash: String::new(),
             dry_run: true,
             weight_form: WeightForm::Int8,
+            camera: None,
         }
     }
 }
@@ -164,6 +168,9 @@ pub enum CodegenError {
         /// Available bytes.
         have: usize,
     },
+    /// The camera does not fit the network's input or the kernel's limits.
+    #[error(transparent)]
+    Camera(#[from] crate::camera::CameraError),
 }
 
 // The hash of `MODEL_HASH`, under its former path.
@@ -180,6 +187,9 @@ pub fn is_module_name(s: &str) -> bool {
 pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated, CodegenError> {
     if !is_module_name(&opt.module) {
         return Err(CodegenError::ModuleName(opt.module.clone()));
+    }
+    if let Some(cam) = &opt.camera {
+        camera::params(q, cam)?;
     }
     // The paired form's row buffers may need a larger patch than the
     // schedule was made with.

@@ -26,6 +26,7 @@ pub struct Builder {
     out_dir: Option<PathBuf>,
     lowered: Option<Box<crate::lower::QGraph>>,
     weight_form: Option<crate::codegen::WeightForm>,
+    camera: Option<crate::camera::Camera>,
 }
 
 /// What [`Builder::generate`] wrote.
@@ -84,6 +85,7 @@ impl Builder {
             out_dir: None,
             lowered: None,
             weight_form: None,
+            camera: None,
         }
     }
 
@@ -133,6 +135,13 @@ impl Builder {
         self
     }
 
+    /// Frames come from this camera (instead of the target's `[camera]`):
+    /// the module gets `FRAME_BYTES` and `frame_to_input`.
+    pub fn camera(mut self, camera: crate::camera::Camera) -> Self {
+        self.camera = Some(camera);
+        self
+    }
+
     /// Output folder instead of `OUT_DIR`.
     pub fn out_dir(mut self, dir: impl AsRef<Path>) -> Self {
         self.out_dir = Some(dir.as_ref().into());
@@ -150,6 +159,7 @@ impl Builder {
             target: self.target.clone(),
             module: self.module.clone(),
             weight_form: self.weight_form,
+            camera: self.camera.clone(),
         })
     }
 
@@ -189,6 +199,7 @@ impl Builder {
                     module: self.module.clone(),
                     target: target.as_ref().map(pipeline::target_info),
                     weight_form: pipeline::weight_form_for(self.weight_form, target.as_ref()),
+                    camera: pipeline::camera_for(self.camera.as_ref(), target.as_ref()),
                     ..crate::codegen::GenOptions::default()
                 };
                 crate::codegen::generate(q, &crate::codegen::Schedule::naive(q), &opt)

@@ -44,6 +44,8 @@ pub struct BuildInputs {
     /// How convolution weights are stored; `None`: chosen by the target's
     /// core ([`WeightForm::for_core`]), int8 without a target.
     pub weight_form: Option<WeightForm>,
+    /// The camera; `None`: the target's `[camera]`, if any.
+    pub camera: Option<crate::camera::Camera>,
 }
 
 /// The weight form of a request: the explicit choice, else the target
@@ -52,6 +54,16 @@ pub fn weight_form_for(explicit: Option<WeightForm>, target: Option<&Target>) ->
     explicit
         .or_else(|| target.map(|t| WeightForm::for_core(&t.core)))
         .unwrap_or_default()
+}
+
+/// The camera of a request: the explicit one, else the target's.
+pub fn camera_for(
+    explicit: Option<&crate::camera::Camera>,
+    target: Option<&Target>,
+) -> Option<crate::camera::Camera> {
+    explicit
+        .or_else(|| target.and_then(|t| t.camera.as_ref()))
+        .cloned()
 }
 
 /// Everything one compilation produced, in memory.
@@ -301,6 +313,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
         }),
         source_hash: format!("{graph_hash}:{ranges_hash}"),
         weight_form,
+        camera: camera_for(req.camera.as_ref(), target.as_ref()),
         ..GenOptions::default()
     };
     let generated = codegen::generate(&q, &schedule, &opt)?;

@@ -79,6 +79,10 @@ pub struct Target {
     pub flash: Memory,
     /// Source of the figures.
     pub datasheet: Datasheet,
+    /// The camera that feeds the network, if the profile names one
+    /// (`[camera]`, see `docs/targets.md`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub camera: Option<crate::camera::Camera>,
 }
 
 /// Why a profile could not be loaded.

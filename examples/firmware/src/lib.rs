@@ -26,6 +26,19 @@ pub fn classify(scratch: &mut Scratch, pixels: &[u8; model::INPUT_LEN]) -> usize
     model::argmax(&output)
 }
 
+/// Classifies one camera frame straight from the sensor (RGB565,
+/// [`model::FRAME_WIDTH`] × [`model::FRAME_HEIGHT`], as the build's camera
+/// says): the frame-to-decision loop is these two generated calls plus the
+/// arg-max. No frame copy: [`model::frame_to_input`] crops, resizes, turns
+/// gray and quantizes in one pass into the input buffer.
+pub fn classify_frame(scratch: &mut Scratch, frame: &[u8; model::FRAME_BYTES]) -> usize {
+    let mut input = [0i8; model::INPUT_LEN];
+    model::frame_to_input(frame, &mut input);
+    let mut output = [0i8; model::OUTPUT_LEN];
+    model::run(scratch, &input, &mut output);
+    model::argmax(&output)
+}
+
 /// The label of a class index (`"?"` when out of range).
 pub fn label(class: usize) -> &'static str {
     model::LABELS.get(class).copied().unwrap_or("?")

@@ -115,9 +115,10 @@ fn demo_model_matches_simulator_on_eval_images() {
     let c = pipeline::compile(&BuildInputs {
         graph: demo().join("model/brackets.graph.json"),
         ranges: RangesSource::File(demo().join("model/brackets.ranges.json")),
-        target: Some(demo().join("../../targets/stm32l4r9ai.toml")),
+        target: Some(demo().join("bench-camera.toml")),
         module: "model".into(),
         weight_form: None,
+        camera: None,
     })
     .unwrap();
     // The Cortex-M4F profile gives the paired weight form (the host runs
@@ -174,3 +175,58 @@ fn demo_model_matches_simulator_on_eval_images() {
 /// well above it; `ingot check` on the whole evaluation set is the real
 /// measure, see the README).
 const MIN_ACCURACY: f64 = 0.9;
+
+/// The frame-to-decision loop on a synthetic RGB565 frame (a bright
+/// rectangle on a dark gradient): `classify_frame` gives the same input
+/// codes as the host running `ingot_rt::convert_frame` with the build's
+/// camera, and the same class as the compiler's integer simulator on them.
+#[test]
+fn classifies_a_synthetic_rgb565_frame() {
+    let (w, h) = (model::FRAME_WIDTH, model::FRAME_HEIGHT);
+    let mut frame = [0u8; model::FRAME_BYTES];
+    for y in 0..h {
+        for x in 0..w {
+            let bright = (120..200).contains(&x) && (90..150).contains(&y);
+            let (r, g, b) = if bright {
+                (28u16, 58u16, 27u16)
+            } else {
+                ((x / 20) as u16, (y / 8) as u16, 4)
+            };
+            let word = (r << 11) | (g << 5) | b;
+            frame[2 * (y * w + x)..2 * (y * w + x) + 2].copy_from_slice(&word.to_le_bytes());
+        }
+    }
+    let mut scratch = Box::new(Scratch::new());
+    let class = ingot_firmware_example::classify_frame(&mut scratch, &frame);
+    println!("synthetic frame -> {} ({class})", label(class));
+    let mut input = [0i8; model::INPUT_LEN];
+    model::frame_to_input(&frame, &mut input);
+    let [ih, iw, ic] = model::INPUT_SHAPE;
+    let q = if model::MODEL_NAME == "demo_sized" {
+        ingot_compiler::codegen::testnets::demo_sized()
+    } else {
+        pipeline::compile(&BuildInputs {
+            graph: demo().join("model/brackets.graph.json"),
+            ranges: RangesSource::File(demo().join("model/brackets.ranges.json")),
+            target: Some(demo().join("bench-camera.toml")),
+            module: "model".into(),
+            weight_form: None,
+            camera: None,
+        })
+        .unwrap()
+        .qgraph
+    };
+    let cam =
+        ingot_compiler::camera::Camera::new(ingot_compiler::camera::Format::Rgb565le, 320, 240);
+    let p = cam.params(iw as u32, ih as u32, ic as u32).unwrap();
+    assert_eq!(p, model::FRAME);
+    let mut want = vec![0i8; model::INPUT_LEN];
+    ingot_rt::convert_frame(&frame, &p, &q.pixel_table, &mut want).unwrap();
+    assert_eq!(
+        input.to_vec(),
+        want,
+        "frame_to_input differs from the host kernel"
+    );
+    let out = Simulator::new(&q).run(SimInput::Codes(&want)).unwrap();
+    assert_eq!(class, ingot_rt::argmax(&out));
+}

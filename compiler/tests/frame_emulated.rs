@@ -1,0 +1,71 @@
+//! `ingot_rt::convert_frame` on emulated Cortex-M0+ and Cortex-M4 cores
+//! gives the same input bytes as on the host, for every pixel format and
+//! resize method, with a region, rotation and mirroring (the instruction
+//! counts are printed by `examples/bench_frame`, not asserted here).
+
+#[path = "../examples/bench_frame/harness.rs"]
+mod harness;
+
+use harness::Case;
+use ingot_compiler::check::runner::BuildConfig;
+use ingot_compiler::check::{emulation_or_skip, RunOn};
+use ingot_rt::{FrameConfig, Luma, PixelFormat, Resize};
+
+fn cases() -> Vec<Case> {
+    let c = |name: &str, cfg: FrameConfig| Case {
+        name: name.into(),
+        cfg,
+    };
+    vec![
+        c(
+            "rgb565le area",
+            FrameConfig::new(PixelFormat::Rgb565Le, 64, 48, 17, 13, 1),
+        ),
+        c(
+            "rgb565be bilinear",
+            FrameConfig::new(PixelFormat::Rgb565Be, 64, 48, 20, 20, 3)
+                .resize(Resize::Bilinear)
+                .luma(Luma::Bt709),
+        ),
+        c(
+            "yuyv nearest rotated",
+            FrameConfig::new(PixelFormat::Yuyv, 40, 30, 31, 29, 1)
+                .resize(Resize::Nearest)
+                .rotate180(true),
+        ),
+        c(
+            "rgb888 area mirrored",
+            FrameConfig::new(PixelFormat::Rgb888, 33, 21, 7, 5, 1)
+                .roi(3, 2, 29, 17)
+                .mirror(true)
+                .luma(Luma::Bt709),
+        ),
+        c(
+            "gray8 bilinear enlarging",
+            FrameConfig::new(PixelFormat::Gray8, 9, 7, 16, 12, 3)
+                .roi(1, 1, 5, 4)
+                .resize(Resize::Bilinear)
+                .rotate180(true)
+                .mirror(true),
+        ),
+    ]
+}
+
+#[test]
+fn device_bytes_equal_host_bytes() {
+    let cases = cases();
+    for on in [RunOn::M0plus, RunOn::M4] {
+        if !emulation_or_skip(on) {
+            continue;
+        }
+        let res = harness::run(on, &cases, &BuildConfig::default()).unwrap();
+        assert_eq!(res.len(), cases.len());
+        for (c, m) in cases.iter().zip(&res) {
+            assert_eq!(m.device_hash, m.host_hash, "{on}: {}", c.name);
+            assert!(m.instructions > 0, "{on}: {}", c.name);
+            // No temporary frame: the kernel's stack stays a few hundred
+            // bytes (upper bound incl. the timer reads; bench_frame prints it).
+            assert!(m.stack <= 1024, "{on}: {}: {} stack bytes", c.name, m.stack);
+        }
+    }
+}

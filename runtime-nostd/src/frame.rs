@@ -1,0 +1,743 @@
+//! Camera frames in: a sensor frame (gray8, RGB565, RGB888 or YUYV) is
+//! cropped to a region of interest, resized, optionally rotated by 180° and
+//! mirrored, converted to gray or RGB, and quantized through the model's
+//! pixel table, in one pass, straight into the network's input.
+//!
+//! Everything is integer: no floating point, no temporary frame (a few
+//! words of stack), no allocation, and no panic path (slices are reached
+//! with `get`, divisors are `NonZeroU32`). The parameters are a
+//! [`FrameParams`], which only [`FrameConfig::validate`] builds; that is a
+//! `const fn`, so a generated module checks its camera at compile time and
+//! the kernel needs no run-time check beyond the slice lengths.
+//!
+//! # Conventions
+//!
+//! * **Order of operations.** The region of interest is given in frame
+//!   coordinates. It is resized to the network's `out_w × out_h`; the
+//!   result is then rotated by 180° (if asked) and then mirrored
+//!   left-right (if asked). Rotation and mirroring together are a
+//!   top-bottom flip.
+//! * **Samples.** A source pixel becomes one integer per output channel, in
+//!   units of 1/2^`SHIFT` of an 8-bit code: 8-bit channels are used as they
+//!   are, RGB565's 5- and 6-bit fields are scaled by 255/31 and 255/63
+//!   (common practice), folded into fixed-point weights.
+//! * **Gray from colour** uses the luma weights of ITU-R BT.601
+//!   (`Y = 0.299 R + 0.587 G + 0.114 B`, the usual choice for camera YUV)
+//!   or ITU-R BT.709 (`Y = 0.2126 R + 0.7152 G + 0.0722 B`), selected by
+//!   [`Luma`], in Q10 fixed point. YUYV to gray takes the Y bytes directly.
+//!   Gray8 to a 3-channel input repeats the gray value; YUYV to a
+//!   3-channel input is refused ([`FrameError::Unsupported`]).
+//! * **[`Resize::Area`]** (shrinking only): output pixel `ox` averages the
+//!   source columns `[⌊ox·w/ow⌋, ⌊(ox+1)·w/ow⌋)` of the region (and
+//!   likewise for rows), every source pixel with weight 1, so each source
+//!   pixel is read exactly once; the average is rounded to nearest, ties
+//!   up. When `w` is not a multiple of `ow` the windows differ in size by
+//!   one pixel (a box filter on integer pixel boundaries, not fractional
+//!   coverage).
+//! * **[`Resize::Bilinear`]** uses the half-pixel-centre convention: output
+//!   `o` samples the region at `(o + ½)·w/ow − ½`, clamped to `[0, w − 1]`,
+//!   with the position in 1/256 pixel.
+//! * **[`Resize::Nearest`]** takes source pixel `⌊(o + ½)·w/ow⌋`.
+//! * **Limits.** Frame bytes must fit `u32`; an area window (at most
+//!   `⌈w/ow⌉·⌈h/oh⌉` pixels) must keep its sum inside `u32`, about 16,000
+//!   pixels for colour formats (a 640×480 frame can still shrink to 5×4).
+
+use crate::Error;
+use core::num::NonZeroU32;
+
+/// How a camera lays out one frame in memory (rows top to bottom, pixels
+/// left to right, no padding between rows).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum PixelFormat {
+    /// One byte per pixel, gray.
+    Gray8,
+    /// Two bytes per pixel, `RRRRRGGG GGGBBBBB` as a 16-bit word stored
+    /// low byte first.
+    Rgb565Le,
+    /// The same 16-bit word stored high byte first.
+    Rgb565Be,
+    /// Three bytes per pixel: R, G, B.
+    Rgb888,
+    /// YUV 4:2:2, four bytes per two pixels: `Y0 U Y1 V`.
+    Yuyv,
+}
+
+impl PixelFormat {
+    /// Bytes per pixel (YUYV: 4 bytes per 2 pixels, so 2).
+    pub const fn bytes_per_pixel(self) -> u32 {
+        match self {
+            PixelFormat::Gray8 => 1,
+            PixelFormat::Rgb565Le | PixelFormat::Rgb565Be | PixelFormat::Yuyv => 2,
+            PixelFormat::Rgb888 => 3,
+        }
+    }
+}
+
+/// How the region of interest is scaled to the network's input size.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Resize {
+    /// Average of the source pixels each output pixel covers (shrinking).
+    Area,
+    /// Bilinear interpolation, half-pixel centres.
+    Bilinear,
+    /// Nearest source pixel.
+    Nearest,
+}
+
+/// Which luma weights turn colour into gray.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Luma {
+    /// ITU-R BT.601: 0.299, 0.587, 0.114.
+    Bt601,
+    /// ITU-R BT.709: 0.2126, 0.7152, 0.0722.
+    Bt709,
+}
+
+impl Luma {
+    /// The R, G, B weights in units of 1/10,000 (exact for both
+    /// recommendations).
+    pub const fn coefficients(self) -> [u32; 3] {
+        match self {
+            Luma::Bt601 => [2990, 5870, 1140],
+            Luma::Bt709 => [2126, 7152, 722],
+        }
+    }
+}
+
+/// A rectangle of the frame, in frame pixels.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Roi {
+    /// Left column.
+    pub x: u32,
+    /// Top row.
+    pub y: u32,
+    /// Width.
+    pub w: u32,
+    /// Height.
+    pub h: u32,
+}
+
+impl Roi {
+    /// The largest region centred in a `frame_w × frame_h` frame with the
+    /// aspect ratio of `out_w × out_h` (the whole frame when the ratios
+    /// agree). Zero sizes give a zero region, which validation refuses.
+    pub const fn centred(frame_w: u32, frame_h: u32, out_w: u32, out_h: u32) -> Roi {
+        if out_w == 0 || out_h == 0 {
+            return Roi {
+                x: 0,
+                y: 0,
+                w: 0,
+                h: 0,
+            };
+        }
+        let (fw, fh, ow, oh) = (frame_w as u64, frame_h as u64, out_w as u64, out_h as u64);
+        if fw * oh >= fh * ow {
+            let w = fh * ow / oh;
+            Roi {
+                x: ((fw - w) / 2) as u32,
+                y: 0,
+                w: w as u32,
+                h: frame_h,
+            }
+        } else {
+            let h = fw * oh / ow;
+            Roi {
+                x: 0,
+                y: ((fh - h) / 2) as u32,
+                w: frame_w,
+                h: h as u32,
+            }
+        }
+    }
+}
+
+/// Why a camera configuration was refused.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum FrameError {
+    /// The frame, the region or the output has a zero width or height.
+    ZeroSize,
+    /// The output has neither 1 (gray) nor 3 (RGB) channels.
+    Channels,
+    /// The region of interest reaches outside the frame.
+    RoiOutsideFrame,
+    /// The frame's byte count (or the output's) does not fit in `u32`.
+    FrameTooLarge,
+    /// An area window sums too many pixels for a `u32` accumulator.
+    WindowTooLarge,
+    /// Area averaging cannot enlarge: the output is larger than the region.
+    AreaEnlarges,
+    /// YUYV frames need an even width (two pixels share their chroma).
+    OddYuyvWidth,
+    /// This format cannot produce this many channels (YUYV to RGB).
+    Unsupported,
+}
+
+/// An unvalidated camera description; [`FrameConfig::validate`] turns it
+/// into the [`FrameParams`] the kernel takes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct FrameConfig {
+    /// The sensor's pixel format.
+    pub format: PixelFormat,
+    /// Frame width in pixels.
+    pub frame_w: u32,
+    /// Frame height in pixels.
+    pub frame_h: u32,
+    /// The part of the frame the network sees.
+    pub roi: Roi,
+    /// Network input width.
+    pub out_w: u32,
+    /// Network input height.
+    pub out_h: u32,
+    /// Network input channels: 1 (gray) or 3 (RGB).
+    pub out_c: u32,
+    /// Resize method.
+    pub resize: Resize,
+    /// Rotate the result by 180°.
+    pub rotate180: bool,
+    /// Mirror the result left-right (after any rotation).
+    pub mirror: bool,
+    /// Luma weights for gray from colour.
+    pub luma: Luma,
+}
+
+impl FrameConfig {
+    /// A frame of `frame_w × frame_h` for an `out_w × out_h × out_c` input,
+    /// with the defaults: centred region of the input's aspect ratio
+    /// ([`Roi::centred`]), area averaging, no rotation or mirroring,
+    /// BT.601 luma.
+    pub const fn new(
+        format: PixelFormat,
+        frame_w: u32,
+        frame_h: u32,
+        out_w: u32,
+        out_h: u32,
+        out_c: u32,
+    ) -> FrameConfig {
+        FrameConfig {
+            format,
+            frame_w,
+            frame_h,
+            roi: Roi::centred(frame_w, frame_h, out_w, out_h),
+            out_w,
+            out_h,
+            out_c,
+            resize: Resize::Area,
+            rotate180: false,
+            mirror: false,
+            luma: Luma::Bt601,
+        }
+    }
+
+    /// Sets the region of interest.
+    pub const fn roi(mut self, x: u32, y: u32, w: u32, h: u32) -> FrameConfig {
+        self.roi = Roi { x, y, w, h };
+        self
+    }
+
+    /// Sets the resize method.
+    pub const fn resize(mut self, resize: Resize) -> FrameConfig {
+        self.resize = resize;
+        self
+    }
+
+    /// Rotates the result by 180° or not.
+    pub const fn rotate180(mut self, on: bool) -> FrameConfig {
+        self.rotate180 = on;
+        self
+    }
+
+    /// Mirrors the result left-right or not.
+    pub const fn mirror(mut self, on: bool) -> FrameConfig {
+        self.mirror = on;
+        self
+    }
+
+    /// Sets the luma weights.
+    pub const fn luma(mut self, luma: Luma) -> FrameConfig {
+        self.luma = luma;
+        self
+    }
+
+    /// Checks every limit and precomputes the fixed-point weights.
+    pub const fn validate(self) -> Result<FrameParams, FrameError> {
+        let c = self;
+        if c.frame_w == 0 || c.frame_h == 0 || c.roi.w == 0 || c.roi.h == 0 {
+            return Err(FrameError::ZeroSize);
+        }
+        if c.out_w == 0 || c.out_h == 0 {
+            return Err(FrameError::ZeroSize);
+        }
+        if c.out_c != 1 && c.out_c != 3 {
+            return Err(FrameError::Channels);
+        }
+        let bpp = c.format.bytes_per_pixel();
+        let frame_bytes = match c.frame_w.checked_mul(c.frame_h) {
+            Some(px) => match px.checked_mul(bpp) {
+                Some(b) => b,
+                None => return Err(FrameError::FrameTooLarge),
+            },
+            None => return Err(FrameError::FrameTooLarge),
+        };
+        match c.out_w.checked_mul(c.out_h) {
+            Some(px) if px.checked_mul(c.out_c).is_some() => {}
+            _ => return Err(FrameError::FrameTooLarge),
+        }
+        // usize may be 16 bits wide on some targets; the kernel indexes
+        // with usize.
+        if frame_bytes as usize as u32 != frame_bytes {
+            return Err(FrameError::FrameTooLarge);
+        }
+        match (c.roi.x.checked_add(c.roi.w), c.roi.y.checked_add(c.roi.h)) {
+            (Some(r), Some(b)) if r <= c.frame_w && b <= c.frame_h => {}
+            _ => return Err(FrameError::RoiOutsideFrame),
+        }
+        if matches!(c.format, PixelFormat::Yuyv) {
+            if c.frame_w % 2 != 0 {
+                return Err(FrameError::OddYuyvWidth);
+            }
+            if c.out_c == 3 {
+                return Err(FrameError::Unsupported);
+            }
+        }
+        let (weights, shift) = weights(c.format, c.out_c, c.luma);
+        // Largest sample of any channel.
+        let max_sample = if c.out_c == 1 {
+            let m = field_max(c.format);
+            weights[0] * m[0] + weights[1] * m[1] + weights[2] * m[2]
+        } else {
+            let m = field_max(c.format);
+            let (a, b, d) = (weights[0] * m[0], weights[1] * m[1], weights[2] * m[2]);
+            let ab = if a > b { a } else { b };
+            if ab > d {
+                ab
+            } else {
+                d
+            }
+        };
+        if matches!(c.resize, Resize::Area) {
+            if c.out_w > c.roi.w || c.out_h > c.roi.h {
+                return Err(FrameError::AreaEnlarges);
+            }
+            let win = c.roi.w.div_ceil(c.out_w) as u64 * c.roi.h.div_ceil(c.out_h) as u64;
+            // sum + den/2 must fit: win · (max_sample + 2^shift).
+            if win * (max_sample as u64 + (1u64 << shift)) > u32::MAX as u64 {
+                return Err(FrameError::WindowTooLarge);
+            }
+        }
+        Ok(FrameParams {
+            cfg: c,
+            weights,
+            shift,
+            bpp,
+            frame_bytes,
+        })
+    }
+}
+
+/// The largest value of each field a format stores, in its own units.
+const fn field_max(f: PixelFormat) -> [u32; 3] {
+    match f {
+        PixelFormat::Rgb565Le | PixelFormat::Rgb565Be => [31, 63, 31],
+        PixelFormat::Rgb888 => [255, 255, 255],
+        // Gray and YUYV: one field (weights[1], [2] are 0).
+        PixelFormat::Gray8 | PixelFormat::Yuyv => [255, 0, 0],
+    }
+}
+
+/// Fraction bits of a colour sample.
+const Q: u32 = 10;
+
+/// `round(num / den)` in integers.
+const fn div_round(num: u64, den: u64) -> u32 {
+    ((2 * num + den) / (2 * den)) as u32
+}
+
+/// Per-field weights and the fraction bits of the resulting sample.
+///
+/// Gray from colour: `coef · (255 / field_max) · 2^10`, so that a sample is
+/// the luma of the 8-bit-scaled colour in Q10. RGB from RGB565: each field
+/// scaled by `255 / field_max` in Q10. Plain 8-bit values keep shift 0.
+const fn weights(f: PixelFormat, out_c: u32, luma: Luma) -> ([u32; 3], u32) {
+    let m = field_max(f);
+    match f {
+        PixelFormat::Gray8 | PixelFormat::Yuyv => ([1, 0, 0], 0),
+        PixelFormat::Rgb888 if out_c == 3 => ([1, 1, 1], 0),
+        _ => {
+            let coef = luma.coefficients();
+            let mut w = [0u32; 3];
+            let mut i = 0;
+            while i < 3 {
+                let (num, den) = if out_c == 1 {
+                    ((coef[i] as u64 * 255) << Q, 10_000 * m[i] as u64)
+                } else {
+                    ((255u64) << Q, m[i] as u64)
+                };
+                w[i] = div_round(num, den);
+                i += 1;
+            }
+            (w, Q)
+        }
+    }
+}
+
+/// A validated camera description: only [`FrameConfig::validate`] builds
+/// one, so the kernel trusts its fields.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct FrameParams {
+    cfg: FrameConfig,
+    weights: [u32; 3],
+    shift: u32,
+    bpp: u32,
+    frame_bytes: u32,
+}
+
+impl FrameParams {
+    /// The configuration it was validated from.
+    pub const fn config(&self) -> FrameConfig {
+        self.cfg
+    }
+
+    /// Bytes of one frame (`frame_w · frame_h · bytes_per_pixel`).
+    pub const fn frame_bytes(&self) -> usize {
+        self.frame_bytes as usize
+    }
+
+    /// Values written to the input (`out_h · out_w · out_c`).
+    pub const fn input_len(&self) -> usize {
+        (self.cfg.out_w * self.cfg.out_h * self.cfg.out_c) as usize
+    }
+
+    /// Fixed-point weights of the R, G, B fields (or of the one gray
+    /// field) and their fraction bits: a sample is `Σ w·field / 2^shift`
+    /// 8-bit codes.
+    pub const fn weights(&self) -> ([u32; 3], u32) {
+        (self.weights, self.shift)
+    }
+}
+
+/// Converts one camera frame into the network's input: crop, resize,
+/// rotate/mirror, colour conversion and quantization through `table` (the
+/// model's pixel table, `256·out_c` entries,
+/// `input[(y·out_w + x)·out_c + ch] = table[ch·256 + code]`) in one pass.
+///
+/// Fails with [`Error::BufferTooSmall`] (writing nothing) when `frame`,
+/// `table` or `input` is shorter than the parameters need.
+pub fn convert_frame(
+    frame: &[u8],
+    params: &FrameParams,
+    table: &[i8],
+    input: &mut [i8],
+) -> Result<(), Error> {
+    let c = params.cfg.out_c as usize;
+    if frame.len() < params.frame_bytes()
+        || input.len() < params.input_len()
+        || table.len() < 256 * c
+    {
+        return Err(Error::BufferTooSmall);
+    }
+    let p = params;
+    match (p.cfg.format, c) {
+        (PixelFormat::Gray8, 1) => run::<Gray8>(frame, p, table, input),
+        (PixelFormat::Gray8, _) => run::<Gray8Rgb>(frame, p, table, input),
+        (PixelFormat::Yuyv, _) => run::<YuyvY>(frame, p, table, input),
+        (PixelFormat::Rgb888, 1) => run::<Rgb888Gray>(frame, p, table, input),
+        (PixelFormat::Rgb888, _) => run::<Rgb888Rgb>(frame, p, table, input),
+        (PixelFormat::Rgb565Le, 1) => run::<Rgb565Gray<false>>(frame, p, table, input),
+        (PixelFormat::Rgb565Le, _) => run::<Rgb565Rgb<false>>(frame, p, table, input),
+        (PixelFormat::Rgb565Be, 1) => run::<Rgb565Gray<true>>(frame, p, table, input),
+        (PixelFormat::Rgb565Be, _) => run::<Rgb565Rgb<true>>(frame, p, table, input),
+    }
+    Ok(())
+}
+
+/// One source pixel's bytes to samples, added into `acc` (the first `CH`
+/// entries). `px` is always `BPP` bytes long (`chunks_exact`).
+trait Sampler {
+    const BPP: usize;
+    const CH: usize;
+    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]);
+}
+
+struct Gray8;
+impl Sampler for Gray8 {
+    const BPP: usize = 1;
+    const CH: usize = 1;
+    #[inline(always)]
+    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+        if let [g] = *px {
+            acc[0] += g as u32;
+        }
+    }
+}
+
+struct Gray8Rgb;
+impl Sampler for Gray8Rgb {
+    const BPP: usize = 1;
+    const CH: usize = 3;
+    #[inline(always)]
+    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+        if let [g] = *px {
+            acc[0] += g as u32;
+            acc[1] += g as u32;
+            acc[2] += g as u32;
+        }
+    }
+}
+
+/// YUYV to gray: the Y byte of this pixel. The kernel passes 2-byte
+/// chunks, `Y U` for even and `Y V` for odd pixels, so Y is always first.
+struct YuyvY;
+impl Sampler for YuyvY {
+    const BPP: usize = 2;
+    const CH: usize = 1;
+    #[inline(always)]
+    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+        if let [y, _] = *px {
+            acc[0] += y as u32;
+        }
+    }
+}
+
+struct Rgb888Gray;
+impl Sampler for Rgb888Gray {
+    const BPP: usize = 3;
+    const CH: usize = 1;
+    #[inline(always)]
+    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]) {
+        if let [r, g, b] = *px {
+            acc[0] += r as u32 * w[0] + g as u32 * w[1] + b as u32 * w[2];
+        }
+    }
+}
+
+struct Rgb888Rgb;
+impl Sampler for Rgb888Rgb {
+    const BPP: usize = 3;
+    const CH: usize = 3;
+    #[inline(always)]
+    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+        if let [r, g, b] = *px {
+            acc[0] += r as u32;
+            acc[1] += g as u32;
+            acc[2] += b as u32;
+        }
+    }
+}
+
+/// The RGB565 word of a 2-byte pixel.
+#[inline(always)]
+fn word565<const BE: bool>(px: &[u8]) -> u32 {
+    match *px {
+        [a, b] if BE => u16::from_be_bytes([a, b]) as u32,
+        [a, b] => u16::from_le_bytes([a, b]) as u32,
+        _ => 0,
+    }
+}
+
+struct Rgb565Gray<const BE: bool>;
+impl<const BE: bool> Sampler for Rgb565Gray<BE> {
+    const BPP: usize = 2;
+    const CH: usize = 1;
+    #[inline(always)]
+    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]) {
+        let v = word565::<BE>(px);
+        acc[0] += (v >> 11) * w[0] + ((v >> 5) & 63) * w[1] + (v & 31) * w[2];
+    }
+}
+
+struct Rgb565Rgb<const BE: bool>;
+impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
+    const BPP: usize = 2;
+    const CH: usize = 3;
+    #[inline(always)]
+    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]) {
+        let v = word565::<BE>(px);
+        acc[0] += (v >> 11) * w[0];
+        acc[1] += ((v >> 5) & 63) * w[1];
+        acc[2] += (v & 31) * w[2];
+    }
+}
+
+/// Where resized pixel `(ry, rx)` goes in the input, after rotation and
+/// mirroring.
+#[inline(always)]
+fn dst_index(p: &FrameParams, ry: u32, rx: u32) -> usize {
+    let (ow, oh) = (p.cfg.out_w, p.cfg.out_h);
+    let flip_y = p.cfg.rotate180;
+    let flip_x = p.cfg.rotate180 != p.cfg.mirror;
+    let y = if flip_y { oh - 1 - ry } else { ry };
+    let x = if flip_x { ow - 1 - rx } else { rx };
+    ((y * ow + x) * p.cfg.out_c) as usize
+}
+
+/// Writes one output pixel: `code = min(255, value)` through the table.
+#[inline(always)]
+fn put<const CH: usize>(input: &mut [i8], table: &[i8], at: usize, codes: [u32; 3]) {
+    let mut k = 0;
+    while k < CH {
+        let code = if codes[k] > 255 { 255 } else { codes[k] } as usize;
+        if let (Some(d), Some(&t)) = (input.get_mut(at + k), table.get(k * 256 + code)) {
+            *d = t;
+        }
+        k += 1;
+    }
+}
+
+fn run<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
+    match p.cfg.resize {
+        Resize::Area => area::<S>(frame, p, table, input),
+        Resize::Bilinear => bilinear::<S>(frame, p, table, input),
+        Resize::Nearest => nearest::<S>(frame, p, table, input),
+    }
+}
+
+/// The samples of source pixel `(x, y)` (frame coordinates).
+#[inline(always)]
+fn sample<S: Sampler>(frame: &[u8], p: &FrameParams, x: u32, y: u32) -> [u32; 3] {
+    let mut acc = [0u32; 3];
+    let at = (y as usize * p.cfg.frame_w as usize + x as usize) * S::BPP;
+    if let Some(px) = frame.get(at..at + S::BPP) {
+        S::add(px, &p.weights, &mut acc);
+    }
+    acc
+}
+
+fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
+    let cfg = &p.cfg;
+    let (rw, rh, ow, oh) = (cfg.roi.w, cfg.roi.h, cfg.out_w, cfg.out_h);
+    let fw = cfg.frame_w as usize;
+    // Window edges ⌊o·r/out⌋ by exact stepping (no division per pixel).
+    let (qx, rx) = (rw / ow, rw % ow);
+    let (qy, ry) = (rh / oh, rh % oh);
+    let half = (1u32 << p.shift) >> 1;
+    let mut y0 = cfg.roi.y;
+    let mut ey = 0;
+    for oy in 0..oh {
+        let mut y1 = y0 + qy;
+        ey += ry;
+        if ey >= oh {
+            ey -= oh;
+            y1 += 1;
+        }
+        let mut x0 = cfg.roi.x;
+        let mut ex = 0;
+        for ox in 0..ow {
+            let mut x1 = x0 + qx;
+            ex += rx;
+            if ex >= ow {
+                ex -= ow;
+                x1 += 1;
+            }
+            let mut acc = [0u32; 3];
+            let mut start = (y0 as usize * fw + x0 as usize) * S::BPP;
+            let len = (x1 - x0) as usize * S::BPP;
+            for _ in y0..y1 {
+                if let Some(row) = frame.get(start..start + len) {
+                    for px in row.chunks_exact(S::BPP) {
+                        S::add(px, &p.weights, &mut acc);
+                    }
+                }
+                start += fw * S::BPP;
+            }
+            let count = (x1 - x0) * (y1 - y0);
+            let mut codes = [0u32; 3];
+            if let Some(den) = NonZeroU32::new(count << p.shift) {
+                let round = count * half;
+                let mut k = 0;
+                while k < S::CH {
+                    codes[k] = (acc[k] + round) / den;
+                    k += 1;
+                }
+            }
+            write::<S>(input, table, dst_index(p, oy, ox), codes);
+            x0 = x1;
+        }
+        y0 = y1;
+    }
+}
+
+/// Bilinear source position of output `o` in 1/256 pixel, clamped:
+/// `(i0, i1, frac)`.
+#[inline(always)]
+fn bilinear_pos(o: u32, r: u32, out: u32) -> (u32, u32, u32) {
+    // (o + ½)·r/out − ½ in 1/256 pixel, floored.
+    let num = (2 * o as u64 + 1) * r as u64 * 128;
+    let pos = (num / out as u64) as i64 - 128;
+    let max = (r as i64 - 1) << 8;
+    let pos = if pos < 0 {
+        0
+    } else if pos > max {
+        max
+    } else {
+        pos
+    } as u32;
+    let i0 = pos >> 8;
+    let i1 = if i0 + 1 < r { i0 + 1 } else { i0 };
+    (i0, i1, pos & 255)
+}
+
+fn bilinear<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
+    let cfg = &p.cfg;
+    let (ox0, oy0) = (cfg.roi.x, cfg.roi.y);
+    // Samples to Q8 so that two Q8 weights keep the sum inside u32.
+    let to_q8 = |s: u32| {
+        if p.shift >= 8 {
+            s >> (p.shift - 8)
+        } else {
+            s << (8 - p.shift)
+        }
+    };
+    for oy in 0..cfg.out_h {
+        let (y0, y1, fy) = bilinear_pos(oy, cfg.roi.h, cfg.out_h);
+        for ox in 0..cfg.out_w {
+            let (x0, x1, fx) = bilinear_pos(ox, cfg.roi.w, cfg.out_w);
+            let s00 = sample::<S>(frame, p, ox0 + x0, oy0 + y0);
+            let s01 = sample::<S>(frame, p, ox0 + x1, oy0 + y0);
+            let s10 = sample::<S>(frame, p, ox0 + x0, oy0 + y1);
+            let s11 = sample::<S>(frame, p, ox0 + x1, oy0 + y1);
+            let mut codes = [0u32; 3];
+            let mut k = 0;
+            while k < S::CH {
+                let top = to_q8(s00[k]) * (256 - fx) + to_q8(s01[k]) * fx;
+                let bot = to_q8(s10[k]) * (256 - fx) + to_q8(s11[k]) * fx;
+                // top, bot < 2^24: scale down by 2^8 before the second
+                // weight so the sum stays inside u32 with room to round.
+                let v = (top >> 8) * (256 - fy) + (bot >> 8) * fy;
+                codes[k] = (v + (1 << 15)) >> 16;
+                k += 1;
+            }
+            write::<S>(input, table, dst_index(p, oy, ox), codes);
+        }
+    }
+}
+
+fn nearest<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
+    let cfg = &p.cfg;
+    let half = (1u32 << p.shift) >> 1;
+    let pick = |o: u32, r: u32, out: u32| ((2 * o as u64 + 1) * r as u64 / (2 * out as u64)) as u32;
+    for oy in 0..cfg.out_h {
+        let y = cfg.roi.y + pick(oy, cfg.roi.h, cfg.out_h);
+        for ox in 0..cfg.out_w {
+            let x = cfg.roi.x + pick(ox, cfg.roi.w, cfg.out_w);
+            let s = sample::<S>(frame, p, x, y);
+            let mut codes = [0u32; 3];
+            let mut k = 0;
+            while k < S::CH {
+                codes[k] = (s[k] + half) >> p.shift;
+                k += 1;
+            }
+            write::<S>(input, table, dst_index(p, oy, ox), codes);
+        }
+    }
+}
+
+/// Writes the `S::CH` codes of one output pixel.
+#[inline(always)]
+fn write<S: Sampler>(input: &mut [i8], table: &[i8], at: usize, codes: [u32; 3]) {
+    if S::CH == 1 {
+        put::<1>(input, table, at, codes);
+    } else {
+        put::<3>(input, table, at, codes);
+    }
+}
