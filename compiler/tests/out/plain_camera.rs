@@ -69,7 +69,7 @@ impl Default for Scratch {
 /// `input` holds int8 codes in HWC order (see [`quantize_pixels`] for camera bytes); `output` receives the int8 codes of the output map (see [`argmax`], [`dequantize`]).
 /// The call cannot fail and allocates nothing: it uses only `scratch`, the weights in flash and the stack of the kernels. No floating point is used.
 ///
-/// Every kernel call was executed with exactly these parameters by the compiler when this module was generated, so the kernels' own checks cannot fail here; their `Result` is checked with `debug_assert!` only (a failure would mean `ingot-rt` changed since generation).
+/// Every kernel call is an `ingot_rt::checked` value built in a `static` by a `const fn` that runs all of the kernel's checks while rustc compiles this module: a call `ingot-rt` would refuse is a compile error, and the calls made here return nothing and cannot fail. The kernels reached from here contain no panic path (checked at link time in ingot's CI).
 ///
 /// - network: `plain`, module `plain_camera`
 /// - target: none given
@@ -93,9 +93,9 @@ pub fn run(
     output: &mut [i8; OUTPUT_LEN],
 ) {
     let Scratch { arena, patch } = scratch;
-    ok(ingot_rt::copy_in(input, arena, ingot_rt::MapRef::strided(0, 12, 12, 3, 3)));
+    ingot_data::COPY_IN.run(input, arena);
     forward(arena, patch, &mut |_, _, _| {});
-    ok(ingot_rt::copy_out(arena, ingot_rt::MapRef::strided(2136, 1, 1, 5, 5), output));
+    ingot_data::COPY_OUT.run(arena, output);
 }
 /// Largest strided map a trace must compact.
 #[cfg(feature = "ingot-trace")]
@@ -111,7 +111,7 @@ pub fn run_traced(
     f: &mut dyn FnMut(usize, &str, &[i8]),
 ) {
     let Scratch { arena, patch } = scratch;
-    ok(ingot_rt::copy_in(input, arena, ingot_rt::MapRef::strided(0, 12, 12, 3, 3)));
+    ingot_data::COPY_IN.run(input, arena);
     let mut buf = [0i8; TRACE_BYTES];
     forward(
         arena,
@@ -122,24 +122,19 @@ pub fn run_traced(
                 f(step, name, &a[m.offset..m.offset + m.len()]);
             } else {
                 let b = &mut buf[..m.len()];
-                ok(ingot_rt::copy_out(a, m, b));
+                if let Err(e) = ingot_rt::copy_out(a, m, b) {
+                    panic!("ingot trace: step {step} map out of place: {e:?}");
+                }
                 f(step, name, b);
             }
         },
     );
-    ok(ingot_rt::copy_out(arena, ingot_rt::MapRef::strided(2136, 1, 1, 5, 5), output));
+    ingot_data::COPY_OUT.run(arena, output);
 }
 /// Camera bytes (HWC, one `u8` per channel) to input codes through the
 /// model's pixel table (normalisation and input quantization folded).
 pub fn quantize_pixels(pixels: &[u8; INPUT_LEN], input: &mut [i8; INPUT_LEN]) {
-    ok(
-        ingot_rt::quantize_pixels(
-            pixels,
-            input,
-            ingot_rt::MapRef::new(0, 12, 12, 3),
-            &ingot_data::PIXEL_TABLE,
-        ),
-    );
+    ingot_data::QUANTIZE.run(pixels, input);
 }
 /// The camera this module was built for: rgb565le frames of 40x30, region x=5 y=0 w=30 h=30 resized to 12x12 by area averaging, rotated 180°, mirrored; RGB channels (RGB565 fields scaled to 8 bits).
 ///
@@ -172,8 +167,16 @@ pub const FRAME_BYTES: usize = FRAME.frame_bytes();
 /// mirroring, colour conversion, normalisation and input quantization; see
 /// [`FRAME`]): integer only, no temporary frame. Then call [`run`].
 pub fn frame_to_input(frame: &[u8; FRAME_BYTES], input: &mut [i8; INPUT_LEN]) {
-    ok(ingot_rt::convert_frame(frame, &FRAME, &ingot_data::PIXEL_TABLE, input));
+    FRAME_TO_INPUT.run(frame, input);
 }
+static FRAME_TO_INPUT: ingot_rt::checked::ConvertFrame<
+    'static,
+    FRAME_BYTES,
+    INPUT_LEN,
+> = match ingot_rt::checked::ConvertFrame::new(FRAME, &ingot_data::PIXEL_TABLE) {
+    Ok(k) => k,
+    Err(e) => e.refuse(),
+};
 /// Index of the largest output code (first one on ties): the class.
 pub fn argmax(output: &[i8; OUTPUT_LEN]) -> usize {
     ingot_rt::argmax(output)
@@ -185,100 +188,26 @@ pub fn dequantize(output: &[i8; OUTPUT_LEN], out: &mut [f32; OUTPUT_LEN]) {
         *o = ingot_rt::dequantize(q, OUTPUT_SCALE, OUTPUT_ZERO_POINT);
     }
 }
-/// A kernel result. Parameters were validated at generation time, so this is
-/// only a debug check; in release builds an (impossible) error is ignored
-/// rather than panicking.
-#[inline(always)]
-fn ok(r: Result<(), ingot_rt::Error>) {
-    debug_assert!(
-        r.is_ok(), "ingot-rt refused a call validated at generation time: {:?}", r
-    );
-}
 /// The schedule: every kernel call in order, `trace` after each step.
 #[allow(unused_variables)]
 fn forward<T: FnMut(usize, ingot_rt::MapRef, &[i8])>(
-    arena: &mut [i8],
-    patch: &mut [i16],
+    arena: &mut [i8; ARENA_BYTES],
+    patch: &mut [i16; PATCH_LEN],
     trace: &mut T,
 ) {
     use ingot_data::*;
-    ok(
-        ingot_rt::conv2d(
-            arena,
-            ingot_rt::MapRef::strided(0, 12, 12, 3, 3),
-            ingot_rt::MapRef::strided(432, 12, 12, 8, 8),
-            &W_CONV1,
-            &B_CONV1,
-            &RQ_CONV1,
-            &P_CONV1,
-            None,
-            patch,
-        ),
-    );
-    trace(0, ingot_rt::MapRef::strided(432, 12, 12, 8, 8), arena);
-    ok(
-        ingot_rt::max_pool2d(
-            arena,
-            ingot_rt::MapRef::strided(432, 12, 12, 8, 8),
-            ingot_rt::MapRef::strided(1584, 6, 6, 8, 8),
-            &PW_POOL1,
-            &PQ_POOL1,
-        ),
-    );
-    trace(1, ingot_rt::MapRef::strided(1584, 6, 6, 8, 8), arena);
-    ok(
-        ingot_rt::conv2d(
-            arena,
-            ingot_rt::MapRef::strided(1584, 6, 6, 8, 8),
-            ingot_rt::MapRef::strided(1872, 3, 3, 16, 16),
-            &W_CONV2,
-            &B_CONV2,
-            &RQ_CONV2,
-            &P_CONV2,
-            None,
-            patch,
-        ),
-    );
-    trace(2, ingot_rt::MapRef::strided(1872, 3, 3, 16, 16), arena);
-    ok(
-        ingot_rt::conv2d(
-            arena,
-            ingot_rt::MapRef::strided(1872, 3, 3, 16, 16),
-            ingot_rt::MapRef::strided(2016, 3, 3, 12, 12),
-            &W_CONV3,
-            &B_CONV3,
-            &RQ_CONV3,
-            &P_CONV3,
-            None,
-            patch,
-        ),
-    );
-    trace(3, ingot_rt::MapRef::strided(2016, 3, 3, 12, 12), arena);
-    ok(
-        ingot_rt::global_avg_pool(
-            arena,
-            ingot_rt::MapRef::strided(2016, 3, 3, 12, 12),
-            ingot_rt::MapRef::strided(2124, 1, 1, 12, 12),
-            &PQ_GAP,
-        ),
-    );
-    trace(4, ingot_rt::MapRef::strided(2124, 1, 1, 12, 12), arena);
-    ok(
-        ingot_rt::linear(
-            arena,
-            ingot_rt::MapRef::strided(2124, 1, 1, 12, 12),
-            ingot_rt::MapRef::strided(2136, 1, 1, 5, 5),
-            &W_FC,
-            &B_FC,
-            &RQ_FC,
-            ingot_rt::OutputQuant {
-                zero_point: -8,
-                min: -128,
-                max: 127,
-            },
-        ),
-    );
-    trace(5, ingot_rt::MapRef::strided(2136, 1, 1, 5, 5), arena);
+    K_CONV1.run(arena, patch);
+    trace(0, ingot_rt::MapRef::strided(432, 12, 12, 8, 8), arena.as_slice());
+    K_POOL1.run(arena);
+    trace(1, ingot_rt::MapRef::strided(1584, 6, 6, 8, 8), arena.as_slice());
+    K_CONV2.run(arena, patch);
+    trace(2, ingot_rt::MapRef::strided(1872, 3, 3, 16, 16), arena.as_slice());
+    K_CONV3.run(arena, patch);
+    trace(3, ingot_rt::MapRef::strided(2016, 3, 3, 12, 12), arena.as_slice());
+    K_GAP.run(arena);
+    trace(4, ingot_rt::MapRef::strided(2124, 1, 1, 12, 12), arena.as_slice());
+    K_FC.run(arena);
+    trace(5, ingot_rt::MapRef::strided(2136, 1, 1, 5, 5), arena.as_slice());
 }
 /// Weights and kernel parameters (private). Every tensor is a `static`
 /// built at compile time; nothing is decoded at run time.
@@ -461,6 +390,114 @@ mod ingot_data {
             min: -128,
             max: 127,
         },
+    };
+    pub(super) static K_CONV1: ingot_rt::checked::Conv2d<
+        'static,
+        { super::ARENA_BYTES },
+        { super::PATCH_LEN },
+    > = match ingot_rt::checked::Conv2d::new(
+        ingot_rt::MapRef::strided(0, 12, 12, 3, 3),
+        ingot_rt::MapRef::strided(432, 12, 12, 8, 8),
+        &W_CONV1,
+        &B_CONV1,
+        &RQ_CONV1,
+        P_CONV1,
+        None,
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static K_POOL1: ingot_rt::checked::MaxPool2d<{ super::ARENA_BYTES }> = match ingot_rt::checked::MaxPool2d::new(
+        ingot_rt::MapRef::strided(432, 12, 12, 8, 8),
+        ingot_rt::MapRef::strided(1584, 6, 6, 8, 8),
+        PW_POOL1,
+        PQ_POOL1,
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static K_CONV2: ingot_rt::checked::Conv2d<
+        'static,
+        { super::ARENA_BYTES },
+        { super::PATCH_LEN },
+    > = match ingot_rt::checked::Conv2d::new(
+        ingot_rt::MapRef::strided(1584, 6, 6, 8, 8),
+        ingot_rt::MapRef::strided(1872, 3, 3, 16, 16),
+        &W_CONV2,
+        &B_CONV2,
+        &RQ_CONV2,
+        P_CONV2,
+        None,
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static K_CONV3: ingot_rt::checked::Conv2d<
+        'static,
+        { super::ARENA_BYTES },
+        { super::PATCH_LEN },
+    > = match ingot_rt::checked::Conv2d::new(
+        ingot_rt::MapRef::strided(1872, 3, 3, 16, 16),
+        ingot_rt::MapRef::strided(2016, 3, 3, 12, 12),
+        &W_CONV3,
+        &B_CONV3,
+        &RQ_CONV3,
+        P_CONV3,
+        None,
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static K_GAP: ingot_rt::checked::GlobalAvgPool<{ super::ARENA_BYTES }> = match ingot_rt::checked::GlobalAvgPool::new(
+        ingot_rt::MapRef::strided(2016, 3, 3, 12, 12),
+        ingot_rt::MapRef::strided(2124, 1, 1, 12, 12),
+        PQ_GAP,
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static K_FC: ingot_rt::checked::Linear<'static, { super::ARENA_BYTES }> = match ingot_rt::checked::Linear::new(
+        ingot_rt::MapRef::strided(2124, 1, 1, 12, 12),
+        ingot_rt::MapRef::strided(2136, 1, 1, 5, 5),
+        &W_FC,
+        &B_FC,
+        &RQ_FC,
+        ingot_rt::OutputQuant {
+            zero_point: -8,
+            min: -128,
+            max: 127,
+        },
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static COPY_IN: ingot_rt::checked::CopyIn<
+        { super::ARENA_BYTES },
+        { super::INPUT_LEN },
+    > = match ingot_rt::checked::CopyIn::new(
+        ingot_rt::MapRef::strided(0, 12, 12, 3, 3),
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static COPY_OUT: ingot_rt::checked::CopyOut<
+        { super::ARENA_BYTES },
+        { super::OUTPUT_LEN },
+    > = match ingot_rt::checked::CopyOut::new(
+        ingot_rt::MapRef::strided(2136, 1, 1, 5, 5),
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
+    };
+    pub(super) static QUANTIZE: ingot_rt::checked::QuantizePixels<
+        'static,
+        { super::INPUT_LEN },
+    > = match ingot_rt::checked::QuantizePixels::new(
+        ingot_rt::MapRef::new(0, 12, 12, 3),
+        &PIXEL_TABLE,
+    ) {
+        Ok(k) => k,
+        Err(e) => e.refuse(),
     };
     const OFF_PIXEL_TABLE: usize = 2112;
     ///768 elements at byte 2112 of the weights file.
