@@ -40,7 +40,11 @@
 //! * **[`Resize::Nearest`]** takes source pixel `⌊(o + ½)·w/ow⌋`.
 //! * **Limits.** Frame bytes must fit `u32`; an area window (at most
 //!   `⌈w/ow⌉·⌈h/oh⌉` pixels) must keep its sum inside `u32`, about 16,000
-//!   pixels for colour formats (a 640×480 frame can still shrink to 5×4).
+//!   pixels for colour formats (a 640×480 frame can still shrink to 5×4);
+//!   RGB565 windows also keep the sum of their 16-bit words inside `u32`.
+//! * **Weights once per output pixel.** Area windows sum the raw colour
+//!   fields and apply the luma (or 8-bit scaling) weights to the sums;
+//!   integer weights make that exactly the sum of weighted pixels.
 
 use crate::Error;
 use core::num::NonZeroU32;
@@ -324,6 +328,13 @@ impl FrameConfig {
             if win * (max_sample as u64 + (1u64 << shift)) > u32::MAX as u64 {
                 return Err(FrameError::WindowTooLarge);
             }
+            // The RGB565 kernel also sums whole 16-bit words (implied by
+            // the bound above for every luma choice; kept explicit so the
+            // two cannot drift apart).
+            let rgb565 = matches!(c.format, PixelFormat::Rgb565Le | PixelFormat::Rgb565Be);
+            if rgb565 && win * 0xFFFF > u32::MAX as u64 {
+                return Err(FrameError::WindowTooLarge);
+            }
         }
         Ok(FrameParams {
             cfg: c,
@@ -451,12 +462,26 @@ pub fn convert_frame(
     Ok(())
 }
 
-/// One source pixel's bytes to samples, added into `acc` (the first `CH`
-/// entries). `px` is always `BPP` bytes long (`chunks_exact`).
+/// One source pixel's bytes to sums, and sums to samples.
+///
+/// `add` adds the pixel's raw fields into `acc` (no weights), and `weigh`
+/// turns the sums of a window (or of one pixel) into the `CH` samples, so
+/// the luma weights are applied once per output pixel instead of once per
+/// source pixel. Every weight is a plain integer factor, so
+/// `weigh(Σ fields) = Σ weigh(fields)` exactly: the output bytes are those
+/// of weighing every pixel. `px` is always `BPP` bytes long
+/// (`chunks_exact`).
 trait Sampler {
     const BPP: usize;
     const CH: usize;
-    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]);
+    fn add(px: &[u8], acc: &mut [u32; 3]);
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3];
+}
+
+/// The sums are the samples (8-bit channels, shift 0).
+#[inline(always)]
+fn unweighed(acc: [u32; 3], _: &[u32; 3]) -> [u32; 3] {
+    acc
 }
 
 struct Gray8;
@@ -464,10 +489,14 @@ impl Sampler for Gray8 {
     const BPP: usize = 1;
     const CH: usize = 1;
     #[inline(always)]
-    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
         if let [g] = *px {
             acc[0] += g as u32;
         }
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
+        unweighed(acc, w)
     }
 }
 
@@ -476,12 +505,14 @@ impl Sampler for Gray8Rgb {
     const BPP: usize = 1;
     const CH: usize = 3;
     #[inline(always)]
-    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
         if let [g] = *px {
             acc[0] += g as u32;
-            acc[1] += g as u32;
-            acc[2] += g as u32;
         }
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], _: &[u32; 3]) -> [u32; 3] {
+        [acc[0], acc[0], acc[0]]
     }
 }
 
@@ -492,10 +523,14 @@ impl Sampler for YuyvY {
     const BPP: usize = 2;
     const CH: usize = 1;
     #[inline(always)]
-    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
         if let [y, _] = *px {
             acc[0] += y as u32;
         }
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
+        unweighed(acc, w)
     }
 }
 
@@ -504,10 +539,16 @@ impl Sampler for Rgb888Gray {
     const BPP: usize = 3;
     const CH: usize = 1;
     #[inline(always)]
-    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]) {
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
         if let [r, g, b] = *px {
-            acc[0] += r as u32 * w[0] + g as u32 * w[1] + b as u32 * w[2];
+            acc[0] += r as u32;
+            acc[1] += g as u32;
+            acc[2] += b as u32;
         }
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
+        [acc[0] * w[0] + acc[1] * w[1] + acc[2] * w[2], 0, 0]
     }
 }
 
@@ -516,12 +557,16 @@ impl Sampler for Rgb888Rgb {
     const BPP: usize = 3;
     const CH: usize = 3;
     #[inline(always)]
-    fn add(px: &[u8], _: &[u32; 3], acc: &mut [u32; 3]) {
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
         if let [r, g, b] = *px {
             acc[0] += r as u32;
             acc[1] += g as u32;
             acc[2] += b as u32;
         }
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
+        unweighed(acc, w)
     }
 }
 
@@ -535,14 +580,43 @@ fn word565<const BE: bool>(px: &[u8]) -> u32 {
     }
 }
 
+/// RGB565 sums: `acc = [Σ word, Σ R, Σ B]`, three adds per pixel (on
+/// Thumb-2 `Σ R` is one `add` with a shifted operand); `Σ G` is recovered
+/// per window as `(Σ word − 2^11·Σ R − Σ B) / 2^5`, exact because every
+/// word is `2^11·R + 2^5·G + B`. `Σ word < 2^16 · window` fits `u32`
+/// because [`FrameConfig::validate`] limits an RGB565 area window to
+/// 2^16 pixels.
+#[inline(always)]
+fn add565<const BE: bool>(px: &[u8], acc: &mut [u32; 3]) {
+    // Unrolled, the thumbv7em loop splits little-endian words into byte
+    // loads and spills its sums to the stack; rolled it keeps them in
+    // registers (see the disassembly note in DEVELOPERS.md).
+    crate::dot::no_unroll();
+    let v = word565::<BE>(px);
+    acc[0] += v;
+    acc[1] += v >> 11;
+    acc[2] += v & 31;
+}
+
+/// `[Σ R, Σ G, Σ B]` from [`add565`]'s sums.
+#[inline(always)]
+fn fields565(acc: [u32; 3]) -> [u32; 3] {
+    let [v, r, b] = acc;
+    [r, v.wrapping_sub(r << 11).wrapping_sub(b) >> 5, b]
+}
+
 struct Rgb565Gray<const BE: bool>;
 impl<const BE: bool> Sampler for Rgb565Gray<BE> {
     const BPP: usize = 2;
     const CH: usize = 1;
     #[inline(always)]
-    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]) {
-        let v = word565::<BE>(px);
-        acc[0] += (v >> 11) * w[0] + ((v >> 5) & 63) * w[1] + (v & 31) * w[2];
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
+        add565::<BE>(px, acc);
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
+        let [r, g, b] = fields565(acc);
+        [r * w[0] + g * w[1] + b * w[2], 0, 0]
     }
 }
 
@@ -551,11 +625,13 @@ impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
     const BPP: usize = 2;
     const CH: usize = 3;
     #[inline(always)]
-    fn add(px: &[u8], w: &[u32; 3], acc: &mut [u32; 3]) {
-        let v = word565::<BE>(px);
-        acc[0] += (v >> 11) * w[0];
-        acc[1] += ((v >> 5) & 63) * w[1];
-        acc[2] += (v & 31) * w[2];
+    fn add(px: &[u8], acc: &mut [u32; 3]) {
+        add565::<BE>(px, acc);
+    }
+    #[inline(always)]
+    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
+        let [r, g, b] = fields565(acc);
+        [r * w[0], g * w[1], b * w[2]]
     }
 }
 
@@ -598,9 +674,9 @@ fn sample<S: Sampler>(frame: &[u8], p: &FrameParams, x: u32, y: u32) -> [u32; 3]
     let mut acc = [0u32; 3];
     let at = (y as usize * p.cfg.frame_w as usize + x as usize) * S::BPP;
     if let Some(px) = frame.get(at..at + S::BPP) {
-        S::add(px, &p.weights, &mut acc);
+        S::add(px, &mut acc);
     }
-    acc
+    S::weigh(acc, &p.weights)
 }
 
 fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
@@ -635,12 +711,13 @@ fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8
             for _ in y0..y1 {
                 if let Some(row) = frame.get(start..start + len) {
                     for px in row.chunks_exact(S::BPP) {
-                        S::add(px, &p.weights, &mut acc);
+                        S::add(px, &mut acc);
                     }
                 }
                 start += fw * S::BPP;
             }
             let count = (x1 - x0) * (y1 - y0);
+            let acc = S::weigh(acc, &p.weights);
             let mut codes = [0u32; 3];
             if let Some(den) = NonZeroU32::new(count << p.shift) {
                 let round = count * half;
