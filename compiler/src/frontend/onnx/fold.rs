@@ -171,7 +171,10 @@ pub fn eval(
         }
         "Concat" => {
             let parts: Vec<&Const> = inputs.iter().flatten().copied().collect();
-            let rank = parts[0].dims.len();
+            let rank = parts.first().ok_or("has no inputs")?.dims.len();
+            if rank == 0 {
+                return Err("concatenates scalars; inputs must have rank 1 or more".into());
+            }
             let axis = norm_axis(attrs.int("axis").ok_or("`axis` is missing")?, rank)?;
             for p in &parts {
                 if p.dims.len() != rank
