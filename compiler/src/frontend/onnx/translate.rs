@@ -1148,7 +1148,13 @@ impl Tx<'_> {
                 } else {
                     let (lo, hi) = if self.opset >= 11 {
                         let get = |i: usize| -> Result<Option<f32>, ImportError> {
-                            Ok(self.opt_const(n, ins, i)?.map(|c| c.floats()[0]))
+                            self.opt_const(n, ins, i)?
+                                .map(|c| {
+                                    c.floats().first().copied().ok_or_else(|| {
+                                        self.node_err(n, format!("input {i} (min or max) is empty"))
+                                    })
+                                })
+                                .transpose()
                         };
                         (get(1)?, get(2)?)
                     } else {
