@@ -23,8 +23,8 @@ pub enum Kind {
     Image,
     /// A `.npy` sample for an input of the shape in the first blob.
     Npy,
-    /// A target registered in [`crate::extra_targets`] (ONNX once import
-    /// lands), by name.
+    /// A target registered in [`crate::extra_targets`] (the ONNX importer),
+    /// by name.
     Extra(String),
 }
 

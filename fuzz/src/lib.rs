@@ -12,6 +12,7 @@
 pub mod alloc;
 pub mod case;
 pub mod mutate;
+pub mod onnx;
 pub mod rng;
 
 use case::{Case, Kind};
@@ -21,26 +22,29 @@ use ingot_compiler::graph::{Color, InputSpec, Shape};
 use rng::Rng;
 use std::path::{Path, PathBuf};
 
-/// A frontend added from outside this crate's built-in list: the ONNX
-/// importer, once `compiler/src/frontend/onnx/` lands, is registered here
-/// as `ExtraTarget { name: "onnx", seed_ext: "onnx", run: |b| { let _ =
-/// ingot_compiler::frontend::onnx::parse(b); } }` (or whatever its entry
-/// point is), and its seeds are the `*.onnx` files found under the seed
-/// folders.
+/// A frontend fed by one file, beside the built-in kinds: the ONNX importer
+/// ([`onnx`]). Its seeds are the `*.onnx` files its `seeds` function reads.
 #[derive(Debug, Clone, Copy)]
 pub struct ExtraTarget {
     /// Name in case files (`extra:NAME`).
     pub name: &'static str,
-    /// Extension of its seed files.
-    pub seed_ext: &'static str,
+    /// Reads its seed files (a missing seed is an error).
+    pub seeds: fn() -> Result<Vec<Vec<u8>>, String>,
+    /// Mutates one seed, structure-aware where the target knows its format.
+    pub mutate: fn(&[u8], &mut Rng) -> Vec<u8>,
     /// Runs the frontend on one file's bytes; errors are fine, panics are
     /// not.
     pub run: fn(&[u8]),
 }
 
-/// The registered extra targets (none yet; see [`ExtraTarget`]).
+/// The registered extra targets.
 pub fn extra_targets() -> &'static [ExtraTarget] {
-    &[]
+    &[ExtraTarget {
+        name: "onnx",
+        seeds: onnx::seeds,
+        mutate: onnx::mutate,
+        run: onnx::run,
+    }]
 }
 
 /// The repository root (the fuzz crate's parent folder).
@@ -154,7 +158,10 @@ impl Seeds {
         if images.len() < 2 {
             return Err("no seed images found".into());
         }
-        let extra = extra_targets().iter().map(|_| Vec::new()).collect();
+        let extra = extra_targets()
+            .iter()
+            .map(|t| (t.seeds)())
+            .collect::<Result<_, _>>()?;
         Ok(Seeds {
             graphs,
             images,
@@ -270,15 +277,25 @@ pub fn generate(seeds: &Seeds, seed: u64, index: u64) -> Case {
             let live: Vec<usize> = (0..seeds.extra.len())
                 .filter(|&i| !seeds.extra[i].is_empty())
                 .collect();
-            let t = live[(k - 6) % live.len()];
-            let mut b = r.pick(&seeds.extra[t]).clone();
-            mutate::mutate_bytes(&mut b, &mut r);
-            Case {
-                kind: Kind::Extra(extra_targets()[t].name.into()),
-                blobs: vec![b],
-            }
+            extra_case(seeds, live[(k - 6) % live.len()], &mut r)
         }
     }
+}
+
+fn extra_case(seeds: &Seeds, t: usize, r: &mut Rng) -> Case {
+    let target = &extra_targets()[t];
+    let seed: &Vec<u8> = r.pick(&seeds.extra[t]);
+    Case {
+        kind: Kind::Extra(target.name.into()),
+        blobs: vec![(target.mutate)(seed, r)],
+    }
+}
+
+/// Case `index` of a run of the extra target `name` alone (`ingot-fuzz
+/// --target NAME`): always the same bytes; `None` if no such target.
+pub fn generate_extra(seeds: &Seeds, name: &str, seed: u64, index: u64) -> Option<Case> {
+    let t = extra_targets().iter().position(|t| t.name == name)?;
+    Some(extra_case(seeds, t, &mut Rng::for_case(seed, index)))
 }
 
 /// Largest graph (memory estimate) the harness also lowers and plans:

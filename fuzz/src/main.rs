@@ -1,8 +1,10 @@
 //! `ingot-fuzz`: the long fuzz run.
 //!
 //! ```text
-//! cargo run --release -p ingot-fuzz -- --cases 1000000 [--seed S]
+//! cargo run --release -p ingot-fuzz -- --cases 1000000 [--seed S] [--target onnx]
 //! ```
+//!
+//! `--target NAME` runs only the extra target `NAME` (the ONNX importer).
 //!
 //! The supervisor starts a worker (this binary with `--worker`) that runs
 //! cases `start..cases` one after another, each under `catch_unwind`, and
@@ -14,7 +16,10 @@
 //! under `fuzz/regressions/`, where `cargo test -p ingot-fuzz` replays it.
 //! Single-threaded on purpose: the worker runs one case at a time.
 
-use ingot_fuzz::{alloc::Counting, generate, run_caught, save_regression, Outcome, Seeds};
+use ingot_fuzz::{
+    alloc::Counting, case::Case, generate, generate_extra, run_caught, save_regression, Outcome,
+    Seeds,
+};
 use std::io::{BufRead, Write};
 use std::process::{Command, Stdio};
 use std::sync::mpsc;
@@ -31,6 +36,7 @@ struct Opts {
     seed: u64,
     start: u64,
     worker: bool,
+    target: Option<String>,
 }
 
 fn parse_args() -> Result<Opts, String> {
@@ -39,6 +45,7 @@ fn parse_args() -> Result<Opts, String> {
         seed: 0x1467_0001,
         start: 0,
         worker: false,
+        target: None,
     };
     let mut args = std::env::args().skip(1);
     while let Some(a) = args.next() {
@@ -52,8 +59,15 @@ fn parse_args() -> Result<Opts, String> {
             "--seed" => o.seed = num("--seed")?,
             "--start" => o.start = num("--start")?,
             "--worker" => o.worker = true,
+            "--target" => {
+                let t = args.next().ok_or("--target needs a name")?;
+                if !ingot_fuzz::extra_targets().iter().any(|x| x.name == t) {
+                    return Err(format!("no fuzz target `{t}`"));
+                }
+                o.target = Some(t);
+            }
             "-h" | "--help" => {
-                println!("usage: ingot-fuzz [--cases N] [--seed S]");
+                println!("usage: ingot-fuzz [--cases N] [--seed S] [--target onnx]");
                 std::process::exit(0);
             }
             other => return Err(format!("unknown argument `{other}`")),
@@ -84,6 +98,14 @@ fn main() {
     }
 }
 
+/// Case `i` of this run: of every kind, or of `--target` alone.
+fn case(o: &Opts, seeds: &Seeds, i: u64) -> Case {
+    match &o.target {
+        Some(t) => generate_extra(seeds, t, o.seed, i).expect("target checked when parsed"),
+        None => generate(seeds, o.seed, i),
+    }
+}
+
 /// Runs cases, announcing each (`case I`) before running it, and reports
 /// panics (`panic I MESSAGE`) and the largest peak heap (`done PEAK`).
 fn worker(o: &Opts, seeds: &Seeds) {
@@ -93,7 +115,7 @@ fn worker(o: &Opts, seeds: &Seeds) {
     let mut out = out.lock();
     let mut max_peak = 0usize;
     for i in o.start..o.cases {
-        let case = generate(seeds, o.seed, i);
+        let case = case(o, seeds, i);
         let _ = writeln!(out, "case {i}");
         let _ = out.flush();
         let base = ALLOC.live();
@@ -127,6 +149,7 @@ fn supervise(o: &Opts, seeds: &Seeds) {
         let mut child = Command::new(&exe)
             .args(["--worker", "--cases", &o.cases.to_string()])
             .args(["--seed", &o.seed.to_string(), "--start", &start.to_string()])
+            .args(o.target.iter().flat_map(|t| ["--target", t.as_str()]))
             .stdout(Stdio::piped())
             .stderr(Stdio::piped())
             .spawn()
@@ -161,8 +184,7 @@ fn supervise(o: &Opts, seeds: &Seeds) {
                         let (i, msg) = rest.split_once(' ').unwrap_or((rest, ""));
                         t.panics += 1;
                         let i: u64 = i.parse().unwrap_or(0);
-                        let p =
-                            save_regression(&generate(seeds, o.seed, i), &format!("panic: {msg}"));
+                        let p = save_regression(&case(o, seeds, i), &format!("panic: {msg}"));
                         eprintln!("case {i}: panic: {msg} (saved {})", show(p));
                     } else if let Some(peak) = line.strip_prefix("done ") {
                         if current.take().is_some() {
@@ -188,7 +210,7 @@ fn supervise(o: &Opts, seeds: &Seeds) {
                     if let Some(i) = current {
                         t.hangs += 1;
                         t.executed += 1;
-                        let p = save_regression(&generate(seeds, o.seed, i), "hang over 10 s");
+                        let p = save_regression(&case(o, seeds, i), "hang over 10 s");
                         eprintln!("case {i}: no progress for 10 s (saved {})", show(p));
                         start = i + 1;
                     }
@@ -212,7 +234,7 @@ fn supervise(o: &Opts, seeds: &Seeds) {
                 "worker died"
             };
             let p = save_regression(
-                &generate(seeds, o.seed, i),
+                &case(o, seeds, i),
                 &format!("{why}: {}", stderr_text.trim()),
             );
             eprintln!("case {i}: {why} (saved {})", show(p));
@@ -236,6 +258,12 @@ fn supervise(o: &Opts, seeds: &Seeds) {
         t.executed as f64 / secs
     );
     println!("| seed | {} |", o.seed);
+    println!(
+        "| targets | {} |",
+        o.target
+            .as_deref()
+            .unwrap_or("all (graph, graph files, ranges, image, npy, onnx)")
+    );
     if t.panics + t.hangs + t.over_memory + t.other_crashes > 0 {
         std::process::exit(1);
     }

@@ -71,7 +71,14 @@ fn generated_cases_never_panic() {
     }
     let _ = std::panic::take_hook();
     // Every frontend was reached.
-    for k in ["Graph", "GraphFiles", "Ranges", "Image", "Npy"] {
+    for k in [
+        "Graph",
+        "GraphFiles",
+        "Ranges",
+        "Image",
+        "Npy",
+        "Extra(\"onnx\")",
+    ] {
         assert!(
             kinds.get(k).copied().unwrap_or(0) > CASES as u32 / 20,
             "{kinds:?}"

@@ -97,7 +97,11 @@ pub fn eval(
         "Gather" => {
             let idx = input(1).ok_or("`indices` is missing")?;
             let axis = norm_axis(attrs.int("axis").unwrap_or(0), x.dims.len())?;
-            let n_axis = x.dims[axis] as i64;
+            let n_axis = *x
+                .dims
+                .get(axis)
+                .ok_or("gathers from a scalar; `data` must have rank 1 or more")?
+                as i64;
             let ids: Vec<usize> = idx
                 .ints()
                 .iter()
@@ -171,7 +175,10 @@ pub fn eval(
         }
         "Concat" => {
             let parts: Vec<&Const> = inputs.iter().flatten().copied().collect();
-            let rank = parts[0].dims.len();
+            let rank = parts.first().ok_or("has no inputs")?.dims.len();
+            if rank == 0 {
+                return Err("concatenates scalars; inputs must have rank 1 or more".into());
+            }
             let axis = norm_axis(attrs.int("axis").ok_or("`axis` is missing")?, rank)?;
             for p in &parts {
                 if p.dims.len() != rank
@@ -260,7 +267,7 @@ pub fn squeeze_dims(dims: &[usize], axes: Option<Vec<i64>>) -> Result<Vec<usize>
                 .iter()
                 .map(|&a| norm_axis(a, dims.len()))
                 .collect::<Result<_, _>>()?;
-            if let Some(&a) = axes.iter().find(|&&a| dims[a] != 1) {
+            if let Some(&a) = axes.iter().find(|&&a| dims.get(a) != Some(&1)) {
                 return Err(format!(
                     "cannot squeeze axis {a} of shape {dims:?}: it is not 1"
                 ));

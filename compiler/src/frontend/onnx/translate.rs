@@ -22,6 +22,10 @@ use std::path::{Path, PathBuf};
 /// hostile header from driving later allocations).
 const MAX_INPUT: usize = 1 << 26;
 
+/// Largest output accepted, in values (classes): checked before a default
+/// label is made for each, so a hostile shape cannot drive that allocation.
+const MAX_OUTPUT: usize = 1 << 20;
+
 #[derive(Debug, Clone)]
 enum Val {
     Const(Const),
@@ -238,7 +242,17 @@ pub(super) fn run(
             )))
         }
     };
-    let out_len: usize = out.dims.iter().product();
+    let out_len = out
+        .dims
+        .iter()
+        .try_fold(1usize, |a, &d| a.checked_mul(d))
+        .filter(|&n| n <= MAX_OUTPUT)
+        .ok_or_else(|| {
+            model_err(format!(
+                "the output `{}` has shape {:?}: more than {MAX_OUTPUT} values",
+                output.name, out.dims
+            ))
+        })?;
     let meta: BTreeMap<&str, &str> = model
         .metadata_props
         .iter()
@@ -1134,7 +1148,13 @@ impl Tx<'_> {
                 } else {
                     let (lo, hi) = if self.opset >= 11 {
                         let get = |i: usize| -> Result<Option<f32>, ImportError> {
-                            Ok(self.opt_const(n, ins, i)?.map(|c| c.floats()[0]))
+                            self.opt_const(n, ins, i)?
+                                .map(|c| {
+                                    c.floats().first().copied().ok_or_else(|| {
+                                        self.node_err(n, format!("input {i} (min or max) is empty"))
+                                    })
+                                })
+                                .transpose()
                         };
                         (get(1)?, get(2)?)
                     } else {
@@ -1453,7 +1473,10 @@ impl Tx<'_> {
                     self.no_pad(n, &m)?;
                     maps.push(m);
                 }
-                let rank = maps[0].dims.len();
+                let Some(first) = maps.first() else {
+                    return Err(self.node_err(n, "has no inputs"));
+                };
+                let rank = first.dims.len();
                 let axis = attrs
                     .int("axis")
                     .ok_or_else(|| self.node_err(n, "`axis` is missing"))?;
