@@ -44,6 +44,13 @@ pub struct Args {
     /// one of the command's inputs).
     #[arg(long)]
     pub force: bool,
+    /// Target profile (`targets/NAME.toml`): only its `[camera]` is used.
+    #[arg(long)]
+    pub target: Option<PathBuf>,
+    /// Camera the images go through (as `ingot build`; default: the
+    /// target's `[camera]`).
+    #[command(flatten)]
+    pub camera: super::camera::CameraArgs,
 }
 
 /// Runs the command.
@@ -52,7 +59,14 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     super::print_warnings(&graph);
     let good = ingot_compiler::stats::good_classes(&args.good, graph.labels())
         .map_err(|e| anyhow::anyhow!("--good: {}: {e}", args.graph.display()))?;
-    let images = ImageSet::open(&args.images, &graph)?;
+    let target = args
+        .target
+        .as_ref()
+        .map(ingot_compiler::plan::Target::load)
+        .transpose()?;
+    let camera =
+        ingot_compiler::driver::camera_for(args.camera.camera()?.as_ref(), target.as_ref());
+    let images = ImageSet::open_camera(&args.images, &graph, camera.as_ref())?;
     let opts = CalibOptions {
         method: args.method,
         holdout: args.holdout,

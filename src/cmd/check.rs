@@ -98,6 +98,10 @@ pub struct Args {
     /// [default: by the --target core, else by the --on core, else int8]
     #[arg(long)]
     pub weight_form: Option<WeightForm>,
+    /// Camera the images go through (as `ingot build`; default: the
+    /// target's `[camera]`).
+    #[command(flatten)]
+    pub camera: super::camera::CameraArgs,
 }
 
 /// Gates applied when `--max-drop` / `--min-agreement` are not given, so an
@@ -130,6 +134,9 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
     refuse_foreign_report(a)?;
     if a.target.is_some() {
         bail!("--target applies to a GRAPH.json check; with --module pass --flash-budget/--ram-budget");
+    }
+    if a.camera.camera()?.is_some() {
+        bail!("camera options apply to a GRAPH.json check (the images go through the camera); with --module pass --inputs");
     }
     let module = ModuleFiles::find(module_dir, None)?;
     let src = std::fs::read_to_string(&module.source)
@@ -258,6 +265,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         method: a.method,
         target: a.target.clone(),
         weight_form: driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core),
+        camera: a.camera.camera()?,
         ..PrepareOptions::default()
     };
     let mut p = prepare::prepare(graph, images, &opts)?;
@@ -293,6 +301,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         thresholds: thresholds(a),
     };
     let mut r = pipeline::run_check(&module, &p.data, &plan)?;
+    r.camera = p.camera.clone();
     apply_gates(a, &mut r);
     if let Some(b) = &p.budget {
         r.failures
@@ -403,6 +412,7 @@ fn summary(
         None => "  accuracy:       no labels (images not in class folders)\n".to_string(),
     };
     s.push_str(&accuracy::summary_lines(r, &acc_line));
+    s.push_str(&ingot_compiler::check::camera::summary(r.camera.as_ref()));
     if let Some(f) = &r.float {
         let _ = writeln!(
             s,

@@ -26,7 +26,13 @@
 //! An `.npy` file (NumPy format versions 1–3, little-endian `float32`, C
 //! order) must already hold the preprocessed input of shape exactly
 //! `[C, H, W]`; it has no pixel bytes.
+//!
+//! With a camera ([`ImageSet::open_camera`]) pictures take the device's
+//! path instead of steps 2–3, and raw frame dumps (`.raw`, `.bin`) are
+//! read too: see [`super::frames`].
 
+use super::frames::{self, CameraPath};
+use crate::camera::Camera;
 use crate::graph::{Color, Graph, InputSpec, Shape};
 use image::imageops::FilterType;
 use std::path::{Path, PathBuf};
@@ -74,6 +80,24 @@ pub enum ImageError {
         /// The graph's labels, comma-separated, or `none`.
         labels: String,
     },
+    /// A raw frame dump does not hold exactly one camera frame.
+    #[error("{path}: a raw frame of {size} bytes, but the camera's frames have {expected} bytes")]
+    FrameSize {
+        /// The file.
+        path: PathBuf,
+        /// Its size in bytes.
+        size: u64,
+        /// The camera's frame size in bytes.
+        expected: usize,
+    },
+    /// The camera does not fit the network's input.
+    #[error("{path}: {message}")]
+    Camera {
+        /// The folder.
+        path: PathBuf,
+        /// What is wrong.
+        message: String,
+    },
     /// The folder holds no readable sample.
     #[error("{path}: no images found (looked for {extensions} and .npy files)")]
     Empty {
@@ -91,6 +115,8 @@ impl ImageError {
             ImageError::Io { path, .. }
             | ImageError::Decode { path, .. }
             | ImageError::Npy { path, .. }
+            | ImageError::FrameSize { path, .. }
+            | ImageError::Camera { path, .. }
             | ImageError::UnknownClass { path, .. }
             | ImageError::Empty { path, .. } => path,
         }
@@ -104,6 +130,8 @@ pub enum SampleKind {
     Picture,
     /// A preprocessed `float32` array.
     Npy,
+    /// A raw camera frame (only with a camera).
+    Frame,
 }
 
 /// One listed sample file.
@@ -141,12 +169,15 @@ pub struct ImageSet {
     spec: InputSpec,
     entries: Vec<Entry>,
     ignored: Vec<PathBuf>,
+    camera: Option<CameraPath>,
 }
 
-fn extension_kind(path: &Path) -> Option<SampleKind> {
+fn extension_kind(path: &Path, frames: bool) -> Option<SampleKind> {
     let ext = path.extension()?.to_str()?.to_ascii_lowercase();
     if ext == "npy" {
         Some(SampleKind::Npy)
+    } else if frames && frames::FRAME_EXTENSIONS.contains(&ext.as_str()) {
+        Some(SampleKind::Frame)
     } else if PICTURE_EXTENSIONS.contains(&ext.as_str()) {
         Some(SampleKind::Picture)
     } else {
@@ -190,11 +221,50 @@ impl ImageSet {
         spec: &InputSpec,
         labels: &[String],
     ) -> Result<ImageSet, ImageError> {
+        ImageSet::open_with(dir, spec, labels, None)
+    }
+
+    /// [`ImageSet::open`] through a camera (`None`: no camera): every
+    /// sample takes the device's path ([`super::frames`]) and raw frame
+    /// dumps are listed too.
+    pub fn open_camera(
+        dir: &Path,
+        graph: &Graph,
+        camera: Option<&Camera>,
+    ) -> Result<ImageSet, ImageError> {
+        ImageSet::open_with(dir, graph.input(), graph.labels(), camera)
+    }
+
+    /// [`ImageSet::open_camera`] from an input description and labels.
+    pub fn open_with(
+        dir: &Path,
+        spec: &InputSpec,
+        labels: &[String],
+        camera: Option<&Camera>,
+    ) -> Result<ImageSet, ImageError> {
+        let camera = match camera {
+            None => None,
+            Some(cam) => {
+                let n = |v: usize| u32::try_from(v).unwrap_or(u32::MAX);
+                let s = spec.shape;
+                let params =
+                    cam.params(n(s.w), n(s.h), n(s.c))
+                        .map_err(|e| ImageError::Camera {
+                            path: dir.to_path_buf(),
+                            message: e.to_string(),
+                        })?;
+                Some(CameraPath {
+                    camera: cam.clone(),
+                    params,
+                })
+            }
+        };
+        let with_frames = camera.is_some();
         let mut entries = Vec::new();
         let mut ignored = Vec::new();
         let mut push =
             |name: String, path: PathBuf, label: Option<usize>, ignored: &mut Vec<PathBuf>| {
-                match extension_kind(&path) {
+                match extension_kind(&path, with_frames) {
                     Some(kind) => entries.push(Entry {
                         path,
                         name,
@@ -242,7 +312,13 @@ impl ImageSet {
             spec: spec.clone(),
             entries,
             ignored,
+            camera,
         })
+    }
+
+    /// The camera samples go through, if any.
+    pub fn camera(&self) -> Option<&CameraPath> {
+        self.camera.as_ref()
     }
 
     /// The folder.
@@ -273,8 +349,11 @@ impl ImageSet {
     /// Decodes sample `index`.
     pub fn load(&self, index: usize) -> Result<Sample, ImageError> {
         let e = &self.entries[index];
+        if let Some(cam) = &self.camera {
+            return self.load_camera(index, cam);
+        }
         match e.kind {
-            SampleKind::Picture => {
+            SampleKind::Picture | SampleKind::Frame => {
                 let pixels = load_pixels(&e.path, &self.spec)?;
                 let input = preprocess(&self.spec, &pixels);
                 Ok(Sample {
@@ -292,6 +371,85 @@ impl ImageSet {
                     pixels: None,
                     input,
                 })
+            }
+        }
+    }
+
+    /// Sample `index` through the camera: the frame (encoded from the
+    /// picture, or read raw) and the samples `convert_frame` makes of it.
+    fn load_camera(&self, index: usize, cam: &CameraPath) -> Result<Sample, ImageError> {
+        let e = &self.entries[index];
+        let frame = self.frame(index)?;
+        match frame {
+            None => {
+                let input = read_npy(&e.path, self.spec.shape)?;
+                Ok(Sample {
+                    index,
+                    label: e.label,
+                    pixels: None,
+                    input,
+                })
+            }
+            Some(frame) => {
+                let pixels = cam.samples(&frame);
+                let input = preprocess(&self.spec, &pixels);
+                Ok(Sample {
+                    index,
+                    label: e.label,
+                    pixels: Some(pixels),
+                    input,
+                })
+            }
+        }
+    }
+
+    /// The camera frame of sample `index` (`None` for `.npy` samples or
+    /// without a camera): a raw dump as read, or a picture stretched to
+    /// the frame size and encoded in the camera's format.
+    pub fn frame(&self, index: usize) -> Result<Option<Vec<u8>>, ImageError> {
+        let Some(cam) = &self.camera else {
+            return Ok(None);
+        };
+        let e = &self.entries[index];
+        let expected = cam.frame_bytes();
+        let io = |source| ImageError::Io {
+            path: e.path.clone(),
+            source,
+        };
+        match e.kind {
+            SampleKind::Npy => Ok(None),
+            SampleKind::Frame => {
+                let size = std::fs::metadata(&e.path).map_err(io)?.len();
+                if size != expected as u64 {
+                    return Err(ImageError::FrameSize {
+                        path: e.path.clone(),
+                        size,
+                        expected,
+                    });
+                }
+                let bytes = crate::guard::read_bounded(&e.path, expected as u64).map_err(io)?;
+                if bytes.len() != expected {
+                    return Err(ImageError::FrameSize {
+                        path: e.path.clone(),
+                        size: bytes.len() as u64,
+                        expected,
+                    });
+                }
+                Ok(Some(bytes))
+            }
+            SampleKind::Picture => {
+                let c = cam.params.config();
+                let rgb_spec = InputSpec {
+                    shape: Shape {
+                        c: 3,
+                        h: c.frame_h as usize,
+                        w: c.frame_w as usize,
+                    },
+                    color: Color::Rgb,
+                    ..self.spec.clone()
+                };
+                let rgb = load_pixels(&e.path, &rgb_spec)?;
+                Ok(Some(frames::encode_frame(&cam.camera, &rgb)))
             }
         }
     }

@@ -28,6 +28,7 @@
 //! caches, wait states or multi-cycle instructions.
 
 pub mod accuracy;
+pub mod camera;
 pub mod compare;
 pub mod icount;
 pub mod io;

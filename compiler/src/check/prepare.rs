@@ -58,6 +58,9 @@ pub struct PrepareOptions {
     /// How convolution weights are stored; `None`: the target's core
     /// decides (int8 without a target).
     pub weight_form: Option<codegen::WeightForm>,
+    /// The camera images go through (see [`crate::calibrate::frames`]);
+    /// `None`: the target's `[camera]`, if any.
+    pub camera: Option<crate::camera::Camera>,
 }
 
 impl Default for PrepareOptions {
@@ -69,6 +72,7 @@ impl Default for PrepareOptions {
             target: None,
             module: String::new(),
             weight_form: None,
+            camera: None,
         }
     }
 }
@@ -94,6 +98,9 @@ pub struct Prepared {
     pub ranges_note: String,
     /// Image names, in check order.
     pub image_names: Vec<String>,
+    /// With a camera and labels: the camera path against host-resized
+    /// pictures (put it in the report's `camera`).
+    pub camera: Option<super::camera::CameraFigures>,
 }
 
 /// Loads, calibrates (or reads ranges), lowers, plans, generates, and runs
@@ -105,14 +112,22 @@ pub fn prepare(
     opts: &PrepareOptions,
 ) -> Result<Prepared, PrepareError> {
     let g = crate::load(graph_path).map_err(|e| err("loading the graph")(&e))?;
-    let set = ImageSet::open(images, &g).map_err(|e| err("--images")(&e))?;
+    let target = opts
+        .target
+        .as_ref()
+        .map(Target::load)
+        .transpose()
+        .map_err(|e| err("--target")(&e))?;
+    let camera = crate::driver::camera_for(opts.camera.as_ref(), target.as_ref());
+    let set =
+        ImageSet::open_camera(images, &g, camera.as_ref()).map_err(|e| err("--images")(&e))?;
     if set.is_empty() {
         return Err(PrepareError(format!(
             "--images: no images in {}",
             images.display()
         )));
     }
-    let (ranges, ranges_note) = ranges_for(&g, &set, &opts.ranges, opts.method)?;
+    let (ranges, ranges_note) = ranges_for(&g, &set, &opts.ranges, opts.method, camera.as_ref())?;
     let q = lower::lower(
         &g,
         &ranges,
@@ -121,12 +136,6 @@ pub fn prepare(
         },
     )
     .map_err(|e| err("lowering")(&e))?;
-    let target = opts
-        .target
-        .as_ref()
-        .map(Target::load)
-        .transpose()
-        .map_err(|e| err("--target")(&e))?;
     let weight_form = crate::driver::weight_form_for(opts.weight_form, target.as_ref());
     let p = plan::plan(
         &q,
@@ -149,6 +158,7 @@ pub fn prepare(
             flash_bytes: None,
         }),
         weight_form,
+        camera: camera.clone(),
         ..GenOptions::default()
     };
     let planned = crate::driver::schedule_of(&q, &p);
@@ -166,6 +176,27 @@ pub fn prepare(
         }
     };
     let data = compare_data(&g, &set, &q, &schedule, &generated)?;
+    let camera_figures = match (&camera, set.camera()) {
+        (Some(cam), Some(path)) if data.labels.is_some() => {
+            // Raw frames have no host-resized counterpart: no comparison.
+            let plain = ImageSet::open(images, &g)
+                .ok()
+                .filter(|p| p.len() == set.len());
+            if let Some(plain) = plain {
+                let host = compare_data(&g, &plain, &q, &schedule, &generated)?;
+                let c = path.params.config();
+                let about = format!(
+                    "{cam}, region x={} y={} w={} h={}, {:?}",
+                    c.roi.x, c.roi.y, c.roi.w, c.roi.h, cam.resize
+                )
+                .to_lowercase();
+                super::camera::figures(about, &data, &host)
+            } else {
+                None
+            }
+        }
+        _ => None,
+    };
     Ok(Prepared {
         data,
         q,
@@ -176,6 +207,7 @@ pub fn prepare(
         budget,
         ranges_note,
         image_names: set.entries().iter().map(|e| e.name.clone()).collect(),
+        camera: camera_figures,
     })
 }
 
@@ -184,6 +216,7 @@ fn ranges_for(
     set: &ImageSet,
     from: &RangesFrom,
     method: calibrate::Method,
+    camera: Option<&crate::camera::Camera>,
 ) -> Result<(Ranges, String), PrepareError> {
     let opts = CalibOptions {
         method,
@@ -202,7 +235,8 @@ fn ranges_for(
             Ok((r, format!("ranges read from {}", p.display())))
         }
         RangesFrom::Images(dir) => {
-            let cal = ImageSet::open(dir, g).map_err(|e| err("--calib-images")(&e))?;
+            let cal =
+                ImageSet::open_camera(dir, g, camera).map_err(|e| err("--calib-images")(&e))?;
             let r = calibrate_on(&cal)?;
             let note = format!(
                 "calibrated ({}) on {} images of {}",

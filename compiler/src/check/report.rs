@@ -148,6 +148,9 @@ pub struct CheckReport {
     pub gates: crate::stats::Gates,
     /// Threshold and bit-exactness failures (empty = pass).
     pub failures: Vec<String>,
+    /// With a camera: the device path against host-resized pictures.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub camera: Option<super::camera::CameraFigures>,
 }
 
 fn pct(x: f64) -> String {
@@ -269,6 +272,7 @@ pub fn markdown(r: &CheckReport) -> String {
         );
     }
     s.push_str(&super::accuracy::markdown(r));
+    s.push_str(&super::camera::markdown(r.camera.as_ref()));
 
     if !r.layers.is_empty() {
         let _ = writeln!(s, "## Layers\n");
