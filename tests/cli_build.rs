@@ -1,8 +1,8 @@
 //! `ingot build` end to end: failures leave the output folder untouched.
 
+use ingot_testkit::ingot;
 use std::collections::BTreeMap;
 use std::path::Path;
-use std::process::Command;
 
 fn snapshot(dir: &Path) -> BTreeMap<String, Vec<u8>> {
     std::fs::read_dir(dir)
@@ -18,10 +18,7 @@ fn snapshot(dir: &Path) -> BTreeMap<String, Vec<u8>> {
 }
 
 fn ingot(args: &[&std::ffi::OsStr]) -> std::process::Output {
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
-        .args(args)
-        .output()
-        .unwrap()
+    ingot!().args(args).output().unwrap()
 }
 
 #[test]
@@ -77,8 +74,8 @@ fn build_needs_ranges_or_images() {
 /// inputs saved next to it: `(graph path, ranges path)`.
 fn zoo_model(dir: &Path) -> (std::path::PathBuf, std::path::PathBuf) {
     use ingot_compiler::calibrate::{MapRange, Ranges};
-    let net = ingot_compiler::zoo::residual(
-        &ingot_compiler::zoo::ResidualConfig {
+    let net = ingot_testkit::zoo::residual(
+        &ingot_testkit::zoo::ResidualConfig {
             input: [3, 16, 16],
             ..Default::default()
         },

@@ -1,13 +1,9 @@
 //! End-to-end tests of `ingot calibrate`: the built binary on a zoo graph
 //! and PGM images written by the test (binary PGM, `P5`, written by hand).
 
-use ingot_compiler::zoo;
+use ingot_testkit::ingot;
+use ingot_testkit::zoo;
 use std::path::Path;
-use std::process::Command;
-
-fn ingot() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
-}
 
 fn write_pgm(path: &Path, w: usize, h: usize, seed: u64) {
     let mut rng = zoo::Rng::new(seed);
@@ -34,7 +30,7 @@ fn setup(dir: &Path) -> std::path::PathBuf {
 /// -o OUT` on the test set of `setup`; must succeed. Returns the JSON it
 /// printed.
 fn calibrate_json(dir: &Path, graph: &Path, method: &str, out_file: &Path) -> serde_json::Value {
-    let out = ingot()
+    let out = ingot!()
         .args(["calibrate"])
         .arg(graph)
         .arg("--images")
@@ -74,7 +70,7 @@ fn calibrate_writes_ranges_and_prints_json() {
 fn calibrate_prints_a_table_and_defaults_the_output_path() {
     let dir = tempfile::tempdir().unwrap();
     let graph = setup(dir.path());
-    let out = ingot()
+    let out = ingot!()
         .arg("calibrate")
         .arg(&graph)
         .arg("--images")
@@ -108,7 +104,7 @@ fn calibrate_reports_bad_files_and_skips_them_on_request() {
     )
     .unwrap();
     let run = |extra: &[&str]| {
-        ingot()
+        ingot!()
             .arg("calibrate")
             .arg(&graph)
             .arg("--images")
@@ -140,7 +136,7 @@ fn unknown_class_folder_is_named() {
     let dir = tempfile::tempdir().unwrap();
     let graph = setup(dir.path());
     std::fs::create_dir_all(dir.path().join("images/kitten")).unwrap();
-    let out = ingot()
+    let out = ingot!()
         .arg("calibrate")
         .arg(&graph)
         .arg("--images")
@@ -203,7 +199,7 @@ fn calibrate_holdout_reports_the_paired_comparison_and_escapes() {
     let dir = tempfile::tempdir().unwrap();
     let graph = setup(dir.path());
     let run = |good: &str| {
-        ingot()
+        ingot!()
             .arg("calibrate")
             .arg(&graph)
             .arg("--images")

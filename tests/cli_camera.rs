@@ -2,8 +2,9 @@
 //! the `--camera-format`/`--frame`/... options; bad cameras fail the build
 //! with a sentence naming the camera and leave `--out` untouched.
 
+use ingot_testkit::ingot;
 use std::path::Path;
-use std::process::{Command, Output};
+use std::process::Output;
 
 fn root() -> &'static Path {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -11,7 +12,7 @@ fn root() -> &'static Path {
 
 fn build(out: &Path, extra: &[&str]) -> Output {
     let demo = root().join("examples/demo/model");
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
+    ingot!()
         .arg("build")
         .arg(demo.join("brackets.graph.json"))
         .arg("--ranges")

@@ -1,8 +1,8 @@
 //! `ingot check` from the command line.
 
 use ingot_compiler::check::{emulation_or_skip, io, RunOn};
+use ingot_testkit::ingot;
 use std::path::Path;
-use std::process::Command;
 
 fn standin() -> std::path::PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("compiler/tests/fixtures/standin")
@@ -29,7 +29,7 @@ fn check_module_on_m4_reports_and_fails_naming_the_flash_budget() {
     let tmp = tempfile::tempdir().unwrap();
     let inputs = inputs_file(tmp.path());
     let report = tmp.path().join("report");
-    let ok = Command::new(env!("CARGO_BIN_EXE_ingot"))
+    let ok = ingot!()
         .args(["check", "--on", "m4", "--module"])
         .arg(standin())
         .arg("--inputs")
@@ -54,7 +54,7 @@ fn check_module_on_m4_reports_and_fails_naming_the_flash_budget() {
             .unwrap();
     assert!(json["instructions"]["per_inference_mean"].as_u64().unwrap() > 2496);
 
-    let over = Command::new(env!("CARGO_BIN_EXE_ingot"))
+    let over = ingot!()
         .args(["check", "--on", "m4", "--flash-budget", "1000", "--module"])
         .arg(standin())
         .arg("--inputs")
@@ -72,7 +72,7 @@ fn check_module_on_m4_reports_and_fails_naming_the_flash_budget() {
 #[test]
 fn check_rejects_unknown_cores_and_wrong_input_lengths() {
     let tmp = tempfile::tempdir().unwrap();
-    let out = Command::new(env!("CARGO_BIN_EXE_ingot"))
+    let out = ingot!()
         .args(["check", "--on", "m5", "--module"])
         .arg(standin())
         .output()
@@ -82,7 +82,7 @@ fn check_rejects_unknown_cores_and_wrong_input_lengths() {
 
     let bad = tmp.path().join("bad.bin");
     io::write_inputs(&bad, 10, &[vec![0; 10]]).unwrap();
-    let out = Command::new(env!("CARGO_BIN_EXE_ingot"))
+    let out = ingot!()
         .args(["check", "--module"])
         .arg(standin())
         .arg("--inputs")
@@ -103,7 +103,7 @@ fn digits() -> std::path::PathBuf {
 
 fn check_digits(extra: &[&str], report: &Path) -> std::process::Output {
     let d = digits();
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
+    ingot!()
         .arg("check")
         .arg(d.join("model/digits.graph.json"))
         .arg("--calib-images")

@@ -7,18 +7,12 @@
 //! hang detector, not a speed assertion.
 
 use ingot_compiler::frontend::TensorStore;
+use ingot_testkit::cli::{repo, stderr};
+use ingot_testkit::ingot;
 use serde_json::{json, Value};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output, Stdio};
 use std::time::{Duration, Instant};
-
-fn ingot() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
-}
-
-fn repo() -> PathBuf {
-    PathBuf::from(env!("CARGO_MANIFEST_DIR"))
-}
 
 fn digits_dir() -> PathBuf {
     repo().join("tests/data/optdigits")
@@ -47,10 +41,6 @@ fn run_limited(mut cmd: Command, limit: Duration) -> Output {
         }
         std::thread::sleep(Duration::from_millis(50));
     }
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
 }
 
 fn fails_with(o: &Output, needles: &[&str]) -> String {
@@ -117,7 +107,7 @@ fn check_report_refuses_a_folder_ingot_did_not_write() {
     let d = digits_dir();
     let o = run_limited(
         {
-            let mut c = ingot();
+            let mut c = ingot!();
             c.arg("check")
                 .arg(d.join("model/digits.graph.json"))
                 .arg("--images")
@@ -145,7 +135,7 @@ fn check_report_refuses_a_folder_ingot_did_not_write() {
     let model = tmp.path().join("model");
     std::fs::create_dir(&model).unwrap();
     let g = digits_copy(&model, |_| {});
-    let o = ingot()
+    let o = ingot!()
         .arg("check")
         .arg(&g)
         .arg("--images")
@@ -167,7 +157,7 @@ fn calibrate_output_never_replaces_an_input_or_a_foreign_file() {
     let before = std::fs::read(&g).unwrap();
     let images = digits_dir().join("calibration");
     let calibrate = |out: &Path, force: bool| {
-        let mut c = ingot();
+        let mut c = ingot!();
         c.arg("calibrate")
             .arg(&g)
             .arg("--images")
@@ -220,7 +210,7 @@ fn plan_svg_never_replaces_an_input_or_a_foreign_file() {
     let g = digits_copy(tmp.path(), |_| {});
     let before = std::fs::read(&g).unwrap();
     let plan = |svg: &Path, force: bool| {
-        let mut c = ingot();
+        let mut c = ingot!();
         c.arg("plan").arg(&g).arg("--svg").arg(svg);
         if force {
             c.arg("--force");
@@ -255,13 +245,13 @@ fn devices_and_fifos_are_refused_without_hanging() {
     let tmp = tempfile::tempdir().unwrap();
     for dev in ["/dev/zero", "/dev/urandom"] {
         let g = digits_copy(tmp.path(), |g| g["weights"] = json!(dev));
-        let mut c = ingot();
+        let mut c = ingot!();
         c.arg("inspect").arg(&g);
         let o = run_limited(c, Duration::from_secs(60));
         fails_with(&o, &[dev, "not a regular file"]);
     }
     let g = digits_copy(tmp.path(), |_| {});
-    let mut c = ingot();
+    let mut c = ingot!();
     c.arg("plan").arg(&g).arg("--ranges").arg("/dev/zero");
     fails_with(
         &run_limited(c, Duration::from_secs(60)),
@@ -271,7 +261,7 @@ fn devices_and_fifos_are_refused_without_hanging() {
     let fifo = tmp.path().join("pipe.json");
     let made = Command::new("mkfifo").arg(&fifo).status().unwrap();
     assert!(made.success());
-    let mut c = ingot();
+    let mut c = ingot!();
     c.arg("inspect").arg(&fifo);
     fails_with(
         &run_limited(c, Duration::from_secs(60)),
@@ -288,7 +278,7 @@ fn oversized_and_lying_files_are_refused_before_reading() {
     let f = std::fs::File::create(&big).unwrap();
     f.set_len(ingot_compiler::guard::MAX_JSON_BYTES + 1)
         .unwrap();
-    let o = ingot().arg("inspect").arg(&big).output().unwrap();
+    let o = ingot!().arg("inspect").arg(&big).output().unwrap();
     fails_with(&o, &["big.graph.json", "larger than the limit"]);
     // A safetensors header that claims 10^15 bytes of tensor data.
     let g = digits_copy(tmp.path(), |_| {});
@@ -296,7 +286,7 @@ fn oversized_and_lying_files_are_refused_before_reading() {
     let mut b = (h.len() as u64).to_le_bytes().to_vec();
     b.extend_from_slice(h);
     std::fs::write(tmp.path().join("digits.safetensors"), &b).unwrap();
-    let o = ingot().arg("inspect").arg(&g).output().unwrap();
+    let o = ingot!().arg("inspect").arg(&g).output().unwrap();
     fails_with(
         &o,
         &["digits.safetensors", "declares 1000000000000000 bytes"],
@@ -315,7 +305,7 @@ fn pools_whose_sum_could_overflow_are_refused_naming_the_layer() {
         [1, 5000, 5000],
         json!([{ "name": "big_pool", "op": "avg_pool2d", "input": "image", "kernel": 5000 }]),
     );
-    let mut c = ingot();
+    let mut c = ingot!();
     c.arg("plan").arg(&g);
     fails_with(
         &run_limited(c, Duration::from_secs(120)),
@@ -326,7 +316,7 @@ fn pools_whose_sum_could_overflow_are_refused_naming_the_layer() {
         [1, 5000, 5000],
         json!([{ "name": "gap", "op": "global_avg_pool", "input": "image" }]),
     );
-    let mut c = ingot();
+    let mut c = ingot!();
     c.arg("plan").arg(&g);
     fails_with(
         &run_limited(c, Duration::from_secs(120)),
@@ -338,7 +328,7 @@ fn pools_whose_sum_could_overflow_are_refused_naming_the_layer() {
         [1, 2896, 2896],
         json!([{ "name": "gap", "op": "global_avg_pool", "input": "image" }]),
     );
-    let o = ingot().arg("plan").arg(&g).output().unwrap();
+    let o = ingot!().arg("plan").arg(&g).output().unwrap();
     assert!(o.status.success(), "{}", stderr(&o));
 }
 
@@ -352,7 +342,7 @@ fn graph_names_cannot_steer_default_output_paths() {
     let abs = tmp.path().join("abs");
     for name in ["../../esc", abs.to_str().unwrap(), ".."] {
         let g = digits_copy(&model, |g| g["name"] = json!(name));
-        let o = ingot()
+        let o = ingot!()
             .arg("calibrate")
             .arg(&g)
             .arg("--images")
@@ -385,7 +375,7 @@ fn non_finite_thresholds_are_rejected() {
         ("--max-drop", "inf"),
         ("--min-agreement", "-inf"),
     ] {
-        let o = ingot()
+        let o = ingot!()
             .args(["check", "g.json", "--images", "x", &format!("{flag}={v}")])
             .output()
             .unwrap();
@@ -422,7 +412,7 @@ fn collapsed_accuracy_fails_the_default_gates() {
     };
     let rp = tmp.path().join("narrow.ranges.json");
     r.save(&graph, &rp).unwrap();
-    let o = ingot()
+    let o = ingot!()
         .arg("check")
         .arg(&g)
         .arg("--ranges")
@@ -447,7 +437,7 @@ fn degenerate_preprocessing_and_ranges_are_refused() {
     let tmp = tempfile::tempdir().unwrap();
     for (key, v) in [("pixel_scale", json!(1e-45)), ("std", json!([1e38]))] {
         let g = digits_copy(tmp.path(), |g| g["input"][key] = v.clone());
-        let o = ingot().arg("inspect").arg(&g).output().unwrap();
+        let o = ingot!().arg("inspect").arg(&g).output().unwrap();
         fails_with(&o, &["digits.graph.json", "input `image`", "constant"]);
     }
     let g = digits_copy(tmp.path(), |_| {});
@@ -466,7 +456,7 @@ fn degenerate_preprocessing_and_ranges_are_refused() {
         };
         let rp = tmp.path().join("r.json");
         r.save(&graph, &rp).unwrap();
-        let o = ingot()
+        let o = ingot!()
             .arg("plan")
             .arg(&g)
             .arg("--ranges")
@@ -489,7 +479,7 @@ fn all_zero_weights_are_reported_as_a_warning() {
         *v = 0.0;
     }
     store.save(&w).unwrap();
-    let o = ingot().arg("inspect").arg(&g).output().unwrap();
+    let o = ingot!().arg("inspect").arg(&g).output().unwrap();
     let e = stderr(&o);
     assert!(o.status.success(), "{e}");
     assert!(
@@ -508,7 +498,7 @@ fn huge_graphs_are_refused_before_allocating() {
         [1, 100_000, 100_000],
         json!([{ "name": "r", "op": "relu", "input": "image" }]),
     );
-    let mut c = ingot();
+    let mut c = ingot!();
     c.arg("plan").arg(&g).env_remove("INGOT_MEMORY_LIMIT");
     let e = fails_with(
         &run_limited(c, Duration::from_secs(60)),
@@ -526,9 +516,9 @@ fn huge_graphs_are_refused_before_allocating() {
         [1, 64, 64],
         json!([{ "name": "r", "op": "relu", "input": "image" }]),
     );
-    let o = ingot().arg("inspect").arg(&g).output().unwrap();
+    let o = ingot!().arg("inspect").arg(&g).output().unwrap();
     assert!(o.status.success(), "{}", stderr(&o));
-    let o = ingot()
+    let o = ingot!()
         .arg("inspect")
         .arg(&g)
         .env("INGOT_MEMORY_LIMIT", "1K")
@@ -542,7 +532,7 @@ fn huge_graphs_are_refused_before_allocating() {
 #[test]
 fn os_errors_are_printed_once() {
     let tmp = tempfile::tempdir().unwrap();
-    let o = ingot()
+    let o = ingot!()
         .arg("inspect")
         .arg(tmp.path().join("missing.json"))
         .output()
@@ -571,7 +561,7 @@ fn os_errors_are_printed_once() {
     };
     let rp = tmp.path().join("r.json");
     r.save(&graph, &rp).unwrap();
-    let o = ingot()
+    let o = ingot!()
         .arg("build")
         .arg(&g)
         .arg("--ranges")
@@ -592,7 +582,7 @@ fn output_errors_name_the_out_folder() {
     let blocker = tmp.path().join("blocker");
     std::fs::write(&blocker, "x").unwrap();
     let out = blocker.join("out");
-    let o = ingot()
+    let o = ingot!()
         .arg("build")
         .arg(&g)
         .arg("--images")
@@ -610,7 +600,7 @@ fn a_top_level_array_gets_a_human_message() {
     let tmp = tempfile::tempdir().unwrap();
     let g = tmp.path().join("g.json");
     std::fs::write(&g, "[]").unwrap();
-    let o = ingot().arg("inspect").arg(&g).output().unwrap();
+    let o = ingot!().arg("inspect").arg(&g).output().unwrap();
     let e = fails_with(&o, &["g.json", "holds an array", "one JSON object"]);
     assert!(!e.contains("GraphFile"), "{e}");
 }
@@ -634,7 +624,7 @@ fn a_corrupt_image_is_one_line_naming_the_file() {
     png.truncate(png.len() / 2);
     png[20] ^= 0xff;
     std::fs::write(images.join("broken.png"), &png).unwrap();
-    let o = ingot()
+    let o = ingot!()
         .arg("calibrate")
         .arg(&g)
         .arg("--images")
@@ -661,7 +651,7 @@ fn check_without_report_leaves_no_temporary_folder() {
     // this test does not rebuild the runner from scratch.
     let build_dir = ingot_compiler::check::runner::default_build_dir();
     for extra in [&[][..], &["--min-agreement", "1.01"][..]] {
-        let o = ingot()
+        let o = ingot!()
             .arg("check")
             .arg(d.join("model/digits.graph.json"))
             .arg("--calib-images")

@@ -2,12 +2,8 @@
 //! ONNX fixtures (written by `compiler/tests/fixtures/onnx/make_fixtures.py`
 //! with the `onnx` package 1.23.2).
 
+use ingot_testkit::ingot;
 use std::path::{Path, PathBuf};
-use std::process::Command;
-
-fn ingot() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
-}
 
 fn fixture(name: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join(format!("compiler/tests/fixtures/onnx/{name}.onnx"))
@@ -16,7 +12,7 @@ fn fixture(name: &str) -> PathBuf {
 #[test]
 fn import_writes_a_graph_that_inspect_loads_and_prints_the_table() {
     let dir = tempfile::tempdir().unwrap();
-    let out = ingot()
+    let out = ingot!()
         .arg("import")
         .arg(fixture("net_mobile"))
         .arg("--out")
@@ -41,7 +37,7 @@ fn import_writes_a_graph_that_inspect_loads_and_prints_the_table() {
         "{text}"
     );
     let graph = dir.path().join("mobile.graph.json");
-    let out = ingot().arg("inspect").arg(&graph).output().unwrap();
+    let out = ingot!().arg("inspect").arg(&graph).output().unwrap();
     assert!(
         out.status.success(),
         "{}",
@@ -52,7 +48,7 @@ fn import_writes_a_graph_that_inspect_loads_and_prints_the_table() {
     assert_eq!(g["labels"], serde_json::json!(["a", "b", "c"]));
     assert_eq!(g["input"]["mean"], serde_json::json!([0.5, 0.5, 0.5]));
     // Re-importing over its own files is fine.
-    let again = ingot()
+    let again = ingot!()
         .args([
             "import",
             fixture("net_mobile").to_str().unwrap(),
@@ -71,7 +67,7 @@ fn import_never_overwrites_a_foreign_file_without_force() {
     let dir = tempfile::tempdir().unwrap();
     let mine = dir.path().join("net_dense.graph.json");
     std::fs::write(&mine, "my own notes").unwrap();
-    let out = ingot()
+    let out = ingot!()
         .arg("import")
         .arg(fixture("net_dense"))
         .arg("--out")
@@ -86,7 +82,7 @@ fn import_never_overwrites_a_foreign_file_without_force() {
     );
     assert_eq!(std::fs::read_to_string(&mine).unwrap(), "my own notes");
     assert!(!dir.path().join("net_dense.safetensors").exists());
-    let out = ingot()
+    let out = ingot!()
         .arg("import")
         .arg(fixture("net_dense"))
         .arg("--out")
@@ -109,7 +105,7 @@ fn a_bad_model_exits_non_zero_and_writes_nothing() {
     let bytes = std::fs::read(fixture("net_resnet")).unwrap();
     std::fs::write(&bad, &bytes[..bytes.len() / 3]).unwrap();
     let out_dir = dir.path().join("out");
-    let out = ingot()
+    let out = ingot!()
         .arg("import")
         .arg(&bad)
         .arg("--out")

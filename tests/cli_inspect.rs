@@ -5,17 +5,10 @@
 //! with `INGOT_BLESS=1` to regenerate the input graph (from the zoo, seed 1)
 //! and the expected output after an intended change.
 
-use ingot_compiler::zoo;
+use ingot_testkit::cli::bless;
+use ingot_testkit::ingot;
+use ingot_testkit::zoo;
 use std::path::Path;
-use std::process::Command;
-
-fn ingot() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
-}
-
-fn bless() -> bool {
-    std::env::var("INGOT_BLESS").is_ok_and(|v| v == "1")
-}
 
 /// The value on the totals line that starts with `key`.
 fn total<'a>(text: &'a str, key: &str) -> &'a str {
@@ -31,7 +24,7 @@ fn inspect_prints_counts_of_a_written_graph() {
     let dir = tempfile::tempdir().unwrap();
     let net = zoo::residual(&zoo::ResidualConfig::default(), 3);
     let path = net.write(dir.path(), "res").unwrap();
-    let out = ingot().arg("inspect").arg(&path).output().unwrap();
+    let out = ingot!().arg("inspect").arg(&path).output().unwrap();
     assert!(
         out.status.success(),
         "{}",
@@ -46,7 +39,7 @@ fn inspect_prints_counts_of_a_written_graph() {
     // Running statistics: as many as batch-norm scale and shift.
     assert_eq!(total(&text, "buffers"), "288", "{text}");
 
-    let out = ingot()
+    let out = ingot!()
         .arg("inspect")
         .arg("--json")
         .arg(&path)
@@ -67,7 +60,7 @@ fn inspect_reports_load_errors_and_exits_1() {
     let mut net = zoo::plain_stack(&zoo::PlainStackConfig::default(), 1);
     net.file.layers[1].op = "swish".into();
     let path = net.write(dir.path(), "bad").unwrap();
-    let out = ingot().arg("inspect").arg(&path).output().unwrap();
+    let out = ingot!().arg("inspect").arg(&path).output().unwrap();
     assert_eq!(out.status.code(), Some(1));
     let err = String::from_utf8(out.stderr).unwrap();
     assert!(
@@ -95,7 +88,7 @@ fn inspect_snapshot_plain_stack() {
         net.store.to_bytes(),
         "tests/in is stale: rerun with INGOT_BLESS=1"
     );
-    let out = ingot()
+    let out = ingot!()
         .current_dir(root)
         .args(["inspect", "tests/in/plain_stack.graph.json"])
         .output()

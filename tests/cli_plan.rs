@@ -1,13 +1,9 @@
 //! End-to-end tests of `ingot plan`: the built binary on zoo graphs written
 //! to disk, with the shipped target profiles.
 
-use ingot_compiler::zoo;
+use ingot_testkit::ingot;
+use ingot_testkit::zoo;
 use std::path::Path;
-use std::process::Command;
-
-fn ingot() -> Command {
-    Command::new(env!("CARGO_BIN_EXE_ingot"))
-}
 
 fn target(name: &str) -> std::path::PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -23,7 +19,7 @@ fn plan_prints_and_checks_the_budget() {
     let dir = tempfile::tempdir().unwrap();
     let path = zoo::dense_small(1).write(dir.path(), "dense").unwrap();
     let svg = dir.path().join("plan.svg");
-    let out = ingot()
+    let out = ingot!()
         .args(["plan"])
         .arg(&path)
         .arg("--target")
@@ -43,7 +39,7 @@ fn plan_prints_and_checks_the_budget() {
     assert!(text.contains("  fits"), "{text}");
     assert!(std::fs::read_to_string(&svg).unwrap().starts_with("<svg"));
 
-    let out = ingot()
+    let out = ingot!()
         .args(["plan", "--json"])
         .arg(&path)
         .arg("--target")

@@ -5,8 +5,8 @@
 //! Cortex-M4F profile), on the host and on the emulated Cortex-M4.
 
 use ingot_compiler::check::{emulation_or_skip, RunOn};
+use ingot_testkit::ingot;
 use std::path::{Path, PathBuf};
-use std::process::Command;
 
 fn root() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
@@ -44,11 +44,7 @@ fn readme_main_command(report: &Path) -> Vec<String> {
 }
 
 fn run(args: &[String]) -> (std::process::Output, String) {
-    let out = Command::new(env!("CARGO_BIN_EXE_ingot"))
-        .current_dir(root())
-        .args(args)
-        .output()
-        .unwrap();
+    let out = ingot!().current_dir(root()).args(args).output().unwrap();
     let text = format!(
         "{}\n{}",
         String::from_utf8_lossy(&out.stdout),

@@ -5,7 +5,8 @@
 //! With `SVG_DIR`, also writes `<network>.svg` pictures of every plan.
 
 use ingot_compiler::lower::QGraph;
-use ingot_compiler::plan::{self, synth, PlanOptions};
+use ingot_compiler::plan::{self, PlanOptions};
+use ingot_testkit::synth;
 use std::time::Instant;
 
 fn row(q: &QGraph, svg: Option<&std::path::Path>) {

@@ -11,7 +11,7 @@
 //! batch. Every figure is the median over several repetitions.
 
 use ingot_compiler::reference::Reference;
-use ingot_compiler::zoo::{self, Net};
+use ingot_testkit::zoo::{self, Net};
 use std::time::Instant;
 
 fn median(mut v: Vec<f64>) -> f64 {

@@ -14,7 +14,7 @@
 //! Optional argument: a comma-separated list of case names to run.
 
 use ingot_compiler::calibrate::{CalibOptions, ImageSet, Method};
-use ingot_compiler::zoo::{self, DenseConfig, Rng};
+use ingot_testkit::zoo::{self, DenseConfig, Rng};
 use std::path::Path;
 use std::time::Instant;
 

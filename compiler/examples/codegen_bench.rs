@@ -11,8 +11,9 @@
 //! * flash: weights-file bytes by section, checked against the parameter
 //!   counts, and `.text` of the module and kernel objects (host, proxy).
 
-use ingot_compiler::codegen::{generate, testnets, GenOptions, Schedule, WeightsMode};
+use ingot_compiler::codegen::{generate, GenOptions, Schedule, WeightsMode};
 use ingot_compiler::lower::QGraph;
+use ingot_testkit::testnets;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::Instant;
@@ -101,7 +102,7 @@ fn float_ips(g: &ingot_compiler::Graph, input: &[f32], n: usize) -> f64 {
 fn bench(
     name: &'static str,
     q: &QGraph,
-    float: &ingot_compiler::zoo::Net,
+    float: &ingot_testkit::zoo::Net,
     runs: usize,
     root: &Path,
     grind: bool,
@@ -212,7 +213,7 @@ fn main() {
     let mut rows = vec![bench(
         "demo-sized dense (1x64x64)",
         &testnets::demo_sized(),
-        &ingot_compiler::zoo::dense_small(1),
+        &ingot_testkit::zoo::dense_small(1),
         300,
         &root,
         true,
@@ -221,7 +222,7 @@ fn main() {
         rows.push(bench(
             "densenet121 (3x224x224)",
             &testnets::densenet121(224),
-            &ingot_compiler::zoo::densenet121(1),
+            &ingot_testkit::zoo::densenet121(1),
             2,
             &root,
             false,

@@ -1,7 +1,8 @@
 //! Writes the generator's test networks as modules into a folder:
 //! `cargo run -p ingot-compiler --example gen_testnets -- OUT_DIR`.
 
-use ingot_compiler::codegen::{generate, testnets, GenOptions, Schedule};
+use ingot_compiler::codegen::{generate, GenOptions, Schedule};
+use ingot_testkit::testnets;
 
 fn main() {
     let out = std::env::args()

@@ -18,7 +18,7 @@ use ingot_compiler::frontend::onnx::proto::{
 };
 use ingot_compiler::frontend::onnx::{self, ImportOptions};
 use ingot_compiler::frontend::{LayerFile, TensorStore};
-use ingot_compiler::zoo;
+use ingot_testkit::zoo;
 use prost::Message;
 use serde_json::Value;
 use std::collections::HashSet;

@@ -30,7 +30,6 @@ pub mod ranges;
 pub mod reference;
 pub mod stats;
 pub mod util;
-pub mod zoo;
 
 pub use frontend::{load, LoadError};
 

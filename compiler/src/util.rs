@@ -43,3 +43,6 @@ pub fn fnv1a(h: u64, bytes: &[u8]) -> u64 {
     }
     h
 }
+
+#[cfg(test)]
+pub(crate) mod test_rng;

@@ -4,8 +4,8 @@
 use image::{GrayImage, Luma};
 use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, Method, Ranges};
 use ingot_compiler::lower::LowerOptions;
-use ingot_compiler::zoo::{self, Rng};
 use ingot_compiler::Graph;
+use ingot_testkit::zoo::{self, Rng};
 use std::path::Path;
 
 /// `per_class` smooth random 28x28 pictures in each of the class folders

@@ -13,13 +13,13 @@
 
 use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::codegen::{
-    self, calls, generate, testnets, GenOptions, MapView, Schedule, WeightForm, WeightsMode,
+    self, calls, generate, GenOptions, MapView, Schedule, WeightForm, WeightsMode,
 };
 use ingot_compiler::driver::schedule_of;
 use ingot_compiler::lower::{lower, LowerOptions, QGraph, QKernel, SimInput, Simulator};
 use ingot_compiler::plan::{plan, PlanOptions};
 use ingot_compiler::reference::Reference;
-use ingot_compiler::zoo;
+use ingot_testkit::{testnets, zoo};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;

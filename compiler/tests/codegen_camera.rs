@@ -4,7 +4,8 @@
 //! cameras refused at generation with a sentence naming the problem.
 
 use ingot_compiler::camera::{Camera, Format, ResizeMethod};
-use ingot_compiler::codegen::{generate, testnets, CodegenError, GenOptions, Schedule};
+use ingot_compiler::codegen::{generate, CodegenError, GenOptions, Schedule};
+use ingot_testkit::testnets;
 use std::path::Path;
 use std::process::Command;
 

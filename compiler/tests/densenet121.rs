@@ -5,7 +5,7 @@
 use ingot_compiler::frontend::{self, GraphFile};
 use ingot_compiler::graph::cost::total_cost;
 use ingot_compiler::graph::{Op, Shape};
-use ingot_compiler::zoo;
+use ingot_testkit::zoo;
 
 #[test]
 fn densenet121_parameters_and_macs() {

@@ -6,7 +6,7 @@
 use ingot_compiler::frontend::{self, TensorStore};
 use ingot_compiler::graph::{Op, Padding, Shape};
 use ingot_compiler::reference::Reference;
-use ingot_compiler::zoo::Rng;
+use ingot_testkit::zoo::Rng;
 
 const DOC: &str = include_str!("../../docs/graph-format.md");
 

@@ -13,8 +13,8 @@ use std::path::{Path, PathBuf};
 
 /// The stages in the order they may use each other: each one may use
 /// itself and those listed before it. `graph` (the IR types) comes before
-/// `frontend`, which builds it; `zoo` is test scaffolding that unit tests
-/// of later stages build networks with.
+/// `frontend`, which builds it. (Test networks live in the dev crate
+/// `ingot-testkit`, outside the library.)
 const ORDER: &[&str] = &[
     "util",
     "guard",
@@ -23,7 +23,6 @@ const ORDER: &[&str] = &[
     "stats",
     "graph",
     "frontend",
-    "zoo",
     "inspect",
     "ranges",
     "reference",

@@ -4,7 +4,7 @@
 //! layer and the tensor, so a user can find the problem.
 
 use ingot_compiler::frontend::{self, LayerFile, LoadError};
-use ingot_compiler::zoo::{self, Net};
+use ingot_testkit::zoo::{self, Net};
 use safetensors::tensor::{Dtype, TensorView};
 use serde_json::json;
 use std::path::PathBuf;

@@ -5,7 +5,7 @@ use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::lower::quant::dequantize;
 use ingot_compiler::lower::{fusion_savings, lower, LowerOptions, QKernel, SimInput, Simulator};
 use ingot_compiler::reference::Reference;
-use ingot_compiler::zoo;
+use ingot_testkit::zoo;
 
 /// Min/max ranges of every map over the given images.
 fn calibrate(g: &ingot_compiler::Graph, images: &[Vec<f32>]) -> Ranges {

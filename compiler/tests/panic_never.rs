@@ -25,7 +25,7 @@ use ingot_compiler::driver::{compile, schedule_of, BuildInputs, RangesSource};
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{plan, PlanOptions};
 use ingot_compiler::reference::Reference;
-use ingot_compiler::zoo;
+use ingot_testkit::zoo;
 use std::path::{Path, PathBuf};
 
 /// The targets and the weight form their cores use.

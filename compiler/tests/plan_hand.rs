@@ -1,8 +1,8 @@
 //! Hand-computed memory plans and the in-place rules.
 
 use ingot_compiler::lower::QGraph;
-use ingot_compiler::plan::synth::{Builder, Kind};
 use ingot_compiler::plan::{plan, verify, MapView, PlanOptions};
+use ingot_testkit::qbuild::{Kind, QBuilder};
 
 fn opts() -> PlanOptions {
     PlanOptions {
@@ -43,11 +43,11 @@ fn conv(out: usize, k: usize, stride: usize) -> Kind {
 /// Naive: 256 + 512 + 256 + 160 = 1184.
 #[test]
 fn three_layer_chain_by_hand() {
-    let mut b = Builder::new("chain3", [4, 8, 8]);
-    b.add("c1", conv(8, 3, 1), &["input"]);
-    b.add("c2", conv(16, 3, 2), &["c1"]);
-    b.add("c3", conv(10, 1, 1), &["c2"]);
-    let q = b.finish();
+    let mut b = QBuilder::dummy("chain3", [4, 8, 8]);
+    b.step("c1", conv(8, 3, 1), &["input"]);
+    b.step("c2", conv(16, 3, 2), &["c1"]);
+    b.step("c3", conv(10, 1, 1), &["c2"]);
+    let q = b.build();
     let p = plan(&q, &opts()).expect("plan");
     assert_eq!(p.lower_bound, 768);
     assert_eq!(p.arena_bytes, 768);
@@ -113,16 +113,16 @@ fn three_layer_chain_by_hand() {
 /// Naive: 32 + 64 + 64 + 32 + 96 + 32 + 128 + 64 + 4 = 516.
 #[test]
 fn dense_block_by_hand() {
-    let mut b = Builder::new("block", [2, 4, 4]);
-    b.add("x0", conv(4, 3, 1), &["input"]);
-    b.add("cat1", Kind::Concat, &["x0"]);
-    b.add("x1", conv(2, 3, 1), &["cat1"]);
-    b.add("cat2", Kind::Concat, &["x0", "x1"]);
-    b.add("x2", conv(2, 3, 1), &["cat2"]);
-    b.add("cat3", Kind::Concat, &["x0", "x1", "x2"]);
-    b.add("t", conv(4, 1, 1), &["cat3"]);
-    b.add("g", Kind::GlobalAvgPool, &["t"]);
-    let q = b.finish();
+    let mut b = QBuilder::dummy("block", [2, 4, 4]);
+    b.step("x0", conv(4, 3, 1), &["input"]);
+    b.step("cat1", Kind::Concat, &["x0"]);
+    b.step("x1", conv(2, 3, 1), &["cat1"]);
+    b.step("cat2", Kind::Concat, &["x0", "x1"]);
+    b.step("x2", conv(2, 3, 1), &["cat2"]);
+    b.step("cat3", Kind::Concat, &["x0", "x1", "x2"]);
+    b.step("t", conv(4, 1, 1), &["cat3"]);
+    b.step("g", Kind::GlobalAvgPool, &["t"]);
+    let q = b.build();
     let p = plan(&q, &opts()).expect("plan");
     assert!(p.copy_concat.is_empty(), "all three concats run in place");
     for (name, offset) in [
@@ -177,14 +177,14 @@ fn dense_block_by_hand() {
 /// pool and a convolution never overwrite their own input.
 #[test]
 fn elementwise_in_place_pool_and_conv_not() {
-    let mut b = Builder::new("res", [4, 8, 8]);
-    b.add("c1", conv(4, 3, 1), &["input"]);
-    b.add("c2", conv(4, 3, 1), &["c1"]);
-    b.add("sum", Kind::Add, &["c2", "c1"]);
-    b.add("bn", Kind::Channel, &["sum"]);
-    b.add("pool", Kind::MaxPool(1, 1, 0), &["bn"]);
-    b.add("c3", conv(4, 1, 1), &["pool"]);
-    let q = b.finish();
+    let mut b = QBuilder::dummy("res", [4, 8, 8]);
+    b.step("c1", conv(4, 3, 1), &["input"]);
+    b.step("c2", conv(4, 3, 1), &["c1"]);
+    b.step("sum", Kind::Add, &["c2", "c1"]);
+    b.step("bn", Kind::Channel, &["sum"]);
+    b.step("pool", Kind::MaxPool(1, 1, 0), &["bn"]);
+    b.step("c3", conv(4, 1, 1), &["pool"]);
+    let q = b.build();
     let p = plan(&q, &opts()).expect("plan");
     let id = |n: &str| q.maps.iter().position(|m| m.name == n).expect("map");
     let step = |n: &str| q.steps.iter().position(|s| s.name == n).expect("step") as u32;
@@ -212,12 +212,12 @@ fn elementwise_in_place_pool_and_conv_not() {
 }
 
 fn fallback(
-    build: impl FnOnce(&mut Builder),
+    build: impl FnOnce(&mut QBuilder),
     o: &PlanOptions,
 ) -> (QGraph, ingot_compiler::plan::Plan) {
-    let mut b = Builder::new("fb", [4, 4, 4]);
+    let mut b = QBuilder::dummy("fb", [4, 4, 4]);
     build(&mut b);
-    let q = b.finish();
+    let q = b.build();
     let p = plan(&q, o).expect("plan");
     (q, p)
 }
@@ -231,8 +231,8 @@ fn copies(q: &QGraph, p: &ingot_compiler::plan::Plan, name: &str) -> bool {
 fn concat_of_graph_input_copies() {
     let (q, p) = fallback(
         |b| {
-            b.add("a", conv(4, 1, 1), &["input"]);
-            b.add("cat", Kind::Concat, &["input", "a"]);
+            b.step("a", conv(4, 1, 1), &["input"]);
+            b.step("cat", Kind::Concat, &["input", "a"]);
         },
         &opts(),
     );
@@ -245,13 +245,13 @@ fn concat_of_graph_input_copies() {
 fn unrelated_concats_sharing_a_map_copy_one() {
     let (q, p) = fallback(
         |b| {
-            b.add("a", conv(4, 1, 1), &["input"]);
-            b.add("x", conv(2, 1, 1), &["input"]);
-            b.add("y", conv(3, 1, 1), &["input"]);
-            b.add("cat1", Kind::Concat, &["a", "x"]);
-            b.add("cat2", Kind::Concat, &["a", "y"]);
-            b.add("g1", Kind::GlobalAvgPool, &["cat1"]);
-            b.add("g2", Kind::GlobalAvgPool, &["cat2"]);
+            b.step("a", conv(4, 1, 1), &["input"]);
+            b.step("x", conv(2, 1, 1), &["input"]);
+            b.step("y", conv(3, 1, 1), &["input"]);
+            b.step("cat1", Kind::Concat, &["a", "x"]);
+            b.step("cat2", Kind::Concat, &["a", "y"]);
+            b.step("g1", Kind::GlobalAvgPool, &["cat1"]);
+            b.step("g2", Kind::GlobalAvgPool, &["cat2"]);
         },
         &opts(),
     );
@@ -271,12 +271,12 @@ fn unrelated_concats_sharing_a_map_copy_one() {
 fn repeated_member_and_reversed_positions_copy() {
     let (q, p) = fallback(
         |b| {
-            b.add("a", conv(4, 1, 1), &["input"]);
-            b.add("x", conv(2, 1, 1), &["input"]);
-            b.add("twice", Kind::Concat, &["a", "a"]);
-            b.add("ax", Kind::Concat, &["a", "x"]);
-            b.add("xa", Kind::Concat, &["x", "a"]);
-            b.add("end", Kind::Concat, &["twice", "ax", "xa"]);
+            b.step("a", conv(4, 1, 1), &["input"]);
+            b.step("x", conv(2, 1, 1), &["input"]);
+            b.step("twice", Kind::Concat, &["a", "a"]);
+            b.step("ax", Kind::Concat, &["a", "x"]);
+            b.step("xa", Kind::Concat, &["x", "a"]);
+            b.step("end", Kind::Concat, &["twice", "ax", "xa"]);
         },
         &opts(),
     );
@@ -291,12 +291,12 @@ fn repeated_member_and_reversed_positions_copy() {
 fn nested_concat_in_place() {
     let (q, p) = fallback(
         |b| {
-            b.add("a", conv(4, 1, 1), &["input"]);
-            b.add("x", conv(2, 1, 1), &["input"]);
-            b.add("y", conv(3, 1, 1), &["input"]);
-            b.add("ax", Kind::Concat, &["a", "x"]);
-            b.add("axy", Kind::Concat, &["ax", "y"]);
-            b.add("g", Kind::GlobalAvgPool, &["axy"]);
+            b.step("a", conv(4, 1, 1), &["input"]);
+            b.step("x", conv(2, 1, 1), &["input"]);
+            b.step("y", conv(3, 1, 1), &["input"]);
+            b.step("ax", Kind::Concat, &["a", "x"]);
+            b.step("axy", Kind::Concat, &["ax", "y"]);
+            b.step("g", Kind::GlobalAvgPool, &["axy"]);
         },
         &opts(),
     );
@@ -324,12 +324,12 @@ fn nested_concat_in_place() {
 /// kernel takes a stride) it stays in place.
 #[test]
 fn contiguous_consumer_forces_copy() {
-    let graph = |b: &mut Builder| {
-        b.add("a", conv(4, 1, 1), &["input"]);
-        b.add("x", conv(2, 1, 1), &["input"]);
-        b.add("cat", Kind::Concat, &["a", "x"]);
-        b.add("head", Kind::Linear(3), &["a"]);
-        b.add("g", Kind::GlobalAvgPool, &["cat"]);
+    let graph = |b: &mut QBuilder| {
+        b.step("a", conv(4, 1, 1), &["input"]);
+        b.step("x", conv(2, 1, 1), &["input"]);
+        b.step("cat", Kind::Concat, &["a", "x"]);
+        b.step("head", Kind::Linear(3), &["a"]);
+        b.step("g", Kind::GlobalAvgPool, &["cat"]);
     };
     let (q, p) = fallback(graph, &opts());
     assert!(!copies(&q, &p, "cat"));
@@ -345,12 +345,12 @@ fn contiguous_consumer_forces_copy() {
 
 #[test]
 fn verifier_rejects_broken_plans() {
-    let mut b = Builder::new("chain3", [4, 8, 8]);
-    b.add("c1", conv(8, 3, 1), &["input"]);
-    b.add("cat", Kind::Concat, &["c1"]);
-    b.add("c2", conv(16, 3, 2), &["cat"]);
-    b.add("c3", conv(10, 1, 1), &["c2"]);
-    let q = b.finish();
+    let mut b = QBuilder::dummy("chain3", [4, 8, 8]);
+    b.step("c1", conv(8, 3, 1), &["input"]);
+    b.step("cat", Kind::Concat, &["c1"]);
+    b.step("c2", conv(16, 3, 2), &["cat"]);
+    b.step("c3", conv(10, 1, 1), &["c2"]);
+    let q = b.build();
     let good = plan(&q, &opts()).expect("plan");
     verify::verify(&q, &good).expect("good plan verifies");
     let id = |n: &str| q.maps.iter().position(|m| m.name == n).expect("map");

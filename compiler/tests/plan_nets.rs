@@ -1,7 +1,8 @@
 //! Plans of the test-set networks (hand-built QGraphs with the structure of
 //! the zoo networks until lowering lands): verified, tight, in place.
 
-use ingot_compiler::plan::{plan, synth, verify, PlanOptions};
+use ingot_compiler::plan::{plan, verify, PlanOptions};
+use ingot_testkit::synth;
 use std::time::Instant;
 
 fn opts() -> PlanOptions {

@@ -3,7 +3,8 @@
 use ingot_compiler::plan::target::{
     budget, FlashUse, Target, TargetError, RUNTIME_CODE_BYTES, STEP_CODE_BYTES,
 };
-use ingot_compiler::plan::{plan, synth, PlanOptions};
+use ingot_compiler::plan::{plan, PlanOptions};
+use ingot_testkit::synth;
 use std::path::{Path, PathBuf};
 
 fn targets_dir() -> PathBuf {

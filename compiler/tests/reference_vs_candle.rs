@@ -17,7 +17,7 @@ use candle_core::{Device, Tensor as Ct};
 use ingot_compiler::frontend::{validate, GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
 use ingot_compiler::graph::{Graph, MapId, Op, Padding};
 use ingot_compiler::reference::Reference;
-use ingot_compiler::zoo::{self, Rng};
+use ingot_testkit::zoo::{self, Rng};
 use serde_json::json;
 use std::path::Path;
 

@@ -32,7 +32,7 @@ fn main() {
         "cargo:warning=demo model not found at {}; using the built-in demo-sized network",
         graph.display()
     );
-    Builder::lowered(ingot_compiler::codegen::testnets::demo_sized())
+    Builder::lowered(ingot_testkit::testnets::demo_sized())
         .camera(ingot_compiler::camera::Camera::new(
             ingot_compiler::camera::Format::Rgb565le,
             320,

@@ -447,7 +447,7 @@ pub fn observe_set<S: MapSource + ?Sized>(
 mod tests {
     use super::*;
     use crate::graph::{Color, InputSpec, Shape};
-    use crate::zoo::Rng;
+    use crate::util::test_rng::Rng;
     use image::{GrayImage, Luma};
 
     /// A stand-in network: the input, a two-sided map and a ReLU map with a

@@ -33,7 +33,6 @@ pub mod emit;
 pub mod names;
 pub mod output;
 pub mod report;
-pub mod testnets;
 
 // The weight form and the schedule are the planner's (it sizes the patch
 // buffer for the form); re-exported under their former paths.

@@ -37,7 +37,6 @@ pub(crate) mod regions;
 pub mod report;
 pub mod schedule;
 pub mod svg;
-pub mod synth;
 pub mod target;
 pub mod verify;
 

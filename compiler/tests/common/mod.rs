@@ -10,11 +10,11 @@ use std::path::Path;
 
 /// Deterministic test data: the zoo's SplitMix64 generator, with the f32
 /// Box-Muller normal these tests were calibrated with.
-pub struct Rng(ingot_compiler::zoo::Rng);
+pub struct Rng(ingot_testkit::zoo::Rng);
 
 impl Rng {
     pub fn new(seed: u64) -> Rng {
-        Rng(ingot_compiler::zoo::Rng::new(seed))
+        Rng(ingot_testkit::zoo::Rng::new(seed))
     }
     pub fn next_u64(&mut self) -> u64 {
         self.0.next_u64()

@@ -55,7 +55,8 @@ fn classifies_png_images() {
 
         if model::MODEL_NAME == "demo_sized" {
             // The built-in network: compare with the compiler's interpretation.
-            use ingot_compiler::codegen::{calls, testnets, Schedule};
+            use ingot_compiler::codegen::{calls, Schedule};
+            use ingot_testkit::testnets;
             let q = testnets::demo_sized();
             let s = Schedule::naive(&q);
             let steps = calls::step_calls(&q, &s).unwrap();
@@ -203,7 +204,7 @@ fn classifies_a_synthetic_rgb565_frame() {
     model::frame_to_input(&frame, &mut input);
     let [ih, iw, ic] = model::INPUT_SHAPE;
     let q = if model::MODEL_NAME == "demo_sized" {
-        ingot_compiler::codegen::testnets::demo_sized()
+        ingot_testkit::testnets::demo_sized()
     } else {
         pipeline::compile(&BuildInputs {
             graph: demo().join("model/brackets.graph.json"),

@@ -1,20 +1,87 @@
-//! Small lowered networks built directly as [`QGraph`]s, with deterministic
-//! pseudo-random weights and valid quantization: they exercise every kernel
-//! and schedule feature of the generator (plain stack, dense concatenation
-//! with fused input transforms, residual adds, depthwise and grouped
-//! convolutions, hostile layer names) without needing calibration or
-//! lowering. Also a DenseNet-121-shaped graph for compile-time benchmarks.
+//! The one hand-built [`QGraph`] builder of the test networks, in two fills:
+//!
+//! - [`QBuilder::new`]: deterministic pseudo-random weights and valid
+//!   quantization (seeded splitmix64, Steele, Lea & Flood 2014), so the
+//!   generated code computes something worth comparing bit for bit
+//!   ([`crate::testnets`]);
+//! - [`QBuilder::dummy`]: zero weights and one fixed quantization, for the
+//!   planner, which looks only at shapes, kernel kinds and edges
+//!   ([`crate::synth`]); every step also records a layer id and becomes the
+//!   output, and maps can be addressed by name ([`QBuilder::step`]).
+//!
+//! Both fills share the shape arithmetic and the kernel structures.
 
-use crate::graph::{MapId, Padding, Shape};
-use crate::lower::{
+use ingot_compiler::graph::{LayerId, MapId, Padding, Shape};
+use ingot_compiler::lower::{
     ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
     QParams, QPool, QStep,
 };
 
-/// Builds a [`QGraph`] step by step.
+/// What a name-addressed step ([`QBuilder::step`]) computes.
+#[derive(Debug, Clone, Copy)]
+pub enum Kind {
+    /// Convolution `k×k`, stride, groups (`0` = depthwise), output channels.
+    Conv {
+        /// Output channels.
+        out: usize,
+        /// Kernel size.
+        k: usize,
+        /// Stride.
+        stride: usize,
+        /// Groups; 0 means one group per input channel.
+        groups: usize,
+        /// Fuse a per-channel input transform (pre-activation BN-ReLU).
+        transform: bool,
+    },
+    /// Fully connected to `n` outputs.
+    Linear(usize),
+    /// Max pooling `k×k` with stride and padding.
+    MaxPool(usize, usize, usize),
+    /// Average pooling `k×k` with stride.
+    AvgPool(usize, usize),
+    /// Global average pooling.
+    GlobalAvgPool,
+    /// Element-wise add.
+    Add,
+    /// Channel concatenation.
+    Concat,
+    /// Per-channel transform step.
+    Channel,
+}
+
+/// The quantization of every map of a dummy graph.
+const DUMMY_QP: QParams = QParams {
+    scale: 0.05,
+    zero_point: 0,
+};
+/// The multiplier of every requantization of a dummy graph.
+const DUMMY_M: Multiplier = Multiplier {
+    mult: 1 << 30,
+    shift: 0,
+};
+const FULL: Clamp = Clamp {
+    min: -128,
+    max: 127,
+};
+
+fn dummy_affine(c: usize) -> ChannelTransform {
+    ChannelTransform::Affine {
+        mul: vec![1; c],
+        add: vec![0; c],
+        shift: 0,
+        zp_in: 0,
+        zp_out: 0,
+        clamp: FULL,
+    }
+}
+
+/// Builds a [`QGraph`] step by step, with random ([`QBuilder::new`]) or
+/// dummy ([`QBuilder::dummy`]) weights and quantization.
 pub struct QBuilder {
-    g: QGraph,
+    pub(crate) g: QGraph,
     rng: u64,
+    /// Zero weights, [`DUMMY_QP`] everywhere, full-range clamps.
+    dummy: bool,
 }
 
 /// Options of [`QBuilder::conv`].
@@ -108,6 +175,7 @@ impl QBuilder {
                 softmax_dropped: false,
             },
             rng: seed ^ 0x9e37_79b9_7f4a_7c15,
+            dummy: false,
         };
         let qp = b.qp();
         let x = b.map("input", Shape::new(c, h, w), qp);
@@ -115,6 +183,111 @@ impl QBuilder {
             .map(|i| ((i % 256) as i32 - 128 + (i / 256) as i32).clamp(-128, 127) as i8)
             .collect();
         (b, x)
+    }
+
+    /// A graph named `name` with an input map `[c, h, w]` called `input`,
+    /// zero weights and one fixed quantization: the planner's test graphs.
+    pub fn dummy(name: &str, input: [usize; 3]) -> Self {
+        let mut b = QBuilder {
+            g: QGraph {
+                name: name.into(),
+                labels: Vec::new(),
+                maps: Vec::new(),
+                steps: Vec::new(),
+                input: QMapId(0),
+                pixel_table: vec![0; 256 * input[0]],
+                output: QMapId(0),
+                softmax_dropped: false,
+            },
+            rng: 0,
+            dummy: true,
+        };
+        b.map("input", Shape::new(input[0], input[1], input[2]), DUMMY_QP);
+        b
+    }
+
+    /// Id of the latest map called `name`.
+    pub fn id(&self, name: &str) -> QMapId {
+        let i = self
+            .g
+            .maps
+            .iter()
+            .rposition(|m| m.name == name)
+            .unwrap_or_else(|| panic!("no map `{name}`"));
+        QMapId(i as u32)
+    }
+
+    /// Shape of the latest map called `name`.
+    pub fn shape_of(&self, name: &str) -> Shape {
+        self.shape(self.id(name))
+    }
+
+    /// Adds a step `name` reading the maps called `inputs` (convolutions
+    /// get "same" padding `k / 2` and ReLU); returns the output's name.
+    pub fn step(&mut self, name: &str, kind: Kind, inputs: &[&str]) -> String {
+        let ins: Vec<QMapId> = inputs.iter().map(|n| self.id(n)).collect();
+        let x = ins[0];
+        match kind {
+            Kind::Conv {
+                out,
+                k,
+                stride,
+                groups,
+                transform,
+            } => {
+                let c = self.shape(x).c;
+                let g = if groups == 0 { c } else { groups };
+                let out = if groups == 0 && out == 0 { c } else { out };
+                let s = ConvSpec::new(out, k)
+                    .stride(stride)
+                    .groups(g)
+                    .transform(u8::from(transform));
+                self.conv(name, x, s)
+            }
+            Kind::Linear(n) => self.linear(name, x, n),
+            Kind::MaxPool(k, s, p) => self.max_pool(name, x, k, s, p),
+            Kind::AvgPool(k, s) => self.avg_pool(name, x, k, s),
+            Kind::GlobalAvgPool => self.global_avg_pool(name, x),
+            Kind::Add => self.add(name, x, ins[1], false),
+            Kind::Concat => self.concat(name, &ins),
+            Kind::Channel => self.channel(name, x, 1),
+        };
+        name.into()
+    }
+
+    /// A `k`×`k` convolution of the map called `x` to `out` channels
+    /// ([`QBuilder::step`]).
+    pub fn conv_named(
+        &mut self,
+        name: &str,
+        x: &str,
+        out: usize,
+        k: usize,
+        stride: usize,
+    ) -> String {
+        let conv = Kind::Conv {
+            out,
+            k,
+            stride,
+            groups: 1,
+            transform: false,
+        };
+        self.step(name, conv, &[x])
+    }
+
+    /// The graph; its output is the last map written.
+    pub fn build(self) -> QGraph {
+        debug_assert_eq!(self.g.verify(), Ok(()));
+        self.g
+    }
+
+    /// A fresh quantization: random, or the dummy one.
+    fn fresh_qp(&mut self) -> QParams {
+        if self.dummy {
+            DUMMY_QP
+        } else {
+            self.qp()
+        }
     }
 
     fn next(&mut self) -> u64 {
@@ -149,7 +322,13 @@ impl QBuilder {
             name: name.into(),
             shape,
             qp,
-            float_map: MapId(0),
+            // The planner's graphs pair every map with a float map of the
+            // same index, as lowering does.
+            float_map: MapId(if self.dummy {
+                self.g.maps.len() as u32
+            } else {
+                0
+            }),
         });
         QMapId(self.g.maps.len() as u32 - 1)
     }
@@ -163,9 +342,15 @@ impl QBuilder {
     }
 
     fn push(&mut self, name: &str, inputs: Vec<QMapId>, output: QMapId, kernel: QKernel) -> QMapId {
+        let layers = if self.dummy {
+            self.g.output = output;
+            vec![LayerId(self.g.steps.len() as u32)]
+        } else {
+            Vec::new()
+        };
         self.g.steps.push(QStep {
             name: name.into(),
-            layers: Vec::new(),
+            layers,
             inputs,
             output,
             kernel,
@@ -174,6 +359,9 @@ impl QBuilder {
     }
 
     fn clamp(&self, out: QMapId, relu: bool) -> Clamp {
+        if self.dummy {
+            return FULL;
+        }
         Clamp {
             min: if relu { self.zp(out) as i8 } else { -128 },
             max: 127,
@@ -181,6 +369,9 @@ impl QBuilder {
     }
 
     fn transform(&mut self, c: usize, kind: u8, zp_in: i32) -> (Option<ChannelTransform>, i32) {
+        if self.dummy && kind != 0 {
+            return (Some(dummy_affine(c)), 0);
+        }
         match kind {
             1 => {
                 let zp_out = self.int(-10, 10) as i32;
@@ -219,20 +410,27 @@ impl QBuilder {
         let span = s.dilation * (s.k - 1) + 1;
         let oh = (i.h + s.pad[0] + s.pad[2] - span) / s.stride + 1;
         let ow = (i.w + s.pad[1] + s.pad[3] - span) / s.stride + 1;
-        let qp = qp.unwrap_or_else(|| self.qp());
+        let qp = qp.unwrap_or_else(|| self.fresh_qp());
         let out = self.map(name, Shape::new(s.out, oh, ow), qp);
         let per = s.k * s.k * (i.c / s.groups);
-        let weights: Vec<i8> = (0..s.out * per)
-            .map(|_| self.int(-127, 127) as i8)
-            .collect();
-        let (transform, input_zp) = self.transform(i.c, s.transform, self.zp(x));
-        let scale = 0.0074 / (per as f64).sqrt();
-        let bias = (0..s.out)
-            .map(|_| self.int(-2000, 2000) as i32 * (per as f64).sqrt() as i32)
-            .collect();
-        let requant = (0..s.out)
-            .map(|_| mult(scale * (0.7 + 0.6 * self.unit())))
-            .collect();
+        let (weights, transform, input_zp, bias, requant) = if self.dummy {
+            let (transform, input_zp) = self.transform(i.c, s.transform, 0);
+            let w = vec![0; s.out * per];
+            (w, transform, input_zp, vec![0; s.out], vec![DUMMY_M; s.out])
+        } else {
+            let weights: Vec<i8> = (0..s.out * per)
+                .map(|_| self.int(-127, 127) as i8)
+                .collect();
+            let (transform, input_zp) = self.transform(i.c, s.transform, self.zp(x));
+            let scale = 0.0074 / (per as f64).sqrt();
+            let bias = (0..s.out)
+                .map(|_| self.int(-2000, 2000) as i32 * (per as f64).sqrt() as i32)
+                .collect();
+            let requant = (0..s.out)
+                .map(|_| mult(scale * (0.7 + 0.6 * self.unit())))
+                .collect();
+            (weights, transform, input_zp, bias, requant)
+        };
         let clamp = self.clamp(out, s.relu);
         let conv = QConv {
             out_channels: s.out,
@@ -266,8 +464,20 @@ impl QBuilder {
     /// A fully connected layer to `n` outputs (no activation).
     pub fn linear(&mut self, name: &str, x: QMapId, n: usize) -> QMapId {
         let nin = self.shape(x).len();
-        let qp = self.qp();
+        let qp = self.fresh_qp();
         let out = self.map(name, Shape::flat(n), qp);
+        if self.dummy {
+            let lin = QLinear {
+                out_features: n,
+                in_features: nin,
+                weights: vec![0; n * nin],
+                weight_scales: vec![0.01; n],
+                bias: vec![0; n],
+                requant: vec![DUMMY_M; n],
+                clamp: FULL,
+            };
+            return self.push(name, vec![x], out, QKernel::Linear(lin));
+        }
         let weights = (0..n * nin).map(|_| self.int(-127, 127) as i8).collect();
         let scale = 0.0074 / (nin as f64).sqrt();
         let lin = QLinear {
@@ -302,11 +512,11 @@ impl QBuilder {
         let qp = if kind == 0 {
             self.g.map(x).qp
         } else {
-            self.qp()
+            self.fresh_qp()
         };
         let out = self.map(name, Shape::new(i.c, oh, ow), qp);
         let n = (k[0] * k[1]) as f64;
-        let requant = if kind == 0 {
+        let requant = if kind == 0 || self.dummy {
             None
         } else {
             Some(mult((0.8 + 0.4 * self.unit()) / n))
@@ -346,10 +556,20 @@ impl QBuilder {
 
     /// Element-wise add.
     pub fn add(&mut self, name: &str, a: QMapId, b: QMapId, relu: bool) -> QMapId {
-        let qp = self.qp();
+        let qp = self.fresh_qp();
         let out = self.map(name, self.shape(a), qp);
         let (qa, qb) = (self.g.map(a).qp, self.g.map(b).qp);
         let clamp = self.clamp(out, relu);
+        if self.dummy {
+            let k = QAdd {
+                a: DUMMY_M,
+                b: DUMMY_M,
+                out: DUMMY_M,
+                left_shift: 0,
+                clamp,
+            };
+            return self.push(name, vec![a, b], out, QKernel::Add(k));
+        }
         let p = ingot_rt::AddParams::from_scales(
             qa.scale as f64,
             qa.zero_point,
@@ -386,9 +606,13 @@ impl QBuilder {
     pub fn channel(&mut self, name: &str, x: QMapId, kind: u8) -> QMapId {
         let c = self.shape(x).c;
         let (t, zp_out) = self.transform(c, kind, self.zp(x));
-        let qp = QParams {
-            scale: 0.03,
-            zero_point: zp_out,
+        let qp = if self.dummy {
+            DUMMY_QP
+        } else {
+            QParams {
+                scale: 0.03,
+                zero_point: zp_out,
+            }
         };
         let out = self.map(name, self.shape(x), qp);
         self.push(
@@ -405,201 +629,4 @@ impl QBuilder {
         self.g.labels = labels.iter().map(|s| s.to_string()).collect();
         self.g
     }
-}
-
-/// conv → max pool → strided conv → global average → linear.
-pub fn plain() -> QGraph {
-    let (mut b, x) = QBuilder::new("plain", 3, 12, 12, 1);
-    let c1 = b.conv("conv1", x, ConvSpec::new(8, 3));
-    let p1 = b.max_pool("pool1", c1, 2, 2, 0);
-    let c2 = b.conv("conv2", p1, ConvSpec::new(16, 3).stride(2));
-    let c3 = b.conv("conv3", c2, ConvSpec::new(12, 1).linear());
-    let g = b.global_avg_pool("gap", c3);
-    let y = b.linear("fc", g, 5);
-    b.finish(y, &["zero", "one", "two", "three", "four"])
-}
-
-/// A densely connected block: concatenations, fused affine and table input
-/// transforms, a transform step, average pooling, and a linear layer over a
-/// spatial map.
-pub fn dense() -> QGraph {
-    let (mut b, x) = QBuilder::new("dense", 3, 10, 10, 2);
-    let q = b.qp();
-    let x0 = b.conv_q("stem", x, ConvSpec::new(16, 3), Some(q));
-    let y1 = b.conv_q("block.1", x0, ConvSpec::new(8, 3).transform(1), Some(q));
-    let c1 = b.concat("cat1", &[x0, y1]);
-    let y2 = b.conv_q("block.2", c1, ConvSpec::new(8, 3).transform(2), Some(q));
-    let c2 = b.concat("cat2", &[c1, y2]);
-    let t = b.channel("bn_relu", c2, 1);
-    let a = b.avg_pool("pool", t, 2, 2);
-    let z = b.conv("transition", a, ConvSpec::new(6, 1).transform(1));
-    let y = b.linear("classifier", z, 4);
-    b.finish(y, &["a", "b", "c", "d"])
-}
-
-/// Residual connections with add, a dilated convolution and padded max pooling.
-pub fn residual() -> QGraph {
-    let (mut b, x) = QBuilder::new("residual", 2, 9, 9, 3);
-    let s = b.conv("stem", x, ConvSpec::new(8, 3));
-    let r1 = b.conv("res1.a", s, ConvSpec::new(8, 3));
-    let r2 = b.conv("res1.b", r1, ConvSpec::new(8, 3).linear());
-    let a1 = b.add("res1.add", s, r2, true);
-    let p = b.max_pool("pool", a1, 3, 2, 1);
-    let d = b.conv(
-        "dilated",
-        p,
-        ConvSpec::new(8, 3).dilation(2).pad([2; 4]).linear(),
-    );
-    let a2 = b.add("res2.add", p, d, false);
-    let t = b.channel("table", a2, 2);
-    let g = b.global_avg_pool("gap", t);
-    let y = b.linear("fc", g, 3);
-    b.finish(y, &["x", "y", "z"])
-}
-
-/// Depthwise, pointwise, grouped and asymmetrically padded convolutions.
-pub fn depthwise() -> QGraph {
-    let (mut b, x) = QBuilder::new("depthwise", 3, 11, 11, 4);
-    let s = b.conv("stem", x, ConvSpec::new(12, 3).stride(2));
-    let d1 = b.conv("dw1", s, ConvSpec::new(12, 3).groups(12));
-    let p1 = b.conv("pw1", d1, ConvSpec::new(16, 1));
-    let d2 = b.conv(
-        "dw2",
-        p1,
-        ConvSpec::new(16, 3).groups(16).stride(2).pad([0, 0, 1, 1]),
-    );
-    let g2 = b.conv("grouped", d2, ConvSpec::new(8, 3).groups(4).linear());
-    let d3 = b.conv("dw3", g2, ConvSpec::new(8, 3).groups(8).transform(1));
-    let gp = b.global_avg_pool("gap", d3);
-    let y = b.linear("fc", gp, 6);
-    b.finish(y, &["0", "1", "2", "3", "4", "5"])
-}
-
-/// [`plain`] with hostile layer and label names: quotes, comment ends,
-/// newlines, keywords, raw identifiers, non-ASCII, duplicates.
-pub fn hostile_names() -> QGraph {
-    let mut g = plain();
-    let names = [
-        "\"; panic!(\"boom\"); \"",
-        "*/ fn main() {} /*",
-        "r#fn",
-        "line\nbreak\r\n// x",
-        "größe_ß→λ",
-        // Bidi overrides and isolates (issue 14, defect 6): rustc refuses
-        // them unescaped in comments and docs.
-        "fc\u{202e}txt.exe\u{2066}",
-    ];
-    for (s, n) in g.steps.iter_mut().zip(names) {
-        s.name = n.to_string();
-    }
-    let maps = [
-        "input",
-        "\"; panic!()",
-        "*/",
-        "fn",
-        "self",
-        "\u{0}nul",
-        "a\"b",
-    ];
-    for (m, n) in g.maps.iter_mut().zip(maps) {
-        m.name = n.to_string();
-    }
-    g.name = "evil */ \"name\"\nnext\u{202e}\u{2069}\u{200b}".into();
-    g.labels = vec![
-        "\"quoted\"".into(),
-        "*/".into(),
-        "new\nline".into(),
-        "ünï\u{2067}".into(),
-        "\\".into(),
-    ];
-    g
-}
-
-/// A DenseNet-121-shaped graph (224×224×3, growth 32, blocks 6-12-24-16,
-/// pre-activation batch norm + ReLU fused as affine input transforms,
-/// about 8 M parameters) with random weights: for compile-time benchmarks.
-pub fn densenet121(input: usize) -> QGraph {
-    let (mut b, x) = QBuilder::new("densenet121", 3, input, input, 121);
-    let c0 = b.conv(
-        "features.conv0",
-        x,
-        ConvSpec::new(64, 7).stride(2).pad([3; 4]),
-    );
-    let mut h = b.max_pool("features.pool0", c0, 3, 2, 1);
-    for (bi, &n) in [6usize, 12, 24, 16].iter().enumerate() {
-        let q = b.g.map(h).qp;
-        let mut cat = h;
-        for l in 0..n {
-            let name = format!("features.denseblock{}.denselayer{}", bi + 1, l + 1);
-            let b1 = b.conv(
-                &format!("{name}.conv1"),
-                cat,
-                ConvSpec::new(128, 1).transform(1),
-            );
-            let g = b.conv_q(
-                &format!("{name}.conv2"),
-                b1,
-                ConvSpec::new(32, 3).transform(1).linear(),
-                Some(q),
-            );
-            cat = b.concat(&format!("{name}.cat"), &[cat, g]);
-        }
-        if bi < 3 {
-            let c = b.g.map(cat).shape.c;
-            let t = b.conv(
-                &format!("features.transition{}.conv", bi + 1),
-                cat,
-                ConvSpec::new(c / 2, 1).transform(1).linear(),
-            );
-            h = b.avg_pool(&format!("features.transition{}.pool", bi + 1), t, 2, 2);
-        } else {
-            h = b.channel("features.norm5", cat, 1);
-        }
-    }
-    let g = b.global_avg_pool("gap", h);
-    let y = b.linear("classifier", g, 1000);
-    let labels: Vec<String> = (0..1000).map(|i| format!("class{i}")).collect();
-    let labels: Vec<&str> = labels.iter().map(String::as_str).collect();
-    b.finish(y, &labels)
-}
-
-/// A network shaped like the demo (the zoo's `dense_small`: 1×64×64 input,
-/// 3×3 stem to 16 channels, two dense blocks of four BN-ReLU-conv3×3 layers
-/// with growth 8, a halving transition, 4 classes), with random weights.
-pub fn demo_sized() -> QGraph {
-    let (mut b, x) = QBuilder::new("demo_sized", 1, 64, 64, 5);
-    let mut h = b.conv("features.conv0", x, ConvSpec::new(16, 3).linear());
-    for block in 1..=2 {
-        let q = b.g.map(h).qp;
-        let mut cat = h;
-        for l in 1..=4 {
-            let name = format!("features.denseblock{block}.denselayer{l}");
-            let y = b.conv_q(
-                &format!("{name}.conv"),
-                cat,
-                ConvSpec::new(8, 3).transform(1).linear(),
-                Some(q),
-            );
-            cat = b.concat(&format!("{name}.cat"), &[cat, y]);
-        }
-        if block == 1 {
-            let c = b.g.map(cat).shape.c;
-            let t = b.conv(
-                "features.transition1.conv",
-                cat,
-                ConvSpec::new(c / 2, 1).transform(1).linear(),
-            );
-            h = b.avg_pool("features.transition1.pool", t, 2, 2);
-        } else {
-            h = b.channel("features.norm5", cat, 1);
-        }
-    }
-    let g = b.global_avg_pool("gap", h);
-    let y = b.linear("classifier", g, 4);
-    b.finish(y, &["round", "square", "curly", "angle"])
-}
-
-/// The test networks by name.
-pub fn all() -> Vec<QGraph> {
-    vec![plain(), dense(), residual(), depthwise()]
 }

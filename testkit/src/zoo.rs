@@ -22,9 +22,9 @@
 //! `k` reads a `concat` of *all* earlier maps of its block, one `concat`
 //! layer per dense layer.
 
-use crate::frontend::{self, GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
-use crate::graph::shape::window_output;
-use crate::graph::{Graph, Padding, Shape};
+use ingot_compiler::frontend::{self, GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
+use ingot_compiler::graph::shape::window_output;
+use ingot_compiler::graph::{Graph, Padding, Shape};
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
@@ -96,14 +96,14 @@ impl Net {
 
     /// Writes `{stem}.graph.json` and `{stem}.safetensors` into `dir` (the
     /// graph's `weights` key is set to the latter) and returns the graph
-    /// file's path, ready for [`crate::frontend::load`].
+    /// file's path, ready for [`ingot_compiler::frontend::load`].
     pub fn write(&self, dir: &Path, stem: &str) -> std::io::Result<PathBuf> {
         let mut file = self.file.clone();
         file.weights = format!("{stem}.safetensors");
         let graph_path = dir.join(format!("{stem}.graph.json"));
         let mut json = serde_json::to_string_pretty(&file).map_err(std::io::Error::other)?;
         json.push('\n');
-        crate::util::write_atomic(&graph_path, json.as_bytes())?;
+        ingot_compiler::util::write_atomic(&graph_path, json.as_bytes())?;
         self.store.save(&dir.join(&file.weights))?;
         Ok(graph_path)
     }
@@ -626,7 +626,7 @@ pub fn depthwise_separable(cfg: &DepthwiseConfig, seed: u64) -> Net {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::graph::Op;
+    use ingot_compiler::graph::Op;
 
     #[test]
     fn rng_is_deterministic_and_in_range() {
