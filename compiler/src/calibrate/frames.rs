@@ -127,11 +127,12 @@ mod tests {
     fn encodings_on_hand_worked_pixels() {
         let mut cam = Camera::new(Format::Rgb565le, 2, 1);
         // RGB565 bit fields (R 15..11, G 10..5, B 4..0; common practice):
-        // (255, 128, 8) -> 11111 100000 00001 = 0xF801.
+        // (255, 128, 8) -> R 11111, G 100000, B 00001
+        // = 1111_1100_0000_0001 = 0xFC01.
         let rgb = [255, 128, 8, 0, 0, 0];
-        assert_eq!(encode_frame(&cam, &rgb), [0x01, 0xF8, 0, 0]);
+        assert_eq!(encode_frame(&cam, &rgb), [0x01, 0xFC, 0, 0]);
         cam.format = Format::Rgb565be;
-        assert_eq!(encode_frame(&cam, &rgb), [0xF8, 0x01, 0, 0]);
+        assert_eq!(encode_frame(&cam, &rgb), [0xFC, 0x01, 0, 0]);
         cam.format = Format::Gray8;
         // BT.601: 0.299·255 + 0.587·128 + 0.114·8 = 152.35.
         assert_eq!(encode_frame(&cam, &rgb), [152, 0]);
