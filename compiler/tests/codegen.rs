@@ -11,14 +11,12 @@
 //!
 //! All networks go into one generated crate, built once per test run.
 
-use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::codegen::{
     self, calls, generate, GenOptions, MapView, Schedule, WeightForm, WeightsMode,
 };
 use ingot_compiler::driver::schedule_of;
 use ingot_compiler::lower::{lower, LowerOptions, QGraph, QKernel, SimInput, Simulator};
 use ingot_compiler::plan::{plan, PlanOptions};
-use ingot_compiler::reference::Reference;
 use ingot_testkit::{testnets, zoo};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
@@ -64,36 +62,6 @@ struct Net {
     sim: bool,
 }
 
-/// Min/max ranges of every map of `g` over a few random inputs.
-fn zoo_ranges(net: &zoo::Net) -> Ranges {
-    let g = net.build();
-    let r = Reference::new(&g);
-    let mut maps = vec![
-        MapRange {
-            min: f32::INFINITY,
-            max: f32::NEG_INFINITY
-        };
-        g.map_count()
-    ];
-    for seed in 0..3 {
-        r.run_with(&net.random_input(seed), |m, v| {
-            let e = &mut maps[m.index()];
-            for &a in v {
-                e.min = e.min.min(a);
-                e.max = e.max.max(a);
-            }
-        })
-        .unwrap();
-    }
-    Ranges {
-        graph: g.name().into(),
-        graph_hash: String::new(),
-        method: "minmax".into(),
-        images: 3,
-        maps,
-    }
-}
-
 impl Net {
     fn new(module: &str, q: QGraph) -> Net {
         let schedule = Schedule::naive(&q);
@@ -111,7 +79,7 @@ impl Net {
     /// simulator.
     fn zoo(module: &str, net: zoo::Net) -> Net {
         let g = net.build();
-        let q = lower(&g, &zoo_ranges(&net), &LowerOptions::default()).unwrap();
+        let q = lower(&g, &net.minmax_ranges(), &LowerOptions::default()).unwrap();
         let p = plan(&q, &PlanOptions::default()).unwrap();
         let schedule = schedule_of(&q, &p);
         Net {

@@ -16,7 +16,6 @@
 //! Needs the two Rust targets; without them the test prints a notice and
 //! passes, unless `INGOT_REQUIRE_EMULATION=1` (set by CI).
 
-use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::check::panic_probe::{build_probe, panic_sites, Handler};
 use ingot_compiler::check::runner::{require_rust_target, BuildConfig};
 use ingot_compiler::check::ModuleFiles;
@@ -24,7 +23,6 @@ use ingot_compiler::codegen::{generate, GenOptions, WeightForm};
 use ingot_compiler::driver::{compile, schedule_of, BuildInputs, RangesSource};
 use ingot_compiler::lower::{lower, LowerOptions};
 use ingot_compiler::plan::{plan, PlanOptions};
-use ingot_compiler::reference::Reference;
 use ingot_testkit::zoo;
 use std::path::{Path, PathBuf};
 
@@ -45,36 +43,6 @@ fn targets_or_skip() -> bool {
         }
     }
     true
-}
-
-/// Min/max ranges of every map of a zoo network over a few random inputs.
-fn zoo_ranges(net: &zoo::Net) -> Ranges {
-    let g = net.build();
-    let r = Reference::new(&g);
-    let mut maps = vec![
-        MapRange {
-            min: f32::INFINITY,
-            max: f32::NEG_INFINITY
-        };
-        g.map_count()
-    ];
-    for seed in 0..3 {
-        r.run_with(&net.random_input(seed), |m, v| {
-            let e = &mut maps[m.index()];
-            for &a in v {
-                e.min = e.min.min(a);
-                e.max = e.max.max(a);
-            }
-        })
-        .unwrap();
-    }
-    Ranges {
-        graph: g.name().into(),
-        graph_hash: String::new(),
-        method: "minmax".into(),
-        images: 3,
-        maps,
-    }
 }
 
 /// Every zoo network: the one place this test names them.
@@ -171,7 +139,7 @@ fn zoo_modules_link_without_panic_paths() {
     let cfg = cfg();
     for (name, net) in zoo_nets() {
         let g = net.build();
-        let q = lower(&g, &zoo_ranges(&net), &LowerOptions::default()).unwrap();
+        let q = lower(&g, &net.minmax_ranges(), &LowerOptions::default()).unwrap();
         let p = plan(&q, &PlanOptions::default()).unwrap();
         let s = schedule_of(&q, &p);
         for (triple, form) in TARGETS {

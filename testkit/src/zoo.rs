@@ -25,6 +25,8 @@
 use ingot_compiler::frontend::{self, GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
 use ingot_compiler::graph::shape::window_output;
 use ingot_compiler::graph::{Graph, Padding, Shape};
+use ingot_compiler::ranges::{MapRange, Ranges};
+use ingot_compiler::reference::Reference;
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
@@ -113,6 +115,38 @@ impl Net {
     pub fn random_input(&self, seed: u64) -> Vec<f32> {
         let n: usize = self.file.input.shape.iter().product();
         Rng::new(seed).uniform_vec(n, -1.0, 1.0)
+    }
+
+    /// Min/max ranges of every map over the inputs
+    /// [`random_input`](Self::random_input) gives for seeds 0, 1 and 2:
+    /// ranges for tests that need a lowered network but no images.
+    pub fn minmax_ranges(&self) -> Ranges {
+        let g = self.build();
+        let r = Reference::new(&g);
+        let mut maps = vec![
+            MapRange {
+                min: f32::INFINITY,
+                max: f32::NEG_INFINITY
+            };
+            g.map_count()
+        ];
+        for seed in 0..3 {
+            r.run_with(&self.random_input(seed), |m, v| {
+                let e = &mut maps[m.index()];
+                for &a in v {
+                    e.min = e.min.min(a);
+                    e.max = e.max.max(a);
+                }
+            })
+            .expect("the float reference runs every zoo network");
+        }
+        Ranges {
+            graph: g.name().into(),
+            graph_hash: String::new(),
+            method: "minmax".into(),
+            images: 3,
+            maps,
+        }
     }
 }
 
