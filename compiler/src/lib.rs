@@ -11,7 +11,7 @@
 //! assembles these stages (the CLI and build scripts call it, see
 //! [`build`]); [`check`] runs the module on host and emulated cores against
 //! the float network. A stage uses only the stages before it
-//! (`tests/layering.rs`).
+//! (`tests/it/layering.rs`).
 
 pub mod agree;
 pub mod calibrate;

@@ -157,7 +157,7 @@
 //!   `copy_within`/`copy_from_slice` (their range checks) and no formatting.
 //!   Chunk iterators are advanced by hand rather than zipped where `zip`
 //!   could leave a division by the chunk size outside the optimiser's view.
-//! * **Enforced at link time.** ingot's CI (`compiler/tests/panic_never.rs`)
+//! * **Enforced at link time.** ingot's CI (`compiler/tests/it/panic_never.rs`)
 //!   links the demo's module and every zoo network's module for
 //!   `thumbv7em-none-eabihf` and `thumbv6m-none-eabi` in release with a
 //!   panic handler that calls a function defined nowhere: one surviving

@@ -1,7 +1,7 @@
 //! linear, pooling, add, pixel quantization, copies, argmax: bit-exact
 //! against naive references, plus error handling.
 
-mod common;
+use crate::common;
 
 use common::*;
 use ingot_rt::*;

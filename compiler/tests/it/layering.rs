@@ -223,3 +223,54 @@ fn a_stage_uses_only_the_stages_before_it() {
         back_edges.into_iter().collect::<Vec<_>>().join("\n")
     );
 }
+
+/// Integration tests are one binary per crate (DEVELOPERS.md, "Tests"): a
+/// test file placed beside `tests/it/main.rs` but not declared there would
+/// never be compiled, and one placed directly in `tests/` would be a binary
+/// of its own. Both fail here.
+#[test]
+fn every_integration_test_file_is_a_module_of_the_crates_one_binary() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("..");
+    let mut problems = Vec::new();
+    for krate in [".", "compiler", "runtime-nostd"] {
+        let tests = root.join(krate).join("tests");
+        for e in std::fs::read_dir(&tests).unwrap() {
+            let p = e.unwrap().path();
+            if p.extension().is_some_and(|x| x == "rs") {
+                problems.push(format!(
+                    "{} is a test binary of its own: move it to tests/it/",
+                    p.display()
+                ));
+            }
+        }
+        let it = tests.join("it");
+        let main = std::fs::read_to_string(it.join("main.rs")).unwrap();
+        let declared: BTreeSet<String> = main
+            .lines()
+            .filter_map(|l| {
+                l.trim()
+                    .strip_prefix("mod ")?
+                    .strip_suffix(';')
+                    .map(str::to_string)
+            })
+            .collect();
+        for e in std::fs::read_dir(&it).unwrap() {
+            let p = e.unwrap().path();
+            let name = if p.is_dir() {
+                p.file_name().unwrap().to_string_lossy().into_owned()
+            } else if p.extension().is_some_and(|x| x == "rs") {
+                p.file_stem().unwrap().to_string_lossy().into_owned()
+            } else {
+                continue;
+            };
+            if name != "main" && !declared.contains(&name) {
+                problems.push(format!(
+                    "{} is not declared in {}",
+                    p.display(),
+                    it.join("main.rs").display()
+                ));
+            }
+        }
+    }
+    assert!(problems.is_empty(), "{problems:#?}");
+}

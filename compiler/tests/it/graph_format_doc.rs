@@ -8,7 +8,7 @@ use ingot_compiler::graph::{Op, Padding, Shape};
 use ingot_compiler::reference::Reference;
 use ingot_testkit::zoo::Rng;
 
-const DOC: &str = include_str!("../../docs/graph-format.md");
+const DOC: &str = include_str!("../../../docs/graph-format.md");
 
 /// The text of the section that starts with `heading`.
 fn section(heading: &str) -> &'static str {

@@ -1,7 +1,7 @@
 //! Requantization: worked examples, the rounding rule and the host-side
 //! constructor.
 
-mod common;
+use crate::common;
 
 use common::*;
 use ingot_rt::*;

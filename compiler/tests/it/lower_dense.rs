@@ -2,7 +2,7 @@
 //! BN-ReLU input transform, shared concatenation quantization, simulation
 //! against the float graph, and the RAM the fusion saves.
 
-mod common;
+use crate::common;
 
 use common::{calibrate, dense_net, eval, flat_ranges, random_input, DenseSpec, Rng};
 use ingot_compiler::graph::Op;

@@ -1,6 +1,6 @@
 //! conv2d against the naive reference, bit-exact, plus float agreement.
 
-mod common;
+use crate::common;
 
 use common::*;
 use ingot_rt::*;

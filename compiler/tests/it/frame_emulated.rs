@@ -3,7 +3,7 @@
 //! resize method, with a region, rotation and mirroring (the instruction
 //! counts are printed by `examples/bench_frame`, not asserted here).
 
-#[path = "../examples/bench_frame/harness.rs"]
+#[path = "../../examples/bench_frame/harness.rs"]
 mod harness;
 
 use harness::Case;

@@ -2,7 +2,7 @@
 //! order, add, pooling, accumulator and range errors, per-channel weights,
 //! the pixel table and simulator errors.
 
-mod common;
+use crate::common;
 
 use common::{calibrate, eval, random_input, Net, Rng};
 use ingot_compiler::calibrate::MapRange;
