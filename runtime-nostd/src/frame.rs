@@ -41,7 +41,13 @@
 //! * **Limits.** Frame bytes must fit `u32`; an area window (at most
 //!   `⌈w/ow⌉·⌈h/oh⌉` pixels) must keep its sum inside `u32`, about 16,000
 //!   pixels for colour formats (a 640×480 frame can still shrink to 5×4);
-//!   RGB565 windows also keep the sum of their 16-bit words inside `u32`.
+//!   RGB565 windows also keep the sum of their 16-bit words inside `u32`
+//!   (a bound of an earlier kernel, kept so that the same configurations
+//!   are accepted).
+//! * **RGB565 area windows** of at most 1,024 pixel pairs (and odd last
+//!   pixels) are summed two pixels per 32-bit load, the R, G and B fields
+//!   of both in the two 16-bit halves of one `u32` each; larger windows
+//!   pixel by pixel. Both give the same sums.
 //! * **Weights once per output pixel.** Area windows sum the raw colour
 //!   fields and apply the luma (or 8-bit scaling) weights to the sums;
 //!   integer weights make that exactly the sum of weighted pixels.
@@ -336,12 +342,18 @@ impl FrameConfig {
                 return Err(FrameError::WindowTooLarge);
             }
         }
+        // The first-pixel lane of a window sums one field per pixel pair
+        // (and odd last pixel) of each of its rows.
+        let lanes = matches!(c.resize, Resize::Area)
+            && c.roi.h.div_ceil(c.out_h) as u64 * c.roi.w.div_ceil(c.out_w).div_ceil(2) as u64
+                <= LANE_FIELDS;
         Ok(FrameParams {
             cfg: c,
             weights,
             shift,
             bpp,
             frame_bytes,
+            lanes,
         })
     }
 }
@@ -401,6 +413,9 @@ pub struct FrameParams {
     shift: u32,
     bpp: u32,
     frame_bytes: u32,
+    /// Area windows are small enough for RGB565's 16-bit lanes: at most
+    /// [`LANE_FIELDS`] pixels in the first-pixel lane.
+    lanes: bool,
 }
 
 impl FrameParams {
@@ -476,13 +491,22 @@ trait Sampler {
     const CH: usize;
     fn add(px: &[u8], acc: &mut [u32; 3]);
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3];
-    /// Adds every pixel of `row` (whole pixels) into `acc`, as `add` on
-    /// each would.
+    /// True when [`Sampler::add_lanes`] sums a row faster than `add` on
+    /// each pixel (for windows the parameters allow, see
+    /// [`FrameParams`]'s `lanes`).
+    const LANES: bool = false;
+    /// Adds every pixel of `row` (whole pixels) into packed sums; `unlane`
+    /// turns them into what `add` would have summed.
     #[inline(always)]
-    fn add_row(row: &[u8], acc: &mut [u32; 3]) {
+    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
         for px in row.chunks_exact(Self::BPP) {
-            Self::add(px, acc);
+            Self::add(px, lanes);
         }
+    }
+    /// The sums of `add` from the packed sums of `add_lanes`.
+    #[inline(always)]
+    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
+        lanes
     }
 }
 
@@ -602,51 +626,57 @@ fn add565<const BE: bool>(px: &[u8], acc: &mut [u32; 3]) {
 const LANES5: u32 = 0x001F_001F;
 /// Mask of a 6-bit field in both halves.
 const LANES6: u32 = 0x003F_003F;
-/// Bytes of a row summed in 16-bit lanes before the lanes are emptied into
-/// the `u32` sums: 1024 pixel pairs, so a lane holds at most 1024 fields,
-/// `1024 · 63 < 2^16`.
-const LANE_BYTES: usize = 4096;
+/// Most fields a 16-bit lane may sum: `1024 · 63 < 2^16`.
+const LANE_FIELDS: u64 = 1024;
 
 /// Two RGB565 pixels (4 bytes) as one word, the first pixel's 16-bit word
-/// in the low half: a single load on Thumb-2 (plus `rev16` big-endian).
+/// in the low half: one load on Thumb-2 (and a `rev16` big-endian).
 #[inline(always)]
 fn pair565<const BE: bool>(q: &[u8]) -> u32 {
-    match *q {
-        [a, b, c, d] if BE => u32::from_le_bytes([b, a, d, c]),
-        [a, b, c, d] => u32::from_le_bytes([a, b, c, d]),
-        _ => 0,
+    let Ok(q) = <&[u8; 4]>::try_from(q) else {
+        return 0;
+    };
+    let w = u32::from_le_bytes(*q);
+    if BE {
+        // Swap the bytes within each half (`rev16`).
+        w.swap_bytes().rotate_right(16)
+    } else {
+        w
     }
 }
 
 /// [`add565`] over a window row, two pixels per step: the word of a pixel
 /// pair is split into its R, G and B fields with one mask each, and the
-/// fields of both pixels are summed at once in the two 16-bit halves of one
-/// `u32` (SIMD within a register), emptied into `acc` every
-/// [`LANE_BYTES`]. Seven data instructions per pixel pair on Thumb-2
-/// instead of ten for two single pixels; the sums are the same integers.
+/// fields of both pixels are summed at once in the two 16-bit halves of a
+/// `u32` (SIMD within a register): `lanes = [R, G, B]`, each
+/// `Σ first-pixel field + 2^16 · Σ second-pixel field`. The window's
+/// lanes are added up once, by [`unlane565`]; [`FrameConfig::validate`]
+/// allows this only for windows whose lanes hold at most
+/// [`LANE_FIELDS`] fields, so no lane carries into the next. The sums
+/// are the same integers as `add565`'s.
 #[inline(always)]
-fn add_row565<const BE: bool>(row: &[u8], acc: &mut [u32; 3]) {
-    for piece in row.chunks(LANE_BYTES) {
-        let (mut r, mut g, mut b) = (0u32, 0u32, 0u32);
-        let mut pairs = piece.chunks_exact(4);
-        for q in &mut pairs {
-            // Rolled, the loop keeps its lanes in registers (see the
-            // disassembly note in DEVELOPERS.md).
-            crate::dot::no_unroll();
-            let w = pair565::<BE>(q);
-            r += (w >> 11) & LANES5;
-            g += (w >> 5) & LANES6;
-            b += w & LANES5;
-        }
-        // An odd pixel at the end goes into the low lanes.
-        let w = word565::<BE>(pairs.remainder());
-        r += (w >> 11) & LANES5;
-        g += (w >> 5) & LANES6;
-        b += w & LANES5;
-        acc[0] += (r & 0xFFFF) + (r >> 16);
-        acc[1] += (g & 0xFFFF) + (g >> 16);
-        acc[2] += (b & 0xFFFF) + (b >> 16);
+fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
+    let mut pairs = row.chunks_exact(4);
+    for q in &mut pairs {
+        // Rolled, the loop keeps its lanes in registers (see the
+        // disassembly note in DEVELOPERS.md).
+        crate::dot::no_unroll();
+        let w = pair565::<BE>(q);
+        lanes[0] += (w >> 11) & LANES5;
+        lanes[1] += (w >> 5) & LANES6;
+        lanes[2] += w & LANES5;
     }
+    // An odd pixel at the end goes into the low lanes.
+    let w = word565::<BE>(pairs.remainder());
+    lanes[0] += (w >> 11) & LANES5;
+    lanes[1] += (w >> 5) & LANES6;
+    lanes[2] += w & LANES5;
+}
+
+/// `[Σ R, Σ G, Σ B]` from [`add_lanes565`]'s lanes.
+#[inline(always)]
+fn unlane565(lanes: [u32; 3]) -> [u32; 3] {
+    lanes.map(|l| (l & 0xFFFF) + (l >> 16))
 }
 
 struct Rgb565Gray<const BE: bool>;
@@ -657,9 +687,14 @@ impl<const BE: bool> Sampler for Rgb565Gray<BE> {
     fn add(px: &[u8], acc: &mut [u32; 3]) {
         add565::<BE>(px, acc);
     }
+    const LANES: bool = true;
     #[inline(always)]
-    fn add_row(row: &[u8], acc: &mut [u32; 3]) {
-        add_row565::<BE>(row, acc);
+    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
+        add_lanes565::<BE>(row, lanes);
+    }
+    #[inline(always)]
+    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
+        unlane565(lanes)
     }
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
@@ -676,9 +711,14 @@ impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
     fn add(px: &[u8], acc: &mut [u32; 3]) {
         add565::<BE>(px, acc);
     }
+    const LANES: bool = true;
     #[inline(always)]
-    fn add_row(row: &[u8], acc: &mut [u32; 3]) {
-        add_row565::<BE>(row, acc);
+    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
+        add_lanes565::<BE>(row, lanes);
+    }
+    #[inline(always)]
+    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
+        unlane565(lanes)
     }
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
@@ -714,7 +754,8 @@ fn put<const CH: usize>(input: &mut [i8], table: &[i8], at: usize, codes: [u32; 
 
 fn run<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
     match p.cfg.resize {
-        Resize::Area => area::<S>(frame, p, table, input),
+        Resize::Area if S::LANES && p.lanes => area::<S, true>(frame, p, table, input),
+        Resize::Area => area::<S, false>(frame, p, table, input),
         Resize::Bilinear => bilinear::<S>(frame, p, table, input),
         Resize::Nearest => nearest::<S>(frame, p, table, input),
     }
@@ -731,7 +772,13 @@ fn sample<S: Sampler>(frame: &[u8], p: &FrameParams, x: u32, y: u32) -> [u32; 3]
     S::weigh(acc, &p.weights)
 }
 
-fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
+/// Area averaging; `LANES`: sum rows with [`Sampler::add_lanes`].
+fn area<S: Sampler, const LANES: bool>(
+    frame: &[u8],
+    p: &FrameParams,
+    table: &[i8],
+    input: &mut [i8],
+) {
     let cfg = &p.cfg;
     let (rw, rh, ow, oh) = (cfg.roi.w, cfg.roi.h, cfg.out_w, cfg.out_h);
     let fw = cfg.frame_w as usize;
@@ -762,9 +809,18 @@ fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8
             let len = (x1 - x0) as usize * S::BPP;
             for _ in y0..y1 {
                 if let Some(row) = frame.get(start..start + len) {
-                    S::add_row(row, &mut acc);
+                    if LANES {
+                        S::add_lanes(row, &mut acc);
+                    } else {
+                        for px in row.chunks_exact(S::BPP) {
+                            S::add(px, &mut acc);
+                        }
+                    }
                 }
                 start += fw * S::BPP;
+            }
+            if LANES {
+                acc = S::unlane(acc);
             }
             let count = (x1 - x0) * (y1 - y0);
             let acc = S::weigh(acc, &p.weights);

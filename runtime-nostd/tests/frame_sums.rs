@@ -126,14 +126,24 @@ fn largest_rgb565_window_sums_exactly() {
     }
 }
 
-/// Window rows longer than the kernel's 16-bit lane pieces (1024 RGB565
-/// pixel pairs) are summed in several pieces; odd and even lengths, both
-/// byte orders, gray and RGB, all white (the lanes' largest sums) and
-/// random.
+/// RGB565 windows sum pixel pairs in 16-bit lanes when a lane holds at
+/// most 1024 fields (6-bit G: 1024 · 63 < 2^16) and pixel by pixel
+/// otherwise: windows at the limit (1024 pairs in one row, 32 rows of 32
+/// pairs, odd widths) and past it, both byte orders, gray and RGB, all
+/// white (the lanes' largest sums) and random.
 #[test]
-fn rgb565_rows_longer_than_a_lane_piece_sum_exactly() {
+fn rgb565_windows_at_and_past_the_lane_limit_sum_exactly() {
     for format in [PixelFormat::Rgb565Le, PixelFormat::Rgb565Be] {
-        for (fw, fh, oc) in [(4097, 3, 1), (5000, 3, 3), (2049, 2, 1), (2048, 7, 3)] {
+        for (fw, fh, oc) in [
+            (2048, 1, 1),
+            (2047, 1, 3),
+            (64, 32, 1),
+            (63, 32, 3),
+            (2049, 1, 1),
+            (65, 32, 1),
+            (4097, 3, 1),
+            (5000, 3, 3),
+        ] {
             let cfg = FrameConfig::new(format, fw, fh, 1, 1, oc).roi(0, 0, fw, fh);
             let p = cfg.validate().unwrap();
             let mut s = 0x9E37_79B9_7F4A_7C15u64 ^ fw as u64;
