@@ -294,10 +294,7 @@ fn build_and_run(
             String::from_utf8_lossy(&out.stderr)
         ));
     }
-    let elf = target_dir
-        .join(board.triple)
-        .join("release")
-        .join(&package);
+    let elf = target_dir.join(board.triple).join("release").join(&package);
     let cal = icount::calibrate(on, cfg).map_err(|e| e.to_string())?;
     let log = project.join("console.out");
     let mut child = runner::qemu_command(&cfg.qemu, &board, &elf)
