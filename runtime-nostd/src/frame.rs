@@ -36,12 +36,18 @@
 //!   coverage).
 //! * **[`Resize::Bilinear`]** uses the half-pixel-centre convention: output
 //!   `o` samples the region at `(o + ½)·w/ow − ½`, clamped to `[0, w − 1]`,
-//!   with the position in 1/256 pixel.
+//!   with the position rounded to 1/4096 pixel.
 //! * **[`Resize::Nearest`]** takes source pixel `⌊(o + ½)·w/ow⌋`.
 //! * **Limits.** Frame bytes must fit `u32`; an area window (at most
 //!   `⌈w/ow⌉·⌈h/oh⌉` pixels) must keep its sum inside `u32`, about 16,000
 //!   pixels for colour formats (a 640×480 frame can still shrink to 5×4);
-//!   RGB565 windows also keep the sum of their 16-bit words inside `u32`.
+//!   RGB565 windows also keep the sum of their 16-bit words inside `u32`
+//!   (a bound of an earlier kernel, kept so that the same configurations
+//!   are accepted).
+//! * **RGB565 area windows** of at most 1,024 pixel pairs (and odd last
+//!   pixels) are summed two pixels per 32-bit load, the R, G and B fields
+//!   of both in the two 16-bit halves of one `u32` each; larger windows
+//!   pixel by pixel. Both give the same sums.
 //! * **Weights once per output pixel.** Area windows sum the raw colour
 //!   fields and apply the luma (or 8-bit scaling) weights to the sums;
 //!   integer weights make that exactly the sum of weighted pixels.
@@ -328,20 +334,26 @@ impl FrameConfig {
             if win * (max_sample as u64 + (1u64 << shift)) > u32::MAX as u64 {
                 return Err(FrameError::WindowTooLarge);
             }
-            // The RGB565 kernel also sums whole 16-bit words (implied by
-            // the bound above for every luma choice; kept explicit so the
-            // two cannot drift apart).
+            // The RGB565 kernel once also summed whole 16-bit words; the
+            // bound is kept so that the configurations accepted stay the
+            // same (it is implied by the one above for every luma choice).
             let rgb565 = matches!(c.format, PixelFormat::Rgb565Le | PixelFormat::Rgb565Be);
             if rgb565 && win * 0xFFFF > u32::MAX as u64 {
                 return Err(FrameError::WindowTooLarge);
             }
         }
+        // The first-pixel lane of a window sums one field per pixel pair
+        // (and odd last pixel) of each of its rows.
+        let lanes = matches!(c.resize, Resize::Area)
+            && c.roi.h.div_ceil(c.out_h) as u64 * c.roi.w.div_ceil(c.out_w).div_ceil(2) as u64
+                <= LANE_FIELDS;
         Ok(FrameParams {
             cfg: c,
             weights,
             shift,
             bpp,
             frame_bytes,
+            lanes,
         })
     }
 }
@@ -401,6 +413,9 @@ pub struct FrameParams {
     shift: u32,
     bpp: u32,
     frame_bytes: u32,
+    /// Area windows are small enough for RGB565's 16-bit lanes: at most
+    /// [`LANE_FIELDS`] pixels in the first-pixel lane.
+    lanes: bool,
 }
 
 impl FrameParams {
@@ -476,6 +491,29 @@ trait Sampler {
     const CH: usize;
     fn add(px: &[u8], acc: &mut [u32; 3]);
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3];
+    /// True when [`Sampler::add_lanes`] sums a row faster than `add` on
+    /// each pixel (for windows the parameters allow, see
+    /// [`FrameParams`]'s `lanes`).
+    const LANES: bool = false;
+    /// Adds every pixel of `row` (whole pixels) into packed sums; `unlane`
+    /// turns them into what `add` would have summed.
+    #[inline(always)]
+    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
+        for px in row.chunks_exact(Self::BPP) {
+            Self::add(px, lanes);
+        }
+    }
+    /// `add_lanes` on two rows of the same length.
+    #[inline(always)]
+    fn add_lanes2(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
+        Self::add_lanes(a, lanes);
+        Self::add_lanes(b, lanes);
+    }
+    /// The sums of `add` from the packed sums of `add_lanes`.
+    #[inline(always)]
+    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
+        lanes
+    }
 }
 
 /// The sums are the samples (8-bit channels, shift 0).
@@ -580,29 +618,91 @@ fn word565<const BE: bool>(px: &[u8]) -> u32 {
     }
 }
 
-/// RGB565 sums: `acc = [Σ word, Σ R, Σ B]`, three adds per pixel (on
-/// Thumb-2 `Σ R` is one `add` with a shifted operand); `Σ G` is recovered
-/// per window as `(Σ word − 2^11·Σ R − Σ B) / 2^5`, exact because every
-/// word is `2^11·R + 2^5·G + B`. `Σ word < 2^16 · window` fits `u32`
-/// because [`FrameConfig::validate`] limits an RGB565 area window to
-/// 2^16 pixels.
+/// RGB565 sums of one pixel: `acc = [Σ R, Σ G, Σ B]` in the fields' own
+/// units (5, 6, 5 bits).
 #[inline(always)]
 fn add565<const BE: bool>(px: &[u8], acc: &mut [u32; 3]) {
-    // Unrolled, the thumbv7em loop splits little-endian words into byte
-    // loads and spills its sums to the stack; rolled it keeps them in
-    // registers (see the disassembly note in DEVELOPERS.md).
-    crate::dot::no_unroll();
     let v = word565::<BE>(px);
-    acc[0] += v;
-    acc[1] += v >> 11;
+    acc[0] += v >> 11;
+    acc[1] += (v >> 5) & 63;
     acc[2] += v & 31;
 }
 
-/// `[Σ R, Σ G, Σ B]` from [`add565`]'s sums.
+/// Mask of a 5-bit field in both 16-bit halves of a word.
+const LANES5: u32 = 0x001F_001F;
+/// Mask of a 6-bit field in both halves.
+const LANES6: u32 = 0x003F_003F;
+/// Most fields a 16-bit lane may sum: `1024 · 63 < 2^16`.
+const LANE_FIELDS: u64 = 1024;
+
+/// Two RGB565 pixels (4 bytes) as one word, the first pixel's 16-bit word
+/// in the low half: one load on Thumb-2 (and a `rev16` big-endian).
 #[inline(always)]
-fn fields565(acc: [u32; 3]) -> [u32; 3] {
-    let [v, r, b] = acc;
-    [r, v.wrapping_sub(r << 11).wrapping_sub(b) >> 5, b]
+fn pair565<const BE: bool>(q: &[u8]) -> u32 {
+    let Ok(q) = <&[u8; 4]>::try_from(q) else {
+        return 0;
+    };
+    let w = u32::from_le_bytes(*q);
+    if BE {
+        // Swap the bytes within each half (`rev16`).
+        w.swap_bytes().rotate_right(16)
+    } else {
+        w
+    }
+}
+
+/// [`add565`] over a window row, two pixels per step: the word of a pixel
+/// pair is split into its R, G and B fields with one mask each, and the
+/// fields of both pixels are summed at once in the two 16-bit halves of a
+/// `u32` (SIMD within a register): `lanes = [R, G, B]`, each
+/// `Σ first-pixel field + 2^16 · Σ second-pixel field`. The window's
+/// lanes are added up once, by [`unlane565`]; [`FrameConfig::validate`]
+/// allows this only for windows whose lanes hold at most
+/// [`LANE_FIELDS`] fields, so no lane carries into the next. The sums
+/// are the same integers as `add565`'s.
+#[inline(always)]
+fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
+    let mut pairs = row.chunks_exact(4);
+    for q in &mut pairs {
+        // Rolled, the loop keeps its lanes in registers (see the
+        // disassembly note in DEVELOPERS.md).
+        crate::dot::no_unroll();
+        let w = pair565::<BE>(q);
+        lanes[0] += (w >> 11) & LANES5;
+        lanes[1] += (w >> 5) & LANES6;
+        lanes[2] += w & LANES5;
+    }
+    // An odd pixel at the end goes into the low lanes.
+    let w = word565::<BE>(pairs.remainder());
+    lanes[0] += (w >> 11) & LANES5;
+    lanes[1] += (w >> 5) & LANES6;
+    lanes[2] += w & LANES5;
+}
+
+/// [`add_lanes565`] on two rows of one window at once: one loop, and the
+/// odd last pixels of both rows in one word (row `a`'s in the low half,
+/// `b`'s in the high half), so each lane still sums at most one field per
+/// pixel pair and odd pixel of each row.
+#[inline(always)]
+fn add_lanes2_565<const BE: bool>(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
+    for (qa, qb) in a.chunks_exact(4).zip(b.chunks_exact(4)) {
+        crate::dot::no_unroll();
+        let (wa, wb) = (pair565::<BE>(qa), pair565::<BE>(qb));
+        lanes[0] += ((wa >> 11) & LANES5) + ((wb >> 11) & LANES5);
+        lanes[1] += ((wa >> 5) & LANES6) + ((wb >> 5) & LANES6);
+        lanes[2] += (wa & LANES5) + (wb & LANES5);
+    }
+    let w = word565::<BE>(a.chunks_exact(4).remainder())
+        | (word565::<BE>(b.chunks_exact(4).remainder()) << 16);
+    lanes[0] += (w >> 11) & LANES5;
+    lanes[1] += (w >> 5) & LANES6;
+    lanes[2] += w & LANES5;
+}
+
+/// `[Σ R, Σ G, Σ B]` from [`add_lanes565`]'s lanes.
+#[inline(always)]
+fn unlane565(lanes: [u32; 3]) -> [u32; 3] {
+    lanes.map(|l| (l & 0xFFFF) + (l >> 16))
 }
 
 struct Rgb565Gray<const BE: bool>;
@@ -613,9 +713,22 @@ impl<const BE: bool> Sampler for Rgb565Gray<BE> {
     fn add(px: &[u8], acc: &mut [u32; 3]) {
         add565::<BE>(px, acc);
     }
+    const LANES: bool = true;
+    #[inline(always)]
+    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
+        add_lanes565::<BE>(row, lanes);
+    }
+    #[inline(always)]
+    fn add_lanes2(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
+        add_lanes2_565::<BE>(a, b, lanes);
+    }
+    #[inline(always)]
+    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
+        unlane565(lanes)
+    }
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
-        let [r, g, b] = fields565(acc);
+        let [r, g, b] = acc;
         [r * w[0] + g * w[1] + b * w[2], 0, 0]
     }
 }
@@ -628,9 +741,22 @@ impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
     fn add(px: &[u8], acc: &mut [u32; 3]) {
         add565::<BE>(px, acc);
     }
+    const LANES: bool = true;
+    #[inline(always)]
+    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
+        add_lanes565::<BE>(row, lanes);
+    }
+    #[inline(always)]
+    fn add_lanes2(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
+        add_lanes2_565::<BE>(a, b, lanes);
+    }
+    #[inline(always)]
+    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
+        unlane565(lanes)
+    }
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
-        let [r, g, b] = fields565(acc);
+        let [r, g, b] = acc;
         [r * w[0], g * w[1], b * w[2]]
     }
 }
@@ -662,7 +788,8 @@ fn put<const CH: usize>(input: &mut [i8], table: &[i8], at: usize, codes: [u32; 
 
 fn run<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
     match p.cfg.resize {
-        Resize::Area => area::<S>(frame, p, table, input),
+        Resize::Area if S::LANES && p.lanes => area::<S, true>(frame, p, table, input),
+        Resize::Area => area::<S, false>(frame, p, table, input),
         Resize::Bilinear => bilinear::<S>(frame, p, table, input),
         Resize::Nearest => nearest::<S>(frame, p, table, input),
     }
@@ -679,7 +806,13 @@ fn sample<S: Sampler>(frame: &[u8], p: &FrameParams, x: u32, y: u32) -> [u32; 3]
     S::weigh(acc, &p.weights)
 }
 
-fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
+/// Area averaging; `LANES`: sum rows with [`Sampler::add_lanes`].
+fn area<S: Sampler, const LANES: bool>(
+    frame: &[u8],
+    p: &FrameParams,
+    table: &[i8],
+    input: &mut [i8],
+) {
     let cfg = &p.cfg;
     let (rw, rh, ow, oh) = (cfg.roi.w, cfg.roi.h, cfg.out_w, cfg.out_h);
     let fw = cfg.frame_w as usize;
@@ -708,13 +841,34 @@ fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8
             let mut acc = [0u32; 3];
             let mut start = (y0 as usize * fw + x0 as usize) * S::BPP;
             let len = (x1 - x0) as usize * S::BPP;
-            for _ in y0..y1 {
+            let stride = fw * S::BPP;
+            let mut y = y0;
+            // Two rows per step: half the per-row overhead.
+            if LANES {
+                while y + 1 < y1 {
+                    if let Some(two) = frame.get(start..start + stride + len) {
+                        if let (Some(a), Some(b)) = (two.get(..len), two.get(stride..)) {
+                            S::add_lanes2(a, b, &mut acc);
+                        }
+                    }
+                    start += 2 * stride;
+                    y += 2;
+                }
+            }
+            for _ in y..y1 {
                 if let Some(row) = frame.get(start..start + len) {
-                    for px in row.chunks_exact(S::BPP) {
-                        S::add(px, &mut acc);
+                    if LANES {
+                        S::add_lanes(row, &mut acc);
+                    } else {
+                        for px in row.chunks_exact(S::BPP) {
+                            S::add(px, &mut acc);
+                        }
                     }
                 }
-                start += fw * S::BPP;
+                start += stride;
+            }
+            if LANES {
+                acc = S::unlane(acc);
             }
             let count = (x1 - x0) * (y1 - y0);
             let acc = S::weigh(acc, &p.weights);
@@ -734,14 +888,19 @@ fn area<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8
     }
 }
 
-/// Bilinear source position of output `o` in 1/256 pixel, clamped:
-/// `(i0, i1, frac)`.
+/// Fraction bits of a bilinear source position and weight.
+const POS_BITS: u32 = 12;
+
+/// Bilinear source position of output `o` in 1/2^[`POS_BITS`] pixel,
+/// clamped: `(i0, i1, frac)`.
 #[inline(always)]
 fn bilinear_pos(o: u32, r: u32, out: u32) -> (u32, u32, u32) {
-    // (o + ½)·r/out − ½ in 1/256 pixel, floored.
-    let num = (2 * o as u64 + 1) * r as u64 * 128;
-    let pos = (num / out as u64) as i64 - 128;
-    let max = (r as i64 - 1) << 8;
+    // (o + ½)·r/out − ½ in 1/4096 pixel, rounded to nearest: the position
+    // error (at most 1/8192 pixel) moves a result by less than 0.04 code.
+    let half = 1u64 << (POS_BITS - 1);
+    let num = (2 * o as u64 + 1) * r as u64 * half;
+    let pos = ((num + out as u64 / 2) / out as u64) as i64 - half as i64;
+    let max = (r as i64 - 1) << POS_BITS;
     let pos = if pos < 0 {
         0
     } else if pos > max {
@@ -749,15 +908,16 @@ fn bilinear_pos(o: u32, r: u32, out: u32) -> (u32, u32, u32) {
     } else {
         pos
     } as u32;
-    let i0 = pos >> 8;
+    let i0 = pos >> POS_BITS;
     let i1 = if i0 + 1 < r { i0 + 1 } else { i0 };
-    (i0, i1, pos & 255)
+    (i0, i1, pos & ((1 << POS_BITS) - 1))
 }
 
 fn bilinear<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut [i8]) {
     let cfg = &p.cfg;
     let (ox0, oy0) = (cfg.roi.x, cfg.roi.y);
-    // Samples to Q8 so that two Q8 weights keep the sum inside u32.
+    // Samples to Q8 (< 2^16) so that two Q12 weights keep the sums inside
+    // u32.
     let to_q8 = |s: u32| {
         if p.shift >= 8 {
             s >> (p.shift - 8)
@@ -776,12 +936,13 @@ fn bilinear<S: Sampler>(frame: &[u8], p: &FrameParams, table: &[i8], input: &mut
             let mut codes = [0u32; 3];
             let mut k = 0;
             while k < S::CH {
-                let top = to_q8(s00[k]) * (256 - fx) + to_q8(s01[k]) * fx;
-                let bot = to_q8(s10[k]) * (256 - fx) + to_q8(s11[k]) * fx;
-                // top, bot < 2^24: scale down by 2^8 before the second
+                let one = 1 << POS_BITS;
+                let top = to_q8(s00[k]) * (one - fx) + to_q8(s01[k]) * fx;
+                let bot = to_q8(s10[k]) * (one - fx) + to_q8(s11[k]) * fx;
+                // top, bot < 2^28 (Q20): back to Q8 before the second
                 // weight so the sum stays inside u32 with room to round.
-                let v = (top >> 8) * (256 - fy) + (bot >> 8) * fy;
-                codes[k] = (v + (1 << 15)) >> 16;
+                let v = (top >> POS_BITS) * (one - fy) + (bot >> POS_BITS) * fy;
+                codes[k] = (v + (1 << (POS_BITS + 7))) >> (POS_BITS + 8);
                 k += 1;
             }
             write::<S>(input, table, dst_index(p, oy, ox), codes);

@@ -61,9 +61,9 @@ fn check_through_a_camera_reports_the_camera_path() {
                 .unwrap();
         let cam = &json["camera"];
         let acc = |k: &str| cam[k].as_f64().unwrap();
-        // The 8×8 digits stretched to the 16×12 frame, then the centred 12×12
-        // square averaged down to 8×8: the device path must still classify
-        // (lenient bound; a broken conversion gives chance, 10%).
+        // The 8×8 digits stretched to the centred 12×12 region of the 16×12
+        // frame, then averaged down to 8×8: the device path must still
+        // classify (lenient bound; a broken conversion gives chance, 10%).
         assert!(acc("device_float_accuracy") > 0.8, "{cam}");
         assert!(acc("device_int8_accuracy") > 0.8, "{cam}");
         assert!(

@@ -71,7 +71,6 @@ fn rust_expr(c: &FrameConfig) -> String {
 
 /// Builds and runs the cases on `on`; `Err` says what failed.
 pub fn run(on: RunOn, cases: &[Case], cfg: &BuildConfig) -> Result<Vec<Measured>, String> {
-    let board = on.board().ok_or("the host has no instruction counter")?;
     let params: Vec<_> = cases
         .iter()
         .map(|c| c.cfg.validate().map_err(|e| format!("{}: {e:?}", c.name)))
@@ -86,18 +85,157 @@ pub fn run(on: RunOn, cases: &[Case], cfg: &BuildConfig) -> Result<Vec<Measured>
             "@CASES@",
             &cases.iter().map(|c| rust_expr(&c.cfg)).collect::<String>(),
         );
-    let project = cfg.build_dir.join("frame-bench").join(on.name());
+    let (console, cal) = build_and_run(on, "frame-bench", main, &[], cfg)?;
+    let mut overhead = 0;
+    let mut res = Vec::new();
+    for line in console.lines() {
+        let f: Vec<&str> = line.split_whitespace().collect();
+        match f.first() {
+            Some(&"INGOT-FRAME-OVERHEAD") => overhead = f[1].parse().unwrap_or(0),
+            Some(&"INGOT-FRAME") if f.len() == 5 => {
+                let k: usize = f[1].parse().map_err(|_| line.to_string())?;
+                let ticks: u64 = f[2].parse().map_err(|_| line.to_string())?;
+                res.push(Measured {
+                    instructions: cal.instructions(ticks.saturating_sub(overhead)),
+                    device_hash: u64::from_str_radix(f[3], 16).map_err(|_| line.to_string())?,
+                    host_hash: host_hash(&cases[k].cfg, k),
+                    stack: f[4].parse().map_err(|_| line.to_string())?,
+                });
+            }
+            _ => {}
+        }
+    }
+    if res.len() != cases.len() {
+        return Err(format!("expected {} results in:\n{console}", cases.len()));
+    }
+    Ok(res)
+}
+
+/// The firmware that calls a generated module's `frame_to_input`
+/// (module `name`, its files in `src/`) on the pattern of case 0 and
+/// prints `INGOT-MODULE-FRAME TICKS HASH`.
+#[allow(dead_code)] // used by tests/frame_emulated.rs, not the bench
+const MODULE_MAIN: &str = r#"#![no_std]
+#![no_main]
+
+#[allow(dead_code, unused_imports, clippy::all)]
+mod model {
+    include!("@MODULE@.rs");
+}
+
+use core::sync::atomic::{AtomicU32, Ordering};
+use cortex_m::peripheral::syst::SystClkSource;
+use cortex_m::peripheral::{SCB, SYST};
+use cortex_m_rt::{entry, exception};
+use cortex_m_semihosting::{debug, hprintln};
+
+const RELOAD: u32 = 0x00FF_FFFF;
+
+@SYSTICK@
+
+static mut FRAME: [u8; model::FRAME_BYTES] = [0; model::FRAME_BYTES];
+static mut INPUT: [i8; model::INPUT_LEN] = [0; model::INPUT_LEN];
+
+#[entry]
+fn main() -> ! {
+    let mut cp = cortex_m::Peripherals::take().unwrap();
+    cp.SYST.set_clock_source(SystClkSource::Core);
+    cp.SYST.set_reload(RELOAD);
+    cp.SYST.clear_current();
+    cp.SYST.enable_interrupt();
+    cp.SYST.enable_counter();
+    let frame = unsafe { &mut *core::ptr::addr_of_mut!(FRAME) };
+    let input = unsafe { &mut *core::ptr::addr_of_mut!(INPUT) };
+    let mut s: u64 = 1;
+    for b in frame.iter_mut() {
+        s ^= s << 13;
+        s ^= s >> 7;
+        s ^= s << 17;
+        *b = (s >> 56) as u8;
+    }
+    let t0 = now();
+    model::frame_to_input(frame, input);
+    let t1 = now();
+    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    for &b in input.iter() {
+        h ^= b as u8 as u64;
+        h = h.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    hprintln!("INGOT-MODULE-FRAME {} {:016x}", t1 - t0, h);
+    debug::exit(debug::EXIT_SUCCESS);
+    loop {}
+}
+
+#[panic_handler]
+fn panic(_: &core::panic::PanicInfo) -> ! {
+    debug::exit(debug::EXIT_FAILURE);
+    loop {}
+}
+"#;
+
+/// A generated module's `frame_to_input` on `on`, on the pattern
+/// [`frame`]`(FRAME_BYTES, 0)`: `(instructions, FNV-1a of the input
+/// codes)`. `files` are the module's files (`Generated::files`).
+#[allow(dead_code)] // used by tests/frame_emulated.rs, not the bench
+pub fn run_module(
+    on: RunOn,
+    module: &str,
+    files: &[(String, Vec<u8>)],
+    cfg: &BuildConfig,
+) -> Result<(u64, u64), String> {
+    let main = MODULE_MAIN
+        .replace("@SYSTICK@", SYSTICK)
+        .replace("@MODULE@", module);
+    let extra: Vec<(String, Vec<u8>)> = files
+        .iter()
+        .map(|(n, b)| (format!("src/{n}"), b.clone()))
+        .collect();
+    let (console, cal) = build_and_run(on, "frame-module", main, &extra, cfg)?;
+    for line in console.lines() {
+        let f: Vec<&str> = line.split_whitespace().collect();
+        if f.first() == Some(&"INGOT-MODULE-FRAME") && f.len() == 3 {
+            let ticks: u64 = f[1].parse().map_err(|_| line.to_string())?;
+            let hash = u64::from_str_radix(f[2], 16).map_err(|_| line.to_string())?;
+            return Ok((cal.instructions(ticks), hash));
+        }
+    }
+    Err(format!("no result in:\n{console}"))
+}
+
+/// FNV-1a of input codes, as the firmware computes it.
+#[allow(dead_code)] // used by tests/frame_emulated.rs, not the bench
+pub fn fnv(codes: &[i8]) -> u64 {
+    let mut h: u64 = 0xcbf2_9ce4_8422_2325;
+    for &b in codes {
+        h ^= b as u8 as u64;
+        h = h.wrapping_mul(0x0000_0100_0000_01b3);
+    }
+    h
+}
+
+/// Writes the firmware project `kind` for `on` (its `main.rs` and extra
+/// files), builds it, runs it under QEMU; the console and the tick
+/// calibration.
+fn build_and_run(
+    on: RunOn,
+    kind: &str,
+    main: String,
+    extra: &[(String, Vec<u8>)],
+    cfg: &BuildConfig,
+) -> Result<(String, icount::Calibration), String> {
+    let board = on.board().ok_or("the host has no instruction counter")?;
+    let project = cfg.build_dir.join(kind).join(on.name());
     let rt = cfg.ingot_rt.display().to_string();
+    let package = format!("ingot-{kind}-{}", on.name());
     let files = [
         ("src/main.rs", main),
         (
             "Cargo.toml",
             format!(
-                "[package]\nname = \"ingot-frame-bench-{}\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n\
-                 [dependencies]\ningot-rt = {{ path = {rt:?} }}\ncortex-m = {{ version = \"=0.7.10\", features = [\"critical-section-single-core\"] }}\n\
+                "[package]\nname = \"{package}\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n\
+                 [features]\ningot-trace = []\n\n[dependencies]\ningot-rt = {{ path = {rt:?} }}\ncortex-m = {{ version = \"=0.7.10\", features = [\"critical-section-single-core\"] }}\n\
                  cortex-m-rt = \"=0.7.7\"\ncortex-m-semihosting = \"=0.6.0\"\n\n\
                  [profile.release]\nopt-level = 3\ndebug = false\nlto = true\ncodegen-units = 1\npanic = \"abort\"\n\n[workspace]\n",
-                on.name()
             ),
         ),
         (
@@ -115,11 +253,15 @@ pub fn run(on: RunOn, cases: &[Case], cfg: &BuildConfig) -> Result<Vec<Measured>
             "fn main() {\n    let out = std::path::PathBuf::from(std::env::var_os(\"OUT_DIR\").unwrap());\n    std::fs::copy(\"memory.x\", out.join(\"memory.x\")).unwrap();\n    println!(\"cargo:rustc-link-search={}\", out.display());\n    println!(\"cargo:rerun-if-changed=memory.x\");\n}\n".to_string(),
         ),
     ];
-    for (name, text) in &files {
+    let all = files
+        .iter()
+        .map(|(n, t)| (n.to_string(), t.as_bytes()))
+        .chain(extra.iter().map(|(n, b)| (n.clone(), b.as_slice())));
+    for (name, bytes) in all {
         let p = project.join(name);
         std::fs::create_dir_all(p.parent().unwrap()).map_err(|e| e.to_string())?;
-        if std::fs::read_to_string(&p).ok().as_deref() != Some(text) {
-            std::fs::write(&p, text).map_err(|e| format!("{}: {e}", p.display()))?;
+        if std::fs::read(&p).ok().as_deref() != Some(bytes) {
+            std::fs::write(&p, bytes).map_err(|e| format!("{}: {e}", p.display()))?;
         }
     }
     let target_dir = cfg.build_dir.join("target");
@@ -152,10 +294,7 @@ pub fn run(on: RunOn, cases: &[Case], cfg: &BuildConfig) -> Result<Vec<Measured>
             String::from_utf8_lossy(&out.stderr)
         ));
     }
-    let elf = target_dir
-        .join(board.triple)
-        .join("release")
-        .join(format!("ingot-frame-bench-{}", on.name()));
+    let elf = target_dir.join(board.triple).join("release").join(&package);
     let cal = icount::calibrate(on, cfg).map_err(|e| e.to_string())?;
     let log = project.join("console.out");
     let mut child = runner::qemu_command(&cfg.qemu, &board, &elf)
@@ -184,27 +323,5 @@ pub fn run(on: RunOn, cases: &[Case], cfg: &BuildConfig) -> Result<Vec<Measured>
     if !status.success() {
         return Err(format!("the frame firmware failed:\n{console}"));
     }
-    let mut overhead = 0;
-    let mut res = Vec::new();
-    for line in console.lines() {
-        let f: Vec<&str> = line.split_whitespace().collect();
-        match f.first() {
-            Some(&"INGOT-FRAME-OVERHEAD") => overhead = f[1].parse().unwrap_or(0),
-            Some(&"INGOT-FRAME") if f.len() == 5 => {
-                let k: usize = f[1].parse().map_err(|_| line.to_string())?;
-                let ticks: u64 = f[2].parse().map_err(|_| line.to_string())?;
-                res.push(Measured {
-                    instructions: cal.instructions(ticks.saturating_sub(overhead)),
-                    device_hash: u64::from_str_radix(f[3], 16).map_err(|_| line.to_string())?,
-                    host_hash: host_hash(&cases[k].cfg, k),
-                    stack: f[4].parse().map_err(|_| line.to_string())?,
-                });
-            }
-            _ => {}
-        }
-    }
-    if res.len() != cases.len() {
-        return Err(format!("expected {} results in:\n{console}", cases.len()));
-    }
-    Ok(res)
+    Ok((console, cal))
 }

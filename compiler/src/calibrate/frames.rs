@@ -3,10 +3,18 @@
 //!
 //! With a camera configured (`[camera]` of the target, `--camera-*`
 //! options, [`ImageSet::with_camera`](super::ImageSet::with_camera)):
-//! 1. a picture (PNG, JPEG, ...) is decoded to 8-bit RGB and stretched to
-//!    the camera's frame size (`width × height`, no cropping) by the image
-//!    crate's [`Triangle`](image::imageops::FilterType::Triangle) filter,
-//!    standing in for the optics and sensor;
+//! 1. a picture (PNG, JPEG, ...) is decoded to 8-bit RGB and placed in a
+//!    synthetic frame of the camera's size so that the region of interest
+//!    covers the whole picture ([`place_picture`]): the picture is
+//!    stretched to the region's `w × h` by the image crate's
+//!    [`Triangle`](image::imageops::FilterType::Triangle) filter (standing
+//!    in for the optics and sensor), turned the way the sensor is mounted
+//!    (the device's 180° rotation and mirroring undone, so `convert_frame`
+//!    puts it back upright), and the rest of the frame repeats the
+//!    picture's nearest edge pixel. The device thus sees the whole
+//!    picture, upright, at the region's resolution, as a camera aimed at
+//!    the part would deliver it; nothing of it is cropped or squashed by
+//!    the region;
 //! 2. the RGB frame is encoded in the camera's pixel format
 //!    ([`encode_frame`]): `rgb565` keeps the top 5/6/5 bits of R/G/B
 //!    (truncation, common practice for sensor output), `gray8` is the luma
@@ -63,6 +71,47 @@ impl CameraPath {
             Err(_) => vec![0; self.params.input_len()],
         }
     }
+}
+
+/// The synthetic 8-bit RGB frame (`frame_w · frame_h · 3` bytes,
+/// row-major) for a picture already stretched to the region of interest
+/// (`roi`: `roi.w · roi.h · 3` bytes).
+///
+/// The device resizes the region, then rotates by 180° (flips both axes)
+/// and then mirrors (flips x); those are flips, each its own inverse, and
+/// flips commute, so applying the same flips to the picture before placing
+/// it makes the device's output upright. Frame pixels outside the region
+/// take the nearest region pixel (edge replication), so a resize that reads
+/// a little past the region (none of ingot's does) would still see the
+/// picture's own colours.
+pub fn place_picture(params: &FrameParams, roi: &[u8]) -> Vec<u8> {
+    let c = params.config();
+    let (fw, fh) = (c.frame_w as usize, c.frame_h as usize);
+    let (rx, ry, rw, rh) = (
+        c.roi.x as usize,
+        c.roi.y as usize,
+        c.roi.w as usize,
+        c.roi.h as usize,
+    );
+    let flip_y = c.rotate180;
+    let flip_x = c.rotate180 != c.mirror;
+    let mut out = vec![0u8; fw * fh * 3];
+    if rw == 0 || rh == 0 || roi.len() < rw * rh * 3 {
+        return out;
+    }
+    for y in 0..fh {
+        // Region row this frame row shows, clamped to the region's edge.
+        let v = y.clamp(ry, ry + rh - 1) - ry;
+        let sy = if flip_y { rh - 1 - v } else { v };
+        for x in 0..fw {
+            let u = x.clamp(rx, rx + rw - 1) - rx;
+            let sx = if flip_x { rw - 1 - u } else { u };
+            let s = (sy * rw + sx) * 3;
+            let d = (y * fw + x) * 3;
+            out[d..d + 3].copy_from_slice(&roi[s..s + 3]);
+        }
+    }
+    out
 }
 
 /// An 8-bit RGB frame (`width · height · 3` bytes, row-major) in the
@@ -142,5 +191,31 @@ mod tests {
             encode_frame(&cam, &[255, 255, 255, 0, 0, 0]),
             [255, 128, 0, 128]
         );
+    }
+
+    #[test]
+    fn the_region_shows_the_whole_picture_upright() {
+        // A 5x4 RGB picture of distinct pixels; the region (2, 1, 5, 4) of
+        // a 9x7 RGB888 frame, resized 1:1 with nearest, must give the
+        // picture back byte for byte whatever the mounting, because
+        // place_picture undoes what convert_frame does.
+        let pic: Vec<u8> = (0..5 * 4 * 3).map(|i| (i * 7 + 3) as u8).collect();
+        for (rotate, mirror) in [(0, false), (180, false), (0, true), (180, true)] {
+            let mut cam = Camera::new(Format::Rgb888, 9, 7);
+            cam.roi = Some([2, 1, 5, 4]);
+            cam.resize = crate::camera::ResizeMethod::Nearest;
+            cam.rotate = rotate;
+            cam.mirror = mirror;
+            let path = CameraPath {
+                params: cam.params(5, 4, 3).unwrap(),
+                camera: cam,
+            };
+            let frame = place_picture(&path.params, &pic);
+            assert_eq!(frame.len(), 9 * 7 * 3);
+            assert_eq!(path.samples(&frame), pic, "rotate {rotate} mirror {mirror}");
+            // Outside the region: the nearest region pixel, as placed
+            // (frame corner (0, 0) repeats region corner (2, 1)).
+            assert_eq!(frame[..3], frame[(9 + 2) * 3..(9 + 2) * 3 + 3]);
+        }
     }
 }

@@ -404,8 +404,9 @@ impl ImageSet {
     }
 
     /// The camera frame of sample `index` (`None` for `.npy` samples or
-    /// without a camera): a raw dump as read, or a picture stretched to
-    /// the frame size and encoded in the camera's format.
+    /// without a camera): a raw dump as read, or a picture placed so the
+    /// region of interest covers it ([`frames::place_picture`]) and encoded
+    /// in the camera's format.
     pub fn frame(&self, index: usize) -> Result<Option<Vec<u8>>, ImageError> {
         let Some(cam) = &self.camera else {
             return Ok(None);
@@ -442,13 +443,14 @@ impl ImageSet {
                 let rgb_spec = InputSpec {
                     shape: Shape {
                         c: 3,
-                        h: c.frame_h as usize,
-                        w: c.frame_w as usize,
+                        h: c.roi.h as usize,
+                        w: c.roi.w as usize,
                     },
                     color: Color::Rgb,
                     ..self.spec.clone()
                 };
-                let rgb = load_pixels(&e.path, &rgb_spec)?;
+                let roi = load_pixels(&e.path, &rgb_spec)?;
+                let rgb = frames::place_picture(&cam.params, &roi);
                 Ok(Some(frames::encode_frame(&cam.camera, &rgb)))
             }
         }

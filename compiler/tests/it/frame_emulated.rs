@@ -69,3 +69,48 @@ fn device_bytes_equal_host_bytes() {
         }
     }
 }
+
+/// The generated `frame_to_input` of a module built for a camera (the
+/// `plain` test network, 12×12 RGB, behind a rotated and mirrored 40×30
+/// RGB565 camera), compiled for and run on emulated Cortex-M0+ and M4
+/// cores: the same input codes as the host's `ingot_rt::convert_frame`
+/// with the module's pixel table.
+#[test]
+fn generated_frame_to_input_on_the_device_equals_the_host() {
+    use ingot_compiler::camera::{Camera, Format};
+    use ingot_compiler::codegen::{generate, GenOptions, Schedule};
+    let q = ingot_testkit::testnets::plain();
+    let mut cam = Camera::new(Format::Rgb565le, 40, 30);
+    cam.rotate = 180;
+    cam.mirror = true;
+    let opts = GenOptions {
+        module: "plain_camera".into(),
+        camera: Some(cam.clone()),
+        ..GenOptions::default()
+    };
+    let g = generate(&q, &Schedule::naive(&q), &opts).unwrap();
+    let s = q.map(q.input).shape;
+    let p = cam.params(s.w as u32, s.h as u32, s.c as u32).unwrap();
+    let mut want = vec![0i8; p.input_len()];
+    ingot_rt::convert_frame(
+        &harness::frame(p.frame_bytes(), 0),
+        &p,
+        &q.pixel_table,
+        &mut want,
+    )
+    .unwrap();
+    for on in [RunOn::M0plus, RunOn::M4] {
+        if !emulation_or_skip(on) {
+            continue;
+        }
+        let (instructions, hash) = harness::run_module(
+            on,
+            "plain_camera",
+            &g.files("plain_camera"),
+            &BuildConfig::default(),
+        )
+        .unwrap();
+        assert_eq!(hash, harness::fnv(&want), "{on}");
+        assert!(instructions > 0, "{on}");
+    }
+}

@@ -3,6 +3,7 @@
 //! module; run one with `cargo test --test it <module>::`.
 
 mod calibrate_zoo;
+mod camera_host;
 mod check_runners;
 mod codegen;
 mod codegen_camera;

@@ -125,3 +125,46 @@ fn largest_rgb565_window_sums_exactly() {
         }
     }
 }
+
+/// RGB565 windows sum pixel pairs in 16-bit lanes when a lane holds at
+/// most 1024 fields (6-bit G: 1024 · 63 < 2^16) and pixel by pixel
+/// otherwise: windows at the limit (1024 pairs in one row, 32 rows of 32
+/// pairs, odd widths) and past it, both byte orders, gray and RGB, all
+/// white (the lanes' largest sums) and random.
+#[test]
+fn rgb565_windows_at_and_past_the_lane_limit_sum_exactly() {
+    for format in [PixelFormat::Rgb565Le, PixelFormat::Rgb565Be] {
+        for (fw, fh, oc) in [
+            (2048, 1, 1),
+            (2047, 1, 3),
+            (64, 32, 1),
+            (63, 32, 3),
+            (2049, 1, 1),
+            (65, 32, 1),
+            (4097, 3, 1),
+            (5000, 3, 3),
+        ] {
+            let cfg = FrameConfig::new(format, fw, fh, 1, 1, oc).roi(0, 0, fw, fh);
+            let p = cfg.validate().unwrap();
+            let mut s = 0x9E37_79B9_7F4A_7C15u64 ^ fw as u64;
+            let random: Vec<u8> = (0..p.frame_bytes())
+                .map(|_| {
+                    s ^= s << 13;
+                    s ^= s >> 7;
+                    s ^= s << 17;
+                    (s >> 24) as u8
+                })
+                .collect();
+            let table: Vec<i8> = (0..768).map(|i| (i % 256 - 128) as i8).collect();
+            for frame in [vec![0xFF; p.frame_bytes()], random] {
+                let mut got = vec![0i8; p.input_len()];
+                convert_frame(&frame, &p, &table, &mut got).unwrap();
+                let got: Vec<u8> = got.iter().map(|&v| (v as i32 + 128) as u8).collect();
+                assert_eq!(got, per_pixel_model(&frame, &p), "{cfg:?}");
+            }
+            let mut white = vec![0i8; p.input_len()];
+            convert_frame(&vec![0xFF; p.frame_bytes()], &p, &table, &mut white).unwrap();
+            assert!(white.iter().all(|&v| v == 127), "{cfg:?}: {white:?}");
+        }
+    }
+}
