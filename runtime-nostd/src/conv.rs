@@ -733,6 +733,14 @@ fn depthwise_channels(
         ) else {
             return;
         };
+        // 3×3 kernels: the nine taps unrolled against one weight pointer
+        // (constant offsets), so nothing spills.
+        if let (Ok(w9), Some(xs)) = (<&[i8; 36]>::try_from(w), patch.get(ch..)) {
+            let acc = depthwise4_3x3(xs, c, w9);
+            requantize_into(o, &acc, b, r, out_q);
+            ch += 4;
+            continue;
+        }
         let Some((w0, w)) = w.split_at_checked(taps) else {
             return;
         };
@@ -769,6 +777,24 @@ fn depthwise_channels(
         *o = r.apply(acc, out_q);
         ch += 1;
     }
+}
+
+/// [`depthwise4`] for nine taps, the weights of the four channels one
+/// after the other in `w`.
+#[inline(never)]
+fn depthwise4_3x3(xs: &[i16], c: usize, w: &[i8; 36]) -> [i32; 4] {
+    let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
+    for t in 0..9 {
+        let at = t * c;
+        let Some(&[x0, x1, x2, x3]) = xs.get(at..at + 4) else {
+            break;
+        };
+        a0 = a0.wrapping_add((x0 as i32).wrapping_mul(w[t] as i32));
+        a1 = a1.wrapping_add((x1 as i32).wrapping_mul(w[9 + t] as i32));
+        a2 = a2.wrapping_add((x2 as i32).wrapping_mul(w[18 + t] as i32));
+        a3 = a3.wrapping_add((x3 as i32).wrapping_mul(w[27 + t] as i32));
+    }
+    [a0, a1, a2, a3]
 }
 
 /// The four sums of [`depthwise_channels`]: `xs[t·c + j] · wj[t]` over
