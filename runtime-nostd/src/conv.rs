@@ -578,7 +578,9 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
             let Some(out) = arena.get_mut(dst..dst + output.c) else {
                 return;
             };
-            if depthwise {
+            if depthwise && opg == 1 {
+                depthwise_channels(patch, weights, taps, c_in, bias, requant, p.out, out);
+            } else if depthwise {
                 // By hand, not `zip`: see `conv_rows`.
                 let mut rows = weights.chunks_exact(taps.max(1));
                 for (o, ((y, &b), rq)) in out.iter_mut().zip(bias).zip(requant).enumerate() {
@@ -697,6 +699,120 @@ fn channel_rows(
     if let ([o], [b], [r]) = (outs.into_remainder(), bp.remainder(), rp.remainder()) {
         *o = r.apply(b.wrapping_add(dot_wide(xw, pairs.remainder())), out_q);
     }
+}
+
+/// One pixel of a depthwise convolution with one output channel per
+/// input channel: `patch` is the window tap-major (`patch[t·c + ch]`),
+/// `weights` the rows `[c][taps]`. Four channels per pass: each tap loads
+/// the four neighbouring patch values (two words) and the four channels'
+/// weights (one pointer each, stepping one byte per tap), so the inner
+/// loop is loads and 16-bit multiply-accumulates (`smlabb`/`smlatb` on
+/// Cortex-M4/M7) instead of one strided walk per channel.
+#[allow(clippy::too_many_arguments)]
+#[inline(never)]
+fn depthwise_channels(
+    patch: &[i16],
+    weights: &[i8],
+    taps: usize,
+    c: usize,
+    bias: &[i32],
+    requant: &[Requant],
+    out_q: OutputQuant,
+    out: &mut [i8],
+) {
+    if taps == 0 || c == 0 {
+        return;
+    }
+    let mut ch = 0;
+    while ch + 4 <= c {
+        let (Some(w), Some(o), Some(b), Some(r)) = (
+            weights.get(ch * taps..(ch + 4) * taps),
+            out.get_mut(ch..ch + 4),
+            bias.get(ch..ch + 4),
+            requant.get(ch..ch + 4),
+        ) else {
+            return;
+        };
+        // 3×3 kernels: the nine taps unrolled against one weight pointer
+        // (constant offsets), so nothing spills.
+        if let (Ok(w9), Some(xs)) = (<&[i8; 36]>::try_from(w), patch.get(ch..)) {
+            let acc = depthwise4_3x3(xs, c, w9);
+            requantize_into(o, &acc, b, r, out_q);
+            ch += 4;
+            continue;
+        }
+        let Some((w0, w)) = w.split_at_checked(taps) else {
+            return;
+        };
+        let Some((w1, w)) = w.split_at_checked(taps) else {
+            return;
+        };
+        let Some((w2, w3)) = w.split_at_checked(taps) else {
+            return;
+        };
+        // The patch rows start at channel `ch`: `get(ch..)` once, then
+        // steps of `c`.
+        let Some(xs) = patch.get(ch..) else {
+            return;
+        };
+        let acc = depthwise4(xs, c, w0, w1, w2, w3);
+        requantize_into(o, &acc, b, r, out_q);
+        ch += 4;
+    }
+    // The last one to three channels: one strided walk each.
+    while ch < c {
+        let (Some(row), Some(o), Some(&b), Some(r), Some(col)) = (
+            weights.get(ch * taps..(ch + 1) * taps),
+            out.get_mut(ch),
+            bias.get(ch),
+            requant.get(ch),
+            patch.get(ch..),
+        ) else {
+            return;
+        };
+        let mut acc = b;
+        for (x, &wv) in col.iter().step_by(c.max(1)).zip(row) {
+            acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+        }
+        *o = r.apply(acc, out_q);
+        ch += 1;
+    }
+}
+
+/// [`depthwise4`] for nine taps, the weights of the four channels one
+/// after the other in `w`.
+#[inline(never)]
+fn depthwise4_3x3(xs: &[i16], c: usize, w: &[i8; 36]) -> [i32; 4] {
+    let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
+    for t in 0..9 {
+        let at = t * c;
+        let Some(&[x0, x1, x2, x3]) = xs.get(at..at + 4) else {
+            break;
+        };
+        a0 = a0.wrapping_add((x0 as i32).wrapping_mul(w[t] as i32));
+        a1 = a1.wrapping_add((x1 as i32).wrapping_mul(w[9 + t] as i32));
+        a2 = a2.wrapping_add((x2 as i32).wrapping_mul(w[18 + t] as i32));
+        a3 = a3.wrapping_add((x3 as i32).wrapping_mul(w[27 + t] as i32));
+    }
+    [a0, a1, a2, a3]
+}
+
+/// The four sums of [`depthwise_channels`]: `xs[t·c + j] · wj[t]` over
+/// the taps, for `j` in `0..4`. Its own function, so the loop holds only
+/// its pointers and four accumulators in registers.
+#[inline(never)]
+fn depthwise4(xs: &[i16], c: usize, w0: &[i8], w1: &[i8], w2: &[i8], w3: &[i8]) -> [i32; 4] {
+    let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
+    for ((((row, &u0), &u1), &u2), &u3) in xs.chunks(c.max(1)).zip(w0).zip(w1).zip(w2).zip(w3) {
+        crate::dot::no_unroll();
+        if let [x0, x1, x2, x3, ..] = *row {
+            a0 = a0.wrapping_add((x0 as i32).wrapping_mul(u0 as i32));
+            a1 = a1.wrapping_add((x1 as i32).wrapping_mul(u1 as i32));
+            a2 = a2.wrapping_add((x2 as i32).wrapping_mul(u2 as i32));
+            a3 = a3.wrapping_add((x3 as i32).wrapping_mul(u3 as i32));
+        }
+    }
+    [a0, a1, a2, a3]
 }
 
 /// Channels `c0..c0 + dst.len()` of one input pixel (`src`), transformed

@@ -185,13 +185,12 @@ fn halves(v: u32) -> (i32, i32) {
     (((v << 16) as i32) >> 16, (v as i32) >> 16)
 }
 
-/// `acc + lo(x)·lo(w) + hi(x)·hi(w)`, each half a signed 16-bit value.
+/// `acc + lo(x)·lo(w) + hi(x)·hi(w)`, each half a signed 16-bit value,
+/// wrapping: one `smlad` on cores with the DSP extension (two MACs per
+/// instruction), its portable twin elsewhere (see `ingot-dsp`).
 #[inline(always)]
 fn mac_pair(acc: i32, x: u32, w: u32) -> i32 {
-    let (xl, xh) = halves(x);
-    let (wl, wh) = halves(w);
-    acc.wrapping_add(xl.wrapping_mul(wl))
-        .wrapping_add(xh.wrapping_mul(wh))
+    ingot_dsp::smlad(x, w, acc)
 }
 
 /// Keeps LLVM from unrolling the loop it sits in, on Arm only. On

@@ -1,9 +1,11 @@
 //! `ingot-rt`: the int8 kernels that ingot-generated firmware modules call,
 //! and that the ingot compiler runs as its bit-exact integer simulator.
 //!
-//! `#![no_std]`, no `alloc`, no dependencies, no `unsafe`, no statics, no
-//! internal buffers, and no floating point on the inference path (the only
-//! float code is marked *host-side*: [`Requant::from_real`],
+//! `#![no_std]`, no `alloc`, no `unsafe`, no statics, no internal
+//! buffers, one dependency (`ingot-dsp`, the audited wrappers around the
+//! Arm DSP instructions such as `smlad`, with portable twins elsewhere),
+//! and no floating point on the inference path (the only float code is
+//! marked *host-side*: [`Requant::from_real`],
 //! [`Requant::to_real`], [`AddParams::from_scales`] and [`dequantize`]).
 //! Nothing assumes a 64-bit `usize`; 64-bit arithmetic is `i64`, which
 //! 32-bit Cortex-M does with `SMULL`/`SMLAL` and register pairs.

@@ -632,6 +632,34 @@ impl Default for DepthwiseConfig {
     }
 }
 
+impl DepthwiseConfig {
+    /// The layout of Howard et al. (2017), "MobileNets", Table 1, on a
+    /// 96×96 gray input: stem 3×3/2 with 32 channels, then 13 depthwise +
+    /// pointwise pairs (64, 128/2, 128, 256/2, 256, 512/2, 5 × 512,
+    /// 1024/2, 1024), every width multiplied by `width` (at least 8
+    /// channels), 10 classes.
+    pub fn howard2017(width: f32) -> Self {
+        let c = |n: usize| ((n as f32 * width).round() as usize).max(8);
+        let mut blocks = vec![
+            (c(64), 1),
+            (c(128), 2),
+            (c(128), 1),
+            (c(256), 2),
+            (c(256), 1),
+        ];
+        blocks.push((c(512), 2));
+        blocks.extend(std::iter::repeat_n((c(512), 1), 5));
+        blocks.push((c(1024), 2));
+        blocks.push((c(1024), 1));
+        DepthwiseConfig {
+            input: [1, 96, 96],
+            stem: c(32),
+            blocks,
+            classes: 10,
+        }
+    }
+}
+
 /// Depthwise separable convolutions (Howard et al. 2017, "MobileNets"):
 /// stem conv3x3 stride 2 - BN - ReLU6, then blocks of depthwise 3x3
 /// (`groups == channels`) - BN - ReLU6 - pointwise 1x1 - BN - ReLU6; global
@@ -694,6 +722,7 @@ mod tests {
             dense_small(1),
             residual(&ResidualConfig::default(), 1),
             depthwise_separable(&DepthwiseConfig::default(), 1),
+            depthwise_separable(&DepthwiseConfig::howard2017(0.25), 1),
         ];
         for n in &nets {
             let g = n.build();
@@ -710,6 +739,20 @@ mod tests {
                 .filter(|l| matches!(l.op, Op::Add))
                 .count(),
             2
+        );
+        // Howard et al. (2017), Table 1: 13 depthwise layers, 1024
+        // channels at the end (256 at width 0.25), 3×3 at stride 2 by
+        // 96 → 3 pixels.
+        let g = nets[4].build();
+        let dw = g
+            .layers()
+            .iter()
+            .filter(|l| matches!(&l.op, Op::Conv2d(c) if c.is_depthwise()))
+            .count();
+        assert_eq!(dw, 13);
+        assert_eq!(
+            DepthwiseConfig::howard2017(0.25).blocks.last(),
+            Some(&(256, 1))
         );
         let g = nets[3].build();
         assert!(g

@@ -10,6 +10,7 @@ mod codegen_camera;
 mod codegen_output;
 mod common;
 mod densenet121;
+mod dsp_emulated;
 mod frame_emulated;
 mod graph_format_doc;
 mod layering;

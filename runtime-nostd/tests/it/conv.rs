@@ -344,6 +344,63 @@ proptest! {
     }
 }
 
+/// Depthwise layers with enough channels (2 to 19, one per group) that the
+/// four-channel pass and the one-to-three-channel rest both run.
+fn arb_depthwise_case() -> impl Strategy<Value = Case> {
+    (
+        (1usize..6, 1usize..6, 2usize..20),
+        (1usize..4, 1usize..4, 1usize..3, 1usize..3, 0usize..2),
+        (arb_zp(), arb_zp(), prop::collection::vec(arb_requant(), 20)),
+        (0usize..3, any::<bool>(), any::<u64>(), 0u8..3),
+    )
+        .prop_map(|(s, k, q, l)| {
+            let (h, w, c) = s;
+            let (kh, kw, sy, sx, pad) = k;
+            let (pad_value, zp_out, rq) = q;
+            let (in_extra, same_region, seed, transform) = l;
+            Case {
+                h,
+                w,
+                cin: c,
+                cout: c,
+                groups: c,
+                p: RefConv {
+                    kh,
+                    kw,
+                    sy,
+                    sx,
+                    dy: 1,
+                    dx: 1,
+                    pt: pad,
+                    pl: pad,
+                    pb: pad,
+                    pr: pad,
+                    groups: c,
+                    pad_value,
+                    zp_out: zp_out as i32,
+                    lo: -128,
+                    hi: 127,
+                },
+                in_extra,
+                in_c0: in_extra.min(1),
+                same_region,
+                seed,
+                rq,
+                transform,
+            }
+        })
+}
+
+proptest! {
+    #[test]
+    fn depthwise_conv2d_matches_reference(c in arb_depthwise_case()) {
+        let r = run_case(&c);
+        prop_assume!(r.is_some());
+        let (got, want) = r.unwrap();
+        prop_assert_eq!(got, want);
+    }
+}
+
 /// Depthwise with channel multiplier and a 1×1 map with a kernel larger
 /// than the input (all but one tap padded).
 #[test]
