@@ -24,8 +24,8 @@ pub mod quant;
 pub mod sim;
 
 pub use ir::{
-    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
-    QParams, QPool, QStep, StepId,
+    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QGraphError, QKernel, QLinear, QMap,
+    QMapId, QParams, QPool, QStep, StepId,
 };
 pub use quant::Activation;
 pub use sim::{SimError, SimInput, Simulator};
