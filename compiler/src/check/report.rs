@@ -682,7 +682,7 @@ mod tests {
         assert!(md.contains("accuracy drop: 25.00 pp"));
         assert!(md.contains("| 100.00% | 75.00% | 25.00 pp |"), "{md}");
         assert!(
-            md.contains("| 0 | conv1 | conv2d | 2 304 | 31.5 | 118 720 | 51.53 |"),
+            md.contains("| 0 | conv1 | conv2d | 2,304 | 31.5 | 118,720 | 51.53 |"),
             "{md}"
         );
         assert!(

@@ -14,7 +14,7 @@
 use crate::lower::{
     ChannelTransform, Clamp, Multiplier, QConv, QGraph, QKernel, QLinear, QPool, StepId,
 };
-pub use crate::plan::form::{pairs_apply, weight_rows};
+pub use crate::plan::form::{uses_pairs, weight_rows};
 use crate::plan::Schedule;
 use ingot_rt::{
     AddParams, ConvParams, InputTransform, MapRef, OutputQuant, PoolQuant, Requant, Window,
@@ -182,7 +182,7 @@ pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
     for sc in steps {
         for c in &mut sc.calls {
             if let Call::Conv { conv, paired, .. } = c {
-                *paired = form == super::WeightForm::Pairs && pairs_apply(conv);
+                *paired = form == super::WeightForm::Pairs && uses_pairs(conv);
             }
         }
     }
