@@ -1,7 +1,11 @@
 //! `ingot`: command-line front of the ingot compiler.
 //!
-//! Each subcommand lives in its own file under `cmd/` and only parses its
-//! arguments and prints; the work is done by the `ingot-compiler` library.
+//! Each subcommand lives in its own file under `cmd/`: it parses its
+//! arguments, calls the library's stages (the pipeline through
+//! `ingot_compiler::driver`: where ranges come from, the weight form, the
+//! budget verdict; the harness through `ingot_compiler::check`), and prints.
+//! The choices a command makes are the driver's, so `ingot build`, `ingot
+//! plan`, `ingot check` and a build script make them the same way.
 
 mod cmd;
 

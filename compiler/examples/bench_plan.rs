@@ -23,12 +23,12 @@ fn row(q: &QGraph, svg: Option<&std::path::Path>) {
     }
     times.sort_by(f64::total_cmp);
     let p = p.expect("ran");
-    plan::verify::verify(q, &p).expect("verified");
+    plan::verify(q, &p).expect("verified");
     if let Some(dir) = svg {
-        plan::svg::write(
-            q,
-            &p,
-            &dir.join(format!("{}.svg", q.name.replace('/', "_"))),
+        let picture = plan::render_svg(q, &p).expect("svg");
+        std::fs::write(
+            dir.join(format!("{}.svg", q.name.replace('/', "_"))),
+            picture,
         )
         .expect("svg written");
     }

@@ -13,7 +13,7 @@ fn main() {
         .into_iter()
         .chain([testnets::hostile_names()])
     {
-        let module = ingot_compiler::codegen::names::stem(&q.name).to_lowercase();
+        let module = ingot_compiler::codegen::module_stem(&q.name).to_lowercase();
         let opt = GenOptions {
             module: module.clone(),
             ..GenOptions::default()

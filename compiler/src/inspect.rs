@@ -14,6 +14,7 @@
 
 use crate::graph::cost::{layer_cost, LayerCost};
 use crate::graph::{Color, Graph, Op, Shape};
+pub use crate::util::group_digits;
 use serde::Serialize;
 use std::fmt::Write as _;
 
@@ -131,19 +132,6 @@ pub fn report(g: &Graph) -> Report {
     }
 }
 
-/// `1234567` as `1,234,567`.
-pub fn group_digits(n: u64) -> String {
-    let s = n.to_string();
-    let mut out = String::with_capacity(s.len() + s.len() / 3);
-    for (i, ch) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i) % 3 == 0 {
-            out.push(',');
-        }
-        out.push(ch);
-    }
-    out
-}
-
 impl Report {
     /// The report as an aligned text table followed by the totals.
     pub fn to_text(&self) -> String {
@@ -242,18 +230,5 @@ impl Report {
             .collect::<Vec<_>>()
             .join("\n")
             + "\n"
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn groups_digits() {
-        assert_eq!(group_digits(0), "0");
-        assert_eq!(group_digits(999), "999");
-        assert_eq!(group_digits(1000), "1,000");
-        assert_eq!(group_digits(7_978_856), "7,978,856");
     }
 }

@@ -29,7 +29,7 @@ pub mod plan;
 pub mod ranges;
 pub mod reference;
 pub mod stats;
-pub mod util;
+pub(crate) mod util;
 
 pub use frontend::{load, LoadError};
 

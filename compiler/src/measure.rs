@@ -15,6 +15,19 @@ pub fn sqnr_db(signal: f64, noise: f64) -> Option<f64> {
     }
 }
 
+/// An SQNR in dB as the reports print it: one decimal, `exact` for `+∞`
+/// (no noise), `-inf` for `−∞` (noise and no signal: never `exact`), and
+/// the missing-value dash for `None`.
+pub fn format_db(x: Option<f64>) -> String {
+    match x {
+        Some(v) if v.is_finite() => format!("{v:.1}"),
+        Some(v) if v == f64::INFINITY => "exact".into(),
+        Some(v) if v == f64::NEG_INFINITY => "-inf".into(),
+        Some(_) => "NaN".into(),
+        None => crate::util::MISSING.into(),
+    }
+}
+
 /// Index of the largest value, the first one on ties; NaN never wins; 0 for
 /// an empty slice.
 pub fn argmax_f32(v: &[f32]) -> usize {
@@ -39,6 +52,16 @@ mod tests {
         assert_eq!(sqnr_db(0.0, 0.0), None);
         assert_eq!(sqnr_db(0.0, 1.0), Some(f64::NEG_INFINITY));
         assert!((sqnr_db(100.0, 1.0).unwrap() - 20.0).abs() < 1e-12);
+    }
+
+    /// `exact` only for no noise: a map with noise and no signal (`−∞`)
+    /// is the worst case, not a perfect one.
+    #[test]
+    fn db_prints_exact_only_for_plus_infinity() {
+        assert_eq!(format_db(sqnr_db(1.0, 0.0)), "exact");
+        assert_eq!(format_db(sqnr_db(0.0, 1.0)), "-inf");
+        assert_eq!(format_db(sqnr_db(0.0, 0.0)), "–");
+        assert_eq!(format_db(sqnr_db(100.0, 1.0)), "20.0");
     }
 
     #[test]

@@ -656,6 +656,6 @@ pub fn interval_pp(i: Interval) -> String {
 pub fn interval_pct(i: Option<Interval>) -> String {
     match i {
         Some(i) => format!("{:.2}–{:.2}%", 100.0 * i.lo, 100.0 * i.hi),
-        None => "–".into(),
+        None => crate::util::MISSING.into(),
     }
 }

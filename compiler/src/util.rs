@@ -44,5 +44,35 @@ pub fn fnv1a(h: u64, bytes: &[u8]) -> u64 {
     h
 }
 
+/// How every report prints a missing value (an en dash).
+pub(crate) const MISSING: &str = "–";
+
+/// `1234567` as `1,234,567`: the one thousands separator of the reports.
+pub fn group_digits(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::with_capacity(s.len() + s.len() / 3);
+    for (i, ch) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(ch);
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::group_digits;
+
+    #[test]
+    fn groups_digits() {
+        assert_eq!(group_digits(0), "0");
+        assert_eq!(group_digits(999), "999");
+        assert_eq!(group_digits(1000), "1,000");
+        assert_eq!(group_digits(7_978_856), "7,978,856");
+    }
+}
+
+pub(crate) mod splitmix;
 #[cfg(test)]
 pub(crate) mod test_rng;

@@ -49,3 +49,27 @@ impl Error {
         }
     }
 }
+
+impl Error {
+    /// What the kernel found wrong, in a few words (the text of
+    /// [`Display`](core::fmt::Display)).
+    pub const fn message(self) -> &'static str {
+        match self {
+            Error::MapOutOfBounds => "a map reaches past the arena or has stride < c",
+            Error::ShapeMismatch => "map shapes do not agree with the parameters",
+            Error::BufferTooSmall => {
+                "a weight, bias, requantization, table or scratch slice is too short"
+            }
+            Error::BadParams => "a parameter is out of its documented range",
+            Error::Overlap => "the output shares bytes with an input",
+        }
+    }
+}
+
+impl core::fmt::Display for Error {
+    fn fmt(&self, f: &mut core::fmt::Formatter<'_>) -> core::fmt::Result {
+        f.write_str(self.message())
+    }
+}
+
+impl core::error::Error for Error {}

@@ -49,14 +49,11 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         (None, Some(d)) => pipeline::RangesSource::Images(d.clone(), args.method),
         (None, None) => anyhow::bail!("pass --ranges FILE or --images DIR"),
     };
-    let req = pipeline::BuildInputs {
-        graph: args.graph.clone(),
-        ranges,
-        target: args.target.clone(),
-        module: args.module.clone(),
-        weight_form: args.weight_form,
-        camera: args.camera.camera()?,
-    };
+    let mut req = pipeline::BuildInputs::new(args.graph.clone(), ranges);
+    req.target = args.target.clone();
+    req.module = args.module.clone();
+    req.weight_form = args.weight_form;
+    req.camera = args.camera.camera()?;
     let c = pipeline::compile(&req)?;
     super::print_warnings(&c.graph);
     output::write_all(&args.out, &c.files(&args.module), args.force)?;

@@ -4,13 +4,13 @@
 use anyhow::{bail, Context};
 use ingot_compiler::check::compare::Thresholds;
 use ingot_compiler::check::pipeline::{self, CheckData, CheckPlan};
-use ingot_compiler::check::prepare::{self, PrepareOptions, RangesFrom};
+use ingot_compiler::check::prepare::{self, PrepareOptions};
 use ingot_compiler::check::runner::{self, BuildConfig};
 use ingot_compiler::check::size::Budget;
 use ingot_compiler::check::{accuracy, report};
 use ingot_compiler::check::{io, ModuleFiles, RunOn};
 use ingot_compiler::codegen::WeightForm;
-use ingot_compiler::driver;
+use ingot_compiler::driver::{self, RangesSource};
 use ingot_compiler::stats::{self, Gates};
 use std::path::PathBuf;
 
@@ -255,19 +255,16 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         bail!("--inputs applies to --module only");
     }
     let ranges = match (&a.ranges, &a.calib_images) {
-        (Some(r), _) => RangesFrom::File(r.clone()),
-        (None, Some(d)) => RangesFrom::Images(d.clone()),
-        (None, None) => RangesFrom::CheckImages,
+        (Some(r), _) => RangesSource::File(r.clone()),
+        (None, Some(d)) => RangesSource::Images(d.clone(), a.method),
+        (None, None) => RangesSource::CheckImages(a.method),
     };
     let run_core = (a.on != RunOn::Host).then(|| a.on.name());
-    let opts = PrepareOptions {
-        ranges,
-        method: a.method,
-        target: a.target.clone(),
-        weight_form: driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core),
-        camera: a.camera.camera()?,
-        ..PrepareOptions::default()
-    };
+    let mut opts = PrepareOptions::default();
+    opts.ranges = ranges;
+    opts.target = a.target.clone();
+    opts.weight_form = driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core);
+    opts.camera = a.camera.camera()?;
     let mut p = prepare::prepare(graph, images, &opts)?;
     p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)
         .map_err(|e| anyhow::anyhow!("--good: {}: {e}", graph.display()))?;
@@ -290,13 +287,10 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
         },
         // The firmware ELF (module + runner) against the target's memory
         // less its reserves.
-        budget: Budget {
-            flash: a
-                .flash_budget
-                .or(p.budget.as_ref().map(|b| driver::firmware_budget(b).0)),
-            ram: a
-                .ram_budget
-                .or(p.budget.as_ref().map(|b| driver::firmware_budget(b).1)),
+        budget: {
+            let (flash, ram) =
+                driver::firmware_limits(a.flash_budget, a.ram_budget, p.budget.as_ref());
+            Budget { flash, ram }
         },
         thresholds: thresholds(a),
     };

@@ -1,11 +1,11 @@
 //! `ingot plan GRAPH.json [--ranges R.json | --images DIR] [--target T.toml] [--svg OUT.svg] [--json]`.
 
 use anyhow::{bail, Context};
-use ingot_compiler::calibrate::{self, CalibOptions, ImageSet, MapRange, Ranges};
+use ingot_compiler::calibrate::Method;
 use ingot_compiler::codegen::{output, WeightForm};
-use ingot_compiler::driver as pipeline;
-use ingot_compiler::lower::{lower, LowerOptions};
-use ingot_compiler::plan::{self, PlanOptions, Target};
+use ingot_compiler::driver::{self, RangesSource};
+use ingot_compiler::lower::LowerOptions;
+use ingot_compiler::plan;
 use std::path::PathBuf;
 
 /// Arguments of `ingot plan`.
@@ -42,51 +42,29 @@ pub struct Args {
     pub weight_form: Option<WeightForm>,
 }
 
-/// Lowers, plans, prints; fails when the plan does not fit the target.
+/// Lowers and plans through the driver, prints; fails when the plan does
+/// not fit the target.
 pub fn run(args: &Args) -> anyhow::Result<()> {
     let g = ingot_compiler::load(&args.graph)?;
     super::print_warnings(&g);
-    let ranges = match (&args.ranges, &args.images) {
-        (Some(p), _) => {
-            let hash =
-                ingot_compiler::calibrate::ranges::graph_hash(&g).context("hashing the graph")?;
-            Ranges::load(&g, p, Some(&hash))?
-        }
-        (None, Some(dir)) => {
-            let images = ImageSet::open(dir, &g)?;
-            calibrate::run(&g, &images, &CalibOptions::default())
-                .with_context(|| format!("calibrating on {}", dir.display()))?
-                .ranges
-        }
-        (None, None) => Ranges {
-            graph: g.name().into(),
-            graph_hash: String::new(),
-            method: "synthetic".into(),
-            images: 0,
-            maps: vec![
-                MapRange {
-                    min: -4.0,
-                    max: 4.0
-                };
-                g.map_count()
-            ],
-        },
+    let source = match (&args.ranges, &args.images) {
+        (Some(p), _) => RangesSource::File(p.clone()),
+        (None, Some(dir)) => RangesSource::Images(dir.clone(), Method::MinMax),
+        (None, None) => RangesSource::Synthetic,
     };
-    let q = lower(&g, &ranges, &LowerOptions::default())?;
-    let target = args.target.as_ref().map(Target::load).transpose()?;
+    let ranges = driver::ranges_for(&g, &source, None, None)?.ranges;
+    let target = args
+        .target
+        .as_deref()
+        .map(driver::load_target)
+        .transpose()?;
     // The patch scratch depends on the kernels `build` will use for this
     // target (see `ingot build --weight-form`).
-    let weight_form = pipeline::weight_form_for(args.weight_form, target.as_ref());
-    let p = plan::plan(
-        &q,
-        &PlanOptions {
-            weight_form,
-            ..PlanOptions::default()
-        },
-    )?;
+    let weight_form = driver::weight_form_for(args.weight_form, target.as_ref());
+    let (q, p) = driver::lower_and_plan(&g, &ranges, &LowerOptions::default(), weight_form)?;
     let report = plan::report(&q, &p, target.as_ref());
     if let Some(svg) = &args.svg {
-        let picture = plan::svg::render(&q, &p).map_err(anyhow::Error::msg)?;
+        let picture = plan::render_svg(&q, &p)?;
         let mut inputs = vec![
             ("graph file", args.graph.as_path()),
             ("weights file", g.weights_path()),

@@ -105,7 +105,7 @@ impl Net {
         let graph_path = dir.join(format!("{stem}.graph.json"));
         let mut json = serde_json::to_string_pretty(&file).map_err(std::io::Error::other)?;
         json.push('\n');
-        ingot_compiler::util::write_atomic(&graph_path, json.as_bytes())?;
+        std::fs::write(&graph_path, json.as_bytes())?;
         self.store.save(&dir.join(&file.weights))?;
         Ok(graph_path)
     }

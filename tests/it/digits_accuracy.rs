@@ -13,8 +13,10 @@
 //! per-tensor ones (Krishnamoorthi 2018, "Quantizing deep convolutional
 //! networks for efficient inference: A whitepaper", §3).
 
+use ingot_compiler::calibrate::Method;
 use ingot_compiler::check::compare;
-use ingot_compiler::check::prepare::{self, PrepareOptions, RangesFrom};
+use ingot_compiler::check::prepare::{self, PrepareOptions};
+use ingot_compiler::driver::RangesSource;
 use std::path::{Path, PathBuf};
 
 fn data() -> PathBuf {
@@ -31,15 +33,12 @@ struct Figures {
 
 fn figures(per_channel: bool) -> Figures {
     let d = data();
-    let p = prepare::prepare(
-        &d.join("model/digits.graph.json"),
-        &d.join("heldout"),
-        &PrepareOptions {
-            ranges: RangesFrom::Images(d.join("calibration")),
-            per_channel,
-            ..PrepareOptions::default()
-        },
-    )
+    let p = prepare::prepare(&d.join("model/digits.graph.json"), &d.join("heldout"), &{
+        let mut o = PrepareOptions::default();
+        o.ranges = RangesSource::Images(d.join("calibration"), Method::MinMax);
+        o.per_channel = per_channel;
+        o
+    })
     .unwrap();
     let sim = p.data.sim_outputs.as_ref().unwrap();
     let float = p.data.float_outputs.as_ref().unwrap();

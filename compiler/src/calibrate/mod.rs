@@ -92,13 +92,17 @@ impl Default for CalibOptions {
 
 /// Why calibration failed.
 #[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
 pub enum CalibError {
     /// An image could not be read (and `skip_bad` was off).
     #[error(transparent)]
     Image(#[from] ImageError),
-    /// The options are not usable.
-    #[error("{0}")]
-    Options(String),
+    /// The held-out share is not in `[0, 1)`.
+    #[error("holdout {0} is not in [0, 1)")]
+    Holdout(f64),
+    /// Fewer than two histogram bins.
+    #[error("{0} histogram bins; need at least 2")]
+    Bins(usize),
     /// No image was left to calibrate on.
     #[error("no calibration image left: {listed} listed, {held_out} held out for evaluation, {skipped} unreadable")]
     NoImages {
@@ -340,16 +344,10 @@ pub fn observe_set<S: MapSource + ?Sized>(
     opts: &CalibOptions,
 ) -> Result<Observed, CalibError> {
     if !(0.0..1.0).contains(&opts.holdout) {
-        return Err(CalibError::Options(format!(
-            "holdout {} is not in [0, 1)",
-            opts.holdout
-        )));
+        return Err(CalibError::Holdout(opts.holdout));
     }
     if opts.bins < 2 {
-        return Err(CalibError::Options(format!(
-            "{} histogram bins; need at least 2",
-            opts.bins
-        )));
+        return Err(CalibError::Bins(opts.bins));
     }
     let n_maps = src.map_count();
     let (cal_all, evaluation) = split(images.len(), opts.holdout);

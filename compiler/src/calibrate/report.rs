@@ -3,6 +3,8 @@
 
 use super::{Calibration, ImageSet, MapRange};
 use crate::graph::{Graph, MapId};
+use crate::measure::format_db as db;
+use crate::util::MISSING;
 use serde::Serialize;
 use std::fmt::{self, Write as _};
 
@@ -166,14 +168,6 @@ fn pct(x: f64) -> String {
     format!("{:.2}%", 100.0 * x)
 }
 
-fn db(x: Option<f64>) -> String {
-    match x {
-        None => "-".into(),
-        Some(v) if v.is_infinite() => "exact".into(),
-        Some(v) => format!("{v:.1}"),
-    }
-}
-
 impl fmt::Display for Report {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         writeln!(
@@ -215,8 +209,8 @@ impl fmt::Display for Report {
         )?;
         for r in &self.layers {
             let range = format!("[{:.4}, {:.4}]", r.range.min, r.range.max);
-            let scale = r.scale.map_or("-".into(), |s| format!("{s:.3e}"));
-            let zp = r.zero_point.map_or("-".into(), |z| z.to_string());
+            let scale = r.scale.map_or(MISSING.into(), |s| format!("{s:.3e}"));
+            let zp = r.zero_point.map_or(MISSING.into(), |z| z.to_string());
             writeln!(
                 t,
                 "{:>4}  {:<name_w$}  {:<15}  {:>23}  {:>10}  {:>5}  {:>8}  {:>9}",

@@ -250,7 +250,7 @@ pub fn markdown(r: &CheckReport) -> String {
                 "| {} | {} | {} | {} | {} |",
                 c.image,
                 c.name,
-                c.label.as_deref().unwrap_or("–"),
+                c.label.as_deref().unwrap_or(crate::util::MISSING),
                 c.float_class,
                 c.int8_class
             );

@@ -12,43 +12,107 @@
 //! [`run_check`]: super::pipeline::run_check
 
 use super::pipeline::{CheckData, StepInfo};
-use crate::calibrate::{self, CalibOptions, ImageSet, Ranges};
-use crate::codegen::{self, GenOptions, Generated, Schedule, TargetInfo};
+use crate::agree::AgreeError;
+use crate::calibrate::{self, ImageError, ImageSet};
+use crate::codegen::{self, calls::CallError, CodegenError, Generated, Schedule};
+use crate::driver::{self, PipelineError, RangesSource};
 use crate::graph::Graph;
-use crate::lower::{self, quant, LowerOptions, QGraph, SimInput, Simulator};
-use crate::plan::{self, Plan, PlanOptions, Target};
-use crate::reference::Reference;
+use crate::lower::{self, quant, LowerError, LowerOptions, QGraph, SimError, SimInput, Simulator};
+use crate::plan::{self, Plan, PlanError, TargetError};
+use crate::ranges::RangesError;
+use crate::reference::{Reference, ReferenceError};
 use std::path::{Path, PathBuf};
 
-/// Where the quantization ranges come from.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub enum RangesFrom {
-    /// A saved `ingot.ranges.v1` file.
-    File(PathBuf),
-    /// Calibrate on the images of this folder.
-    Images(PathBuf),
-    /// Calibrate on the checked images themselves (optimistic: said so in
-    /// the report).
-    CheckImages,
+/// A failure while preparing a check; the message starts with the option
+/// or stage it concerns.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum PrepareError {
+    /// The graph did not load.
+    #[error("loading the graph: {0}")]
+    Load(Box<crate::LoadError>),
+    /// The target profile is unusable.
+    #[error("--target: {0}")]
+    Target(TargetError),
+    /// The checked images are unusable.
+    #[error("--images: {0}")]
+    Images(ImageError),
+    /// The checked images' folder holds none.
+    #[error("--images: no images in {}", .0.display())]
+    NoImages(PathBuf),
+    /// The ranges file is unusable.
+    #[error("--ranges: {0}")]
+    Ranges(RangesError),
+    /// The calibration images are unusable.
+    #[error("--calib-images: {0}")]
+    CalibImages(ImageError),
+    /// Calibration failed.
+    #[error("calibration: {0}")]
+    Calibration(AgreeError),
+    /// The graph's files could not be hashed.
+    #[error("hashing the graph: {0}")]
+    Hash(std::io::Error),
+    /// Lowering failed.
+    #[error("lowering: {0}")]
+    Lower(LowerError),
+    /// Memory planning failed.
+    #[error("planning: {0}")]
+    Plan(PlanError),
+    /// The module could not be generated, even with the naive schedule.
+    #[error("generating the module: {0}")]
+    Generate(CodegenError),
+    /// The schedule cannot be turned into kernel calls.
+    #[error("schedule: {0}")]
+    Schedule(CallError),
+    /// The float reference failed on an image.
+    #[error("float reference: {0}")]
+    Reference(ReferenceError),
+    /// The float reference gave no output map.
+    #[error("float reference: no output map")]
+    NoFloatOutput,
+    /// The integer simulator failed on an image.
+    #[error("integer simulator: {0}")]
+    Simulator(SimError),
+    /// Another step of the driver failed.
+    #[error(transparent)]
+    Driver(Box<PipelineError>),
+    /// Writing the module failed.
+    #[error("{}: {source}", .path.display())]
+    Write {
+        /// The folder or file.
+        path: PathBuf,
+        /// The error.
+        source: std::io::Error,
+    },
+    /// The written module was not found again.
+    #[error("module: {0}")]
+    Module(super::CheckError),
 }
 
-/// A failure while preparing a check (message names the stage).
-#[derive(Debug, thiserror::Error)]
-#[error("{0}")]
-pub struct PrepareError(pub String);
-
-fn err(stage: &str) -> impl Fn(&dyn std::fmt::Display) -> PrepareError + '_ {
-    move |e| PrepareError(format!("{stage}: {e}"))
+impl PrepareError {
+    /// The driver's error, named by the option or stage of a check
+    /// (`images`: the ranges came from `--calib-images`).
+    fn from_driver(e: PipelineError) -> Self {
+        match e {
+            PipelineError::Load(e) => PrepareError::Load(e),
+            PipelineError::Target(e) => PrepareError::Target(e),
+            PipelineError::Ranges(e) => PrepareError::Ranges(e),
+            PipelineError::Images(e) => PrepareError::CalibImages(e),
+            PipelineError::Calibrate(e) => PrepareError::Calibration(e),
+            PipelineError::Io { source, .. } => PrepareError::Hash(source),
+            PipelineError::Lower(e) => PrepareError::Lower(e),
+            PipelineError::Plan(e) => PrepareError::Plan(e),
+            e => PrepareError::Driver(Box::new(e)),
+        }
+    }
 }
 
 /// What to prepare.
 #[derive(Debug, Clone)]
+#[non_exhaustive]
 pub struct PrepareOptions {
-    /// Ranges source.
-    pub ranges: RangesFrom,
-    /// Range method when calibrating (`--calib-images` or the checked
-    /// images).
-    pub method: calibrate::Method,
+    /// Ranges source (default: min/max calibration on the checked images).
+    pub ranges: RangesSource,
     /// Weight scales per output channel (default) or per tensor.
     pub per_channel: bool,
     /// Target profile for the budget.
@@ -66,8 +130,7 @@ pub struct PrepareOptions {
 impl Default for PrepareOptions {
     fn default() -> Self {
         PrepareOptions {
-            ranges: RangesFrom::CheckImages,
-            method: calibrate::Method::MinMax,
+            ranges: RangesSource::CheckImages(calibrate::Method::MinMax),
             per_channel: true,
             target: None,
             module: String::new(),
@@ -111,63 +174,49 @@ pub fn prepare(
     images: &Path,
     opts: &PrepareOptions,
 ) -> Result<Prepared, PrepareError> {
-    let g = crate::load(graph_path).map_err(|e| err("loading the graph")(&e))?;
+    let g = crate::load(graph_path).map_err(|e| PrepareError::Load(Box::new(e)))?;
     let target = opts
         .target
-        .as_ref()
-        .map(Target::load)
+        .as_deref()
+        .map(driver::load_target)
         .transpose()
-        .map_err(|e| err("--target")(&e))?;
-    let camera = crate::driver::camera_for(opts.camera.as_ref(), target.as_ref());
-    let set =
-        ImageSet::open_camera(images, &g, camera.as_ref()).map_err(|e| err("--images")(&e))?;
+        .map_err(PrepareError::from_driver)?;
+    let camera = driver::camera_for(opts.camera.as_ref(), target.as_ref());
+    let set = ImageSet::open_camera(images, &g, camera.as_ref()).map_err(PrepareError::Images)?;
     if set.is_empty() {
-        return Err(PrepareError(format!(
-            "--images: no images in {}",
-            images.display()
-        )));
+        return Err(PrepareError::NoImages(images.to_path_buf()));
     }
-    let (ranges, ranges_note) = ranges_for(&g, &set, &opts.ranges, opts.method, camera.as_ref())?;
-    let q = lower::lower(
+    let sourced = driver::ranges_for(&g, &opts.ranges, Some(&set), camera.as_ref())
+        .map_err(PrepareError::from_driver)?;
+    let weight_form = driver::weight_form_for(opts.weight_form, target.as_ref());
+    let (q, p) = driver::lower_and_plan(
         &g,
-        &ranges,
+        &sourced.ranges,
         &LowerOptions {
             per_channel: opts.per_channel,
         },
-    )
-    .map_err(|e| err("lowering")(&e))?;
-    let weight_form = crate::driver::weight_form_for(opts.weight_form, target.as_ref());
-    let p = plan::plan(
-        &q,
-        &PlanOptions {
-            weight_form,
-            ..PlanOptions::default()
-        },
-    )
-    .map_err(|e| err("planning")(&e))?;
-    let budget = target.as_ref().map(|t| plan::target::budget(&q, &p, t));
-    let gen_opts = GenOptions {
-        module: if opts.module.is_empty() {
-            module_name(g.name())
-        } else {
-            opts.module.clone()
-        },
-        target: target.as_ref().map(|t| TargetInfo {
-            name: t.name.clone(),
-            ram_bytes: None,
-            flash_bytes: None,
-        }),
         weight_form,
-        camera: camera.clone(),
-        ..GenOptions::default()
+    )
+    .map_err(PrepareError::from_driver)?;
+    let budget = target.as_ref().map(|t| driver::budget_of(&q, &p, t, None));
+    let module = if opts.module.is_empty() {
+        module_name(g.name())
+    } else {
+        opts.module.clone()
     };
-    let planned = crate::driver::schedule_of(&q, &p);
+    let gen_opts = driver::gen_options(
+        &module,
+        target.as_ref(),
+        weight_form,
+        camera.clone(),
+        String::new(),
+    );
+    let planned = driver::schedule_of(&q, &p);
     let (schedule, schedule_kind, generated) = match codegen::generate(&q, &planned, &gen_opts) {
         Ok(gen) => (planned, "planned".to_string(), gen),
         Err(e) => {
             let naive = Schedule::naive(&q);
-            let gen = codegen::generate(&q, &naive, &gen_opts)
-                .map_err(|e| err("generating the module")(&e))?;
+            let gen = codegen::generate(&q, &naive, &gen_opts).map_err(PrepareError::Generate)?;
             (
                 naive,
                 format!("naive (the planned schedule failed: {e})"),
@@ -205,58 +254,10 @@ pub fn prepare(
         schedule_kind,
         generated,
         budget,
-        ranges_note,
+        ranges_note: sourced.note,
         image_names: set.entries().iter().map(|e| e.name.clone()).collect(),
         camera: camera_figures,
     })
-}
-
-fn ranges_for(
-    g: &Graph,
-    set: &ImageSet,
-    from: &RangesFrom,
-    method: calibrate::Method,
-    camera: Option<&crate::camera::Camera>,
-) -> Result<(Ranges, String), PrepareError> {
-    let opts = CalibOptions {
-        method,
-        ..CalibOptions::default()
-    };
-    let calibrate_on = |s: &ImageSet| {
-        crate::agree::run(g, s, &opts)
-            .map(|c| c.ranges)
-            .map_err(|e| err("calibration")(&e))
-    };
-    match from {
-        RangesFrom::File(p) => {
-            let hash =
-                calibrate::ranges::graph_hash(g).map_err(|e| err("hashing the graph")(&e))?;
-            let r = Ranges::load(g, p, Some(&hash)).map_err(|e| err("--ranges")(&e))?;
-            Ok((r, format!("ranges read from {}", p.display())))
-        }
-        RangesFrom::Images(dir) => {
-            let cal =
-                ImageSet::open_camera(dir, g, camera).map_err(|e| err("--calib-images")(&e))?;
-            let r = calibrate_on(&cal)?;
-            let note = format!(
-                "calibrated ({}) on {} images of {}",
-                r.method,
-                cal.len(),
-                dir.display()
-            );
-            Ok((r, note))
-        }
-        RangesFrom::CheckImages => {
-            let r = calibrate_on(set)?;
-            let note = format!(
-                "calibrated ({}) on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
-                r.method,
-                set.len(),
-                set.root().display()
-            );
-            Ok((r, note))
-        }
-    }
 }
 
 /// A module name from a graph name: lower case, other characters as `_`,
@@ -307,7 +308,7 @@ fn compare_data(
     s: &Schedule,
     generated: &Generated,
 ) -> Result<CheckData, PrepareError> {
-    let calls = codegen::calls::step_calls(q, s).map_err(|e| err("schedule")(&e))?;
+    let calls = codegen::calls::step_calls(q, s).map_err(PrepareError::Schedule)?;
     // Trace numbering: the module's executed steps, in order.
     let traced: Vec<lower::StepId> = calls.iter().map(|c| c.step).collect();
     let steps: Vec<StepInfo> = {
@@ -339,7 +340,7 @@ fn compare_data(
     let mut all_labelled = true;
     let mut sums = vec![(0f64, 0f64, false); traced.len()];
     for i in 0..set.len() {
-        let sample = set.load(i).map_err(|e| err("--images")(&e))?;
+        let sample = set.load(i).map_err(PrepareError::Images)?;
         let codes = input_codes(q, &sample);
         let mut float_maps: Vec<Option<Vec<f32>>> = vec![None; g.map_count()];
         reference
@@ -348,10 +349,10 @@ fn compare_data(
                     float_maps[m.index()] = Some(v.to_vec());
                 }
             })
-            .map_err(|e| err("float reference")(&e))?;
+            .map_err(PrepareError::Reference)?;
         let out = sim
             .run(SimInput::Codes(&codes))
-            .map_err(|e| err("integer simulator")(&e))?;
+            .map_err(PrepareError::Simulator)?;
         for (k, &st) in traced.iter().enumerate() {
             let om = q.step(st).output;
             trace.push(super::io::TraceMap {
@@ -374,7 +375,7 @@ fn compare_data(
         float_outs.push(
             float_maps[float_out_map.index()]
                 .take()
-                .ok_or_else(|| PrepareError("float reference: no output map".into()))?,
+                .ok_or(PrepareError::NoFloatOutput)?,
         );
         match sample.label {
             Some(l) => labels.push(l),
@@ -402,9 +403,15 @@ pub fn write_module(
     module: &str,
     generated: &Generated,
 ) -> Result<super::ModuleFiles, PrepareError> {
-    std::fs::create_dir_all(dir).map_err(|e| err(&dir.display().to_string())(&e))?;
+    std::fs::create_dir_all(dir).map_err(|source| PrepareError::Write {
+        path: dir.to_path_buf(),
+        source,
+    })?;
     for (name, bytes) in generated.files(module) {
-        std::fs::write(dir.join(&name), bytes).map_err(|e| err(&name)(&e))?;
+        std::fs::write(dir.join(&name), bytes).map_err(|source| PrepareError::Write {
+            path: PathBuf::from(name),
+            source,
+        })?;
     }
-    super::ModuleFiles::find(dir, Some(module)).map_err(|e| err("module")(&e))
+    super::ModuleFiles::find(dir, Some(module)).map_err(PrepareError::Module)
 }

@@ -9,6 +9,8 @@ use super::icount::Calibration;
 use super::runner::unique_suffix;
 use super::size::SizeReport;
 use super::{CheckError, Result};
+use crate::measure::format_db as db;
+use crate::util::{group_digits as thousands, MISSING};
 use plotters::prelude::*;
 use serde::Serialize;
 use std::fmt::Write as _;
@@ -157,28 +159,6 @@ fn pct(x: f64) -> String {
     format!("{:.2}%", x * 100.0)
 }
 
-fn db(x: Option<f64>) -> String {
-    match x {
-        Some(v) if v.is_infinite() && v > 0.0 => "exact".into(),
-        Some(v) if v.is_finite() => format!("{v:.1}"),
-        Some(_) => "-inf".into(),
-        None => "–".into(),
-    }
-}
-
-/// Thousands separators for counts.
-fn thousands(n: u64) -> String {
-    let s = n.to_string();
-    let mut out = String::new();
-    for (i, c) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i) % 3 == 0 {
-            out.push(' ');
-        }
-        out.push(c);
-    }
-    out
-}
-
 /// Renders the markdown report.
 pub fn markdown(r: &CheckReport) -> String {
     let mut s = String::new();
@@ -280,7 +260,7 @@ pub fn markdown(r: &CheckReport) -> String {
         for l in &r.layers {
             let per_mac = match (l.instructions, l.macs) {
                 (Some(i), m) if m > 0 => format!("{:.2}", i as f64 / m as f64),
-                _ => "–".into(),
+                _ => MISSING.into(),
             };
             let _ = writeln!(
                 s,
@@ -290,7 +270,9 @@ pub fn markdown(r: &CheckReport) -> String {
                 l.kind,
                 thousands(l.macs),
                 db(l.sqnr_db),
-                l.instructions.map(thousands).unwrap_or_else(|| "–".into()),
+                l.instructions
+                    .map(thousands)
+                    .unwrap_or_else(|| MISSING.into()),
                 per_mac
             );
         }
@@ -331,7 +313,7 @@ pub fn markdown(r: &CheckReport) -> String {
                     k.steps,
                     thousands(k.macs),
                     thousands(k.instructions),
-                    k.per_mac.map_or("–".into(), |p| format!("{p:.2}")),
+                    k.per_mac.map_or(MISSING.into(), |p| format!("{p:.2}")),
                     100.0 * k.share
                 );
             }
@@ -348,7 +330,7 @@ pub fn markdown(r: &CheckReport) -> String {
     if let Some(z) = &r.sizes {
         let _ = writeln!(s, "## Sizes (firmware ELF)\n");
         let _ = writeln!(s, "| figure | bytes | budget |\n|---|---|---|");
-        let b = |v: Option<u64>| v.map(thousands).unwrap_or_else(|| "–".into());
+        let b = |v: Option<u64>| v.map(thousands).unwrap_or_else(|| MISSING.into());
         let _ = writeln!(
             s,
             "| flash (vectors + .text + .rodata + .data image) | {} | {} |",
@@ -700,7 +682,7 @@ mod tests {
         assert!(md.contains("accuracy drop: 25.00 pp"));
         assert!(md.contains("| 100.00% | 75.00% | 25.00 pp |"), "{md}");
         assert!(
-            md.contains("| 0 | conv1 | conv2d | 2 304 | 31.5 | 118 720 | 51.53 |"),
+            md.contains("| 0 | conv1 | conv2d | 2,304 | 31.5 | 118,720 | 51.53 |"),
             "{md}"
         );
         assert!(

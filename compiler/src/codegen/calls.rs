@@ -14,7 +14,7 @@
 use crate::lower::{
     ChannelTransform, Clamp, Multiplier, QConv, QGraph, QKernel, QLinear, QPool, StepId,
 };
-pub use crate::plan::form::{pairs_apply, weight_rows};
+pub use crate::plan::form::{uses_pairs, weight_rows};
 use crate::plan::Schedule;
 use ingot_rt::{
     AddParams, ConvParams, InputTransform, MapRef, OutputQuant, PoolQuant, Requant, Window,
@@ -109,8 +109,71 @@ pub fn rt_transform(t: &ChannelTransform) -> InputTransform<'_> {
     t.runtime()
 }
 
-/// Why a step cannot be turned into calls.
-pub type CallError = String;
+/// Why a schedule cannot be turned into kernel calls; names the step or
+/// map.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum CallError {
+    /// A step has fewer inputs than its kernel reads.
+    #[error("step `{step}` lacks input {input}")]
+    MissingInput {
+        /// Step name.
+        step: String,
+        /// Index of the missing input.
+        input: usize,
+    },
+    /// A convolution's input zero point is not an `i8`.
+    #[error("step `{0}`: input zero point out of range")]
+    ZeroPoint(String),
+    /// The schedule has a view count other than the graph's map count.
+    #[error("schedule has {views} map views for {maps} maps")]
+    ViewCount {
+        /// Views in the schedule.
+        views: usize,
+        /// Maps in the graph.
+        maps: usize,
+    },
+    /// A map's view leaves the arena.
+    #[error("map `{map}` does not fit the {arena}-byte arena at offset {offset} stride {stride}")]
+    OutsideArena {
+        /// Map name.
+        map: String,
+        /// Arena bytes.
+        arena: usize,
+        /// The view's offset.
+        offset: usize,
+        /// The view's stride.
+        stride: usize,
+    },
+    /// A step index is repeated or out of range in the order.
+    #[error("schedule order lists step {0} twice or out of range")]
+    BadStep(u32),
+    /// A step reads a map before any step wrote it.
+    #[error("step `{step}` runs before `{map}` is written")]
+    ReadBeforeWrite {
+        /// Step name.
+        step: String,
+        /// Map name.
+        map: String,
+    },
+    /// A step is missing from the order.
+    #[error("schedule order misses a step")]
+    MissingStep,
+    /// The patch buffer is too small.
+    #[error("patch of {have} bytes is smaller than the {need} the convolutions need")]
+    Patch {
+        /// Patch bytes in the schedule.
+        have: usize,
+        /// Bytes the convolutions need.
+        need: usize,
+    },
+    /// A layer's weight count does not match its shape.
+    #[error("step `{0}`: weight count does not match its shape")]
+    WeightCount(String),
+    /// An accumulator could overflow `i32`.
+    #[error("step `{0}`: an output channel's accumulator can exceed i32")]
+    Accumulator(String),
+}
 
 /// Switches every convolution that can take it to the paired layout when
 /// `form` is [`WeightForm::Pairs`](super::WeightForm::Pairs) (calls from
@@ -119,7 +182,7 @@ pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
     for sc in steps {
         for c in &mut sc.calls {
             if let Call::Conv { conv, paired, .. } = c {
-                *paired = form == super::WeightForm::Pairs && pairs_apply(conv);
+                *paired = form == super::WeightForm::Pairs && uses_pairs(conv);
             }
         }
     }
@@ -148,7 +211,10 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
             st.inputs
                 .get(i)
                 .map(|&m| map_ref(q, s, m))
-                .ok_or_else(|| format!("step `{}` lacks input {i}", st.name))
+                .ok_or_else(|| CallError::MissingInput {
+                    step: st.name.clone(),
+                    input: i,
+                })
         };
         let in_zp = |i: usize| {
             st.inputs
@@ -163,8 +229,8 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
         };
         let calls = match &st.kernel {
             QKernel::Conv2d(c) => {
-                let input_zp = i8::try_from(c.input_zp)
-                    .map_err(|_| format!("step `{}`: input zero point out of range", st.name))?;
+                let input_zp =
+                    i8::try_from(c.input_zp).map_err(|_| CallError::ZeroPoint(st.name.clone()))?;
                 let window = c.runtime_window();
                 let params = ConvParams {
                     window,
@@ -365,21 +431,22 @@ pub fn execute(
 /// Checks the schedule against the graph before anything runs: one view per
 /// map that fits the arena, every step exactly once, inputs produced before
 /// they are read, the patch large enough, and every accumulator bounded.
-pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), String> {
+pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), CallError> {
     if s.views.len() != q.maps.len() {
-        return Err(format!(
-            "schedule has {} map views for {} maps",
-            s.views.len(),
-            q.maps.len()
-        ));
+        return Err(CallError::ViewCount {
+            views: s.views.len(),
+            maps: q.maps.len(),
+        });
     }
     for (i, m) in q.maps.iter().enumerate() {
         let r = map_ref(q, s, crate::lower::QMapId(i as u32));
         if !r.fits(s.arena_bytes) {
-            return Err(format!(
-                "map `{}` does not fit the {}-byte arena at offset {} stride {}",
-                m.name, s.arena_bytes, r.offset, r.stride
-            ));
+            return Err(CallError::OutsideArena {
+                map: m.name.clone(),
+                arena: s.arena_bytes,
+                offset: r.offset,
+                stride: r.stride,
+            });
         }
     }
     let mut seen = vec![false; q.steps.len()];
@@ -387,30 +454,25 @@ pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), String> {
     written[q.input.index()] = true;
     for &id in &s.order {
         if id.index() >= q.steps.len() || std::mem::replace(&mut seen[id.index()], true) {
-            return Err(format!(
-                "schedule order lists step {} twice or out of range",
-                id.0
-            ));
+            return Err(CallError::BadStep(id.0));
         }
         let st = q.step(id);
         if let Some(m) = st.inputs.iter().find(|m| !written[m.index()]) {
-            return Err(format!(
-                "step `{}` runs before `{}` is written",
-                st.name,
-                q.map(*m).name
-            ));
+            return Err(CallError::ReadBeforeWrite {
+                step: st.name.clone(),
+                map: q.map(*m).name.clone(),
+            });
         }
         written[st.output.index()] = true;
     }
     if seen.iter().any(|s| !s) {
-        return Err("schedule order misses a step".into());
+        return Err(CallError::MissingStep);
     }
     if s.patch_bytes < super::schedule::min_patch_bytes(q) {
-        return Err(format!(
-            "patch of {} bytes is smaller than the {} the convolutions need",
-            s.patch_bytes,
-            super::schedule::min_patch_bytes(q)
-        ));
+        return Err(CallError::Patch {
+            have: s.patch_bytes,
+            need: super::schedule::min_patch_bytes(q),
+        });
     }
     for st in &q.steps {
         let (w, b, per) = match &st.kernel {
@@ -423,17 +485,11 @@ pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), String> {
             _ => continue,
         };
         if per == 0 || w.len() != per * b.len() {
-            return Err(format!(
-                "step `{}`: weight count does not match its shape",
-                st.name
-            ));
+            return Err(CallError::WeightCount(st.name.clone()));
         }
         for (row, &bias) in w.chunks_exact(per).zip(b) {
             if !ingot_rt::acc_fits(row, bias) {
-                return Err(format!(
-                    "step `{}`: an output channel's accumulator can exceed i32",
-                    st.name
-                ));
+                return Err(CallError::Accumulator(st.name.clone()));
             }
         }
     }

@@ -26,11 +26,11 @@
 //! pub fn dequantize(output: &[i8; OUTPUT_LEN], out: &mut [f32; OUTPUT_LEN]);
 //! ```
 
-pub mod blob;
-pub mod calls;
+pub(crate) mod blob;
+pub(crate) mod calls;
 pub mod camera;
-pub mod emit;
-pub mod names;
+pub(crate) mod emit;
+pub(crate) mod names;
 pub mod output;
 pub mod report;
 
@@ -54,15 +54,21 @@ pub enum WeightsMode {
     Literal,
 }
 
-/// The memory budget of a target, as far as the generator checks it.
+/// The target as the generator names it in docs and reports. Whether the
+/// module fits is not the generator's call: the driver judges it with the
+/// planner's budget ([`crate::plan::target::budget_for`]).
 #[derive(Debug, Clone, PartialEq, Eq, Default)]
+#[non_exhaustive]
 pub struct TargetInfo {
     /// Name for docs and reports.
     pub name: String,
-    /// RAM available for the scratch buffers, if limited.
-    pub ram_bytes: Option<usize>,
-    /// Flash available for the weights, if limited.
-    pub flash_bytes: Option<usize>,
+}
+
+impl TargetInfo {
+    /// The target called `name`.
+    pub fn named(name: &str) -> Self {
+        TargetInfo { name: name.into() }
+    }
 }
 
 /// Generator options.
@@ -70,7 +76,7 @@ pub struct TargetInfo {
 pub struct GenOptions {
     /// Module name: files are `NAME.rs` and `NAME.weights.bin`.
     pub module: String,
-    /// Target, for docs and the budget check.
+    /// Target, for docs and reports.
     pub target: Option<TargetInfo>,
     /// Weights embedding.
     pub weights: WeightsMode,
@@ -138,10 +144,10 @@ impl Generated {
 pub enum CodegenError {
     /// The lowered graph is inconsistent.
     #[error("lowered graph `{0}` is inconsistent: {1}")]
-    Graph(String, String),
+    Graph(String, crate::lower::ir::QGraphError),
     /// The schedule does not fit the graph.
     #[error("schedule is invalid: {0}")]
-    Schedule(String),
+    Schedule(#[from] calls::CallError),
     /// A kernel refused its parameters during the dry run.
     #[error("step `{step}` ({kind}): ingot-rt refused the call: {error:?}")]
     Kernel {
@@ -155,25 +161,38 @@ pub enum CodegenError {
     /// The module name is not a plain file stem.
     #[error("module name `{0}` must be a non-empty identifier ([A-Za-z_][A-Za-z0-9_]*)")]
     ModuleName(String),
-    /// The model does not fit the target.
-    #[error("model does not fit target `{target}`: {what} needs {need} bytes, {have} available")]
-    Budget {
-        /// Target name.
-        target: String,
-        /// `RAM (scratch)` or `flash (weights)`.
-        what: &'static str,
-        /// Needed bytes.
-        need: usize,
-        /// Available bytes.
-        have: usize,
-    },
     /// The camera does not fit the network's input or the kernel's limits.
     #[error(transparent)]
     Camera(#[from] crate::camera::CameraError),
 }
 
-// The hash of `MODEL_HASH`, under its former path.
-pub use crate::util::{fnv1a, FNV_BASIS};
+pub(crate) use crate::util::{fnv1a, FNV_BASIS};
+pub use calls::CallError;
+pub use names::stem as module_stem;
+
+fn kernel_error(q: &QGraph, e: calls::ExecError) -> CodegenError {
+    let st = q.step(e.step);
+    CodegenError::Kernel {
+        step: st.name.clone(),
+        kind: st.kernel.kind(),
+        error: e.error,
+    }
+}
+
+/// Runs `q` on one int8 input (HWC) the way a module generated with
+/// schedule `s` and int8 weights does: the same kernel calls in the same
+/// order, in one arena. `trace` sees every step's output map (HWC) after
+/// it runs, in the schedule's order. The compiler's interpretation of a
+/// module, for tests that compare it with the module or the simulator.
+pub fn interpret(
+    q: &QGraph,
+    s: &Schedule,
+    input: &[i8],
+    trace: &mut dyn FnMut(crate::lower::StepId, &[i8]),
+) -> Result<Vec<i8>, CodegenError> {
+    let steps = calls::step_calls(q, s)?;
+    calls::execute(q, s, &steps, input, trace).map_err(|e| kernel_error(q, e))
+}
 
 /// True for `[A-Za-z_][A-Za-z0-9_]*`.
 pub fn is_module_name(s: &str) -> bool {
@@ -205,38 +224,13 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
     };
     q.verify()
         .map_err(|e| CodegenError::Graph(q.name.clone(), e))?;
-    calls::check_schedule(q, s).map_err(CodegenError::Schedule)?;
-    if let Some(t) = &opt.target {
-        let flash = blob::build(q).bytes.len() + pair_growth(q, opt.weight_form);
-        for (what, need, have) in [
-            ("RAM (scratch)", s.arena_bytes + s.patch_bytes, t.ram_bytes),
-            ("flash (weights)", flash, t.flash_bytes),
-        ] {
-            if let Some(have) = have {
-                if need > have {
-                    return Err(CodegenError::Budget {
-                        target: t.name.clone(),
-                        what,
-                        need,
-                        have,
-                    });
-                }
-            }
-        }
-    }
-    let mut steps = calls::step_calls(q, s).map_err(CodegenError::Schedule)?;
+    calls::check_schedule(q, s)?;
+    let mut steps = calls::step_calls(q, s)?;
     calls::set_weight_form(&mut steps, opt.weight_form);
     if opt.dry_run {
         let zp = q.map(q.input).qp.zero_point as i8;
         let input = vec![zp; q.map(q.input).shape.len()];
-        calls::execute(q, s, &steps, &input, &mut |_, _| {}).map_err(|e| {
-            let st = q.step(e.step);
-            CodegenError::Kernel {
-                step: st.name.clone(),
-                kind: st.kernel.kind(),
-                error: e.error,
-            }
-        })?;
+        calls::execute(q, s, &steps, &input, &mut |_, _| {}).map_err(|e| kernel_error(q, e))?;
     }
     let blob = blob::build(q);
     let mut namer = names::Namer::default();

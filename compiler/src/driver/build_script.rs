@@ -153,14 +153,12 @@ impl Builder {
             .ranges
             .clone()
             .ok_or_else(|| BuildError::NoRanges(self.graph.clone()))?;
-        Ok(BuildInputs {
-            graph: self.graph.clone(),
-            ranges,
-            target: self.target.clone(),
-            module: self.module.clone(),
-            weight_form: self.weight_form,
-            camera: self.camera.clone(),
-        })
+        let mut req = BuildInputs::new(self.graph.clone(), ranges);
+        req.target = self.target.clone();
+        req.module = self.module.clone();
+        req.weight_form = self.weight_form;
+        req.camera = self.camera.clone();
+        Ok(req)
     }
 
     /// The files this generation reads (graph, weights, ranges or image
@@ -189,22 +187,13 @@ impl Builder {
                 .ok_or(BuildError::NoOutDir)?,
         };
         let g = match &self.lowered {
-            Some(q) => {
-                let target = self
-                    .target
-                    .as_deref()
-                    .map(pipeline::load_target)
-                    .transpose()?;
-                let opt = crate::codegen::GenOptions {
-                    module: self.module.clone(),
-                    target: target.as_ref().map(pipeline::target_info),
-                    weight_form: pipeline::weight_form_for(self.weight_form, target.as_ref()),
-                    camera: pipeline::camera_for(self.camera.as_ref(), target.as_ref()),
-                    ..crate::codegen::GenOptions::default()
-                };
-                crate::codegen::generate(q, &crate::codegen::Schedule::naive(q), &opt)
-                    .map_err(PipelineError::from)?
-            }
+            Some(q) => pipeline::compile_lowered(
+                q,
+                self.target.as_deref(),
+                &self.module,
+                self.weight_form,
+                self.camera.as_ref(),
+            )?,
             None => pipeline::compile(&self.request()?)?.generated,
         };
         output::write_all(&out, &g.files(&self.module), true)?;

@@ -12,25 +12,49 @@
 pub mod build_script;
 
 use crate::agree::AgreeError;
-use crate::calibrate::{CalibOptions, ImageError, ImageSet, Ranges, RangesError};
+use crate::calibrate::{CalibOptions, ImageError, ImageSet};
 use crate::codegen::{self, CodegenError, GenOptions, Generated, Schedule, TargetInfo, WeightForm};
 use crate::lower::{LowerError, LowerOptions, QGraph};
 use crate::plan::{Budget, Plan, PlanError, PlanOptions, Target, TargetError};
+use crate::ranges::{MapRange, Ranges, RangesError};
 use crate::Graph;
 use std::path::{Path, PathBuf};
 
-/// Where the quantization ranges come from.
+/// Where the quantization ranges come from: the one description the CLI
+/// commands, the build script and the harness share.
 #[derive(Debug, Clone, PartialEq)]
+#[non_exhaustive]
 pub enum RangesSource {
     /// A saved `ingot.ranges.v1` file.
     File(PathBuf),
     /// Calibrate on the images in this folder with this range method
     /// (otherwise default [`CalibOptions`]).
     Images(PathBuf, crate::calibrate::Method),
+    /// Calibrate with this range method on the images the harness checks
+    /// (optimistic, and said so in the note); needs those images
+    /// ([`ranges_for`]'s `checked`).
+    CheckImages(crate::calibrate::Method),
+    /// The same range, `[-4, 4]`, for every map: enough for a memory plan,
+    /// which depends only on shapes (`ingot plan` without ranges).
+    Synthetic,
 }
 
-/// One compilation request.
+/// Ranges as [`ranges_for`] obtained them.
 #[derive(Debug, Clone)]
+pub struct SourcedRanges {
+    /// The ranges.
+    pub ranges: Ranges,
+    /// A hash of where they came from (the file's bytes, or the calibrated
+    /// ranges), mixed into `MODEL_HASH`.
+    pub hash: String,
+    /// Where they came from, in words, for reports.
+    pub note: String,
+}
+
+/// One compilation request ([`BuildInputs::new`], then set the fields that
+/// differ from the defaults).
+#[derive(Debug, Clone)]
+#[non_exhaustive]
 pub struct BuildInputs {
     /// The graph JSON.
     pub graph: PathBuf,
@@ -46,6 +70,21 @@ pub struct BuildInputs {
     pub weight_form: Option<WeightForm>,
     /// The camera; `None`: the target's `[camera]`, if any.
     pub camera: Option<crate::camera::Camera>,
+}
+
+impl BuildInputs {
+    /// A request for `graph` with `ranges`: no target, module `model`, the
+    /// weight form and camera left to the target.
+    pub fn new(graph: impl Into<PathBuf>, ranges: RangesSource) -> Self {
+        BuildInputs {
+            graph: graph.into(),
+            ranges,
+            target: None,
+            module: "model".into(),
+            weight_form: None,
+            camera: None,
+        }
+    }
 }
 
 /// The weight form of a request: the explicit choice, else the target
@@ -102,6 +141,7 @@ impl Compiled {
 
 /// Why a compilation failed. `Display` is one readable sentence.
 #[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
 pub enum PipelineError {
     /// The graph did not load.
     #[error(transparent)]
@@ -161,10 +201,7 @@ impl From<crate::LoadError> for PipelineError {
 impl PipelineError {
     /// True when the model is valid but does not fit the target's memory.
     pub fn is_budget(&self) -> bool {
-        matches!(
-            self,
-            PipelineError::Budget { .. } | PipelineError::Codegen(CodegenError::Budget { .. })
-        )
+        matches!(self, PipelineError::Budget { .. })
     }
 }
 
@@ -200,14 +237,18 @@ pub fn firmware_budget(b: &Budget) -> (u64, u64) {
     )
 }
 
-/// Generator view of a target: its name and the memory left after the
-/// reserves.
-pub fn target_info(t: &Target) -> TargetInfo {
-    TargetInfo {
-        name: t.name.clone(),
-        ram_bytes: Some(t.ram.bytes.saturating_sub(t.ram.reserve) as usize),
-        flash_bytes: Some(t.flash.bytes.saturating_sub(t.flash.reserve) as usize),
-    }
+/// The firmware limits `(flash, RAM)` of a check: each explicit limit, else
+/// the target's memory less its reserve ([`firmware_budget`]), else none.
+pub fn firmware_limits(
+    flash: Option<u64>,
+    ram: Option<u64>,
+    budget: Option<&Budget>,
+) -> (Option<u64>, Option<u64>) {
+    let from_target = budget.map(firmware_budget);
+    (
+        flash.or(from_target.map(|b| b.0)),
+        ram.or(from_target.map(|b| b.1)),
+    )
 }
 
 /// Reads a target description (`targets/*.toml`).
@@ -225,42 +266,165 @@ pub fn inputs(req: &BuildInputs) -> Vec<PathBuf> {
     }
     match &req.ranges {
         RangesSource::File(p) | RangesSource::Images(p, _) => v.push(p.clone()),
+        RangesSource::CheckImages(_) | RangesSource::Synthetic => {}
     }
     v.extend(req.target.clone());
     v
 }
 
-/// Ranges for `graph` from `src`, and a hash of where they came from.
-pub fn ranges_for(graph: &Graph, src: &RangesSource) -> Result<(Ranges, String), PipelineError> {
-    let hash = crate::calibrate::ranges::graph_hash(graph).map_err(|source| PipelineError::Io {
+fn graph_hash(graph: &Graph) -> Result<String, PipelineError> {
+    crate::ranges::graph_hash(graph).map_err(|source| PipelineError::Io {
         path: PathBuf::from(graph.name()),
         source,
-    })?;
+    })
+}
+
+/// Ranges for `graph` from `src`, with a hash of where they came from and a
+/// note in words. Images are read through `camera` when one is given;
+/// [`RangesSource::CheckImages`] calibrates on `checked` (an error without
+/// it).
+pub fn ranges_for(
+    graph: &Graph,
+    src: &RangesSource,
+    checked: Option<&ImageSet>,
+    camera: Option<&crate::camera::Camera>,
+) -> Result<SourcedRanges, PipelineError> {
+    let calibrate_on = |images: &ImageSet, method| -> Result<SourcedRanges, PipelineError> {
+        let opts = CalibOptions {
+            method,
+            ..CalibOptions::default()
+        };
+        let cal = crate::agree::run(graph, images, &opts)?;
+        let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
+        Ok(SourcedRanges {
+            hash: format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
+            note: format!(
+                "calibrated ({}) on {} images of {}",
+                cal.ranges.method,
+                images.len(),
+                images.root().display()
+            ),
+            ranges: cal.ranges,
+        })
+    };
     match src {
         RangesSource::File(p) => {
+            let hash = graph_hash(graph)?;
             let r = Ranges::load(graph, p, Some(&hash))?;
             let bytes = std::fs::read(p).map_err(|source| PipelineError::Io {
                 path: p.clone(),
                 source,
             })?;
-            Ok((
-                r,
-                format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
-            ))
+            Ok(SourcedRanges {
+                ranges: r,
+                hash: format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
+                note: format!("ranges read from {}", p.display()),
+            })
         }
         RangesSource::Images(dir, method) => {
-            let images = ImageSet::open(dir, graph)?;
-            let opts = CalibOptions {
-                method: *method,
-                ..CalibOptions::default()
-            };
-            let cal = crate::agree::run(graph, &images, &opts)?;
-            let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
-            Ok((
-                cal.ranges,
-                format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
-            ))
+            calibrate_on(&ImageSet::open_camera(dir, graph, camera)?, *method)
         }
+        RangesSource::CheckImages(method) => {
+            let images = checked.ok_or_else(|| {
+                PipelineError::Unavailable(
+                    "calibration on the checked images needs the images of a check".into(),
+                )
+            })?;
+            let mut r = calibrate_on(images, *method)?;
+            r.note = format!(
+                "calibrated ({}) on the checked images themselves ({} images of {}): no --ranges or --calib-images was given, so the figures are optimistic",
+                r.ranges.method,
+                images.len(),
+                images.root().display()
+            );
+            Ok(r)
+        }
+        RangesSource::Synthetic => Ok(SourcedRanges {
+            ranges: Ranges {
+                graph: graph.name().into(),
+                graph_hash: String::new(),
+                method: "synthetic".into(),
+                images: 0,
+                maps: vec![
+                    MapRange {
+                        min: -4.0,
+                        max: 4.0
+                    };
+                    graph.map_count()
+                ],
+            },
+            hash: String::new(),
+            note: "synthetic ranges ([-4, 4] for every map)".into(),
+        }),
+    }
+}
+
+/// Lowers `graph` with `ranges` and plans its memory for `weight_form`.
+pub fn lower_and_plan(
+    graph: &Graph,
+    ranges: &Ranges,
+    lower: &LowerOptions,
+    weight_form: WeightForm,
+) -> Result<(QGraph, Plan), PipelineError> {
+    let q = crate::lower::lower(graph, ranges, lower)?;
+    let plan = crate::plan::plan(
+        &q,
+        &PlanOptions {
+            weight_form,
+            ..PlanOptions::default()
+        },
+    )?;
+    Ok((q, plan))
+}
+
+/// The generator options of a request: `module`, the target's name (the
+/// budget is the driver's verdict, [`budget_of`], not the generator's),
+/// the weight form and camera.
+pub fn gen_options(
+    module: &str,
+    target: Option<&Target>,
+    weight_form: WeightForm,
+    camera: Option<crate::camera::Camera>,
+    source_hash: String,
+) -> GenOptions {
+    GenOptions {
+        module: module.into(),
+        target: target.map(|t| TargetInfo::named(&t.name)),
+        source_hash,
+        weight_form,
+        camera,
+        ..GenOptions::default()
+    }
+}
+
+/// The budget verdict of a module on `target`: the planner's
+/// ([`crate::plan::target::budget_for`]), with the generated weights file
+/// in place of the estimate of the constants when it is given.
+pub fn budget_of(
+    q: &QGraph,
+    plan: &Plan,
+    target: &Target,
+    generated: Option<&Generated>,
+) -> Budget {
+    crate::plan::target::budget_with_weights_file(
+        q,
+        plan,
+        target,
+        generated.map(|g| g.report.weights_flash_bytes as u64),
+    )
+}
+
+/// `Err(PipelineError::Budget)` when the verdict says the model does not
+/// fit.
+fn refuse_over(graph: &str, budget: Option<&Budget>) -> Result<(), PipelineError> {
+    match budget {
+        Some(b) if !b.fits => Err(PipelineError::Budget {
+            graph: graph.into(),
+            target: b.target.clone(),
+            over: b.over.clone(),
+            budget: Box::new(b.clone()),
+        }),
+        _ => Ok(()),
     }
 }
 
@@ -268,16 +432,7 @@ pub fn ranges_for(graph: &Graph, src: &RangesSource) -> Result<(Ranges, String),
 /// [`PipelineError::Budget`] when the model does not fit the target.
 pub fn compile(req: &BuildInputs) -> Result<Compiled, PipelineError> {
     let c = compile_unchecked(req)?;
-    if let Some(b) = &c.budget {
-        if !b.fits {
-            return Err(PipelineError::Budget {
-                graph: c.qgraph.name.clone(),
-                target: b.target.clone(),
-                over: b.over.clone(),
-                budget: Box::new(b.clone()),
-            });
-        }
-    }
+    refuse_over(&c.qgraph.name, c.budget.as_ref())?;
     Ok(c)
 }
 
@@ -286,48 +441,37 @@ pub fn compile(req: &BuildInputs) -> Result<Compiled, PipelineError> {
 pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
     let target = req.target.as_deref().map(load_target).transpose()?;
     let graph = crate::load(&req.graph)?;
-    let (ranges, ranges_hash) = ranges_for(&graph, &req.ranges)?;
-    let graph_hash =
-        crate::calibrate::ranges::graph_hash(&graph).map_err(|source| PipelineError::Io {
+    // Calibration reads plain pictures here, as it always has for builds.
+    let sourced = ranges_for(&graph, &req.ranges, None, None)?;
+    let graph_hash = graph_hash(&graph).map_err(|e| match e {
+        PipelineError::Io { source, .. } => PipelineError::Io {
             path: req.graph.clone(),
             source,
-        })?;
-    let q = crate::lower::lower(&graph, &ranges, &LowerOptions::default())?;
-    let weight_form = weight_form_for(req.weight_form, target.as_ref());
-    let plan = crate::plan::plan(
-        &q,
-        &PlanOptions {
-            weight_form,
-            ..PlanOptions::default()
         },
+        e => e,
+    })?;
+    let weight_form = weight_form_for(req.weight_form, target.as_ref());
+    let (q, plan) = lower_and_plan(
+        &graph,
+        &sourced.ranges,
+        &LowerOptions::default(),
+        weight_form,
     )?;
     let schedule = schedule_of(&q, &plan);
-    let opt = GenOptions {
-        module: req.module.clone(),
-        // The budget is checked below with the planner's figures; the
-        // generator only names the target.
-        target: target.as_ref().map(|t| TargetInfo {
-            name: t.name.clone(),
-            ram_bytes: None,
-            flash_bytes: None,
-        }),
-        source_hash: format!("{graph_hash}:{ranges_hash}"),
+    let opt = gen_options(
+        &req.module,
+        target.as_ref(),
         weight_form,
-        camera: camera_for(req.camera.as_ref(), target.as_ref()),
-        ..GenOptions::default()
-    };
+        camera_for(req.camera.as_ref(), target.as_ref()),
+        format!("{graph_hash}:{}", sourced.hash),
+    );
     let generated = codegen::generate(&q, &schedule, &opt)?;
-    let budget = target.as_ref().map(|t| {
-        crate::plan::target::budget_with_weights_file(
-            &q,
-            &plan,
-            t,
-            Some(generated.report.weights_flash_bytes as u64),
-        )
-    });
+    let budget = target
+        .as_ref()
+        .map(|t| budget_of(&q, &plan, t, Some(&generated)));
     Ok(Compiled {
         graph,
-        ranges,
+        ranges: sourced.ranges,
         qgraph: q,
         plan,
         schedule,
@@ -335,4 +479,39 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
         budget,
         generated,
     })
+}
+
+/// Generates an already lowered graph with the naive schedule (no graph
+/// file, ranges or planning), judged against `target` like [`compile`]:
+/// the build script's [`Builder::lowered`](build_script::Builder::lowered).
+pub fn compile_lowered(
+    q: &QGraph,
+    target: Option<&Path>,
+    module: &str,
+    weight_form: Option<WeightForm>,
+    camera: Option<&crate::camera::Camera>,
+) -> Result<Generated, PipelineError> {
+    let target = target.map(load_target).transpose()?;
+    let weight_form = weight_form_for(weight_form, target.as_ref());
+    let opt = gen_options(
+        module,
+        target.as_ref(),
+        weight_form,
+        camera_for(camera, target.as_ref()),
+        String::new(),
+    );
+    let generated = codegen::generate(q, &Schedule::naive(q), &opt)?;
+    let budget = target.as_ref().map(|t| {
+        let r = &generated.report;
+        crate::plan::target::budget_for(
+            q,
+            r.arena_bytes as u64,
+            r.patch_bytes as u64,
+            weight_form,
+            t,
+            Some(r.weights_flash_bytes as u64),
+        )
+    });
+    refuse_over(&q.name, budget.as_ref())?;
+    Ok(generated)
 }

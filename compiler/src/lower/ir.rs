@@ -267,6 +267,65 @@ pub struct QGraph {
     pub softmax_dropped: bool,
 }
 
+/// The first inconsistency [`QGraph::verify`] found, naming the step or
+/// map.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum QGraphError {
+    /// The input or output map id is out of range.
+    #[error("input or output map out of range")]
+    EndsOutOfRange,
+    /// The pixel table's length is not 256 per input channel.
+    #[error("pixel table is not 256 entries per input channel")]
+    PixelTable,
+    /// A step names a map id out of range.
+    #[error("step `{step}`: map {map} out of range")]
+    MapOutOfRange {
+        /// Step name.
+        step: String,
+        /// The map id.
+        map: u32,
+    },
+    /// A step reads a map no earlier step wrote.
+    #[error("step `{step}` reads `{map}` before it is written")]
+    ReadBeforeWrite {
+        /// Step name.
+        step: String,
+        /// Map name.
+        map: String,
+    },
+    /// Two steps write one map.
+    #[error("step `{step}` writes `{map}` a second time")]
+    WrittenTwice {
+        /// Step name.
+        step: String,
+        /// Map name.
+        map: String,
+    },
+    /// A map's zero point or scale is unusable.
+    #[error("map `{map}` has invalid quantization {qp:?}")]
+    Quantization {
+        /// Map name.
+        map: String,
+        /// Its parameters.
+        qp: QParams,
+    },
+    /// A layer's tensors do not match its shape.
+    #[error("step `{step}`: {kind} tensors do not match its shape")]
+    Tensors {
+        /// Step name.
+        step: String,
+        /// `convolution` or `linear`.
+        kind: &'static str,
+    },
+    /// A concatenation's inputs do not add up to its output.
+    #[error("step `{0}`: concat inputs must add up to the output and share its quantization")]
+    Concat(String),
+    /// No step writes the output map.
+    #[error("output map is never written")]
+    OutputNeverWritten,
+}
+
 impl QGraph {
     /// One map.
     pub fn map(&self, id: QMapId) -> &QMap {
@@ -292,37 +351,39 @@ impl QGraph {
         p
     }
 
-    /// Structural checks every pass may rely on; run between passes in debug
-    /// builds. Returns the first inconsistency found.
-    pub fn verify(&self) -> Result<(), String> {
+    /// Structural checks every pass may rely on; the planner and the
+    /// generator run them (in release builds too). Returns the first
+    /// inconsistency found.
+    pub fn verify(&self) -> Result<(), QGraphError> {
         let n = self.maps.len();
         let mut written = vec![false; n];
         if self.input.index() >= n || self.output.index() >= n {
-            return Err("input or output map out of range".into());
+            return Err(QGraphError::EndsOutOfRange);
         }
         written[self.input.index()] = true;
         if self.pixel_table.len() != 256 * self.map(self.input).shape.c {
-            return Err("pixel table is not 256 entries per input channel".into());
+            return Err(QGraphError::PixelTable);
         }
         for s in &self.steps {
             for m in s.inputs.iter().chain([&s.output]) {
                 if m.index() >= n {
-                    return Err(format!("step `{}`: map {} out of range", s.name, m.0));
+                    return Err(QGraphError::MapOutOfRange {
+                        step: s.name.clone(),
+                        map: m.0,
+                    });
                 }
             }
             if let Some(m) = s.inputs.iter().find(|m| !written[m.index()]) {
-                return Err(format!(
-                    "step `{}` reads `{}` before it is written",
-                    s.name,
-                    self.map(*m).name
-                ));
+                return Err(QGraphError::ReadBeforeWrite {
+                    step: s.name.clone(),
+                    map: self.map(*m).name.clone(),
+                });
             }
             if written[s.output.index()] {
-                return Err(format!(
-                    "step `{}` writes `{}` a second time",
-                    s.name,
-                    self.map(s.output).name
-                ));
+                return Err(QGraphError::WrittenTwice {
+                    step: s.name.clone(),
+                    map: self.map(s.output).name.clone(),
+                });
             }
             written[s.output.index()] = true;
             let out = self.map(s.output);
@@ -331,10 +392,10 @@ impl QGraph {
                     || m.qp.scale.is_nan()
                     || m.qp.scale <= 0.0
                 {
-                    return Err(format!(
-                        "map `{}` has invalid quantization {:?}",
-                        m.name, m.qp
-                    ));
+                    return Err(QGraphError::Quantization {
+                        map: m.name.clone(),
+                        qp: m.qp,
+                    });
                 }
             }
             match &s.kernel {
@@ -345,10 +406,10 @@ impl QGraph {
                         || c.requant.len() != c.out_channels
                         || out.shape.c != c.out_channels
                     {
-                        return Err(format!(
-                            "step `{}`: convolution tensors do not match its shape",
-                            s.name
-                        ));
+                        return Err(QGraphError::Tensors {
+                            step: s.name.clone(),
+                            kind: "convolution",
+                        });
                     }
                 }
                 QKernel::Linear(l)
@@ -357,22 +418,22 @@ impl QGraph {
                         || l.requant.len() != l.out_features
                         || out.shape.len() != l.out_features =>
                 {
-                    return Err(format!(
-                        "step `{}`: linear tensors do not match its shape",
-                        s.name
-                    ));
+                    return Err(QGraphError::Tensors {
+                        step: s.name.clone(),
+                        kind: "linear",
+                    });
                 }
                 QKernel::Concat => {
                     let c: usize = s.inputs.iter().map(|&m| self.map(m).shape.c).sum();
                     if c != out.shape.c || s.inputs.iter().any(|&m| self.map(m).qp != out.qp) {
-                        return Err(format!("step `{}`: concat inputs must add up to the output and share its quantization", s.name));
+                        return Err(QGraphError::Concat(s.name.clone()));
                     }
                 }
                 _ => {}
             }
         }
         if !written[self.output.index()] {
-            return Err("output map is never written".into());
+            return Err(QGraphError::OutputNeverWritten);
         }
         Ok(())
     }

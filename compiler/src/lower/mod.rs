@@ -24,8 +24,8 @@ pub mod quant;
 pub mod sim;
 
 pub use ir::{
-    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QKernel, QLinear, QMap, QMapId,
-    QParams, QPool, QStep, StepId,
+    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QGraphError, QKernel, QLinear, QMap,
+    QMapId, QParams, QPool, QStep, StepId,
 };
 pub use quant::Activation;
 pub use sim::{SimError, SimInput, Simulator};
@@ -207,7 +207,7 @@ fn act_of(op: &Op) -> Option<Activation> {
 }
 
 /// Pass 1: which layers fold into which steps.
-fn plan(g: &Graph) -> Result<Vec<Role>, LowerError> {
+fn fusion_roles(g: &Graph) -> Result<Vec<Role>, LowerError> {
     let n = g.layers().len();
     let mut role: Vec<Option<Role>> = vec![None; n];
     let mut pre: Vec<Option<PreAct>> = vec![None; n];
@@ -318,9 +318,9 @@ fn unsupported(g: &Graph, id: LayerId, message: impl Into<String>) -> LowerError
 
 /// Union-find over float map indices, path-halving, union by smaller index
 /// (deterministic roots).
-struct Classes(Vec<usize>);
+struct UnionFind(Vec<usize>);
 
-impl Classes {
+impl UnionFind {
     fn find(&mut self, mut x: usize) -> usize {
         while self.0[x] != x {
             self.0[x] = self.0[self.0[x]];
@@ -338,7 +338,7 @@ impl Classes {
 /// Lowers a float graph with calibrated ranges to the int8 [`QGraph`].
 pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, LowerError> {
     check_ranges(g, ranges)?;
-    let roles = plan(g)?;
+    let roles = fusion_roles(g)?;
     let nm = g.map_count();
 
     // Stored map holding each float map's value (aliases resolved).
@@ -361,7 +361,7 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
     };
 
     // Pass 2: concatenation groups and quantization of stored maps.
-    let mut classes = Classes((0..nm).collect());
+    let mut classes = UnionFind((0..nm).collect());
     for id in g.layer_ids() {
         if let (Op::Concat, Role::Step { out, .. }) = (&g.layer(id).op, &roles[id.index()]) {
             for &m in &g.layer(id).inputs {

@@ -15,10 +15,10 @@ use ingot_rt::Requant;
 /// at most `2^16·s_in·s_w`) and of its consumers (`2^-16·s_w/s_out`, rounded
 /// to an exact zero when below `2^-32`) inside the representable range for
 /// any realistic neighbouring scales.
-pub const DEGENERATE_SCALE: f32 = 1.0 / 65536.0;
+pub(crate) const DEGENERATE_SCALE: f32 = 1.0 / 65536.0;
 
 /// `round(x)` with ties toward +∞, the rounding of the `ingot-rt` kernels.
-pub fn round_half_up(x: f64) -> f64 {
+pub(crate) fn round_half_up(x: f64) -> f64 {
     (x + 0.5).floor()
 }
 
@@ -61,7 +61,7 @@ pub fn dequantize(q: i8, qp: QParams) -> f32 {
 /// `|m| < 2^-32` becomes the exact zero multiplier: every i32 accumulator
 /// times such an `m` is below 0.5 in magnitude, so the rounded product is 0
 /// either way.
-pub fn multiplier(m: f64) -> Option<Multiplier> {
+pub(crate) fn multiplier(m: f64) -> Option<Multiplier> {
     if m.is_finite() && m.abs() < 2f64.powi(-32) {
         return Some(Multiplier { mult: 0, shift: 0 });
     }
@@ -72,7 +72,7 @@ pub fn multiplier(m: f64) -> Option<Multiplier> {
 }
 
 /// The runtime form of a multiplier.
-pub fn to_requant(m: Multiplier) -> Requant {
+pub(crate) fn to_requant(m: Multiplier) -> Requant {
     Requant {
         mult: m.mult,
         shift: m.shift,
@@ -92,7 +92,7 @@ pub enum Activation {
 
 /// The output clamp implementing `act` on a map quantized with `qp`:
 /// none `[-128, 127]`, ReLU `[z, 127]`, ReLU6 `[z, min(127, z + round(6/s))]`.
-pub fn activation_clamp(act: Activation, qp: QParams) -> Clamp {
+pub(crate) fn activation_clamp(act: Activation, qp: QParams) -> Clamp {
     let z = qp.zero_point.clamp(-128, 127) as i8;
     match act {
         Activation::None => Clamp {
@@ -115,7 +115,7 @@ pub fn activation_clamp(act: Activation, qp: QParams) -> Clamp {
 
 /// Weights quantized symmetrically, one scale per row (output channel).
 #[derive(Debug, Clone, PartialEq)]
-pub struct QuantizedWeights {
+pub(crate) struct QuantizedWeights {
     /// Codes in `-127..=127`, same order as the input.
     pub codes: Vec<i8>,
     /// Scale of each row.
@@ -126,7 +126,7 @@ pub struct QuantizedWeights {
 /// per row (`per_channel`) or over the whole tensor, `q = round(w / s)`
 /// (ties away from zero, so `w` and `−w` get opposite codes) clamped to
 /// `±127`. An all-zero row (or tensor) gets scale 1 and zero codes.
-pub fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> QuantizedWeights {
+pub(crate) fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> QuantizedWeights {
     let n = w.len().checked_div(rows).unwrap_or(0);
     let scale_of = |v: &[f32]| {
         let m = v.iter().fold(0f32, |a, &x| a.max(x.abs()));
@@ -168,7 +168,7 @@ pub fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> QuantizedW
 /// a value that still saturates. Returns `None` when even `shift = 0`
 /// cannot hold a multiplier (one input step worth more than about 2^22
 /// output steps).
-pub fn affine_transform(
+pub(crate) fn affine_transform(
     ab: &[(f64, f64)],
     qin: QParams,
     qout: QParams,
@@ -220,7 +220,7 @@ pub fn apply_transform(t: &ChannelTransform, ch: usize, x: i8) -> i8 {
 }
 
 /// Calls `f` with the runtime view of a transform.
-pub fn with_runtime_transform<R>(
+pub(crate) fn with_runtime_transform<R>(
     t: &ChannelTransform,
     f: impl FnOnce(&ingot_rt::InputTransform<'_>) -> R,
 ) -> R {

@@ -56,7 +56,7 @@ impl std::str::FromStr for WeightForm {
 }
 
 /// True when a convolution can take the paired weight layout (one group).
-pub fn pairs_apply(c: &QConv) -> bool {
+pub fn uses_pairs(c: &QConv) -> bool {
     c.groups == 1
 }
 
@@ -75,7 +75,7 @@ pub fn pair_growth(q: &QGraph, form: WeightForm) -> usize {
     q.steps
         .iter()
         .filter_map(|st| match &st.kernel {
-            QKernel::Conv2d(c) if pairs_apply(c) => {
+            QKernel::Conv2d(c) if uses_pairs(c) => {
                 let (rows, k) = weight_rows(c);
                 Some(4 * ingot_rt::paired_len(rows, k) - c.weights.len())
             }
@@ -103,7 +103,7 @@ pub fn patch_bytes_for(q: &QGraph, form: WeightForm) -> usize {
                 let patch = ingot_rt::conv_patch_len(c.kernel[0], c.kernel[1], input.c);
                 let w = c.runtime_window();
                 let rows = if form == WeightForm::Pairs
-                    && pairs_apply(c)
+                    && uses_pairs(c)
                     && ingot_rt::conv_rows_apply(&w, c.groups, input.c)
                 {
                     ingot_rt::conv_rows_len(&w, input.w, input.c)

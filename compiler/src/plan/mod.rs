@@ -36,9 +36,9 @@ pub(crate) mod place;
 pub(crate) mod regions;
 pub mod report;
 pub mod schedule;
-pub mod svg;
+mod svg;
 pub mod target;
-pub mod verify;
+mod verify;
 
 use crate::lower::{QGraph, QKernel, QMapId, StepId};
 use serde::Serialize;
@@ -47,7 +47,9 @@ use std::time::Instant;
 pub use form::{patch_bytes, patch_bytes_for, WeightForm};
 pub use report::{report, PlanReport};
 pub use schedule::Schedule;
+pub use svg::{render as render_svg, SvgError};
 pub use target::{Budget, Target, TargetError};
+pub use verify::{verify, PlanViolation};
 
 /// Knobs of the planner.
 #[derive(Debug, Clone)]
@@ -207,13 +209,13 @@ impl Plan {
 pub enum PlanError {
     /// The graph fails its structural check.
     #[error("graph `{0}` is not valid: {1}")]
-    Graph(String, String),
+    Graph(String, crate::lower::ir::QGraphError),
     /// The alignment is zero.
     #[error("alignment must be at least 1 byte")]
     Align,
     /// The verifier rejected the plan (a planner bug).
     #[error("plan of `{0}` failed verification: {1}")]
-    Verify(String, String),
+    Verify(String, verify::PlanViolation),
 }
 
 /// Plans the arena of `q`.

@@ -74,14 +74,6 @@ fn place_in_order(items: &[Item], visit: &[usize], best_fit: bool) -> (Vec<u64>,
     (off.into_iter().map(|o| o.unwrap_or(0)).collect(), arena)
 }
 
-fn splitmix(state: &mut u64) -> u64 {
-    *state = state.wrapping_add(0x9E37_79B9_7F4A_7C15);
-    let mut z = *state;
-    z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-    z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-    z ^ (z >> 31)
-}
-
 /// Best placement over all heuristics: `(offsets, arena, heuristic name)`.
 /// Stops early when an arena equals `lower_bound`.
 pub(crate) fn place(
@@ -156,12 +148,12 @@ pub(crate) fn place(
             return best.expect("set above");
         }
     }
-    let mut seed = 0x1A2B_3C4D_u64 ^ items.len() as u64;
+    let mut rng = crate::util::splitmix::SplitMix64::new(0x1A2B_3C4D_u64 ^ items.len() as u64);
     for k in 0..trials {
         let keys: Vec<u64> = items
             .iter()
             .map(|it| {
-                let f = 0.75 + (splitmix(&mut seed) >> 11) as f64 / (1u64 << 53) as f64 * 0.5;
+                let f = 0.75 + (rng.next_u64() >> 11) as f64 / (1u64 << 53) as f64 * 0.5;
                 (it.size as f64 * f) as u64
             })
             .collect();

@@ -161,9 +161,9 @@ impl fmt::Display for PlanReport {
             "name", "shape c×h×w", "offset", "stride", "bytes"
         )?;
         for m in &self.maps {
-            let alive = m
-                .alive
-                .map_or("-".to_string(), |[a, b]| format!("{a}..={b}"));
+            let alive = m.alive.map_or(crate::util::MISSING.to_string(), |[a, b]| {
+                format!("{a}..={b}")
+            });
             let shape = format!("{}×{}×{}", m.shape[0], m.shape[1], m.shape[2]);
             writeln!(
                 f,

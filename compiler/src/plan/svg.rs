@@ -10,7 +10,6 @@
 use super::Plan;
 use crate::lower::QGraph;
 use plotters::prelude::*;
-use std::path::Path;
 
 const PALETTE: [RGBColor; 8] = [
     RGBColor(76, 114, 176),
@@ -23,17 +22,16 @@ const PALETTE: [RGBColor; 8] = [
     RGBColor(140, 140, 140),
 ];
 
-/// Renders the plan as an SVG document.
-pub fn render(q: &QGraph, plan: &Plan) -> Result<String, String> {
-    let mut out = String::new();
-    draw(q, plan, &mut out).map_err(|e| e.to_string())?;
-    Ok(out)
-}
+/// The drawing library refused the picture (its message).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct SvgError(String);
 
-/// Renders the plan into an SVG file.
-pub fn write(q: &QGraph, plan: &Plan, path: &Path) -> Result<(), String> {
-    let s = render(q, plan)?;
-    crate::util::write_atomic(path, s.as_bytes()).map_err(|e| format!("{}: {e}", path.display()))
+/// Renders the plan as an SVG document.
+pub fn render(q: &QGraph, plan: &Plan) -> Result<String, SvgError> {
+    let mut out = String::new();
+    draw(q, plan, &mut out).map_err(|e| SvgError(e.to_string()))?;
+    Ok(out)
 }
 
 fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::error::Error>> {

@@ -288,10 +288,30 @@ pub fn budget_with_weights_file(
     t: &Target,
     weights_file: Option<u64>,
 ) -> Budget {
-    let arena = plan.arena_bytes as u64;
-    let patch = plan.patch_bytes as u64;
+    budget_for(
+        q,
+        plan.arena_bytes as u64,
+        plan.patch_bytes as u64,
+        plan.weight_form,
+        t,
+        weights_file,
+    )
+}
+
+/// The one budget verdict: scratch RAM `arena + patch` and the constants of
+/// `q` in `form` (the size of the generated weights file in place of the
+/// estimate when it is given), plus code estimate and reserves, against
+/// `t`. [`budget`] and the driver's checks of generated modules call it.
+pub fn budget_for(
+    q: &QGraph,
+    arena: u64,
+    patch: u64,
+    form: super::WeightForm,
+    t: &Target,
+    weights_file: Option<u64>,
+) -> Budget {
     let ram_used = arena + patch + t.ram.reserve;
-    let mut flash = FlashUse::of_form(q, plan.weight_form);
+    let mut flash = FlashUse::of_form(q, form);
     flash.weights_file = weights_file;
     let flash_used = flash.total() + t.flash.reserve;
     let ram_headroom = t.ram.bytes as i64 - ram_used as i64;

@@ -77,17 +77,89 @@ pub fn views_overlap(
     false
 }
 
+/// The first problem [`verify`] found in a plan, naming the step or maps.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum PlanViolation {
+    /// The order or the view table has the wrong length.
+    #[error("order or view table has the wrong length")]
+    Lengths,
+    /// A step is missing from the order or listed twice.
+    #[error("step {0} missing or repeated in the order")]
+    Order(u32),
+    /// A step reads a map before the order writes it.
+    #[error("step `{step}` reads `{map}` before it is written")]
+    ReadBeforeWrite {
+        /// Step name.
+        step: String,
+        /// Map name.
+        map: String,
+    },
+    /// A map's stride is smaller than its channel count.
+    #[error("map `{map}` has stride {stride} < {channels} channels")]
+    Stride {
+        /// Map name.
+        map: String,
+        /// Its stride.
+        stride: usize,
+        /// Its channels.
+        channels: usize,
+    },
+    /// A map ends beyond the arena.
+    #[error("map `{map}` ends at {end} beyond the arena of {arena}")]
+    BeyondArena {
+        /// Map name.
+        map: String,
+        /// Its end offset.
+        end: usize,
+        /// Arena bytes.
+        arena: usize,
+    },
+    /// An input of an in-place concatenation is not its channel slice.
+    #[error("`{map}` is not at channel {channel} of in-place concatenation `{concat}` (view {view:?}, region {region:?})")]
+    ConcatSlice {
+        /// Input map name.
+        map: String,
+        /// The channel it should start at.
+        channel: usize,
+        /// Concatenation step name.
+        concat: String,
+        /// The input's view.
+        view: MapView,
+        /// The concatenation's view.
+        region: MapView,
+    },
+    /// Two maps alive together share arena bytes.
+    #[error(
+        "`{a}` (alive {a_from}..={a_to}) and `{b}` (alive {b_from}..={b_to}) share arena bytes"
+    )]
+    Overlap {
+        /// First map.
+        a: String,
+        /// Its first step.
+        a_from: usize,
+        /// Its last step.
+        a_to: usize,
+        /// Second map.
+        b: String,
+        /// Its first step.
+        b_from: usize,
+        /// Its last step.
+        b_to: usize,
+    },
+}
+
 /// Checks `plan` against `q`; `Err` names the first problem.
-pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
+pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), PlanViolation> {
     let n = q.steps.len();
     let nm = q.maps.len();
     if plan.order.len() != n || plan.map_views.len() != nm {
-        return Err("order or view table has the wrong length".into());
+        return Err(PlanViolation::Lengths);
     }
     let mut pos = vec![usize::MAX; n];
     for (i, s) in plan.order.iter().enumerate() {
         if s.index() >= n || pos[s.index()] != usize::MAX {
-            return Err(format!("step {} missing or repeated in the order", s.0));
+            return Err(PlanViolation::Order(s.0));
         }
         pos[s.index()] = i;
     }
@@ -102,11 +174,10 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
             match def[m.index()] {
                 Some(d) if m == &q.input || d < pos[s] => {}
                 _ => {
-                    return Err(format!(
-                        "step `{}` reads `{}` before it is written",
-                        st.name,
-                        q.map(*m).name
-                    ))
+                    return Err(PlanViolation::ReadBeforeWrite {
+                        step: st.name.clone(),
+                        map: q.map(*m).name.clone(),
+                    })
                 }
             }
             let l = last[m.index()].get_or_insert(pos[s]);
@@ -128,17 +199,19 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
         let v = plan.map_views[m];
         let (px, c) = shape(QMapId(m as u32));
         if v.stride < c {
-            return Err(format!(
-                "map `{}` has stride {} < {} channels",
-                q.maps[m].name, v.stride, c
-            ));
+            return Err(PlanViolation::Stride {
+                map: q.maps[m].name.clone(),
+                stride: v.stride,
+                channels: c,
+            });
         }
         if let Some((_, e)) = span(v, px, c) {
             if e > plan.arena_bytes {
-                return Err(format!(
-                    "map `{}` ends at {} beyond the arena of {}",
-                    q.maps[m].name, e, plan.arena_bytes
-                ));
+                return Err(PlanViolation::BeyondArena {
+                    map: q.maps[m].name.clone(),
+                    end: e,
+                    arena: plan.arena_bytes,
+                });
             }
         }
     }
@@ -160,14 +233,13 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
         for &m in &st.inputs {
             let v = plan.map_views[m.index()];
             if v.offset != o.offset + c0 || v.stride != o.stride {
-                return Err(format!(
-                    "`{}` is not at channel {} of in-place concatenation `{}` (view {:?}, region {:?})",
-                    q.map(m).name,
-                    c0,
-                    st.name,
-                    v,
-                    o
-                ));
+                return Err(PlanViolation::ConcatSlice {
+                    map: q.map(m).name.clone(),
+                    channel: c0,
+                    concat: st.name.clone(),
+                    view: v,
+                    region: o,
+                });
             }
             c0 += q.map(m).shape.c;
             containers[m.index()].push(st.output.index());
@@ -227,10 +299,14 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), String> {
             let (pb, cb) = shape(QMapId(b as u32));
             if views_overlap(plan.map_views[a], pa, ca, plan.map_views[b], pb, cb) && !allowed(a, b)
             {
-                return Err(format!(
-                    "`{}` (alive {}..={}) and `{}` (alive {}..={}) share arena bytes",
-                    q.maps[a].name, da, la, q.maps[b].name, db, lb
-                ));
+                return Err(PlanViolation::Overlap {
+                    a: q.maps[a].name.clone(),
+                    a_from: da,
+                    a_to: la,
+                    b: q.maps[b].name.clone(),
+                    b_from: db,
+                    b_to: lb,
+                });
             }
         }
     }

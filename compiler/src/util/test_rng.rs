@@ -1,26 +1,24 @@
-//! The seeded generator of the library's unit tests: splitmix64 (Steele,
-//! Lea & Flood 2014, "Fast splittable pseudorandom number generators"),
-//! the same sequence as `ingot_testkit::zoo::Rng`. Unit tests cannot use
-//! the dev crate `ingot-testkit` (it links a second copy of this crate), so
-//! they get this small copy.
+//! The seeded generator of the library's unit tests: the library's
+//! [`SplitMix64`](super::splitmix::SplitMix64), the same sequence as
+//! `ingot_testkit::zoo::Rng`. Unit tests cannot use the dev crate
+//! `ingot-testkit` (it links a second copy of this crate), so they get
+//! these few helpers.
+
+use super::splitmix::SplitMix64;
 
 /// A small deterministic generator.
 #[derive(Debug, Clone)]
-pub(crate) struct Rng(u64);
+pub(crate) struct Rng(SplitMix64);
 
 impl Rng {
     /// A generator started from `seed`.
     pub(crate) fn new(seed: u64) -> Self {
-        Rng(seed)
+        Rng(SplitMix64::new(seed))
     }
 
     /// The next 64 random bits.
     pub(crate) fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
+        self.0.next_u64()
     }
 
     /// Uniform in `[lo, hi)`, with 24 random bits.

@@ -12,7 +12,7 @@
 //! All networks go into one generated crate, built once per test run.
 
 use ingot_compiler::codegen::{
-    self, calls, generate, GenOptions, MapView, Schedule, WeightForm, WeightsMode,
+    self, generate, GenOptions, MapView, Schedule, WeightForm, WeightsMode,
 };
 use ingot_compiler::driver::schedule_of;
 use ingot_compiler::lower::{lower, LowerOptions, QGraph, QKernel, SimInput, Simulator};
@@ -94,17 +94,18 @@ impl Net {
 
     /// The simulator's output and every step's map (in schedule order).
     fn simulated(&self) -> Vec<(Vec<i8>, Trace)> {
-        let steps = calls::step_calls(&self.q, &self.schedule).unwrap();
         let mut sim = Simulator::new(&self.q);
         inputs(&self.q, 7)
             .iter()
             .enumerate()
             .map(|(k, x)| {
                 let out = sim.run(SimInput::Codes(x)).unwrap();
-                let t = steps
+                let t = self
+                    .schedule
+                    .order
                     .iter()
                     .enumerate()
-                    .map(|(i, sc)| ((k, i), sim.map_hwc(self.q.step(sc.step).output)))
+                    .map(|(i, &st)| ((k, i), sim.map_hwc(self.q.step(st).output)))
                     .collect();
                 (out, t)
             })
@@ -116,14 +117,13 @@ impl Net {
         if self.sim {
             return self.simulated();
         }
-        let steps = calls::step_calls(&self.q, &self.schedule).unwrap();
         inputs(&self.q, 7)
             .iter()
             .enumerate()
             .map(|(k, x)| {
                 let mut t = Trace::new();
                 let mut i = 0;
-                let out = calls::execute(&self.q, &self.schedule, &steps, x, &mut |_, m| {
+                let out = codegen::interpret(&self.q, &self.schedule, x, &mut |_, m| {
                     t.insert((k, i), m.to_vec());
                     i += 1;
                 })
@@ -769,24 +769,49 @@ fn invalid_parameters_are_refused_at_generation() {
     assert!(generate(&q, &Schedule::naive(&q), &opt).is_err());
 }
 
+/// A lowered graph from a build script is judged by the planner's budget
+/// (`plan::target::budget_for`), the same verdict as a compiled graph: a
+/// target with exactly the scratch, weights, code estimate and reserves
+/// fits; one byte less RAM does not.
 #[test]
 fn budget_is_checked_against_the_target() {
+    use ingot_compiler::build::Builder;
     let q = testnets::plain();
-    let s = Schedule::naive(&q);
-    let mut t = codegen::TargetInfo {
-        name: "tiny".into(),
-        ram_bytes: Some(s.arena_bytes + s.patch_bytes),
-        flash_bytes: Some(1 << 20),
+    let dir = tempfile::tempdir().unwrap();
+    let fit = generate(&q, &Schedule::naive(&q), &GenOptions::default()).unwrap();
+    let r = &fit.report;
+    let need = ingot_compiler::plan::target::budget_for(
+        &q,
+        r.arena_bytes as u64,
+        r.patch_bytes as u64,
+        ingot_compiler::plan::WeightForm::Int8,
+        &ingot_compiler::plan::Target::parse(&profile(1 << 30, 1 << 30), Path::new("t.toml"))
+            .unwrap(),
+        Some(r.weights_flash_bytes as u64),
+    );
+    let build = |ram: u64| {
+        let t = dir.path().join(format!("tiny{ram}.toml"));
+        std::fs::write(&t, profile(ram, need.flash_used)).unwrap();
+        Builder::lowered(q.clone())
+            .target(&t)
+            .weight_form(ingot_compiler::plan::WeightForm::Int8)
+            .out_dir(dir.path().join(format!("out{ram}")))
+            .generate()
     };
-    let opt = |t: &codegen::TargetInfo| GenOptions {
-        target: Some(t.clone()),
-        ..GenOptions::default()
-    };
-    assert!(generate(&q, &s, &opt(&t)).is_ok());
-    t.ram_bytes = Some(s.arena_bytes + s.patch_bytes - 1);
-    let e = generate(&q, &s, &opt(&t)).unwrap_err();
-    assert!(matches!(e, codegen::CodegenError::Budget { .. }));
+    assert!(build(need.ram_used).is_ok());
+    let e = build(need.ram_used - 1).unwrap_err();
+    assert!(e.is_budget(), "{e}");
     assert!(e.to_string().contains("does not fit target `tiny`"), "{e}");
+    assert!(e.to_string().contains("RAM over by 1 bytes"), "{e}");
+}
+
+/// A target profile named `tiny` with these memories and no reserves.
+fn profile(ram: u64, flash: u64) -> String {
+    format!(
+        "name = \"tiny\"\ncore = \"cortex-m4f\"\ntriple = \"thumbv7em-none-eabihf\"\nclock_hz = 1\n\
+         [ram]\nbytes = {ram}\nreserve = 0\n[flash]\nbytes = {flash}\nreserve = 0\n\
+         [datasheet]\ntitle = \"none\"\nrevision = \"n/a\"\n"
+    )
 }
 
 /// The generated module of `plain` is kept in `tests/out/` (its input, the

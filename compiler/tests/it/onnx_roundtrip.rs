@@ -78,16 +78,12 @@ fn round_trip(onnx_name: &str, stem: &str, native: &str, calib: &str, eval: &str
 
     // The int8 module: calibrated the same way, the same bytes.
     let build = |graph: &Path| {
-        pipeline::compile(&BuildInputs {
-            graph: graph.to_path_buf(),
-            ranges: RangesSource::Images(root().join(calib), Method::MinMax),
-            target: None,
-            module: stem.into(),
-            weight_form: None,
-            camera: None,
-        })
-        .unwrap()
-        .files(stem)
+        let mut req = BuildInputs::new(
+            graph,
+            RangesSource::Images(root().join(calib), Method::MinMax),
+        );
+        req.module = stem.into();
+        pipeline::compile(&req).unwrap().files(stem)
     };
     let (fa, fb) = (build(&native_path), build(&graph_path));
     // MODEL_HASH covers the source files' bytes (the JSON text and the

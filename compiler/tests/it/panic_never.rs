@@ -113,15 +113,13 @@ fn demo_module_links_without_panic_paths() {
     let model = root.join("examples/demo/model");
     let cfg = cfg();
     for (triple, form) in TARGETS {
-        let c = compile(&BuildInputs {
-            graph: model.join("brackets.graph.json"),
-            ranges: RangesSource::File(model.join("brackets.ranges.json")),
-            target: None,
-            module: "brackets".into(),
-            weight_form: Some(form),
-            camera: None,
-        })
-        .unwrap();
+        let mut req = BuildInputs::new(
+            model.join("brackets.graph.json"),
+            RangesSource::File(model.join("brackets.ranges.json")),
+        );
+        req.module = "brackets".into();
+        req.weight_form = Some(form);
+        let c = compile(&req).unwrap();
         let m = write_module(
             &out_dir().join(format!("demo-{triple}")),
             c.files("brackets"),

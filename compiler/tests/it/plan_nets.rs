@@ -18,7 +18,7 @@ fn every_network_verifies_and_is_near_its_lower_bound() {
         let t = Instant::now();
         let p = plan(&q, &opts()).unwrap_or_else(|e| panic!("{}: {e}", q.name));
         let secs = t.elapsed().as_secs_f64();
-        verify::verify(&q, &p).expect("verifier passes");
+        verify(&q, &p).expect("verifier passes");
         // Every map touched by a step lies inside the arena.
         for (i, m) in q.maps.iter().enumerate() {
             let v = p.map_views[i];
@@ -185,7 +185,7 @@ fn densenet121_planning_time() {
 fn svg_and_report() {
     let q = synth::dense(&synth::DenseCfg::small());
     let p = plan(&q, &opts()).expect("plan");
-    let svg = ingot_compiler::plan::svg::render(&q, &p).expect("svg");
+    let svg = ingot_compiler::plan::render_svg(&q, &p).expect("svg");
     assert!(svg.starts_with("<svg"));
     assert!(
         svg.contains("dense_small: arena 288.0 KiB, lower bound 288.0 KiB, ratio 1.000"),

@@ -55,14 +55,13 @@ fn classifies_png_images() {
 
         if model::MODEL_NAME == "demo_sized" {
             // The built-in network: compare with the compiler's interpretation.
-            use ingot_compiler::codegen::{calls, Schedule};
+            use ingot_compiler::codegen::{interpret, Schedule};
             use ingot_testkit::testnets;
             let q = testnets::demo_sized();
             let s = Schedule::naive(&q);
-            let steps = calls::step_calls(&q, &s).unwrap();
             let mut input = [0i8; model::INPUT_LEN];
             model::quantize_pixels(&px, &mut input);
-            let want = calls::execute(&q, &s, &steps, &input, &mut |_, _| {}).unwrap();
+            let want = interpret(&q, &s, &input, &mut |_, _| {}).unwrap();
             let mut out = [0i8; model::OUTPUT_LEN];
             model::run(&mut scratch, &input, &mut out);
             assert_eq!(out.to_vec(), want);
@@ -113,15 +112,7 @@ fn demo_model_matches_simulator_on_eval_images() {
         return;
     }
     // The same compilation as build.rs, to get the lowered graph.
-    let c = pipeline::compile(&BuildInputs {
-        graph: demo().join("model/brackets.graph.json"),
-        ranges: RangesSource::File(demo().join("model/brackets.ranges.json")),
-        target: Some(demo().join("bench-camera.toml")),
-        module: "model".into(),
-        weight_form: None,
-        camera: None,
-    })
-    .unwrap();
+    let c = pipeline::compile(&demo_request()).unwrap();
     // The Cortex-M4F profile gives the paired weight form (the host runs
     // the same module as the firmware).
     assert!(c
@@ -206,16 +197,7 @@ fn classifies_a_synthetic_rgb565_frame() {
     let q = if model::MODEL_NAME == "demo_sized" {
         ingot_testkit::testnets::demo_sized()
     } else {
-        pipeline::compile(&BuildInputs {
-            graph: demo().join("model/brackets.graph.json"),
-            ranges: RangesSource::File(demo().join("model/brackets.ranges.json")),
-            target: Some(demo().join("bench-camera.toml")),
-            module: "model".into(),
-            weight_form: None,
-            camera: None,
-        })
-        .unwrap()
-        .qgraph
+        pipeline::compile(&demo_request()).unwrap().qgraph
     };
     let cam =
         ingot_compiler::camera::Camera::new(ingot_compiler::camera::Format::Rgb565le, 320, 240);
@@ -230,4 +212,14 @@ fn classifies_a_synthetic_rgb565_frame() {
     );
     let out = Simulator::new(&q).run(SimInput::Codes(&want)).unwrap();
     assert_eq!(class, ingot_rt::argmax(&out));
+}
+
+/// The same compilation as build.rs.
+fn demo_request() -> BuildInputs {
+    let mut req = BuildInputs::new(
+        demo().join("model/brackets.graph.json"),
+        RangesSource::File(demo().join("model/brackets.ranges.json")),
+    );
+    req.target = Some(demo().join("bench-camera.toml"));
+    req
 }
