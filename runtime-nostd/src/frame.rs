@@ -514,6 +514,47 @@ trait Sampler {
     fn unlane(lanes: [u32; 3]) -> [u32; 3] {
         lanes
     }
+    /// `add_lanes` on the `rows` rows of one window: `len` bytes each,
+    /// the first at `frame[start..]`, `stride` bytes apart.
+    #[inline(always)]
+    fn add_window(
+        frame: &[u8],
+        start: usize,
+        stride: usize,
+        len: usize,
+        rows: u32,
+        lanes: &mut [u32; 3],
+    ) {
+        window_rows::<Self>(frame, start, stride, len, rows, lanes);
+    }
+}
+
+/// [`Sampler::add_window`] for any width: two rows per step with
+/// `add_lanes2` (half the per-row overhead), then a last odd row.
+#[inline(always)]
+fn window_rows<S: Sampler + ?Sized>(
+    frame: &[u8],
+    mut start: usize,
+    stride: usize,
+    len: usize,
+    rows: u32,
+    lanes: &mut [u32; 3],
+) {
+    let mut left = rows;
+    while left >= 2 {
+        if let Some(two) = frame.get(start..start + stride + len) {
+            if let (Some(a), Some(b)) = (two.get(..len), two.get(stride..)) {
+                S::add_lanes2(a, b, lanes);
+            }
+        }
+        start += 2 * stride;
+        left -= 2;
+    }
+    if left == 1 {
+        if let Some(row) = frame.get(start..start + len) {
+            S::add_lanes(row, lanes);
+        }
+    }
 }
 
 /// The sums are the samples (8-bit channels, shift 0).
@@ -645,7 +686,7 @@ fn pair565<const BE: bool>(q: &[u8]) -> u32 {
     let w = u32::from_le_bytes(*q);
     if BE {
         // Swap the bytes within each half (`rev16`).
-        w.swap_bytes().rotate_right(16)
+        ((w >> 8) & 0x00FF_00FF) | ((w & 0x00FF_00FF) << 8)
     } else {
         w
     }
@@ -699,6 +740,115 @@ fn add_lanes2_565<const BE: bool>(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
     lanes[2] += w & LANES5;
 }
 
+/// The R, G and B fields of both pixels of `w` (see [`pair565`]) added
+/// into the lanes.
+#[inline(always)]
+fn lanes565(w: u32, lanes: &mut [u32; 3]) {
+    lanes[0] += (w >> 11) & LANES5;
+    lanes[1] += (w >> 5) & LANES6;
+    lanes[2] += w & LANES5;
+}
+
+/// Window widths (in bytes, 2 per pixel) up to which [`window565`]
+/// sums a row in straight-line code.
+const FIXED_BYTES: usize = 16;
+
+/// [`add_lanes2_565`] for rows of exactly `B` bytes: `B` is a constant,
+/// so the pairs are unrolled and the row needs no loop, no chunk setup
+/// and one bounds check.
+#[inline(always)]
+fn add_fixed2_565<const BE: bool, const B: usize>(
+    a: &[u8; B],
+    b: Option<&[u8; B]>,
+    lanes: &mut [u32; 3],
+) {
+    let mut i = 0;
+    while i + 4 <= B {
+        let wa = pair565::<BE>(a.get(i..i + 4).unwrap_or(&[]));
+        lanes565(wa, lanes);
+        if let Some(b) = b {
+            let wb = pair565::<BE>(b.get(i..i + 4).unwrap_or(&[]));
+            lanes565(wb, lanes);
+        }
+        i += 4;
+    }
+    if B == 2 {
+        let mut w = word565::<BE>(a);
+        if let Some(b) = b {
+            w |= word565::<BE>(b) << 16;
+        }
+        lanes565(w, lanes);
+    } else if B % 4 == 2 {
+        // The odd last pixels are the high halves of the rows' last four
+        // bytes: row `a`'s moves to the low half, `b`'s stays high.
+        let wa = pair565::<BE>(a.get(B - 4..).unwrap_or(&[]));
+        let mut w = wa >> 16;
+        if let Some(b) = b {
+            w |= pair565::<BE>(b.get(B - 4..).unwrap_or(&[])) & 0xFFFF_0000;
+        }
+        lanes565(w, lanes);
+    }
+}
+
+/// `B` bytes of `frame` from `at`, if there are that many.
+#[inline(always)]
+fn row_at<const B: usize>(frame: &[u8], at: usize) -> Option<&[u8; B]> {
+    frame.get(at..)?.first_chunk::<B>()
+}
+
+/// [`Sampler::add_window`] for RGB565 windows `B` bytes wide: two rows
+/// per step, each row straight-line code ([`add_fixed2_565`]).
+#[inline(always)]
+fn window565<const BE: bool, const B: usize>(
+    frame: &[u8],
+    mut start: usize,
+    stride: usize,
+    rows: u32,
+    lanes: &mut [u32; 3],
+) {
+    let mut left = rows;
+    while left >= 2 {
+        if let Some(two) = frame.get(start..start + stride + B) {
+            if let (Some(a), Some(b)) = (two.first_chunk::<B>(), two.last_chunk::<B>()) {
+                add_fixed2_565::<BE, B>(a, Some(b), lanes);
+            }
+        }
+        start += 2 * stride;
+        left -= 2;
+    }
+    if left == 1 {
+        if let Some(a) = row_at::<B>(frame, start) {
+            add_fixed2_565::<BE, B>(a, None, lanes);
+        }
+    }
+}
+
+/// [`Sampler::add_window`] for RGB565: windows of at most
+/// [`FIXED_BYTES`] bytes a row by [`window565`], wider ones by
+/// [`window_rows`].
+#[inline(always)]
+fn add_window565<S: Sampler, const BE: bool>(
+    frame: &[u8],
+    start: usize,
+    stride: usize,
+    len: usize,
+    rows: u32,
+    lanes: &mut [u32; 3],
+) {
+    let _ = FIXED_BYTES;
+    match len {
+        2 => window565::<BE, 2>(frame, start, stride, rows, lanes),
+        4 => window565::<BE, 4>(frame, start, stride, rows, lanes),
+        6 => window565::<BE, 6>(frame, start, stride, rows, lanes),
+        8 => window565::<BE, 8>(frame, start, stride, rows, lanes),
+        10 => window565::<BE, 10>(frame, start, stride, rows, lanes),
+        12 => window565::<BE, 12>(frame, start, stride, rows, lanes),
+        14 => window565::<BE, 14>(frame, start, stride, rows, lanes),
+        16 => window565::<BE, 16>(frame, start, stride, rows, lanes),
+        _ => window_rows::<S>(frame, start, stride, len, rows, lanes),
+    }
+}
+
 /// `[Σ R, Σ G, Σ B]` from [`add_lanes565`]'s lanes.
 #[inline(always)]
 fn unlane565(lanes: [u32; 3]) -> [u32; 3] {
@@ -727,6 +877,17 @@ impl<const BE: bool> Sampler for Rgb565Gray<BE> {
         unlane565(lanes)
     }
     #[inline(always)]
+    fn add_window(
+        frame: &[u8],
+        start: usize,
+        stride: usize,
+        len: usize,
+        rows: u32,
+        lanes: &mut [u32; 3],
+    ) {
+        add_window565::<Self, BE>(frame, start, stride, len, rows, lanes);
+    }
+    #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
         let [r, g, b] = acc;
         [r * w[0] + g * w[1] + b * w[2], 0, 0]
@@ -753,6 +914,17 @@ impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
     #[inline(always)]
     fn unlane(lanes: [u32; 3]) -> [u32; 3] {
         unlane565(lanes)
+    }
+    #[inline(always)]
+    fn add_window(
+        frame: &[u8],
+        start: usize,
+        stride: usize,
+        len: usize,
+        rows: u32,
+        lanes: &mut [u32; 3],
+    ) {
+        add_window565::<Self, BE>(frame, start, stride, len, rows, lanes);
     }
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
@@ -842,33 +1014,18 @@ fn area<S: Sampler, const LANES: bool>(
             let mut start = (y0 as usize * fw + x0 as usize) * S::BPP;
             let len = (x1 - x0) as usize * S::BPP;
             let stride = fw * S::BPP;
-            let mut y = y0;
-            // Two rows per step: half the per-row overhead.
             if LANES {
-                while y + 1 < y1 {
-                    if let Some(two) = frame.get(start..start + stride + len) {
-                        if let (Some(a), Some(b)) = (two.get(..len), two.get(stride..)) {
-                            S::add_lanes2(a, b, &mut acc);
-                        }
-                    }
-                    start += 2 * stride;
-                    y += 2;
-                }
-            }
-            for _ in y..y1 {
-                if let Some(row) = frame.get(start..start + len) {
-                    if LANES {
-                        S::add_lanes(row, &mut acc);
-                    } else {
+                S::add_window(frame, start, stride, len, y1 - y0, &mut acc);
+                acc = S::unlane(acc);
+            } else {
+                for _ in y0..y1 {
+                    if let Some(row) = frame.get(start..start + len) {
                         for px in row.chunks_exact(S::BPP) {
                             S::add(px, &mut acc);
                         }
                     }
+                    start += stride;
                 }
-                start += stride;
-            }
-            if LANES {
-                acc = S::unlane(acc);
             }
             let count = (x1 - x0) * (y1 - y0);
             let acc = S::weigh(acc, &p.weights);
