@@ -676,31 +676,62 @@ const LANES6: u32 = 0x003F_003F;
 /// Most fields a 16-bit lane may sum: `1024 · 63 < 2^16`.
 const LANE_FIELDS: u64 = 1024;
 
-/// Two RGB565 pixels (4 bytes) as one word, the first pixel's 16-bit word
-/// in the low half: one load on Thumb-2 (and a `rev16` big-endian).
+/// Two RGB565 pixels (4 bytes) as one word exactly as stored, the first
+/// pixel's bytes in the low half: one load on Thumb-2. Big-endian pixels
+/// are not swapped; [`lanes565`] reads their fields where they lie.
 #[inline(always)]
-fn pair565<const BE: bool>(q: &[u8]) -> u32 {
+fn pair565(q: &[u8]) -> u32 {
     let Ok(q) = <&[u8; 4]>::try_from(q) else {
         return 0;
     };
-    let w = u32::from_le_bytes(*q);
+    u32::from_le_bytes(*q)
+}
+
+/// One RGB565 pixel's two bytes as stored, in the low half of a word (a
+/// lane word whose second pixel is missing); see [`pair565`].
+#[inline(always)]
+fn half565(px: &[u8]) -> u32 {
+    match *px {
+        [a, b] => u16::from_le_bytes([a, b]) as u32,
+        _ => 0,
+    }
+}
+
+/// The R, G and B fields of both pixels of a lane word (two pixels as
+/// stored, [`pair565`]) added into the lanes `[R, G, B]`, each
+/// `Σ first-pixel field + 2^16 · Σ second-pixel field`, with one shift-and-
+/// mask and one add per field.
+///
+/// Big-endian halves hold `RRRRRGGG` in their low byte and `GGGBBBBB` in
+/// their high byte: R is bits 3–7 and B bits 8–12 of a half, and G is
+/// split into its high three bits (bits 0–2) and low three (bits 13–15).
+/// Rotating the word right by 13 brings the low three G bits of each half
+/// to bits 0–2 of the same half and the high three G bits of the *other*
+/// half to bits 3–5: one mask gives, per lane, `G_low(this) + 8 ·
+/// G_high(other)` (at most 63, like a G field). The two lanes then hold
+/// the G values of the pixels mixed, but [`unlane565`] adds the two
+/// lanes, so `Σ G` is the same integer; no swap of bytes is needed.
+#[inline(always)]
+fn lanes565<const BE: bool>(w: u32, lanes: &mut [u32; 3]) {
     if BE {
-        // Swap the bytes within each half (`rev16`).
-        ((w >> 8) & 0x00FF_00FF) | ((w & 0x00FF_00FF) << 8)
+        lanes[0] += (w >> 3) & LANES5;
+        lanes[1] += w.rotate_right(13) & LANES6;
+        lanes[2] += (w >> 8) & LANES5;
     } else {
-        w
+        lanes[0] += (w >> 11) & LANES5;
+        lanes[1] += (w >> 5) & LANES6;
+        lanes[2] += w & LANES5;
     }
 }
 
 /// [`add565`] over a window row, two pixels per step: the word of a pixel
 /// pair is split into its R, G and B fields with one mask each, and the
 /// fields of both pixels are summed at once in the two 16-bit halves of a
-/// `u32` (SIMD within a register): `lanes = [R, G, B]`, each
-/// `Σ first-pixel field + 2^16 · Σ second-pixel field`. The window's
-/// lanes are added up once, by [`unlane565`]; [`FrameConfig::validate`]
-/// allows this only for windows whose lanes hold at most
-/// [`LANE_FIELDS`] fields, so no lane carries into the next. The sums
-/// are the same integers as `add565`'s.
+/// `u32` (SIMD within a register), [`lanes565`]. The window's lanes are
+/// added up once, by [`unlane565`]; [`FrameConfig::validate`] allows this
+/// only for windows whose lanes hold at most [`LANE_FIELDS`] fields, so no
+/// lane carries into the next. The sums are the same integers as
+/// `add565`'s.
 #[inline(always)]
 fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
     let mut pairs = row.chunks_exact(4);
@@ -708,16 +739,10 @@ fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
         // Rolled, the loop keeps its lanes in registers (see the
         // disassembly note in DEVELOPERS.md).
         crate::dot::no_unroll();
-        let w = pair565::<BE>(q);
-        lanes[0] += (w >> 11) & LANES5;
-        lanes[1] += (w >> 5) & LANES6;
-        lanes[2] += w & LANES5;
+        lanes565::<BE>(pair565(q), lanes);
     }
-    // An odd pixel at the end goes into the low lanes.
-    let w = word565::<BE>(pairs.remainder());
-    lanes[0] += (w >> 11) & LANES5;
-    lanes[1] += (w >> 5) & LANES6;
-    lanes[2] += w & LANES5;
+    // An odd pixel at the end goes into the low half.
+    lanes565::<BE>(half565(pairs.remainder()), lanes);
 }
 
 /// [`add_lanes565`] on two rows of one window at once: one loop, and the
@@ -728,25 +753,11 @@ fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
 fn add_lanes2_565<const BE: bool>(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
     for (qa, qb) in a.chunks_exact(4).zip(b.chunks_exact(4)) {
         crate::dot::no_unroll();
-        let (wa, wb) = (pair565::<BE>(qa), pair565::<BE>(qb));
-        lanes[0] += ((wa >> 11) & LANES5) + ((wb >> 11) & LANES5);
-        lanes[1] += ((wa >> 5) & LANES6) + ((wb >> 5) & LANES6);
-        lanes[2] += (wa & LANES5) + (wb & LANES5);
+        lanes565::<BE>(pair565(qa), lanes);
+        lanes565::<BE>(pair565(qb), lanes);
     }
-    let w = word565::<BE>(a.chunks_exact(4).remainder())
-        | (word565::<BE>(b.chunks_exact(4).remainder()) << 16);
-    lanes[0] += (w >> 11) & LANES5;
-    lanes[1] += (w >> 5) & LANES6;
-    lanes[2] += w & LANES5;
-}
-
-/// The R, G and B fields of both pixels of `w` (see [`pair565`]) added
-/// into the lanes.
-#[inline(always)]
-fn lanes565(w: u32, lanes: &mut [u32; 3]) {
-    lanes[0] += (w >> 11) & LANES5;
-    lanes[1] += (w >> 5) & LANES6;
-    lanes[2] += w & LANES5;
+    let w = half565(a.chunks_exact(4).remainder()) | (half565(b.chunks_exact(4).remainder()) << 16);
+    lanes565::<BE>(w, lanes);
 }
 
 /// Window widths (in bytes, 2 per pixel) up to which [`window565`]
@@ -764,29 +775,29 @@ fn add_fixed2_565<const BE: bool, const B: usize>(
 ) {
     let mut i = 0;
     while i + 4 <= B {
-        let wa = pair565::<BE>(a.get(i..i + 4).unwrap_or(&[]));
-        lanes565(wa, lanes);
+        let wa = pair565(a.get(i..i + 4).unwrap_or(&[]));
+        lanes565::<BE>(wa, lanes);
         if let Some(b) = b {
-            let wb = pair565::<BE>(b.get(i..i + 4).unwrap_or(&[]));
-            lanes565(wb, lanes);
+            let wb = pair565(b.get(i..i + 4).unwrap_or(&[]));
+            lanes565::<BE>(wb, lanes);
         }
         i += 4;
     }
     if B == 2 {
-        let mut w = word565::<BE>(a);
+        let mut w = half565(a);
         if let Some(b) = b {
-            w |= word565::<BE>(b) << 16;
+            w |= half565(b) << 16;
         }
-        lanes565(w, lanes);
+        lanes565::<BE>(w, lanes);
     } else if B % 4 == 2 {
         // The odd last pixels are the high halves of the rows' last four
         // bytes: row `a`'s moves to the low half, `b`'s stays high.
-        let wa = pair565::<BE>(a.get(B - 4..).unwrap_or(&[]));
+        let wa = pair565(a.get(B - 4..).unwrap_or(&[]));
         let mut w = wa >> 16;
         if let Some(b) = b {
-            w |= pair565::<BE>(b.get(B - 4..).unwrap_or(&[])) & 0xFFFF_0000;
+            w |= pair565(b.get(B - 4..).unwrap_or(&[])) & 0xFFFF_0000;
         }
-        lanes565(w, lanes);
+        lanes565::<BE>(w, lanes);
     }
 }
 
