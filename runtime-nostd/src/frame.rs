@@ -1014,7 +1014,16 @@ fn area<S: Sampler, const LANES: bool>(
         }
         let mut x0 = cfg.roi.x;
         let mut ex = 0;
-        for ox in 0..ow {
+        // The window's first byte and its output position, stepped along
+        // the row (the output moves by ±out_c, mirrored or not).
+        let mut wstart = (y0 as usize * fw + x0 as usize) * S::BPP;
+        let mut at = dst_index(p, oy, 0);
+        let step = if ow > 1 {
+            dst_index(p, oy, 1).wrapping_sub(at)
+        } else {
+            0
+        };
+        for _ in 0..ow {
             let mut x1 = x0 + qx;
             ex += rx;
             if ex >= ow {
@@ -1022,7 +1031,7 @@ fn area<S: Sampler, const LANES: bool>(
                 x1 += 1;
             }
             let mut acc = [0u32; 3];
-            let mut start = (y0 as usize * fw + x0 as usize) * S::BPP;
+            let mut start = wstart;
             let len = (x1 - x0) as usize * S::BPP;
             let stride = fw * S::BPP;
             if LANES {
@@ -1049,7 +1058,9 @@ fn area<S: Sampler, const LANES: bool>(
                     k += 1;
                 }
             }
-            write::<S>(input, table, dst_index(p, oy, ox), codes);
+            write::<S>(input, table, at, codes);
+            at = at.wrapping_add(step);
+            wstart += len;
             x0 = x1;
         }
         y0 = y1;
