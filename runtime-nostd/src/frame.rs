@@ -46,8 +46,11 @@
 //!   are accepted).
 //! * **RGB565 area windows** of at most 1,024 pixel pairs (and odd last
 //!   pixels) are summed two pixels per 32-bit load, the R, G and B fields
-//!   of both in the two 16-bit halves of one `u32` each; larger windows
-//!   pixel by pixel. Both give the same sums.
+//!   of both in the two 16-bit halves of one `u32` each (big-endian
+//!   pixels without a byte swap: their fields are read where they lie);
+//!   larger windows pixel by pixel. Windows of 1 to 8 pixels a row are
+//!   summed by straight-line code of that width, two rows per step. All
+//!   give the same sums.
 //! * **Weights once per output pixel.** Area windows sum the raw colour
 //!   fields and apply the luma (or 8-bit scaling) weights to the sums;
 //!   integer weights make that exactly the sum of weighted pixels.
@@ -736,8 +739,7 @@ fn lanes565<const BE: bool>(w: u32, lanes: &mut [u32; 3]) {
 fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
     let mut pairs = row.chunks_exact(4);
     for q in &mut pairs {
-        // Rolled, the loop keeps its lanes in registers (see the
-        // disassembly note in DEVELOPERS.md).
+        // Rolled, the loop keeps its lanes in registers.
         crate::dot::no_unroll();
         lanes565::<BE>(pair565(q), lanes);
     }
@@ -760,13 +762,11 @@ fn add_lanes2_565<const BE: bool>(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
     lanes565::<BE>(w, lanes);
 }
 
-/// Window widths (in bytes, 2 per pixel) up to which [`window565`]
-/// sums a row in straight-line code.
-const FIXED_BYTES: usize = 16;
-
-/// [`add_lanes2_565`] for rows of exactly `B` bytes: `B` is a constant,
-/// so the pairs are unrolled and the row needs no loop, no chunk setup
-/// and one bounds check.
+/// [`add_lanes2_565`] for rows of exactly `B` bytes (`b` is `None` for a
+/// last odd row): `B` is a constant, so the pairs are unrolled and the
+/// rows need no loop and no chunk setup. The odd last pixels come from a
+/// 32-bit load of the row's last four bytes, not a 16-bit one, to pack
+/// both rows' into one word cheaply.
 #[inline(always)]
 fn add_fixed2_565<const BE: bool, const B: usize>(
     a: &[u8; B],
@@ -834,9 +834,9 @@ fn window565<const BE: bool, const B: usize>(
     }
 }
 
-/// [`Sampler::add_window`] for RGB565: windows of at most
-/// [`FIXED_BYTES`] bytes a row by [`window565`], wider ones by
-/// [`window_rows`].
+/// [`Sampler::add_window`] for RGB565: windows of at most 8 pixels
+/// (16 bytes) a row by [`window565`] of that width (one jump per
+/// window), wider ones by [`window_rows`].
 #[inline(always)]
 fn add_window565<S: Sampler, const BE: bool>(
     frame: &[u8],
@@ -846,7 +846,6 @@ fn add_window565<S: Sampler, const BE: bool>(
     rows: u32,
     lanes: &mut [u32; 3],
 ) {
-    let _ = FIXED_BYTES;
     match len {
         2 => window565::<BE, 2>(frame, start, stride, rows, lanes),
         4 => window565::<BE, 4>(frame, start, stride, rows, lanes),
