@@ -46,8 +46,11 @@
 //!   are accepted).
 //! * **RGB565 area windows** of at most 1,024 pixel pairs (and odd last
 //!   pixels) are summed two pixels per 32-bit load, the R, G and B fields
-//!   of both in the two 16-bit halves of one `u32` each; larger windows
-//!   pixel by pixel. Both give the same sums.
+//!   of both in the two 16-bit halves of one `u32` each (big-endian
+//!   pixels without a byte swap: their fields are read where they lie);
+//!   larger windows pixel by pixel. Windows of 1 to 8 pixels a row are
+//!   summed by straight-line code of that width, two rows per step. All
+//!   give the same sums.
 //! * **Weights once per output pixel.** Area windows sum the raw colour
 //!   fields and apply the luma (or 8-bit scaling) weights to the sums;
 //!   integer weights make that exactly the sum of weighted pixels.
@@ -514,6 +517,47 @@ trait Sampler {
     fn unlane(lanes: [u32; 3]) -> [u32; 3] {
         lanes
     }
+    /// `add_lanes` on the `rows` rows of one window: `len` bytes each,
+    /// the first at `frame[start..]`, `stride` bytes apart.
+    #[inline(always)]
+    fn add_window(
+        frame: &[u8],
+        start: usize,
+        stride: usize,
+        len: usize,
+        rows: u32,
+        lanes: &mut [u32; 3],
+    ) {
+        window_rows::<Self>(frame, start, stride, len, rows, lanes);
+    }
+}
+
+/// [`Sampler::add_window`] for any width: two rows per step with
+/// `add_lanes2` (half the per-row overhead), then a last odd row.
+#[inline(always)]
+fn window_rows<S: Sampler + ?Sized>(
+    frame: &[u8],
+    mut start: usize,
+    stride: usize,
+    len: usize,
+    rows: u32,
+    lanes: &mut [u32; 3],
+) {
+    let mut left = rows;
+    while left >= 2 {
+        if let Some(two) = frame.get(start..start + stride + len) {
+            if let (Some(a), Some(b)) = (two.get(..len), two.get(stride..)) {
+                S::add_lanes2(a, b, lanes);
+            }
+        }
+        start += 2 * stride;
+        left -= 2;
+    }
+    if left == 1 {
+        if let Some(row) = frame.get(start..start + len) {
+            S::add_lanes(row, lanes);
+        }
+    }
 }
 
 /// The sums are the samples (8-bit channels, shift 0).
@@ -635,48 +679,72 @@ const LANES6: u32 = 0x003F_003F;
 /// Most fields a 16-bit lane may sum: `1024 · 63 < 2^16`.
 const LANE_FIELDS: u64 = 1024;
 
-/// Two RGB565 pixels (4 bytes) as one word, the first pixel's 16-bit word
-/// in the low half: one load on Thumb-2 (and a `rev16` big-endian).
+/// Two RGB565 pixels (4 bytes) as one word exactly as stored, the first
+/// pixel's bytes in the low half: one load on Thumb-2. Big-endian pixels
+/// are not swapped; [`lanes565`] reads their fields where they lie.
 #[inline(always)]
-fn pair565<const BE: bool>(q: &[u8]) -> u32 {
+fn pair565(q: &[u8]) -> u32 {
     let Ok(q) = <&[u8; 4]>::try_from(q) else {
         return 0;
     };
-    let w = u32::from_le_bytes(*q);
+    u32::from_le_bytes(*q)
+}
+
+/// One RGB565 pixel's two bytes as stored, in the low half of a word (a
+/// lane word whose second pixel is missing); see [`pair565`].
+#[inline(always)]
+fn half565(px: &[u8]) -> u32 {
+    match *px {
+        [a, b] => u16::from_le_bytes([a, b]) as u32,
+        _ => 0,
+    }
+}
+
+/// The R, G and B fields of both pixels of a lane word (two pixels as
+/// stored, [`pair565`]) added into the lanes `[R, G, B]`, each
+/// `Σ first-pixel field + 2^16 · Σ second-pixel field`, with one shift-and-
+/// mask and one add per field.
+///
+/// Big-endian halves hold `RRRRRGGG` in their low byte and `GGGBBBBB` in
+/// their high byte: R is bits 3–7 and B bits 8–12 of a half, and G is
+/// split into its high three bits (bits 0–2) and low three (bits 13–15).
+/// Rotating the word right by 13 brings the low three G bits of each half
+/// to bits 0–2 of the same half and the high three G bits of the *other*
+/// half to bits 3–5: one mask gives, per lane, `G_low(this) + 8 ·
+/// G_high(other)` (at most 63, like a G field). The two lanes then hold
+/// the G values of the pixels mixed, but [`unlane565`] adds the two
+/// lanes, so `Σ G` is the same integer; no swap of bytes is needed.
+#[inline(always)]
+fn lanes565<const BE: bool>(w: u32, lanes: &mut [u32; 3]) {
     if BE {
-        // Swap the bytes within each half (`rev16`).
-        w.swap_bytes().rotate_right(16)
+        lanes[0] += (w >> 3) & LANES5;
+        lanes[1] += w.rotate_right(13) & LANES6;
+        lanes[2] += (w >> 8) & LANES5;
     } else {
-        w
+        lanes[0] += (w >> 11) & LANES5;
+        lanes[1] += (w >> 5) & LANES6;
+        lanes[2] += w & LANES5;
     }
 }
 
 /// [`add565`] over a window row, two pixels per step: the word of a pixel
 /// pair is split into its R, G and B fields with one mask each, and the
 /// fields of both pixels are summed at once in the two 16-bit halves of a
-/// `u32` (SIMD within a register): `lanes = [R, G, B]`, each
-/// `Σ first-pixel field + 2^16 · Σ second-pixel field`. The window's
-/// lanes are added up once, by [`unlane565`]; [`FrameConfig::validate`]
-/// allows this only for windows whose lanes hold at most
-/// [`LANE_FIELDS`] fields, so no lane carries into the next. The sums
-/// are the same integers as `add565`'s.
+/// `u32` (SIMD within a register), [`lanes565`]. The window's lanes are
+/// added up once, by [`unlane565`]; [`FrameConfig::validate`] allows this
+/// only for windows whose lanes hold at most [`LANE_FIELDS`] fields, so no
+/// lane carries into the next. The sums are the same integers as
+/// `add565`'s.
 #[inline(always)]
 fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
     let mut pairs = row.chunks_exact(4);
     for q in &mut pairs {
-        // Rolled, the loop keeps its lanes in registers (see the
-        // disassembly note in DEVELOPERS.md).
+        // Rolled, the loop keeps its lanes in registers.
         crate::dot::no_unroll();
-        let w = pair565::<BE>(q);
-        lanes[0] += (w >> 11) & LANES5;
-        lanes[1] += (w >> 5) & LANES6;
-        lanes[2] += w & LANES5;
+        lanes565::<BE>(pair565(q), lanes);
     }
-    // An odd pixel at the end goes into the low lanes.
-    let w = word565::<BE>(pairs.remainder());
-    lanes[0] += (w >> 11) & LANES5;
-    lanes[1] += (w >> 5) & LANES6;
-    lanes[2] += w & LANES5;
+    // An odd pixel at the end goes into the low half.
+    lanes565::<BE>(half565(pairs.remainder()), lanes);
 }
 
 /// [`add_lanes565`] on two rows of one window at once: one loop, and the
@@ -687,16 +755,108 @@ fn add_lanes565<const BE: bool>(row: &[u8], lanes: &mut [u32; 3]) {
 fn add_lanes2_565<const BE: bool>(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
     for (qa, qb) in a.chunks_exact(4).zip(b.chunks_exact(4)) {
         crate::dot::no_unroll();
-        let (wa, wb) = (pair565::<BE>(qa), pair565::<BE>(qb));
-        lanes[0] += ((wa >> 11) & LANES5) + ((wb >> 11) & LANES5);
-        lanes[1] += ((wa >> 5) & LANES6) + ((wb >> 5) & LANES6);
-        lanes[2] += (wa & LANES5) + (wb & LANES5);
+        lanes565::<BE>(pair565(qa), lanes);
+        lanes565::<BE>(pair565(qb), lanes);
     }
-    let w = word565::<BE>(a.chunks_exact(4).remainder())
-        | (word565::<BE>(b.chunks_exact(4).remainder()) << 16);
-    lanes[0] += (w >> 11) & LANES5;
-    lanes[1] += (w >> 5) & LANES6;
-    lanes[2] += w & LANES5;
+    let w = half565(a.chunks_exact(4).remainder()) | (half565(b.chunks_exact(4).remainder()) << 16);
+    lanes565::<BE>(w, lanes);
+}
+
+/// [`add_lanes2_565`] for rows of exactly `B` bytes (`b` is `None` for a
+/// last odd row): `B` is a constant, so the pairs are unrolled and the
+/// rows need no loop and no chunk setup. The odd last pixels come from a
+/// 32-bit load of the row's last four bytes, not a 16-bit one, to pack
+/// both rows' into one word cheaply.
+#[inline(always)]
+fn add_fixed2_565<const BE: bool, const B: usize>(
+    a: &[u8; B],
+    b: Option<&[u8; B]>,
+    lanes: &mut [u32; 3],
+) {
+    let mut i = 0;
+    while i + 4 <= B {
+        let wa = pair565(a.get(i..i + 4).unwrap_or(&[]));
+        lanes565::<BE>(wa, lanes);
+        if let Some(b) = b {
+            let wb = pair565(b.get(i..i + 4).unwrap_or(&[]));
+            lanes565::<BE>(wb, lanes);
+        }
+        i += 4;
+    }
+    if B == 2 {
+        let mut w = half565(a);
+        if let Some(b) = b {
+            w |= half565(b) << 16;
+        }
+        lanes565::<BE>(w, lanes);
+    } else if B % 4 == 2 {
+        // The odd last pixels are the high halves of the rows' last four
+        // bytes: row `a`'s moves to the low half, `b`'s stays high.
+        let wa = pair565(a.get(B - 4..).unwrap_or(&[]));
+        let mut w = wa >> 16;
+        if let Some(b) = b {
+            w |= pair565(b.get(B - 4..).unwrap_or(&[])) & 0xFFFF_0000;
+        }
+        lanes565::<BE>(w, lanes);
+    }
+}
+
+/// `B` bytes of `frame` from `at`, if there are that many.
+#[inline(always)]
+fn row_at<const B: usize>(frame: &[u8], at: usize) -> Option<&[u8; B]> {
+    frame.get(at..)?.first_chunk::<B>()
+}
+
+/// [`Sampler::add_window`] for RGB565 windows `B` bytes wide: two rows
+/// per step, each row straight-line code ([`add_fixed2_565`]).
+#[inline(always)]
+fn window565<const BE: bool, const B: usize>(
+    frame: &[u8],
+    mut start: usize,
+    stride: usize,
+    rows: u32,
+    lanes: &mut [u32; 3],
+) {
+    let mut left = rows;
+    while left >= 2 {
+        if let Some(two) = frame.get(start..start + stride + B) {
+            if let (Some(a), Some(b)) = (two.first_chunk::<B>(), two.last_chunk::<B>()) {
+                add_fixed2_565::<BE, B>(a, Some(b), lanes);
+            }
+        }
+        start += 2 * stride;
+        left -= 2;
+    }
+    if left == 1 {
+        if let Some(a) = row_at::<B>(frame, start) {
+            add_fixed2_565::<BE, B>(a, None, lanes);
+        }
+    }
+}
+
+/// [`Sampler::add_window`] for RGB565: windows of at most 8 pixels
+/// (16 bytes) a row by [`window565`] of that width (one jump per
+/// window), wider ones by [`window_rows`].
+#[inline(always)]
+fn add_window565<S: Sampler, const BE: bool>(
+    frame: &[u8],
+    start: usize,
+    stride: usize,
+    len: usize,
+    rows: u32,
+    lanes: &mut [u32; 3],
+) {
+    match len {
+        2 => window565::<BE, 2>(frame, start, stride, rows, lanes),
+        4 => window565::<BE, 4>(frame, start, stride, rows, lanes),
+        6 => window565::<BE, 6>(frame, start, stride, rows, lanes),
+        8 => window565::<BE, 8>(frame, start, stride, rows, lanes),
+        10 => window565::<BE, 10>(frame, start, stride, rows, lanes),
+        12 => window565::<BE, 12>(frame, start, stride, rows, lanes),
+        14 => window565::<BE, 14>(frame, start, stride, rows, lanes),
+        16 => window565::<BE, 16>(frame, start, stride, rows, lanes),
+        _ => window_rows::<S>(frame, start, stride, len, rows, lanes),
+    }
 }
 
 /// `[Σ R, Σ G, Σ B]` from [`add_lanes565`]'s lanes.
@@ -727,6 +887,17 @@ impl<const BE: bool> Sampler for Rgb565Gray<BE> {
         unlane565(lanes)
     }
     #[inline(always)]
+    fn add_window(
+        frame: &[u8],
+        start: usize,
+        stride: usize,
+        len: usize,
+        rows: u32,
+        lanes: &mut [u32; 3],
+    ) {
+        add_window565::<Self, BE>(frame, start, stride, len, rows, lanes);
+    }
+    #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
         let [r, g, b] = acc;
         [r * w[0] + g * w[1] + b * w[2], 0, 0]
@@ -753,6 +924,17 @@ impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
     #[inline(always)]
     fn unlane(lanes: [u32; 3]) -> [u32; 3] {
         unlane565(lanes)
+    }
+    #[inline(always)]
+    fn add_window(
+        frame: &[u8],
+        start: usize,
+        stride: usize,
+        len: usize,
+        rows: u32,
+        lanes: &mut [u32; 3],
+    ) {
+        add_window565::<Self, BE>(frame, start, stride, len, rows, lanes);
     }
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
@@ -831,7 +1013,16 @@ fn area<S: Sampler, const LANES: bool>(
         }
         let mut x0 = cfg.roi.x;
         let mut ex = 0;
-        for ox in 0..ow {
+        // The window's first byte and its output position, stepped along
+        // the row (the output moves by ±out_c, mirrored or not).
+        let mut wstart = (y0 as usize * fw + x0 as usize) * S::BPP;
+        let mut at = dst_index(p, oy, 0);
+        let step = if ow > 1 {
+            dst_index(p, oy, 1).wrapping_sub(at)
+        } else {
+            0
+        };
+        for _ in 0..ow {
             let mut x1 = x0 + qx;
             ex += rx;
             if ex >= ow {
@@ -839,36 +1030,21 @@ fn area<S: Sampler, const LANES: bool>(
                 x1 += 1;
             }
             let mut acc = [0u32; 3];
-            let mut start = (y0 as usize * fw + x0 as usize) * S::BPP;
+            let mut start = wstart;
             let len = (x1 - x0) as usize * S::BPP;
             let stride = fw * S::BPP;
-            let mut y = y0;
-            // Two rows per step: half the per-row overhead.
             if LANES {
-                while y + 1 < y1 {
-                    if let Some(two) = frame.get(start..start + stride + len) {
-                        if let (Some(a), Some(b)) = (two.get(..len), two.get(stride..)) {
-                            S::add_lanes2(a, b, &mut acc);
-                        }
-                    }
-                    start += 2 * stride;
-                    y += 2;
-                }
-            }
-            for _ in y..y1 {
-                if let Some(row) = frame.get(start..start + len) {
-                    if LANES {
-                        S::add_lanes(row, &mut acc);
-                    } else {
+                S::add_window(frame, start, stride, len, y1 - y0, &mut acc);
+                acc = S::unlane(acc);
+            } else {
+                for _ in y0..y1 {
+                    if let Some(row) = frame.get(start..start + len) {
                         for px in row.chunks_exact(S::BPP) {
                             S::add(px, &mut acc);
                         }
                     }
+                    start += stride;
                 }
-                start += stride;
-            }
-            if LANES {
-                acc = S::unlane(acc);
             }
             let count = (x1 - x0) * (y1 - y0);
             let acc = S::weigh(acc, &p.weights);
@@ -881,7 +1057,9 @@ fn area<S: Sampler, const LANES: bool>(
                     k += 1;
                 }
             }
-            write::<S>(input, table, dst_index(p, oy, ox), codes);
+            write::<S>(input, table, at, codes);
+            at = at.wrapping_add(step);
+            wstart += len;
             x0 = x1;
         }
         y0 = y1;

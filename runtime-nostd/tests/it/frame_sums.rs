@@ -168,3 +168,41 @@ fn rgb565_windows_at_and_past_the_lane_limit_sum_exactly() {
         }
     }
 }
+
+/// RGB565 windows of 1 to 8 pixels a row are summed by straight-line code
+/// of that width (9 and more by the general loop), two rows per step and
+/// a last odd row, with big-endian fields read without a byte swap: every
+/// width from 1 to 10 and height from 1 to 5, inside a frame with a
+/// one-pixel border (odd start, so the 32-bit loads are unaligned), both
+/// byte orders, gray and RGB, random and all-white frames, against the
+/// per-pixel model (the RGB565 bit layout is common practice).
+#[test]
+fn rgb565_windows_of_every_small_shape_sum_exactly() {
+    let table: Vec<i8> = (0..768).map(|i| (i % 256 - 128) as i8).collect();
+    for format in [PixelFormat::Rgb565Le, PixelFormat::Rgb565Be] {
+        for oc in [1, 3] {
+            for ww in 1u32..=10 {
+                for wh in 1u32..=5 {
+                    let (fw, fh) = (3 * ww + 2, 2 * wh + 2);
+                    let cfg = FrameConfig::new(format, fw, fh, 3, 2, oc).roi(1, 1, 3 * ww, 2 * wh);
+                    let p = cfg.validate().unwrap();
+                    let mut s = 0x2545_F491_4F6C_DD1Du64 ^ (ww * 16 + wh) as u64;
+                    let random: Vec<u8> = (0..p.frame_bytes())
+                        .map(|_| {
+                            s ^= s << 13;
+                            s ^= s >> 7;
+                            s ^= s << 17;
+                            (s >> 24) as u8
+                        })
+                        .collect();
+                    for frame in [random, vec![0xFF; p.frame_bytes()]] {
+                        let mut got = vec![0i8; p.input_len()];
+                        convert_frame(&frame, &p, &table, &mut got).unwrap();
+                        let got: Vec<u8> = got.iter().map(|&v| (v as i32 + 128) as u8).collect();
+                        assert_eq!(got, per_pixel_model(&frame, &p), "{cfg:?}");
+                    }
+                }
+            }
+        }
+    }
+}
