@@ -18,6 +18,8 @@
 //!
 //! The arithmetic is in [`quant`] and `docs/quantization.md`; the integer
 //! simulator that runs the result with the `ingot-rt` kernels is [`sim`].
+//! Pass 1 is in `fusion.rs`, pass 2 in `classes.rs`, pass 3 (the step
+//! builder) in `steps.rs`, the errors in `error.rs`.
 
 pub mod ir;
 pub mod quant;
