@@ -6,6 +6,7 @@
 //! observers of [`observe`] and returns [`Ranges`] plus per-map statistics.
 //! A `holdout` share of the images is kept apart for evaluation.
 
+pub mod choose;
 pub mod frames;
 pub mod images;
 pub mod observe;

@@ -11,10 +11,13 @@ use super::size::SizeReport;
 use super::{CheckError, Result};
 use crate::measure::format_db as db;
 use crate::util::{group_digits as thousands, MISSING};
-use plotters::prelude::*;
 use serde::Serialize;
 use std::fmt::Write as _;
 use std::path::Path;
+
+mod charts;
+
+pub use charts::{confusion_svg, sqnr_svg};
 
 /// Figures of one step.
 #[derive(Debug, Clone, Default, PartialEq, Serialize)]
@@ -375,141 +378,6 @@ pub fn markdown(r: &CheckReport) -> String {
     }
     s
 }
-
-fn plot_err(e: impl std::fmt::Display) -> CheckError {
-    CheckError::Format {
-        file: "chart".into(),
-        detail: e.to_string(),
-    }
-}
-
-/// Per-layer SQNR as an SVG bar chart (layers without a finite SQNR are
-/// drawn at the top of the scale and labelled "exact").
-pub fn sqnr_svg(layers: &[LayerFigures]) -> Result<String> {
-    let vals: Vec<(String, f64, bool)> = layers
-        .iter()
-        .filter_map(|l| {
-            l.sqnr_db
-                .map(|v| (format!("{} {}", l.step, l.name), v, v.is_finite()))
-        })
-        .collect();
-    let finite_max = vals
-        .iter()
-        .filter(|v| v.2)
-        .map(|v| v.1)
-        .fold(0.0f64, f64::max);
-    let top = (finite_max * 1.15).max(10.0);
-    let mut svg = String::new();
-    {
-        let width = (160 + 60 * vals.len().max(1)) as u32;
-        let root = SVGBackend::with_string(&mut svg, (width.max(480), 400)).into_drawing_area();
-        root.fill(&WHITE).map_err(plot_err)?;
-        let n = vals.len().max(1);
-        let mut chart = ChartBuilder::on(&root)
-            .caption("Per-layer SQNR vs float reference", ("sans-serif", 18))
-            .margin(12)
-            .x_label_area_size(90)
-            .y_label_area_size(55)
-            .build_cartesian_2d((0..n).into_segmented(), 0.0..top)
-            .map_err(plot_err)?;
-        let names: Vec<String> = vals.iter().map(|v| v.0.clone()).collect();
-        chart
-            .configure_mesh()
-            .disable_x_mesh()
-            .x_labels(n)
-            .x_label_style(
-                ("sans-serif", 11)
-                    .into_font()
-                    .transform(FontTransform::Rotate90),
-            )
-            .x_label_formatter(&|v| match v {
-                SegmentValue::CenterOf(i) => names.get(*i).cloned().unwrap_or_default(),
-                _ => String::new(),
-            })
-            .y_desc("SQNR (dB)")
-            .draw()
-            .map_err(plot_err)?;
-        chart
-            .draw_series(
-                Histogram::vertical(&chart)
-                    .style(RGBColor(60, 110, 180).filled())
-                    .margin(6)
-                    .data(
-                        vals.iter()
-                            .enumerate()
-                            .map(|(i, v)| (i, if v.2 { v.1.max(0.0) } else { top })),
-                    ),
-            )
-            .map_err(plot_err)?;
-        root.present().map_err(plot_err)?;
-    }
-    Ok(svg)
-}
-
-/// A confusion matrix (`[true][predicted]`) as an SVG heatmap with counts.
-pub fn confusion_svg(title: &str, m: &[Vec<u64>], labels: &[String]) -> Result<String> {
-    let n = m.len().max(1);
-    let max = m.iter().flatten().copied().max().unwrap_or(0).max(1);
-    let cell = if n > 20 { 20 } else { 40 };
-    let side = (cell * n) as u32 + 160;
-    let mut svg = String::new();
-    {
-        let root =
-            SVGBackend::with_string(&mut svg, (side.max(360), side.max(360))).into_drawing_area();
-        root.fill(&WHITE).map_err(plot_err)?;
-        let mut chart = ChartBuilder::on(&root)
-            .caption(title, ("sans-serif", 18))
-            .margin(12)
-            .x_label_area_size(70)
-            .y_label_area_size(70)
-            .build_cartesian_2d(0..n, 0..n)
-            .map_err(plot_err)?;
-        let name = |i: usize| labels.get(i).cloned().unwrap_or_else(|| i.to_string());
-        chart
-            .configure_mesh()
-            .disable_mesh()
-            .x_labels(n.min(30))
-            .y_labels(n.min(30))
-            .x_desc("predicted")
-            .y_desc("true")
-            .x_label_formatter(&|&i| if i < n { name(i) } else { String::new() })
-            .y_label_formatter(&|&i| {
-                if i < n {
-                    name(n - 1 - i)
-                } else {
-                    String::new()
-                }
-            })
-            .draw()
-            .map_err(plot_err)?;
-        let cells = m
-            .iter()
-            .enumerate()
-            .flat_map(|(t, row)| row.iter().enumerate().map(move |(p, &v)| (t, p, v)));
-        chart
-            .draw_series(cells.clone().map(|(t, p, v)| {
-                let f = v as f64 / max as f64;
-                let shade = (255.0 * (1.0 - 0.85 * f)) as u8;
-                let y = n - 1 - t;
-                Rectangle::new(
-                    [(p, y), (p + 1, y + 1)],
-                    RGBColor(shade, shade, 255).filled(),
-                )
-            }))
-            .map_err(plot_err)?;
-        if n <= 20 {
-            chart
-                .draw_series(cells.map(|(t, p, v)| {
-                    let y = n - 1 - t;
-                    Text::new(v.to_string(), (p, y + 1), ("sans-serif", 12).into_font())
-                }))
-                .map_err(plot_err)?;
-        }
-        root.present().map_err(plot_err)?;
-    }
-    Ok(svg)
-}
-
 /// File ingot writes into every report folder; only a folder holding it
 /// (or an empty one) is ever replaced.
 pub const REPORT_MARKER: &str = ".ingot-report";
