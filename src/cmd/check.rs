@@ -450,7 +450,7 @@ fn summary(
             if let Some(f) = i.frame_to_input_mean {
                 let _ = writeln!(
                     s,
-                    "  frame step:     {} instructions per frame in frame_to_input; {} per frame with the inference",
+                    "  frame_to_input: {} instructions per frame; {} per frame with the inference",
                     f,
                     f + i.per_inference_mean
                 );
