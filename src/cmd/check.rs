@@ -407,6 +407,9 @@ fn summary(
     };
     s.push_str(&accuracy::summary_lines(r, &acc_line));
     s.push_str(&ingot_compiler::check::camera::summary(r.camera.as_ref()));
+    s.push_str(&ingot_compiler::check::camera::frame_step_summary(
+        r.frame_step.as_ref(),
+    ));
     if let Some(f) = &r.float {
         let _ = writeln!(
             s,
@@ -444,6 +447,14 @@ fn summary(
                 i.macs,
                 a.on
             );
+            if let Some(f) = i.frame_to_input_mean {
+                let _ = writeln!(
+                    s,
+                    "  frame_to_input: {} instructions per frame; {} per frame with the inference",
+                    f,
+                    f + i.per_inference_mean
+                );
+            }
         }
         None => {
             let _ = writeln!(

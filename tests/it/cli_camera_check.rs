@@ -176,3 +176,103 @@ fn calibrate_takes_the_camera_options() {
         String::from_utf8_lossy(&o.stderr)
     );
 }
+
+/// A missing emulator skips, except under `INGOT_REQUIRE_EMULATION=1`.
+fn emulator_or_skip() -> bool {
+    let ok = Command::new("qemu-system-arm")
+        .arg("--version")
+        .output()
+        .is_ok_and(|o| o.status.success());
+    if !ok {
+        if std::env::var("INGOT_REQUIRE_EMULATION").is_ok_and(|v| v == "1") {
+            panic!("INGOT_REQUIRE_EMULATION=1, but qemu-system-arm cannot be run");
+        }
+        eprintln!("skipping: qemu-system-arm cannot be run");
+    }
+    ok
+}
+
+#[test]
+fn check_on_m4_runs_frame_to_input_on_the_device() {
+    if !emulator_or_skip() {
+        return;
+    }
+    let t = tempfile::tempdir().unwrap();
+    // Two pictures per class keep the emulated runs short.
+    let images = t.path().join("images");
+    for class in 0..10 {
+        let from = digits().join("heldout").join(class.to_string());
+        let to = images.join(class.to_string());
+        std::fs::create_dir_all(&to).unwrap();
+        let mut names: Vec<_> = std::fs::read_dir(&from)
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .collect();
+        names.sort();
+        for p in names.iter().take(2) {
+            std::fs::copy(p, to.join(p.file_name().unwrap())).unwrap();
+        }
+    }
+    let report = t.path().join("report");
+    let d = digits();
+    let o = ingot(
+        &[
+            "check",
+            "--on",
+            "m4",
+            d.join("model/digits.graph.json").to_str().unwrap(),
+            "--calib-images",
+            d.join("calibration").to_str().unwrap(),
+            "--images",
+            images.to_str().unwrap(),
+            "--report",
+            report.to_str().unwrap(),
+            "--camera-format",
+            "rgb565le",
+            "--frame",
+            "16x12",
+        ],
+        &[],
+    );
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    assert!(
+        o.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    assert!(
+        stdout.contains("frame step:     frame_to_input ran on the raw frames (host, Cortex-M4")
+            || stdout.contains("frame step:     frame_to_input ran on the raw frames (host, m4"),
+        "{stdout}"
+    );
+    assert!(
+        stdout.contains("equal the host's convert_frame on all 20 images"),
+        "{stdout}"
+    );
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
+    // Both runners computed the input codes from the raw frames themselves.
+    let runs = json["frame_step"]["runs"].as_array().unwrap();
+    assert_eq!(runs.len(), 2, "{json}");
+    for r in runs {
+        assert_eq!(r["mismatched_images"].as_array().unwrap().len(), 0, "{r}");
+    }
+    // The outputs of frame_to_input + run on the core are the simulator's
+    // (which was given the host's convert_frame codes), bit for bit.
+    assert_eq!(
+        json["bit_exact"]["mismatched_images"]
+            .as_array()
+            .unwrap()
+            .len(),
+        0,
+        "{}",
+        json["bit_exact"]
+    );
+    let i = &json["instructions"];
+    let f = i["frame_to_input_mean"].as_u64().unwrap();
+    // 16×12 RGB565 to 8×8: a few thousand instructions, not zero (a frame
+    // step that was skipped) and not millions.
+    assert!(f > 100 && f < 200_000, "{i}");
+    assert!(json["failures"].as_array().unwrap().is_empty(), "{json}");
+}

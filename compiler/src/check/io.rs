@@ -2,18 +2,28 @@
 //!
 //! * inputs: `b"INGI"`, `u32 count`, `u32 input_len`, then `count ·
 //!   input_len` int8 codes.
+//! * frames (camera runs, instead of inputs): `b"INGF"`, `u32 count`,
+//!   `u32 frame_bytes`, then `count · frame_bytes` raw camera-frame bytes.
+//!   The runner calls the module's `frame_to_input` on each frame and also
+//!   writes the input codes it computed as `codes.bin`, in the inputs
+//!   layout above.
 //! * outputs: `b"INGO"`, `u32 count`, `u32 output_len`, then `count ·
 //!   output_len` int8 codes.
 //! * trace: `b"INGT"`, then records `u32 image, u32 step, u32 name_len,
 //!   name, u32 len, len int8 codes` until the end of the file.
 //! * counts (emulated runners): `b"INGC"`, then 24-byte records `u32 tag,
 //!   u32 image, u32 step, u32 0, u64 value` (see [`CountTag`]).
+//!
+//! Without a camera the runners read and write exactly what they did
+//! before frames existed.
 
 use super::{CheckError, Result};
 use std::path::Path;
 
 /// Magic of the inputs file.
 pub const INPUTS_MAGIC: &[u8; 4] = b"INGI";
+/// Magic of the frames file (camera runs).
+pub const FRAMES_MAGIC: &[u8; 4] = b"INGF";
 /// Magic of the outputs file.
 pub const OUTPUTS_MAGIC: &[u8; 4] = b"INGO";
 /// Magic of the trace file.
@@ -42,6 +52,24 @@ pub fn encode_batch(magic: &[u8; 4], len: usize, items: &[Vec<i8>]) -> Result<Ve
             ));
         }
         out.extend(it.iter().map(|&v| v as u8));
+    }
+    Ok(out)
+}
+
+/// `count` raw camera frames of `frame_bytes` bytes each as one file.
+pub fn encode_frames(frame_bytes: usize, frames: &[Vec<u8>]) -> Result<Vec<u8>> {
+    let mut out = Vec::with_capacity(12 + frame_bytes * frames.len());
+    out.extend_from_slice(FRAMES_MAGIC);
+    out.extend_from_slice(&(frames.len() as u32).to_le_bytes());
+    out.extend_from_slice(&(frame_bytes as u32).to_le_bytes());
+    for (i, f) in frames.iter().enumerate() {
+        if f.len() != frame_bytes {
+            return Err(bad(
+                "frames",
+                format!("frame {i} has {} bytes, expected {frame_bytes}", f.len()),
+            ));
+        }
+        out.extend_from_slice(f);
     }
     Ok(out)
 }
@@ -183,6 +211,8 @@ pub enum CountTag {
     TimerOverhead = 4,
     /// Ticks of one whole `run_traced` call, hook time excluded.
     TracedRun = 5,
+    /// Ticks of one `frame_to_input` call (camera runs), for `image`.
+    FrameToInput = 6,
 }
 
 /// One record of the counts file.
@@ -219,6 +249,7 @@ pub fn decode_counts(bytes: &[u8]) -> Result<Vec<CountRecord>> {
                 3 => CountTag::Stack,
                 4 => CountTag::TimerOverhead,
                 5 => CountTag::TracedRun,
+                6 => CountTag::FrameToInput,
                 t => return Err(bad("counts", format!("unknown tag {t}"))),
             };
             Ok(CountRecord {
@@ -259,6 +290,13 @@ mod tests {
         assert!(decode_batch(INPUTS_MAGIC, &bytes, "t").is_err());
         assert!(decode_batch(OUTPUTS_MAGIC, &bytes[..bytes.len() - 1], "t").is_err());
         assert!(encode_batch(OUTPUTS_MAGIC, 2, &items).is_err());
+
+        let frames = encode_frames(4, &[vec![1, 2, 3, 4], vec![5, 6, 7, 8]]).unwrap();
+        assert_eq!(&frames[..4], FRAMES_MAGIC);
+        assert_eq!(frames.len(), 12 + 8);
+        assert_eq!(frames[8..12], 4u32.to_le_bytes());
+        assert_eq!(frames[12..], [1, 2, 3, 4, 5, 6, 7, 8]);
+        assert!(encode_frames(3, &[vec![1, 2, 3, 4]]).is_err());
     }
 
     #[test]
@@ -293,6 +331,12 @@ mod tests {
                 image: 3,
                 step: 7,
                 value: 12,
+            },
+            CountRecord {
+                tag: CountTag::FrameToInput,
+                image: 1,
+                step: 0,
+                value: 99,
             },
         ];
         let bytes = encode_counts(&recs);

@@ -68,6 +68,13 @@ pub struct CheckData {
     pub weight_form: Option<String>,
     /// Quantized inputs, one per image (`INPUT_LEN` codes each).
     pub inputs: Vec<Vec<i8>>,
+    /// Camera runs: the raw camera frame of each image (`frame_bytes`
+    /// each). The runners then get these instead of `inputs`, call the
+    /// module's `frame_to_input`, and the codes they make are compared with
+    /// `inputs` (the host's `convert_frame`).
+    pub frames: Option<Vec<Vec<u8>>>,
+    /// Bytes of one camera frame (camera runs).
+    pub frame_bytes: usize,
     /// Elements of one input.
     pub input_len: usize,
     /// Elements of one output.
@@ -146,16 +153,28 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
     if data.inputs.is_empty() {
         return Err(CheckError::Module("no images to check".into()));
     }
+    let frames = data.frames.is_some();
+    // Camera runs hand the runner raw frames; without a camera, codes.
+    let run = |r: &runner::Runner, cfg: &BuildConfig| match &data.frames {
+        Some(f) => r.run_frames(
+            f,
+            data.frame_bytes,
+            data.input_len,
+            Some(data.output_len),
+            cfg,
+        ),
+        None => r.run(&data.inputs, data.input_len, Some(data.output_len), cfg),
+    };
+    let mut frame_runs = Vec::new();
     let host_cfg = BuildConfig {
         trace: TraceMode::Maps,
+        frames,
         ..plan.build.clone()
     };
-    let host = runner::build(module, RunOn::Host, &host_cfg)?.run(
-        &data.inputs,
-        data.input_len,
-        Some(data.output_len),
-        &host_cfg,
-    )?;
+    let host = run(&runner::build(module, RunOn::Host, &host_cfg)?, &host_cfg)?;
+    if let Some(c) = &host.codes {
+        frame_runs.push(("host".to_string(), c.clone()));
+    }
 
     let mut report = CheckReport {
         model: data.model.clone(),
@@ -178,15 +197,14 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
         // reported with its own total.
         let plain_cfg = BuildConfig {
             trace: TraceMode::Off,
+            frames,
             ..plan.build.clone()
         };
         let fw = runner::build(module, plan.on, &plain_cfg)?;
-        let out = fw.run(
-            &data.inputs,
-            data.input_len,
-            Some(data.output_len),
-            &plain_cfg,
-        )?;
+        let out = run(&fw, &plain_cfg)?;
+        if let Some(c) = &out.codes {
+            frame_runs.push((plan.on.to_string(), c.clone()));
+        }
         let cal = icount::calibrate(plan.on, &plain_cfg)?;
         let counts = out.counts.clone().unwrap_or_default();
         let per: Vec<u64> = counts
@@ -213,15 +231,11 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
 
         let traced_cfg = BuildConfig {
             trace: TraceMode::Counts,
+            frames,
             ..plan.build.clone()
         };
         let tfw = runner::build(module, plan.on, &traced_cfg)?;
-        let tout = tfw.run(
-            &data.inputs,
-            data.input_len,
-            Some(data.output_len),
-            &traced_cfg,
-        )?;
+        let tout = run(&tfw, &traced_cfg)?;
         let tcounts = tout.counts.unwrap_or_default();
         let images = tcounts.step_ticks.len().max(1) as u64;
         let steps_n = tcounts.step_ticks.iter().map(Vec::len).max().unwrap_or(0);
@@ -243,6 +257,10 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
             macs,
             per_mac: (macs > 0).then(|| mean as f64 / macs as f64),
             traced_per_inference_mean: Some(traced_mean),
+            frame_to_input_mean: (!counts.frame_ticks.is_empty()).then(|| {
+                cal.instructions(counts.frame_ticks.iter().sum::<u64>())
+                    / counts.frame_ticks.len() as u64
+            }),
             calibration: cal.clone(),
             per_kind: Vec::new(),
         });
@@ -264,6 +282,12 @@ pub fn run_check(module: &ModuleFiles, data: &CheckData, plan: &CheckPlan) -> Re
         emulated_outputs = Some(out.outputs);
     } else {
         report.layers = layer_rows(data, &[]);
+    }
+
+    if frames {
+        let step = super::camera::frame_step(&frame_runs, &data.inputs);
+        report.failures.extend(step.failures());
+        report.frame_step = Some(step);
     }
 
     if let Some(sim) = &data.sim_outputs {

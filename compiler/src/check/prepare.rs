@@ -383,6 +383,20 @@ fn compare_data(
         }
         data.inputs.push(codes);
     }
+    // Camera runs: the runners get each sample's raw frame and call the
+    // module's `frame_to_input` themselves (`.npy` samples have no frame:
+    // then the codes go to the runners as before).
+    if let Some(cam) = set.camera() {
+        let frames: Option<Vec<Vec<u8>>> = (0..set.len())
+            .map(|i| set.frame(i).map_err(PrepareError::Images))
+            .collect::<Result<Vec<_>, _>>()?
+            .into_iter()
+            .collect();
+        if frames.is_some() {
+            data.frame_bytes = cam.frame_bytes();
+        }
+        data.frames = frames;
+    }
     data.step_sqnr = sums
         .into_iter()
         .map(|(sig, noise, seen)| {

@@ -52,6 +52,10 @@ pub struct InstructionFigures {
     /// Mean instructions of `run_traced` (hook time excluded) in the
     /// traced build the per-layer figures come from.
     pub traced_per_inference_mean: Option<u64>,
+    /// Camera runs: mean instructions of the module's `frame_to_input`
+    /// (camera frame to input codes), on top of `run`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub frame_to_input_mean: Option<u64>,
     /// The calibration used.
     pub calibration: Calibration,
     /// Per-layer figures summed by kernel kind (from the traced build).
@@ -156,6 +160,10 @@ pub struct CheckReport {
     /// With a camera: the device path against host-resized pictures.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub camera: Option<super::camera::CameraFigures>,
+    /// Camera runs: the input codes each runner's `frame_to_input` made
+    /// against the host's `convert_frame`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub frame_step: Option<super::camera::FrameStep>,
 }
 
 fn pct(x: f64) -> String {
@@ -256,6 +264,7 @@ pub fn markdown(r: &CheckReport) -> String {
     }
     s.push_str(&super::accuracy::markdown(r));
     s.push_str(&super::camera::markdown(r.camera.as_ref()));
+    s.push_str(&super::camera::frame_step_markdown(r.frame_step.as_ref()));
 
     if !r.layers.is_empty() {
         let _ = writeln!(s, "## Layers\n");
@@ -298,6 +307,14 @@ pub fn markdown(r: &CheckReport) -> String {
                 .map(|p| format!(", {p:.2} instructions per MAC"))
                 .unwrap_or_default()
         );
+        if let Some(f) = i.frame_to_input_mean {
+            let _ = writeln!(
+                s,
+                "Camera frame to input codes (`frame_to_input`, before each inference): mean {} instructions; with the inference, {} per frame.\n",
+                thousands(f),
+                thousands(f + i.per_inference_mean)
+            );
+        }
         let _ = writeln!(
             s,
             "These are instructions executed by the emulated core (QEMU {}, `-icount shift=0`), not cycles: QEMU does not model pipelines, caches or wait states. SysTick ticks are converted with a measured {:.3} instructions per tick (resolution ±1 tick per measurement).\n",

@@ -57,6 +57,9 @@ pub struct BuildConfig {
     pub cargo: PathBuf,
     /// The `qemu-system-arm` to call.
     pub qemu: PathBuf,
+    /// Camera runs: the runner reads raw camera frames and calls the
+    /// module's `frame_to_input` before `run` (see [`Runner::run_frames`]).
+    pub frames: bool,
 }
 
 impl Default for BuildConfig {
@@ -71,6 +74,7 @@ impl Default for BuildConfig {
                 .map(PathBuf::from)
                 .unwrap_or_else(|| "cargo".into()),
             qemu: "qemu-system-arm".into(),
+            frames: false,
         }
     }
 }
@@ -125,6 +129,8 @@ pub struct Counts {
     pub timer_overhead_ticks: u64,
     /// Highest stack use seen, bytes (painted stack).
     pub stack_bytes: Option<u64>,
+    /// Camera runs: ticks of each image's `frame_to_input` call.
+    pub frame_ticks: Vec<u64>,
 }
 
 impl Counts {
@@ -140,6 +146,12 @@ impl Counts {
             match r.tag {
                 CountTag::Run if r.image < images => c.run_ticks[r.image] = r.value,
                 CountTag::TracedRun if r.image < images => c.traced_ticks[r.image] = r.value,
+                CountTag::FrameToInput if r.image < images => {
+                    if c.frame_ticks.len() < images {
+                        c.frame_ticks.resize(images, 0);
+                    }
+                    c.frame_ticks[r.image] = r.value;
+                }
                 CountTag::Step if r.image < images => {
                     let v = &mut c.step_ticks[r.image];
                     if v.len() <= r.step {
@@ -165,6 +177,9 @@ pub struct RunOutput {
     pub trace: Vec<TraceMap>,
     /// Emulated runs only.
     pub counts: Option<Counts>,
+    /// Camera runs: the input codes the runner's `frame_to_input` made,
+    /// one vector per frame.
+    pub codes: Option<Vec<Vec<i8>>>,
     /// Whatever the runner printed (QEMU's semihosting console included).
     pub console: String,
     /// Wall-clock time of the run.
@@ -317,11 +332,18 @@ pub(crate) fn runner_files(kind: Kind, module_name: &str, cfg: &BuildConfig) -> 
             bytes: BUILD_RS.as_bytes().to_vec(),
         });
     }
+    // Camera runs (host and firmware runners): the runner reads frames and
+    // calls `frame_to_input`.
+    let features = if cfg.frames && !matches!(kind, Kind::Calibration(_)) {
+        "default = [\"ingot-trace\", \"ingot-camera\"]\ningot-trace = []\n# The runner reads camera frames and calls `frame_to_input`.\ningot-camera = []\n"
+    } else {
+        "default = [\"ingot-trace\"]\ningot-trace = []\n"
+    };
     // The package name is filled in by project_files (it carries the hash).
     files.push(ProjectFile {
         path: "Cargo.toml".into(),
         bytes: format!(
-            "[package]\nname = \"@NAME@\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n[dependencies]\n{deps}\n# Generated modules gate `run_traced` behind this feature.\n[features]\ndefault = [\"ingot-trace\"]\ningot-trace = []\n\n{profile}\n# Its own workspace: never part of an enclosing one.\n[workspace]\n"
+            "[package]\nname = \"@NAME@\"\nversion = \"0.0.0\"\nedition = \"2021\"\npublish = false\n\n[dependencies]\n{deps}\n# Generated modules gate `run_traced` behind this feature.\n[features]\n{features}\n{profile}\n# Its own workspace: never part of an enclosing one.\n[workspace]\n"
         )
         .into_bytes(),
     });
@@ -618,8 +640,39 @@ impl Runner {
         output_len: Option<usize>,
         cfg: &BuildConfig,
     ) -> Result<RunOutput> {
+        let bytes = io::encode_batch(io::INPUTS_MAGIC, input_len, inputs)?;
+        self.run_file(&bytes, inputs.len(), None, output_len, cfg)
+    }
+
+    /// Runs every raw camera frame through the module's `frame_to_input`
+    /// and then `run` (a runner built with [`BuildConfig::frames`]); the
+    /// output's `codes` are the input codes the runner computed.
+    pub fn run_frames(
+        &self,
+        frames: &[Vec<u8>],
+        frame_bytes: usize,
+        input_len: usize,
+        output_len: Option<usize>,
+        cfg: &BuildConfig,
+    ) -> Result<RunOutput> {
+        let bytes = io::encode_frames(frame_bytes, frames)?;
+        self.run_file(&bytes, frames.len(), Some(input_len), output_len, cfg)
+    }
+
+    /// Runs the runner on an `input.bin` of `count` items; `codes_len`:
+    /// a camera run, whose runner writes `codes.bin` too.
+    fn run_file(
+        &self,
+        input_bin: &[u8],
+        count: usize,
+        codes_len: Option<usize>,
+        output_len: Option<usize>,
+        cfg: &BuildConfig,
+    ) -> Result<RunOutput> {
         let dir = RunDir::new(cfg)?;
-        io::write_inputs(&dir.0.join("input.bin"), input_len, inputs)?;
+        let in_path = dir.0.join("input.bin");
+        std::fs::write(&in_path, input_bin)
+            .map_err(|e| CheckError::io(format!("writing {}", in_path.display()), e))?;
         let start = Instant::now();
         let what = format!("{} ({})", self.on, self.binary.display());
         let (ok, console) = match self.on.board() {
@@ -646,12 +699,31 @@ impl Runner {
             });
         }
         let outputs = io::read_outputs(&dir.0.join("output.bin"), output_len)?;
-        if outputs.len() != inputs.len() {
+        if outputs.len() != count {
             return Err(CheckError::Format {
                 file: "outputs".into(),
-                detail: format!("{} outputs for {} inputs", outputs.len(), inputs.len()),
+                detail: format!("{} outputs for {count} inputs", outputs.len()),
             });
         }
+        let codes = match codes_len {
+            Some(len) => {
+                let p = dir.0.join("codes.bin");
+                let bytes = std::fs::read(&p)
+                    .map_err(|e| CheckError::io(format!("reading {}", p.display()), e))?;
+                let (got, codes) = io::decode_batch(io::INPUTS_MAGIC, &bytes, "codes")?;
+                if got != len || codes.len() != count {
+                    return Err(CheckError::Format {
+                        file: "codes".into(),
+                        detail: format!(
+                            "{} × {got} codes for {count} frames of {len} codes",
+                            codes.len()
+                        ),
+                    });
+                }
+                Some(codes)
+            }
+            None => None,
+        };
         let trace_path = dir.0.join("trace.bin");
         let trace = if trace_path.exists() {
             io::read_trace(&trace_path)?
@@ -662,10 +734,7 @@ impl Runner {
             let p = dir.0.join("counts.bin");
             let bytes = std::fs::read(&p)
                 .map_err(|e| CheckError::io(format!("reading {}", p.display()), e))?;
-            Some(Counts::from_records(
-                &io::decode_counts(&bytes)?,
-                inputs.len(),
-            ))
+            Some(Counts::from_records(&io::decode_counts(&bytes)?, count))
         } else {
             None
         };
@@ -673,6 +742,7 @@ impl Runner {
             outputs,
             trace,
             counts,
+            codes,
             console,
             wall,
         })

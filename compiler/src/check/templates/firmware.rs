@@ -3,7 +3,9 @@
 //! Reads `input.bin` and writes `output.bin`, `counts.bin` (and `trace.bin`)
 //! through semihosting, in QEMU's working directory. Times each inference
 //! with SysTick on the core clock; under `-icount shift=0` that clock counts
-//! executed instructions.
+//! executed instructions. With the `ingot-camera` feature `input.bin` holds
+//! raw camera frames: each goes through the module's `frame_to_input` (timed
+//! too), the codes it made are written to `codes.bin`, then `run`.
 #![no_std]
 #![no_main]
 
@@ -27,6 +29,14 @@ static mut SCRATCH: model::Scratch = model::Scratch::new();
 static mut INPUT: [i8; model::INPUT_LEN] = [0; model::INPUT_LEN];
 static mut OUTPUT: [i8; model::OUTPUT_LEN] = [0; model::OUTPUT_LEN];
 static mut OUTPUT2: [i8; model::OUTPUT_LEN] = [0; model::OUTPUT_LEN];
+#[cfg(feature = "ingot-camera")]
+static mut FRAME: [u8; model::FRAME_BYTES] = [0; model::FRAME_BYTES];
+
+/// Magic and per-item length `input.bin` must announce.
+#[cfg(not(feature = "ingot-camera"))]
+const IN_HEADER: (&[u8], usize) = (b"INGI", model::INPUT_LEN);
+#[cfg(feature = "ingot-camera")]
+const IN_HEADER: (&[u8], usize) = (b"INGF", model::FRAME_BYTES);
 
 @SYSTICK@
 
@@ -132,15 +142,19 @@ fn main() -> ! {
     let fout = open(b"output.bin\0", 5);
     let fcount = open(b"counts.bin\0", 5);
     let ftrace = if TRACE_MAPS { open(b"trace.bin\0", 5) } else { 0 };
+    #[cfg(feature = "ingot-camera")]
+    let fcodes = open(b"codes.bin\0", 5);
+    #[cfg(feature = "ingot-camera")]
+    let frame = unsafe { &mut *core::ptr::addr_of_mut!(FRAME) };
 
     let mut header = [0u8; 12];
     read_exact(fin, header.as_mut_ptr(), 12);
-    if &header[0..4] != b"INGI" {
-        fail("input.bin has no INGI header");
+    if &header[0..4] != IN_HEADER.0 {
+        fail("input.bin has the wrong header");
     }
     let count = u32::from_le_bytes([header[4], header[5], header[6], header[7]]);
     let len = u32::from_le_bytes([header[8], header[9], header[10], header[11]]) as usize;
-    if len != model::INPUT_LEN {
+    if len != IN_HEADER.1 {
         fail("input.bin has the wrong input length");
     }
     let mut oh = [0u8; 12];
@@ -152,13 +166,31 @@ fn main() -> ! {
     if TRACE_MAPS {
         write_all(ftrace, b"INGT");
     }
+    #[cfg(feature = "ingot-camera")]
+    {
+        let mut ch = [0u8; 12];
+        ch[0..4].copy_from_slice(b"INGI");
+        ch[4..8].copy_from_slice(&count.to_le_bytes());
+        ch[8..12].copy_from_slice(&(model::INPUT_LEN as u32).to_le_bytes());
+        write_all(fcodes, &ch);
+    }
 
     let a = now();
     let b = now();
     record(fcount, 4, 0, 0, b - a);
 
     for image in 0..count {
+        #[cfg(not(feature = "ingot-camera"))]
         read_exact(fin, input.as_mut_ptr() as *mut u8, model::INPUT_LEN);
+        #[cfg(feature = "ingot-camera")]
+        {
+            read_exact(fin, frame.as_mut_ptr(), model::FRAME_BYTES);
+            let f0 = now();
+            model::frame_to_input(frame, input);
+            let f1 = now();
+            record(fcount, 6, image, 0, f1 - f0);
+            write_all(fcodes, bytes_of(&input[..]));
+        }
         let t0 = now();
         model::run(scratch, input, output);
         let t1 = now();
@@ -196,6 +228,10 @@ fn main() -> ! {
     for fd in [fin, fout, fcount] {
         unsafe { syscall!(CLOSE, fd) };
     }
+    #[cfg(feature = "ingot-camera")]
+    unsafe {
+        syscall!(CLOSE, fcodes)
+    };
     if TRACE_MAPS {
         unsafe { syscall!(CLOSE, ftrace) };
     }
