@@ -472,10 +472,10 @@ pub fn convert_frame(
         (PixelFormat::Yuyv, _) => run::<YuyvY>(frame, p, table, input),
         (PixelFormat::Rgb888, 1) => run::<Rgb888Gray>(frame, p, table, input),
         (PixelFormat::Rgb888, _) => run::<Rgb888Rgb>(frame, p, table, input),
-        (PixelFormat::Rgb565Le, 1) => run::<Rgb565Gray<false>>(frame, p, table, input),
-        (PixelFormat::Rgb565Le, _) => run::<Rgb565Rgb<false>>(frame, p, table, input),
-        (PixelFormat::Rgb565Be, 1) => run::<Rgb565Gray<true>>(frame, p, table, input),
-        (PixelFormat::Rgb565Be, _) => run::<Rgb565Rgb<true>>(frame, p, table, input),
+        (PixelFormat::Rgb565Le, 1) => run::<Rgb565<false, 1>>(frame, p, table, input),
+        (PixelFormat::Rgb565Le, _) => run::<Rgb565<false, 3>>(frame, p, table, input),
+        (PixelFormat::Rgb565Be, 1) => run::<Rgb565<true, 1>>(frame, p, table, input),
+        (PixelFormat::Rgb565Be, _) => run::<Rgb565<true, 3>>(frame, p, table, input),
     }
     Ok(())
 }
@@ -865,10 +865,12 @@ fn unlane565(lanes: [u32; 3]) -> [u32; 3] {
     lanes.map(|l| (l & 0xFFFF) + (l >> 16))
 }
 
-struct Rgb565Gray<const BE: bool>;
-impl<const BE: bool> Sampler for Rgb565Gray<BE> {
+/// RGB565 pixels, big-endian when `BE`, into `CH` channels: 1 (gray, the
+/// three fields weighed into one sum) or 3.
+struct Rgb565<const BE: bool, const CH: usize>;
+impl<const BE: bool, const CH: usize> Sampler for Rgb565<BE, CH> {
     const BPP: usize = 2;
-    const CH: usize = 1;
+    const CH: usize = CH;
     #[inline(always)]
     fn add(px: &[u8], acc: &mut [u32; 3]) {
         add565::<BE>(px, acc);
@@ -900,46 +902,11 @@ impl<const BE: bool> Sampler for Rgb565Gray<BE> {
     #[inline(always)]
     fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
         let [r, g, b] = acc;
-        [r * w[0] + g * w[1] + b * w[2], 0, 0]
-    }
-}
-
-struct Rgb565Rgb<const BE: bool>;
-impl<const BE: bool> Sampler for Rgb565Rgb<BE> {
-    const BPP: usize = 2;
-    const CH: usize = 3;
-    #[inline(always)]
-    fn add(px: &[u8], acc: &mut [u32; 3]) {
-        add565::<BE>(px, acc);
-    }
-    const LANES: bool = true;
-    #[inline(always)]
-    fn add_lanes(row: &[u8], lanes: &mut [u32; 3]) {
-        add_lanes565::<BE>(row, lanes);
-    }
-    #[inline(always)]
-    fn add_lanes2(a: &[u8], b: &[u8], lanes: &mut [u32; 3]) {
-        add_lanes2_565::<BE>(a, b, lanes);
-    }
-    #[inline(always)]
-    fn unlane(lanes: [u32; 3]) -> [u32; 3] {
-        unlane565(lanes)
-    }
-    #[inline(always)]
-    fn add_window(
-        frame: &[u8],
-        start: usize,
-        stride: usize,
-        len: usize,
-        rows: u32,
-        lanes: &mut [u32; 3],
-    ) {
-        add_window565::<Self, BE>(frame, start, stride, len, rows, lanes);
-    }
-    #[inline(always)]
-    fn weigh(acc: [u32; 3], w: &[u32; 3]) -> [u32; 3] {
-        let [r, g, b] = acc;
-        [r * w[0], g * w[1], b * w[2]]
+        if CH == 1 {
+            [r * w[0] + g * w[1] + b * w[2], 0, 0]
+        } else {
+            [r * w[0], g * w[1], b * w[2]]
+        }
     }
 }
 
