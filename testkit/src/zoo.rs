@@ -150,6 +150,32 @@ impl Net {
     }
 }
 
+/// Writes `count` gray PGM pictures `img0.pgm`, `img1.pgm`, ... of
+/// `width`×`height` into `dir` (created if missing): a diagonal gradient,
+/// shifted per picture, plus seeded noise. Calibration and check images
+/// for the zoo networks, whose weights are random anyway.
+pub fn write_gray_pictures(
+    dir: &Path,
+    width: usize,
+    height: usize,
+    count: usize,
+    seed: u64,
+) -> std::io::Result<()> {
+    std::fs::create_dir_all(dir)?;
+    let mut rng = Rng::new(seed);
+    for k in 0..count {
+        let mut pgm = format!("P5\n{width} {height}\n255\n").into_bytes();
+        for y in 0..height {
+            for x in 0..width {
+                let v = (x + y + 40 * k) as f32 + 60.0 * rng.uniform();
+                pgm.push(v.min(255.0) as u8);
+            }
+        }
+        std::fs::write(dir.join(format!("img{k}.pgm")), pgm)?;
+    }
+    Ok(())
+}
+
 /// Validates a graph file against its tensors, under the fake path
 /// `<zoo>/{name}.graph.json`.
 ///
