@@ -16,6 +16,7 @@ use ingot_compiler::check::report::{self, KindFigures, LayerFigures};
 use ingot_compiler::check::runner::BuildConfig;
 use ingot_compiler::check::size::Budget;
 use ingot_compiler::check::RunOn;
+use ingot_compiler::codegen::WeightForm;
 use ingot_compiler::driver::{self, RangesSource};
 use ingot_compiler::lower::ir::{QGraph, QKernel};
 use std::fmt::Write as _;
@@ -100,21 +101,22 @@ impl std::fmt::Display for BenchError {
 impl std::error::Error for BenchError {}
 
 /// Runs `ingot check` on `on` the way the command line does (ranges by
-/// min/max calibration on `images`, the weight form of the core, no
-/// target profile, no accuracy gates), writing the module under `work`,
-/// and condenses the report. `core` names the row.
+/// min/max calibration on `images`, the weight form `weight_form` or else
+/// the core's, no target profile, no accuracy gates), writing the module
+/// under `work`, and condenses the report. `core` names the row.
 pub fn measure(
     graph: &Path,
     images: &Path,
     on: RunOn,
     core: &str,
+    weight_form: Option<WeightForm>,
     build: BuildConfig,
     work: &Path,
 ) -> Result<KindRow, BenchError> {
     let run_core = (on != RunOn::Host).then(|| on.name());
     let mut opts = PrepareOptions::default();
     opts.ranges = RangesSource::Images(images.to_path_buf(), Method::MinMax);
-    opts.weight_form = driver::weight_form_for_run(None, false, run_core);
+    opts.weight_form = driver::weight_form_for_run(weight_form, false, run_core);
     let p = prepare::prepare(graph, images, &opts)
         .map_err(|e| BenchError(format!("prepare {}: {e}", graph.display())))?;
     let module_name = p.generated.report.module.clone();
@@ -184,6 +186,8 @@ fn cell(row: &KindRow, column: &str) -> String {
     let share: f64 = pick.iter().map(|k| k.share).sum();
     if macs > 0 {
         format!("{:.2}", instructions as f64 / macs as f64)
+    } else if share < 0.01 {
+        format!("{:.2}%", 100.0 * share)
     } else {
         format!("{:.1}%", 100.0 * share)
     }
@@ -201,7 +205,11 @@ pub fn table(network: &str, rows: &[KindRow]) -> String {
         let _ = write!(s, " {c} |");
     }
     let _ = writeln!(s, " flash B | RAM B | bit-identical |");
-    let _ = writeln!(s, "|---|---|---|---|{}---|---|---|", "---|".repeat(COLUMNS.len()));
+    let _ = writeln!(
+        s,
+        "|---|---|---|---|{}---|---|---|",
+        "---|".repeat(COLUMNS.len())
+    );
     for r in rows {
         let opt = |v: Option<u64>| v.map_or(MISSING.to_string(), thousands);
         let _ = write!(
@@ -289,7 +297,10 @@ mod tests {
         // The stem is the one convolution reading the input, 8 channels
         // 3×3/2 on 16×16 → 8×8·8·9 = 4,608 MACs (by hand).
         let stem = &kinds[0];
-        assert_eq!((stem.steps, stem.macs, stem.instructions), (1, 4_608, 1_000));
+        assert_eq!(
+            (stem.steps, stem.macs, stem.instructions),
+            (1, 4_608, 1_000)
+        );
         // Two depthwise layers, four pointwise (projection; expansion and
         // projection; the head's 1×1): every step lands in one column.
         assert_eq!(kinds[1].steps, 2);
@@ -333,6 +344,7 @@ mod tests {
             &images,
             RunOn::Host,
             "host",
+            None,
             BuildConfig::default(),
             dir.path(),
         )

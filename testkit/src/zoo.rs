@@ -937,7 +937,10 @@ mod tests {
         // expansion (t = 1). Layers: stem 3, block 1 5 (dw, bn, relu6,
         // project, bn), 16 blocks × 8, 10 adds, head 3, pool, fc = 151.
         assert_eq!(g.layers().len(), 151);
-        assert_eq!(count(&|op| matches!(op, Op::Conv2d(c) if c.is_depthwise())), 17);
+        assert_eq!(
+            count(&|op| matches!(op, Op::Conv2d(c) if c.is_depthwise())),
+            17
+        );
         assert_eq!(count(&|op| matches!(op, Op::Conv2d(_))), 52);
         // Residual adds where stride 1 and channels unchanged: groups 2..6
         // contribute 1 + 2 + 3 + 2 + 2 (group 5's first block goes 24 → 32
