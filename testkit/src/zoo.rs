@@ -741,6 +741,28 @@ pub struct InvertedResidualConfig {
     pub classes: usize,
 }
 
+impl Default for InvertedResidualConfig {
+    /// 3x32x32 input, stem 8; groups (t, c, n, s) = (1, 8, 1, 1),
+    /// (4, 16, 2, 2), (4, 24, 2, 2); last 1×1 convolution 64 channels; 10
+    /// classes. Every part of the layout (a block without expansion,
+    /// strided and residual blocks) at a size quick to build and run.
+    fn default() -> Self {
+        let g = |t, c, n, s| Bottleneck {
+            expansion: t,
+            channels: c,
+            repeats: n,
+            stride: s,
+        };
+        InvertedResidualConfig {
+            input: [3, 32, 32],
+            stem: 8,
+            groups: vec![g(1, 8, 1, 1), g(4, 16, 2, 2), g(4, 24, 2, 2)],
+            head: 64,
+            classes: 10,
+        }
+    }
+}
+
 /// `v` rounded to the nearest multiple of 8, at least 8, and never more
 /// than 10% below `v`: the channel rounding of the reference code that
 /// accompanies Sandler et al. (2018) (written from memory).
@@ -875,6 +897,7 @@ mod tests {
             depthwise_separable(&DepthwiseConfig::default(), 1),
             depthwise_separable(&DepthwiseConfig::howard2017(0.25), 1),
             inverted_residual(&InvertedResidualConfig::sandler2018(0.35), 1),
+            inverted_residual(&InvertedResidualConfig::default(), 1),
         ];
         for n in &nets {
             let g = n.build();
