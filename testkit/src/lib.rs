@@ -8,11 +8,14 @@
 //! - [`testnets`]: lowered networks ([`ingot_compiler::lower::QGraph`]) with
 //!   random weights and valid quantization, for code generation.
 //! - [`synth`]: lowered networks with dummy quantization, for the planner.
+//! - [`kinds`]: instructions per MAC by layer kind from an `ingot check`
+//!   run, the rows of the `bench_kinds` example's table.
 //! - [`cli`]: running the `ingot` binary from the root crate's tests.
 //!
 //! Not published (`publish = false`): nothing here is API of ingot.
 
 pub mod cli;
+pub mod kinds;
 pub mod qbuild;
 pub mod synth;
 pub mod testnets;

@@ -223,6 +223,7 @@ pub fn zoo_lowered() -> Vec<QGraph> {
         zoo::dense_small(1),
         zoo::residual(&zoo::ResidualConfig::default(), 1),
         zoo::depthwise_separable(&zoo::DepthwiseConfig::default(), 1),
+        zoo::inverted_residual(&zoo::InvertedResidualConfig::sandler2018(0.35), 1),
         zoo::densenet121(1),
     ];
     nets.iter()

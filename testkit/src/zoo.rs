@@ -150,6 +150,32 @@ impl Net {
     }
 }
 
+/// Writes `count` gray PGM pictures `img0.pgm`, `img1.pgm`, ... of
+/// `width`×`height` into `dir` (created if missing): a diagonal gradient,
+/// shifted per picture, plus seeded noise. Calibration and check images
+/// for the zoo networks, whose weights are random anyway.
+pub fn write_gray_pictures(
+    dir: &Path,
+    width: usize,
+    height: usize,
+    count: usize,
+    seed: u64,
+) -> std::io::Result<()> {
+    std::fs::create_dir_all(dir)?;
+    let mut rng = Rng::new(seed);
+    for k in 0..count {
+        let mut pgm = format!("P5\n{width} {height}\n255\n").into_bytes();
+        for y in 0..height {
+            for x in 0..width {
+                let v = (x + y + 40 * k) as f32 + 60.0 * rng.uniform();
+                pgm.push(v.min(255.0) as u8);
+            }
+        }
+        std::fs::write(dir.join(format!("img{k}.pgm")), pgm)?;
+    }
+    Ok(())
+}
+
 /// Validates a graph file against its tensors, under the fake path
 /// `<zoo>/{name}.graph.json`.
 ///
@@ -685,6 +711,153 @@ pub fn depthwise_separable(cfg: &DepthwiseConfig, seed: u64) -> Net {
     b.finish(&out, cfg.classes)
 }
 
+/// One group of bottleneck blocks of [`inverted_residual`] (a row of
+/// Sandler et al. 2018, Table 2).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Bottleneck {
+    /// Expansion factor `t`: the 1×1 expansion widens the input `t` times
+    /// (no expansion layer when `t == 1`).
+    pub expansion: usize,
+    /// Output channels `c` of every block of the group.
+    pub channels: usize,
+    /// Blocks `n` in the group.
+    pub repeats: usize,
+    /// Stride `s` of the group's first block (the others have stride 1).
+    pub stride: usize,
+}
+
+/// Sizes of [`inverted_residual`].
+#[derive(Debug, Clone, PartialEq)]
+pub struct InvertedResidualConfig {
+    /// Input `[C, H, W]`.
+    pub input: [usize; 3],
+    /// Output channels of the stem (3×3, stride 2).
+    pub stem: usize,
+    /// The bottleneck groups, in order.
+    pub groups: Vec<Bottleneck>,
+    /// Output channels of the last 1×1 convolution.
+    pub head: usize,
+    /// Classes.
+    pub classes: usize,
+}
+
+impl Default for InvertedResidualConfig {
+    /// 3x32x32 input, stem 8; groups (t, c, n, s) = (1, 8, 1, 1),
+    /// (4, 16, 2, 2), (4, 24, 2, 2); last 1×1 convolution 64 channels; 10
+    /// classes. Every part of the layout (a block without expansion,
+    /// strided and residual blocks) at a size quick to build and run.
+    fn default() -> Self {
+        let g = |t, c, n, s| Bottleneck {
+            expansion: t,
+            channels: c,
+            repeats: n,
+            stride: s,
+        };
+        InvertedResidualConfig {
+            input: [3, 32, 32],
+            stem: 8,
+            groups: vec![g(1, 8, 1, 1), g(4, 16, 2, 2), g(4, 24, 2, 2)],
+            head: 64,
+            classes: 10,
+        }
+    }
+}
+
+/// `v` rounded to the nearest multiple of 8, at least 8, and never more
+/// than 10% below `v`: the channel rounding of the reference code that
+/// accompanies Sandler et al. (2018) (written from memory).
+pub fn round_channels(v: f32) -> usize {
+    let d = 8usize;
+    let r = (((v + d as f32 / 2.0) as usize) / d * d).max(d);
+    if (r as f32) < 0.9 * v {
+        r + d
+    } else {
+        r
+    }
+}
+
+impl InvertedResidualConfig {
+    /// The layout of Sandler et al. (2018), "MobileNetV2: Inverted
+    /// Residuals and Linear Bottlenecks", Table 2, on a 96×96 gray input
+    /// with 10 classes: stem 3×3/2 with 32 channels; bottleneck groups
+    /// (t, c, n, s) = (1, 16, 1, 1), (6, 24, 2, 2), (6, 32, 3, 2),
+    /// (6, 64, 4, 2), (6, 96, 3, 1), (6, 160, 3, 2), (6, 320, 1, 1); a
+    /// last 1×1 convolution with 1280 channels. The stem's and the
+    /// groups' channels are multiplied by `width` and rounded by
+    /// [`round_channels`]; the last convolution keeps 1280 channels when
+    /// `width < 1`, as the paper does (section 6.1), and is scaled above.
+    pub fn sandler2018(width: f32) -> Self {
+        let c = |n: usize| round_channels(n as f32 * width);
+        let g = |t, ch, n, s| Bottleneck {
+            expansion: t,
+            channels: c(ch),
+            repeats: n,
+            stride: s,
+        };
+        InvertedResidualConfig {
+            input: [1, 96, 96],
+            stem: c(32),
+            groups: vec![
+                g(1, 16, 1, 1),
+                g(6, 24, 2, 2),
+                g(6, 32, 3, 2),
+                g(6, 64, 4, 2),
+                g(6, 96, 3, 1),
+                g(6, 160, 3, 2),
+                g(6, 320, 1, 1),
+            ],
+            head: if width > 1.0 { c(1280) } else { 1280 },
+            classes: 10,
+        }
+    }
+}
+
+/// Inverted residual blocks with linear bottlenecks (Sandler et al. 2018,
+/// "MobileNetV2"): stem conv3×3 stride 2 - BN - ReLU6; per block a 1×1
+/// expansion - BN - ReLU6 (left out when the expansion factor is 1), a
+/// depthwise 3×3 - BN - ReLU6 and a 1×1 projection - BN with no activation
+/// (the linear bottleneck), plus an `add` of the block's input when the
+/// stride is 1 and the channels do not change; then conv1×1 - BN - ReLU6,
+/// global average pooling and a linear classifier.
+pub fn inverted_residual(cfg: &InvertedResidualConfig, seed: u64) -> Net {
+    let mut b = Builder::new("inverted_residual", seed, cfg.input);
+    let x = b.conv("stem.conv", "input", cfg.stem, 3, 2, 1, 1, false);
+    let x = b.bn("stem.bn", &x);
+    let mut x = b.unary("stem.relu", "relu6", &x);
+    let mut k = 0;
+    for g in &cfg.groups {
+        for r in 0..g.repeats {
+            k += 1;
+            let p = format!("block{k}");
+            let stride = if r == 0 { g.stride } else { 1 };
+            let c_in = b.shape(&x).c;
+            let mut y = x.clone();
+            if g.expansion != 1 {
+                let e = c_in * g.expansion;
+                y = b.conv(&format!("{p}.expand"), &y, e, 1, 1, 0, 1, false);
+                y = b.bn(&format!("{p}.expand_bn"), &y);
+                y = b.unary(&format!("{p}.expand_relu"), "relu6", &y);
+            }
+            let e = b.shape(&y).c;
+            y = b.conv(&format!("{p}.dw"), &y, e, 3, stride, 1, e, false);
+            y = b.bn(&format!("{p}.dw_bn"), &y);
+            y = b.unary(&format!("{p}.dw_relu"), "relu6", &y);
+            y = b.conv(&format!("{p}.project"), &y, g.channels, 1, 1, 0, 1, false);
+            y = b.bn(&format!("{p}.project_bn"), &y);
+            if stride == 1 && c_in == g.channels {
+                y = b.add(&format!("{p}.add"), &y, &x);
+            }
+            x = y;
+        }
+    }
+    let x = b.conv("head.conv", &x, cfg.head, 1, 1, 0, 1, false);
+    let x = b.bn("head.bn", &x);
+    let x = b.unary("head.relu", "relu6", &x);
+    let x = b.global_avg_pool("pool", &x);
+    let out = b.linear("fc", &x, cfg.classes);
+    b.finish(&out, cfg.classes)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -723,6 +896,8 @@ mod tests {
             residual(&ResidualConfig::default(), 1),
             depthwise_separable(&DepthwiseConfig::default(), 1),
             depthwise_separable(&DepthwiseConfig::howard2017(0.25), 1),
+            inverted_residual(&InvertedResidualConfig::sandler2018(0.35), 1),
+            inverted_residual(&InvertedResidualConfig::default(), 1),
         ];
         for n in &nets {
             let g = n.build();
@@ -759,6 +934,84 @@ mod tests {
             .layers()
             .iter()
             .any(|l| matches!(&l.op, Op::Conv2d(c) if c.is_depthwise())));
+    }
+
+    #[test]
+    fn sandler2018_channels_counts_and_shapes() {
+        // Rounding at width 0.35, by hand: 32·0.35 = 11.2 → 8 is more than
+        // 10% below, so 16; 16·0.35 = 5.6 → 8; 24·0.35 = 8.4 → 8;
+        // 11.2 → 16; 22.4 → 24; 33.6 → 32; 56 → 56; 112 → 112.
+        let cfg = InvertedResidualConfig::sandler2018(0.35);
+        assert_eq!(cfg.stem, 16);
+        let chans: Vec<usize> = cfg.groups.iter().map(|g| g.channels).collect();
+        assert_eq!(chans, [8, 8, 16, 24, 32, 56, 112]);
+        assert_eq!(cfg.head, 1280);
+        // At width 1 the rule must give back Table 2's channels.
+        let full = InvertedResidualConfig::sandler2018(1.0);
+        let chans: Vec<usize> = full.groups.iter().map(|g| g.channels).collect();
+        assert_eq!(chans, [16, 24, 32, 64, 96, 160, 320]);
+        assert_eq!((full.stem, full.head), (32, 1280));
+        assert_eq!(round_channels(1.0), 8);
+
+        let net = inverted_residual(&cfg, 1);
+        let g = net.build();
+        let count = |f: &dyn Fn(&Op) -> bool| g.layers().iter().filter(|l| f(&l.op)).count();
+        // 17 blocks (1 + 2 + 3 + 4 + 3 + 3 + 1, Table 2); block 1 has no
+        // expansion (t = 1). Layers: stem 3, block 1 5 (dw, bn, relu6,
+        // project, bn), 16 blocks × 8, 10 adds, head 3, pool, fc = 151.
+        assert_eq!(g.layers().len(), 151);
+        assert_eq!(
+            count(&|op| matches!(op, Op::Conv2d(c) if c.is_depthwise())),
+            17
+        );
+        assert_eq!(count(&|op| matches!(op, Op::Conv2d(_))), 52);
+        // Residual adds where stride 1 and channels unchanged: groups 2..6
+        // contribute 1 + 2 + 3 + 2 + 2 (group 5's first block goes 24 → 32
+        // channels, group 7's 56 → 112).
+        assert_eq!(count(&|op| matches!(op, Op::Add)), 10);
+
+        let shape_of = |n: &str| g.shape(g.find_layer(n).unwrap().output());
+        assert_eq!(shape_of("stem.relu"), Shape::new(16, 48, 48));
+        assert_eq!(shape_of("block1.project_bn"), Shape::new(8, 48, 48));
+        // The 6× expansion at 48×48 that the depthwise 3×3/2 reads.
+        assert_eq!(shape_of("block2.expand_relu"), Shape::new(48, 48, 48));
+        assert_eq!(shape_of("block2.dw_relu"), Shape::new(48, 24, 24));
+        assert_eq!(shape_of("block7.project_bn"), Shape::new(24, 6, 6));
+        assert_eq!(shape_of("block17.project_bn"), Shape::new(112, 3, 3));
+        assert_eq!(shape_of("head.relu"), Shape::new(1280, 3, 3));
+        assert_eq!(g.shape(g.output()), Shape::flat(10));
+
+        // Counts by hand, (H_out·W_out)·C_out·k²·C_in/groups per convolution;
+        // blocks as (C_in, t, C_out, s, H_in):
+        // stem 48²·16·9 = 331,776;
+        // expansions Σ H_in²·C_in·tC_in: 48²·8·48 = 884,736;
+        //   24²·8·48 = 221,184 ×2 (blocks 3, 4); 12²·16·96 = 221,184 ×3;
+        //   6²·24·144 = 124,416 ×4; 6²·32·192 = 221,184 ×3;
+        //   3²·56·336 = 169,344 ×3 → 3,659,904;
+        // depthwise Σ H_out²·e·9: 48²·16·9 = 331,776; 24²·48·9 = 248,832 ×2;
+        //   12²·48·9 = 62,208; 12²·96·9 = 124,416 ×2; 6²·96·9 = 31,104;
+        //   6²·144·9 = 46,656 ×4; 6²·192·9 = 62,208 ×2; 3²·192·9 = 15,552;
+        //   3²·336·9 = 27,216 ×3 → 1,579,824;
+        // projections Σ H_out²·e·C_out: 48²·16·8 = 294,912;
+        //   24²·48·8 = 221,184 ×2; 12²·48·16 = 110,592;
+        //   12²·96·16 = 221,184 ×2; 6²·96·24 = 82,944; 6²·144·24 = 124,416 ×3;
+        //   6²·144·32 = 165,888; 6²·192·32 = 221,184 ×2; 3²·192·56 = 96,768;
+        //   3²·336·56 = 169,344 ×2; 3²·336·112 = 338,688 → 3,128,832;
+        // head 3²·112·1280 = 1,290,240; fc 1280·10 = 12,800.
+        // Total 331,776 + 3,659,904 + 1,579,824 + 3,128,832 + 1,290,240
+        //   + 12,800 = 10,003,376.
+        // Parameters: convolution and linear weights 144 + 94,464
+        // (expansions) + 23,472 (depthwise) + 120,320 (projections)
+        // + 143,360 (head) + 12,800 (fc) = 394,560; fc bias 10; batch-norm
+        // γ and β 2 × (16 + 2,592 + 2,608 + 544 + 1,280) = 14,080
+        // (stem; Σ widths of the expansions, 48 + 48·2 + 96·3 + 144·4
+        // + 192·3 + 336·3 = 2,592; of the depthwise layers, 16 more;
+        // Σ projection outputs 8·3 + 16·3 + 24·4 + 32·3 + 56·3 + 112 = 544;
+        // head) → 408,650.
+        let r = ingot_compiler::inspect::report(&g);
+        assert_eq!(r.totals.macs, 10_003_376);
+        assert_eq!(r.totals.params, 408_650);
+        assert_eq!(r.totals.buffers, 14_080);
     }
 
     #[test]

@@ -78,6 +78,7 @@ fn zoo_networks_simulate_close_to_the_float_reference() {
         zoo::residual(&Default::default(), 2),
         zoo::depthwise_separable(&Default::default(), 3),
         zoo::dense_small(4),
+        zoo::inverted_residual(&Default::default(), 5),
     ] {
         let (worst, agree, n) = check(&net, 4);
         assert!(worst <= 4.0, "{}: {worst} steps", net.file.name);

@@ -61,6 +61,10 @@ fn zoo_nets() -> Vec<(&'static str, zoo::Net)> {
             "zoo_depthwise",
             zoo::depthwise_separable(&zoo::DepthwiseConfig::default(), 14),
         ),
+        (
+            "zoo_inverted",
+            zoo::inverted_residual(&zoo::InvertedResidualConfig::default(), 16),
+        ),
     ];
     if std::env::var("INGOT_PANIC_NEVER_LARGE").is_ok_and(|v| v == "1") {
         v.push(("zoo_densenet121", zoo::densenet121(15)));
