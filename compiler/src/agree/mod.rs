@@ -8,6 +8,8 @@
 //! [`report`] adds the int8 evaluation to a calibration report.
 
 pub mod evaluate;
+pub mod mixed;
+pub mod sensitivity;
 
 pub use evaluate::{evaluate, EvalError, Evaluation};
 
