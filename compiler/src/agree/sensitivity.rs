@@ -47,7 +47,8 @@ pub struct SensitivityRow {
 /// The sensitivity report.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct Sensitivity {
-    /// `held-out` or `calibration`: which images were used.
+    /// `held-out` or `calibration`: which images were used (`given` for
+    /// [`measure_inputs`]).
     pub on: &'static str,
     /// Images compared.
     pub images: usize,
@@ -79,7 +80,6 @@ pub fn measure(
     } else {
         ("held-out", cal.evaluation.clone())
     };
-    let n = mixed.units().len();
     let pb = crate::calibrate::progress_bar(indices.len() as u64, progress, "sensitivity");
     let per_image: Vec<Result<Option<PerImage>, EvalError>> = indices
         .par_iter()
@@ -95,12 +95,29 @@ pub fn measure(
         })
         .collect();
     pb.finish_and_clear();
+    let mut done = Vec::with_capacity(per_image.len());
+    for r in per_image {
+        done.extend(r?);
+    }
+    Ok(summarise(&mixed, on, done))
+}
+
+/// [`measure`] on given inputs (`[C, H, W]` each), with a prepared mixed
+/// network: for tests and callers that hold their samples in memory.
+pub fn measure_inputs(mixed: &Mixed<'_>, inputs: &[Vec<f32>]) -> Sensitivity {
+    let per_image: Vec<PerImage> = inputs
+        .par_iter()
+        .map(|x| configurations(mixed, x))
+        .collect();
+    summarise(mixed, "given", per_image)
+}
+
+fn summarise(mixed: &Mixed<'_>, on: &'static str, per_image: Vec<PerImage>) -> Sensitivity {
+    let n = mixed.units().len();
     // Configuration 0: all in int8; 1 + u: only u; 1 + n + u: all but u.
     let mut sums = vec![(0usize, 0f64, 0f64); 1 + 2 * n];
-    let mut count = 0usize;
+    let count = per_image.len();
     for r in per_image {
-        let Some(r) = r? else { continue };
-        count += 1;
         for (s, (a, sig, noise)) in sums.iter_mut().zip(r) {
             s.0 += a as usize;
             s.1 += sig;
@@ -128,12 +145,12 @@ pub fn measure(
         })
         .collect();
     rank(&mut rows);
-    Ok(Sensitivity {
+    Sensitivity {
         on,
         images: count,
         all: fig(sums[0]),
         rows,
-    })
+    }
 }
 
 /// Sorts rows most sensitive first (lowest SQNR with only that unit in
@@ -263,13 +280,13 @@ impl fmt::Display for Sensitivity {
         let w = self.rows.iter().map(|r| r.name.len()).max().unwrap_or(4).max(5);
         writeln!(
             f,
-            "{:>4}  {:<w$}  {:<15}  {:>12}  {:>10}  {:>12}  {:>10}",
-            "rank", "layer", "kind", "only: agree", "only: dB", "all but: agr", "all but: dB"
+            "{:>4}  {:<w$}  {:<17}  {:>11}  {:>8}  {:>14}  {:>11}",
+            "rank", "layer", "kind", "only: agree", "only: dB", "all but: agree", "all but: dB"
         )?;
         for r in &self.rows {
             writeln!(
                 f,
-                "{:>4}  {:<w$}  {:<15}  {:>11.2}%  {:>10}  {:>11.2}%  {:>10}",
+                "{:>4}  {:<w$}  {:<17}  {:>10.2}%  {:>8}  {:>13.2}%  {:>11}",
                 r.rank,
                 r.name,
                 r.kind,

@@ -26,5 +26,6 @@ mod plan_hand;
 mod plan_nets;
 mod plan_targets;
 mod reference_vs_candle;
+mod sensitivity;
 mod stats;
 mod zoo_reference;
