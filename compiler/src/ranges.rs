@@ -11,6 +11,11 @@ use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 use std::path::Path;
 
+/// Largest magnitude of a bias shift a ranges file may hold (as
+/// `lower::MAX_RANGE_ABS` for range ends: larger values come from broken
+/// files).
+pub const MAX_BIAS_SHIFT: f32 = 1e9;
+
 /// Format string of ranges files.
 pub const RANGES_V1: &str = "ingot.ranges.v1";
 
@@ -47,6 +52,11 @@ pub struct Ranges {
     pub images: usize,
     /// One range per map of the graph.
     pub maps: Vec<MapRange>,
+    /// Bias corrections (`calibrate --bias-correction`): per convolution
+    /// or linear layer, by name, a real value per output channel that
+    /// lowering adds to the layer's bias (after folding batch norm) before
+    /// quantizing it. Empty when not corrected.
+    pub bias_shifts: BTreeMap<String, Vec<f32>>,
 }
 
 impl Ranges {
@@ -72,6 +82,10 @@ pub struct RangesFile {
     pub images: usize,
     /// Range per map name (the input's name or a layer name).
     pub maps: BTreeMap<String, MapRange>,
+    /// Bias corrections per layer name (see [`Ranges::bias_shifts`]);
+    /// absent when there are none.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub bias_shifts: BTreeMap<String, Vec<f32>>,
 }
 
 /// Why a ranges file could not be used.
@@ -141,6 +155,7 @@ impl Ranges {
             maps: (0..g.map_count())
                 .map(|i| (g.map_name(MapId(i as u32)).to_string(), self.maps[i]))
                 .collect(),
+            bias_shifts: self.bias_shifts.clone(),
         }
     }
 
@@ -212,12 +227,35 @@ impl Ranges {
             }
             maps.push(r);
         }
+        for (name, shift) in &f.bias_shifts {
+            let why = match g.find_layer(name).map(|l| &g.layer(l).op) {
+                Some(crate::graph::Op::Conv2d(c)) => (shift.len() != c.out_channels)
+                    .then(|| format!("{} bias shifts for {} output channels", shift.len(), c.out_channels)),
+                Some(crate::graph::Op::Linear(l)) => (shift.len() != l.out_features)
+                    .then(|| format!("{} bias shifts for {} output features", shift.len(), l.out_features)),
+                _ => Some("bias shifts for a layer that is not a convolution or linear layer of the graph".into()),
+            }
+            .or_else(|| {
+                shift
+                    .iter()
+                    .any(|v| !v.is_finite() || v.abs() > MAX_BIAS_SHIFT)
+                    .then(|| "a bias shift is not finite or too large".into())
+            });
+            if let Some(message) = why {
+                return Err(RangesError::Map {
+                    path: p,
+                    map: name.clone(),
+                    message,
+                });
+            }
+        }
         Ok(Ranges {
             graph: f.graph,
             graph_hash: f.graph_hash,
             method: f.method,
             images: f.images,
             maps,
+            bias_shifts: f.bias_shifts,
         })
     }
 }

@@ -44,6 +44,12 @@ pub struct Args {
     /// one of the command's inputs).
     #[arg(long)]
     pub force: bool,
+    /// Correct the biases of convolution and linear layers for the mean
+    /// shift int8 causes (empirical bias correction, layer by layer on the
+    /// calibration images); the shifts go into the ranges file, and the
+    /// report shows the figures without and with them.
+    #[arg(long)]
+    pub bias_correction: bool,
     /// Also measure which layers cost the accuracy: per layer, the output
     /// agreement and logit SQNR with only that layer in int8 and with all
     /// but that layer in int8, ranked (printed, and in `--json`).
@@ -81,6 +87,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         holdout: args.holdout,
         skip_bad: args.skip_bad,
         progress: true,
+        bias_correction: args.bias_correction,
         ..CalibOptions::default()
     };
     let cal = agree::run(&graph, &images, &opts)?;

@@ -155,6 +155,11 @@ impl<'a> Mixed<'a> {
         self.weighted.get(unit).is_some_and(|w| w.is_some())
     }
 
+    /// The convolution or linear layer of a unit with weights.
+    pub fn weighted_layer(&self, unit: usize) -> Option<LayerId> {
+        self.weighted.get(unit)?.as_ref().map(|w| w.layer)
+    }
+
     /// The pre-activation map of a unit with weights: after the folded
     /// batch norm, before the activation (where a bias shift shows).
     pub fn pre_activation(&self, unit: usize) -> Option<MapId> {
@@ -176,8 +181,9 @@ impl<'a> Mixed<'a> {
     }
 
     /// Runs one image (`[C, H, W]`) with the units for which `on` is true
-    /// quantized; `visit` sees every map after rounding. Returns the
-    /// logits.
+    /// quantized; `visit` sees every map as computed, before it is rounded
+    /// (the pre-activation sums bias correction compares). Returns the
+    /// logits, rounded when their unit is on.
     pub fn run(
         &self,
         input: &[f32],
@@ -192,6 +198,7 @@ impl<'a> Mixed<'a> {
         let mut logits = Vec::new();
         self.reference
             .run_mixed(input, &alt, |m, v| {
+                visit(m, v);
                 if let Some((u, qp)) = self.rounds[m.index()] {
                     if on(u) {
                         for x in v.iter_mut() {
@@ -202,7 +209,6 @@ impl<'a> Mixed<'a> {
                 if m == self.logits {
                     logits = v.to_vec();
                 }
-                visit(m, v);
             })
             .expect("sample has the input's length");
         logits

@@ -352,6 +352,7 @@ pub fn ranges_for(
                     };
                     graph.map_count()
                 ],
+                bias_shifts: Default::default(),
             },
             hash: String::new(),
             note: "synthetic ranges ([-4, 4] for every map)".into(),

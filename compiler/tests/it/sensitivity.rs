@@ -38,6 +38,7 @@ fn minmax(g: &Graph, inputs: &[Vec<f32>]) -> Ranges {
         method: "minmax".into(),
         images: inputs.len(),
         maps,
+        bias_shifts: Default::default(),
     }
 }
 
