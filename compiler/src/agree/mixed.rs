@@ -232,7 +232,11 @@ impl Weighted {
             } else {
                 (1.0 / a, (b - sh) / a)
             };
-            weight.extend(self.weight[o * per..(o + 1) * per].iter().map(|&w| (w * wa) as f32));
+            weight.extend(
+                self.weight[o * per..(o + 1) * per]
+                    .iter()
+                    .map(|&w| (w * wa) as f32),
+            );
             bias.push(ba as f32);
         }
         Alternative { weight, bias }

@@ -19,7 +19,6 @@ use crate::graph::Graph;
 use crate::lower::{LowerError, LowerOptions};
 use crate::ranges::{MapRange, Ranges};
 
-
 /// Why [`run`] failed.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
@@ -53,8 +52,14 @@ pub fn run(
     let mut cal = calibrate::run(graph, images, opts)?;
     choose(graph, images, &mut cal, opts)?;
     if opts.bias_correction {
-        bias::correct(graph, images, &mut cal, &LowerOptions::default(), opts.skip_bad)
-            .map_err(AgreeError::Agreement)?;
+        bias::correct(
+            graph,
+            images,
+            &mut cal,
+            &LowerOptions::default(),
+            opts.skip_bad,
+        )
+        .map_err(AgreeError::Agreement)?;
     }
     Ok(cal)
 }

@@ -176,13 +176,10 @@ fn configurations(mixed: &Mixed<'_>, input: &[f32]) -> PerImage {
     let float = mixed.run(input, &|_| false, |_, _| {});
     let top = argmax(&float);
     let compare = |x: Vec<f32>| {
-        let (sig, noise) = float
-            .iter()
-            .zip(&x)
-            .fold((0.0, 0.0), |(s, e), (&a, &b)| {
-                let d = a as f64 - b as f64;
-                (s + a as f64 * a as f64, e + d * d)
-            });
+        let (sig, noise) = float.iter().zip(&x).fold((0.0, 0.0), |(s, e), (&a, &b)| {
+            let d = a as f64 - b as f64;
+            (s + a as f64 * a as f64, e + d * d)
+        });
         (argmax(&x) == top, sig, noise)
     };
     let mut out = Vec::with_capacity(1 + 2 * n);
@@ -256,9 +253,11 @@ impl Sensitivity {
                     Histogram::vertical(&chart)
                         .style(RGBColor(190, 80, 60).filled())
                         .margin(4)
-                        .data(vals.iter().enumerate().map(|(i, v)| {
-                            (i, if v.1.is_finite() { v.1.max(0.0) } else { top })
-                        })),
+                        .data(
+                            vals.iter().enumerate().map(|(i, v)| {
+                                (i, if v.1.is_finite() { v.1.max(0.0) } else { top })
+                            }),
+                        ),
                 )
                 .map_err(|e| err(&e))?;
             root.present().map_err(|e| err(&e))?;
@@ -277,7 +276,13 @@ impl fmt::Display for Sensitivity {
             100.0 * self.all.agreement,
             db(self.all.sqnr_db)
         )?;
-        let w = self.rows.iter().map(|r| r.name.len()).max().unwrap_or(4).max(5);
+        let w = self
+            .rows
+            .iter()
+            .map(|r| r.name.len())
+            .max()
+            .unwrap_or(4)
+            .max(5);
         writeln!(
             f,
             "{:>4}  {:<w$}  {:<17}  {:>11}  {:>8}  {:>14}  {:>11}",

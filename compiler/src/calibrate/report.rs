@@ -300,7 +300,13 @@ impl fmt::Display for Report {
         }
         if let Some(b) = &self.bias_correction {
             writeln!(f, "bias correction (empirical, on the calibration images):")?;
-            let w = b.layers.iter().map(|l| l.layer.len()).max().unwrap_or(5).max(5);
+            let w = b
+                .layers
+                .iter()
+                .map(|l| l.layer.len())
+                .max()
+                .unwrap_or(5)
+                .max(5);
             writeln!(
                 f,
                 "  {:<w$}  {:>10}  {:>10}  {:>10}  {:>10}",
