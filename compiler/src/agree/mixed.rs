@@ -190,11 +190,7 @@ impl<'a> Mixed<'a> {
         on: &dyn Fn(usize) -> bool,
         mut visit: impl FnMut(MapId, &[f32]),
     ) -> Vec<f32> {
-        let alt: Vec<bool> = self
-            .weights_of
-            .iter()
-            .map(|u| u.is_some_and(|u| on(u)))
-            .collect();
+        let alt: Vec<bool> = self.weights_of.iter().map(|u| u.is_some_and(on)).collect();
         let mut logits = Vec::new();
         self.reference
             .run_mixed(input, &alt, |m, v| {

@@ -134,8 +134,8 @@ fn shifts_reach_the_lowered_biases() {
     };
     let ((a, s_in), (b, _)) = (lin(&plain), lin(&shifted));
     assert_eq!(a.weights, b.weights);
-    for i in 0..o {
-        let want = delta[i] as f64 / (s_in as f64 * a.weight_scales[i] as f64);
+    for (i, d) in delta.iter().enumerate() {
+        let want = *d as f64 / (s_in as f64 * a.weight_scales[i] as f64);
         let moved = (b.bias[i] - a.bias[i]) as f64;
         assert!(
             (moved - want).abs() <= 1.0,
