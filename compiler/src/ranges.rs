@@ -19,6 +19,12 @@ pub const MAX_BIAS_SHIFT: f32 = 1e9;
 /// Format string of ranges files.
 pub const RANGES_V1: &str = "ingot.ranges.v1";
 
+/// Format string of ranges files that carry bias corrections
+/// (`bias_shifts`); a file without them is still written as
+/// [`RANGES_V1`], so readers of v1 keep reading it and refuse only what
+/// they could not apply.
+pub const RANGES_V2: &str = "ingot.ranges.v2";
+
 /// The real interval `[min, max]` chosen for one map.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct MapRange {
@@ -70,7 +76,7 @@ impl Ranges {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RangesFile {
-    /// [`RANGES_V1`].
+    /// [`RANGES_V1`], or [`RANGES_V2`] when `bias_shifts` is not empty.
     pub format: String,
     /// Graph name.
     pub graph: String,
@@ -147,7 +153,12 @@ impl Ranges {
     /// The file form.
     pub fn to_file(&self, g: &Graph) -> RangesFile {
         RangesFile {
-            format: RANGES_V1.into(),
+            format: if self.bias_shifts.is_empty() {
+                RANGES_V1
+            } else {
+                RANGES_V2
+            }
+            .into(),
             graph: self.graph.clone(),
             graph_hash: self.graph_hash.clone(),
             method: self.method.clone(),
@@ -193,10 +204,19 @@ impl Ranges {
             path: p.clone(),
             message: e.to_string(),
         })?;
-        if f.format != RANGES_V1 {
+        if f.format != RANGES_V1 && f.format != RANGES_V2 {
             return Err(RangesError::Format {
                 path: p,
-                message: format!("`format` is \"{}\", expected \"{RANGES_V1}\"", f.format),
+                message: format!(
+                    "`format` is \"{}\", expected \"{RANGES_V1}\" or \"{RANGES_V2}\"",
+                    f.format
+                ),
+            });
+        }
+        if f.format == RANGES_V1 && !f.bias_shifts.is_empty() {
+            return Err(RangesError::Format {
+                path: p,
+                message: format!("`bias_shifts` needs `format` \"{RANGES_V2}\""),
             });
         }
         if let Some(h) = hash {

@@ -159,11 +159,18 @@ fn ranges_file_keeps_and_checks_bias_shifts() {
     let text = ranges.to_json(&g);
     let back = Ranges::parse(&g, &text, Path::new("r.json"), None).unwrap();
     assert_eq!(back.bias_shifts, ranges.bias_shifts);
+    // A file with shifts is v2, so a reader of v1 refuses it instead of
+    // building the network without them; v1 with shifts is malformed.
+    assert!(text.contains("\"ingot.ranges.v2\""));
+    let v1 = text.replace("ingot.ranges.v2", "ingot.ranges.v1");
+    let err = Ranges::parse(&g, &v1, Path::new("r.json"), None).unwrap_err();
+    assert!(err.to_string().contains("bias_shifts"), "{err}");
     // Without shifts the file has no `bias_shifts` key (files written
     // before bias correction read the same).
     let mut none = ranges.clone();
     none.bias_shifts.clear();
-    assert!(!none.to_json(&g).contains("bias_shifts"));
+    let plain = none.to_json(&g);
+    assert!(!plain.contains("bias_shifts") && plain.contains("\"ingot.ranges.v1\""));
     for (layer, v) in [
         ("conv1", vec![0.25; 7]),
         ("pool1", vec![0.0; 8]),
