@@ -215,6 +215,18 @@ impl Sensitivity {
             .map(|v| v.1)
             .fold(0.0f64, f64::max);
         let top = (finite_max * 1.15).max(10.0);
+        // A layer that alone ruins the output has a negative SQNR: the axis
+        // goes below zero so its bar shows (downwards).
+        let finite_min = vals
+            .iter()
+            .filter(|v| v.1.is_finite())
+            .map(|v| v.1)
+            .fold(0.0f64, f64::min);
+        let bottom = if finite_min < 0.0 {
+            finite_min * 1.15 - 1.0
+        } else {
+            0.0
+        };
         let mut svg = String::new();
         {
             let n = vals.len().max(1);
@@ -229,7 +241,7 @@ impl Sensitivity {
                 .margin(12)
                 .x_label_area_size(110)
                 .y_label_area_size(55)
-                .build_cartesian_2d((0..n).into_segmented(), 0.0..top)
+                .build_cartesian_2d((0..n).into_segmented(), bottom..top)
                 .map_err(|e| err(&e))?;
             let names: Vec<String> = vals.iter().map(|v| v.0.clone()).collect();
             chart
@@ -254,9 +266,9 @@ impl Sensitivity {
                         .style(RGBColor(190, 80, 60).filled())
                         .margin(4)
                         .data(
-                            vals.iter().enumerate().map(|(i, v)| {
-                                (i, if v.1.is_finite() { v.1.max(0.0) } else { top })
-                            }),
+                            vals.iter()
+                                .enumerate()
+                                .map(|(i, v)| (i, if v.1.is_finite() { v.1 } else { top })),
                         ),
                 )
                 .map_err(|e| err(&e))?;
