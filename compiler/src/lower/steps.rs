@@ -21,8 +21,7 @@ pub(super) fn pool_taps(layer: &crate::graph::Layer, taps: usize) -> Result<(), 
 }
 
 /// A layer's real bias (batch norm folded) plus its correction from the
-/// ranges, if any (`Ranges::bias_shifts`; lengths are checked when a file
-/// is read, and a mismatched one is ignored here rather than misapplied).
+/// ranges, if any (`Ranges::bias_shifts`, whose lengths `lower` checked).
 fn shifted(ranges: &Ranges, layer: &str, mut bias: Vec<f32>) -> Vec<f32> {
     if let Some(s) = ranges.bias_shifts.get(layer) {
         if s.len() == bias.len() {

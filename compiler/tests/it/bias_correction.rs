@@ -142,6 +142,21 @@ fn shifts_reach_the_lowered_biases() {
             "feature {i}: {moved} vs {want}"
         );
     }
+    // A shift that does not fit its layer is refused, not ignored.
+    for (layer, v) in [
+        ("fc", vec![0.0; 9]),
+        ("pool1", vec![0.0; 8]),
+        ("fc", vec![f32::NAN; 10]),
+    ] {
+        let mut bad = ranges.clone();
+        bad.bias_shifts.clear();
+        bad.bias_shifts.insert(layer.into(), v);
+        let err = lower(&g, &bad, &LowerOptions::default()).unwrap_err();
+        assert!(
+            matches!(err, ingot_compiler::lower::LowerError::BadBiasShift { .. }),
+            "{err}"
+        );
+    }
     // Other layers are untouched.
     for (x, y) in plain.steps.iter().zip(&shifted.steps) {
         if x.name != "fc" {
