@@ -11,8 +11,19 @@ use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 use std::path::Path;
 
+/// Largest magnitude of a bias shift a ranges file may hold (as
+/// `lower::MAX_RANGE_ABS` for range ends: larger values come from broken
+/// files).
+pub const MAX_BIAS_SHIFT: f32 = 1e9;
+
 /// Format string of ranges files.
 pub const RANGES_V1: &str = "ingot.ranges.v1";
+
+/// Format string of ranges files that carry bias corrections
+/// (`bias_shifts`); a file without them is still written as
+/// [`RANGES_V1`], so readers of v1 keep reading it and refuse only what
+/// they could not apply.
+pub const RANGES_V2: &str = "ingot.ranges.v2";
 
 /// The real interval `[min, max]` chosen for one map.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -47,6 +58,11 @@ pub struct Ranges {
     pub images: usize,
     /// One range per map of the graph.
     pub maps: Vec<MapRange>,
+    /// Bias corrections (`calibrate --bias-correction`): per convolution
+    /// or linear layer, by name, a real value per output channel that
+    /// lowering adds to the layer's bias (after folding batch norm) before
+    /// quantizing it. Empty when not corrected.
+    pub bias_shifts: BTreeMap<String, Vec<f32>>,
 }
 
 impl Ranges {
@@ -60,7 +76,7 @@ impl Ranges {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RangesFile {
-    /// [`RANGES_V1`].
+    /// [`RANGES_V1`], or [`RANGES_V2`] when `bias_shifts` is not empty.
     pub format: String,
     /// Graph name.
     pub graph: String,
@@ -72,6 +88,10 @@ pub struct RangesFile {
     pub images: usize,
     /// Range per map name (the input's name or a layer name).
     pub maps: BTreeMap<String, MapRange>,
+    /// Bias corrections per layer name (see [`Ranges::bias_shifts`]);
+    /// absent when there are none.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub bias_shifts: BTreeMap<String, Vec<f32>>,
 }
 
 /// Why a ranges file could not be used.
@@ -133,7 +153,12 @@ impl Ranges {
     /// The file form.
     pub fn to_file(&self, g: &Graph) -> RangesFile {
         RangesFile {
-            format: RANGES_V1.into(),
+            format: if self.bias_shifts.is_empty() {
+                RANGES_V1
+            } else {
+                RANGES_V2
+            }
+            .into(),
             graph: self.graph.clone(),
             graph_hash: self.graph_hash.clone(),
             method: self.method.clone(),
@@ -141,6 +166,7 @@ impl Ranges {
             maps: (0..g.map_count())
                 .map(|i| (g.map_name(MapId(i as u32)).to_string(), self.maps[i]))
                 .collect(),
+            bias_shifts: self.bias_shifts.clone(),
         }
     }
 
@@ -178,10 +204,19 @@ impl Ranges {
             path: p.clone(),
             message: e.to_string(),
         })?;
-        if f.format != RANGES_V1 {
+        if f.format != RANGES_V1 && f.format != RANGES_V2 {
             return Err(RangesError::Format {
                 path: p,
-                message: format!("`format` is \"{}\", expected \"{RANGES_V1}\"", f.format),
+                message: format!(
+                    "`format` is \"{}\", expected \"{RANGES_V1}\" or \"{RANGES_V2}\"",
+                    f.format
+                ),
+            });
+        }
+        if f.format == RANGES_V1 && !f.bias_shifts.is_empty() {
+            return Err(RangesError::Format {
+                path: p,
+                message: format!("`bias_shifts` needs `format` \"{RANGES_V2}\""),
             });
         }
         if let Some(h) = hash {
@@ -212,12 +247,35 @@ impl Ranges {
             }
             maps.push(r);
         }
+        for (name, shift) in &f.bias_shifts {
+            let why = match g.find_layer(name).map(|l| &g.layer(l).op) {
+                Some(crate::graph::Op::Conv2d(c)) => (shift.len() != c.out_channels)
+                    .then(|| format!("{} bias shifts for {} output channels", shift.len(), c.out_channels)),
+                Some(crate::graph::Op::Linear(l)) => (shift.len() != l.out_features)
+                    .then(|| format!("{} bias shifts for {} output features", shift.len(), l.out_features)),
+                _ => Some("bias shifts for a layer that is not a convolution or linear layer of the graph".into()),
+            }
+            .or_else(|| {
+                shift
+                    .iter()
+                    .any(|v| !v.is_finite() || v.abs() > MAX_BIAS_SHIFT)
+                    .then(|| "a bias shift is not finite or too large".into())
+            });
+            if let Some(message) = why {
+                return Err(RangesError::Map {
+                    path: p,
+                    map: name.clone(),
+                    message,
+                });
+            }
+        }
         Ok(Ranges {
             graph: f.graph,
             graph_hash: f.graph_hash,
             method: f.method,
             images: f.images,
             maps,
+            bias_shifts: f.bias_shifts,
         })
     }
 }

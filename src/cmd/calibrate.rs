@@ -44,6 +44,21 @@ pub struct Args {
     /// one of the command's inputs).
     #[arg(long)]
     pub force: bool,
+    /// Correct the biases of convolution and linear layers for the mean
+    /// shift int8 causes (empirical bias correction, layer by layer on the
+    /// calibration images); the shifts go into the ranges file, and the
+    /// report shows the figures without and with them.
+    #[arg(long)]
+    pub bias_correction: bool,
+    /// Also measure which layers cost the accuracy: per layer, the output
+    /// agreement and logit SQNR with only that layer in int8 and with all
+    /// but that layer in int8, ranked (printed, and in `--json`).
+    #[arg(long)]
+    pub sensitivity: bool,
+    /// Write the sensitivity ranking as an SVG bar chart (implies
+    /// `--sensitivity`).
+    #[arg(long, value_name = "FILE")]
+    pub sensitivity_svg: Option<PathBuf>,
     /// Target profile (`targets/NAME.toml`): only its `[camera]` is used.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -72,6 +87,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         holdout: args.holdout,
         skip_bad: args.skip_bad,
         progress: true,
+        bias_correction: args.bias_correction,
         ..CalibOptions::default()
     };
     let cal = agree::run(&graph, &images, &opts)?;
@@ -101,11 +117,38 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     .context("cannot write the ranges file")?;
     let mut report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
     report.set_good_classes(&good, graph.labels());
+    let sensitivity = if args.sensitivity || args.sensitivity_svg.is_some() {
+        Some(ingot_compiler::driver::sensitivity(
+            &graph, &images, &cal, &opts,
+        )?)
+    } else {
+        None
+    };
+    if let (Some(s), Some(path)) = (&sensitivity, &args.sensitivity_svg) {
+        let svg = s
+            .svg()
+            .map_err(|e| anyhow::anyhow!("sensitivity chart: {e}"))?;
+        output::write_file(
+            path,
+            svg.as_bytes(),
+            &[
+                ("graph file", &args.graph),
+                ("weights file", graph.weights_path()),
+                ("images folder", &args.images),
+                ("ranges file", &out),
+            ],
+            args.force,
+        )
+        .context("cannot write the sensitivity chart")?;
+    }
     if args.json {
         let mut v = serde_json::to_value(&report)?;
         v["ranges_file"] = serde_json::Value::String(out.display().to_string());
         if let Some(a) = &cal.auto {
             v["auto"] = serde_json::to_value(a)?;
+        }
+        if let Some(s) = &sensitivity {
+            v["sensitivity"] = serde_json::to_value(s)?;
         }
         println!("{}", serde_json::to_string_pretty(&v)?);
     } else {
@@ -123,7 +166,13 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
                 a.chosen
             );
         }
+        if let Some(s) = &sensitivity {
+            print!("{s}");
+        }
         println!("ranges written to {}", out.display());
+        if let Some(p) = &args.sensitivity_svg {
+            println!("sensitivity chart written to {}", p.display());
+        }
     }
     Ok(())
 }

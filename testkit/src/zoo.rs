@@ -146,6 +146,7 @@ impl Net {
             method: "minmax".into(),
             images: 3,
             maps,
+            bias_shifts: Default::default(),
         }
     }
 }

@@ -106,6 +106,7 @@ fn zoo_model(dir: &Path) -> (std::path::PathBuf, std::path::PathBuf) {
         method: "minmax".into(),
         images: 2,
         maps,
+        bias_shifts: Default::default(),
     };
     let path = dir.join("res.ranges.json");
     ranges.save(&g, &path).unwrap();

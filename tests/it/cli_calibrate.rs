@@ -235,3 +235,63 @@ fn calibrate_holdout_reports_the_paired_comparison_and_escapes() {
         "{e}"
     );
 }
+
+/// `--bias-correction --sensitivity --sensitivity-svg`: the shifts land in
+/// a v2 ranges file that `build` reads, the JSON report carries the
+/// sensitivity ranking (one row per step but the concatenations, the input
+/// included) and the bias-correction section, and the chart is an SVG.
+#[test]
+fn calibrate_bias_correction_and_sensitivity() {
+    let dir = tempfile::tempdir().unwrap();
+    let graph = setup(dir.path());
+    let out_file = dir.path().join("r.json");
+    let svg = dir.path().join("sens.svg");
+    let out = ingot!()
+        .args(["calibrate"])
+        .arg(&graph)
+        .arg("--images")
+        .arg(dir.path().join("images"))
+        .args(["--bias-correction", "--json", "--sensitivity-svg"])
+        .arg(&svg)
+        .arg("-o")
+        .arg(&out_file)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let rows = v["sensitivity"]["rows"].as_array().unwrap();
+    // input, conv1, pool1, conv2, pool2, fc
+    assert_eq!(rows.len(), 6);
+    assert_eq!(rows[0]["rank"], 1);
+    assert!(rows.iter().any(|r| r["name"] == "input"));
+    let layers: Vec<&str> = v["bias_correction"]["layers"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| l["layer"].as_str().unwrap())
+        .collect();
+    assert_eq!(layers, ["conv1", "conv2", "fc"]);
+    let ranges: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
+    assert_eq!(ranges["format"], "ingot.ranges.v2");
+    assert_eq!(ranges["bias_shifts"]["conv1"].as_array().unwrap().len(), 8);
+    assert!(std::fs::read_to_string(&svg).unwrap().starts_with("<svg"));
+    let built = ingot!()
+        .args(["build"])
+        .arg(&graph)
+        .arg("--ranges")
+        .arg(&out_file)
+        .arg("--out")
+        .arg(dir.path().join("module"))
+        .output()
+        .unwrap();
+    assert!(
+        built.status.success(),
+        "{}",
+        String::from_utf8_lossy(&built.stderr)
+    );
+}

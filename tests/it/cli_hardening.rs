@@ -405,6 +405,7 @@ fn collapsed_accuracy_fails_the_default_gates() {
             };
             graph.map_count()
         ],
+        bias_shifts: Default::default(),
     };
     r.maps[0] = ingot_compiler::calibrate::MapRange {
         min: -1.0,
@@ -453,6 +454,7 @@ fn degenerate_preprocessing_and_ranges_are_refused() {
             method: "minmax".into(),
             images: 1,
             maps: vec![ingot_compiler::calibrate::MapRange { min, max }; graph.map_count()],
+            bias_shifts: Default::default(),
         };
         let rp = tmp.path().join("r.json");
         r.save(&graph, &rp).unwrap();
@@ -558,6 +560,7 @@ fn os_errors_are_printed_once() {
             };
             graph.map_count()
         ],
+        bias_shifts: Default::default(),
     };
     let rp = tmp.path().join("r.json");
     r.save(&graph, &rp).unwrap();

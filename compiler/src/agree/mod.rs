@@ -7,7 +7,10 @@
 //! float network. [`run`] is calibration with `--method auto` resolved;
 //! [`report`] adds the int8 evaluation to a calibration report.
 
+pub mod bias;
 pub mod evaluate;
+pub mod mixed;
+pub mod sensitivity;
 
 pub use evaluate::{evaluate, EvalError, Evaluation};
 
@@ -38,8 +41,9 @@ pub enum AgreeError {
 
 /// Calibrates `graph` on `images` ([`calibrate::run`]) and, under
 /// [`Method::Auto`], keeps the candidate whose int8 network agrees best
-/// with float ([`choose`]): the entry point the CLI, build scripts and the
-/// harness use.
+/// with float ([`choose`]); with `bias_correction`, then corrects the
+/// biases ([`bias::correct`]): the entry point the CLI, build scripts and
+/// the harness use.
 pub fn run(
     graph: &Graph,
     images: &ImageSet,
@@ -47,6 +51,16 @@ pub fn run(
 ) -> Result<Calibration, AgreeError> {
     let mut cal = calibrate::run(graph, images, opts)?;
     choose(graph, images, &mut cal, opts)?;
+    if opts.bias_correction {
+        bias::correct(
+            graph,
+            images,
+            &mut cal,
+            &LowerOptions::default(),
+            opts.skip_bad,
+        )
+        .map_err(AgreeError::Agreement)?;
+    }
     Ok(cal)
 }
 
@@ -120,8 +134,62 @@ pub fn report(
         Some(lo) => {
             let ev = evaluate(graph, images, cal, lo, opts.skip_bad, opts.progress)?;
             r.add_evaluation(images, &ev);
+            if !cal.ranges.bias_shifts.is_empty() {
+                let mut plain = cal.clone();
+                plain.ranges.bias_shifts.clear();
+                let before = evaluate(graph, images, &plain, lo, opts.skip_bad, opts.progress)?;
+                r.bias_correction = Some(bias_effect(graph, cal, lo, &before, &ev)?);
+            }
         }
         None => r.not_evaluated = Some("not requested".into()),
     }
     Ok(r)
+}
+
+/// The report section of bias correction from the evaluations without and
+/// with it.
+fn bias_effect(
+    graph: &Graph,
+    cal: &Calibration,
+    lo: &LowerOptions,
+    before: &Evaluation,
+    after: &Evaluation,
+) -> Result<calibrate::report::BiasEffect, EvalError> {
+    use calibrate::report::{BiasLayer, OutputFigures};
+    let q = crate::lower::lower(graph, &cal.ranges, lo)?;
+    let logits = q.map(q.output).float_map.index();
+    let figures = |e: &Evaluation| OutputFigures {
+        top1_agreement: e.output.top1_agreement,
+        int8_accuracy: e.output.int8_accuracy,
+        logit_sqnr_db: e.sqnr_db[logits],
+        lowest_layer_sqnr_db: e
+            .sqnr_db
+            .iter()
+            .flatten()
+            .copied()
+            .filter(|v| !v.is_nan())
+            .reduce(f64::min),
+    };
+    let layers = q
+        .steps
+        .iter()
+        .filter_map(|s| {
+            let name = &graph.layer(s.layers[0]).name;
+            let d = cal.ranges.bias_shifts.get(name)?;
+            let m = q.map(s.output).float_map.index();
+            Some(BiasLayer {
+                layer: name.clone(),
+                mean_abs_shift: d.iter().map(|v| v.abs() as f64).sum::<f64>()
+                    / d.len().max(1) as f64,
+                max_abs_shift: d.iter().fold(0f64, |a, v| a.max(v.abs() as f64)),
+                sqnr_before_db: before.sqnr_db[m],
+                sqnr_after_db: after.sqnr_db[m],
+            })
+        })
+        .collect();
+    Ok(calibrate::report::BiasEffect {
+        layers,
+        before: figures(before),
+        after: figures(after),
+    })
 }

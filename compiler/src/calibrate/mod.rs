@@ -77,6 +77,9 @@ pub struct CalibOptions {
     pub skip_bad: bool,
     /// Show a progress bar on standard error (only when it is a terminal).
     pub progress: bool,
+    /// After choosing ranges, correct the biases of convolution and linear
+    /// layers for the mean shift int8 causes (`agree::bias`).
+    pub bias_correction: bool,
 }
 
 impl Default for CalibOptions {
@@ -87,6 +90,7 @@ impl Default for CalibOptions {
             holdout: 0.0,
             skip_bad: false,
             progress: false,
+            bias_correction: false,
         }
     }
 }
@@ -326,6 +330,7 @@ pub fn run_with_source<S: MapSource + ?Sized>(
             method: opts.method.to_string(),
             images: o.calibration.len(),
             maps: o.ranges,
+            bias_shifts: Default::default(),
         },
         stats: o.stats,
         calibration: o.calibration,

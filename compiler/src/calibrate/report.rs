@@ -110,6 +110,50 @@ pub struct Report {
     pub output: Option<OutputAgreement>,
     /// Why no evaluation was made, if none was.
     pub not_evaluated: Option<String>,
+    /// What bias correction changed, when the ranges carry corrections.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub bias_correction: Option<BiasEffect>,
+}
+
+/// What bias correction changed (`--bias-correction`), measured as the
+/// int8 evaluation is, once without and once with the corrections.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct BiasEffect {
+    /// One row per corrected layer, in schedule order.
+    pub layers: Vec<BiasLayer>,
+    /// Without the corrections.
+    pub before: OutputFigures,
+    /// With them.
+    pub after: OutputFigures,
+}
+
+/// One corrected layer.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct BiasLayer {
+    /// Layer name.
+    pub layer: String,
+    /// Mean of `|shift|` over its output channels (real units of its
+    /// output).
+    pub mean_abs_shift: f64,
+    /// Largest `|shift|`.
+    pub max_abs_shift: f64,
+    /// SQNR of the map its step writes, without the corrections (dB).
+    pub sqnr_before_db: Option<f64>,
+    /// Likewise with them.
+    pub sqnr_after_db: Option<f64>,
+}
+
+/// Output figures of one int8 evaluation.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct OutputFigures {
+    /// Int8 top-1 agreement with float.
+    pub top1_agreement: f64,
+    /// Int8 accuracy on the labelled images.
+    pub int8_accuracy: Option<f64>,
+    /// SQNR of the logits (dB).
+    pub logit_sqnr_db: Option<f64>,
+    /// Lowest SQNR of any stored map (dB).
+    pub lowest_layer_sqnr_db: Option<f64>,
 }
 
 impl Report {
@@ -160,6 +204,7 @@ impl Report {
             layers,
             output: None,
             not_evaluated: None,
+            bias_correction: None,
         }
     }
 }
@@ -252,6 +297,42 @@ impl fmt::Display for Report {
             }
             (None, Some(why)) => writeln!(f, "not evaluated in int8: {why}")?,
             (None, None) => {}
+        }
+        if let Some(b) = &self.bias_correction {
+            writeln!(f, "bias correction (empirical, on the calibration images):")?;
+            let w = b
+                .layers
+                .iter()
+                .map(|l| l.layer.len())
+                .max()
+                .unwrap_or(5)
+                .max(5);
+            writeln!(
+                f,
+                "  {:<w$}  {:>10}  {:>10}  {:>10}  {:>10}",
+                "layer", "mean |δ|", "max |δ|", "dB before", "dB after"
+            )?;
+            for l in &b.layers {
+                writeln!(
+                    f,
+                    "  {:<w$}  {:>10.3e}  {:>10.3e}  {:>10}  {:>10}",
+                    l.layer,
+                    l.mean_abs_shift,
+                    l.max_abs_shift,
+                    db(l.sqnr_before_db),
+                    db(l.sqnr_after_db)
+                )?;
+            }
+            for (what, o) in [("before", &b.before), ("after", &b.after)] {
+                writeln!(
+                    f,
+                    "  {what:<6}: top-1 agreement {}, int8 accuracy {}, logit SQNR {} dB, lowest layer SQNR {} dB",
+                    pct(o.top1_agreement),
+                    o.int8_accuracy.map_or(MISSING.to_string(), pct),
+                    db(o.logit_sqnr_db),
+                    db(o.lowest_layer_sqnr_db)
+                )?;
+            }
         }
         Ok(())
     }

@@ -352,11 +352,32 @@ pub fn ranges_for(
                     };
                     graph.map_count()
                 ],
+                bias_shifts: Default::default(),
             },
             hash: String::new(),
             note: "synthetic ranges ([-4, 4] for every map)".into(),
         }),
     }
+}
+
+/// The per-layer sensitivity report of a calibration (`ingot calibrate
+/// --sensitivity`): the network lowered with `cal`'s ranges and the
+/// lowering options a build uses, measured on the images the int8
+/// evaluation uses ([`crate::agree::sensitivity::measure`]).
+pub fn sensitivity(
+    graph: &Graph,
+    images: &ImageSet,
+    cal: &crate::calibrate::Calibration,
+    opts: &CalibOptions,
+) -> Result<crate::agree::sensitivity::Sensitivity, crate::agree::EvalError> {
+    crate::agree::sensitivity::measure(
+        graph,
+        images,
+        cal,
+        &LowerOptions::default(),
+        opts.skip_bad,
+        opts.progress,
+    )
 }
 
 /// Lowers `graph` with `ranges` and plans its memory for `weight_form`.

@@ -29,6 +29,16 @@ pub enum LowerError {
         /// Upper end.
         max: f32,
     },
+    /// A bias correction of the ranges does not fit its layer: no such
+    /// convolution or linear layer, a length other than its output
+    /// channels, or a value that is not finite.
+    #[error("bias shifts for `{layer}`: {message}")]
+    BadBiasShift {
+        /// Layer name as the ranges give it.
+        layer: String,
+        /// What is wrong.
+        message: String,
+    },
     /// Every map's range is a single value.
     #[error("graph `{graph}`: every calibrated range is a single value (min = max); the calibration images or the ranges file carry no information")]
     DegenerateRanges {

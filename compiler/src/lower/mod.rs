@@ -179,6 +179,29 @@ fn check_ranges(g: &Graph, ranges: &Ranges) -> Result<(), LowerError> {
             });
         }
     }
+    for (name, shift) in &ranges.bias_shifts {
+        let channels = match g.find_layer(name).map(|l| &g.layer(l).op) {
+            Some(Op::Conv2d(c)) => Some(c.out_channels),
+            Some(Op::Linear(l)) => Some(l.out_features),
+            _ => None,
+        };
+        let message = match channels {
+            None => Some("not a convolution or linear layer of the graph".to_string()),
+            Some(n) if n != shift.len() => {
+                Some(format!("{} values for {n} output channels", shift.len()))
+            }
+            Some(_) if shift.iter().any(|v| !v.is_finite()) => {
+                Some("a value is not finite".to_string())
+            }
+            Some(_) => None,
+        };
+        if let Some(message) = message {
+            return Err(LowerError::BadBiasShift {
+                layer: name.clone(),
+                message,
+            });
+        }
+    }
     // Every map collapsed to one value: the ranges say the network computes
     // a constant (a calibration on blank images, or an edited file); no
     // int8 network can be built from that.

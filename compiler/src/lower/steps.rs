@@ -20,6 +20,19 @@ pub(super) fn pool_taps(layer: &crate::graph::Layer, taps: usize) -> Result<(), 
     Ok(())
 }
 
+/// A layer's real bias (batch norm folded) plus its correction from the
+/// ranges, if any (`Ranges::bias_shifts`, whose lengths `lower` checked).
+fn shifted(ranges: &Ranges, layer: &str, mut bias: Vec<f32>) -> Vec<f32> {
+    if let Some(s) = ranges.bias_shifts.get(layer) {
+        if s.len() == bias.len() {
+            for (b, d) in bias.iter_mut().zip(s) {
+                *b += d;
+            }
+        }
+    }
+    bias
+}
+
 pub(super) struct Builder<'a> {
     pub(super) g: &'a Graph,
     pub(super) opts: &'a LowerOptions,
@@ -150,6 +163,7 @@ impl Builder<'_> {
                             .map_or_else(|| vec![0.0; conv.out_channels], |t| t.data.clone()),
                     ),
                 };
+                let bias = shifted(ranges, &layer.name, bias);
                 let [kh, kw] = conv.kernel;
                 let cpg = conv.in_channels / conv.groups;
                 // [O][I/g][kh][kw] -> [O][kh][kw][I/g]
@@ -209,6 +223,7 @@ impl Builder<'_> {
                     .bias
                     .as_ref()
                     .map_or_else(|| vec![0.0; lin.out_features], |t| t.data.clone());
+                let bias = shifted(ranges, &layer.name, bias);
                 let (bias, requant) =
                     self.bias_and_requant(id, &qw, &bias, in_qp[0], out_qp, src, out_shape)?;
                 QKernel::Linear(QLinear {

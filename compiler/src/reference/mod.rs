@@ -60,6 +60,20 @@ pub struct Reference<'g> {
     last_use: Vec<usize>,
     /// Largest im2col matrix any convolution needs.
     scratch_len: usize,
+    /// Per layer, a second form of a convolution or linear layer (other
+    /// weights and bias, same shape) that [`Reference::run_mixed`] may use
+    /// instead: the fake-quantized layers of `agree::sensitivity`.
+    alternative: Vec<Option<Op>>,
+}
+
+/// A second set of weights and bias for one convolution or linear layer
+/// ([`Reference::set_alternative`]), in the float graph's layouts.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Alternative {
+    /// Weights, the same length as the layer's.
+    pub weight: Vec<f32>,
+    /// Bias, one per output channel.
+    pub bias: Vec<f32>,
 }
 
 impl<'g> Reference<'g> {
@@ -97,7 +111,55 @@ impl<'g> Reference<'g> {
             prepared,
             last_use,
             scratch_len,
+            alternative: vec![None; graph.layers().len()],
         }
+    }
+
+    /// Gives a convolution or linear layer a second set of weights and bias
+    /// that [`Reference::run_mixed`] uses when asked. Returns `false` (and
+    /// changes nothing) for another kind of layer or mismatched lengths.
+    pub fn set_alternative(&mut self, layer: crate::graph::LayerId, alt: Alternative) -> bool {
+        let Some(l) = self.graph.layers().get(layer.index()) else {
+            return false;
+        };
+        let tensor = |t: &crate::graph::Tensor, data: Vec<f32>| crate::graph::Tensor {
+            name: t.name.clone(),
+            shape: t.shape.clone(),
+            data,
+        };
+        let op = match &l.op {
+            Op::Conv2d(c)
+                if alt.weight.len() == c.weight.len() && alt.bias.len() == c.out_channels =>
+            {
+                let bias = crate::graph::Tensor {
+                    shape: vec![c.out_channels],
+                    data: alt.bias,
+                    name: format!("{}.alternative_bias", c.weight.name),
+                };
+                Op::Conv2d(crate::graph::Conv2d {
+                    weight: tensor(&c.weight, alt.weight),
+                    bias: Some(bias),
+                    ..c.clone()
+                })
+            }
+            Op::Linear(f)
+                if alt.weight.len() == f.weight.len() && alt.bias.len() == f.out_features =>
+            {
+                let bias = crate::graph::Tensor {
+                    shape: vec![f.out_features],
+                    data: alt.bias,
+                    name: format!("{}.alternative_bias", f.weight.name),
+                };
+                Op::Linear(crate::graph::Linear {
+                    weight: tensor(&f.weight, alt.weight),
+                    bias: Some(bias),
+                    ..f.clone()
+                })
+            }
+            _ => return false,
+        };
+        self.alternative[layer.index()] = Some(op);
+        true
     }
 
     /// The graph this reference runs.
@@ -127,6 +189,23 @@ impl<'g> Reference<'g> {
     where
         F: FnMut(MapId, &[f32]),
     {
+        self.run_mixed(input, &[], |m, v| visit(m, v))
+    }
+
+    /// Runs one image like [`Reference::run_with`], with two differences:
+    /// layer `i` computes with its alternative weights
+    /// ([`Reference::set_alternative`]) when `use_alternative[i]` is true
+    /// (missing entries are false), and `edit` may change each map (the
+    /// input included) before any layer reads it.
+    pub fn run_mixed<F>(
+        &self,
+        input: &[f32],
+        use_alternative: &[bool],
+        mut edit: F,
+    ) -> Result<Vec<f32>, ReferenceError>
+    where
+        F: FnMut(MapId, &mut [f32]),
+    {
         let g = self.graph;
         let in_shape = g.input().shape;
         if input.len() != in_shape.len() {
@@ -136,9 +215,10 @@ impl<'g> Reference<'g> {
                 got: input.len(),
             });
         }
-        visit(MapId::INPUT, input);
         let mut maps: Vec<Option<Vec<f32>>> = vec![None; g.map_count()];
-        maps[0] = Some(input.to_vec());
+        let mut first = input.to_vec();
+        edit(MapId::INPUT, &mut first);
+        maps[0] = Some(first);
         let mut pool: Vec<Vec<f32>> = Vec::new();
         let mut scratch = vec![0.0f32; self.scratch_len];
         for (i, layer) in g.layers().iter().enumerate() {
@@ -158,9 +238,10 @@ impl<'g> Reference<'g> {
                         )
                     })
                     .collect();
-                self.layer(i, &ins, out_shape, &mut out, &mut scratch);
+                let alt = use_alternative.get(i).copied().unwrap_or(false);
+                self.layer(i, alt, &ins, out_shape, &mut out, &mut scratch);
             }
-            visit(out_id, &out);
+            edit(out_id, &mut out);
             maps[out_id.index()] = Some(out);
             for m in &layer.inputs {
                 if self.last_use[m.index()] == i {
@@ -192,14 +273,19 @@ impl<'g> Reference<'g> {
     fn layer(
         &self,
         i: usize,
+        alt: bool,
         ins: &[(&[f32], Shape)],
         out_shape: Shape,
         out: &mut [f32],
         scratch: &mut [f32],
     ) {
         let layer = &self.graph.layers()[i];
+        let op = match &self.alternative[i] {
+            Some(op) if alt => op,
+            _ => &layer.op,
+        };
         let (x, xs) = ins[0];
-        match (&layer.op, &self.prepared[i]) {
+        match (op, &self.prepared[i]) {
             (Op::Conv2d(c), _) => kernels::conv2d(c, x, xs, out, out_shape, scratch),
             (Op::BatchNorm(_), Prepared::Affine { scale, shift }) => {
                 kernels::affine(x, xs, scale, shift, out)

@@ -33,6 +33,7 @@ fn calibrate(g: &ingot_compiler::Graph, images: &[Vec<f32>]) -> Ranges {
         method: "minmax".into(),
         images: images.len(),
         maps,
+        bias_shifts: Default::default(),
     }
 }
 
@@ -140,6 +141,7 @@ fn fusion_ram_saved_on_zoo_dense_networks() {
             };
             g.map_count()
         ],
+        bias_shifts: Default::default(),
     };
     let g = zoo::dense_small(1).build();
     let s = fusion_savings(&lower(&g, &synthetic(&g), &LowerOptions::default()).unwrap());

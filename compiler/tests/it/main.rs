@@ -2,6 +2,7 @@
 //! per file keeps CI's link time and `target/` size down. Each file is a
 //! module; run one with `cargo test --test it <module>::`.
 
+mod bias_correction;
 mod calibrate_zoo;
 mod camera_host;
 mod check_runners;
@@ -26,5 +27,6 @@ mod plan_hand;
 mod plan_nets;
 mod plan_targets;
 mod reference_vs_candle;
+mod sensitivity;
 mod stats;
 mod zoo_reference;

@@ -399,6 +399,7 @@ pub fn calibrate(g: &Graph, images: &[Vec<f32>]) -> Ranges {
         method: "minmax".into(),
         images: images.len(),
         maps: r,
+        bias_shifts: Default::default(),
     }
 }
 
@@ -410,5 +411,6 @@ pub fn flat_ranges(g: &Graph, min: f32, max: f32) -> Ranges {
         method: "synthetic".into(),
         images: 0,
         maps: vec![MapRange { min, max }; g.map_count()],
+        bias_shifts: Default::default(),
     }
 }
