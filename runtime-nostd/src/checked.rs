@@ -117,6 +117,36 @@ impl<'a, const A: usize, const P: usize> Conv2dPaired<'a, A, P> {
     }
 }
 
+/// A checked [`conv2d_words`](crate::conv2d_words) call for an arena of
+/// `A` bytes and a patch of `P` elements.
+#[derive(Clone, Copy)]
+pub struct Conv2dWords<'a, const A: usize, const P: usize>(ConvArgs<'a>);
+
+impl<'a, const A: usize, const P: usize> Conv2dWords<'a, A, P> {
+    /// Runs every check of [`conv2d_words`](crate::conv2d_words).
+    #[allow(clippy::too_many_arguments)]
+    pub const fn new(
+        input: MapRef,
+        output: MapRef,
+        weights: &'a [u8],
+        bias: &'a [i32],
+        requant: &'a [Requant],
+        p: ConvParams,
+        transform: Option<InputTransform<'a>>,
+    ) -> Result<Self, Error> {
+        let rows = Rows::Words(weights);
+        match check_conv(A, P, input, output, rows, bias, requant, p, transform) {
+            Ok(a) => Ok(Conv2dWords(a)),
+            Err(e) => Err(e),
+        }
+    }
+
+    /// The convolution; cannot fail.
+    pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
+        conv_run(arena, &self.0, patch);
+    }
+}
+
 /// A checked [`linear`](crate::linear) call for an arena of `A` bytes.
 #[derive(Clone, Copy)]
 pub struct Linear<'a, const A: usize>(LinearArgs<'a>);

@@ -2,7 +2,8 @@
 //! widened patch, then contiguous dot products per output channel.
 
 use crate::dot::{
-    dot2_wide, dot4_pairs, dot4_wide, dot_pairs_few, dot_wide, tail_wide, widen_into,
+    dot2_wide, dot4_pairs, dot4_wide, dot4_words, dot_pairs_few, dot_wide, dot_words_few,
+    tail_wide, widen_into,
 };
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 use core::num::NonZeroUsize;
@@ -236,6 +237,64 @@ pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) ->
     Ok(())
 }
 
+/// Length in bytes of `rows` weight rows of `k` int8 weights in the word
+/// layout of [`word_rows_into`]: `rows · 4·⌈k / 4⌉`.
+pub const fn words_len(rows: usize, k: usize) -> usize {
+    rows * k.div_ceil(4) * 4
+}
+
+/// Writes the word layout of int8 weight rows `w = [rows][k]` into `out`,
+/// the form [`conv2d_words`] reads: still one byte per weight, arranged so
+/// that one 32-bit load and two sign-extending byte-pair widenings
+/// (`sxtb16`, and `sxtb16` of the word rotated by 8 bits) give the 16-bit
+/// pairs that meet the patch pairs `(x0, x1)` and `(x2, x3)`.
+///
+/// Each row is cut into quads of four consecutive weights `w0..w3`
+/// (the last quad padded with zero weights), each stored as the four bytes
+/// `[w0, w2, w1, w3]`. Rows go in blocks of four (the last block holds the
+/// one to three rows left over); within a block, quad `q` of every row in
+/// turn, so a block is read front to back, sixteen bytes per quad of patch
+/// elements.
+///
+/// [`Error::BufferTooSmall`] (and nothing written) when
+/// `out.len() != words_len(rows, k)` or `w` is shorter than `rows · k`.
+pub fn word_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u8]) -> Result<(), Error> {
+    let need = rows.checked_mul(k).ok_or(Error::BufferTooSmall)?;
+    if out.len() != words_len(rows, k) || w.len() < need {
+        return Err(Error::BufferTooSmall);
+    }
+    let kq = k.div_ceil(4);
+    let at = |r: usize, i: usize| -> u8 {
+        if i < k {
+            w.get(r * k + i).map_or(0, |&v| v as u8)
+        } else {
+            0
+        }
+    };
+    let mut o = out.iter_mut();
+    let mut r0 = 0;
+    while r0 < rows {
+        let block = (rows - r0).min(4);
+        for q in 0..kq {
+            for r in r0..r0 + block {
+                for i in [0, 2, 1, 3] {
+                    if let Some(d) = o.next() {
+                        *d = at(r, 4 * q + i);
+                    }
+                }
+            }
+        }
+        r0 += block;
+    }
+    Ok(())
+}
+
+/// [`conv_rows_apply`] for the word layout of [`conv2d_words`]: every
+/// kernel row must also start a new quad (`kw · C_in` a multiple of 4).
+pub const fn conv_rows_apply_words(w: &Window, groups: usize, c_in: usize) -> bool {
+    conv_rows_apply(w, groups, c_in) && (w.kw * c_in) % 4 == 0
+}
+
 /// True when [`conv2d_paired`] can run from a buffer of whole input rows
 /// instead of a per-pixel patch: step and dilation 1, one group, and an
 /// even number of elements per kernel row (`kw · C_in`), so every kernel
@@ -267,6 +326,8 @@ pub(crate) enum Rows<'a> {
     Bytes(&'a [i8]),
     /// [`pair_rows`] of the same rows (one group).
     Pairs(&'a [u32]),
+    /// [`word_rows_into`] of the same rows (one group).
+    Words(&'a [u8]),
 }
 
 /// A convolution call whose maps, buffers and parameters passed
@@ -338,6 +399,12 @@ pub(crate) const fn check_conv<'a>(
             }
             w.len() >= paired_len(output.c, taps * cpg)
         }
+        Rows::Words(w) => {
+            if p.groups != 1 {
+                return Err(Error::BadParams);
+            }
+            w.len() >= words_len(output.c, taps * cpg)
+        }
     };
     if !enough
         || bias.len() < output.c
@@ -354,9 +421,11 @@ pub(crate) const fn check_conv<'a>(
             return Err(Error::BadParams);
         }
     }
-    let ring = matches!(rows, Rows::Pairs(_))
-        && conv_rows_apply(w, p.groups, input.c)
-        && patch_len >= conv_rows_len(w, input.w, input.c);
+    let ring = match rows {
+        Rows::Bytes(_) => false,
+        Rows::Pairs(_) => conv_rows_apply(w, p.groups, input.c),
+        Rows::Words(_) => conv_rows_apply_words(w, p.groups, input.c),
+    } && patch_len >= conv_rows_len(w, input.w, input.c);
     Ok(ConvArgs {
         input,
         output,
@@ -452,6 +521,45 @@ pub fn conv2d_paired(
     Ok(())
 }
 
+/// [`conv2d`] with the int8 weights in the word layout of
+/// [`word_rows_into`] (`weights`, `words_len(C_out, kh·kw·C_in)` bytes),
+/// for cores with the DSP extension (Cortex-M4, M7, M33 with it): one
+/// 32-bit load brings four weights of a row, two `sxtb16` widen them into
+/// 16-bit pairs in registers and two `smlad` add four MACs, so the weights
+/// take one byte each in flash instead of the two of [`conv2d_paired`].
+/// One group only (`p.groups == 1`, else [`Error::BadParams`]). Same
+/// results as [`conv2d`], bit for bit, on every core (elsewhere the
+/// instructions are their portable twins).
+///
+/// `patch` as for [`conv2d_paired`], with [`conv_rows_apply_words`] in
+/// place of [`conv_rows_apply`] for the ring of input rows.
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_words(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+) -> Result<(), Error> {
+    let a = check_conv(
+        arena.len(),
+        patch.len(),
+        input,
+        output,
+        Rows::Words(weights),
+        bias,
+        requant,
+        *p,
+        transform.copied(),
+    )?;
+    conv_run(arena, &a, patch);
+    Ok(())
+}
+
 /// Runs a checked convolution. Every slice is taken with `get`: after
 /// [`check_conv`] none of them can be out of range, and the early returns
 /// (which cannot happen) are what leaves no panic path in the binary.
@@ -472,11 +580,20 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     if seg == 0 {
         return;
     }
-    if let (Rows::Pairs(pw), true) = (a.rows, a.ring) {
-        conv_rows(
-            arena, &input, &output, pw, bias, requant, p, transform, patch,
-        );
-        return;
+    match (a.rows, a.ring) {
+        (Rows::Pairs(pw), true) => {
+            conv_rows(
+                arena, &input, &output, pw, bias, requant, p, transform, patch,
+            );
+            return;
+        }
+        (Rows::Words(ww), true) => {
+            conv_rows(
+                arena, &input, &output, ww, bias, requant, p, transform, patch,
+            );
+            return;
+        }
+        _ => {}
     }
     // The paired kernels read the patch in pairs: with one group and an
     // odd length, the element after the last meets a zero weight.
@@ -486,6 +603,11 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
             _ => return,
         },
         Rows::Pairs(_) => match patch.get_mut(..seg.div_ceil(2) * 2) {
+            Some(x) => (x, &[]),
+            None => return,
+        },
+        // The word kernels pad the last quad themselves.
+        Rows::Words(_) => match patch.get_mut(..seg) {
             Some(x) => (x, &[]),
             None => return,
         },
@@ -598,6 +720,8 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
                 }
             } else if let Rows::Pairs(pw) = a.rows {
                 paired_rows(patch, pw, bias, requant, p.out, out);
+            } else if let Rows::Words(ww) = a.rows {
+                paired_rows(patch, ww, bias, requant, p.out, out);
             } else {
                 for (g, xw) in patch.chunks_exact(seg.max(1)).enumerate() {
                     let o0 = g * opg;
@@ -845,15 +969,58 @@ fn requantize_into(
     }
 }
 
-/// [`conv2d_paired`] from a ring of `kh` padded, transformed input rows
-/// (see [`conv_rows_len`]); the caller checked [`conv_rows_apply`], the
-/// shapes and the buffer length.
+/// A packed weight layout of one-group convolutions: [`pair_rows`]
+/// (`u32` words of two `i16`) or [`word_rows_into`] (bytes, four int8
+/// weights a word). Rows go in blocks of four in both; a block stores, per
+/// unit of [`Packed::ELEMS`] patch elements, [`Packed::STORE`] elements of
+/// each row in turn.
+trait Packed: Copy {
+    /// Patch elements per unit.
+    const ELEMS: usize;
+    /// Stored elements per unit and row.
+    const STORE: usize;
+    /// Four rows of a block against the patch `x`.
+    fn dot4(x: &[i16], w: &[Self]) -> [i32; 4];
+    /// The one to three rows of a last block, added into `acc`.
+    fn few(x: &[i16], w: &[Self], acc: &mut [i32]);
+}
+
+impl Packed for u32 {
+    const ELEMS: usize = 2;
+    const STORE: usize = 1;
+    #[inline(always)]
+    fn dot4(x: &[i16], w: &[u32]) -> [i32; 4] {
+        dot4_pairs(x, w)
+    }
+    #[inline(always)]
+    fn few(x: &[i16], w: &[u32], acc: &mut [i32]) {
+        dot_pairs_few(x, w, acc)
+    }
+}
+
+impl Packed for u8 {
+    const ELEMS: usize = 4;
+    const STORE: usize = 4;
+    #[inline(always)]
+    fn dot4(x: &[i16], w: &[u8]) -> [i32; 4] {
+        dot4_words(x, w)
+    }
+    #[inline(always)]
+    fn few(x: &[i16], w: &[u8], acc: &mut [i32]) {
+        dot_words_few(x, w, acc)
+    }
+}
+
+/// [`conv2d_paired`] or [`conv2d_words`] from a ring of `kh` padded,
+/// transformed input rows (see [`conv_rows_len`]); the caller checked
+/// [`conv_rows_apply`] (or [`conv_rows_apply_words`]), the shapes and the
+/// buffer length.
 #[allow(clippy::too_many_arguments)]
-fn conv_rows(
+fn conv_rows<T: Packed>(
     arena: &mut [i8],
     input: &MapRef,
     output: &MapRef,
-    weights: &[u32],
+    weights: &[T],
     bias: &[i32],
     requant: &[Requant],
     p: &ConvParams,
@@ -869,9 +1036,9 @@ fn conv_rows(
     let Some(ring) = ring.get_mut(..w.kh * row_len) else {
         return;
     };
-    let run = w.kw * c; // elements of one kernel row, even
-    let row_pairs = run / 2;
-    let kp = w.kh * row_pairs; // pairs per weight row
+    let run = w.kw * c; // elements of one kernel row, whole units
+    let row_pairs = run / T::ELEMS * T::STORE; // stored per kernel row
+    let kp = w.kh * row_pairs; // stored per weight row
     let m = output.c;
     let quads = m / 4;
     let left = m % 4;
@@ -930,7 +1097,7 @@ fn conv_rows(
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
-                    let part = dot4_pairs(x, wk);
+                    let part = T::dot4(x, wk);
                     for (a, v) in acc.iter_mut().zip(part) {
                         *a = a.wrapping_add(v);
                     }
@@ -945,7 +1112,7 @@ fn conv_rows(
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
-                    dot_pairs_few(x, wk, acc);
+                    T::few(x, wk, acc);
                 }
                 requantize_into(out_left, acc, bias_left, rq_left, p.out);
             }
@@ -987,18 +1154,18 @@ fn fill_row(
     }
 }
 
-/// All output channels of one pixel from paired weights (one group): four
+/// All output channels of one pixel from packed weights (one group): four
 /// rows per pass over the patch, then the one to three left over.
 #[inline]
-fn paired_rows(
+fn paired_rows<T: Packed>(
     xw: &[i16],
-    weights: &[u32],
+    weights: &[T],
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
 ) {
-    let kp = xw.len() / 2;
+    let kp = xw.len().div_ceil(T::ELEMS) * T::STORE;
     let m = out.len();
     let quads = m / 4;
     if kp == 0 {
@@ -1029,14 +1196,14 @@ fn paired_rows(
         let (Some(block), Some(b), Some(r)) = (blocks.next(), bs.next(), rs.next()) else {
             return;
         };
-        let acc = dot4_pairs(xw, block);
+        let acc = T::dot4(xw, block);
         requantize_into(o, &acc, b, r, out_q);
     }
     let left = m % 4;
     if left > 0 {
         let mut acc = [0i32; 3];
         let acc = &mut acc[..left];
-        dot_pairs_few(xw, rest, acc);
+        T::few(xw, rest, acc);
         requantize_into(out_left, acc, bias_left, rq_left, out_q);
     }
 }

@@ -241,6 +241,92 @@ pub(crate) fn dot_pairs_few(x: &[i16], w: &[u32], acc: &mut [i32]) {
     }
 }
 
+/// One word of the word layout (see [`word_rows_into`](crate::word_rows_into)):
+/// four int8 weights stored as bytes `[w0, w2, w1, w3]`, read as one
+/// little-endian 32-bit load.
+#[inline(always)]
+fn load_word(b: &[u8; 4]) -> u32 {
+    u32::from_le_bytes(*b)
+}
+
+/// `acc + x01·(w0, w1) + x23·(w2, w3)` for one stored word `wv` of the
+/// word layout: `sxtb16` widens bytes 0 and 2 (`w0`, `w1`) into the two
+/// 16-bit lanes, `sxtb16` with `ror #8` bytes 1 and 3 (`w2`, `w3`), so the
+/// lanes line up with the patch pairs `(x0, x1)` and `(x2, x3)` and each
+/// feeds one `smlad`. Four MACs for one load, two widenings and two
+/// multiply-accumulates.
+#[inline(always)]
+fn mac_quad(acc: i32, x01: u32, x23: u32, wv: u32) -> i32 {
+    let acc = mac_pair(acc, x01, ingot_dsp::sxtb16(wv));
+    mac_pair(acc, x23, ingot_dsp::sxtb16_ror8(wv))
+}
+
+/// The patch values `x[0..4]` as two words of two `i16`, zeros past the
+/// end of `x` (the last, partial quad of a row meets zero weights there).
+#[inline(always)]
+fn quad_words(x: &[i16]) -> (u32, u32) {
+    let at = |i: usize| x.get(i).copied().unwrap_or(0);
+    (word(at(0), at(1)), word(at(2), at(3)))
+}
+
+/// Four weight rows in the word layout (see
+/// [`word_rows_into`](crate::word_rows_into)) against the patch `x`: `w` holds, for
+/// every quad `q < ⌈x.len() / 4⌉` of patch elements, one word (four
+/// bytes) of each of the four rows. A last partial quad of `x` is padded
+/// with zeros (its weights are zero there too).
+#[inline(never)]
+pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
+    let (mut a, mut b, mut c, mut d) = (0i32, 0i32, 0i32, 0i32);
+    let xs = x.chunks_exact(4);
+    let xr = xs.remainder();
+    let mut ws = w.chunks_exact(16);
+    for xq in xs {
+        no_unroll();
+        let Some(Ok(q)) = ws.next().map(<&[u8; 16]>::try_from) else {
+            break;
+        };
+        let (x01, x23) = (word(xq[0], xq[1]), word(xq[2], xq[3]));
+        let [w0, w1, w2, w3, w4, w5, w6, w7, w8, w9, wa, wb, wc, wd, we, wf] = *q;
+        a = mac_quad(a, x01, x23, load_word(&[w0, w1, w2, w3]));
+        b = mac_quad(b, x01, x23, load_word(&[w4, w5, w6, w7]));
+        c = mac_quad(c, x01, x23, load_word(&[w8, w9, wa, wb]));
+        d = mac_quad(d, x01, x23, load_word(&[wc, wd, we, wf]));
+    }
+    if !xr.is_empty() {
+        if let Some(Ok(q)) = ws.next().map(<&[u8; 16]>::try_from) {
+            let (x01, x23) = quad_words(xr);
+            let [w0, w1, w2, w3, w4, w5, w6, w7, w8, w9, wa, wb, wc, wd, we, wf] = *q;
+            a = mac_quad(a, x01, x23, load_word(&[w0, w1, w2, w3]));
+            b = mac_quad(b, x01, x23, load_word(&[w4, w5, w6, w7]));
+            c = mac_quad(c, x01, x23, load_word(&[w8, w9, wa, wb]));
+            d = mac_quad(d, x01, x23, load_word(&[wc, wd, we, wf]));
+        }
+    }
+    [a, b, c, d]
+}
+
+/// `acc.len()` (1 to 3) rows in the word layout, as [`dot4_words`] with a
+/// block of `acc.len()` rows; adds into `acc`.
+#[inline(never)]
+pub(crate) fn dot_words_few(x: &[i16], w: &[u8], acc: &mut [i32]) {
+    let m = acc.len();
+    if m == 0 {
+        return;
+    }
+    let mut ws = w.chunks_exact((4 * m).max(1));
+    for xq in x.chunks(4) {
+        let Some(q) = ws.next() else {
+            return;
+        };
+        let (x01, x23) = quad_words(xq);
+        for (s, wb) in acc.iter_mut().zip(q.chunks_exact(4)) {
+            if let Ok(wb) = <&[u8; 4]>::try_from(wb) {
+                *s = mac_quad(*s, x01, x23, load_word(wb));
+            }
+        }
+    }
+}
+
 /// Register-friendly forms for cores without SIMD lanes (used on Arm; also
 /// compiled on the host so their results can be compared with the lane
 /// forms). Same contracts as the lane forms, except that [`dot4_wide`] and

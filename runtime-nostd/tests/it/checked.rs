@@ -67,6 +67,28 @@ fn checked_conv_gives_the_bytes_of_conv2d() {
     let mut got = arena0;
     k.run(&mut got, &mut [0i16; PATCH]);
     assert_eq!(got, want);
+    // And the word form.
+    let mut ww = vec![0u8; words_len(5, 27)];
+    word_rows_into(&w, 5, 27, &mut ww).unwrap();
+    let k = checked::Conv2dWords::<ARENA, PATCH>::new(input, output, &ww, &b, &rq, params(1), None)
+        .unwrap();
+    let mut got = arena0;
+    k.run(&mut got, &mut [0i16; PATCH]);
+    assert_eq!(got, want);
+    // One byte short is refused.
+    assert_eq!(
+        checked::Conv2dWords::<ARENA, PATCH>::new(
+            input,
+            output,
+            &ww[..ww.len() - 1],
+            &b,
+            &rq,
+            params(1),
+            None
+        )
+        .err(),
+        Some(Error::BufferTooSmall)
+    );
 }
 
 #[test]
