@@ -29,7 +29,7 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
                     input,
                     output,
                     conv,
-                    paired,
+                    form,
                     ..
                 } => {
                     let (i, o) = (map_ref(*input), map_ref(*output));
@@ -41,14 +41,15 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
                     } else {
                         quote!(None)
                     };
-                    let kind = if *paired {
-                        quote!(Conv2dPaired)
-                    } else {
-                        quote!(Conv2d)
+                    let (kind, w) = match form {
+                        WeightForm::Pairs => (quote!(Conv2dPaired), quote!(&#w)),
+                        // The aligned wrapper's bytes.
+                        WeightForm::Words => (quote!(Conv2dWords), quote!(&#w.0)),
+                        WeightForm::Int8 => (quote!(Conv2d), quote!(&#w)),
                     };
                     (
                         quote!(ingot_rt::checked::#kind<'static, #a, #p>),
-                        quote!(ingot_rt::checked::#kind::new(#i, #o, &#w, &#b, &#r, #pp, #t)),
+                        quote!(ingot_rt::checked::#kind::new(#i, #o, #w, &#b, &#r, #pp, #t)),
                     )
                 }
                 Call::Linear {
