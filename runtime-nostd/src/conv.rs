@@ -3,7 +3,7 @@
 
 use crate::dot::{
     dot2_wide, dot4_pairs, dot4_wide, dot4_words, dot_pairs_few, dot_wide, dot_words_few,
-    tail_wide, widen_into,
+    tail_wide, widen_into, Wt,
 };
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 use core::num::NonZeroUsize;
@@ -328,6 +328,9 @@ pub(crate) enum Rows<'a> {
     Pairs(&'a [u32]),
     /// [`word_rows_into`] of the same rows (one group).
     Words(&'a [u8]),
+    /// [`Rows::Bytes`] as the bytes of the weights file (two's
+    /// complement), read as they are.
+    File(&'a [u8]),
 }
 
 /// A convolution call whose maps, buffers and parameters passed
@@ -393,6 +396,7 @@ pub(crate) const fn check_conv<'a>(
     };
     let enough = match rows {
         Rows::Bytes(w) => w.len() >= need_w,
+        Rows::File(w) => w.len() >= need_w,
         Rows::Pairs(w) => {
             if p.groups != 1 {
                 return Err(Error::BadParams);
@@ -422,7 +426,7 @@ pub(crate) const fn check_conv<'a>(
         }
     }
     let ring = match rows {
-        Rows::Bytes(_) => false,
+        Rows::Bytes(_) | Rows::File(_) => false,
         Rows::Pairs(_) => conv_rows_apply(w, p.groups, input.c),
         Rows::Words(_) => conv_rows_apply_words(w, p.groups, input.c),
     } && patch_len >= conv_rows_len(w, input.w, input.c);
@@ -574,7 +578,6 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     }
     let taps = w.taps();
     let cpg = c_in / p.groups;
-    let opg = output.c / p.groups;
     // Elements per group segment and per weight row.
     let seg = taps * cpg;
     if seg == 0 {
@@ -597,21 +600,52 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     }
     // The paired kernels read the patch in pairs: with one group and an
     // odd length, the element after the last meets a zero weight.
-    let (patch, weights): (_, &[i8]) = match a.rows {
-        Rows::Bytes(wb) => match (patch.get_mut(..taps * c_in), wb.get(..output.c * seg)) {
-            (Some(x), Some(wv)) => (x, wv),
-            _ => return,
+    // The int8 forms run one body for `i8` weights (the `conv2d` API) and
+    // one for the weights file's bytes (generated modules); the packed
+    // forms share the bytes one, so a firmware links one copy.
+    let n = output.c * seg;
+    match a.rows {
+        Rows::Bytes(wb) => match (patch.get_mut(..taps * c_in), wb.get(..n)) {
+            (Some(x), Some(wv)) => conv_pixels(arena, a, x, wv),
+            _ => (),
         },
-        Rows::Pairs(_) => match patch.get_mut(..seg.div_ceil(2) * 2) {
-            Some(x) => (x, &[]),
-            None => return,
+        Rows::File(wb) => match (patch.get_mut(..taps * c_in), wb.get(..n)) {
+            (Some(x), Some(wv)) => conv_pixels(arena, a, x, wv),
+            _ => (),
         },
+        Rows::Pairs(_) => {
+            if let Some(x) = patch.get_mut(..seg.div_ceil(2) * 2) {
+                conv_pixels::<u8>(arena, a, x, &[]);
+            }
+        }
         // The word kernels pad the last quad themselves.
-        Rows::Words(_) => match patch.get_mut(..seg) {
-            Some(x) => (x, &[]),
-            None => return,
-        },
-    };
+        Rows::Words(_) => {
+            if let Some(x) = patch.get_mut(..seg) {
+                conv_pixels::<u8>(arena, a, x, &[]);
+            }
+        }
+    }
+}
+
+/// The per-pixel part of [`conv_run`] (everything but the ring of rows):
+/// `patch` cut to the pixel's length, `weights` the int8 rows (empty for
+/// the packed forms, which read `a.rows`).
+fn conv_pixels<W: Wt>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16], weights: &[W]) {
+    let (input, output, p) = (a.input, a.output, &a.p);
+    let transform = a.transform.as_ref();
+    let (bias, requant) = (a.bias, a.requant);
+    let w = &p.window;
+    let c_in = input.c;
+    if c_in == 0 || p.groups == 0 {
+        return;
+    }
+    let taps = w.taps();
+    let cpg = c_in / p.groups;
+    let opg = output.c / p.groups;
+    let seg = taps * cpg;
+    if seg == 0 {
+        return;
+    }
     let pointwise = w.kh == 1
         && w.kw == 1
         && w.step_y == 1
@@ -714,7 +748,7 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
                     };
                     let mut acc = b;
                     for (x, &wv) in col.iter().step_by(c_in.max(1)).zip(row) {
-                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv.v()));
                     }
                     *y = rq.apply(acc, p.out);
                 }
@@ -743,9 +777,9 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
 /// Output channels of one group for one pixel: four (then two, then one)
 /// weight rows per pass over the patch.
 #[inline]
-fn channel_rows(
+fn channel_rows<W: Wt>(
     xw: &[i16],
-    weights: &[i8],
+    weights: &[W],
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
@@ -766,7 +800,7 @@ fn channel_rows(
             };
             let mut acc = b;
             for (&x, &w) in xw.iter().zip(row) {
-                acc = acc.wrapping_add((x as i32).wrapping_mul(w as i32));
+                acc = acc.wrapping_add((x as i32).wrapping_mul(w.v()));
             }
             *o = rq.apply(acc, out_q);
         }
@@ -834,9 +868,9 @@ fn channel_rows(
 /// Cortex-M4/M7) instead of one strided walk per channel.
 #[allow(clippy::too_many_arguments)]
 #[inline(never)]
-fn depthwise_channels(
+fn depthwise_channels<W: Wt>(
     patch: &[i16],
-    weights: &[i8],
+    weights: &[W],
     taps: usize,
     c: usize,
     bias: &[i32],
@@ -859,7 +893,7 @@ fn depthwise_channels(
         };
         // 3×3 kernels: the nine taps unrolled against one weight pointer
         // (constant offsets), so nothing spills.
-        if let (Ok(w9), Some(xs)) = (<&[i8; 36]>::try_from(w), patch.get(ch..)) {
+        if let (Ok(w9), Some(xs)) = (<&[W; 36]>::try_from(w), patch.get(ch..)) {
             let acc = depthwise4_3x3(xs, c, w9);
             requantize_into(o, &acc, b, r, out_q);
             ch += 4;
@@ -896,7 +930,7 @@ fn depthwise_channels(
         };
         let mut acc = b;
         for (x, &wv) in col.iter().step_by(c.max(1)).zip(row) {
-            acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+            acc = acc.wrapping_add((*x as i32).wrapping_mul(wv.v()));
         }
         *o = r.apply(acc, out_q);
         ch += 1;
@@ -906,17 +940,17 @@ fn depthwise_channels(
 /// [`depthwise4`] for nine taps, the weights of the four channels one
 /// after the other in `w`.
 #[inline(never)]
-fn depthwise4_3x3(xs: &[i16], c: usize, w: &[i8; 36]) -> [i32; 4] {
+fn depthwise4_3x3<W: Wt>(xs: &[i16], c: usize, w: &[W; 36]) -> [i32; 4] {
     let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
     for t in 0..9 {
         let at = t * c;
         let Some(&[x0, x1, x2, x3]) = xs.get(at..at + 4) else {
             break;
         };
-        a0 = a0.wrapping_add((x0 as i32).wrapping_mul(w[t] as i32));
-        a1 = a1.wrapping_add((x1 as i32).wrapping_mul(w[9 + t] as i32));
-        a2 = a2.wrapping_add((x2 as i32).wrapping_mul(w[18 + t] as i32));
-        a3 = a3.wrapping_add((x3 as i32).wrapping_mul(w[27 + t] as i32));
+        a0 = a0.wrapping_add((x0 as i32).wrapping_mul(w[t].v()));
+        a1 = a1.wrapping_add((x1 as i32).wrapping_mul(w[9 + t].v()));
+        a2 = a2.wrapping_add((x2 as i32).wrapping_mul(w[18 + t].v()));
+        a3 = a3.wrapping_add((x3 as i32).wrapping_mul(w[27 + t].v()));
     }
     [a0, a1, a2, a3]
 }
@@ -925,15 +959,15 @@ fn depthwise4_3x3(xs: &[i16], c: usize, w: &[i8; 36]) -> [i32; 4] {
 /// the taps, for `j` in `0..4`. Its own function, so the loop holds only
 /// its pointers and four accumulators in registers.
 #[inline(never)]
-fn depthwise4(xs: &[i16], c: usize, w0: &[i8], w1: &[i8], w2: &[i8], w3: &[i8]) -> [i32; 4] {
+fn depthwise4<W: Wt>(xs: &[i16], c: usize, w0: &[W], w1: &[W], w2: &[W], w3: &[W]) -> [i32; 4] {
     let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
     for ((((row, &u0), &u1), &u2), &u3) in xs.chunks(c.max(1)).zip(w0).zip(w1).zip(w2).zip(w3) {
         crate::dot::no_unroll();
         if let [x0, x1, x2, x3, ..] = *row {
-            a0 = a0.wrapping_add((x0 as i32).wrapping_mul(u0 as i32));
-            a1 = a1.wrapping_add((x1 as i32).wrapping_mul(u1 as i32));
-            a2 = a2.wrapping_add((x2 as i32).wrapping_mul(u2 as i32));
-            a3 = a3.wrapping_add((x3 as i32).wrapping_mul(u3 as i32));
+            a0 = a0.wrapping_add((x0 as i32).wrapping_mul(u0.v()));
+            a1 = a1.wrapping_add((x1 as i32).wrapping_mul(u1.v()));
+            a2 = a2.wrapping_add((x2 as i32).wrapping_mul(u2.v()));
+            a3 = a3.wrapping_add((x3 as i32).wrapping_mul(u3.v()));
         }
     }
     [a0, a1, a2, a3]
