@@ -568,6 +568,28 @@ pub fn conv2d_words(
 /// [`check_conv`] none of them can be out of range, and the early returns
 /// (which cannot happen) are what leaves no panic path in the binary.
 pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::ANY }>(arena, a, patch);
+}
+
+/// Which weight forms a [`conv_run_forms`] instance handles (bit set).
+pub(crate) mod forms {
+    /// [`Rows::Bytes`](super::Rows::Bytes).
+    pub(crate) const BYTES: u8 = 1;
+    /// [`Rows::File`](super::Rows::File).
+    pub(crate) const FILE: u8 = 2;
+    /// [`Rows::Pairs`](super::Rows::Pairs).
+    pub(crate) const PAIRS: u8 = 4;
+    /// [`Rows::Words`](super::Rows::Words).
+    pub(crate) const WORDS: u8 = 8;
+    /// All of them.
+    pub(crate) const ANY: u8 = 15;
+}
+
+/// [`conv_run`] for the weight forms in the bit set `F` only: each checked
+/// call type runs the instance of its own forms, so a firmware links the
+/// kernels of the forms its module uses and not the others (the match on
+/// the stored form cannot be decided at link time).
+pub(crate) fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     let (input, output, p) = (a.input, a.output, &a.p);
     let transform = a.transform.as_ref();
     let (bias, requant) = (a.bias, a.requant);
@@ -584,13 +606,13 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
         return;
     }
     match (a.rows, a.ring) {
-        (Rows::Pairs(pw), true) => {
+        (Rows::Pairs(pw), true) if F & forms::PAIRS != 0 => {
             conv_rows(
                 arena, &input, &output, pw, bias, requant, p, transform, patch,
             );
             return;
         }
-        (Rows::Words(ww), true) => {
+        (Rows::Words(ww), true) if F & forms::WORDS != 0 => {
             conv_rows(
                 arena, &input, &output, ww, bias, requant, p, transform, patch,
             );
@@ -605,32 +627,40 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     // forms share the bytes one, so a firmware links one copy.
     let n = output.c * seg;
     match a.rows {
-        Rows::Bytes(wb) => match (patch.get_mut(..taps * c_in), wb.get(..n)) {
-            (Some(x), Some(wv)) => conv_pixels(arena, a, x, wv),
-            _ => (),
-        },
-        Rows::File(wb) => match (patch.get_mut(..taps * c_in), wb.get(..n)) {
-            (Some(x), Some(wv)) => conv_pixels(arena, a, x, wv),
-            _ => (),
-        },
-        Rows::Pairs(_) => {
+        Rows::Bytes(wb) if F & forms::BYTES != 0 => {
+            if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
+                conv_pixels::<i8, F>(arena, a, x, wv);
+            }
+        }
+        Rows::File(wb) if F & forms::FILE != 0 => {
+            if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
+                conv_pixels::<u8, F>(arena, a, x, wv);
+            }
+        }
+        Rows::Pairs(_) if F & forms::PAIRS != 0 => {
             if let Some(x) = patch.get_mut(..seg.div_ceil(2) * 2) {
-                conv_pixels::<u8>(arena, a, x, &[]);
+                conv_pixels::<u8, F>(arena, a, x, &[]);
             }
         }
         // The word kernels pad the last quad themselves.
-        Rows::Words(_) => {
+        Rows::Words(_) if F & forms::WORDS != 0 => {
             if let Some(x) = patch.get_mut(..seg) {
-                conv_pixels::<u8>(arena, a, x, &[]);
+                conv_pixels::<u8, F>(arena, a, x, &[]);
             }
         }
+        _ => {}
     }
 }
 
 /// The per-pixel part of [`conv_run`] (everything but the ring of rows):
 /// `patch` cut to the pixel's length, `weights` the int8 rows (empty for
 /// the packed forms, which read `a.rows`).
-fn conv_pixels<W: Wt>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16], weights: &[W]) {
+fn conv_pixels<W: Wt, const F: u8>(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    weights: &[W],
+) {
     let (input, output, p) = (a.input, a.output, &a.p);
     let transform = a.transform.as_ref();
     let (bias, requant) = (a.bias, a.requant);
@@ -657,7 +687,10 @@ fn conv_pixels<W: Wt>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16], wei
     // Depthwise (one input channel per group): gather the window tap-major
     // like a dense convolution (`patch[t][c]`, whole kernel rows copied at
     // once), then each output channel walks its input channel's column.
-    let depthwise = cpg == 1 && p.groups > 1;
+    // (Only the int8 forms take more than one group: the packed instances
+    // leave the depthwise and int8 row kernels out.)
+    let int8 = F & (forms::BYTES | forms::FILE) != 0;
+    let depthwise = cpg == 1 && p.groups > 1 && int8;
     // With a fused input transform each gathered value costs several
     // instructions, so neighbouring pixels share the columns they overlap
     // in (stride 1, no dilation, one group): each input value is then
@@ -752,11 +785,11 @@ fn conv_pixels<W: Wt>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16], wei
                     }
                     *y = rq.apply(acc, p.out);
                 }
-            } else if let Rows::Pairs(pw) = a.rows {
+            } else if let (Rows::Pairs(pw), true) = (a.rows, F & forms::PAIRS != 0) {
                 paired_rows(patch, pw, bias, requant, p.out, out);
-            } else if let Rows::Words(ww) = a.rows {
+            } else if let (Rows::Words(ww), true) = (a.rows, F & forms::WORDS != 0) {
                 paired_rows(patch, ww, bias, requant, p.out, out);
-            } else {
+            } else if int8 {
                 for (g, xw) in patch.chunks_exact(seg.max(1)).enumerate() {
                     let o0 = g * opg;
                     let (Some(wg), Some(bg), Some(rg), Some(og)) = (

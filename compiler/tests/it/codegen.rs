@@ -637,7 +637,7 @@ fn paired_weights_match_int8_bit_for_bit() {
     // Grouped and depthwise convolutions keep int8 weights.
     let text = std::fs::read_to_string(built().dir.join("src/depthwise_pairs.rs")).unwrap();
     assert!(
-        text.contains("ingot_rt::checked::Conv2d::new("),
+        text.contains("ingot_rt::checked::Conv2d::new_bytes("),
         "depthwise layers stay int8"
     );
 }
@@ -671,7 +671,7 @@ fn word_weights_match_int8_bit_for_bit() {
     }
     let text = std::fs::read_to_string(built().dir.join("src/depthwise_words.rs")).unwrap();
     assert!(
-        text.contains("ingot_rt::checked::Conv2d::new("),
+        text.contains("ingot_rt::checked::Conv2d::new_bytes("),
         "depthwise layers stay int8"
     );
     // The weights file holds the word layout: the same size as int8 up to

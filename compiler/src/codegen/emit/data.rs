@@ -51,13 +51,21 @@ fn tensor_static(ctx: &Ctx<'_>, lits: &mut Literals, name: &Ident, e: &Entry) ->
     let n = us(e.len);
     let at = us(e.offset);
     let off = format_ident!("OFF_{}", name);
+    // Int8 weights from the weights file stay its bytes (`new_bytes` calls
+    // read them as they are): a sub-array, no loop for rustc to evaluate
+    // per weight.
+    let file_bytes = e.elem == Elem::I8
+        && e.role == Some(Role::Weights)
+        && ctx.opt.weights == WeightsMode::IncludeBytes;
     let ty = match e.elem {
+        Elem::I8 if file_bytes => quote!([u8; #n]),
         Elem::I8 => quote!([i8; #n]),
         Elem::I32 => quote!([i32; #n]),
         Elem::Requant => quote!([ingot_rt::Requant; #n]),
     };
     let init = match ctx.opt.weights {
         WeightsMode::IncludeBytes => match e.elem {
+            Elem::I8 if file_bytes => quote!(*bytes::<#n>(#off)),
             Elem::I8 => quote!(i8s::<#n>(#off)),
             Elem::I32 => quote!(i32s::<#n>(#off)),
             Elem::Requant => quote!(rqs::<#n>(#off)),
@@ -305,6 +313,15 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
                 /// The weights file, read by the `const fn`s below at compile time only.
                 const BLOB: &[u8; #n] = include_bytes!(#file);
 
+                /// `N` bytes of the weights file from byte `at`, as they are
+                /// (a sub-array of the included bytes: no loop to evaluate).
+                const fn bytes<const N: usize>(at: usize) -> &'static [u8; N] {
+                    match BLOB.split_at(at).1.first_chunk::<N>() {
+                        Some(b) => b,
+                        None => panic!("a tensor reaches past the weights file"),
+                    }
+                }
+
 
                 const fn i32_at(at: usize) -> i32 {
                     i32::from_le_bytes([BLOB[at], BLOB[at + 1], BLOB[at + 2], BLOB[at + 3]])
@@ -353,27 +370,14 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
             }
         },
     };
-    let words_ty = match (words.is_empty(), ctx.opt.weights) {
-        (true, _) => quote!(),
-        (false, WeightsMode::Literal) => quote! {
+    let words_ty = if words.is_empty() {
+        quote!()
+    } else {
+        quote! {
             /// Bytes of word-form weights, aligned for 32-bit loads.
             #[repr(align(4))]
             pub(super) struct Words<const N: usize>(pub(super) [u8; N]);
-        },
-        (false, WeightsMode::IncludeBytes) => quote! {
-            /// Bytes of word-form weights, aligned for 32-bit loads.
-            #[repr(align(4))]
-            pub(super) struct Words<const N: usize>(pub(super) [u8; N]);
-
-            /// `N` bytes of the weights file from byte `at`, as they are
-            /// (a sub-array of the included bytes: no loop to evaluate).
-            const fn bytes<const N: usize>(at: usize) -> &'static [u8; N] {
-                match BLOB.split_at(at).1.first_chunk::<N>() {
-                    Some(b) => b,
-                    None => panic!("a tensor reaches past the weights file"),
-                }
-            }
-        },
+        }
     };
     quote! {
         /// Weights and kernel parameters (private). Every tensor is a `static`
