@@ -182,7 +182,15 @@ impl<'a, const A: usize> Linear<'a, A> {
         requant: &'a [Requant],
         out: OutputQuant,
     ) -> Result<Self, Error> {
-        match check_linear(A, input, output, LinearRows::Bytes(weights), bias, requant, out) {
+        match check_linear(
+            A,
+            input,
+            output,
+            LinearRows::Bytes(weights),
+            bias,
+            requant,
+            out,
+        ) {
             Ok(a) => Ok(Linear(a)),
             Err(e) => Err(e),
         }
@@ -198,7 +206,15 @@ impl<'a, const A: usize> Linear<'a, A> {
         requant: &'a [Requant],
         out: OutputQuant,
     ) -> Result<Self, Error> {
-        match check_linear(A, input, output, LinearRows::File(weights), bias, requant, out) {
+        match check_linear(
+            A,
+            input,
+            output,
+            LinearRows::File(weights),
+            bias,
+            requant,
+            out,
+        ) {
             Ok(a) => Ok(Linear(a)),
             Err(e) => Err(e),
         }

@@ -184,11 +184,18 @@ pub fn build(q: &QGraph, form: WeightForm) -> Blob {
         bytes: Vec::new(),
         entries: Vec::new(),
     };
-    let words = |k: &QKernel| matches!(k, QKernel::Conv2d(c) if form.for_conv(c) == WeightForm::Words);
+    let words =
+        |k: &QKernel| matches!(k, QKernel::Conv2d(c) if form.for_conv(c) == WeightForm::Words);
     for (i, s) in q.steps.iter().enumerate() {
         if let (QKernel::Conv2d(c), true) = (&s.kernel, words(&s.kernel)) {
             let v = super::calls::word_weights(c);
-            w.start(Some(i), Some(Role::Weights), Elem::I8, v.len(), Section::Weights);
+            w.start(
+                Some(i),
+                Some(Role::Weights),
+                Elem::I8,
+                v.len(),
+                Section::Weights,
+            );
             w.bytes.extend_from_slice(&v);
         }
     }

@@ -260,7 +260,11 @@ fn nets() -> Vec<Net> {
         ),
         zoo_dense_pairs,
         words("dense_words", testnets::dense(), WeightsMode::IncludeBytes),
-        words("plain_words_literal", testnets::plain(), WeightsMode::Literal),
+        words(
+            "plain_words_literal",
+            testnets::plain(),
+            WeightsMode::Literal,
+        ),
         words(
             "depthwise_words",
             testnets::depthwise(),

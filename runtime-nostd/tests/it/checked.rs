@@ -69,8 +69,9 @@ fn checked_conv_gives_the_bytes_of_conv2d() {
     assert_eq!(got, want);
     // The weights as the bytes of a weights file, read as they are.
     let wb: Vec<u8> = w.iter().map(|&v| v as u8).collect();
-    let k = checked::Conv2d::<ARENA, PATCH>::new_bytes(input, output, &wb, &b, &rq, params(1), None)
-        .unwrap();
+    let k =
+        checked::Conv2d::<ARENA, PATCH>::new_bytes(input, output, &wb, &b, &rq, params(1), None)
+            .unwrap();
     let mut got = arena0;
     k.run(&mut got, &mut [0i16; PATCH]);
     assert_eq!(got, want);
