@@ -45,7 +45,7 @@
 //! binary either (see the crate docs, "No panics").
 
 use crate::channel::{check_copy, check_transform, copy_run, transform_run, TransformArgs};
-use crate::conv::{check_conv, conv_run_forms, forms, ConvArgs, Rows};
+use crate::conv::{check_conv, conv_run_int8, conv_run_pairs, conv_run_words, ConvArgs, Rows};
 use crate::eltwise::{add_run, check_add, AddArgs};
 use crate::io::{check_io, check_pixels, copy_in_run, copy_out_run, pixels_run};
 use crate::linear::{check_linear, linear_run, LinearArgs, LinearRows};
@@ -104,7 +104,7 @@ impl<'a, const A: usize, const P: usize> Conv2d<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, &self.0, patch);
+        conv_run_int8(arena, &self.0, patch);
     }
 }
 
@@ -134,7 +134,7 @@ impl<'a, const A: usize, const P: usize> Conv2dPaired<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_forms::<{ forms::PAIRS }>(arena, &self.0, patch);
+        conv_run_pairs(arena, &self.0, patch);
     }
 }
 
@@ -164,7 +164,7 @@ impl<'a, const A: usize, const P: usize> Conv2dWords<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_forms::<{ forms::WORDS }>(arena, &self.0, patch);
+        conv_run_words(arena, &self.0, patch);
     }
 }
 

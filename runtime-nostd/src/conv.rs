@@ -571,6 +571,28 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     conv_run_forms::<{ forms::ANY }>(arena, a, patch);
 }
 
+/// [`conv_run`] for the int8 forms only ([`crate::checked::Conv2d`]).
+/// The three `conv_run_*` are plain functions so that the generic
+/// instances are compiled here, once, and not again in every crate that
+/// runs a checked call (a generated module would otherwise carry, and
+/// rustc optimise, its own copy of every kernel).
+#[inline(never)]
+pub(crate) fn conv_run_int8(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch);
+}
+
+/// [`conv_run`] for the paired form only.
+#[inline(never)]
+pub(crate) fn conv_run_pairs(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::PAIRS }>(arena, a, patch);
+}
+
+/// [`conv_run`] for the word form only.
+#[inline(never)]
+pub(crate) fn conv_run_words(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::WORDS }>(arena, a, patch);
+}
+
 /// Which weight forms a [`conv_run_forms`] instance handles (bit set).
 pub(crate) mod forms {
     /// [`Rows::Bytes`](super::Rows::Bytes).
@@ -589,7 +611,7 @@ pub(crate) mod forms {
 /// call type runs the instance of its own forms, so a firmware links the
 /// kernels of the forms its module uses and not the others (the match on
 /// the stored form cannot be decided at link time).
-pub(crate) fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     let (input, output, p) = (a.input, a.output, &a.p);
     let transform = a.transform.as_ref();
     let (bias, requant) = (a.bias, a.requant);

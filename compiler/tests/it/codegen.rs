@@ -700,6 +700,15 @@ fn word_weights_match_int8_bit_for_bit() {
         })
         .sum();
     assert_eq!(words.weights.len(), int8.weights.len() + pad);
+    // The build report names each convolution's form.
+    let forms: Vec<_> = words
+        .report
+        .layers
+        .iter()
+        .filter_map(|l| l.weight_form)
+        .collect();
+    assert!(!forms.is_empty() && forms.iter().all(|&f| f == "words"));
+    assert!(words.report_md.contains("conv2d (words)"));
 }
 
 #[test]
