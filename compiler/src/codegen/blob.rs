@@ -1,6 +1,8 @@
 //! The binary weights file: every tensor of the network, little-endian, in
 //! sections (int8 weights, i32 biases, requantization multipliers, channel
-//! transforms, pixel table), with the byte offset of every tensor.
+//! transforms, pixel table), with the byte offset of every tensor. With the
+//! word weight form the one-group convolutions' int8 weights are stored in
+//! the kernel's word layout, first in the file (see [`build`]).
 
 use crate::lower::{ChannelTransform, QGraph, QKernel};
 use crate::plan::WeightForm;
