@@ -210,6 +210,9 @@ fn main() {
         .map(PathBuf::from)
         .unwrap_or_else(|| "target".into())
         .join("codegen-bench");
+    // Absolute: the nested cargo runs in the bench crate's folder, where a
+    // relative target directory would point somewhere else.
+    let root = std::env::current_dir().expect("current dir").join(root);
     let mut rows = vec![bench(
         "demo-sized dense (1x64x64)",
         &testnets::demo_sized(),

@@ -45,10 +45,10 @@
 //! binary either (see the crate docs, "No panics").
 
 use crate::channel::{check_copy, check_transform, copy_run, transform_run, TransformArgs};
-use crate::conv::{check_conv, conv_run, ConvArgs, Rows};
+use crate::conv::{check_conv, conv_run_int8, conv_run_pairs, conv_run_words, ConvArgs, Rows};
 use crate::eltwise::{add_run, check_add, AddArgs};
 use crate::io::{check_io, check_pixels, copy_in_run, copy_out_run, pixels_run};
-use crate::linear::{check_linear, linear_run, LinearArgs};
+use crate::linear::{check_linear, linear_run, LinearArgs, LinearRows};
 use crate::pool::{
     avg_pool_run, check_global_pool, check_window_pool, global_pool_run, max_pool_run, PoolArgs,
 };
@@ -81,9 +81,30 @@ impl<'a, const A: usize, const P: usize> Conv2d<'a, A, P> {
         }
     }
 
+    /// [`Conv2d::new`] with the weights as the bytes of the weights file
+    /// (each the two's complement of an int8 weight, same order), read as
+    /// they are: a generated module passes a sub-array of its
+    /// `include_bytes!` with no conversion while rustc compiles it.
+    #[allow(clippy::too_many_arguments)]
+    pub const fn new_bytes(
+        input: MapRef,
+        output: MapRef,
+        weights: &'a [u8],
+        bias: &'a [i32],
+        requant: &'a [Requant],
+        p: ConvParams,
+        transform: Option<InputTransform<'a>>,
+    ) -> Result<Self, Error> {
+        let rows = Rows::File(weights);
+        match check_conv(A, P, input, output, rows, bias, requant, p, transform) {
+            Ok(a) => Ok(Conv2d(a)),
+            Err(e) => Err(e),
+        }
+    }
+
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run(arena, &self.0, patch);
+        conv_run_int8(arena, &self.0, patch);
     }
 }
 
@@ -113,7 +134,37 @@ impl<'a, const A: usize, const P: usize> Conv2dPaired<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run(arena, &self.0, patch);
+        conv_run_pairs(arena, &self.0, patch);
+    }
+}
+
+/// A checked [`conv2d_words`](crate::conv2d_words) call for an arena of
+/// `A` bytes and a patch of `P` elements.
+#[derive(Clone, Copy)]
+pub struct Conv2dWords<'a, const A: usize, const P: usize>(ConvArgs<'a>);
+
+impl<'a, const A: usize, const P: usize> Conv2dWords<'a, A, P> {
+    /// Runs every check of [`conv2d_words`](crate::conv2d_words).
+    #[allow(clippy::too_many_arguments)]
+    pub const fn new(
+        input: MapRef,
+        output: MapRef,
+        weights: &'a [u8],
+        bias: &'a [i32],
+        requant: &'a [Requant],
+        p: ConvParams,
+        transform: Option<InputTransform<'a>>,
+    ) -> Result<Self, Error> {
+        let rows = Rows::Words(weights);
+        match check_conv(A, P, input, output, rows, bias, requant, p, transform) {
+            Ok(a) => Ok(Conv2dWords(a)),
+            Err(e) => Err(e),
+        }
+    }
+
+    /// The convolution; cannot fail.
+    pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
+        conv_run_words(arena, &self.0, patch);
     }
 }
 
@@ -131,7 +182,39 @@ impl<'a, const A: usize> Linear<'a, A> {
         requant: &'a [Requant],
         out: OutputQuant,
     ) -> Result<Self, Error> {
-        match check_linear(A, input, output, weights, bias, requant, out) {
+        match check_linear(
+            A,
+            input,
+            output,
+            LinearRows::Bytes(weights),
+            bias,
+            requant,
+            out,
+        ) {
+            Ok(a) => Ok(Linear(a)),
+            Err(e) => Err(e),
+        }
+    }
+
+    /// [`Linear::new`] with the weights as the bytes of the weights file,
+    /// as [`Conv2d::new_bytes`].
+    pub const fn new_bytes(
+        input: MapRef,
+        output: MapRef,
+        weights: &'a [u8],
+        bias: &'a [i32],
+        requant: &'a [Requant],
+        out: OutputQuant,
+    ) -> Result<Self, Error> {
+        match check_linear(
+            A,
+            input,
+            output,
+            LinearRows::File(weights),
+            bias,
+            requant,
+            out,
+        ) {
             Ok(a) => Ok(Linear(a)),
             Err(e) => Err(e),
         }

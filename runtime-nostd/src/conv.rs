@@ -2,7 +2,8 @@
 //! widened patch, then contiguous dot products per output channel.
 
 use crate::dot::{
-    dot2_wide, dot4_pairs, dot4_wide, dot_pairs_few, dot_wide, tail_wide, widen_into,
+    dot2_wide, dot4_pairs, dot4_wide, dot4_words, dot_pairs_few, dot_wide, dot_words_few,
+    tail_wide, widen_into, Wt,
 };
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 use core::num::NonZeroUsize;
@@ -236,6 +237,64 @@ pub const fn pair_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u32]) ->
     Ok(())
 }
 
+/// Length in bytes of `rows` weight rows of `k` int8 weights in the word
+/// layout of [`word_rows_into`]: `rows · 4·⌈k / 4⌉`.
+pub const fn words_len(rows: usize, k: usize) -> usize {
+    rows * k.div_ceil(4) * 4
+}
+
+/// Writes the word layout of int8 weight rows `w = [rows][k]` into `out`,
+/// the form [`conv2d_words`] reads: still one byte per weight, arranged so
+/// that one 32-bit load and two sign-extending byte-pair widenings
+/// (`sxtb16`, and `sxtb16` of the word rotated by 8 bits) give the 16-bit
+/// pairs that meet the patch pairs `(x0, x1)` and `(x2, x3)`.
+///
+/// Each row is cut into quads of four consecutive weights `w0..w3`
+/// (the last quad padded with zero weights), each stored as the four bytes
+/// `[w0, w2, w1, w3]`. Rows go in blocks of four (the last block holds the
+/// one to three rows left over); within a block, quad `q` of every row in
+/// turn, so a block is read front to back, sixteen bytes per quad of patch
+/// elements.
+///
+/// [`Error::BufferTooSmall`] (and nothing written) when
+/// `out.len() != words_len(rows, k)` or `w` is shorter than `rows · k`.
+pub fn word_rows_into(w: &[i8], rows: usize, k: usize, out: &mut [u8]) -> Result<(), Error> {
+    let need = rows.checked_mul(k).ok_or(Error::BufferTooSmall)?;
+    if out.len() != words_len(rows, k) || w.len() < need {
+        return Err(Error::BufferTooSmall);
+    }
+    let kq = k.div_ceil(4);
+    let at = |r: usize, i: usize| -> u8 {
+        if i < k {
+            w.get(r * k + i).map_or(0, |&v| v as u8)
+        } else {
+            0
+        }
+    };
+    let mut o = out.iter_mut();
+    let mut r0 = 0;
+    while r0 < rows {
+        let block = (rows - r0).min(4);
+        for q in 0..kq {
+            for r in r0..r0 + block {
+                for i in [0, 2, 1, 3] {
+                    if let Some(d) = o.next() {
+                        *d = at(r, 4 * q + i);
+                    }
+                }
+            }
+        }
+        r0 += block;
+    }
+    Ok(())
+}
+
+/// [`conv_rows_apply`] for the word layout of [`conv2d_words`]: every
+/// kernel row must also start a new quad (`kw · C_in` a multiple of 4).
+pub const fn conv_rows_apply_words(w: &Window, groups: usize, c_in: usize) -> bool {
+    conv_rows_apply(w, groups, c_in) && (w.kw * c_in) % 4 == 0
+}
+
 /// True when [`conv2d_paired`] can run from a buffer of whole input rows
 /// instead of a per-pixel patch: step and dilation 1, one group, and an
 /// even number of elements per kernel row (`kw · C_in`), so every kernel
@@ -267,6 +326,11 @@ pub(crate) enum Rows<'a> {
     Bytes(&'a [i8]),
     /// [`pair_rows`] of the same rows (one group).
     Pairs(&'a [u32]),
+    /// [`word_rows_into`] of the same rows (one group).
+    Words(&'a [u8]),
+    /// [`Rows::Bytes`] as the bytes of the weights file (two's
+    /// complement), read as they are.
+    File(&'a [u8]),
 }
 
 /// A convolution call whose maps, buffers and parameters passed
@@ -332,11 +396,18 @@ pub(crate) const fn check_conv<'a>(
     };
     let enough = match rows {
         Rows::Bytes(w) => w.len() >= need_w,
+        Rows::File(w) => w.len() >= need_w,
         Rows::Pairs(w) => {
             if p.groups != 1 {
                 return Err(Error::BadParams);
             }
             w.len() >= paired_len(output.c, taps * cpg)
+        }
+        Rows::Words(w) => {
+            if p.groups != 1 {
+                return Err(Error::BadParams);
+            }
+            w.len() >= words_len(output.c, taps * cpg)
         }
     };
     if !enough
@@ -354,9 +425,11 @@ pub(crate) const fn check_conv<'a>(
             return Err(Error::BadParams);
         }
     }
-    let ring = matches!(rows, Rows::Pairs(_))
-        && conv_rows_apply(w, p.groups, input.c)
-        && patch_len >= conv_rows_len(w, input.w, input.c);
+    let ring = match rows {
+        Rows::Bytes(_) | Rows::File(_) => false,
+        Rows::Pairs(_) => conv_rows_apply(w, p.groups, input.c),
+        Rows::Words(_) => conv_rows_apply_words(w, p.groups, input.c),
+    } && patch_len >= conv_rows_len(w, input.w, input.c);
     Ok(ConvArgs {
         input,
         output,
@@ -452,10 +525,164 @@ pub fn conv2d_paired(
     Ok(())
 }
 
+/// [`conv2d`] with the int8 weights in the word layout of
+/// [`word_rows_into`] (`weights`, `words_len(C_out, kh·kw·C_in)` bytes),
+/// for cores with the DSP extension (Cortex-M4, M7, M33 with it): one
+/// 32-bit load brings four weights of a row, two `sxtb16` widen them into
+/// 16-bit pairs in registers and two `smlad` add four MACs, so the weights
+/// take one byte each in flash instead of the two of [`conv2d_paired`].
+/// One group only (`p.groups == 1`, else [`Error::BadParams`]). Same
+/// results as [`conv2d`], bit for bit, on every core (elsewhere the
+/// instructions are their portable twins).
+///
+/// `patch` as for [`conv2d_paired`], with [`conv_rows_apply_words`] in
+/// place of [`conv_rows_apply`] for the ring of input rows.
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_words(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+) -> Result<(), Error> {
+    let a = check_conv(
+        arena.len(),
+        patch.len(),
+        input,
+        output,
+        Rows::Words(weights),
+        bias,
+        requant,
+        *p,
+        transform.copied(),
+    )?;
+    conv_run(arena, &a, patch);
+    Ok(())
+}
+
 /// Runs a checked convolution. Every slice is taken with `get`: after
 /// [`check_conv`] none of them can be out of range, and the early returns
 /// (which cannot happen) are what leaves no panic path in the binary.
 pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::ANY }>(arena, a, patch);
+}
+
+/// [`conv_run`] for the int8 forms only ([`crate::checked::Conv2d`]).
+/// The three `conv_run_*` are plain functions so that the generic
+/// instances are compiled here, once, and not again in every crate that
+/// runs a checked call (a generated module would otherwise carry, and
+/// rustc optimise, its own copy of every kernel).
+#[inline(never)]
+pub(crate) fn conv_run_int8(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch);
+}
+
+/// [`conv_run`] for the paired form only.
+#[inline(never)]
+pub(crate) fn conv_run_pairs(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::PAIRS }>(arena, a, patch);
+}
+
+/// [`conv_run`] for the word form only.
+#[inline(never)]
+pub(crate) fn conv_run_words(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    conv_run_forms::<{ forms::WORDS }>(arena, a, patch);
+}
+
+/// Which weight forms a [`conv_run_forms`] instance handles (bit set).
+pub(crate) mod forms {
+    /// [`Rows::Bytes`](super::Rows::Bytes).
+    pub(crate) const BYTES: u8 = 1;
+    /// [`Rows::File`](super::Rows::File).
+    pub(crate) const FILE: u8 = 2;
+    /// [`Rows::Pairs`](super::Rows::Pairs).
+    pub(crate) const PAIRS: u8 = 4;
+    /// [`Rows::Words`](super::Rows::Words).
+    pub(crate) const WORDS: u8 = 8;
+    /// All of them.
+    pub(crate) const ANY: u8 = 15;
+}
+
+/// [`conv_run`] for the weight forms in the bit set `F` only: each checked
+/// call type runs the instance of its own forms, so a firmware links the
+/// kernels of the forms its module uses and not the others (the match on
+/// the stored form cannot be decided at link time).
+fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+    let (input, output, p) = (a.input, a.output, &a.p);
+    let transform = a.transform.as_ref();
+    let (bias, requant) = (a.bias, a.requant);
+    let w = &p.window;
+    let c_in = input.c;
+    if c_in == 0 || p.groups == 0 {
+        return;
+    }
+    let taps = w.taps();
+    let cpg = c_in / p.groups;
+    // Elements per group segment and per weight row.
+    let seg = taps * cpg;
+    if seg == 0 {
+        return;
+    }
+    match (a.rows, a.ring) {
+        (Rows::Pairs(pw), true) if F & forms::PAIRS != 0 => {
+            conv_rows(
+                arena, &input, &output, pw, bias, requant, p, transform, patch,
+            );
+            return;
+        }
+        (Rows::Words(ww), true) if F & forms::WORDS != 0 => {
+            conv_rows(
+                arena, &input, &output, ww, bias, requant, p, transform, patch,
+            );
+            return;
+        }
+        _ => {}
+    }
+    // The paired kernels read the patch in pairs: with one group and an
+    // odd length, the element after the last meets a zero weight.
+    // The int8 forms run one body for `i8` weights (the `conv2d` API) and
+    // one for the weights file's bytes (generated modules); the packed
+    // forms share the bytes one, so a firmware links one copy.
+    let n = output.c * seg;
+    match a.rows {
+        Rows::Bytes(wb) if F & forms::BYTES != 0 => {
+            if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
+                conv_pixels::<i8, F>(arena, a, x, wv);
+            }
+        }
+        Rows::File(wb) if F & forms::FILE != 0 => {
+            if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
+                conv_pixels::<u8, F>(arena, a, x, wv);
+            }
+        }
+        Rows::Pairs(_) if F & forms::PAIRS != 0 => {
+            if let Some(x) = patch.get_mut(..seg.div_ceil(2) * 2) {
+                conv_pixels::<u8, F>(arena, a, x, &[]);
+            }
+        }
+        // The word kernels pad the last quad themselves.
+        Rows::Words(_) if F & forms::WORDS != 0 => {
+            if let Some(x) = patch.get_mut(..seg) {
+                conv_pixels::<u8, F>(arena, a, x, &[]);
+            }
+        }
+        _ => {}
+    }
+}
+
+/// The per-pixel part of [`conv_run`] (everything but the ring of rows):
+/// `patch` cut to the pixel's length, `weights` the int8 rows (empty for
+/// the packed forms, which read `a.rows`).
+fn conv_pixels<W: Wt, const F: u8>(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    weights: &[W],
+) {
     let (input, output, p) = (a.input, a.output, &a.p);
     let transform = a.transform.as_ref();
     let (bias, requant) = (a.bias, a.requant);
@@ -467,29 +694,10 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     let taps = w.taps();
     let cpg = c_in / p.groups;
     let opg = output.c / p.groups;
-    // Elements per group segment and per weight row.
     let seg = taps * cpg;
     if seg == 0 {
         return;
     }
-    if let (Rows::Pairs(pw), true) = (a.rows, a.ring) {
-        conv_rows(
-            arena, &input, &output, pw, bias, requant, p, transform, patch,
-        );
-        return;
-    }
-    // The paired kernels read the patch in pairs: with one group and an
-    // odd length, the element after the last meets a zero weight.
-    let (patch, weights): (_, &[i8]) = match a.rows {
-        Rows::Bytes(wb) => match (patch.get_mut(..taps * c_in), wb.get(..output.c * seg)) {
-            (Some(x), Some(wv)) => (x, wv),
-            _ => return,
-        },
-        Rows::Pairs(_) => match patch.get_mut(..seg.div_ceil(2) * 2) {
-            Some(x) => (x, &[]),
-            None => return,
-        },
-    };
     let pointwise = w.kh == 1
         && w.kw == 1
         && w.step_y == 1
@@ -501,7 +709,10 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
     // Depthwise (one input channel per group): gather the window tap-major
     // like a dense convolution (`patch[t][c]`, whole kernel rows copied at
     // once), then each output channel walks its input channel's column.
-    let depthwise = cpg == 1 && p.groups > 1;
+    // (Only the int8 forms take more than one group: the packed instances
+    // leave the depthwise and int8 row kernels out.)
+    let int8 = F & (forms::BYTES | forms::FILE) != 0;
+    let depthwise = cpg == 1 && p.groups > 1 && int8;
     // With a fused input transform each gathered value costs several
     // instructions, so neighbouring pixels share the columns they overlap
     // in (stride 1, no dilation, one group): each input value is then
@@ -592,13 +803,15 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
                     };
                     let mut acc = b;
                     for (x, &wv) in col.iter().step_by(c_in.max(1)).zip(row) {
-                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+                        acc = acc.wrapping_add((*x as i32).wrapping_mul(wv.v()));
                     }
                     *y = rq.apply(acc, p.out);
                 }
-            } else if let Rows::Pairs(pw) = a.rows {
+            } else if let (Rows::Pairs(pw), true) = (a.rows, F & forms::PAIRS != 0) {
                 paired_rows(patch, pw, bias, requant, p.out, out);
-            } else {
+            } else if let (Rows::Words(ww), true) = (a.rows, F & forms::WORDS != 0) {
+                paired_rows(patch, ww, bias, requant, p.out, out);
+            } else if int8 {
                 for (g, xw) in patch.chunks_exact(seg.max(1)).enumerate() {
                     let o0 = g * opg;
                     let (Some(wg), Some(bg), Some(rg), Some(og)) = (
@@ -619,9 +832,9 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
 /// Output channels of one group for one pixel: four (then two, then one)
 /// weight rows per pass over the patch.
 #[inline]
-fn channel_rows(
+fn channel_rows<W: Wt>(
     xw: &[i16],
-    weights: &[i8],
+    weights: &[W],
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
@@ -642,7 +855,7 @@ fn channel_rows(
             };
             let mut acc = b;
             for (&x, &w) in xw.iter().zip(row) {
-                acc = acc.wrapping_add((x as i32).wrapping_mul(w as i32));
+                acc = acc.wrapping_add((x as i32).wrapping_mul(w.v()));
             }
             *o = rq.apply(acc, out_q);
         }
@@ -710,9 +923,9 @@ fn channel_rows(
 /// Cortex-M4/M7) instead of one strided walk per channel.
 #[allow(clippy::too_many_arguments)]
 #[inline(never)]
-fn depthwise_channels(
+fn depthwise_channels<W: Wt>(
     patch: &[i16],
-    weights: &[i8],
+    weights: &[W],
     taps: usize,
     c: usize,
     bias: &[i32],
@@ -735,7 +948,7 @@ fn depthwise_channels(
         };
         // 3×3 kernels: the nine taps unrolled against one weight pointer
         // (constant offsets), so nothing spills.
-        if let (Ok(w9), Some(xs)) = (<&[i8; 36]>::try_from(w), patch.get(ch..)) {
+        if let (Ok(w9), Some(xs)) = (<&[W; 36]>::try_from(w), patch.get(ch..)) {
             let acc = depthwise4_3x3(xs, c, w9);
             requantize_into(o, &acc, b, r, out_q);
             ch += 4;
@@ -772,7 +985,7 @@ fn depthwise_channels(
         };
         let mut acc = b;
         for (x, &wv) in col.iter().step_by(c.max(1)).zip(row) {
-            acc = acc.wrapping_add((*x as i32).wrapping_mul(wv as i32));
+            acc = acc.wrapping_add((*x as i32).wrapping_mul(wv.v()));
         }
         *o = r.apply(acc, out_q);
         ch += 1;
@@ -782,17 +995,17 @@ fn depthwise_channels(
 /// [`depthwise4`] for nine taps, the weights of the four channels one
 /// after the other in `w`.
 #[inline(never)]
-fn depthwise4_3x3(xs: &[i16], c: usize, w: &[i8; 36]) -> [i32; 4] {
+fn depthwise4_3x3<W: Wt>(xs: &[i16], c: usize, w: &[W; 36]) -> [i32; 4] {
     let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
     for t in 0..9 {
         let at = t * c;
         let Some(&[x0, x1, x2, x3]) = xs.get(at..at + 4) else {
             break;
         };
-        a0 = a0.wrapping_add((x0 as i32).wrapping_mul(w[t] as i32));
-        a1 = a1.wrapping_add((x1 as i32).wrapping_mul(w[9 + t] as i32));
-        a2 = a2.wrapping_add((x2 as i32).wrapping_mul(w[18 + t] as i32));
-        a3 = a3.wrapping_add((x3 as i32).wrapping_mul(w[27 + t] as i32));
+        a0 = a0.wrapping_add((x0 as i32).wrapping_mul(w[t].v()));
+        a1 = a1.wrapping_add((x1 as i32).wrapping_mul(w[9 + t].v()));
+        a2 = a2.wrapping_add((x2 as i32).wrapping_mul(w[18 + t].v()));
+        a3 = a3.wrapping_add((x3 as i32).wrapping_mul(w[27 + t].v()));
     }
     [a0, a1, a2, a3]
 }
@@ -801,15 +1014,15 @@ fn depthwise4_3x3(xs: &[i16], c: usize, w: &[i8; 36]) -> [i32; 4] {
 /// the taps, for `j` in `0..4`. Its own function, so the loop holds only
 /// its pointers and four accumulators in registers.
 #[inline(never)]
-fn depthwise4(xs: &[i16], c: usize, w0: &[i8], w1: &[i8], w2: &[i8], w3: &[i8]) -> [i32; 4] {
+fn depthwise4<W: Wt>(xs: &[i16], c: usize, w0: &[W], w1: &[W], w2: &[W], w3: &[W]) -> [i32; 4] {
     let (mut a0, mut a1, mut a2, mut a3) = (0i32, 0i32, 0i32, 0i32);
     for ((((row, &u0), &u1), &u2), &u3) in xs.chunks(c.max(1)).zip(w0).zip(w1).zip(w2).zip(w3) {
         crate::dot::no_unroll();
         if let [x0, x1, x2, x3, ..] = *row {
-            a0 = a0.wrapping_add((x0 as i32).wrapping_mul(u0 as i32));
-            a1 = a1.wrapping_add((x1 as i32).wrapping_mul(u1 as i32));
-            a2 = a2.wrapping_add((x2 as i32).wrapping_mul(u2 as i32));
-            a3 = a3.wrapping_add((x3 as i32).wrapping_mul(u3 as i32));
+            a0 = a0.wrapping_add((x0 as i32).wrapping_mul(u0.v()));
+            a1 = a1.wrapping_add((x1 as i32).wrapping_mul(u1.v()));
+            a2 = a2.wrapping_add((x2 as i32).wrapping_mul(u2.v()));
+            a3 = a3.wrapping_add((x3 as i32).wrapping_mul(u3.v()));
         }
     }
     [a0, a1, a2, a3]
@@ -845,15 +1058,58 @@ fn requantize_into(
     }
 }
 
-/// [`conv2d_paired`] from a ring of `kh` padded, transformed input rows
-/// (see [`conv_rows_len`]); the caller checked [`conv_rows_apply`], the
-/// shapes and the buffer length.
+/// A packed weight layout of one-group convolutions: [`pair_rows`]
+/// (`u32` words of two `i16`) or [`word_rows_into`] (bytes, four int8
+/// weights a word). Rows go in blocks of four in both; a block stores, per
+/// unit of [`Packed::ELEMS`] patch elements, [`Packed::STORE`] elements of
+/// each row in turn.
+trait Packed: Copy {
+    /// Patch elements per unit.
+    const ELEMS: usize;
+    /// Stored elements per unit and row.
+    const STORE: usize;
+    /// Four rows of a block against the patch `x`.
+    fn dot4(x: &[i16], w: &[Self]) -> [i32; 4];
+    /// The one to three rows of a last block, added into `acc`.
+    fn few(x: &[i16], w: &[Self], acc: &mut [i32]);
+}
+
+impl Packed for u32 {
+    const ELEMS: usize = 2;
+    const STORE: usize = 1;
+    #[inline(always)]
+    fn dot4(x: &[i16], w: &[u32]) -> [i32; 4] {
+        dot4_pairs(x, w)
+    }
+    #[inline(always)]
+    fn few(x: &[i16], w: &[u32], acc: &mut [i32]) {
+        dot_pairs_few(x, w, acc)
+    }
+}
+
+impl Packed for u8 {
+    const ELEMS: usize = 4;
+    const STORE: usize = 4;
+    #[inline(always)]
+    fn dot4(x: &[i16], w: &[u8]) -> [i32; 4] {
+        dot4_words(x, w)
+    }
+    #[inline(always)]
+    fn few(x: &[i16], w: &[u8], acc: &mut [i32]) {
+        dot_words_few(x, w, acc)
+    }
+}
+
+/// [`conv2d_paired`] or [`conv2d_words`] from a ring of `kh` padded,
+/// transformed input rows (see [`conv_rows_len`]); the caller checked
+/// [`conv_rows_apply`] (or [`conv_rows_apply_words`]), the shapes and the
+/// buffer length.
 #[allow(clippy::too_many_arguments)]
-fn conv_rows(
+fn conv_rows<T: Packed>(
     arena: &mut [i8],
     input: &MapRef,
     output: &MapRef,
-    weights: &[u32],
+    weights: &[T],
     bias: &[i32],
     requant: &[Requant],
     p: &ConvParams,
@@ -869,9 +1125,9 @@ fn conv_rows(
     let Some(ring) = ring.get_mut(..w.kh * row_len) else {
         return;
     };
-    let run = w.kw * c; // elements of one kernel row, even
-    let row_pairs = run / 2;
-    let kp = w.kh * row_pairs; // pairs per weight row
+    let run = w.kw * c; // elements of one kernel row, whole units
+    let row_pairs = run / T::ELEMS * T::STORE; // stored per kernel row
+    let kp = w.kh * row_pairs; // stored per weight row
     let m = output.c;
     let quads = m / 4;
     let left = m % 4;
@@ -930,7 +1186,7 @@ fn conv_rows(
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
-                    let part = dot4_pairs(x, wk);
+                    let part = T::dot4(x, wk);
                     for (a, v) in acc.iter_mut().zip(part) {
                         *a = a.wrapping_add(v);
                     }
@@ -945,7 +1201,7 @@ fn conv_rows(
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
-                    dot_pairs_few(x, wk, acc);
+                    T::few(x, wk, acc);
                 }
                 requantize_into(out_left, acc, bias_left, rq_left, p.out);
             }
@@ -987,18 +1243,18 @@ fn fill_row(
     }
 }
 
-/// All output channels of one pixel from paired weights (one group): four
+/// All output channels of one pixel from packed weights (one group): four
 /// rows per pass over the patch, then the one to three left over.
 #[inline]
-fn paired_rows(
+fn paired_rows<T: Packed>(
     xw: &[i16],
-    weights: &[u32],
+    weights: &[T],
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
 ) {
-    let kp = xw.len() / 2;
+    let kp = xw.len().div_ceil(T::ELEMS) * T::STORE;
     let m = out.len();
     let quads = m / 4;
     if kp == 0 {
@@ -1029,14 +1285,14 @@ fn paired_rows(
         let (Some(block), Some(b), Some(r)) = (blocks.next(), bs.next(), rs.next()) else {
             return;
         };
-        let acc = dot4_pairs(xw, block);
+        let acc = T::dot4(xw, block);
         requantize_into(o, &acc, b, r, out_q);
     }
     let left = m % 4;
     if left > 0 {
         let mut acc = [0i32; 3];
         let acc = &mut acc[..left];
-        dot_pairs_few(xw, rest, acc);
+        T::few(xw, rest, acc);
         requantize_into(out_left, acc, bias_left, rq_left, out_q);
     }
 }

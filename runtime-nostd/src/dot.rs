@@ -24,6 +24,29 @@
 #[cfg(target_arch = "arm")]
 pub(crate) use scalar::{dot2_wide, dot4_wide, dot_wide};
 
+/// An int8 weight as the kernels read it: an `i8`, or the byte of the
+/// weights file that holds it (two's complement), so generated modules can
+/// pass the file's bytes as they are. Both read as one sign-extending byte
+/// load.
+pub(crate) trait Wt: Copy {
+    /// The weight's value.
+    fn v(self) -> i32;
+}
+
+impl Wt for i8 {
+    #[inline(always)]
+    fn v(self) -> i32 {
+        self as i32
+    }
+}
+
+impl Wt for u8 {
+    #[inline(always)]
+    fn v(self) -> i32 {
+        self as i8 as i32
+    }
+}
+
 /// Sums the lanes of an accumulator array.
 #[inline(always)]
 fn lane_sum(acc: &[i32; 16]) -> i32 {
@@ -37,16 +60,16 @@ fn lane_sum(acc: &[i32; 16]) -> i32 {
 /// One 16-lane step: `s[j] += x[j] · w[j]`.
 #[cfg(not(target_arch = "arm"))]
 #[inline(always)]
-fn step16(s: &mut [i32; 16], x: &[i16], w: &[i8]) {
+fn step16<W: Wt>(s: &mut [i32; 16], x: &[i16], w: &[W]) {
     for j in 0..16 {
-        s[j] = s[j].wrapping_add((x[j] as i32).wrapping_mul(w[j] as i32));
+        s[j] = s[j].wrapping_add((x[j] as i32).wrapping_mul(w[j].v()));
     }
 }
 
 /// `Σ x[i]·w[i]` over `w.len()` terms (`x.len() >= w.len()`).
 #[cfg(not(target_arch = "arm"))]
 #[inline(never)]
-pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
+pub(crate) fn dot_wide<W: Wt>(x: &[i16], w: &[W]) -> i32 {
     let n = w.len();
     let Some(x) = x.get(..n) else {
         return 0;
@@ -71,7 +94,7 @@ pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
 /// `pmaddwd`), while the pair shares the loop overhead and the call.
 #[cfg(not(target_arch = "arm"))]
 #[inline(never)]
-pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2] {
+pub(crate) fn dot2_wide<W: Wt>(x0: &[i16], x1: &[i16], w0: &[W], w1: &[W]) -> [i32; 2] {
     let n = w0.len();
     let (Some(x0), Some(x1), Some(w1)) = (x0.get(..n), x1.get(..n), w1.get(..n)) else {
         return [0; 2];
@@ -94,7 +117,7 @@ pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2
 /// slices (all the same patch in practice) and four weight rows.
 #[cfg(not(target_arch = "arm"))]
 #[inline(never)]
-pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
+pub(crate) fn dot4_wide<W: Wt>(x: [&[i16]; 4], w: [&[W]; 4]) -> [i32; 4] {
     let n = w[0].len() / 16 * 16;
     let (Some(x0), Some(x1), Some(x2), Some(x3)) =
         (x[0].get(..n), x[1].get(..n), x[2].get(..n), x[3].get(..n))
@@ -125,25 +148,25 @@ pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
 /// Scalar dot product for short runs (tails, depthwise windows), in
 /// channel pairs.
 #[inline(never)]
-pub(crate) fn tail_wide(x: &[i16], w: &[i8]) -> i32 {
+pub(crate) fn tail_wide<W: Wt>(x: &[i16], w: &[W]) -> i32 {
     let mut total: i32 = 0;
     let xc = x.chunks_exact(2);
     let wc = w.chunks_exact(2);
     let (xr, wr) = (xc.remainder(), wc.remainder());
     for (x, w) in xc.zip(wc) {
-        let a = (x[0] as i32).wrapping_mul(w[0] as i32);
-        let b = (x[1] as i32).wrapping_mul(w[1] as i32);
+        let a = (x[0] as i32).wrapping_mul(w[0].v());
+        let b = (x[1] as i32).wrapping_mul(w[1].v());
         total = total.wrapping_add(a.wrapping_add(b));
     }
     if let (Some(&a), Some(&b)) = (xr.first(), wr.first()) {
-        total = total.wrapping_add((a as i32).wrapping_mul(b as i32));
+        total = total.wrapping_add((a as i32).wrapping_mul(b.v()));
     }
     total
 }
 
 /// `Σ x[i]·w[i]` over `min(x.len(), w.len())` int8 terms.
 #[inline(never)]
-pub(crate) fn dot_i8(x: &[i8], w: &[i8]) -> i32 {
+pub(crate) fn dot_i8<W: Wt>(x: &[i8], w: &[W]) -> i32 {
     let n = x.len().min(w.len());
     let (Some(x), Some(w)) = (x.get(..n), w.get(..n)) else {
         return 0;
@@ -153,12 +176,12 @@ pub(crate) fn dot_i8(x: &[i8], w: &[i8]) -> i32 {
     let (xr, wr) = (xc.remainder(), wc.remainder());
     for (xc, wc) in xc.zip(wc) {
         for j in 0..16 {
-            acc[j] = acc[j].wrapping_add((xc[j] as i32).wrapping_mul(wc[j] as i32));
+            acc[j] = acc[j].wrapping_add((xc[j] as i32).wrapping_mul(wc[j].v()));
         }
     }
     let mut total = lane_sum(&acc);
     for (&a, &b) in xr.iter().zip(wr) {
-        total = total.wrapping_add((a as i32).wrapping_mul(b as i32));
+        total = total.wrapping_add((a as i32).wrapping_mul(b.v()));
     }
     total
 }
@@ -241,6 +264,112 @@ pub(crate) fn dot_pairs_few(x: &[i16], w: &[u32], acc: &mut [i32]) {
     }
 }
 
+/// One word of the word layout (see [`word_rows_into`](crate::word_rows_into)):
+/// four int8 weights stored as bytes `[w0, w2, w1, w3]`, read as one
+/// little-endian 32-bit load.
+#[inline(always)]
+fn load_word(b: &[u8; 4]) -> u32 {
+    u32::from_le_bytes(*b)
+}
+
+/// The little-endian word at byte `i` of a chunk of sixteen (constant
+/// indices: no bounds check, one load).
+#[inline(always)]
+fn word_at(q: &[u8; 16], i: usize) -> u32 {
+    u32::from_le_bytes([q[i], q[i + 1], q[i + 2], q[i + 3]])
+}
+
+/// `acc + x01·(w0, w1) + x23·(w2, w3)` for one stored word `wv` of the
+/// word layout: `sxtb16` widens bytes 0 and 2 (`w0`, `w1`) into the two
+/// 16-bit lanes, `sxtb16` with `ror #8` bytes 1 and 3 (`w2`, `w3`), so the
+/// lanes line up with the patch pairs `(x0, x1)` and `(x2, x3)` and each
+/// feeds one `smlad`. Four MACs for one load, two widenings and two
+/// multiply-accumulates.
+#[inline(always)]
+fn mac_quad(acc: i32, x01: u32, x23: u32, wv: u32) -> i32 {
+    let acc = mac_pair(acc, x01, ingot_dsp::sxtb16(wv));
+    mac_pair(acc, x23, ingot_dsp::sxtb16_ror8(wv))
+}
+
+/// The patch values `x[0..4]` as two words of two `i16`, zeros past the
+/// end of `x` (the last, partial quad of a row meets zero weights there).
+#[inline(always)]
+fn quad_words(x: &[i16]) -> (u32, u32) {
+    let at = |i: usize| x.get(i).copied().unwrap_or(0);
+    (word(at(0), at(1)), word(at(2), at(3)))
+}
+
+/// Four weight rows in the word layout (see
+/// [`word_rows_into`](crate::word_rows_into)) against the patch `x`: `w` holds, for
+/// every quad `q < ⌈x.len() / 4⌉` of patch elements, one word (four
+/// bytes) of each of the four rows. A last partial quad of `x` is padded
+/// with zeros (its weights are zero there too).
+#[inline(never)]
+pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
+    let (mut a, mut b, mut c, mut d) = (0i32, 0i32, 0i32, 0i32);
+    let full = (x.len() / 4).min(w.len() / 16);
+    let (Some(mut xs), Some(mut ws)) = (x.get(..4 * full), w.get(..16 * full)) else {
+        return [0; 4];
+    };
+    // Both slices shrink from the front (one pointer each, one count),
+    // and an empty inline-asm statement between the rows keeps LLVM from
+    // loading all four weight words first: with the loads hoisted, the
+    // loop needed more registers than the core has and spilled two to
+    // four accumulators per pass (31 instructions per 16 MACs, 27 now:
+    // `arm-none-eabi-objdump -d` for thumbv7em). Combining the patch
+    // halves into words also needs the patch read through its own
+    // pointer, not an index shared with the weights.
+    while let (Some((xq, xr)), Some((q, wr))) =
+        (xs.split_first_chunk::<4>(), ws.split_first_chunk::<16>())
+    {
+        no_unroll();
+        (xs, ws) = (xr, wr);
+        let [x0, x1, x2, x3] = *xq;
+        let (x01, x23) = (word(x0, x1), word(x2, x3));
+        a = mac_quad(a, x01, x23, word_at(q, 0));
+        no_unroll();
+        b = mac_quad(b, x01, x23, word_at(q, 4));
+        no_unroll();
+        c = mac_quad(c, x01, x23, word_at(q, 8));
+        no_unroll();
+        d = mac_quad(d, x01, x23, word_at(q, 12));
+    }
+    // A last, partial quad of patch elements.
+    let tail = x.get(4 * full..).unwrap_or(&[]);
+    if !tail.is_empty() {
+        if let Some(Ok(q)) = w.get(16 * full..16 * full + 16).map(<&[u8; 16]>::try_from) {
+            let (x01, x23) = quad_words(tail);
+            a = mac_quad(a, x01, x23, word_at(q, 0));
+            b = mac_quad(b, x01, x23, word_at(q, 4));
+            c = mac_quad(c, x01, x23, word_at(q, 8));
+            d = mac_quad(d, x01, x23, word_at(q, 12));
+        }
+    }
+    [a, b, c, d]
+}
+
+/// `acc.len()` (1 to 3) rows in the word layout, as [`dot4_words`] with a
+/// block of `acc.len()` rows; adds into `acc`.
+#[inline(never)]
+pub(crate) fn dot_words_few(x: &[i16], w: &[u8], acc: &mut [i32]) {
+    let m = acc.len();
+    if m == 0 {
+        return;
+    }
+    let mut ws = w.chunks_exact((4 * m).max(1));
+    for xq in x.chunks(4) {
+        let Some(q) = ws.next() else {
+            return;
+        };
+        let (x01, x23) = quad_words(xq);
+        for (s, wb) in acc.iter_mut().zip(q.chunks_exact(4)) {
+            if let Ok(wb) = <&[u8; 4]>::try_from(wb) {
+                *s = mac_quad(*s, x01, x23, load_word(wb));
+            }
+        }
+    }
+}
+
 /// Register-friendly forms for cores without SIMD lanes (used on Arm; also
 /// compiled on the host so their results can be compared with the lane
 /// forms). Same contracts as the lane forms, except that [`dot4_wide`] and
@@ -248,28 +377,30 @@ pub(crate) fn dot_pairs_few(x: &[i16], w: &[u32], acc: &mut [i32]) {
 /// the same patch, as the convolution passes them.
 #[cfg_attr(not(target_arch = "arm"), allow(dead_code))]
 pub(crate) mod scalar {
+    use super::Wt;
+
     /// See [`super::dot_wide`] (all `w.len()` terms).
     #[inline(never)]
-    pub(crate) fn dot_wide(x: &[i16], w: &[i8]) -> i32 {
+    pub(crate) fn dot_wide<W: Wt>(x: &[i16], w: &[W]) -> i32 {
         let Some(x) = x.get(..w.len()) else {
             return 0;
         };
         let (mut a, mut b) = (0i32, 0i32);
         let (xc, wc) = (x.chunks_exact(2), w.chunks_exact(2));
         let tail = match (xc.remainder(), wc.remainder()) {
-            (&[xv], &[wv]) => (xv as i32).wrapping_mul(wv as i32),
+            (&[xv], &[wv]) => (xv as i32).wrapping_mul(wv.v()),
             _ => 0,
         };
         for (xp, wp) in xc.zip(wc) {
-            a = a.wrapping_add((xp[0] as i32).wrapping_mul(wp[0] as i32));
-            b = b.wrapping_add((xp[1] as i32).wrapping_mul(wp[1] as i32));
+            a = a.wrapping_add((xp[0] as i32).wrapping_mul(wp[0].v()));
+            b = b.wrapping_add((xp[1] as i32).wrapping_mul(wp[1].v()));
         }
         a.wrapping_add(b).wrapping_add(tail)
     }
 
     /// See [`super::dot2_wide`]; `x1` must be `x0`.
     #[inline(never)]
-    pub(crate) fn dot2_wide(x0: &[i16], x1: &[i16], w0: &[i8], w1: &[i8]) -> [i32; 2] {
+    pub(crate) fn dot2_wide<W: Wt>(x0: &[i16], x1: &[i16], w0: &[W], w1: &[W]) -> [i32; 2] {
         debug_assert!(core::ptr::eq(x0, x1));
         let _ = x1;
         let n = w0.len() - w0.len() % 16;
@@ -284,11 +415,11 @@ pub(crate) mod scalar {
         {
             let (x0, x1) = (xp[0] as i32, xp[1] as i32);
             a = a
-                .wrapping_add(x0.wrapping_mul(p[0] as i32))
-                .wrapping_add(x1.wrapping_mul(p[1] as i32));
+                .wrapping_add(x0.wrapping_mul(p[0].v()))
+                .wrapping_add(x1.wrapping_mul(p[1].v()));
             b = b
-                .wrapping_add(x0.wrapping_mul(q[0] as i32))
-                .wrapping_add(x1.wrapping_mul(q[1] as i32));
+                .wrapping_add(x0.wrapping_mul(q[0].v()))
+                .wrapping_add(x1.wrapping_mul(q[1].v()));
         }
         [a, b]
     }
@@ -299,7 +430,7 @@ pub(crate) mod scalar {
     /// load for all four rows, and the halves feed `smlabb`/`smlatb`
     /// directly.
     #[inline(never)]
-    pub(crate) fn dot4_wide(x: [&[i16]; 4], w: [&[i8]; 4]) -> [i32; 4] {
+    pub(crate) fn dot4_wide<W: Wt>(x: [&[i16]; 4], w: [&[W]; 4]) -> [i32; 4] {
         debug_assert!(x.iter().all(|v| core::ptr::eq(*v, x[0])));
         let n = w[0].len() - w[0].len() % 16;
         let (Some(xs), Some(w0), Some(w1), Some(w2), Some(w3)) = (
@@ -321,17 +452,17 @@ pub(crate) mod scalar {
         {
             let (lo, hi) = super::halves(super::word(xp[0], xp[1]));
             a = a
-                .wrapping_add(lo.wrapping_mul(p[0] as i32))
-                .wrapping_add(hi.wrapping_mul(p[1] as i32));
+                .wrapping_add(lo.wrapping_mul(p[0].v()))
+                .wrapping_add(hi.wrapping_mul(p[1].v()));
             b = b
-                .wrapping_add(lo.wrapping_mul(q[0] as i32))
-                .wrapping_add(hi.wrapping_mul(q[1] as i32));
+                .wrapping_add(lo.wrapping_mul(q[0].v()))
+                .wrapping_add(hi.wrapping_mul(q[1].v()));
             c = c
-                .wrapping_add(lo.wrapping_mul(r[0] as i32))
-                .wrapping_add(hi.wrapping_mul(r[1] as i32));
+                .wrapping_add(lo.wrapping_mul(r[0].v()))
+                .wrapping_add(hi.wrapping_mul(r[1].v()));
             d = d
-                .wrapping_add(lo.wrapping_mul(t[0] as i32))
-                .wrapping_add(hi.wrapping_mul(t[1] as i32));
+                .wrapping_add(lo.wrapping_mul(t[0].v()))
+                .wrapping_add(hi.wrapping_mul(t[1].v()));
         }
         [a, b, c, d]
     }

@@ -203,8 +203,9 @@ mod transform;
 
 pub use channel::{channel_transform, copy_channels};
 pub use conv::{
-    conv2d, conv2d_paired, conv_patch_len, conv_rows_apply, conv_rows_len, pair_rows,
-    pair_rows_into, paired_len, window_out_len, ConvParams, Padding, Window,
+    conv2d, conv2d_paired, conv2d_words, conv_patch_len, conv_rows_apply, conv_rows_apply_words,
+    conv_rows_len, pair_rows, pair_rows_into, paired_len, window_out_len, word_rows_into,
+    words_len, ConvParams, Padding, Window,
 };
 pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;

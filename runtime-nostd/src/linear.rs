@@ -1,6 +1,6 @@
 //! Fully connected layer.
 
-use crate::dot::dot_i8;
+use crate::dot::{dot_i8, Wt};
 use crate::{Error, MapRef, OutputQuant, Requant};
 
 /// Fully connected layer over a map flattened in HWC order.
@@ -25,9 +25,28 @@ pub fn linear(
     requant: &[Requant],
     out: OutputQuant,
 ) -> Result<(), Error> {
-    let a = check_linear(arena.len(), input, output, weights, bias, requant, out)?;
+    let rows = LinearRows::Bytes(weights);
+    let a = check_linear(arena.len(), input, output, rows, bias, requant, out)?;
     linear_run(arena, &a);
     Ok(())
+}
+
+/// The stored form of a linear layer's weights.
+#[derive(Clone, Copy)]
+pub(crate) enum LinearRows<'a> {
+    /// `[O][I]`, int8.
+    Bytes(&'a [i8]),
+    /// The same as the bytes of the weights file.
+    File(&'a [u8]),
+}
+
+impl LinearRows<'_> {
+    const fn len(&self) -> usize {
+        match self {
+            LinearRows::Bytes(w) => w.len(),
+            LinearRows::File(w) => w.len(),
+        }
+    }
 }
 
 /// A linear call that passed [`check_linear`]: running it cannot fail.
@@ -35,7 +54,7 @@ pub fn linear(
 pub(crate) struct LinearArgs<'a> {
     pub(crate) input: MapRef,
     pub(crate) output: MapRef,
-    pub(crate) weights: &'a [i8],
+    pub(crate) weights: LinearRows<'a>,
     pub(crate) bias: &'a [i32],
     pub(crate) requant: &'a [Requant],
     pub(crate) out: OutputQuant,
@@ -46,7 +65,7 @@ pub(crate) const fn check_linear<'a>(
     arena_len: usize,
     input: MapRef,
     output: MapRef,
-    weights: &'a [i8],
+    weights: LinearRows<'a>,
     bias: &'a [i32],
     requant: &'a [Requant],
     out: OutputQuant,
@@ -90,6 +109,14 @@ pub(crate) const fn check_linear<'a>(
 
 /// Runs a checked linear layer.
 pub(crate) fn linear_run(arena: &mut [i8], a: &LinearArgs<'_>) {
+    match a.weights {
+        LinearRows::Bytes(w) => linear_rows(arena, a, w),
+        LinearRows::File(w) => linear_rows(arena, a, w),
+    }
+}
+
+/// [`linear_run`] for one weight type.
+fn linear_rows<W: Wt>(arena: &mut [i8], a: &LinearArgs<'_>, weights: &[W]) {
     let (input, output) = (a.input, a.output);
     let n_in = input.len();
     if n_in == 0 || input.c == 0 {
@@ -98,7 +125,7 @@ pub(crate) fn linear_run(arena: &mut [i8], a: &LinearArgs<'_>) {
     let contiguous = input.stride == input.c || input.pixels() == 1;
     // Advanced by hand, not zipped: `zip` over a chunk iterator can leave
     // a call that divides by the chunk size, a division-by-zero panic path.
-    let mut rows = a.weights.chunks_exact(n_in.max(1));
+    let mut rows = weights.chunks_exact(n_in.max(1));
     let mut params = a.bias.iter().zip(a.requant);
     for oy in 0..output.h {
         for ox in 0..output.w {

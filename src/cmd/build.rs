@@ -32,8 +32,10 @@ pub struct Args {
     /// Overwrite files in --out that ingot did not write.
     #[arg(long)]
     pub force: bool,
-    /// How convolution weights are stored: int8, or pairs (16-bit pairs for
-    /// the Cortex-M4/M7 16-bit multiply-accumulates, twice the flash)
+    /// How convolution weights are stored: int8, words (int8 read four at a
+    /// time and widened in registers for the Cortex-M4/M7 dual 16-bit
+    /// multiply-accumulate, one byte per weight) or pairs (pre-widened
+    /// 16-bit pairs for the same instructions, twice the flash)
     /// [default: by the --target core, else int8]
     #[arg(long)]
     pub weight_form: Option<WeightForm>,

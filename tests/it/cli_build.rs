@@ -193,11 +193,21 @@ fn weight_form_follows_the_target_core_and_the_flag() {
     let m0 = root.join("targets/rp2040.toml");
     let m4 = m4.to_str().unwrap();
     let m0 = m0.to_str().unwrap();
-    // A Cortex-M4F part: paired weights, twice the flash for them.
+    // A Cortex-M4F part: int8 words, widened in registers; the weights
+    // file holds them as the module reads them, so flash is the file.
     let (o, out) = build("m4", &["--target", m4]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let text = String::from_utf8_lossy(&o.stdout).to_string();
-    assert!(text.contains("pairs form"), "{text}");
+    assert!(text.contains("words form"), "{text}");
+    let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
+    assert!(module.contains("ingot_rt::checked::Conv2dWords::new("));
+    let json: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(out.join("model.report.json")).unwrap()).unwrap();
+    assert_eq!(json["weight_form"], "words");
+    assert_eq!(json["weights_flash_bytes"], json["weights_bytes"]);
+    // Pairs by name: twice the flash for those weights.
+    let (o, out) = build("m4-pairs", &["--target", m4, "--weight-form", "pairs"]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
     assert!(module.contains("ingot_rt::checked::Conv2dPaired::new("));
     let json: serde_json::Value =
@@ -215,10 +225,10 @@ fn weight_form_follows_the_target_core_and_the_flag() {
     let (o, out) = build("m0", &["--target", m0]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     let module = std::fs::read_to_string(out.join("model.rs")).unwrap();
-    assert!(!module.contains("Conv2dPaired"));
+    assert!(!module.contains("Conv2dPaired") && !module.contains("Conv2dWords"));
     // An unknown form is refused, naming the choices.
     let (o, _) = build("bad", &["--weight-form", "int16"]);
     assert!(!o.status.success());
     let err = String::from_utf8_lossy(&o.stderr);
-    assert!(err.contains("int8 or pairs"), "{err}");
+    assert!(err.contains("int8, pairs or words"), "{err}");
 }

@@ -184,6 +184,14 @@ pub fn markdown(r: &CheckReport) -> String {
                 "Convolution weights in 16-bit pairs (`ingot_rt::conv2d_paired`). "
             );
         }
+        Some("words") => {
+            let _ = writeln!(
+                s,
+                "One-group convolution weights as int8 words, widened in registers \
+                 (`ingot_rt::conv2d_words`); depthwise and grouped convolutions and \
+                 linear layers int8. "
+            );
+        }
         Some(f) => {
             let _ = writeln!(s, "Convolution weights in {f}. ");
         }

@@ -1,8 +1,11 @@
 //! The binary weights file: every tensor of the network, little-endian, in
 //! sections (int8 weights, i32 biases, requantization multipliers, channel
-//! transforms, pixel table), with the byte offset of every tensor.
+//! transforms, pixel table), with the byte offset of every tensor. With the
+//! word weight form the one-group convolutions' int8 weights are stored in
+//! the kernel's word layout, first in the file (see [`build`]).
 
 use crate::lower::{ChannelTransform, QGraph, QKernel};
+use crate::plan::WeightForm;
 
 /// Element type of a stored tensor.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
@@ -171,14 +174,36 @@ impl Writer {
     }
 }
 
-/// Lays out every tensor of `q`.
-pub fn build(q: &QGraph) -> Blob {
+/// Lays out every tensor of `q` for the module's weight form `form`.
+///
+/// With [`WeightForm::Words`] the one-group convolutions' weights are
+/// stored in the word layout the kernel reads (`ingot_rt::word_rows_into`;
+/// each a whole number of 32-bit words, rows padded with zero weights) and
+/// come first, so each starts on a 4-byte boundary of the file; the module
+/// then uses those bytes as they are.
+pub fn build(q: &QGraph, form: WeightForm) -> Blob {
     let mut w = Writer {
         bytes: Vec::new(),
         entries: Vec::new(),
     };
+    let words =
+        |k: &QKernel| matches!(k, QKernel::Conv2d(c) if form.for_conv(c) == WeightForm::Words);
+    for (i, s) in q.steps.iter().enumerate() {
+        if let (QKernel::Conv2d(c), true) = (&s.kernel, words(&s.kernel)) {
+            let v = super::calls::word_weights(c);
+            w.start(
+                Some(i),
+                Some(Role::Weights),
+                Elem::I8,
+                v.len(),
+                Section::Weights,
+            );
+            w.bytes.extend_from_slice(&v);
+        }
+    }
     for (i, s) in q.steps.iter().enumerate() {
         match &s.kernel {
+            _ if words(&s.kernel) => {}
             QKernel::Conv2d(c) => w.i8s(i, Role::Weights, &c.weights, Section::Weights),
             QKernel::Linear(l) => w.i8s(i, Role::Weights, &l.weights, Section::Weights),
             _ => {}

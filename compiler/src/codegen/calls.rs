@@ -14,7 +14,7 @@
 use crate::lower::{
     ChannelTransform, Clamp, Multiplier, QConv, QGraph, QKernel, QLinear, QPool, StepId,
 };
-pub use crate::plan::form::{uses_pairs, weight_rows};
+pub use crate::plan::form::weight_rows;
 use crate::plan::Schedule;
 use ingot_rt::{
     AddParams, ConvParams, InputTransform, MapRef, OutputQuant, PoolQuant, Requant, Window,
@@ -23,14 +23,14 @@ use ingot_rt::{
 /// One kernel call.
 #[derive(Debug, Clone)]
 pub enum Call<'a> {
-    /// `ingot_rt::conv2d`, or `ingot_rt::conv2d_paired` when `paired`.
+    /// `ingot_rt::conv2d`, `conv2d_paired` or `conv2d_words` by `form`.
     Conv {
         input: MapRef,
         output: MapRef,
         conv: &'a QConv,
         params: ConvParams,
-        /// Weights in the paired layout (see [`set_weight_form`]).
-        paired: bool,
+        /// The layer's weight form (see [`set_weight_form`]).
+        form: super::WeightForm,
     },
     /// `ingot_rt::linear`.
     Linear {
@@ -175,17 +175,33 @@ pub enum CallError {
     Accumulator(String),
 }
 
-/// Switches every convolution that can take it to the paired layout when
-/// `form` is [`WeightForm::Pairs`](super::WeightForm::Pairs) (calls from
+/// Gives every convolution the layer form of the module's `form`
+/// ([`WeightForm::for_conv`](super::WeightForm::for_conv): the packed forms
+/// for one-group convolutions, int8 for the rest; calls from
 /// [`step_calls`] start in int8).
 pub fn set_weight_form(steps: &mut [StepCalls<'_>], form: super::WeightForm) {
     for sc in steps {
         for c in &mut sc.calls {
-            if let Call::Conv { conv, paired, .. } = c {
-                *paired = form == super::WeightForm::Pairs && uses_pairs(conv);
+            if let Call::Conv {
+                conv, form: layer, ..
+            } = c
+            {
+                *layer = form.for_conv(conv);
             }
         }
     }
+}
+
+/// The word layout of a convolution's weights (`ingot_rt::word_rows_into`),
+/// as the weights file stores them for the word form.
+pub fn word_weights(c: &QConv) -> Vec<u8> {
+    let (rows, k) = weight_rows(c);
+    let mut v = vec![0u8; ingot_rt::words_len(rows, k)];
+    // As in `paired_weights`: the lengths agree by construction.
+    if ingot_rt::word_rows_into(&c.weights, rows, k, &mut v).is_err() {
+        v.clear();
+    }
+    v
 }
 
 /// The paired layout of a convolution's weights (`ingot_rt::pair_rows`).
@@ -243,7 +259,7 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
                     output: o,
                     conv: c,
                     params,
-                    paired: false,
+                    form: super::WeightForm::Int8,
                 }]
             }
             QKernel::Linear(l) => vec![Call::Linear {
@@ -320,11 +336,24 @@ pub fn run_call(
             output,
             conv,
             params,
-            paired,
+            form,
         } => {
             let t = conv.transform.as_ref().map(rt_transform);
             let rq: Vec<Requant> = conv.requant.iter().map(|&m| requant(m)).collect();
-            if *paired {
+            if *form == super::WeightForm::Words {
+                return ingot_rt::conv2d_words(
+                    arena,
+                    *input,
+                    *output,
+                    &word_weights(conv),
+                    &conv.bias,
+                    &rq,
+                    params,
+                    t.as_ref(),
+                    patch,
+                );
+            }
+            if *form == super::WeightForm::Pairs {
                 return ingot_rt::conv2d_paired(
                     arena,
                     *input,

@@ -232,7 +232,7 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
         let input = vec![zp; q.map(q.input).shape.len()];
         calls::execute(q, s, &steps, &input, &mut |_, _| {}).map_err(|e| kernel_error(q, e))?;
     }
-    let blob = blob::build(q);
+    let blob = blob::build(q, opt.weight_form);
     let mut namer = names::Namer::default();
     let stems: Vec<String> = q.steps.iter().map(|st| namer.unique(&st.name)).collect();
 

@@ -28,6 +28,9 @@ pub struct LayerRow {
     pub stride: usize,
     /// Kernel calls emitted (0 for an in-place concatenation).
     pub calls: usize,
+    /// The weight form the compiler chose for this layer (convolutions:
+    /// `int8`, `words` or `pairs`; `None` for other kinds).
+    pub weight_form: Option<&'static str>,
 }
 
 /// Everything in `NAME.report.json`.
@@ -104,6 +107,10 @@ pub fn build(
             offset: v.offset,
             stride: v.stride,
             calls: sc.calls.len(),
+            weight_form: sc.calls.iter().find_map(|c| match c {
+                super::calls::Call::Conv { form, .. } => Some(form.name()),
+                _ => None,
+            }),
         });
     }
     let i = q.map(q.input).shape;
@@ -187,10 +194,11 @@ impl Report {
             "|---:|---|---|---|---:|---:|---:|---:|".to_string(),
         ];
         for l in &self.layers {
-            let kind = if l.kind == "concat" && l.calls == 0 {
-                "concat (in place)".to_string()
-            } else {
-                l.kind.clone()
+            let kind = match (l.kind.as_str(), l.calls, l.weight_form) {
+                ("concat", 0, _) => "concat (in place)".to_string(),
+                // The packed forms are named; int8 is the plain kind.
+                (k, _, Some(f)) if f != "int8" => format!("{k} ({f})"),
+                (k, _, _) => k.to_string(),
             };
             v.push(format!(
                 "| {} | {} | {} | {}×{}×{} | {} | {} | {} | {} |",

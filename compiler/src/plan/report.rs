@@ -199,6 +199,8 @@ impl fmt::Display for PlanReport {
             self.patch_bytes,
             if self.weight_form == "pairs" {
                 "row buffers of the paired convolutions"
+            } else if self.weight_form == "words" {
+                "row buffers of the word-form convolutions"
             } else {
                 "int8 convolution patch"
             }

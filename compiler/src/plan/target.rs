@@ -172,7 +172,7 @@ impl Target {
 #[derive(Debug, Clone, Default, PartialEq, Serialize)]
 pub struct FlashUse {
     /// Convolution and linear weights: one byte each, two for convolutions
-    /// stored in 16-bit pairs.
+    /// stored in 16-bit pairs (words: one, rows padded to whole words).
     pub weights: u64,
     /// 32-bit biases.
     pub biases: u64,
@@ -225,6 +225,7 @@ impl FlashUse {
             }
         }
         f.weights += super::form::pair_growth(q, form) as u64;
+        f.weights += super::form::word_padding(q, form) as u64;
         f.code = RUNTIME_CODE_BYTES + STEP_CODE_BYTES * q.steps.len() as u64;
         f
     }

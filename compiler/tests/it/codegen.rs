@@ -230,6 +230,15 @@ fn nets() -> Vec<Net> {
     let mut zoo_dense_pairs = zoo_nets()[1].clone();
     zoo_dense_pairs.module = "zoo_dense_pairs".into();
     zoo_dense_pairs.form = WeightForm::Pairs;
+    // The word form (int8 weights widened in registers), the same way.
+    let words = |module: &str, q: QGraph, weights: WeightsMode| Net {
+        form: WeightForm::Words,
+        weights,
+        ..Net::new(module, q)
+    };
+    let mut zoo_dense_words = zoo_nets()[1].clone();
+    zoo_dense_words.module = "zoo_dense_words".into();
+    zoo_dense_words.form = WeightForm::Words;
     vec![
         Net::new("plain", testnets::plain()),
         Net::new("dense", dense),
@@ -250,6 +259,18 @@ fn nets() -> Vec<Net> {
             WeightsMode::IncludeBytes,
         ),
         zoo_dense_pairs,
+        words("dense_words", testnets::dense(), WeightsMode::IncludeBytes),
+        words(
+            "plain_words_literal",
+            testnets::plain(),
+            WeightsMode::Literal,
+        ),
+        words(
+            "depthwise_words",
+            testnets::depthwise(),
+            WeightsMode::IncludeBytes,
+        ),
+        zoo_dense_words,
     ]
     .into_iter()
     .chain(zoo_nets().iter().cloned())
@@ -620,9 +641,74 @@ fn paired_weights_match_int8_bit_for_bit() {
     // Grouped and depthwise convolutions keep int8 weights.
     let text = std::fs::read_to_string(built().dir.join("src/depthwise_pairs.rs")).unwrap();
     assert!(
-        text.contains("ingot_rt::checked::Conv2d::new("),
+        text.contains("ingot_rt::checked::Conv2d::new_bytes("),
         "depthwise layers stay int8"
     );
+}
+
+/// The word form (int8 weights in flash, widened in registers) gives the
+/// same maps as int8 on every network, reads the weights file's bytes with
+/// no conversion (a sub-array of the included file, 4-byte aligned), and
+/// only one-group convolutions take it.
+#[test]
+fn word_weights_match_int8_bit_for_bit() {
+    for (words, int8) in [
+        ("dense_words", "dense"),
+        ("plain_words_literal", "plain"),
+        ("depthwise_words", "depthwise"),
+        ("zoo_dense_words", "zoo_dense"),
+    ] {
+        check_net(words);
+        let b = built();
+        for (w, i) in b.runs[words].iter().zip(&b.runs[int8]) {
+            assert_eq!(w.0, i.0, "{words} vs {int8}");
+        }
+        let text = std::fs::read_to_string(b.dir.join(format!("src/{words}.rs"))).unwrap();
+        assert!(
+            text.contains("ingot_rt::checked::Conv2dWords::new("),
+            "{words}"
+        );
+        assert!(text.contains("#[repr(align(4))]"), "{words}");
+        if !words.ends_with("literal") {
+            assert!(text.contains("*bytes::<"), "{words}");
+        }
+    }
+    let text = std::fs::read_to_string(built().dir.join("src/depthwise_words.rs")).unwrap();
+    assert!(
+        text.contains("ingot_rt::checked::Conv2d::new_bytes("),
+        "depthwise layers stay int8"
+    );
+    // The weights file holds the word layout: the same size as int8 up to
+    // the zero weights that pad each row to whole words.
+    let q = testnets::dense();
+    let s = Schedule::naive(&q);
+    let int8 = generate(&q, &s, &GenOptions::default()).unwrap();
+    let opt = GenOptions {
+        weight_form: WeightForm::Words,
+        ..GenOptions::default()
+    };
+    let words = generate(&q, &s, &opt).unwrap();
+    let pad: usize = q
+        .steps
+        .iter()
+        .filter_map(|st| match &st.kernel {
+            QKernel::Conv2d(c) if c.groups == 1 => {
+                let k = c.weights.len() / c.out_channels;
+                Some(c.out_channels * (k.div_ceil(4) * 4 - k))
+            }
+            _ => None,
+        })
+        .sum();
+    assert_eq!(words.weights.len(), int8.weights.len() + pad);
+    // The build report names each convolution's form.
+    let forms: Vec<_> = words
+        .report
+        .layers
+        .iter()
+        .filter_map(|l| l.weight_form)
+        .collect();
+    assert!(!forms.is_empty() && forms.iter().all(|&f| f == "words"));
+    assert!(words.report_md.contains("conv2d (words)"));
 }
 
 #[test]

@@ -28,7 +28,7 @@ use std::path::{Path, PathBuf};
 
 /// The targets and the weight form their cores use.
 const TARGETS: [(&str, WeightForm); 2] = [
-    ("thumbv7em-none-eabihf", WeightForm::Pairs),
+    ("thumbv7em-none-eabihf", WeightForm::Words),
     ("thumbv6m-none-eabi", WeightForm::Int8),
 ];
 

@@ -215,6 +215,14 @@ fn forward<T: FnMut(usize, ingot_rt::MapRef, &[i8])>(
 mod ingot_data {
     /// The weights file, read by the `const fn`s below at compile time only.
     const BLOB: &[u8; 2880] = include_bytes!("plain_camera.weights.bin");
+    /// `N` bytes of the weights file from byte `at`, as they are
+    /// (a sub-array of the included bytes: no loop to evaluate).
+    const fn bytes<const N: usize>(at: usize) -> &'static [u8; N] {
+        match BLOB.split_at(at).1.first_chunk::<N>() {
+            Some(b) => b,
+            None => panic!("a tensor reaches past the weights file"),
+        }
+    }
     const fn i32_at(at: usize) -> i32 {
         i32::from_le_bytes([BLOB[at], BLOB[at + 1], BLOB[at + 2], BLOB[at + 3]])
     }
@@ -253,7 +261,7 @@ mod ingot_data {
     }
     const OFF_W_CONV1: usize = 0;
     ///216 elements at byte 0 of the weights file.
-    pub(super) static W_CONV1: [i8; 216] = i8s::<216>(OFF_W_CONV1);
+    pub(super) static W_CONV1: [u8; 216] = *bytes::<216>(OFF_W_CONV1);
     const OFF_B_CONV1: usize = 1620;
     ///8 elements at byte 1620 of the weights file.
     pub(super) static B_CONV1: [i32; 8] = i32s::<8>(OFF_B_CONV1);
@@ -262,7 +270,7 @@ mod ingot_data {
     pub(super) static RQ_CONV1: [ingot_rt::Requant; 8] = rqs::<8>(OFF_RQ_CONV1);
     const OFF_W_CONV2: usize = 216;
     ///1152 elements at byte 216 of the weights file.
-    pub(super) static W_CONV2: [i8; 1152] = i8s::<1152>(OFF_W_CONV2);
+    pub(super) static W_CONV2: [u8; 1152] = *bytes::<1152>(OFF_W_CONV2);
     const OFF_B_CONV2: usize = 1652;
     ///16 elements at byte 1652 of the weights file.
     pub(super) static B_CONV2: [i32; 16] = i32s::<16>(OFF_B_CONV2);
@@ -271,7 +279,7 @@ mod ingot_data {
     pub(super) static RQ_CONV2: [ingot_rt::Requant; 16] = rqs::<16>(OFF_RQ_CONV2);
     const OFF_W_CONV3: usize = 1368;
     ///192 elements at byte 1368 of the weights file.
-    pub(super) static W_CONV3: [i8; 192] = i8s::<192>(OFF_W_CONV3);
+    pub(super) static W_CONV3: [u8; 192] = *bytes::<192>(OFF_W_CONV3);
     const OFF_B_CONV3: usize = 1716;
     ///12 elements at byte 1716 of the weights file.
     pub(super) static B_CONV3: [i32; 12] = i32s::<12>(OFF_B_CONV3);
@@ -280,7 +288,7 @@ mod ingot_data {
     pub(super) static RQ_CONV3: [ingot_rt::Requant; 12] = rqs::<12>(OFF_RQ_CONV3);
     const OFF_W_FC: usize = 1560;
     ///60 elements at byte 1560 of the weights file.
-    pub(super) static W_FC: [i8; 60] = i8s::<60>(OFF_W_FC);
+    pub(super) static W_FC: [u8; 60] = *bytes::<60>(OFF_W_FC);
     const OFF_B_FC: usize = 1764;
     ///5 elements at byte 1764 of the weights file.
     pub(super) static B_FC: [i32; 5] = i32s::<5>(OFF_B_FC);
@@ -395,7 +403,7 @@ mod ingot_data {
         'static,
         { super::ARENA_BYTES },
         { super::PATCH_LEN },
-    > = match ingot_rt::checked::Conv2d::new(
+    > = match ingot_rt::checked::Conv2d::new_bytes(
         ingot_rt::MapRef::strided(0, 12, 12, 3, 3),
         ingot_rt::MapRef::strided(432, 12, 12, 8, 8),
         &W_CONV1,
@@ -420,7 +428,7 @@ mod ingot_data {
         'static,
         { super::ARENA_BYTES },
         { super::PATCH_LEN },
-    > = match ingot_rt::checked::Conv2d::new(
+    > = match ingot_rt::checked::Conv2d::new_bytes(
         ingot_rt::MapRef::strided(1584, 6, 6, 8, 8),
         ingot_rt::MapRef::strided(1872, 3, 3, 16, 16),
         &W_CONV2,
@@ -436,7 +444,7 @@ mod ingot_data {
         'static,
         { super::ARENA_BYTES },
         { super::PATCH_LEN },
-    > = match ingot_rt::checked::Conv2d::new(
+    > = match ingot_rt::checked::Conv2d::new_bytes(
         ingot_rt::MapRef::strided(1872, 3, 3, 16, 16),
         ingot_rt::MapRef::strided(2016, 3, 3, 12, 12),
         &W_CONV3,
@@ -456,7 +464,7 @@ mod ingot_data {
         Ok(k) => k,
         Err(e) => e.refuse(),
     };
-    pub(super) static K_FC: ingot_rt::checked::Linear<'static, { super::ARENA_BYTES }> = match ingot_rt::checked::Linear::new(
+    pub(super) static K_FC: ingot_rt::checked::Linear<'static, { super::ARENA_BYTES }> = match ingot_rt::checked::Linear::new_bytes(
         ingot_rt::MapRef::strided(2124, 1, 1, 12, 12),
         ingot_rt::MapRef::strided(2136, 1, 1, 5, 5),
         &W_FC,

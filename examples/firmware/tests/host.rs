@@ -113,12 +113,12 @@ fn demo_model_matches_simulator_on_eval_images() {
     }
     // The same compilation as build.rs, to get the lowered graph.
     let c = pipeline::compile(&demo_request()).unwrap();
-    // The Cortex-M4F profile gives the paired weight form (the host runs
+    // The Cortex-M4F profile gives the word weight form (the host runs
     // the same module as the firmware).
     assert!(c
         .generated
         .module
-        .contains("ingot_rt::checked::Conv2dPaired::new("));
+        .contains("ingot_rt::checked::Conv2dWords::new("));
     assert!(
         c.generated.module.contains(model::MODEL_HASH),
         "the compiled-in module is not this compilation"

@@ -67,6 +67,51 @@ fn checked_conv_gives_the_bytes_of_conv2d() {
     let mut got = arena0;
     k.run(&mut got, &mut [0i16; PATCH]);
     assert_eq!(got, want);
+    // The weights as the bytes of a weights file, read as they are.
+    let wb: Vec<u8> = w.iter().map(|&v| v as u8).collect();
+    let k =
+        checked::Conv2d::<ARENA, PATCH>::new_bytes(input, output, &wb, &b, &rq, params(1), None)
+            .unwrap();
+    let mut got = arena0;
+    k.run(&mut got, &mut [0i16; PATCH]);
+    assert_eq!(got, want);
+    // A linear layer over the same input, both ways (5×4×4×3 weights).
+    let (li, lo) = (MapRef::new(0, 4, 4, 3), MapRef::new(48, 1, 1, 5));
+    let lw: Vec<i8> = (0..5 * 48).map(|i| (i * 37 % 255) as i8).collect();
+    let lwb: Vec<u8> = lw.iter().map(|&v| v as u8).collect();
+    let out = OutputQuant::clamped(3, -128, 127);
+    let mut lin_want = arena0;
+    linear(&mut lin_want, li, lo, &lw, &b, &rq, out).unwrap();
+    let k = checked::Linear::<ARENA>::new_bytes(li, lo, &lwb, &b, &rq, out).unwrap();
+    let mut got = arena0;
+    k.run(&mut got);
+    assert_eq!(got, lin_want);
+    assert_eq!(
+        checked::Linear::<ARENA>::new_bytes(li, lo, &lwb[1..], &b, &rq, out).err(),
+        Some(Error::BufferTooSmall)
+    );
+    // And the word form.
+    let mut ww = vec![0u8; words_len(5, 27)];
+    word_rows_into(&w, 5, 27, &mut ww).unwrap();
+    let k = checked::Conv2dWords::<ARENA, PATCH>::new(input, output, &ww, &b, &rq, params(1), None)
+        .unwrap();
+    let mut got = arena0;
+    k.run(&mut got, &mut [0i16; PATCH]);
+    assert_eq!(got, want);
+    // One byte short is refused.
+    assert_eq!(
+        checked::Conv2dWords::<ARENA, PATCH>::new(
+            input,
+            output,
+            &ww[..ww.len() - 1],
+            &b,
+            &rq,
+            params(1),
+            None
+        )
+        .err(),
+        Some(Error::BufferTooSmall)
+    );
 }
 
 #[test]

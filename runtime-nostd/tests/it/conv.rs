@@ -269,6 +269,26 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
             .unwrap();
             assert_eq!(a, arena, "conv2d_paired ({what}) differs from conv2d");
         }
+        // The word form (int8 weights, widened in registers) too.
+        let mut words = vec![0u8; words_len(c.cout, k)];
+        word_rows_into(&weights, c.cout, k, &mut words).expect("word_rows_into: lengths agree");
+        for (what, len) in [("patch", patch.len()), ("rows", rows_len)] {
+            let mut scratch = vec![0i16; len];
+            let mut a = before.clone();
+            conv2d_words(
+                &mut a,
+                input,
+                output,
+                &words,
+                &bias,
+                &c.rq,
+                &params,
+                tr.as_ref(),
+                &mut scratch,
+            )
+            .unwrap();
+            assert_eq!(a, arena, "conv2d_words ({what}) differs from conv2d");
+        }
     }
     Some((got, want))
 }

@@ -51,13 +51,21 @@ fn tensor_static(ctx: &Ctx<'_>, lits: &mut Literals, name: &Ident, e: &Entry) ->
     let n = us(e.len);
     let at = us(e.offset);
     let off = format_ident!("OFF_{}", name);
+    // Int8 weights from the weights file stay its bytes (`new_bytes` calls
+    // read them as they are): a sub-array, no loop for rustc to evaluate
+    // per weight.
+    let file_bytes = e.elem == Elem::I8
+        && e.role == Some(Role::Weights)
+        && ctx.opt.weights == WeightsMode::IncludeBytes;
     let ty = match e.elem {
+        Elem::I8 if file_bytes => quote!([u8; #n]),
         Elem::I8 => quote!([i8; #n]),
         Elem::I32 => quote!([i32; #n]),
         Elem::Requant => quote!([ingot_rt::Requant; #n]),
     };
     let init = match ctx.opt.weights {
         WeightsMode::IncludeBytes => match e.elem {
+            Elem::I8 if file_bytes => quote!(*bytes::<#n>(#off)),
             Elem::I8 => quote!(i8s::<#n>(#off)),
             Elem::I32 => quote!(i32s::<#n>(#off)),
             Elem::Requant => quote!(rqs::<#n>(#off)),
@@ -111,20 +119,59 @@ fn paired_static(
     }
 }
 
+/// A convolution's weights in the word layout, as the weights file holds
+/// them: its bytes, 4-byte aligned (the kernel reads them a word at a
+/// time), with no conversion at compile time.
+fn words_static(ctx: &Ctx<'_>, lits: &mut Literals, name: &Ident, e: &Entry) -> TokenStream {
+    let (n, at) = (us(e.len), us(e.offset));
+    let off = format_ident!("OFF_{}", name);
+    let (off_item, init) = match ctx.opt.weights {
+        WeightsMode::IncludeBytes => (
+            quote!(const #off: usize = #at;),
+            quote!(Words(*bytes::<#n>(#off))),
+        ),
+        WeightsMode::Literal => {
+            let b = &ctx.blob.bytes[e.offset..e.offset + e.len];
+            let mut t = String::with_capacity(b.len() * 4 + 16);
+            t.push_str("Words([");
+            for (i, x) in b.iter().enumerate() {
+                if i % 24 == 0 {
+                    t.push_str("\n    ");
+                }
+                let _ = write!(t, "{x}, ");
+            }
+            t.push_str("\n])");
+            (quote!(), lits.marker(t))
+        }
+    };
+    let what = format!(
+        "{} bytes at byte {} of the weights file: int8 weights in the word layout \
+         of `ingot_rt::word_rows_into`, for `ingot_rt::conv2d_words`.",
+        e.len, e.offset
+    );
+    quote! {
+        #off_item
+        #[doc = #what]
+        pub(super) static #name: Words<#n> = #init;
+    }
+}
+
 /// The private data module: weights, parameters.
 pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
     let q = ctx.q;
     let mut items = TokenStream::new();
-    let paired: Vec<usize> = ctx
-        .calls
-        .iter()
-        .filter(|sc| {
-            sc.calls
-                .iter()
-                .any(|c| matches!(c, Call::Conv { paired: true, .. }))
-        })
-        .map(|sc| sc.step.index())
-        .collect();
+    let with_form = |f: WeightForm| -> Vec<usize> {
+        ctx.calls
+            .iter()
+            .filter(|sc| {
+                sc.calls
+                    .iter()
+                    .any(|c| matches!(c, Call::Conv { form, .. } if *form == f))
+            })
+            .map(|sc| sc.step.index())
+            .collect()
+    };
+    let (paired, words) = (with_form(WeightForm::Pairs), with_form(WeightForm::Words));
     for (i, st) in q.steps.iter().enumerate() {
         let stem = &ctx.stems[i];
         if let (true, Some(e), QKernel::Conv2d(c)) = (
@@ -149,6 +196,12 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
             Role::TransformTable,
         ] {
             if role == Role::Weights && paired.contains(&i) {
+                continue;
+            }
+            if let (Role::Weights, true, Some(e)) =
+                (role, words.contains(&i), ctx.blob.find(i, role))
+            {
+                items.extend(words_static(ctx, lits, &id(role.prefix(), stem), e));
                 continue;
             }
             if let Some(e) = ctx.blob.find(i, role) {
@@ -260,6 +313,16 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
                 /// The weights file, read by the `const fn`s below at compile time only.
                 const BLOB: &[u8; #n] = include_bytes!(#file);
 
+                /// `N` bytes of the weights file from byte `at`, as they are
+                /// (a sub-array of the included bytes: no loop to evaluate).
+                const fn bytes<const N: usize>(at: usize) -> &'static [u8; N] {
+                    match BLOB.split_at(at).1.first_chunk::<N>() {
+                        Some(b) => b,
+                        None => panic!("a tensor reaches past the weights file"),
+                    }
+                }
+
+
                 const fn i32_at(at: usize) -> i32 {
                     i32::from_le_bytes([BLOB[at], BLOB[at + 1], BLOB[at + 2], BLOB[at + 3]])
                 }
@@ -307,12 +370,22 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
             }
         },
     };
+    let words_ty = if words.is_empty() {
+        quote!()
+    } else {
+        quote! {
+            /// Bytes of word-form weights, aligned for 32-bit loads.
+            #[repr(align(4))]
+            pub(super) struct Words<const N: usize>(pub(super) [u8; N]);
+        }
+    };
     quote! {
         /// Weights and kernel parameters (private). Every tensor is a `static`
         /// built at compile time; nothing is decoded at run time.
         #[allow(dead_code, clippy::unreadable_literal)]
         mod ingot_data {
             #decoders
+            #words_ty
             #items
         }
     }

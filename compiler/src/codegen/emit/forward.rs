@@ -29,7 +29,7 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
                     input,
                     output,
                     conv,
-                    paired,
+                    form,
                     ..
                 } => {
                     let (i, o) = (map_ref(*input), map_ref(*output));
@@ -41,14 +41,20 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
                     } else {
                         quote!(None)
                     };
-                    let kind = if *paired {
-                        quote!(Conv2dPaired)
-                    } else {
-                        quote!(Conv2d)
+                    let (kind, w) = match form {
+                        WeightForm::Pairs => (quote!(Conv2dPaired), quote!(&#w)),
+                        // The aligned wrapper's bytes.
+                        WeightForm::Words => (quote!(Conv2dWords), quote!(&#w.0)),
+                        WeightForm::Int8 => (quote!(Conv2d), quote!(&#w)),
+                    };
+                    // Int8 weights from the weights file are its bytes.
+                    let new = match (form, ctx.opt.weights) {
+                        (WeightForm::Int8, WeightsMode::IncludeBytes) => quote!(new_bytes),
+                        _ => quote!(new),
                     };
                     (
                         quote!(ingot_rt::checked::#kind<'static, #a, #p>),
-                        quote!(ingot_rt::checked::#kind::new(#i, #o, &#w, &#b, &#r, #pp, #t)),
+                        quote!(ingot_rt::checked::#kind::#new(#i, #o, #w, &#b, &#r, #pp, #t)),
                     )
                 }
                 Call::Linear {
@@ -57,9 +63,13 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
                     let (i, o) = (map_ref(*input), map_ref(*output));
                     let (w, b, r) = (id("W", stem), id("B", stem), id("RQ", stem));
                     let oq = out_quant(out);
+                    let new = match ctx.opt.weights {
+                        WeightsMode::IncludeBytes => quote!(new_bytes),
+                        WeightsMode::Literal => quote!(new),
+                    };
                     (
                         quote!(ingot_rt::checked::Linear<'static, #a>),
-                        quote!(ingot_rt::checked::Linear::new(#i, #o, &#w, &#b, &#r, #oq)),
+                        quote!(ingot_rt::checked::Linear::#new(#i, #o, &#w, &#b, &#r, #oq)),
                     )
                 }
                 Call::MaxPool { input, output, .. } | Call::AvgPool { input, output, .. } => {

@@ -6,6 +6,7 @@ use super::calls::{Call, StepCalls};
 use super::names::for_doc;
 use super::{GenOptions, WeightsMode};
 use crate::lower::{ChannelTransform, QGraph, QKernel};
+use crate::plan::WeightForm;
 use ingot_rt::{MapRef, OutputQuant, Requant, Window};
 use proc_macro2::{Ident, Literal, Span, TokenStream};
 use quote::{format_ident, quote};
