@@ -289,24 +289,55 @@ pub fn ranges_for(
     checked: Option<&ImageSet>,
     camera: Option<&crate::camera::Camera>,
 ) -> Result<SourcedRanges, PipelineError> {
+    ranges_for_with(graph, src, checked, camera, false)
+}
+
+/// [`ranges_for`], with empirical bias correction when `bias_correction`
+/// is set ([`CalibOptions::bias_correction`]; `ingot check
+/// --bias-correction`). Only a calibration can correct biases: with
+/// [`RangesSource::File`] (whose file carries its own `bias_shifts`, if
+/// `calibrate --bias-correction` wrote them) or [`RangesSource::Synthetic`]
+/// the flag is an error.
+pub fn ranges_for_with(
+    graph: &Graph,
+    src: &RangesSource,
+    checked: Option<&ImageSet>,
+    camera: Option<&crate::camera::Camera>,
+    bias_correction: bool,
+) -> Result<SourcedRanges, PipelineError> {
     let calibrate_on = |images: &ImageSet, method| -> Result<SourcedRanges, PipelineError> {
         let opts = CalibOptions {
             method,
+            bias_correction,
             ..CalibOptions::default()
         };
         let cal = crate::agree::run(graph, images, &opts)?;
-        let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
+        // The shifts change the module: they are part of the hash.
+        let mut bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
+        if !cal.ranges.bias_shifts.is_empty() {
+            bytes.extend(serde_json::to_vec(&cal.ranges.bias_shifts).unwrap_or_default());
+        }
         Ok(SourcedRanges {
             hash: format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
             note: format!(
-                "calibrated ({}) on {} images of {}",
+                "calibrated ({}{}) on {} images of {}",
                 cal.ranges.method,
+                if bias_correction {
+                    ", bias-corrected"
+                } else {
+                    ""
+                },
                 images.len(),
                 images.root().display()
             ),
             ranges: cal.ranges,
         })
     };
+    if bias_correction && matches!(src, RangesSource::File(_) | RangesSource::Synthetic) {
+        return Err(PipelineError::Unavailable(
+            "bias correction needs a calibration (calibration images), not a ranges file or synthetic ranges".into(),
+        ));
+    }
     match src {
         RangesSource::File(p) => {
             let hash = graph_hash(graph)?;
@@ -378,6 +409,30 @@ pub fn sensitivity(
         opts.skip_bad,
         opts.progress,
     )
+}
+
+/// The per-layer sensitivity of `graph` lowered with `ranges` and
+/// `lower`, measured on every image of `images`
+/// (`ingot check --sensitivity`: the checked images, reported as
+/// `checked`).
+pub fn sensitivity_on(
+    graph: &Graph,
+    images: &ImageSet,
+    ranges: &Ranges,
+    lower: &LowerOptions,
+) -> Result<crate::agree::sensitivity::Sensitivity, crate::agree::EvalError> {
+    let cal = crate::calibrate::Calibration {
+        ranges: ranges.clone(),
+        stats: Vec::new(),
+        calibration: (0..images.len()).collect(),
+        evaluation: Vec::new(),
+        skipped: Vec::new(),
+        auto: None,
+        candidates: Vec::new(),
+    };
+    let mut s = crate::agree::sensitivity::measure(graph, images, &cal, lower, false, false)?;
+    s.on = "checked";
+    Ok(s)
 }
 
 /// Lowers `graph` with `ranges` and plans its memory for `weight_form`.
