@@ -206,8 +206,12 @@ pub fn prepare(
         Some(&set),
         camera.as_ref(),
         opts.bias_correction,
+        false,
     )
     .map_err(PrepareError::from_driver)?;
+    // The graph the ranges were observed on (equalized when a ranges file
+    // says so); the same function as the loaded one.
+    let g = driver::graph_for(&g, &sourced).into_owned();
     let weight_form = driver::weight_form_for(opts.weight_form, target.as_ref());
     let lower_opts = LowerOptions {
         per_channel: opts.per_channel,
