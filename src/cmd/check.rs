@@ -38,6 +38,10 @@ pub struct Args {
     /// calibrate --bias-correction` (a ranges file carries its own).
     #[arg(long, conflicts_with = "ranges")]
     pub bias_correction: bool,
+    /// When calibrating: equalize depthwise pairs first, as `ingot
+    /// calibrate --equalize` (a ranges file says itself whether it was).
+    #[arg(long, conflicts_with = "ranges")]
+    pub equalize: bool,
     /// Also measure which layers cost the accuracy on the checked images
     /// (as `ingot calibrate --sensitivity`): a section of `report.md` and
     /// the JSON report, and printed.
@@ -148,8 +152,8 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
     if a.camera.camera()?.is_some() {
         bail!("camera options apply to a GRAPH.json check (the images go through the camera); with --module pass --inputs");
     }
-    if a.bias_correction || a.sensitivity {
-        bail!("--bias-correction and --sensitivity apply to a GRAPH.json check (they need the float graph)");
+    if a.bias_correction || a.equalize || a.sensitivity {
+        bail!("--bias-correction, --equalize and --sensitivity apply to a GRAPH.json check (they need the float graph)");
     }
     let module = ModuleFiles::find(module_dir, None)?;
     let src = std::fs::read_to_string(&module.source)
@@ -279,6 +283,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     opts.weight_form = driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core);
     opts.camera = a.camera.camera()?;
     opts.bias_correction = a.bias_correction;
+    opts.equalize = a.equalize;
     opts.sensitivity = a.sensitivity;
     let mut p = prepare::prepare(graph, images, &opts)?;
     p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)

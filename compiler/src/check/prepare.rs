@@ -131,6 +131,9 @@ pub struct PrepareOptions {
     /// Correct biases empirically when calibrating (`check
     /// --bias-correction`; an error with a ranges file).
     pub bias_correction: bool,
+    /// Equalize depthwise pairs before calibrating (`check --equalize`; an
+    /// error with a ranges file, which says itself whether it was).
+    pub equalize: bool,
     /// Measure the per-layer sensitivity on the checked images (`check
     /// --sensitivity`).
     pub sensitivity: bool,
@@ -146,6 +149,7 @@ impl Default for PrepareOptions {
             weight_form: None,
             camera: None,
             bias_correction: false,
+            equalize: false,
             sensitivity: false,
         }
     }
@@ -206,7 +210,7 @@ pub fn prepare(
         Some(&set),
         camera.as_ref(),
         opts.bias_correction,
-        false,
+        opts.equalize,
     )
     .map_err(PrepareError::from_driver)?;
     // The graph the ranges were observed on (equalized when a ranges file

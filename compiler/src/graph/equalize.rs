@@ -195,9 +195,9 @@ pub fn equalize(g: &mut Graph) -> Equalization {
         match bn {
             Some(l) => {
                 if let Op::BatchNorm(n) = &mut g.layers[l.index()].op {
-                    for c in 0..channels {
-                        n.gamma.data[c] /= s[c];
-                        n.beta.data[c] /= s[c];
+                    for (c, sc) in s.iter().enumerate() {
+                        n.gamma.data[c] /= sc;
+                        n.beta.data[c] /= sc;
                     }
                 }
             }
