@@ -122,3 +122,52 @@ fn relu6_pairs_are_skipped_and_left_alone() {
         assert_eq!(a.op, b.op, "{}", a.name);
     }
 }
+
+/// Without a batch norm between, the depthwise weights and bias carry the
+/// scale: the network of the first test with its depthwise batch norms
+/// removed and block 1's depthwise given a bias (the batch norm's `beta`).
+#[test]
+fn without_batch_norm_the_depthwise_weights_and_bias_are_scaled() {
+    let dir = tempfile::tempdir().unwrap();
+    let (_, net) = relu_net(&DepthwiseConfig::default(), dir.path());
+    let path = dir.path().join("dws.graph.json");
+    let mut v: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&path).unwrap()).unwrap();
+    let layers = v["layers"].as_array_mut().unwrap();
+    layers.retain(|l| !l["name"].as_str().unwrap().ends_with(".dw_bn"));
+    for l in layers.iter_mut() {
+        let name = l["name"].as_str().unwrap().to_string();
+        if name.ends_with(".dw_relu") {
+            l["input"] = serde_json::json!(name.replace(".dw_relu", ".dw"));
+        }
+        if name == "block1.dw" {
+            l["bias"] = serde_json::json!("block1.dw_bn.bias");
+        }
+    }
+    std::fs::write(&path, serde_json::to_string(&v).unwrap()).unwrap();
+    let g = ingot_compiler::load(&path).unwrap();
+    let mut e = g.clone();
+    let report = equalize(&mut e);
+    assert_eq!(report.equalized(), 3, "{report}");
+    assert_eq!(report.pairs[0].between, "relu");
+    let (dw, dw_e) = (conv(&g, "block1.dw"), conv(&e, "block1.dw"));
+    assert_ne!(dw.weight.data, dw_e.weight.data);
+    // Every channel's weights and bias divided by the same s.
+    let (b, b_e) = (dw.bias.unwrap().data, dw_e.bias.unwrap().data);
+    for c in 0..dw.out_channels {
+        let s = b[c] / b_e[c];
+        for k in 0..9 {
+            let (w, we) = (dw.weight.data[c * 9 + k], dw_e.weight.data[c * 9 + k]);
+            assert!((w / s - we).abs() <= 1e-5 * w.abs().max(1e-12), "{c} {k}");
+        }
+    }
+    let (a, b) = (Reference::new(&g), Reference::new(&e));
+    for seed in 0..2 {
+        let x = net.random_input(seed);
+        let (ya, yb) = (a.run(&x).unwrap(), b.run(&x).unwrap());
+        let scale = ya.iter().fold(0f32, |m, v| m.max(v.abs())).max(1e-6);
+        for (u, v) in ya.iter().zip(&yb) {
+            assert!((u - v).abs() <= 1e-4 * scale, "{u} vs {v}");
+        }
+    }
+}
