@@ -92,6 +92,12 @@ pub struct RangesFile {
     /// absent when there are none.
     #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
     pub bias_shifts: BTreeMap<String, Vec<f32>>,
+    /// True when the ranges were observed on the graph after cross-layer
+    /// equalization (`calibrate --equalize`, see
+    /// [`crate::graph::equalize`]): whoever lowers with them equalizes the
+    /// graph the same way first. Absent when false.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub equalized: bool,
 }
 
 /// Why a ranges file could not be used.
@@ -167,7 +173,38 @@ impl Ranges {
                 .map(|i| (g.map_name(MapId(i as u32)).to_string(), self.maps[i]))
                 .collect(),
             bias_shifts: self.bias_shifts.clone(),
+            equalized: false,
         }
+    }
+
+    /// The file's text for ranges observed on the equalized graph
+    /// ([`RangesFile::equalized`]; format [`RANGES_V2`]), or as
+    /// [`Ranges::to_json`] when `equalized` is false.
+    pub fn to_json_with(&self, g: &Graph, equalized: bool) -> String {
+        let mut f = self.to_file(g);
+        if equalized {
+            f.equalized = true;
+            f.format = RANGES_V2.into();
+        }
+        serde_json::to_string_pretty(&f).expect("ranges serialise") + "\n"
+    }
+
+    /// Whether the ranges file at `path` was observed on the equalized
+    /// graph ([`RangesFile::equalized`]); read after [`Ranges::load`]
+    /// accepted the file.
+    pub fn file_equalized(path: &Path) -> Result<bool, RangesError> {
+        let p = path.display().to_string();
+        let text = crate::guard::read_text_bounded(path, crate::guard::MAX_JSON_BYTES).map_err(
+            |source| RangesError::Io {
+                path: p.clone(),
+                source,
+            },
+        )?;
+        let f: RangesFile = serde_json::from_str(&text).map_err(|e| RangesError::Format {
+            path: p,
+            message: e.to_string(),
+        })?;
+        Ok(f.equalized)
     }
 
     /// Writes the file atomically.
@@ -211,6 +248,12 @@ impl Ranges {
                     "`format` is \"{}\", expected \"{RANGES_V1}\" or \"{RANGES_V2}\"",
                     f.format
                 ),
+            });
+        }
+        if f.format == RANGES_V1 && f.equalized {
+            return Err(RangesError::Format {
+                path: p,
+                message: format!("`equalized` needs `format` \"{RANGES_V2}\""),
             });
         }
         if f.format == RANGES_V1 && !f.bias_shifts.is_empty() {

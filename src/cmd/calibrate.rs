@@ -55,6 +55,13 @@ pub struct Args {
     /// but that layer in int8, ranked (printed, and in `--json`).
     #[arg(long)]
     pub sensitivity: bool,
+    /// Equalize depthwise -> convolution pairs first (cross-layer
+    /// equalization, Nagel et al. 2019; pairs with a ReLU6 between are
+    /// skipped): the ranges are observed on the equalized graph, the
+    /// ranges file says so and `build`/`check` equalize the same way; the
+    /// report sets the figures without and with it side by side.
+    #[arg(long)]
+    pub equalize: bool,
     /// Write the sensitivity ranking as an SVG bar chart (implies
     /// `--sensitivity`).
     #[arg(long, value_name = "FILE")]
@@ -90,6 +97,13 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         bias_correction: args.bias_correction,
         ..CalibOptions::default()
     };
+    let loaded = graph;
+    let (graph, found) = if args.equalize {
+        let (g, e) = ingot_compiler::driver::equalized(&loaded);
+        (g, Some(e))
+    } else {
+        (loaded.clone(), None)
+    };
     let cal = agree::run(&graph, &images, &opts)?;
     let out = match &args.output {
         Some(p) => p.clone(),
@@ -106,7 +120,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     };
     output::write_file(
         &out,
-        cal.ranges.to_json(&graph).as_bytes(),
+        cal.ranges.to_json_with(&graph, args.equalize).as_bytes(),
         &[
             ("graph file", &args.graph),
             ("weights file", graph.weights_path()),
@@ -117,6 +131,12 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     .context("cannot write the ranges file")?;
     let mut report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
     report.set_good_classes(&good, graph.labels());
+    let equalization = match &found {
+        Some(e) => Some(ingot_compiler::driver::equalize_effect(
+            &loaded, &images, &opts, e, &report,
+        )?),
+        None => None,
+    };
     let sensitivity = if args.sensitivity || args.sensitivity_svg.is_some() {
         Some(ingot_compiler::driver::sensitivity(
             &graph, &images, &cal, &opts,
@@ -150,6 +170,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         if let Some(s) = &sensitivity {
             v["sensitivity"] = serde_json::to_value(s)?;
         }
+        if let Some(e) = &equalization {
+            v["equalization"] = serde_json::to_value(e)?;
+        }
         println!("{}", serde_json::to_string_pretty(&v)?);
     } else {
         print!("{report}");
@@ -168,6 +191,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         }
         if let Some(s) = &sensitivity {
             print!("{s}");
+        }
+        if let Some(e) = &equalization {
+            print!("{e}");
         }
         println!("ranges written to {}", out.display());
         if let Some(p) = &args.sensitivity_svg {

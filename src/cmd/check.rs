@@ -33,6 +33,20 @@ pub struct Args {
     /// (as `ingot calibrate --method`).
     #[arg(long, default_value = "minmax", value_parser = super::parse_method, conflicts_with = "ranges")]
     pub method: ingot_compiler::calibrate::Method,
+    /// When calibrating (`--calib-images`, or on the checked images):
+    /// correct the biases for the mean shift int8 causes, as `ingot
+    /// calibrate --bias-correction` (a ranges file carries its own).
+    #[arg(long, conflicts_with = "ranges")]
+    pub bias_correction: bool,
+    /// When calibrating: equalize depthwise pairs first, as `ingot
+    /// calibrate --equalize` (a ranges file says itself whether it was).
+    #[arg(long, conflicts_with = "ranges")]
+    pub equalize: bool,
+    /// Also measure which layers cost the accuracy on the checked images
+    /// (as `ingot calibrate --sensitivity`): a section of `report.md` and
+    /// the JSON report, and printed.
+    #[arg(long)]
+    pub sensitivity: bool,
     /// Target profile (`targets/NAME.toml`): flash and RAM budget.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -139,6 +153,9 @@ pub fn run(a: &Args) -> anyhow::Result<()> {
     }
     if a.camera.camera()?.is_some() {
         bail!("camera options apply to a GRAPH.json check (the images go through the camera); with --module pass --inputs");
+    }
+    if a.bias_correction || a.equalize || a.sensitivity {
+        bail!("--bias-correction, --equalize and --sensitivity apply to a GRAPH.json check (they need the float graph)");
     }
     let module = ModuleFiles::find(module_dir, None)?;
     let src = std::fs::read_to_string(&module.source)
@@ -267,6 +284,9 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     opts.target = a.target.clone();
     opts.weight_form = driver::weight_form_for_run(a.weight_form, a.target.is_some(), run_core);
     opts.camera = a.camera.camera()?;
+    opts.bias_correction = a.bias_correction;
+    opts.equalize = a.equalize;
+    opts.sensitivity = a.sensitivity;
     let mut p = prepare::prepare(graph, images, &opts)?;
     p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)
         .map_err(|e| anyhow::anyhow!("--good: {}: {e}", graph.display()))?;
@@ -298,6 +318,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     };
     let mut r = pipeline::run_check(&module, &p.data, &plan)?;
     r.camera = p.camera.clone();
+    r.sensitivity = p.sensitivity.take();
     apply_gates(a, &mut r);
     if let Some(b) = &p.budget {
         r.failures
@@ -324,6 +345,9 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
             .with_context(|| format!("writing {}", dir.join("summary.txt").display()))?;
     }
     print!("{text}");
+    if let Some(sens) = &r.sensitivity {
+        print!("{sens}");
+    }
     if !r.failures.is_empty() {
         bail!("check failed: {}", r.failures.join("; "));
     }

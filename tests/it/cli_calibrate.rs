@@ -295,3 +295,70 @@ fn calibrate_bias_correction_and_sensitivity() {
         String::from_utf8_lossy(&built.stderr)
     );
 }
+
+/// `calibrate --equalize` on the zoo's depthwise-separable network with
+/// ReLU (the paper's preparation of ReLU6 networks): the report lists the
+/// three pairs with equal channel-range ratios after and the figures
+/// without and with; the ranges file says `equalized` (format v2); and a
+/// build from it lowers the equalized weights, the ones the calibration
+/// observed.
+#[test]
+fn calibrate_equalize_is_reproduced_by_build() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = zoo::DepthwiseConfig {
+        input: [1, 28, 28],
+        classes: 2,
+        ..zoo::DepthwiseConfig::default()
+    };
+    let graph = zoo::depthwise_separable(&cfg, 3)
+        .write(dir.path(), "dws")
+        .unwrap();
+    let text = std::fs::read_to_string(&graph).unwrap();
+    std::fs::write(&graph, text.replace("\"relu6\"", "\"relu\"")).unwrap();
+    for c in 0..2 {
+        let d = dir.path().join(format!("images/class{c}"));
+        std::fs::create_dir_all(&d).unwrap();
+        for i in 0..6 {
+            write_pgm(&d.join(format!("{i}.pgm")), 28, 28, (c * 100 + i) as u64);
+        }
+    }
+    let out_file = dir.path().join("r.json");
+    let out = ingot!()
+        .args(["calibrate"])
+        .arg(&graph)
+        .arg("--images")
+        .arg(dir.path().join("images"))
+        .args(["--equalize", "--json", "-o"])
+        .arg(&out_file)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let pairs = v["equalization"]["pairs"].as_array().unwrap();
+    assert_eq!(pairs.len(), 3, "{v}");
+    for p in pairs {
+        assert!(p["skipped"].is_null(), "{p}");
+        let a = p["ratio_after"].as_array().unwrap();
+        let (x, y) = (a[0].as_f64().unwrap(), a[1].as_f64().unwrap());
+        assert!((x - y).abs() <= 1e-3 * x, "{p}");
+    }
+    assert!(v["equalization"]["before"]["top1_agreement"].is_number());
+    assert!(v["equalization"]["after"]["logit_sqnr_db"].is_number());
+    let ranges: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
+    assert_eq!(ranges["format"], "ingot.ranges.v2");
+    assert_eq!(ranges["equalized"], true);
+
+    use ingot_compiler::driver::{compile, BuildInputs, RangesSource};
+    let built = compile(&BuildInputs::new(&graph, RangesSource::File(out_file))).unwrap();
+    let mut want = ingot_compiler::load(&graph).unwrap();
+    ingot_compiler::graph::equalize::equalize(&mut want);
+    let loaded = ingot_compiler::load(&graph).unwrap();
+    let pw = |g: &ingot_compiler::Graph| g.layer(g.find_layer("block1.pw").unwrap()).op.clone();
+    assert_eq!(pw(&built.graph), pw(&want));
+    assert_ne!(pw(&built.graph), pw(&loaded));
+}

@@ -303,3 +303,66 @@ fn check_digits_reports_intervals_escapes_and_gates_on_the_interval() {
     assert!(!bad.status.success());
     assert!(stderr.contains("good class `ten`"), "{stderr}");
 }
+
+/// `check --bias-correction --sensitivity` while calibrating on
+/// `--calib-images`: the ranges note says the biases were corrected, the
+/// corrected module differs from the plain one (its `MODEL_HASH` covers the
+/// shifts), and the sensitivity ranking, measured on the checked images, is
+/// a section of `report.md` and of `report.json`. With `--ranges` the flag
+/// is refused (the file carries its own shifts).
+#[test]
+fn check_digits_with_bias_correction_and_sensitivity() {
+    let tmp = tempfile::tempdir().unwrap();
+    let plain = check_digits(&[], &tmp.path().join("plain"));
+    assert!(plain.status.success());
+    let report = tmp.path().join("report");
+    let out = check_digits(&["--bias-correction", "--sensitivity"], &report);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(
+        out.status.success(),
+        "{stdout}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(stdout.contains("bias-corrected"), "{stdout}");
+    assert!(stdout.contains("bit-identical:  yes"), "{stdout}");
+    assert!(
+        stdout.contains("sensitivity on 360 checked images"),
+        "{stdout}"
+    );
+    let read = |d: &Path| -> serde_json::Value {
+        serde_json::from_str(&std::fs::read_to_string(d.join("report.json")).unwrap()).unwrap()
+    };
+    let (json, plain_json) = (read(&report), read(&tmp.path().join("plain")));
+    assert_ne!(json["model_hash"], plain_json["model_hash"]);
+    assert!(plain_json.get("sensitivity").is_none());
+    let s = &json["sensitivity"];
+    assert_eq!(s["on"], "checked");
+    assert_eq!(s["images"], 360);
+    let rows = s["rows"].as_array().unwrap();
+    assert!(rows.len() >= 3, "{s}");
+    assert!(rows.iter().any(|r| r["name"] == "input"));
+    for (k, r) in rows.iter().enumerate() {
+        assert_eq!(r["rank"], k + 1);
+    }
+    let md = std::fs::read_to_string(report.join("report.md")).unwrap();
+    assert!(md.contains("## Sensitivity"), "{md}");
+    let first = rows[0]["name"].as_str().unwrap();
+    assert!(md.contains(&format!("| 1 | {first} |")), "{md}");
+
+    let refused = ingot!()
+        .arg("check")
+        .arg(digits().join("model/digits.graph.json"))
+        .arg("--ranges")
+        .arg(tmp.path().join("none.json"))
+        .arg("--images")
+        .arg(digits().join("heldout"))
+        .arg("--bias-correction")
+        .output()
+        .unwrap();
+    assert!(!refused.status.success());
+    assert!(
+        String::from_utf8_lossy(&refused.stderr).contains("--bias-correction"),
+        "{}",
+        String::from_utf8_lossy(&refused.stderr)
+    );
+}

@@ -156,6 +156,76 @@ pub struct OutputFigures {
     pub lowest_layer_sqnr_db: Option<f64>,
 }
 
+/// What cross-layer equalization changed (`calibrate --equalize`): the
+/// pairs, and the int8 figures of a calibration of the graph as loaded
+/// (`before`) and of the equalized graph (`after`), measured alike.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct EqualizeEffect {
+    /// The pairs found, with their channel-range ratios.
+    pub pairs: Vec<crate::graph::equalize::Pair>,
+    /// Without equalization.
+    pub before: OutputFigures,
+    /// With it.
+    pub after: OutputFigures,
+    /// Per stored map: `(name, SQNR before, SQNR after)` in dB.
+    pub layers: Vec<(String, Option<f64>, Option<f64>)>,
+}
+
+impl OutputFigures {
+    /// The figures of an evaluated report of `graph` (`None` when the
+    /// report was not evaluated).
+    pub fn of(graph: &Graph, r: &Report) -> Option<OutputFigures> {
+        let o = r.output.as_ref()?;
+        Some(OutputFigures {
+            top1_agreement: o.top1_agreement,
+            int8_accuracy: o.int8_accuracy,
+            logit_sqnr_db: r.layers.get(graph.output().index()).and_then(|l| l.sqnr_db),
+            lowest_layer_sqnr_db: r
+                .layers
+                .iter()
+                .filter_map(|l| l.sqnr_db)
+                .fold(None, |m: Option<f64>, v| Some(m.map_or(v, |m| m.min(v)))),
+        })
+    }
+}
+
+impl fmt::Display for EqualizeEffect {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let eq = self.pairs.iter().filter(|p| p.skipped.is_none()).count();
+        writeln!(
+            f,
+            "cross-layer equalization: {eq} of {} depthwise pairs equalized (channel-range ratio max/min, first / second layer)",
+            self.pairs.len()
+        )?;
+        for p in &self.pairs {
+            match &p.skipped {
+                Some(why) => writeln!(f, "  {} -> {}: skipped ({why})", p.first, p.second)?,
+                None => writeln!(
+                    f,
+                    "  {} -> {} ({}): {:.1} / {:.1} -> {:.2} / {:.2}",
+                    p.first,
+                    p.second,
+                    p.between,
+                    p.ratio_before[0],
+                    p.ratio_before[1],
+                    p.ratio_after[0],
+                    p.ratio_after[1]
+                )?,
+            }
+        }
+        for (name, v) in [("before", &self.before), ("after", &self.after)] {
+            writeln!(
+                f,
+                "  {name:<6}: top-1 agreement {:.2}%, logit SQNR {} dB, lowest layer SQNR {} dB",
+                100.0 * v.top1_agreement,
+                db(v.logit_sqnr_db),
+                db(v.lowest_layer_sqnr_db)
+            )?;
+        }
+        Ok(())
+    }
+}
+
 impl Report {
     /// The report of a calibration before any int8 evaluation.
     pub fn new(graph: &Graph, images: &ImageSet, cal: &Calibration) -> Report {

@@ -73,6 +73,9 @@ pub enum PrepareError {
     /// The integer simulator failed on an image.
     #[error("integer simulator: {0}")]
     Simulator(SimError),
+    /// The sensitivity measurement failed.
+    #[error("sensitivity: {0}")]
+    Sensitivity(crate::agree::EvalError),
     /// Another step of the driver failed.
     #[error(transparent)]
     Driver(Box<PipelineError>),
@@ -125,6 +128,15 @@ pub struct PrepareOptions {
     /// The camera images go through (see [`crate::calibrate::frames`]);
     /// `None`: the target's `[camera]`, if any.
     pub camera: Option<crate::camera::Camera>,
+    /// Correct biases empirically when calibrating (`check
+    /// --bias-correction`; an error with a ranges file).
+    pub bias_correction: bool,
+    /// Equalize depthwise pairs before calibrating (`check --equalize`; an
+    /// error with a ranges file, which says itself whether it was).
+    pub equalize: bool,
+    /// Measure the per-layer sensitivity on the checked images (`check
+    /// --sensitivity`).
+    pub sensitivity: bool,
 }
 
 impl Default for PrepareOptions {
@@ -136,6 +148,9 @@ impl Default for PrepareOptions {
             module: String::new(),
             weight_form: None,
             camera: None,
+            bias_correction: false,
+            equalize: false,
+            sensitivity: false,
         }
     }
 }
@@ -164,6 +179,9 @@ pub struct Prepared {
     /// With a camera and labels: the camera path against host-resized
     /// pictures (put it in the report's `camera`).
     pub camera: Option<super::camera::CameraFigures>,
+    /// With [`PrepareOptions::sensitivity`]: the per-layer sensitivity on
+    /// the checked images (put it in the report's `sensitivity`).
+    pub sensitivity: Option<crate::agree::sensitivity::Sensitivity>,
 }
 
 /// Loads, calibrates (or reads ranges), lowers, plans, generates, and runs
@@ -186,18 +204,32 @@ pub fn prepare(
     if set.is_empty() {
         return Err(PrepareError::NoImages(images.to_path_buf()));
     }
-    let sourced = driver::ranges_for(&g, &opts.ranges, Some(&set), camera.as_ref())
-        .map_err(PrepareError::from_driver)?;
-    let weight_form = driver::weight_form_for(opts.weight_form, target.as_ref());
-    let (q, p) = driver::lower_and_plan(
+    let sourced = driver::ranges_for_with(
         &g,
-        &sourced.ranges,
-        &LowerOptions {
-            per_channel: opts.per_channel,
-        },
-        weight_form,
+        &opts.ranges,
+        Some(&set),
+        camera.as_ref(),
+        opts.bias_correction,
+        opts.equalize,
     )
     .map_err(PrepareError::from_driver)?;
+    // The graph the ranges were observed on (equalized when a ranges file
+    // says so); the same function as the loaded one.
+    let g = driver::graph_for(&g, &sourced).into_owned();
+    let weight_form = driver::weight_form_for(opts.weight_form, target.as_ref());
+    let lower_opts = LowerOptions {
+        per_channel: opts.per_channel,
+    };
+    let (q, p) = driver::lower_and_plan(&g, &sourced.ranges, &lower_opts, weight_form)
+        .map_err(PrepareError::from_driver)?;
+    let sensitivity = if opts.sensitivity {
+        Some(
+            driver::sensitivity_on(&g, &set, &sourced.ranges, &lower_opts)
+                .map_err(PrepareError::Sensitivity)?,
+        )
+    } else {
+        None
+    };
     let budget = target.as_ref().map(|t| driver::budget_of(&q, &p, t, None));
     let module = if opts.module.is_empty() {
         module_name(g.name())
@@ -257,6 +289,7 @@ pub fn prepare(
         ranges_note: sourced.note,
         image_names: set.entries().iter().map(|e| e.name.clone()).collect(),
         camera: camera_figures,
+        sensitivity,
     })
 }
 

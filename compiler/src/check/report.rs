@@ -164,10 +164,49 @@ pub struct CheckReport {
     /// against the host's `convert_frame`.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub frame_step: Option<super::camera::FrameStep>,
+    /// With `--sensitivity`: per layer, the output figures with only that
+    /// layer in int8 and with all but that layer in int8, on the checked
+    /// images.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub sensitivity: Option<crate::agree::sensitivity::Sensitivity>,
 }
 
 fn pct(x: f64) -> String {
     format!("{:.2}%", x * 100.0)
+}
+
+/// The sensitivity section of the markdown report.
+fn sensitivity_markdown(x: &crate::agree::sensitivity::Sensitivity) -> String {
+    let db = |v: Option<f64>| crate::measure::format_db(v);
+    let mut s = String::new();
+    let _ = writeln!(s, "## Sensitivity\n");
+    let _ = writeln!(
+        s,
+        "On the {} {} images, logits against the float model (the fake-quantized network; every layer in int8: agreement {}, SQNR {} dB). Most sensitive first.\n",
+        x.images,
+        x.on,
+        pct(x.all.agreement),
+        db(x.all.sqnr_db)
+    );
+    let _ = writeln!(
+        s,
+        "| rank | layer | kind | only this in int8: agreement | only: SQNR (dB) | all but this: agreement | all but: SQNR (dB) |\n|---|---|---|---|---|---|---|"
+    );
+    for r in &x.rows {
+        let _ = writeln!(
+            s,
+            "| {} | {} | {} | {} | {} | {} | {} |",
+            r.rank,
+            r.name,
+            r.kind,
+            pct(r.only.agreement),
+            db(r.only.sqnr_db),
+            pct(r.all_but.agreement),
+            db(r.all_but.sqnr_db)
+        );
+    }
+    s.push('\n');
+    s
 }
 
 /// Renders the markdown report.
@@ -273,6 +312,9 @@ pub fn markdown(r: &CheckReport) -> String {
     s.push_str(&super::accuracy::markdown(r));
     s.push_str(&super::camera::markdown(r.camera.as_ref()));
     s.push_str(&super::camera::frame_step_markdown(r.frame_step.as_ref()));
+    if let Some(sens) = &r.sensitivity {
+        s.push_str(&sensitivity_markdown(sens));
+    }
 
     if !r.layers.is_empty() {
         let _ = writeln!(s, "## Layers\n");

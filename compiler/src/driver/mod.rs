@@ -49,6 +49,23 @@ pub struct SourcedRanges {
     pub hash: String,
     /// Where they came from, in words, for reports.
     pub note: String,
+    /// The ranges were observed on the graph after cross-layer
+    /// equalization: lower [`graph_for`] of them, not the graph as loaded.
+    pub equalized: bool,
+}
+
+/// The graph to lower with `sourced`: `graph` equalized
+/// ([`crate::graph::equalize`]) when the ranges were observed on the
+/// equalized graph, else `graph` itself. Equalization depends on the
+/// weights alone, so this gives the weights the calibration saw.
+pub fn graph_for<'g>(graph: &'g Graph, sourced: &SourcedRanges) -> std::borrow::Cow<'g, Graph> {
+    if sourced.equalized {
+        let mut g = graph.clone();
+        crate::graph::equalize::equalize(&mut g);
+        std::borrow::Cow::Owned(g)
+    } else {
+        std::borrow::Cow::Borrowed(graph)
+    }
 }
 
 /// One compilation request ([`BuildInputs::new`], then set the fields that
@@ -289,24 +306,68 @@ pub fn ranges_for(
     checked: Option<&ImageSet>,
     camera: Option<&crate::camera::Camera>,
 ) -> Result<SourcedRanges, PipelineError> {
+    ranges_for_with(graph, src, checked, camera, false, false)
+}
+
+/// [`ranges_for`], with empirical bias correction when `bias_correction`
+/// is set ([`CalibOptions::bias_correction`]; `ingot check
+/// --bias-correction`). Only a calibration can correct biases: with
+/// [`RangesSource::File`] (whose file carries its own `bias_shifts`, if
+/// `calibrate --bias-correction` wrote them) or [`RangesSource::Synthetic`]
+/// the flag is an error. With `equalize`, a calibration observes the
+/// equalized graph ([`graph_for`]; a ranges file says itself whether it
+/// was, and the flag is an error with one).
+pub fn ranges_for_with(
+    graph: &Graph,
+    src: &RangesSource,
+    checked: Option<&ImageSet>,
+    camera: Option<&crate::camera::Camera>,
+    bias_correction: bool,
+    equalize: bool,
+) -> Result<SourcedRanges, PipelineError> {
+    let equalized_graph = equalize.then(|| {
+        let mut g = graph.clone();
+        crate::graph::equalize::equalize(&mut g);
+        g
+    });
+    let graph = equalized_graph.as_ref().unwrap_or(graph);
     let calibrate_on = |images: &ImageSet, method| -> Result<SourcedRanges, PipelineError> {
         let opts = CalibOptions {
             method,
+            bias_correction,
             ..CalibOptions::default()
         };
         let cal = crate::agree::run(graph, images, &opts)?;
-        let bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
+        // The shifts change the module: they are part of the hash.
+        let mut bytes = serde_json::to_vec(&cal.ranges.maps).unwrap_or_default();
+        if !cal.ranges.bias_shifts.is_empty() {
+            bytes.extend(serde_json::to_vec(&cal.ranges.bias_shifts).unwrap_or_default());
+        }
         Ok(SourcedRanges {
             hash: format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
             note: format!(
-                "calibrated ({}) on {} images of {}",
+                "calibrated ({}{}{}) on {} images of {}",
                 cal.ranges.method,
+                if equalize { ", equalized" } else { "" },
+                if bias_correction {
+                    ", bias-corrected"
+                } else {
+                    ""
+                },
                 images.len(),
                 images.root().display()
             ),
             ranges: cal.ranges,
+            equalized: equalize,
         })
     };
+    if (bias_correction || equalize)
+        && matches!(src, RangesSource::File(_) | RangesSource::Synthetic)
+    {
+        return Err(PipelineError::Unavailable(
+            "bias correction and equalization need a calibration (calibration images), not a ranges file or synthetic ranges".into(),
+        ));
+    }
     match src {
         RangesSource::File(p) => {
             let hash = graph_hash(graph)?;
@@ -319,6 +380,7 @@ pub fn ranges_for(
                 ranges: r,
                 hash: format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
                 note: format!("ranges read from {}", p.display()),
+                equalized: Ranges::file_equalized(p)?,
             })
         }
         RangesSource::Images(dir, method) => {
@@ -356,6 +418,7 @@ pub fn ranges_for(
             },
             hash: String::new(),
             note: "synthetic ranges ([-4, 4] for every map)".into(),
+            equalized: false,
         }),
     }
 }
@@ -378,6 +441,75 @@ pub fn sensitivity(
         opts.skip_bad,
         opts.progress,
     )
+}
+
+/// `calibrate --equalize`: `graph` equalized ([`crate::graph::equalize`])
+/// and what equalization found.
+pub fn equalized(graph: &Graph) -> (Graph, crate::graph::equalize::Equalization) {
+    let mut g = graph.clone();
+    let e = crate::graph::equalize::equalize(&mut g);
+    (g, e)
+}
+
+/// The report section of `calibrate --equalize`: `graph` (as loaded) is
+/// calibrated and evaluated with `opts` as the equalized one was, and its
+/// figures are set against `after`, the evaluated report of the equalized
+/// graph.
+pub fn equalize_effect(
+    graph: &Graph,
+    images: &ImageSet,
+    opts: &CalibOptions,
+    found: &crate::graph::equalize::Equalization,
+    after: &crate::calibrate::Report,
+) -> Result<crate::calibrate::report::EqualizeEffect, PipelineError> {
+    use crate::calibrate::report::{EqualizeEffect, OutputFigures};
+    let cal = crate::agree::run(graph, images, opts)?;
+    let before = crate::agree::report(graph, images, &cal, opts, Some(&LowerOptions::default()))
+        .map_err(|e| PipelineError::Unavailable(format!("evaluating the graph as loaded: {e}")))?;
+    let (Some(b), Some(a)) = (
+        OutputFigures::of(graph, &before),
+        OutputFigures::of(graph, after),
+    ) else {
+        return Err(PipelineError::Unavailable(
+            "equalization: no int8 evaluation to compare".into(),
+        ));
+    };
+    Ok(EqualizeEffect {
+        pairs: found.pairs.clone(),
+        before: b,
+        after: a,
+        layers: before
+            .layers
+            .iter()
+            .zip(&after.layers)
+            .filter(|(x, y)| x.sqnr_db.is_some() || y.sqnr_db.is_some())
+            .map(|(x, y)| (x.name.clone(), x.sqnr_db, y.sqnr_db))
+            .collect(),
+    })
+}
+
+/// The per-layer sensitivity of `graph` lowered with `ranges` and
+/// `lower`, measured on every image of `images`
+/// (`ingot check --sensitivity`: the checked images, reported as
+/// `checked`).
+pub fn sensitivity_on(
+    graph: &Graph,
+    images: &ImageSet,
+    ranges: &Ranges,
+    lower: &LowerOptions,
+) -> Result<crate::agree::sensitivity::Sensitivity, crate::agree::EvalError> {
+    let cal = crate::calibrate::Calibration {
+        ranges: ranges.clone(),
+        stats: Vec::new(),
+        calibration: (0..images.len()).collect(),
+        evaluation: Vec::new(),
+        skipped: Vec::new(),
+        auto: None,
+        candidates: Vec::new(),
+    };
+    let mut s = crate::agree::sensitivity::measure(graph, images, &cal, lower, false, false)?;
+    s.on = "checked";
+    Ok(s)
 }
 
 /// Lowers `graph` with `ranges` and plans its memory for `weight_form`.
@@ -472,6 +604,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
         e => e,
     })?;
     let weight_form = weight_form_for(req.weight_form, target.as_ref());
+    let graph = graph_for(&graph, &sourced).into_owned();
     let (q, plan) = lower_and_plan(
         &graph,
         &sourced.ranges,

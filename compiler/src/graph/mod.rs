@@ -10,6 +10,7 @@
 //! size product fits in `usize`.
 
 pub mod cost;
+pub mod equalize;
 pub mod shape;
 
 pub use shape::{Padding, Shape, Window};

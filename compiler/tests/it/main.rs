@@ -12,6 +12,7 @@ mod codegen_output;
 mod common;
 mod densenet121;
 mod dsp_emulated;
+mod equalize;
 mod frame_emulated;
 mod graph_format_doc;
 mod layering;
