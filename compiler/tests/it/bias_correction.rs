@@ -3,44 +3,14 @@
 //! by hand, the shifts reaching the lowered int32 biases, and the ranges
 //! file keeping them.
 
+use crate::common::minmax_ranges;
 use ingot_compiler::agree::bias::shifts_on;
-use ingot_compiler::calibrate::{MapRange, Ranges};
+use ingot_compiler::calibrate::Ranges;
 use ingot_compiler::graph::Op;
 use ingot_compiler::lower::quant::{dequantize, quantize};
 use ingot_compiler::lower::{lower, LowerOptions, QKernel};
-use ingot_compiler::reference::Reference;
-use ingot_compiler::Graph;
 use ingot_testkit::zoo;
 use std::path::Path;
-
-fn minmax(g: &Graph, inputs: &[Vec<f32>]) -> Ranges {
-    let r = Reference::new(g);
-    let mut maps = vec![
-        MapRange {
-            min: f32::INFINITY,
-            max: f32::NEG_INFINITY
-        };
-        g.map_count()
-    ];
-    for x in inputs {
-        r.run_with(x, |m, v| {
-            let e = &mut maps[m.index()];
-            for &a in v {
-                e.min = e.min.min(a);
-                e.max = e.max.max(a);
-            }
-        })
-        .unwrap();
-    }
-    Ranges {
-        graph: g.name().into(),
-        graph_hash: String::new(),
-        method: "minmax".into(),
-        images: inputs.len(),
-        maps,
-        bias_shifts: Default::default(),
-    }
-}
 
 /// The first convolution reads the input, which here lies on the input's
 /// int8 grid, so its shift is exactly what rounding its weights and bias
@@ -51,7 +21,7 @@ fn first_layer_shift_by_hand() {
     let net = zoo::plain_stack(&zoo::PlainStackConfig::default(), 7);
     let g = net.build();
     let raw: Vec<Vec<f32>> = (0..6).map(|s| net.random_input(500 + s)).collect();
-    let ranges = minmax(&g, &raw);
+    let ranges = minmax_ranges(&g, &raw);
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     let in_qp = q.map(q.input).qp;
     let inputs: Vec<Vec<f32>> = raw
@@ -119,7 +89,7 @@ fn shifts_reach_the_lowered_biases() {
     let net = zoo::plain_stack(&zoo::PlainStackConfig::default(), 7);
     let g = net.build();
     let inputs: Vec<Vec<f32>> = (0..4).map(|s| net.random_input(600 + s)).collect();
-    let mut ranges = minmax(&g, &inputs);
+    let mut ranges = minmax_ranges(&g, &inputs);
     let plain = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     let o = 10; // output features of fc
     let delta: Vec<f32> = (0..o).map(|i| 0.05 * i as f32 - 0.2).collect();
@@ -169,7 +139,7 @@ fn shifts_reach_the_lowered_biases() {
 fn ranges_file_keeps_and_checks_bias_shifts() {
     let net = zoo::plain_stack(&zoo::PlainStackConfig::default(), 7);
     let g = net.build();
-    let mut ranges = minmax(&g, &[net.random_input(1)]);
+    let mut ranges = minmax_ranges(&g, &[net.random_input(1)]);
     ranges.bias_shifts.insert("conv1".into(), vec![0.25; 8]);
     let text = ranges.to_json(&g);
     let back = Ranges::parse(&g, &text, Path::new("r.json"), None).unwrap();

@@ -1,41 +1,12 @@
 //! The zoo networks lowered and simulated against the float reference, and
 //! the RAM the fused pre-activation transforms save on the dense ones.
 
+use crate::common::minmax_ranges;
 use ingot_compiler::calibrate::{MapRange, Ranges};
 use ingot_compiler::lower::quant::dequantize;
 use ingot_compiler::lower::{fusion_savings, lower, LowerOptions, QKernel, SimInput, Simulator};
 use ingot_compiler::reference::Reference;
 use ingot_testkit::zoo;
-
-/// Min/max ranges of every map over the given images.
-fn calibrate(g: &ingot_compiler::Graph, images: &[Vec<f32>]) -> Ranges {
-    let r = Reference::new(g);
-    let mut maps = vec![
-        MapRange {
-            min: f32::INFINITY,
-            max: f32::NEG_INFINITY
-        };
-        g.map_count()
-    ];
-    for x in images {
-        r.run_with(x, |m, v| {
-            let e = &mut maps[m.index()];
-            for &a in v {
-                e.min = e.min.min(a);
-                e.max = e.max.max(a);
-            }
-        })
-        .unwrap();
-    }
-    Ranges {
-        graph: g.name().into(),
-        graph_hash: String::new(),
-        method: "minmax".into(),
-        images: images.len(),
-        maps,
-        bias_shifts: Default::default(),
-    }
-}
 
 fn argmax(v: &[f32]) -> usize {
     v.iter()
@@ -48,7 +19,7 @@ fn argmax(v: &[f32]) -> usize {
 fn check(net: &zoo::Net, n: usize) -> (f32, usize, usize) {
     let g = net.build();
     let images: Vec<Vec<f32>> = (0..n as u64).map(|s| net.random_input(100 + s)).collect();
-    let q = lower(&g, &calibrate(&g, &images), &LowerOptions::default()).unwrap();
+    let q = lower(&g, &minmax_ranges(&g, &images), &LowerOptions::default()).unwrap();
     let reference = Reference::new(&g);
     let mut sim = Simulator::new(&q);
     let qp = q.map(q.output).qp;
@@ -124,7 +95,7 @@ fn zoo_ranges(g: &ingot_compiler::Graph) -> Ranges {
                 .collect()
         })
         .collect();
-    calibrate(g, &net_inputs)
+    minmax_ranges(g, &net_inputs)
 }
 
 #[test]

@@ -3,44 +3,14 @@
 //! int8 against the integer simulator, one layer's figures against a
 //! computation by hand, and the ranking of a deliberately broken layer.
 
+use crate::common::minmax_ranges;
 use ingot_compiler::agree::mixed::Mixed;
 use ingot_compiler::agree::sensitivity::measure_inputs;
-use ingot_compiler::calibrate::{MapRange, Ranges};
+use ingot_compiler::calibrate::MapRange;
 use ingot_compiler::lower::quant::{dequantize, quantize};
 use ingot_compiler::lower::{lower, LowerOptions, QKernel, SimInput, Simulator};
 use ingot_compiler::reference::Reference;
-use ingot_compiler::Graph;
 use ingot_testkit::zoo;
-
-/// Min/max ranges of every map over the given inputs.
-fn minmax(g: &Graph, inputs: &[Vec<f32>]) -> Ranges {
-    let r = Reference::new(g);
-    let mut maps = vec![
-        MapRange {
-            min: f32::INFINITY,
-            max: f32::NEG_INFINITY
-        };
-        g.map_count()
-    ];
-    for x in inputs {
-        r.run_with(x, |m, v| {
-            let e = &mut maps[m.index()];
-            for &a in v {
-                e.min = e.min.min(a);
-                e.max = e.max.max(a);
-            }
-        })
-        .unwrap();
-    }
-    Ranges {
-        graph: g.name().into(),
-        graph_hash: String::new(),
-        method: "minmax".into(),
-        images: inputs.len(),
-        maps,
-        bias_shifts: Default::default(),
-    }
-}
 
 fn argmax(v: &[f32]) -> usize {
     ingot_compiler::measure::argmax_f32(v)
@@ -76,7 +46,7 @@ fn every_layer_in_int8_tracks_the_integer_simulator() {
     for net in nets() {
         let g = net.build();
         let inputs: Vec<Vec<f32>> = (0..12).map(|s| net.random_input(200 + s)).collect();
-        let ranges = minmax(&g, &inputs);
+        let ranges = minmax_ranges(&g, &inputs);
         let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
         let mixed = Mixed::new(&g, &q, &ranges);
         let mut sim = Simulator::new(&q);
@@ -123,7 +93,7 @@ fn one_layer_checked_by_hand() {
     let net = zoo::plain_stack(&zoo::PlainStackConfig::default(), 3);
     let g = net.build();
     let inputs: Vec<Vec<f32>> = (0..16).map(|s| net.random_input(300 + s)).collect();
-    let ranges = minmax(&g, &inputs);
+    let ranges = minmax_ranges(&g, &inputs);
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     let step = q.steps.iter().find(|s| s.name == "fc").unwrap();
     let QKernel::Linear(l) = &step.kernel else {
@@ -198,7 +168,7 @@ fn a_broken_layer_ranks_first() {
     let net = zoo::dense_small(4);
     let g = net.build();
     let inputs: Vec<Vec<f32>> = (0..12).map(|s| net.random_input(400 + s)).collect();
-    let mut ranges = minmax(&g, &inputs);
+    let mut ranges = minmax_ranges(&g, &inputs);
     let q0 = lower(&g, &ranges, &LowerOptions::default()).unwrap();
     // The transition convolution's output feeds an average pool, not a
     // concatenation, so its parameters are its own.

@@ -403,6 +403,37 @@ pub fn calibrate(g: &Graph, images: &[Vec<f32>]) -> Ranges {
     }
 }
 
+/// Min/max ranges of every map over `inputs`, observed through the float
+/// reference (`Reference::run_with`) as the calibration stage observes them.
+pub fn minmax_ranges(g: &Graph, inputs: &[Vec<f32>]) -> Ranges {
+    let r = ingot_compiler::reference::Reference::new(g);
+    let mut maps = vec![
+        MapRange {
+            min: f32::INFINITY,
+            max: f32::NEG_INFINITY
+        };
+        g.map_count()
+    ];
+    for x in inputs {
+        r.run_with(x, |m, v| {
+            let e = &mut maps[m.index()];
+            for &a in v {
+                e.min = e.min.min(a);
+                e.max = e.max.max(a);
+            }
+        })
+        .unwrap();
+    }
+    Ranges {
+        graph: g.name().into(),
+        graph_hash: String::new(),
+        method: "minmax".into(),
+        images: inputs.len(),
+        maps,
+        bias_shifts: Default::default(),
+    }
+}
+
 /// Every map with the same synthetic range (for tests that need only shapes).
 pub fn flat_ranges(g: &Graph, min: f32, max: f32) -> Ranges {
     Ranges {
