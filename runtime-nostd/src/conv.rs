@@ -2,8 +2,8 @@
 //! widened patch, then contiguous dot products per output channel.
 
 use crate::dot::{
-    dot2_wide, dot2x2_words, dot4_pairs, dot4_wide, dot4_words, dot_pairs_few, dot_wide,
-    dot_words_few, tail_wide, widen_into, Wt,
+    dot2_wide, dot4_pairs, dot4_wide, dot4_words, dot_pairs_few, dot_wide, dot_words_few,
+    tail_wide, widen_into, Wt,
 };
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 use core::num::NonZeroUsize;
@@ -1072,15 +1072,6 @@ trait Packed: Copy {
     fn dot4(x: &[i16], w: &[Self]) -> [i32; 4];
     /// The one to three rows of a last block, added into `acc`.
     fn few(x: &[i16], w: &[Self], acc: &mut [i32]);
-    /// Whether the ring path runs two neighbouring output pixels per
-    /// pass ([`Packed::dot4x2`]).
-    const TWO_PIXELS: bool;
-    /// Four rows of a block against two patches of whole units:
-    /// `[rows of xa, rows of xb]`.
-    #[inline(always)]
-    fn dot4x2(xa: &[i16], xb: &[i16], w: &[Self]) -> [[i32; 4]; 2] {
-        [Self::dot4(xa, w), Self::dot4(xb, w)]
-    }
 }
 
 impl Packed for u32 {
@@ -1094,7 +1085,6 @@ impl Packed for u32 {
     fn few(x: &[i16], w: &[u32], acc: &mut [i32]) {
         dot_pairs_few(x, w, acc)
     }
-    const TWO_PIXELS: bool = false;
 }
 
 impl Packed for u8 {
@@ -1107,14 +1097,6 @@ impl Packed for u8 {
     #[inline(always)]
     fn few(x: &[i16], w: &[u8], acc: &mut [i32]) {
         dot_words_few(x, w, acc)
-    }
-    // Each widened weight pair then feeds two `smlad` (see `dot2x2_words`).
-    const TWO_PIXELS: bool = true;
-    #[inline(always)]
-    fn dot4x2(xa: &[i16], xb: &[i16], w: &[u8]) -> [[i32; 4]; 2] {
-        let [a0, a1, b0, b1] = dot2x2_words::<0>(xa, xb, w);
-        let [a2, a3, b2, b3] = dot2x2_words::<8>(xa, xb, w);
-        [[a0, a1, a2, a3], [b0, b1, b2, b3]]
     }
 }
 
@@ -1178,69 +1160,8 @@ fn conv_rows<T: Packed>(
             };
             fill_row(arena, input, w, p.input_zp, transform, yy, dst);
         }
-        let mut ox = 0;
-        while ox < output.w {
-            // Two neighbouring pixels per pass where the form gains by it:
-            // their windows start `c` apart in the same ring rows.
-            if T::TWO_PIXELS && ox + 1 < output.w {
-                // By hand, not `zip`: see below.
-                let (mut blocks, mut bs, mut rs) = (
-                    head.chunks_exact((4 * kp).max(1)),
-                    bias4.chunks_exact(4),
-                    rq4.chunks_exact(4),
-                );
-                for o in 0..quads {
-                    let (Some(block), Some(b), Some(r)) = (blocks.next(), bs.next(), rs.next())
-                    else {
-                        return;
-                    };
-                    let mut acc = [[0i32; 4]; 2];
-                    for (ky, wk) in block.chunks_exact((4 * row_pairs).max(1)).enumerate() {
-                        let at = ((oy + ky) % kh) * row_len + ox * c;
-                        let (Some(x), Some(y)) =
-                            (ring.get(at..at + run), ring.get(at + c..at + c + run))
-                        else {
-                            return;
-                        };
-                        let part = T::dot4x2(x, y, wk);
-                        for (ap, pp) in acc.iter_mut().zip(part) {
-                            for (a, v) in ap.iter_mut().zip(pp) {
-                                *a = a.wrapping_add(v);
-                            }
-                        }
-                    }
-                    for (k, ap) in acc.iter().enumerate() {
-                        let dst = output.pixel(oy, ox + k) + 4 * o;
-                        let Some(out) = arena.get_mut(dst..dst + 4) else {
-                            return;
-                        };
-                        requantize_into(out, ap, b, r, p.out);
-                    }
-                }
-                if left > 0 {
-                    for k in 0..2 {
-                        let mut acc = [0i32; 3];
-                        let acc = &mut acc[..left];
-                        for (ky, wk) in rest.chunks_exact((left * row_pairs).max(1)).enumerate() {
-                            let at = ((oy + ky) % kh) * row_len + (ox + k) * c;
-                            let Some(x) = ring.get(at..at + run) else {
-                                return;
-                            };
-                            T::few(x, wk, acc);
-                        }
-                        let dst = output.pixel(oy, ox + k) + quads * 4;
-                        let Some(out) = arena.get_mut(dst..dst + left) else {
-                            return;
-                        };
-                        requantize_into(out, acc, bias_left, rq_left, p.out);
-                    }
-                }
-                ox += 2;
-                continue;
-            }
+        for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
-            ox += 1;
-            let ox = ox - 1;
             let Some(out) = arena.get_mut(dst..dst + m) else {
                 return;
             };

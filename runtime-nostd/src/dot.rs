@@ -348,45 +348,6 @@ pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
     [a, b, c, d]
 }
 
-/// Two weight rows of a four-row block in the word layout (rows 0 and 1
-/// for `OFF = 0`, rows 2 and 3 for `OFF = 8`; `w` is the whole block, as
-/// for [`dot4_words`]) against two patches at once (`xa`, `xb`: two
-/// neighbouring output pixels), over the whole quads of both:
-/// `[xa·row, xa·row+1, xb·row, xb·row+1]`.
-///
-/// Register blocking: each widened weight pair feeds two `smlad`, one per
-/// pixel, so the widening (`sxtb16`) is paid once for two pixels.
-#[inline(never)]
-pub(crate) fn dot2x2_words<const OFF: usize>(xa: &[i16], xb: &[i16], w: &[u8]) -> [i32; 4] {
-    let (mut a0, mut a1, mut b0, mut b1) = (0i32, 0i32, 0i32, 0i32);
-    let full = (xa.len() / 4).min(xb.len() / 4).min(w.len() / 16);
-    let (Some(mut xs), Some(mut ys), Some(mut ws)) =
-        (xa.get(..4 * full), xb.get(..4 * full), w.get(..16 * full))
-    else {
-        return [0; 4];
-    };
-    while let (Some((xq, xr)), Some((yq, yr)), Some((q, wr))) = (
-        xs.split_first_chunk::<4>(),
-        ys.split_first_chunk::<4>(),
-        ws.split_first_chunk::<16>(),
-    ) {
-        no_unroll();
-        (xs, ys, ws) = (xr, yr, wr);
-        let (xa01, xa23) = (word(xq[0], xq[1]), word(xq[2], xq[3]));
-        let (xb01, xb23) = (word(yq[0], yq[1]), word(yq[2], yq[3]));
-        let wv = word_at(q, OFF);
-        let (l, h) = (ingot_dsp::sxtb16(wv), ingot_dsp::sxtb16_ror8(wv));
-        a0 = mac_pair(mac_pair(a0, xa01, l), xa23, h);
-        b0 = mac_pair(mac_pair(b0, xb01, l), xb23, h);
-        no_unroll();
-        let wv = word_at(q, OFF + 4);
-        let (l, h) = (ingot_dsp::sxtb16(wv), ingot_dsp::sxtb16_ror8(wv));
-        a1 = mac_pair(mac_pair(a1, xa01, l), xa23, h);
-        b1 = mac_pair(mac_pair(b1, xb01, l), xb23, h);
-    }
-    [a0, a1, b0, b1]
-}
-
 /// `acc.len()` (1 to 3) rows in the word layout, as [`dot4_words`] with a
 /// block of `acc.len()` rows; adds into `acc`.
 #[inline(never)]
