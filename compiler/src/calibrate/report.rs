@@ -191,28 +191,7 @@ impl OutputFigures {
 
 impl fmt::Display for EqualizeEffect {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        let eq = self.pairs.iter().filter(|p| p.skipped.is_none()).count();
-        writeln!(
-            f,
-            "cross-layer equalization: {eq} of {} depthwise pairs equalized (channel-range ratio max/min, first / second layer)",
-            self.pairs.len()
-        )?;
-        for p in &self.pairs {
-            match &p.skipped {
-                Some(why) => writeln!(f, "  {} -> {}: skipped ({why})", p.first, p.second)?,
-                None => writeln!(
-                    f,
-                    "  {} -> {} ({}): {:.1} / {:.1} -> {:.2} / {:.2}",
-                    p.first,
-                    p.second,
-                    p.between,
-                    p.ratio_before[0],
-                    p.ratio_before[1],
-                    p.ratio_after[0],
-                    p.ratio_after[1]
-                )?,
-            }
-        }
+        crate::graph::equalize::write_pairs(f, &self.pairs)?;
         for (name, v) in [("before", &self.before), ("after", &self.after)] {
             writeln!(
                 f,

@@ -227,32 +227,39 @@ pub fn equalize(g: &mut Graph) -> Equalization {
 
 impl std::fmt::Display for Equalization {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        writeln!(
-            f,
-            "cross-layer equalization: {} of {} depthwise pairs equalized (channel-range ratio max/min, first layer / second layer)",
-            self.equalized(),
-            self.pairs.len()
-        )?;
-        for p in &self.pairs {
-            match &p.skipped {
-                Some(why) => writeln!(
-                    f,
-                    "  {} -> {} ({}): skipped: {why}",
-                    p.first, p.second, p.between
-                )?,
-                None => writeln!(
-                    f,
-                    "  {} -> {} ({}): {:.1} / {:.1} -> {:.2} / {:.2}",
-                    p.first,
-                    p.second,
-                    p.between,
-                    p.ratio_before[0],
-                    p.ratio_before[1],
-                    p.ratio_after[0],
-                    p.ratio_after[1]
-                )?,
-            }
-        }
-        Ok(())
+        write_pairs(f, &self.pairs)
     }
+}
+
+/// The pairs' lines as the calibration report prints them: a heading with
+/// the count equalized, then each pair's channel-range ratios before and
+/// after, or why it was skipped.
+pub fn write_pairs(f: &mut dyn std::fmt::Write, pairs: &[Pair]) -> std::fmt::Result {
+    writeln!(
+        f,
+        "cross-layer equalization: {} of {} depthwise pairs equalized (channel-range ratio max/min, first layer / second layer)",
+        pairs.iter().filter(|p| p.skipped.is_none()).count(),
+        pairs.len()
+    )?;
+    for p in pairs {
+        match &p.skipped {
+            Some(why) => writeln!(
+                f,
+                "  {} -> {} ({}): skipped: {why}",
+                p.first, p.second, p.between
+            )?,
+            None => writeln!(
+                f,
+                "  {} -> {} ({}): {:.1} / {:.1} -> {:.2} / {:.2}",
+                p.first,
+                p.second,
+                p.between,
+                p.ratio_before[0],
+                p.ratio_before[1],
+                p.ratio_after[0],
+                p.ratio_after[1]
+            )?,
+        }
+    }
+    Ok(())
 }
