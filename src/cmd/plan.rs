@@ -35,9 +35,9 @@ pub struct Args {
     /// one of the command's inputs).
     #[arg(long)]
     pub force: bool,
-    /// Convolution weight form the module will use (int8 or pairs; pairs
-    /// adds row buffers to the patch scratch) [default: by the --target
-    /// core, else int8]
+    /// Convolution weight form the module will use (int8, words or pairs;
+    /// words and pairs add row buffers to the patch scratch) [default: by
+    /// the --target core, else int8]
     #[arg(long)]
     pub weight_form: Option<WeightForm>,
 }

@@ -3,7 +3,7 @@
 //!
 //! ```text
 //! cargo run --release -p ingot-testkit --example bench_kinds -- \
-//!     [--on m4,m7,m33,m33+dsp,m0plus] [--all] [--weight-form int8|pairs] [--images N] [--out DIR]
+//!     [--on m4,m7,m33,m33+dsp,m0plus] [--all] [--weight-form int8|words|pairs] [--images N] [--out DIR]
 //! ```
 //!
 //! The networks are `depthwise_separable(&DepthwiseConfig::howard2017(0.25))`
@@ -24,7 +24,7 @@
 //! `host` (no instruction counts; a quick look that everything builds).
 //! Default `m4`; `--all` is `m4,m7,m33,m33+dsp,m0plus`. `--weight-form`
 //! forces one convolution weight form on every core (default: each
-//! core's, as `ingot check --on CORE` chooses: pairs on M4/M7, int8
+//! core's, as `ingot check --on CORE` chooses: words on M4/M7, int8
 //! elsewhere); `--images` sets how many pictures are checked (default 2;
 //! instruction counts vary little between pictures). Needs the Rust
 //! toolchain, the thumb targets and `qemu-system-arm`
@@ -54,7 +54,7 @@ struct Options {
 
 fn usage() -> ! {
     eprintln!(
-        "usage: bench_kinds [--on CORE[,CORE...]] [--all] [--weight-form int8|pairs] [--images N] [--out DIR]\n\
+        "usage: bench_kinds [--on CORE[,CORE...]] [--all] [--weight-form int8|words|pairs] [--images N] [--out DIR]\n\
          cores: host, m0plus, m3, m4, m7, m33, m33+dsp"
     );
     std::process::exit(2)
