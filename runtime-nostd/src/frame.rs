@@ -710,8 +710,9 @@ fn half565(px: &[u8]) -> u32 {
 /// split into its high three bits (bits 0–2) and low three (bits 13–15).
 /// Rotating the word right by 13 brings the low three G bits of each half
 /// to bits 0–2 of the same half and the high three G bits of the *other*
-/// half to bits 3–5: one mask gives, per lane, `G_low(this) + 8 ·
-/// G_high(other)` (at most 63, like a G field). The two lanes then hold
+/// half to bits 3–5: one mask gives, per lane, the low three G bits of
+/// this pixel plus 8 × the high three G bits of the other pixel (at most
+/// 63, like a G field). The two lanes then hold
 /// the G values of the pixels mixed, but [`unlane565`] adds the two
 /// lanes, so `Σ G` is the same integer; no swap of bytes is needed.
 #[inline(always)]

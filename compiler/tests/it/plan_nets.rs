@@ -123,7 +123,7 @@ fn in_place_concat_beats_copying_on_dense_networks() {
 /// A branchy cell written as all expansions first: the order search runs
 /// each expand–reduce pair back to back, exactly.
 #[test]
-fn reordering_lowers_the_peak() {
+fn reorder_cuts_the_peak() {
     let q = synth::branchy(6);
     let p = plan(&q, &opts()).expect("plan");
     println!(
