@@ -471,19 +471,17 @@ pub fn conv2d(
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
 ) -> Result<(), Error> {
-    let a = check_conv(
-        arena.len(),
-        patch.len(),
+    check_and_run(
+        arena,
         input,
         output,
         Rows::Bytes(weights),
         bias,
         requant,
-        *p,
-        transform.copied(),
-    )?;
-    conv_run(arena, &a, patch);
-    Ok(())
+        p,
+        transform,
+        patch,
+    )
 }
 
 /// [`conv2d`] with the weights in the paired layout of [`pair_rows`]
@@ -510,19 +508,17 @@ pub fn conv2d_paired(
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
 ) -> Result<(), Error> {
-    let a = check_conv(
-        arena.len(),
-        patch.len(),
+    check_and_run(
+        arena,
         input,
         output,
         Rows::Pairs(weights),
         bias,
         requant,
-        *p,
-        transform.copied(),
-    )?;
-    conv_run(arena, &a, patch);
-    Ok(())
+        p,
+        transform,
+        patch,
+    )
 }
 
 /// [`conv2d`] with the int8 weights in the word layout of
@@ -549,12 +545,39 @@ pub fn conv2d_words(
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
 ) -> Result<(), Error> {
+    check_and_run(
+        arena,
+        input,
+        output,
+        Rows::Words(weights),
+        bias,
+        requant,
+        p,
+        transform,
+        patch,
+    )
+}
+
+/// Checks a convolution of any weight form and runs it: the one body of
+/// the public per-form entry points.
+#[allow(clippy::too_many_arguments)]
+fn check_and_run(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    rows: Rows<'_>,
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+) -> Result<(), Error> {
     let a = check_conv(
         arena.len(),
         patch.len(),
         input,
         output,
-        Rows::Words(weights),
+        rows,
         bias,
         requant,
         *p,
