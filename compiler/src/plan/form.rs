@@ -105,16 +105,7 @@ pub fn pair_growth(q: &QGraph, form: WeightForm) -> usize {
     if form != WeightForm::Pairs {
         return 0;
     }
-    q.steps
-        .iter()
-        .filter_map(|st| match &st.kernel {
-            QKernel::Conv2d(c) if uses_pairs(c) => {
-                let (rows, k) = weight_rows(c);
-                Some(4 * ingot_rt::paired_len(rows, k) - c.weights.len())
-            }
-            _ => None,
-        })
-        .sum()
+    packed_growth(q, |rows, k| 4 * ingot_rt::paired_len(rows, k))
 }
 
 /// Zero bytes the word layout adds to the weights of `q` (rows padded to
@@ -123,12 +114,18 @@ pub fn word_padding(q: &QGraph, form: WeightForm) -> usize {
     if form != WeightForm::Words {
         return 0;
     }
+    packed_growth(q, ingot_rt::words_len)
+}
+
+/// Σ over the convolutions a packed form applies to of `packed(rows, k)`
+/// (the bytes of their packed weights) less their int8 bytes.
+fn packed_growth(q: &QGraph, packed: impl Fn(usize, usize) -> usize) -> usize {
     q.steps
         .iter()
         .filter_map(|st| match &st.kernel {
             QKernel::Conv2d(c) if uses_pairs(c) => {
                 let (rows, k) = weight_rows(c);
-                Some(ingot_rt::words_len(rows, k) - c.weights.len())
+                Some(packed(rows, k) - c.weights.len())
             }
             _ => None,
         })
