@@ -73,6 +73,7 @@ mod tests {
     }
 }
 
+pub(crate) mod bars;
 pub(crate) mod splitmix;
 #[cfg(test)]
 pub(crate) mod test_rng;

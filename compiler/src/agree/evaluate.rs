@@ -73,6 +73,16 @@ pub fn stored_maps(g: &Graph, q: &QGraph) -> Vec<Option<QMapId>> {
     out
 }
 
+/// The images an evaluation of `cal` runs on, named: the held-out ones,
+/// or the calibration images when none are held out.
+pub(crate) fn evaluation_images(cal: &Calibration) -> (&'static str, Vec<usize>) {
+    if cal.evaluation.is_empty() {
+        ("calibration", cal.calibration.clone())
+    } else {
+        ("held-out", cal.evaluation.clone())
+    }
+}
+
 /// Lowers `graph` with `cal`'s ranges and compares the simulator with the
 /// float reference on the held-out images (or on the calibration images
 /// when none are held out).
@@ -86,11 +96,7 @@ pub fn evaluate(
 ) -> Result<Evaluation, EvalError> {
     let q = lower::lower(graph, &cal.ranges, lower_opts)?;
     let stored = stored_maps(graph, &q);
-    let (on, indices) = if cal.evaluation.is_empty() {
-        ("calibration", cal.calibration.clone())
-    } else {
-        ("held-out", cal.evaluation.clone())
-    };
+    let (on, indices) = evaluation_images(cal);
     let reference = Reference::new(graph);
     let pb = crate::calibrate::progress_bar(indices.len() as u64, progress, "int8 evaluation");
     let results: Vec<(usize, Result<PerImage, EvalError>)> = indices

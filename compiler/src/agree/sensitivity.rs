@@ -75,11 +75,7 @@ pub fn measure(
 ) -> Result<Sensitivity, EvalError> {
     let q = lower::lower(graph, &cal.ranges, lower_opts)?;
     let mixed = Mixed::new(graph, &q, &cal.ranges);
-    let (on, indices) = if cal.evaluation.is_empty() {
-        ("calibration", cal.calibration.clone())
-    } else {
-        ("held-out", cal.evaluation.clone())
-    };
+    let (on, indices) = super::evaluate::evaluation_images(cal);
     let pb = crate::calibrate::progress_bar(indices.len() as u64, progress, "sensitivity");
     let per_image: Vec<Result<Option<PerImage>, EvalError>> = indices
         .par_iter()
@@ -197,8 +193,6 @@ impl Sensitivity {
     /// The ranking as an SVG bar chart: per unit, the logits' SQNR with
     /// only that unit in int8 (lower is worse), most sensitive first.
     pub fn svg(&self) -> Result<String, String> {
-        use plotters::prelude::*;
-        let err = |e: &dyn fmt::Display| e.to_string();
         let vals: Vec<(String, f64)> = self
             .rows
             .iter()
@@ -227,54 +221,24 @@ impl Sensitivity {
         } else {
             0.0
         };
-        let mut svg = String::new();
-        {
-            let n = vals.len().max(1);
-            let width = (160 + 40 * n) as u32;
-            let root = SVGBackend::with_string(&mut svg, (width.max(480), 420)).into_drawing_area();
-            root.fill(&WHITE).map_err(|e| err(&e))?;
-            let mut chart = ChartBuilder::on(&root)
-                .caption(
-                    "Logit SQNR with only this layer in int8 (lower = more sensitive)",
-                    ("sans-serif", 16),
-                )
-                .margin(12)
-                .x_label_area_size(110)
-                .y_label_area_size(55)
-                .build_cartesian_2d((0..n).into_segmented(), bottom..top)
-                .map_err(|e| err(&e))?;
-            let names: Vec<String> = vals.iter().map(|v| v.0.clone()).collect();
-            chart
-                .configure_mesh()
-                .disable_x_mesh()
-                .x_labels(n)
-                .x_label_style(
-                    ("sans-serif", 11)
-                        .into_font()
-                        .transform(FontTransform::Rotate90),
-                )
-                .x_label_formatter(&|v| match v {
-                    SegmentValue::CenterOf(i) => names.get(*i).cloned().unwrap_or_default(),
-                    _ => String::new(),
-                })
-                .y_desc("logit SQNR (dB)")
-                .draw()
-                .map_err(|e| err(&e))?;
-            chart
-                .draw_series(
-                    Histogram::vertical(&chart)
-                        .style(RGBColor(190, 80, 60).filled())
-                        .margin(4)
-                        .data(
-                            vals.iter()
-                                .enumerate()
-                                .map(|(i, v)| (i, if v.1.is_finite() { v.1 } else { top })),
-                        ),
-                )
-                .map_err(|e| err(&e))?;
-            root.present().map_err(|e| err(&e))?;
-        }
-        Ok(svg)
+        let look = crate::util::bars::Bars {
+            caption: (
+                "Logit SQNR with only this layer in int8 (lower = more sensitive)",
+                16,
+            ),
+            bar_width: 40,
+            height: 420,
+            x_label_area: 110,
+            y_desc: "logit SQNR (dB)",
+            colour: plotters::style::RGBColor(190, 80, 60),
+            bar_margin: 4,
+            y: bottom..top,
+        };
+        let bars: Vec<(String, f64)> = vals
+            .into_iter()
+            .map(|(name, v)| (name, if v.is_finite() { v } else { top }))
+            .collect();
+        crate::util::bars::svg(&look, &bars)
     }
 }
 

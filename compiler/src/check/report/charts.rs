@@ -28,51 +28,21 @@ pub fn sqnr_svg(layers: &[LayerFigures]) -> Result<String> {
         .map(|v| v.1)
         .fold(0.0f64, f64::max);
     let top = (finite_max * 1.15).max(10.0);
-    let mut svg = String::new();
-    {
-        let width = (160 + 60 * vals.len().max(1)) as u32;
-        let root = SVGBackend::with_string(&mut svg, (width.max(480), 400)).into_drawing_area();
-        root.fill(&WHITE).map_err(plot_err)?;
-        let n = vals.len().max(1);
-        let mut chart = ChartBuilder::on(&root)
-            .caption("Per-layer SQNR vs float reference", ("sans-serif", 18))
-            .margin(12)
-            .x_label_area_size(90)
-            .y_label_area_size(55)
-            .build_cartesian_2d((0..n).into_segmented(), 0.0..top)
-            .map_err(plot_err)?;
-        let names: Vec<String> = vals.iter().map(|v| v.0.clone()).collect();
-        chart
-            .configure_mesh()
-            .disable_x_mesh()
-            .x_labels(n)
-            .x_label_style(
-                ("sans-serif", 11)
-                    .into_font()
-                    .transform(FontTransform::Rotate90),
-            )
-            .x_label_formatter(&|v| match v {
-                SegmentValue::CenterOf(i) => names.get(*i).cloned().unwrap_or_default(),
-                _ => String::new(),
-            })
-            .y_desc("SQNR (dB)")
-            .draw()
-            .map_err(plot_err)?;
-        chart
-            .draw_series(
-                Histogram::vertical(&chart)
-                    .style(RGBColor(60, 110, 180).filled())
-                    .margin(6)
-                    .data(
-                        vals.iter()
-                            .enumerate()
-                            .map(|(i, v)| (i, if v.2 { v.1.max(0.0) } else { top })),
-                    ),
-            )
-            .map_err(plot_err)?;
-        root.present().map_err(plot_err)?;
-    }
-    Ok(svg)
+    let look = crate::util::bars::Bars {
+        caption: ("Per-layer SQNR vs float reference", 18),
+        bar_width: 60,
+        height: 400,
+        x_label_area: 90,
+        y_desc: "SQNR (dB)",
+        colour: RGBColor(60, 110, 180),
+        bar_margin: 6,
+        y: 0.0..top,
+    };
+    let bars: Vec<(String, f64)> = vals
+        .into_iter()
+        .map(|(name, v, finite)| (name, if finite { v.max(0.0) } else { top }))
+        .collect();
+    crate::util::bars::svg(&look, &bars).map_err(plot_err)
 }
 
 /// A confusion matrix (`[true][predicted]`) as an SVG heatmap with counts.
