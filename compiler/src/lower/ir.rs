@@ -693,3 +693,44 @@ impl ChannelTransform {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn per_channel_parameters_merge_into_runs() {
+        let (a, b) = (
+            QParams {
+                scale: 0.1,
+                zero_point: 0,
+            },
+            QParams {
+                scale: 0.2,
+                zero_point: -3,
+            },
+        );
+        assert_eq!(MapQuant::from_channels(&[]), None);
+        assert_eq!(
+            MapQuant::from_channels(&[a, a, a]),
+            Some(MapQuant::Tensor(a))
+        );
+        let q = MapQuant::from_channels(&[a, a, b, b, b, a]).unwrap();
+        assert_eq!(
+            q,
+            MapQuant::Slices(vec![
+                QSlice { channels: 2, qp: a },
+                QSlice { channels: 3, qp: b },
+                QSlice { channels: 1, qp: a },
+            ])
+        );
+        assert_eq!(q.tensor(), None);
+        assert_eq!((q.channel(1), q.channel(2), q.channel(5)), (a, b, a));
+        assert_eq!(q.per_channel(6), vec![a, a, b, b, b, a]);
+        // Per tensor serializes as before (the QParams itself).
+        assert_eq!(
+            serde_json::to_string(&MapQuant::Tensor(a)).unwrap(),
+            serde_json::to_string(&a).unwrap()
+        );
+    }
+}

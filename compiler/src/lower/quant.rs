@@ -362,4 +362,74 @@ mod tests {
             }
         }
     }
+
+    #[test]
+    fn per_channel_input_parameters_fold_into_the_transform() {
+        // Two slices: channel 0 at (0.1, -20), channel 1 at (0.5, 30).
+        let qin = [
+            QParams {
+                scale: 0.1,
+                zero_point: -20,
+            },
+            QParams {
+                scale: 0.5,
+                zero_point: 30,
+            },
+        ];
+        let qout = QParams {
+            scale: 0.05,
+            zero_point: -128,
+        };
+        let ab = [(1.5, 0.2), (-0.7, 1.0)];
+        let t =
+            affine_transform(&ab, &qin, qout, activation_clamp(Activation::Relu, qout)).unwrap();
+        let ChannelTransform::Affine { zp_in, .. } = &t else {
+            panic!("affine")
+        };
+        assert_eq!(*zp_in, 0);
+        for (c, &(a, b)) in ab.iter().enumerate() {
+            let (s, z) = (qin[c].scale as f64, qin[c].zero_point);
+            for q in -128..=127i32 {
+                // real = s_c·(q − z_c) (Jacob et al. 2018, §2.1).
+                let y = (a * s * (q - z) as f64 + b).max(0.0);
+                let want = (round_half_up(y / 0.05) - 128.0).clamp(-128.0, 127.0) as i32;
+                let got = apply_transform(&t, c, q as i8) as i32;
+                assert!(
+                    (got - want).abs() <= 1,
+                    "channel {c} code {q}: {got} vs {want}"
+                );
+            }
+        }
+        // Equal per-channel parameters give the per-tensor transform.
+        let one = affine_transform(
+            &ab,
+            &qin[..1],
+            qout,
+            Clamp {
+                min: -128,
+                max: 127,
+            },
+        );
+        let same = affine_transform(
+            &ab,
+            &[qin[0], qin[0]],
+            qout,
+            Clamp {
+                min: -128,
+                max: 127,
+            },
+        );
+        assert_eq!(one, same);
+        // Neither one set nor one per channel.
+        assert!(affine_transform(
+            &ab,
+            &[qin[0]; 3],
+            qout,
+            Clamp {
+                min: -128,
+                max: 127
+            }
+        )
+        .is_none());
+    }
 }

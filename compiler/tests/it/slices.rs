@@ -8,7 +8,9 @@ use crate::common;
 use common::{calibrate, random_input, Net, Rng};
 use ingot_compiler::graph::Op;
 use ingot_compiler::lower::quant::{activation_qparams, apply_transform};
-use ingot_compiler::lower::{lower, ChannelTransform, LowerOptions, QKernel, QParams};
+use ingot_compiler::lower::{
+    lower, ChannelTransform, LowerOptions, MapQuant, QGraphError, QKernel, QParams,
+};
 
 /// `x` → convolutions `a` (small weights) and `b` (weights ×`wide`) →
 /// `cat` → batch norm → ReLU → `reader` (a 1×1 convolution, which takes the
@@ -122,4 +124,38 @@ fn a_region_read_by_a_per_tensor_reader_shares_one_quantization() {
     assert_eq!(map("a").qp.tensor(), Some(shared));
     assert_eq!(map("b").qp.tensor(), Some(shared));
     q.verify().unwrap();
+}
+
+#[test]
+fn verify_refuses_slices_a_step_cannot_carry() {
+    let g = two_member_region("conv", 8.0);
+    let q = lower(&g, &calibrate(&g, &images(&g)), &LowerOptions::default()).unwrap();
+    q.verify().unwrap();
+    let cat = q.maps.iter().position(|m| m.name == "cat").unwrap();
+    let reader = q.steps.iter().position(|s| s.name == "out").unwrap();
+
+    // A concatenation output whose slices are not its inputs' parameters.
+    let mut bad = q.clone();
+    bad.maps[cat].qp = bad.maps[cat].qp.channel(0).into();
+    assert_eq!(bad.verify(), Err(QGraphError::Concat("cat".into())));
+
+    // A convolution without a per-channel input transform reading slices.
+    let mut bad = q.clone();
+    if let QKernel::Conv2d(c) = &mut bad.steps[reader].kernel {
+        c.transform = None;
+    }
+    assert_eq!(
+        bad.verify(),
+        Err(QGraphError::SlicedAccess {
+            step: "out".into(),
+            map: "cat".into()
+        })
+    );
+
+    // Slices that do not add up to the map's channels.
+    let mut bad = q.clone();
+    let mut qps = bad.maps[cat].qp.per_channel(5);
+    qps.pop();
+    bad.maps[cat].qp = MapQuant::from_channels(&qps).unwrap();
+    assert_eq!(bad.verify(), Err(QGraphError::Slices("cat".into())));
 }
