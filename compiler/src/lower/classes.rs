@@ -32,6 +32,13 @@ impl UnionFind {
     }
 }
 
+/// True when a step whose main layer is `op` (with a fused pre-activation
+/// transform: `fused`) reads per-channel input parameters: a per-channel
+/// transform absorbs them, and a concatenation passes them on.
+pub(super) fn absorbs_slices(op: &Op, fused: bool) -> bool {
+    fused || matches!(op, Op::Concat | Op::BatchNorm(_) | Op::Relu | Op::Relu6)
+}
+
 /// Pass 2: concatenation regions and quantization of stored maps.
 ///
 /// A region (maps joined by concatenations) is quantized per slice when
@@ -74,11 +81,7 @@ pub(super) fn map_qparams(
         let Role::Step { pre, .. } = &roles[id.index()] else {
             continue;
         };
-        let absorbs = pre.is_some()
-            || matches!(
-                g.layer(id).op,
-                Op::Concat | Op::BatchNorm(_) | Op::Relu | Op::Relu6
-            );
+        let absorbs = absorbs_slices(&g.layer(id).op, pre.is_some());
         let read: Vec<MapId> = match pre {
             Some(p) => vec![p.src],
             None => g.layer(id).inputs.clone(),

@@ -146,11 +146,7 @@ impl Builder<'_> {
             .first()
             .map(|q| q.per_channel(g.shape(read[0]).c))
             .unwrap_or_default();
-        let absorbs = pre.is_some()
-            || matches!(
-                layer.op,
-                Op::Concat | Op::BatchNorm(_) | Op::Relu | Op::Relu6
-            );
+        let absorbs = super::classes::absorbs_slices(&layer.op, pre.is_some());
         let in_qp: Vec<QParams> = in_q
             .iter()
             .map(|q| match q.tensor() {
