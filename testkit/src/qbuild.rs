@@ -321,7 +321,7 @@ impl QBuilder {
         self.g.maps.push(QMap {
             name: name.into(),
             shape,
-            qp,
+            qp: qp.into(),
             // The planner's graphs pair every map with a float map of the
             // same index, as lowering does.
             float_map: MapId(if self.dummy {
@@ -338,7 +338,16 @@ impl QBuilder {
     }
 
     fn zp(&self, m: QMapId) -> i32 {
-        self.g.map(m).qp.zero_point
+        self.qp_of(m).zero_point
+    }
+
+    /// The quantization of a map built here (always per tensor).
+    pub fn qp_of(&self, m: QMapId) -> QParams {
+        self.g
+            .map(m)
+            .qp
+            .tensor()
+            .expect("the builder makes per-tensor maps")
     }
 
     fn push(&mut self, name: &str, inputs: Vec<QMapId>, output: QMapId, kernel: QKernel) -> QMapId {
@@ -510,7 +519,7 @@ impl QBuilder {
             ([k, k], [s, s])
         };
         let qp = if kind == 0 {
-            self.g.map(x).qp
+            self.qp_of(x)
         } else {
             self.fresh_qp()
         };
@@ -558,7 +567,7 @@ impl QBuilder {
     pub fn add(&mut self, name: &str, a: QMapId, b: QMapId, relu: bool) -> QMapId {
         let qp = self.fresh_qp();
         let out = self.map(name, self.shape(a), qp);
-        let (qa, qb) = (self.g.map(a).qp, self.g.map(b).qp);
+        let (qa, qb) = (self.qp_of(a), self.qp_of(b));
         let clamp = self.clamp(out, relu);
         if self.dummy {
             let k = QAdd {
@@ -597,7 +606,7 @@ impl QBuilder {
     pub fn concat(&mut self, name: &str, xs: &[QMapId]) -> QMapId {
         let s0 = self.shape(xs[0]);
         let c = xs.iter().map(|&x| self.shape(x).c).sum();
-        let qp = self.g.map(xs[0]).qp;
+        let qp = self.qp_of(xs[0]);
         let out = self.map(name, Shape::new(c, s0.h, s0.w), qp);
         self.push(name, xs.to_vec(), out, QKernel::Concat)
     }

@@ -131,7 +131,7 @@ pub fn densenet121(input: usize) -> QGraph {
     );
     let mut h = b.max_pool("features.pool0", c0, 3, 2, 1);
     for (bi, &n) in [6usize, 12, 24, 16].iter().enumerate() {
-        let q = b.g.map(h).qp;
+        let q = b.qp_of(h);
         let mut cat = h;
         for l in 0..n {
             let name = format!("features.denseblock{}.denselayer{}", bi + 1, l + 1);
@@ -174,7 +174,7 @@ pub fn demo_sized() -> QGraph {
     let (mut b, x) = QBuilder::new("demo_sized", 1, 64, 64, 5);
     let mut h = b.conv("features.conv0", x, ConvSpec::new(16, 3).linear());
     for block in 1..=2 {
-        let q = b.g.map(h).qp;
+        let q = b.qp_of(h);
         let mut cat = h;
         for l in 1..=4 {
             let name = format!("features.denseblock{block}.denselayer{l}");

@@ -12,4 +12,5 @@ mod cli_import;
 mod cli_inspect;
 mod cli_plan;
 mod demo;
+mod demo_slices;
 mod digits_accuracy;

@@ -41,7 +41,7 @@ pub struct Evaluation {
     /// Indices of the images evaluated.
     pub images: Vec<usize>,
     /// Quantization of the stored map holding each float map, by `MapId`
-    /// (`None` when folded away).
+    /// (`None` when folded away or quantized per slice).
     pub qparams: Vec<Option<QParams>>,
     /// SQNR in dB per float map (`None` when not stored).
     pub sqnr_db: Vec<Option<f64>>,
@@ -159,7 +159,10 @@ pub fn evaluate(
     Ok(Evaluation {
         on,
         images: used,
-        qparams: stored.iter().map(|s| s.map(|id| q.map(id).qp)).collect(),
+        qparams: stored
+            .iter()
+            .map(|s| s.and_then(|id| q.map(id).qp.tensor()))
+            .collect(),
         sqnr_db: stored
             .iter()
             .zip(&sums)

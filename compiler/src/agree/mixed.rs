@@ -82,7 +82,7 @@ impl<'a> Mixed<'a> {
             step: None,
         }];
         let mut rounds = vec![None; nm];
-        rounds[MapId::INPUT.index()] = Some((0, q.map(q.input).qp));
+        rounds[MapId::INPUT.index()] = Some((0, q.input_qp()));
         let mut weights_of = vec![None; graph.layers().len()];
         let mut weighted = vec![None];
         for id in q.step_ids() {
@@ -97,20 +97,24 @@ impl<'a> Mixed<'a> {
                 step: Some(id),
             });
             let out = q.map(s.output);
-            rounds[out.float_map.index()] = Some((u, out.qp));
+            // Only a concatenation (skipped above) writes a per-slice map.
+            if let Some(qp) = out.qp.tensor() {
+                rounds[out.float_map.index()] = Some((u, qp));
+            }
             let main = s.layers[0];
             // Layers fused before the main one are the pre-activation batch
             // norm (and ReLU): the last of them writes the transformed map.
             let pre = s.layers.iter().filter(|l| l.index() < main.index()).max();
-            let mut in_qp = q.map(s.inputs[0]).qp;
+            // A per-slice input is read only through a fused transform.
+            let mut in_qp = q.map(s.inputs[0]).qp.tensor();
             if let (Some(t), QKernel::Conv2d(c)) = (pre, &s.kernel) {
                 if c.transform.is_some() {
                     let dom = activation_qparams(ranges.maps[t.output().index()]);
                     rounds[t.output().index()] = Some((u, dom));
-                    in_qp = dom;
+                    in_qp = Some(dom);
                 }
             }
-            let w = weighted_of(graph, q, id, in_qp);
+            let w = in_qp.and_then(|in_qp| weighted_of(graph, q, id, in_qp));
             if let Some(w) = &w {
                 weights_of[w.layer.index()] = Some(u);
                 reference.set_alternative(w.layer, w.alternative(None));
@@ -262,7 +266,7 @@ fn weighted_of(g: &Graph, q: &QGraph, id: StepId, in_qp: QParams) -> Option<Weig
             &l.weight_scales,
             &l.bias,
             l.out_features,
-            q.map(s.inputs[0]).qp.zero_point,
+            q.map(s.inputs[0]).qp.tensor()?.zero_point,
         ),
         _ => return None,
     };

@@ -329,7 +329,7 @@ pub fn input_codes(q: &QGraph, sample: &calibrate::Sample) -> Vec<i8> {
             .map(|(i, &p)| q.pixel_table[(i % c) * 256 + p as usize])
             .collect(),
         None => (0..c * hw)
-            .map(|i| quant::quantize(sample.input[(i % c) * hw + i / c], m.qp))
+            .map(|i| quant::quantize(sample.input[(i % c) * hw + i / c], q.input_qp()))
             .collect(),
     }
 }
@@ -362,8 +362,8 @@ fn compare_data(
         weight_form: Some(generated.report.weight_form.to_string()),
         input_len: q.map(q.input).shape.len(),
         output_len: out_map.shape.len(),
-        output_scale: out_map.qp.scale,
-        output_zero_point: out_map.qp.zero_point,
+        output_scale: q.output_qp().scale,
+        output_zero_point: q.output_qp().zero_point,
         class_names: g.labels().to_vec(),
         steps,
         ..CheckData::default()

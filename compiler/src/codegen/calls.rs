@@ -222,7 +222,10 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
     for &id in &s.order {
         let st = q.step(id);
         let o = map_ref(q, s, st.output);
-        let out_zp = q.map(st.output).qp.zero_point;
+        // `QGraph::verify` (run before) lets only a concatenation write a
+        // per-slice map, and only concatenations, channel steps and fused
+        // transforms (which take no zero point from here) read one.
+        let out_zp = q.map(st.output).qp.channel(0).zero_point;
         let inp = |i: usize| -> Result<MapRef, CallError> {
             st.inputs
                 .get(i)
@@ -235,7 +238,7 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
         let in_zp = |i: usize| {
             st.inputs
                 .get(i)
-                .map(|&m| q.map(m).qp.zero_point)
+                .map(|&m| q.map(m).qp.channel(0).zero_point)
                 .unwrap_or(0)
         };
         let pool_q = |p: &QPool| PoolQuant {

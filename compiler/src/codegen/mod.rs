@@ -228,7 +228,7 @@ pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated,
     let mut steps = calls::step_calls(q, s)?;
     calls::set_weight_form(&mut steps, opt.weight_form);
     if opt.dry_run {
-        let zp = q.map(q.input).qp.zero_point as i8;
+        let zp = q.input_qp().zero_point as i8;
         let input = vec![zp; q.map(q.input).shape.len()];
         calls::execute(q, s, &steps, &input, &mut |_, _| {}).map_err(|e| kernel_error(q, e))?;
     }

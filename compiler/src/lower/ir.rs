@@ -47,6 +47,125 @@ pub struct QParams {
     pub zero_point: i32,
 }
 
+/// Quantization of one stored map: one parameter set, or one per run of
+/// channels.
+///
+/// A map is per slice only when it is the output of a concatenation whose
+/// members keep their own producers' parameters (a concatenation region
+/// whose every reader can absorb per-channel input parameters, see
+/// `lower/classes.rs`). Every other map, and the network's input and
+/// output, is per tensor. There is no "the" scale of a per-slice map:
+/// [`MapQuant::tensor`] is `None` for it, so a reader that needs one
+/// parameter set must say what it does otherwise.
+///
+/// Serialized as the [`QParams`] itself (per tensor) or as the list of
+/// slices, so graphs without regions serialize as before.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+#[serde(untagged)]
+pub enum MapQuant {
+    /// One parameter set for every channel.
+    Tensor(QParams),
+    /// Consecutive runs of channels with their own parameters, in channel
+    /// order; at least two runs, neighbours differ, channels add up to the
+    /// map's.
+    Slices(Vec<QSlice>),
+}
+
+/// A run of channels of a per-slice map sharing one parameter set.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct QSlice {
+    /// Channels in the run.
+    pub channels: usize,
+    /// Their quantization.
+    pub qp: QParams,
+}
+
+impl From<QParams> for MapQuant {
+    fn from(qp: QParams) -> Self {
+        MapQuant::Tensor(qp)
+    }
+}
+
+impl MapQuant {
+    /// Per-channel parameters, neighbouring equal channels merged into
+    /// runs; one run is [`MapQuant::Tensor`]. `None` for no channels.
+    pub fn from_channels(qps: &[QParams]) -> Option<MapQuant> {
+        let mut runs: Vec<QSlice> = Vec::new();
+        for &qp in qps {
+            match runs.last_mut() {
+                Some(r) if r.qp == qp => r.channels += 1,
+                _ => runs.push(QSlice { channels: 1, qp }),
+            }
+        }
+        match runs.len() {
+            0 => None,
+            1 => Some(MapQuant::Tensor(runs[0].qp)),
+            _ => Some(MapQuant::Slices(runs)),
+        }
+    }
+
+    /// The one parameter set of a per-tensor map; `None` per slice.
+    pub fn tensor(&self) -> Option<QParams> {
+        match self {
+            MapQuant::Tensor(qp) => Some(*qp),
+            MapQuant::Slices(_) => None,
+        }
+    }
+
+    /// True for a per-slice map.
+    pub fn is_sliced(&self) -> bool {
+        matches!(self, MapQuant::Slices(_))
+    }
+
+    /// The parameters of channel `c` (a channel past the last run gets the
+    /// last run's).
+    pub fn channel(&self, c: usize) -> QParams {
+        match self {
+            MapQuant::Tensor(qp) => *qp,
+            MapQuant::Slices(runs) => {
+                let mut end = 0;
+                for r in runs {
+                    end += r.channels;
+                    if c < end {
+                        return r.qp;
+                    }
+                }
+                runs.last().map_or(
+                    QParams {
+                        scale: 1.0,
+                        zero_point: 0,
+                    },
+                    |r| r.qp,
+                )
+            }
+        }
+    }
+
+    /// The parameters of each of `channels` channels.
+    pub fn per_channel(&self, channels: usize) -> Vec<QParams> {
+        match self {
+            MapQuant::Tensor(qp) => vec![*qp; channels],
+            MapQuant::Slices(_) => (0..channels).map(|c| self.channel(c)).collect(),
+        }
+    }
+
+    /// Every distinct run's parameters (one for a per-tensor map).
+    pub fn runs(&self) -> Vec<QParams> {
+        match self {
+            MapQuant::Tensor(qp) => vec![*qp],
+            MapQuant::Slices(runs) => runs.iter().map(|r| r.qp).collect(),
+        }
+    }
+
+    /// Channels the runs add up to (`None` per tensor).
+    fn slice_channels(&self) -> Option<usize> {
+        match self {
+            MapQuant::Tensor(_) => None,
+            MapQuant::Slices(runs) => Some(runs.iter().map(|r| r.channels).sum()),
+        }
+    }
+}
+
 /// A real multiplier `M ≈ mult · 2^-(31 + shift)` with `mult` in
 /// `[2^30, 2^31)`; the convention of `ingot_rt::Requant`.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize)]
@@ -223,8 +342,9 @@ pub struct QMap {
     pub name: String,
     /// `[C, H, W]`; stored HWC.
     pub shape: Shape,
-    /// Quantization.
-    pub qp: QParams,
+    /// Quantization: per tensor, or per slice for a concatenation region's
+    /// output ([`MapQuant`]).
+    pub qp: MapQuant,
     /// The float map it approximates (for error reports).
     pub float_map: MapId,
 }
@@ -319,8 +439,23 @@ pub enum QGraphError {
         kind: &'static str,
     },
     /// A concatenation's inputs do not add up to its output.
-    #[error("step `{0}`: concat inputs must add up to the output and share its quantization")]
+    #[error("step `{0}`: concat inputs must add up to the output and carry its quantization of their channels")]
     Concat(String),
+    /// A per-slice map's runs do not add up to its channels.
+    #[error("map `{0}`: quantization slices do not add up to its channels")]
+    Slices(String),
+    /// A step other than a concatenation writes a per-slice map, or a step
+    /// that cannot absorb per-channel input parameters reads one.
+    #[error("step `{step}` cannot read or write the per-slice map `{map}`")]
+    SlicedAccess {
+        /// Step name.
+        step: String,
+        /// Map name.
+        map: String,
+    },
+    /// The network's input or output map is per slice.
+    #[error("the network's input or output map `{0}` must be quantized per tensor")]
+    SlicedEnd(String),
     /// No step writes the output map.
     #[error("output map is never written")]
     OutputNeverWritten,
@@ -330,6 +465,18 @@ impl QGraph {
     /// One map.
     pub fn map(&self, id: QMapId) -> &QMap {
         &self.maps[id.index()]
+    }
+
+    /// The input map's quantization (per tensor, [`QGraph::verify`]
+    /// checks it).
+    pub fn input_qp(&self) -> QParams {
+        self.map(self.input).qp.channel(0)
+    }
+
+    /// The output map's quantization (per tensor, [`QGraph::verify`]
+    /// checks it).
+    pub fn output_qp(&self) -> QParams {
+        self.map(self.output).qp.channel(0)
     }
 
     /// One step.
@@ -387,16 +534,43 @@ impl QGraph {
             }
             written[s.output.index()] = true;
             let out = self.map(s.output);
-            for m in s.inputs.iter().map(|&m| self.map(m)) {
-                if !(-128..=127).contains(&m.qp.zero_point)
-                    || m.qp.scale.is_nan()
-                    || m.qp.scale <= 0.0
-                {
+            for m in s.inputs.iter().chain([&s.output]).map(|&m| self.map(m)) {
+                if let Some(qp) = m.qp.runs().into_iter().find(|qp| {
+                    !(-128..=127).contains(&qp.zero_point) || qp.scale.is_nan() || qp.scale <= 0.0
+                }) {
                     return Err(QGraphError::Quantization {
                         map: m.name.clone(),
-                        qp: m.qp,
+                        qp,
                     });
                 }
+                if m.qp.slice_channels().is_some_and(|c| c != m.shape.c) {
+                    return Err(QGraphError::Slices(m.name.clone()));
+                }
+            }
+            // Per-slice maps are written only by a concatenation and read
+            // only where a per-channel transform absorbs their parameters.
+            let concat = matches!(s.kernel, QKernel::Concat);
+            if out.qp.is_sliced() && !concat {
+                return Err(QGraphError::SlicedAccess {
+                    step: s.name.clone(),
+                    map: out.name.clone(),
+                });
+            }
+            let absorbs = match &s.kernel {
+                QKernel::Concat | QKernel::Channel(_) => true,
+                QKernel::Conv2d(c) => c.transform.is_some(),
+                _ => false,
+            };
+            if let Some(m) = s
+                .inputs
+                .iter()
+                .map(|&m| self.map(m))
+                .find(|m| m.qp.is_sliced() && !absorbs)
+            {
+                return Err(QGraphError::SlicedAccess {
+                    step: s.name.clone(),
+                    map: m.name.clone(),
+                });
             }
             match &s.kernel {
                 QKernel::Conv2d(c) => {
@@ -425,7 +599,14 @@ impl QGraph {
                 }
                 QKernel::Concat => {
                     let c: usize = s.inputs.iter().map(|&m| self.map(m).shape.c).sum();
-                    if c != out.shape.c || s.inputs.iter().any(|&m| self.map(m).qp != out.qp) {
+                    // Each input must carry the output's parameters of its
+                    // own channel slice, so the copy keeps every code.
+                    let joined: Vec<QParams> = s
+                        .inputs
+                        .iter()
+                        .flat_map(|&m| self.map(m).qp.per_channel(self.map(m).shape.c))
+                        .collect();
+                    if c != out.shape.c || joined != out.qp.per_channel(out.shape.c) {
                         return Err(QGraphError::Concat(s.name.clone()));
                     }
                 }
@@ -434,6 +615,11 @@ impl QGraph {
         }
         if !written[self.output.index()] {
             return Err(QGraphError::OutputNeverWritten);
+        }
+        for m in [self.input, self.output] {
+            if self.map(m).qp.is_sliced() {
+                return Err(QGraphError::SlicedEnd(self.map(m).name.clone()));
+            }
         }
         Ok(())
     }
@@ -505,5 +691,46 @@ impl ChannelTransform {
             }),
             ChannelTransform::Table(t) => ingot_rt::InputTransform::Table(t),
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn per_channel_parameters_merge_into_runs() {
+        let (a, b) = (
+            QParams {
+                scale: 0.1,
+                zero_point: 0,
+            },
+            QParams {
+                scale: 0.2,
+                zero_point: -3,
+            },
+        );
+        assert_eq!(MapQuant::from_channels(&[]), None);
+        assert_eq!(
+            MapQuant::from_channels(&[a, a, a]),
+            Some(MapQuant::Tensor(a))
+        );
+        let q = MapQuant::from_channels(&[a, a, b, b, b, a]).unwrap();
+        assert_eq!(
+            q,
+            MapQuant::Slices(vec![
+                QSlice { channels: 2, qp: a },
+                QSlice { channels: 3, qp: b },
+                QSlice { channels: 1, qp: a },
+            ])
+        );
+        assert_eq!(q.tensor(), None);
+        assert_eq!((q.channel(1), q.channel(2), q.channel(5)), (a, b, a));
+        assert_eq!(q.per_channel(6), vec![a, a, b, b, b, a]);
+        // Per tensor serializes as before (the QParams itself).
+        assert_eq!(
+            serde_json::to_string(&MapQuant::Tensor(a)).unwrap(),
+            serde_json::to_string(&a).unwrap()
+        );
     }
 }

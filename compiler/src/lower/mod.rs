@@ -9,9 +9,14 @@
 //!    a convolution becomes that convolution's input transform), or is an
 //!    alias of its input (`dropout`, `flatten`, a final `softmax`).
 //! 2. **Quantization.** Every stored map gets asymmetric int8 parameters
-//!    from its range; maps joined by concatenations share one (union-find
-//!    over chains of concatenations); a max pool keeps its input's
-//!    parameters unless its output joins such a group.
+//!    from its range. Maps joined by concatenations form a region
+//!    (union-find over chains of concatenations): when every reader of its
+//!    concatenation outputs absorbs per-channel input parameters (a fused
+//!    input transform, a channel step, another concatenation), each member
+//!    keeps its own and a concatenation output is quantized per slice
+//!    ([`MapQuant::Slices`]); otherwise the region shares one parameter
+//!    set. A max pool keeps its input's parameters unless its output joins
+//!    a shared region.
 //! 3. **Steps.** Weights are folded, permuted to HWC order and quantized,
 //!    biases folded with the input zero point, multipliers built and the
 //!    accumulator bound checked.
@@ -32,8 +37,8 @@ mod steps;
 
 pub use error::LowerError;
 pub use ir::{
-    ChannelTransform, Clamp, Multiplier, QAdd, QConv, QGraph, QGraphError, QKernel, QLinear, QMap,
-    QMapId, QParams, QPool, QStep, StepId,
+    ChannelTransform, Clamp, MapQuant, Multiplier, QAdd, QConv, QGraph, QGraphError, QKernel,
+    QLinear, QMap, QMapId, QParams, QPool, QSlice, QStep, StepId,
 };
 pub use quant::Activation;
 pub use sim::{SimError, SimInput, Simulator};
@@ -104,8 +109,11 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         steps: Vec::new(),
         qmap: vec![None; nm],
     };
-    let in_qp = qp[0].ok_or_else(|| LowerError::Internal("input not quantized".into()))?;
-    b.add_map(MapId::INPUT, in_qp, g.shape(MapId::INPUT));
+    let in_qp = qp[0]
+        .as_ref()
+        .and_then(MapQuant::tensor)
+        .ok_or_else(|| LowerError::Internal("input not quantized per tensor".into()))?;
+    b.add_map(MapId::INPUT, in_qp.into(), g.shape(MapId::INPUT));
     for id in g.layer_ids() {
         let Role::Step {
             out,
@@ -118,6 +126,7 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
             continue;
         };
         let out_qp = qp[out.index()]
+            .clone()
             .ok_or_else(|| LowerError::Internal(format!("map {out} not quantized")))?;
         let mut layers = vec![id];
         layers.extend(pre.map(|p| p.bn));

@@ -162,33 +162,66 @@ pub(crate) fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> Qua
 /// mul[c] = round(a[c]·s_in/s_out · 2^shift),  add[c] = round(b[c]/s_out · 2^shift)
 /// ```
 ///
-/// with the largest common `shift` (at most 29) that keeps the runtime's
-/// i32 evaluation `255·|mul| + |add| + 2^(shift-1)` below 2^30. An `add` so
-/// large that the output saturates for every input code is first reduced to
-/// a value that still saturates. Returns `None` when even `shift = 0`
-/// cannot hold a multiplier (one input step worth more than about 2^22
-/// output steps).
+/// `qin` holds one parameter set (a per-tensor input) or one per channel (a
+/// per-slice concatenation region). With per-channel parameters that are
+/// not all equal, each channel's own scale goes into its multiplier and its
+/// zero point is folded into its additive term, and the runtime's `zp_in`
+/// is 0:
+///
+/// ```text
+/// mul[c] = round(a[c]·s_c/s_out · 2^shift)
+/// add[c] = round((b[c]/s_out − z_c·a[c]·s_c/s_out) · 2^shift),  zp_in = 0
+/// ```
+///
+/// so the generated code keeps its shape; only the coefficients change.
+///
+/// The common `shift` is the largest (at most 29) that keeps the runtime's
+/// i32 bound `255·|mul| + |add| + 2^(shift-1) < 2^30`
+/// (`ingot_rt::AffineTransform`, checked per channel) true. That bound is
+/// what the runtime checks for `|x − zp_in| ≤ 255`; with `zp_in = 0` the
+/// factor is `|x| ≤ 128`, so the evaluation `x·mul + add + 2^(shift−1)`
+/// stays below the same `2^30` and the runtime's check still proves it.
+/// The folded `add` is larger by `|z_c·mul| ≤ 128·|mul|`, and the shift is
+/// chosen from the folded values, so the bound holds for them.
+///
+/// An `add` so large that the output saturates for every input code is first
+/// reduced to a value that still saturates: beyond `±(255·|m| + 1024)`
+/// output steps, `m·(x − zp_in) + add` keeps the sign of `add` and exceeds
+/// 255 in magnitude for every code (`|x − zp_in| ≤ 255`), before and after
+/// the reduction. Returns `None` when even `shift = 0` cannot hold a
+/// multiplier (one input step worth more than about 2^22 output steps), or
+/// when `qin` has neither one entry nor one per channel.
 pub(crate) fn affine_transform(
     ab: &[(f64, f64)],
-    qin: QParams,
+    qin: &[QParams],
     qout: QParams,
     clamp: Clamp,
 ) -> Option<ChannelTransform> {
-    let (si, so) = (qin.scale as f64, qout.scale as f64);
+    if qin.len() != 1 && qin.len() != ab.len() {
+        return None;
+    }
+    let shared = qin.windows(2).all(|w| w[0] == w[1]);
+    let zp_in = if shared {
+        qin.first().map_or(0, |q| q.zero_point)
+    } else {
+        0
+    };
+    let so = qout.scale as f64;
     let reals: Vec<(f64, f64)> = ab
         .iter()
-        .map(|&(a, b)| {
-            let m = a * si / so;
+        .enumerate()
+        .map(|(c, &(a, b))| {
+            let q = qin[if qin.len() == 1 { 0 } else { c }];
+            let m = a * q.scale as f64 / so;
+            let fold = if shared { 0.0 } else { q.zero_point as f64 * m };
             let limit = 255.0 * m.abs() + 1024.0;
-            (m, (b / so).clamp(-limit, limit))
+            (m, (b / so - fold).clamp(-limit, limit))
         })
         .collect();
     if reals.iter().any(|(m, a)| !m.is_finite() || !a.is_finite()) {
         return None;
     }
-    // The runtime evaluates the transform in i32 and requires
-    // 255·|mul| + |add| + 2^(shift-1) < 2^30 (ingot_rt::AffineTransform);
-    // one unit of margin per term absorbs the rounding of mul and add.
+    // One unit of margin per term absorbs the rounding of mul and add.
     let worst = reals.iter().fold(0f64, |acc, &(m, a)| {
         acc.max(255.0 * (m.abs() + 1.0) + a.abs() + 1.0)
     });
@@ -207,7 +240,7 @@ pub(crate) fn affine_transform(
         mul,
         add,
         shift: shift as u32,
-        zp_in: qin.zero_point,
+        zp_in,
         zp_out: qout.zero_point,
         clamp,
     })
@@ -315,7 +348,8 @@ mod tests {
             zero_point: -128,
         };
         let ab = [(1.5, 0.2), (-0.7, 1.0), (0.0, 0.0)];
-        let t = affine_transform(&ab, qin, qout, activation_clamp(Activation::Relu, qout)).unwrap();
+        let t =
+            affine_transform(&ab, &[qin], qout, activation_clamp(Activation::Relu, qout)).unwrap();
         for (c, &(a, b)) in ab.iter().enumerate() {
             for q in -128..=127i32 {
                 let y = (a * 0.1 * (q + 20) as f64 + b).max(0.0);
@@ -327,5 +361,75 @@ mod tests {
                 );
             }
         }
+    }
+
+    #[test]
+    fn per_channel_input_parameters_fold_into_the_transform() {
+        // Two slices: channel 0 at (0.1, -20), channel 1 at (0.5, 30).
+        let qin = [
+            QParams {
+                scale: 0.1,
+                zero_point: -20,
+            },
+            QParams {
+                scale: 0.5,
+                zero_point: 30,
+            },
+        ];
+        let qout = QParams {
+            scale: 0.05,
+            zero_point: -128,
+        };
+        let ab = [(1.5, 0.2), (-0.7, 1.0)];
+        let t =
+            affine_transform(&ab, &qin, qout, activation_clamp(Activation::Relu, qout)).unwrap();
+        let ChannelTransform::Affine { zp_in, .. } = &t else {
+            panic!("affine")
+        };
+        assert_eq!(*zp_in, 0);
+        for (c, &(a, b)) in ab.iter().enumerate() {
+            let (s, z) = (qin[c].scale as f64, qin[c].zero_point);
+            for q in -128..=127i32 {
+                // real = s_c·(q − z_c) (Jacob et al. 2018, §2.1).
+                let y = (a * s * (q - z) as f64 + b).max(0.0);
+                let want = (round_half_up(y / 0.05) - 128.0).clamp(-128.0, 127.0) as i32;
+                let got = apply_transform(&t, c, q as i8) as i32;
+                assert!(
+                    (got - want).abs() <= 1,
+                    "channel {c} code {q}: {got} vs {want}"
+                );
+            }
+        }
+        // Equal per-channel parameters give the per-tensor transform.
+        let one = affine_transform(
+            &ab,
+            &qin[..1],
+            qout,
+            Clamp {
+                min: -128,
+                max: 127,
+            },
+        );
+        let same = affine_transform(
+            &ab,
+            &[qin[0], qin[0]],
+            qout,
+            Clamp {
+                min: -128,
+                max: 127,
+            },
+        );
+        assert_eq!(one, same);
+        // Neither one set nor one per channel.
+        assert!(affine_transform(
+            &ab,
+            &[qin[0]; 3],
+            qout,
+            Clamp {
+                min: -128,
+                max: 127
+            }
+        )
+        .is_none());
     }
 }

@@ -177,7 +177,7 @@ impl<'q> Simulator<'q> {
                 }
                 let (c, hw) = (inp.shape.c, inp.shape.pixels());
                 let codes: Vec<i8> = (0..n)
-                    .map(|i| quant::quantize(v[(i % c) * hw + i / c], inp.qp))
+                    .map(|i| quant::quantize(v[(i % c) * hw + i / c], self.q.input_qp()))
                     .collect();
                 ingot_rt::copy_in(&codes, &mut self.arena, r).map_err(kerr)?;
             }
@@ -206,9 +206,11 @@ impl<'q> Simulator<'q> {
         let s = self.q.step(id);
         let out = self.refs[s.output.index()];
         let input = self.refs[s.inputs[0].index()];
-        let in_zp = self.q.map(s.inputs[0]).qp.zero_point;
+        // `QGraph::verify` lets only a concatenation write a per-slice map,
+        // and only readers that take no zero point from here read one.
+        let in_zp = self.q.map(s.inputs[0]).qp.channel(0).zero_point;
         let oq = |c: super::Clamp| {
-            OutputQuant::clamped(self.q.map(s.output).qp.zero_point, c.min, c.max)
+            OutputQuant::clamped(self.q.map(s.output).qp.channel(0).zero_point, c.min, c.max)
         };
         let arena = &mut self.arena;
         match &s.kernel {
@@ -274,7 +276,7 @@ impl<'q> Simulator<'q> {
                 let b = self.q.map(s.inputs[1]);
                 let params = ingot_rt::AddParams {
                     a_zp: in_zp,
-                    b_zp: b.qp.zero_point,
+                    b_zp: b.qp.channel(0).zero_point,
                     a_rq: to_requant(a.a),
                     b_rq: to_requant(a.b),
                     out_rq: to_requant(a.out),
@@ -313,8 +315,9 @@ impl<'q> Simulator<'q> {
         let map = self.q.map(m);
         let hwc = self.map_hwc(m);
         let (c, hw) = (map.shape.c, map.shape.pixels());
+        let qps = map.qp.per_channel(c);
         (0..hwc.len())
-            .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], map.qp))
+            .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], qps[i / hw]))
             .collect()
     }
 }

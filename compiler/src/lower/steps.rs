@@ -33,6 +33,14 @@ fn shifted(ranges: &Ranges, layer: &str, mut bias: Vec<f32>) -> Vec<f32> {
     bias
 }
 
+/// The largest `|a[c]|·s_c/s_out` of a channel transform (for errors).
+fn max_ratio(ab: &[(f64, f64)], qin: &[QParams], qout: QParams) -> f64 {
+    ab.iter()
+        .zip(qin.iter().cycle())
+        .fold(0f64, |m, (&(a, _), q)| m.max(a.abs() * q.scale as f64))
+        / qout.scale as f64
+}
+
 pub(super) struct Builder<'a> {
     pub(super) g: &'a Graph,
     pub(super) opts: &'a LowerOptions,
@@ -43,7 +51,7 @@ pub(super) struct Builder<'a> {
 }
 
 impl Builder<'_> {
-    pub(super) fn add_map(&mut self, m: MapId, qp: QParams, shape: Shape) -> QMapId {
+    pub(super) fn add_map(&mut self, m: MapId, qp: MapQuant, shape: Shape) -> QMapId {
         let id = QMapId(self.maps.len() as u32);
         self.maps.push(QMap {
             name: self.g.map_name(m).into(),
@@ -90,7 +98,7 @@ impl Builder<'_> {
         &mut self,
         id: LayerId,
         out: MapId,
-        out_qp: QParams,
+        out_q: MapQuant,
         bn: Option<LayerId>,
         act: Activation,
         pre: Option<PreAct>,
@@ -100,6 +108,17 @@ impl Builder<'_> {
     ) -> Result<(), LowerError> {
         let g = self.g;
         let layer = g.layer(id);
+        // Only a concatenation writes a per-slice map, and it has no clamp.
+        let out_qp = match (&out_q, &layer.op) {
+            (MapQuant::Tensor(qp), _) => *qp,
+            (MapQuant::Slices(_), Op::Concat) => out_q.channel(0),
+            (MapQuant::Slices(_), _) => {
+                return Err(LowerError::Internal(format!(
+                    "`{}` would write a per-slice map",
+                    layer.name
+                )))
+            }
+        };
         let clamp = activation_clamp(act, out_qp);
         // Inputs as stored; a pre-activation convolution reads the batch
         // norm's input.
@@ -117,7 +136,28 @@ impl Builder<'_> {
                 return Err(unsupported(g, id, format!("reads a flattened {stored} map; int8 maps are stored HWC, so flattening is only supported into a linear layer")));
             }
         }
-        let in_qp: Vec<QParams> = inputs.iter().map(|q| self.maps[q.index()].qp).collect();
+        let in_q: Vec<MapQuant> = inputs
+            .iter()
+            .map(|q| self.maps[q.index()].qp.clone())
+            .collect();
+        // Per-channel parameters of input 0 (read through a channel
+        // transform), and per-tensor ones for every other reader.
+        let in_channels: Vec<QParams> = in_q
+            .first()
+            .map(|q| q.per_channel(g.shape(read[0]).c))
+            .unwrap_or_default();
+        let absorbs = super::classes::absorbs_slices(&layer.op, pre.is_some());
+        let in_qp: Vec<QParams> = in_q
+            .iter()
+            .map(|q| match q.tensor() {
+                Some(qp) => Ok(qp),
+                None if absorbs => Ok(q.channel(0)),
+                None => Err(LowerError::Internal(format!(
+                    "`{}` reads a per-slice map",
+                    layer.name
+                ))),
+            })
+            .collect::<Result<_, _>>()?;
         let out_shape = g.shape(out);
         let kernel = match &layer.op {
             Op::Conv2d(conv) => {
@@ -135,15 +175,14 @@ impl Builder<'_> {
                             .iter()
                             .map(|&(a, b)| (a as f64, b as f64))
                             .collect();
-                        let t = affine_transform(&ab, in_qp[0], dom, activation_clamp(p.act, dom))
-                            .ok_or_else(|| LowerError::Multiplier {
-                                layer: g.layer(p.bn).name.clone(),
-                                op: "batch_norm",
-                                what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
-                                value: ab.iter().fold(0f64, |m, &(a, _)| m.max(a.abs()))
-                                    * in_qp[0].scale as f64
-                                    / dom.scale as f64,
-                            })?;
+                        let t =
+                            affine_transform(&ab, &in_channels, dom, activation_clamp(p.act, dom))
+                                .ok_or_else(|| LowerError::Multiplier {
+                                    layer: g.layer(p.bn).name.clone(),
+                                    op: "batch_norm",
+                                    what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
+                                    value: max_ratio(&ab, &in_channels, dom),
+                                })?;
                         (Some(t), dom)
                     }
                 };
@@ -321,7 +360,7 @@ impl Builder<'_> {
                     .iter()
                     .map(|&(a, b)| (a as f64, b as f64))
                     .collect();
-                QKernel::Channel(self.transform(id, &ab, in_qp[0], out_qp, clamp)?)
+                QKernel::Channel(self.transform(id, &ab, &in_channels, out_qp, clamp)?)
             }
             Op::Relu | Op::Relu6 => {
                 let act = act_of(&layer.op).unwrap_or(Activation::None);
@@ -329,7 +368,7 @@ impl Builder<'_> {
                 QKernel::Channel(self.transform(
                     id,
                     &ab,
-                    in_qp[0],
+                    &in_channels,
                     out_qp,
                     activation_clamp(act, out_qp),
                 )?)
@@ -342,7 +381,7 @@ impl Builder<'_> {
             }
         };
         let stored_shape = out_shape;
-        let qid = self.add_map(out, out_qp, stored_shape);
+        let qid = self.add_map(out, out_q, stored_shape);
         self.steps.push(QStep {
             name: layer.name.clone(),
             layers,
@@ -357,7 +396,7 @@ impl Builder<'_> {
         &self,
         id: LayerId,
         ab: &[(f64, f64)],
-        qin: QParams,
+        qin: &[QParams],
         qout: QParams,
         clamp: Clamp,
     ) -> Result<ChannelTransform, LowerError> {
@@ -365,8 +404,7 @@ impl Builder<'_> {
             layer: self.g.layer(id).name.clone(),
             op: self.g.layer(id).op.kind(),
             what: "channel transform multiplier a·s_in/s_out".into(),
-            value: ab.iter().fold(0f64, |m, &(a, _)| m.max(a.abs())) * qin.scale as f64
-                / qout.scale as f64,
+            value: max_ratio(ab, qin, qout),
         })
     }
 

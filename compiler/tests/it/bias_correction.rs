@@ -23,7 +23,7 @@ fn first_layer_shift_by_hand() {
     let raw: Vec<Vec<f32>> = (0..6).map(|s| net.random_input(500 + s)).collect();
     let ranges = minmax_ranges(&g, &raw);
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
-    let in_qp = q.map(q.input).qp;
+    let in_qp = q.input_qp();
     let inputs: Vec<Vec<f32>> = raw
         .iter()
         .map(|x| {
@@ -100,7 +100,7 @@ fn shifts_reach_the_lowered_biases() {
         let QKernel::Linear(l) = &s.kernel else {
             panic!()
         };
-        (l.clone(), q.map(s.inputs[0]).qp.scale)
+        (l.clone(), q.map(s.inputs[0]).qp.tensor().unwrap().scale)
     };
     let ((a, s_in), (b, _)) = (lin(&plain), lin(&shifted));
     assert_eq!(a.weights, b.weights);

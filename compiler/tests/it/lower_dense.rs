@@ -1,5 +1,5 @@
 //! Lowering of densely connected (pre-activation) networks: the fused
-//! BN-ReLU input transform, shared concatenation quantization, simulation
+//! BN-ReLU input transform, per-slice concatenation quantization, simulation
 //! against the float graph, and the RAM the fusion saves.
 
 use crate::common;
@@ -41,7 +41,7 @@ fn dense_net_simulation_matches_float_within_a_few_steps() {
         .iter()
         .any(|s| s.name.contains("bn") && matches!(s.kernel, QKernel::Conv2d(_))));
 
-    let out = q.map(q.output);
+    let out = q.output_qp();
     let mut sim = Simulator::new(&q);
     let mut worst = 0f32;
     let mut agree = 0;
@@ -49,19 +49,19 @@ fn dense_net_simulation_matches_float_within_a_few_steps() {
         let codes = sim.run(SimInput::Chw(x)).unwrap();
         let float = eval(&g, x).pop().unwrap();
         for (c, f) in codes.iter().zip(&float) {
-            worst = worst.max((dequantize(*c, out.qp) - f).abs() / out.qp.scale);
+            worst = worst.max((dequantize(*c, out) - f).abs() / out.scale);
         }
         let am = |v: &[f32]| {
             v.iter()
                 .enumerate()
                 .fold(0, |b, (i, &a)| if a > v[b] { i } else { b })
         };
-        let deq: Vec<f32> = codes.iter().map(|&c| dequantize(c, out.qp)).collect();
+        let deq: Vec<f32> = codes.iter().map(|&c| dequantize(c, out)).collect();
         agree += usize::from(am(&deq) == am(&float));
     }
     eprintln!(
         "dense small: worst output error {worst:.2} steps of {}, arg-max agreement {agree}/{}",
-        out.qp.scale,
+        out.scale,
         images.len()
     );
     // Fifteen int8 layers deep, each adding at most half a step of rounding
@@ -92,8 +92,10 @@ fn fused_transform_equals_materialised_bn_relu_code_for_code() {
             c.input_zp, dom.zero_point,
             "padding must be the transformed domain's zero"
         );
-        let src = q.map(s.inputs[0]).qp;
+        let src_q = &q.map(s.inputs[0]).qp;
         for (ch, &(a, b)) in bn.affine().iter().enumerate() {
+            // Each channel at its own slice's parameters.
+            let src = src_q.channel(ch);
             for code in -128..=127i32 {
                 // Materialise: dequantize, BN and ReLU in f32, quantize.
                 let y = (a * dequantize(code as i8, src) + b).max(0.0);
@@ -115,54 +117,50 @@ fn fused_transform_equals_materialised_bn_relu_code_for_code() {
 }
 
 #[test]
-fn concatenation_chain_shares_one_quantization() {
+fn concatenation_chain_is_quantized_per_slice() {
     let (g, images) = small();
     let ranges = calibrate(&g, &images);
     let q = lower(&g, &ranges, &LowerOptions::default()).unwrap();
-    let qp_of = |name: &str| {
+    let map = |name: &str| {
         q.maps
             .iter()
             .find(|m| m.name == name)
             .unwrap_or_else(|| panic!("no map {name}"))
-            .qp
     };
-    // Block 0: the stem output (x0), every concat and every new feature map.
-    let members = [
-        "stem.relu",
-        "b0.l0.cat",
-        "b0.l1.cat",
-        "b0.l2.cat",
-        "b0.out",
-        "b0.l0.conv2",
-        "b0.l1.conv2",
-        "b0.l2.conv2",
-    ];
-    let shared = qp_of("b0.out");
+    // Every reader of block 0's concatenations is a fused BN-ReLU or the
+    // next concatenation, so each member keeps its own range's parameters.
+    let members = ["stem.relu", "b0.l0.conv2", "b0.l1.conv2", "b0.l2.conv2"];
+    let mut joined = Vec::new();
     for m in members {
-        assert_eq!(qp_of(m), shared, "{m}");
+        let own = activation_qparams(ranges.get(g.find_layer(m).unwrap().output()));
+        assert_eq!(map(m).qp.tensor(), Some(own), "{m}");
+        joined.extend(vec![own; map(m).shape.c]);
     }
-    // The shared range is the union of the members' ranges.
-    let (mut lo, mut hi) = (0f32, 0f32);
-    for m in members {
-        let r = ranges.get(g.find_layer(m).unwrap().output());
-        lo = lo.min(r.min);
-        hi = hi.max(r.max);
-    }
-    assert!((shared.scale - (hi - lo) / 255.0).abs() <= 1e-6 * shared.scale);
-    // Block 1 is a separate group.
-    assert_ne!(qp_of("b1.out"), shared);
-    // Producers write the shared scale directly: the concat is a copy.
+    // The block's output carries them side by side, in concatenation order.
+    let out = map("b0.out");
+    assert!(out.qp.is_sliced());
+    assert_eq!(out.qp.per_channel(out.shape.c), joined);
+    // The members' scales differ: the stem is not given the block's widest.
+    let scales: Vec<f32> = members
+        .iter()
+        .map(|m| map(m).qp.tensor().unwrap().scale)
+        .collect();
+    assert!(scales.iter().any(|&s| s != scales[0]), "{scales:?}");
+    // Producers write their own slice: the concat copies codes unchanged.
     for s in q
         .steps
         .iter()
         .filter(|s| matches!(s.kernel, QKernel::Concat))
     {
-        assert!(
-            s.inputs.iter().all(|&m| q.map(m).qp == q.map(s.output).qp),
-            "{}",
-            s.name
-        );
+        let ins: Vec<_> = s
+            .inputs
+            .iter()
+            .flat_map(|&m| q.map(m).qp.per_channel(q.map(m).shape.c))
+            .collect();
+        let o = q.map(s.output);
+        assert_eq!(ins, o.qp.per_channel(o.shape.c), "{}", s.name);
     }
+    q.verify().unwrap();
 }
 
 #[test]

@@ -22,7 +22,7 @@ fn check(net: &zoo::Net, n: usize) -> (f32, usize, usize) {
     let q = lower(&g, &minmax_ranges(&g, &images), &LowerOptions::default()).unwrap();
     let reference = Reference::new(&g);
     let mut sim = Simulator::new(&q);
-    let qp = q.map(q.output).qp;
+    let qp = q.output_qp();
     let (mut worst, mut agree) = (0f32, 0);
     for x in &images {
         let codes = sim.run(SimInput::Chw(x)).unwrap();
@@ -73,7 +73,12 @@ fn pre_activation_3x3_convolution_pads_with_the_transformed_zero() {
     for s in &q.steps {
         if let QKernel::Conv2d(c) = &s.kernel {
             if c.transform.is_some() && c.kernel == [3, 3] {
-                assert_ne!(c.input_zp, q.map(s.inputs[0]).qp.zero_point, "{}", s.name);
+                assert_ne!(
+                    c.input_zp,
+                    q.map(s.inputs[0]).qp.channel(0).zero_point,
+                    "{}",
+                    s.name
+                );
                 assert_eq!(
                     c.input_zp, -128,
                     "{}: a ReLU domain's zero is code -128",

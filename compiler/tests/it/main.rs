@@ -29,5 +29,6 @@ mod plan_nets;
 mod plan_targets;
 mod reference_vs_candle;
 mod sensitivity;
+mod slices;
 mod stats;
 mod zoo_reference;

@@ -101,7 +101,7 @@ fn one_layer_checked_by_hand() {
     };
     let src = q.map(step.inputs[0]);
     let (c, hw) = (src.shape.c, src.shape.pixels());
-    let out_qp = q.map(step.output).qp;
+    let out_qp = q.output_qp();
     // Real weights in the float CHW order and real biases.
     let mut w = vec![0f64; l.weights.len()];
     let mut b = vec![0f64; l.out_features];
@@ -114,8 +114,9 @@ fn one_layer_checked_by_hand() {
             }
         }
         let sum: i64 = row.iter().map(|&v| v as i64).sum();
-        let bq = l.bias[o] as f64 + src.qp.zero_point as f64 * sum as f64;
-        b[o] = bq * src.qp.scale as f64 * l.weight_scales[o] as f64;
+        let src_qp = src.qp.tensor().unwrap();
+        let bq = l.bias[o] as f64 + src_qp.zero_point as f64 * sum as f64;
+        b[o] = bq * src_qp.scale as f64 * l.weight_scales[o] as f64;
     }
     let reference = Reference::new(&g);
     let fc_input = g.layer(g.find_layer("fc").unwrap()).inputs[0];

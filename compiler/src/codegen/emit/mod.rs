@@ -132,10 +132,11 @@ pub fn module(ctx: &Ctx<'_>) -> String {
     let out_len = us(output.shape.len());
     let arena = us(s.arena_bytes.max(1));
     let patch = us(s.patch_bytes / 2);
-    let in_scale = Literal::f32_suffixed(input.qp.scale);
-    let out_scale = Literal::f32_suffixed(output.qp.scale);
-    let in_zp = int(input.qp.zero_point as i64);
-    let out_zp = int(output.qp.zero_point as i64);
+    let (iq, oq) = (q.input_qp(), q.output_qp());
+    let in_scale = Literal::f32_suffixed(iq.scale);
+    let out_scale = Literal::f32_suffixed(oq.scale);
+    let in_zp = int(iq.zero_point as i64);
+    let out_zp = int(oq.zero_point as i64);
     let labels: Vec<&str> = q.labels.iter().map(String::as_str).collect();
     let n_labels = us(labels.len());
     let name = q.name.as_str();
