@@ -13,3 +13,4 @@ mod cli_inspect;
 mod cli_plan;
 mod demo;
 mod digits_accuracy;
+mod separable_accuracy;
