@@ -19,9 +19,10 @@
 //! simulator (`lower::sim`, bit-exact with the generated module).
 
 use ingot_compiler::calibrate::Method;
-use ingot_compiler::check::compare;
 use ingot_compiler::check::prepare::{self, PrepareOptions};
+use ingot_compiler::check::{compare, emulation_or_skip, RunOn};
 use ingot_compiler::driver::RangesSource;
+use ingot_testkit::ingot;
 use std::path::{Path, PathBuf};
 
 fn demo() -> PathBuf {
@@ -91,4 +92,88 @@ fn separable_minmax_with_bias_correction_stays_within_half_a_point() {
         100.0 * agreement
     );
     assert!(drop_pp <= 0.5, "int8 accuracy drop {drop_pp} pp");
+}
+
+/// The generated module built for emulated Cortex-M0+ (int8 rows) and
+/// Cortex-M4 (int8 words) gives the integer simulator's outputs bit for bit
+/// (the simulator is the host reference; `ingot check` compares every
+/// output byte), on two eval images per class to keep the emulated runs
+/// short; min/max ranges from the calibration images.
+#[test]
+fn separable_is_bit_identical_on_emulated_m0plus_and_m4() {
+    let cores: Vec<&str> = [(RunOn::M0plus, "m0plus"), (RunOn::M4, "m4")]
+        .into_iter()
+        .filter(|&(on, _)| emulation_or_skip(on))
+        .map(|(_, name)| name)
+        .collect();
+    if cores.is_empty() {
+        return;
+    }
+    let d = demo();
+    let tmp = tempfile::tempdir().unwrap();
+    let images = tmp.path().join("images");
+    for class in ["ok", "scratch", "pit", "stain"] {
+        std::fs::create_dir_all(images.join(class)).unwrap();
+        for f in ["0000.png", "0001.png"] {
+            std::fs::copy(
+                d.join("data/eval").join(class).join(f),
+                images.join(class).join(f),
+            )
+            .unwrap();
+        }
+    }
+    let ranges = tmp.path().join("separable.ranges.json");
+    let graph = d.join("model/separable.graph.json");
+    let out = ingot!()
+        .arg("calibrate")
+        .arg(&graph)
+        .arg("--images")
+        .arg(d.join("data/calibration"))
+        .args(["--method", "minmax", "-o"])
+        .arg(&ranges)
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    for core in cores {
+        let report = tmp.path().join(format!("report-{core}"));
+        let out = ingot!()
+            .arg("check")
+            .arg(&graph)
+            .arg("--ranges")
+            .arg(&ranges)
+            .arg("--images")
+            .arg(&images)
+            .args(["--on", core, "--report"])
+            .arg(&report)
+            .output()
+            .unwrap();
+        let stdout = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            out.status.success(),
+            "{core}: {stdout}\n{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        assert!(stdout.contains("bit-identical:  yes"), "{core}: {stdout}");
+        let json: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+                .unwrap();
+        assert_eq!(json["images"], 8, "{core}");
+        assert!(
+            json["run_on"].as_str().unwrap().contains(core),
+            "{core}: {}",
+            json["run_on"]
+        );
+        // 1,371,648 MACs per image (README); every MAC costs at least one
+        // instruction on these cores.
+        let instr = &json["instructions"];
+        assert_eq!(instr["macs"], 1_371_648, "{core}");
+        assert!(
+            instr["per_inference_mean"].as_u64().unwrap() > 1_371_648,
+            "{core}: {instr}"
+        );
+    }
 }
