@@ -153,10 +153,10 @@ impl Net {
             p.pw_bn.export(&mut store, &n("pw_bn"))?;
             layers.push(LayerFile::conv2d(&n("dw"), &x, false, p.dw.stride, 1).attr("groups", c));
             layers.push(LayerFile::batch_norm(&n("dw_bn"), &n("dw")));
-            layers.push(LayerFile::new(&n("dw_relu"), act, &n("dw_bn")));
+            layers.push(LayerFile::new(n("dw_relu"), act, n("dw_bn")));
             layers.push(LayerFile::conv2d(&n("pw"), &n("dw_relu"), false, 1, 0));
             layers.push(LayerFile::batch_norm(&n("pw_bn"), &n("pw")));
-            layers.push(LayerFile::new(&n("pw_relu"), act, &n("pw_bn")));
+            layers.push(LayerFile::new(n("pw_relu"), act, n("pw_bn")));
             x = n("pw_relu");
         }
         self.fc.export(&mut store, "fc")?;
