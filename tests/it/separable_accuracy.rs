@@ -30,7 +30,7 @@ fn demo() -> PathBuf {
 }
 
 /// Eval images, float correct, int8 correct, int8/float top-1 agreement.
-fn figures(bias_correction: bool) -> (usize, usize, usize, f64) {
+fn figures(bias_correction: bool, equalize: bool) -> (usize, usize, usize, f64) {
     let d = demo();
     let p = prepare::prepare(
         &d.join("model/separable.graph.json"),
@@ -39,6 +39,7 @@ fn figures(bias_correction: bool) -> (usize, usize, usize, f64) {
             let mut o = PrepareOptions::default();
             o.ranges = RangesSource::Images(d.join("data/calibration"), Method::MinMax);
             o.bias_correction = bias_correction;
+            o.equalize = equalize;
             o
         },
     )
@@ -62,7 +63,7 @@ const FLOAT_CORRECT: usize = 398;
 
 #[test]
 fn separable_float_matches_training_and_minmax_int8_is_within_half_a_point() {
-    let (n, float_ok, int8_ok, agreement) = figures(false);
+    let (n, float_ok, int8_ok, agreement) = figures(false, false);
     let pct = |k: usize| 100.0 * k as f64 / n as f64;
     let drop_pp = pct(float_ok) - pct(int8_ok);
     eprintln!(
@@ -85,13 +86,37 @@ fn separable_float_matches_training_and_minmax_int8_is_within_half_a_point() {
 /// this model).
 #[test]
 fn separable_minmax_with_bias_correction_stays_within_half_a_point() {
-    let (n, float_ok, int8_ok, agreement) = figures(true);
+    let (n, float_ok, int8_ok, agreement) = figures(true, false);
     let drop_pp = 100.0 * (float_ok as f64 - int8_ok as f64) / n as f64;
     eprintln!(
         "separable, minmax + bias correction: int8 {int8_ok} / {n} right (float {float_ok}), agreement {:.2}%",
         100.0 * agreement
     );
     assert!(drop_pp <= 0.5, "int8 accuracy drop {drop_pp} pp");
+}
+
+/// Cross-layer equalization (Nagel et al. 2019, §4.1) applies to all six
+/// depthwise-pointwise pairs of this ReLU network (none is skipped), leaves
+/// both layers of every pair with the same channel-range ratio (the
+/// paper's definition: both ranges become `sqrt(r1 * r2)`), and keeps
+/// min/max int8 within the goal (README: 99.50%).
+#[test]
+fn separable_equalizes_all_six_pairs_and_stays_within_half_a_point() {
+    let mut g = ingot_compiler::load(&demo().join("model/separable.graph.json")).unwrap();
+    let eq = ingot_compiler::graph::equalize::equalize(&mut g);
+    assert_eq!(eq.pairs.len(), 6, "{eq:?}");
+    assert_eq!(eq.equalized(), 6, "{eq:?}");
+    for p in &eq.pairs {
+        let [a, b] = p.ratio_after;
+        assert!((a - b).abs() <= 1e-3 * a, "{p:?}");
+        assert!(a < p.ratio_before[0], "first layer's ratio shrinks: {p:?}");
+    }
+    let (n, float_ok, int8_ok, _) = figures(false, true);
+    let drop_pp = 100.0 * (float_ok as f64 - int8_ok as f64) / n as f64;
+    assert!(
+        drop_pp <= 0.5,
+        "int8 accuracy drop {drop_pp} pp with --equalize"
+    );
 }
 
 /// The generated module built for emulated Cortex-M0+ (int8 rows) and
