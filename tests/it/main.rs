@@ -14,3 +14,4 @@ mod cli_plan;
 mod demo;
 mod demo_slices;
 mod digits_accuracy;
+mod separable_accuracy;

@@ -1,4 +1,4 @@
-//! Runs the two exported models with the compiler's f32 reference on their
+//! Runs the three exported models with the compiler's f32 reference on their
 //! committed image folders and prints float accuracy per class.
 //!
 //! ```text
@@ -13,6 +13,11 @@ fn main() -> anyhow::Result<()> {
         (
             "brackets (invented eval set)",
             crate_dir().join("model/brackets.graph.json"),
+            crate_dir().join("data/eval"),
+        ),
+        (
+            "separable (invented eval set)",
+            crate_dir().join("model/separable.graph.json"),
             crate_dir().join("data/eval"),
         ),
         (

@@ -288,49 +288,6 @@ fn args() -> Result<Args> {
     Ok(a)
 }
 
-/// The committed evaluation set: pixels (0..=255 as f32) and labels.
-fn load_eval(dir: &std::path::Path) -> Result<(Vec<f32>, Vec<usize>)> {
-    let (mut px, mut labels) = (Vec::new(), Vec::new());
-    for (c, name) in CLASSES.iter().enumerate() {
-        for p in ingot_demo::png_files(&dir.join("eval").join(name))? {
-            let (w, h, bytes) = ingot_demo::read_gray(&p)?;
-            anyhow::ensure!(
-                (w as usize, h as usize) == (SIZE, SIZE),
-                "{}: {w}x{h}",
-                p.display()
-            );
-            px.extend(bytes.iter().map(|&b| b as f32));
-            labels.push(c);
-        }
-    }
-    Ok((px, labels))
-}
-
-/// Normalised `[n, 1, 64, 64]` tensor from raw byte values.
-fn to_input(bytes: &[f32], mean: f32, std: f32) -> Result<Tensor> {
-    let n = bytes.len() / (SIZE * SIZE);
-    let v: Vec<f32> = bytes
-        .iter()
-        .map(|&b| (b * (1.0 / 255.0) - mean) / std)
-        .collect();
-    Ok(Tensor::from_vec(v, (n, 1, SIZE, SIZE), &Device::Cpu)?)
-}
-
-fn predict(net: &Net, x: &Tensor) -> Result<(Vec<usize>, Tensor)> {
-    let n = x.dim(0)?;
-    let mut outs = Vec::new();
-    for s in (0..n).step_by(50) {
-        // Detached: a result keeps its whole autograd graph (every
-        // activation of the pass) alive otherwise.
-        outs.push(
-            net.forward(&x.narrow(0, s, 50.min(n - s))?, false)?
-                .detach(),
-        );
-    }
-    let logits = Tensor::cat(&outs, 0)?;
-    Ok((argmax_rows(&logits)?, logits))
-}
-
 fn main() -> Result<()> {
     default_single_thread();
     let a = args()?;
@@ -355,8 +312,8 @@ fn main() -> Result<()> {
         a.seed,
         t_start.elapsed().as_secs_f64()
     );
-    let (eval_px, eval_y) = load_eval(&a.data)?;
-    let eval_x = to_input(&eval_px, mean, std)?;
+    let (eval_px, eval_y) = load_bracket_eval(&a.data)?;
+    let eval_x = bracket_input(&eval_px, mean, std)?;
     println!(
         "eval set: {} images from {}",
         eval_y.len(),
@@ -399,7 +356,7 @@ fn main() -> Result<()> {
             for &i in idx {
                 px.extend_from_slice(&train_px[i * img_len..(i + 1) * img_len]);
             }
-            let x = to_input(&px, mean, std)?;
+            let x = bracket_input(&px, mean, std)?;
             let y = Tensor::from_vec(
                 idx.iter().map(|&i| train_y[i]).collect::<Vec<u32>>(),
                 a.batch,
@@ -424,7 +381,7 @@ fn main() -> Result<()> {
                 );
             }
         }
-        let (pred, _) = predict(&net, &eval_x)?;
+        let (pred, _) = predict(|x| net.forward(x, false), &eval_x)?;
         let acc =
             pred.iter().zip(&eval_y).filter(|(p, t)| p == t).count() as f64 / eval_y.len() as f64;
         println!(
@@ -444,7 +401,7 @@ fn main() -> Result<()> {
     );
 
     let labels: Vec<String> = CLASSES.iter().map(|s| s.to_string()).collect();
-    let (pred, logits) = predict(&net, &eval_x)?;
+    let (pred, logits) = predict(|x| net.forward(x, false), &eval_x)?;
     println!("float (candle, eval mode) on the committed eval set:");
     report(&labels, &eval_y, &pred);
 

@@ -145,6 +145,10 @@ fn exported_models_load_and_agree_with_their_data() {
     let b = ingot_compiler::frontend::load(&crate_dir().join("model/brackets.graph.json")).unwrap();
     assert_eq!(b.labels(), CLASSES);
     assert_eq!(b.input().pixel_scale, 1.0 / 255.0);
+    let s =
+        ingot_compiler::frontend::load(&crate_dir().join("model/separable.graph.json")).unwrap();
+    assert_eq!(s.labels(), CLASSES);
+    assert_eq!(s.input(), b.input(), "same task, same preprocessing");
     let d = ingot_compiler::frontend::load(&optdigits().join("model/digits.graph.json")).unwrap();
     assert_eq!(d.labels().len(), 10);
     assert_eq!(d.input().pixel_scale, 1.0 / 255.0);

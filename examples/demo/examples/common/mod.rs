@@ -167,6 +167,81 @@ impl Conv {
     }
 }
 
+/// Depthwise 3x3-style convolution (`groups == channels`: each channel is
+/// filtered by its own `k x k` kernel) with square zero padding, on
+/// channel-major maps; no bias (a batch norm follows).
+pub struct DwConv {
+    /// `[C, 1, k, k]`, the graph format's depthwise weight shape.
+    pub w: Var,
+    /// Zero padding on every side.
+    pub pad: usize,
+    /// Stride (both axes).
+    pub stride: usize,
+}
+
+impl DwConv {
+    /// A depthwise convolution over `c` channels, He-normal weights (fan-in `k * k`).
+    pub fn new(init: &mut Init, c: usize, k: usize, pad: usize, stride: usize) -> Result<Self> {
+        Ok(DwConv {
+            w: init.conv(c, 1, k)?,
+            pad,
+            stride,
+        })
+    }
+
+    /// `x` `[C, N, H, W]` to `[C, N, OH, OW]`: the `k * k` shifted (and, for
+    /// stride `s`, subsampled) views of the padded map, weighted per channel
+    /// and summed.
+    pub fn forward(&self, x: &Tensor) -> Result<Tensor> {
+        let (c, n, h, wd) = x.dims4()?;
+        let (o, one, kh, kw) = self.w.dims4()?;
+        anyhow::ensure!(
+            o == c && one == 1,
+            "depthwise conv: weight [{o}, {one}, ..], map has {c} channels"
+        );
+        let (p, s) = (self.pad, self.stride);
+        let (oh, ow) = ((h + 2 * p - kh) / s + 1, (wd + 2 * p - kw) / s + 1);
+        let xp = if p > 0 {
+            x.pad_with_zeros(2, p, p)?.pad_with_zeros(3, p, p)?
+        } else {
+            x.clone()
+        };
+        let pick = |first: usize, len: usize| -> Result<Tensor> {
+            let idx: Vec<u32> = (0..len).map(|i| (first + i * s) as u32).collect();
+            Ok(Tensor::from_vec(idx, len, &Device::Cpu)?)
+        };
+        let mut taps = Vec::with_capacity(kh * kw);
+        for ky in 0..kh {
+            let rows = if s == 1 {
+                xp.narrow(2, ky, oh)?
+            } else {
+                xp.index_select(&pick(ky, oh)?, 2)?
+            };
+            for kx in 0..kw {
+                taps.push(if s == 1 {
+                    rows.narrow(3, kx, ow)?
+                } else {
+                    rows.index_select(&pick(kx, ow)?, 3)?
+                });
+            }
+        }
+        // [C, k*k, N*OH*OW] weighted by [C, k*k, 1], summed over the taps.
+        let cols = Tensor::stack(&taps, 1)?.reshape((c, kh * kw, n * oh * ow))?;
+        let w = self.w.as_tensor().reshape((c, kh * kw, 1))?;
+        Ok(cols.broadcast_mul(&w)?.sum(1)?.reshape((c, n, oh, ow))?)
+    }
+
+    /// Trainable tensors.
+    pub fn params(&self) -> Vec<Var> {
+        vec![self.w.clone()]
+    }
+
+    /// Stores `{name}.weight`.
+    pub fn export(&self, store: &mut TensorStore, name: &str) -> Result<()> {
+        put(store, &format!("{name}.weight"), self.w.as_tensor())
+    }
+}
+
 /// Batch normalisation over the channels of channel-major maps.
 pub struct Bn {
     /// Scale.
@@ -246,6 +321,11 @@ impl Bn {
 /// `relu(bn(x))`.
 pub fn bn_relu(bn: &Bn, x: &Tensor, train: bool) -> Result<Tensor> {
     Ok(bn.forward(x, train)?.relu()?)
+}
+
+/// `min(max(x, 0), 6)` as `relu(x) - relu(x - 6)` (cheap to differentiate).
+pub fn relu6(x: &Tensor) -> Result<Tensor> {
+    Ok((x.relu()? - (x - 6.0)?.relu()?)?)
 }
 
 /// Fully connected layer on `[N, I]` rows.
@@ -418,4 +498,52 @@ pub fn compare_with_reference(
         ours.len()
     );
     Ok(diff)
+}
+
+/// The committed bracket evaluation set (`DIR/eval/CLASS/*.png`, classes
+/// in `CLASSES` order): pixels (0..=255 as f32) and labels.
+pub fn load_bracket_eval(dir: &std::path::Path) -> Result<(Vec<f32>, Vec<usize>)> {
+    use ingot_demo::brackets::{CLASSES, SIZE};
+    let (mut px, mut labels) = (Vec::new(), Vec::new());
+    for (c, name) in CLASSES.iter().enumerate() {
+        for p in ingot_demo::png_files(&dir.join("eval").join(name))? {
+            let (w, h, bytes) = ingot_demo::read_gray(&p)?;
+            anyhow::ensure!(
+                (w as usize, h as usize) == (SIZE, SIZE),
+                "{}: {w}x{h}",
+                p.display()
+            );
+            px.extend(bytes.iter().map(|&b| b as f32));
+            labels.push(c);
+        }
+    }
+    Ok((px, labels))
+}
+
+/// Normalised `[n, 1, 64, 64]` bracket images from raw byte values.
+pub fn bracket_input(bytes: &[f32], mean: f32, std: f32) -> Result<Tensor> {
+    use ingot_demo::brackets::SIZE;
+    let n = bytes.len() / (SIZE * SIZE);
+    let v: Vec<f32> = bytes
+        .iter()
+        .map(|&b| (b * (1.0 / 255.0) - mean) / std)
+        .collect();
+    Ok(Tensor::from_vec(v, (n, 1, SIZE, SIZE), &Device::Cpu)?)
+}
+
+/// Eval-mode predictions and logits of `forward` over `x` `[N, ..]`, 50
+/// images at a time.
+pub fn predict(
+    forward: impl Fn(&Tensor) -> Result<Tensor>,
+    x: &Tensor,
+) -> Result<(Vec<usize>, Tensor)> {
+    let n = x.dim(0)?;
+    let mut outs = Vec::new();
+    for s in (0..n).step_by(50) {
+        // Detached: a result keeps its whole autograd graph (every
+        // activation of the pass) alive otherwise.
+        outs.push(forward(&x.narrow(0, s, 50.min(n - s))?)?.detach());
+    }
+    let logits = Tensor::cat(&outs, 0)?;
+    Ok((argmax_rows(&logits)?, logits))
 }
