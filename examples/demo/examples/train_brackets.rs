@@ -23,10 +23,9 @@ mod common;
 
 use anyhow::{bail, Context, Result};
 use candle_core::{Device, Tensor, Var};
-use candle_nn::{Optimizer, ParamsAdamW};
 use common::*;
 use ingot_compiler::frontend::{GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
-use ingot_demo::brackets::{render, train_sample, CLASSES, SIZE, TRAIN_SEED};
+use ingot_demo::brackets::{CLASSES, SIZE, TRAIN_SEED};
 use ingot_demo::rng::Rng;
 use std::path::PathBuf;
 use std::time::Instant;
@@ -292,140 +291,31 @@ fn main() -> Result<()> {
     default_single_thread();
     let a = args()?;
     let t_start = Instant::now();
-    let img_len = SIZE * SIZE;
-
-    // Training set, generated in memory from its own seed.
-    let mut train_px = Vec::with_capacity(a.train * img_len);
-    let mut train_y = Vec::with_capacity(a.train);
-    for i in 0..a.train {
-        let (s, c) = train_sample(a.seed, i);
-        train_px.extend(render(s, c).iter().map(|&b| b as f32));
-        train_y.push(c as u32);
-    }
-    let scaled: Vec<f32> = train_px.iter().map(|&b| b * (1.0 / 255.0)).collect();
-    let (mean, std) = mean_std(&scaled);
-    // Round to values that read back identically from JSON.
-    let (mean, std) = ((mean * 1e4).round() / 1e4, (std * 1e4).round() / 1e4);
-    println!(
-        "generated {} training images (seed {}) in {:.1}s; mean {mean}, std {std}",
-        a.train,
-        a.seed,
-        t_start.elapsed().as_secs_f64()
-    );
-    let (eval_px, eval_y) = load_bracket_eval(&a.data)?;
-    let eval_x = bracket_input(&eval_px, mean, std)?;
-    println!(
-        "eval set: {} images from {}",
-        eval_y.len(),
-        a.data.display()
-    );
-
+    let sets = bracket_sets(a.train, a.seed, &a.data)?;
     let net = Net::new(a.seed ^ 0x5EED)?;
     if let Some(p) = &a.init {
         net.load(p)?;
         println!("starting from {}", p.display());
     }
-    let trainable = net.params();
-    let params = trainable.iter().map(|v| v.elem_count()).sum::<usize>();
-    println!(
-        "{} parameter tensors, {params} trainable values",
-        trainable.len()
-    );
-    let mut opt = candle_nn::AdamW::new(
-        trainable,
-        ParamsAdamW {
+    fit_brackets(
+        |x, train| net.forward(x, train),
+        net.params(),
+        &sets,
+        &Fit {
+            epochs: a.epochs,
+            batch: a.batch,
             lr: a.lr,
-            weight_decay: 1e-4,
-            ..Default::default()
+            shuffle_seed: a.seed ^ 0xBA7C4,
         },
     )?;
-
-    let steps_per_epoch = a.train / a.batch;
-    let total = steps_per_epoch * a.epochs;
-    let mut rng = Rng::new(a.seed ^ 0xBA7C4);
-    let mut order: Vec<usize> = (0..a.train).collect();
-    let mut step = 0;
-    let t_train = Instant::now();
-    for epoch in 0..a.epochs {
-        rng.shuffle(&mut order);
-        let (mut loss_sum, mut hits) = (0.0f64, 0usize);
-        let t_epoch = Instant::now();
-        for b in 0..steps_per_epoch {
-            let idx = &order[b * a.batch..(b + 1) * a.batch];
-            let mut px = Vec::with_capacity(a.batch * img_len);
-            for &i in idx {
-                px.extend_from_slice(&train_px[i * img_len..(i + 1) * img_len]);
-            }
-            let x = bracket_input(&px, mean, std)?;
-            let y = Tensor::from_vec(
-                idx.iter().map(|&i| train_y[i]).collect::<Vec<u32>>(),
-                a.batch,
-                &Device::Cpu,
-            )?;
-            let logits = net.forward(&x, true)?;
-            let loss = candle_nn::loss::cross_entropy(&logits, &y)?;
-            opt.set_learning_rate(cosine_lr(a.lr, step, total, steps_per_epoch / 2));
-            opt.backward_step(&loss)?;
-            loss_sum += loss.to_scalar::<f32>()? as f64;
-            hits += argmax_rows(&logits)?
-                .iter()
-                .zip(idx)
-                .filter(|(p, &i)| **p as u32 == train_y[i])
-                .count();
-            step += 1;
-            if step % 20 == 0 {
-                println!(
-                    "  step {step}/{total}: mean loss {:.4} over this epoch, {:.0}s",
-                    loss_sum / (b + 1) as f64,
-                    t_epoch.elapsed().as_secs_f64()
-                );
-            }
+    let export = match a.export {
+        true => {
+            let (graph, store) = net.export(sets.mean, sets.std)?;
+            Some((graph, store, a.out.as_path(), "brackets"))
         }
-        let (pred, _) = predict(|x| net.forward(x, false), &eval_x)?;
-        let acc =
-            pred.iter().zip(&eval_y).filter(|(p, t)| p == t).count() as f64 / eval_y.len() as f64;
-        println!(
-            "epoch {}: loss {:.4}, train acc {:.2}%, eval acc {:.2}%, {:.0}s",
-            epoch + 1,
-            loss_sum / steps_per_epoch as f64,
-            100.0 * hits as f64 / (steps_per_epoch * a.batch) as f64,
-            100.0 * acc,
-            t_epoch.elapsed().as_secs_f64()
-        );
-    }
-    let train_secs = t_train.elapsed().as_secs_f64();
-    println!(
-        "training took {train_secs:.0}s ({} epochs of {} images)",
-        a.epochs,
-        steps_per_epoch * a.batch
-    );
-
-    let labels: Vec<String> = CLASSES.iter().map(|s| s.to_string()).collect();
-    let (pred, logits) = predict(|x| net.forward(x, false), &eval_x)?;
-    println!("float (candle, eval mode) on the committed eval set:");
-    report(&labels, &eval_y, &pred);
-
-    if a.export {
-        let (graph, store) = net.export(mean, std)?;
-        std::fs::create_dir_all(&a.out)?;
-        let gpath = a.out.join("brackets.graph.json");
-        store.save(&a.out.join("brackets.safetensors"))?;
-        std::fs::write(&gpath, serde_json::to_string_pretty(&graph)? + "\n")?;
-        let g = ingot_compiler::frontend::load(&gpath)
-            .map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
-        println!(
-            "exported {} ({} layers) and its weights; it loads and validates",
-            gpath.display(),
-            g.layers().len()
-        );
-        let first: Vec<f32> = logits.get(0)?.to_vec1()?;
-        println!("eval-mode logits of eval/ok/0000.png: {first:?}");
-        let diff = compare_with_reference(&gpath, &a.data.join("eval"), &logits)?;
-        anyhow::ensure!(
-            diff < 1e-3,
-            "the exported graph does not reproduce candle's outputs"
-        );
-    }
+        false => None,
+    };
+    report_and_export(|x| net.forward(x, false), &sets, &a.data, export)?;
     println!("total time {:.0}s", t_start.elapsed().as_secs_f64());
     Ok(())
 }

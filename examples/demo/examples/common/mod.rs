@@ -547,3 +547,204 @@ pub fn predict(
     let logits = Tensor::cat(&outs, 0)?;
     Ok((argmax_rows(&logits)?, logits))
 }
+
+/// The bracket training set (generated in memory from its own seed, never
+/// the committed evaluation images), its normalisation and the committed
+/// evaluation set, as both bracket trainers use them.
+pub struct BracketSets {
+    /// Training pixels, 0..=255 as f32, `SIZE * SIZE` per image.
+    pub train_px: Vec<f32>,
+    /// Training labels.
+    pub train_y: Vec<u32>,
+    /// Mean of the training pixels scaled to 0..=1 (rounded to 4 places).
+    pub mean: f32,
+    /// Their standard deviation (rounded to 4 places).
+    pub std: f32,
+    /// Normalised evaluation images `[N, 1, SIZE, SIZE]`.
+    pub eval_x: Tensor,
+    /// Evaluation labels.
+    pub eval_y: Vec<usize>,
+}
+
+/// Generates `train` training images from `seed` and loads `DIR/eval`.
+pub fn bracket_sets(train: usize, seed: u64, data: &std::path::Path) -> Result<BracketSets> {
+    use ingot_demo::brackets::{render, train_sample, SIZE};
+    let t = std::time::Instant::now();
+    let mut train_px = Vec::with_capacity(train * SIZE * SIZE);
+    let mut train_y = Vec::with_capacity(train);
+    for i in 0..train {
+        let (s, c) = train_sample(seed, i);
+        train_px.extend(render(s, c).iter().map(|&b| b as f32));
+        train_y.push(c as u32);
+    }
+    let scaled: Vec<f32> = train_px.iter().map(|&b| b * (1.0 / 255.0)).collect();
+    let (mean, std) = mean_std(&scaled);
+    // Round to values that read back identically from JSON.
+    let (mean, std) = ((mean * 1e4).round() / 1e4, (std * 1e4).round() / 1e4);
+    println!(
+        "generated {train} training images (seed {seed}) in {:.1}s; mean {mean}, std {std}",
+        t.elapsed().as_secs_f64()
+    );
+    let (eval_px, eval_y) = load_bracket_eval(data)?;
+    let eval_x = bracket_input(&eval_px, mean, std)?;
+    println!("eval set: {} images from {}", eval_y.len(), data.display());
+    Ok(BracketSets {
+        train_px,
+        train_y,
+        mean,
+        std,
+        eval_x,
+        eval_y,
+    })
+}
+
+/// How [`fit_brackets`] trains.
+pub struct Fit {
+    /// Epochs.
+    pub epochs: usize,
+    /// Images per step.
+    pub batch: usize,
+    /// Peak learning rate of the cosine schedule.
+    pub lr: f64,
+    /// Seed of the shuffling order.
+    pub shuffle_seed: u64,
+}
+
+/// Trains `forward` (`train = true` for batch statistics) on the bracket
+/// sets with AdamW (weight decay 1e-4) and a cosine schedule with half an
+/// epoch of warm-up, printing progress and the evaluation accuracy after
+/// every epoch.
+pub fn fit_brackets(
+    forward: impl Fn(&Tensor, bool) -> Result<Tensor>,
+    params: Vec<Var>,
+    sets: &BracketSets,
+    fit: &Fit,
+) -> Result<()> {
+    use candle_nn::Optimizer;
+    use ingot_demo::brackets::SIZE;
+    let img_len = SIZE * SIZE;
+    let n = sets.train_y.len();
+    let count = params.iter().map(|v| v.elem_count()).sum::<usize>();
+    println!(
+        "{} parameter tensors, {count} trainable values",
+        params.len()
+    );
+    let mut opt = candle_nn::AdamW::new(
+        params,
+        candle_nn::ParamsAdamW {
+            lr: fit.lr,
+            weight_decay: 1e-4,
+            ..Default::default()
+        },
+    )?;
+    let steps_per_epoch = n / fit.batch;
+    let total = steps_per_epoch * fit.epochs;
+    let mut rng = Rng::new(fit.shuffle_seed);
+    let mut order: Vec<usize> = (0..n).collect();
+    let mut step = 0;
+    let t_train = std::time::Instant::now();
+    for epoch in 0..fit.epochs {
+        rng.shuffle(&mut order);
+        let (mut loss_sum, mut hits) = (0.0f64, 0usize);
+        let t_epoch = std::time::Instant::now();
+        for b in 0..steps_per_epoch {
+            let idx = &order[b * fit.batch..(b + 1) * fit.batch];
+            let mut px = Vec::with_capacity(fit.batch * img_len);
+            for &i in idx {
+                px.extend_from_slice(&sets.train_px[i * img_len..(i + 1) * img_len]);
+            }
+            let x = bracket_input(&px, sets.mean, sets.std)?;
+            let y = Tensor::from_vec(
+                idx.iter().map(|&i| sets.train_y[i]).collect::<Vec<u32>>(),
+                fit.batch,
+                &Device::Cpu,
+            )?;
+            let logits = forward(&x, true)?;
+            let loss = candle_nn::loss::cross_entropy(&logits, &y)?;
+            opt.set_learning_rate(cosine_lr(fit.lr, step, total, steps_per_epoch / 2));
+            opt.backward_step(&loss)?;
+            loss_sum += loss.to_scalar::<f32>()? as f64;
+            hits += argmax_rows(&logits)?
+                .iter()
+                .zip(idx)
+                .filter(|(p, &i)| **p as u32 == sets.train_y[i])
+                .count();
+            step += 1;
+            if step % 20 == 0 {
+                println!(
+                    "  step {step}/{total}: mean loss {:.4} over this epoch, {:.0}s",
+                    loss_sum / (b + 1) as f64,
+                    t_epoch.elapsed().as_secs_f64()
+                );
+            }
+        }
+        let (pred, _) = predict(|x| forward(x, false), &sets.eval_x)?;
+        let acc = pred
+            .iter()
+            .zip(&sets.eval_y)
+            .filter(|(p, t)| p == t)
+            .count() as f64
+            / sets.eval_y.len() as f64;
+        println!(
+            "epoch {}: loss {:.4}, train acc {:.2}%, eval acc {:.2}%, {:.0}s",
+            epoch + 1,
+            loss_sum / steps_per_epoch as f64,
+            100.0 * hits as f64 / (steps_per_epoch * fit.batch) as f64,
+            100.0 * acc,
+            t_epoch.elapsed().as_secs_f64()
+        );
+    }
+    println!(
+        "training took {:.0}s ({} epochs of {} images)",
+        t_train.elapsed().as_secs_f64(),
+        fit.epochs,
+        steps_per_epoch * fit.batch
+    );
+    Ok(())
+}
+
+/// Prints the float network's evaluation report and, with `export`, writes
+/// `OUT/STEM.graph.json` and its weights (the file the graph names), loads
+/// them back and checks that the compiler's float reference reproduces
+/// candle's evaluation logits.
+pub fn report_and_export(
+    forward: impl Fn(&Tensor) -> Result<Tensor>,
+    sets: &BracketSets,
+    data: &std::path::Path,
+    export: Option<(
+        ingot_compiler::frontend::GraphFile,
+        TensorStore,
+        &std::path::Path,
+        &str,
+    )>,
+) -> Result<()> {
+    let labels: Vec<String> = ingot_demo::brackets::CLASSES
+        .iter()
+        .map(|s| s.to_string())
+        .collect();
+    let (pred, logits) = predict(forward, &sets.eval_x)?;
+    println!("float (candle, eval mode) on the committed eval set:");
+    report(&labels, &sets.eval_y, &pred);
+    let Some((graph, store, out, stem)) = export else {
+        return Ok(());
+    };
+    std::fs::create_dir_all(out)?;
+    let gpath = out.join(format!("{stem}.graph.json"));
+    store.save(&out.join(&graph.weights))?;
+    std::fs::write(&gpath, serde_json::to_string_pretty(&graph)? + "\n")?;
+    let g = ingot_compiler::frontend::load(&gpath)
+        .map_err(|e| anyhow::anyhow!("exported graph does not load: {e}"))?;
+    println!(
+        "exported {} ({} layers) and its weights; it loads and validates",
+        gpath.display(),
+        g.layers().len()
+    );
+    let first: Vec<f32> = logits.get(0)?.to_vec1()?;
+    println!("eval-mode logits of eval/ok/0000.png: {first:?}");
+    let diff = compare_with_reference(&gpath, &data.join("eval"), &logits)?;
+    anyhow::ensure!(
+        diff < 1e-3,
+        "the exported graph does not reproduce candle's outputs"
+    );
+    Ok(())
+}
