@@ -153,7 +153,15 @@ pub(crate) fn copy_run(arena: &mut [i8], &(input, output): &(MapRef, MapRef)) {
             let (Some(from), Some(to)) = (from, to) else {
                 return;
             };
-            for (d, &v) in to.iter_mut().zip(from) {
+            // Four bytes a step (one load and one store where the core
+            // allows unaligned words), then the rest byte by byte.
+            let (mut dw, mut sw) = (to.chunks_exact_mut(4), from.chunks_exact(4));
+            for (d, v) in (&mut dw).zip(&mut sw) {
+                if let (Ok(d), Ok(v)) = (<&mut [i8; 4]>::try_from(d), <&[i8; 4]>::try_from(v)) {
+                    *d = *v;
+                }
+            }
+            for (d, &v) in dw.into_remainder().iter_mut().zip(sw.remainder()) {
                 *d = v;
             }
         }
