@@ -20,6 +20,7 @@ mod load_errors;
 mod lower_dense;
 mod lower_ops;
 mod lower_zoo;
+mod module_code;
 mod onnx_import;
 mod onnx_malformed;
 mod onnx_roundtrip;

@@ -9,9 +9,9 @@
 //! they reach keeps that call alive and fails the link (the "panic never"
 //! technique, common practice in embedded Rust).
 //!
-//! The 121-layer network is left out by default (its module takes minutes
-//! of rustc per target and reaches no kernel the smaller dense network does
-//! not); `INGOT_PANIC_NEVER_LARGE=1` adds it.
+//! The 121-layer network is left out by default (it reaches no kernel the
+//! smaller dense network does not, and its module adds tens of seconds of
+//! rustc); `INGOT_PANIC_NEVER_LARGE=1` adds it.
 //!
 //! Needs the two Rust targets; without them the test prints a notice and
 //! passes, unless `INGOT_REQUIRE_EMULATION=1` (set by CI).
