@@ -406,6 +406,7 @@ fn collapsed_accuracy_fails_the_default_gates() {
             graph.map_count()
         ],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     };
     r.maps[0] = ingot_compiler::calibrate::MapRange {
         min: -1.0,
@@ -455,6 +456,7 @@ fn degenerate_preprocessing_and_ranges_are_refused() {
             images: 1,
             maps: vec![ingot_compiler::calibrate::MapRange { min, max }; graph.map_count()],
             bias_shifts: Default::default(),
+            channels: Vec::new(),
         };
         let rp = tmp.path().join("r.json");
         r.save(&graph, &rp).unwrap();
@@ -561,6 +563,7 @@ fn os_errors_are_printed_once() {
             graph.map_count()
         ],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     };
     let rp = tmp.path().join("r.json");
     r.save(&graph, &rp).unwrap();
