@@ -363,7 +363,10 @@ impl Ranges {
             };
             let want = g.shape(MapId(i as u32)).c;
             let why = if list.len() != want {
-                Some(format!("{} per-channel ranges for {want} channels", list.len()))
+                Some(format!(
+                    "{} per-channel ranges for {want} channels",
+                    list.len()
+                ))
             } else {
                 list.iter()
                     .find(|[lo, hi]| !(lo.is_finite() && hi.is_finite() && lo <= hi))
@@ -376,7 +379,11 @@ impl Ranges {
                     message,
                 });
             }
-            channels[i] = Some(list.iter().map(|&[min, max]| MapRange { min, max }).collect());
+            channels[i] = Some(
+                list.iter()
+                    .map(|&[min, max]| MapRange { min, max })
+                    .collect(),
+            );
         }
         if channels.iter().all(Option::is_none) {
             channels.clear();

@@ -392,9 +392,8 @@ pub fn observe_set<S: MapSource + ?Sized>(
         "calibrating",
     );
 
-    let per_channel: Vec<Option<usize>> = (0..n_maps)
-        .map(|i| src.channels(MapId(i as u32)))
-        .collect();
+    let per_channel: Vec<Option<usize>> =
+        (0..n_maps).map(|i| src.channels(MapId(i as u32))).collect();
     let (ext, bad) = pass(src, images, &cal_all, opts.skip_bad, &pb, || {
         Extremes::with_channels(n_maps, &per_channel)
     })?;

@@ -217,7 +217,10 @@ fn per_channel_outputs(
     // passes the parameters on).
     let mut readers: Vec<Vec<(bool, Option<usize>)>> = vec![Vec::new(); nm];
     for id in g.layer_ids() {
-        let Role::Step { pre, act, out: o, .. } = &roles[id.index()] else {
+        let Role::Step {
+            pre, act, out: o, ..
+        } = &roles[id.index()]
+        else {
             continue;
         };
         let op = &g.layer(id).op;
@@ -270,7 +273,10 @@ const CHANNEL_SCALE_FLOOR: f32 = 1.0 / 64.0;
 /// that holds it at `z`, `s_c = max(max_c/(127 − z), −min_c/(z + 128))`,
 /// never above `S` and never below `S·CHANNEL_SCALE_FLOOR`. Affine
 /// quantization per Jacob et al. 2018, §2.1, with one scale per channel.
-pub(super) fn channel_qparams(r: crate::ranges::MapRange, chans: &[crate::ranges::MapRange]) -> MapQuant {
+pub(super) fn channel_qparams(
+    r: crate::ranges::MapRange,
+    chans: &[crate::ranges::MapRange],
+) -> MapQuant {
     let t = activation_qparams(r);
     if t.scale == DEGENERATE_SCALE || chans.is_empty() {
         return t.into();
@@ -283,8 +289,20 @@ pub(super) fn channel_qparams(r: crate::ranges::MapRange, chans: &[crate::ranges
         .map(|c| {
             let hi = (c.max.clamp(r.min, r.max) as f64).max(0.0);
             let lo = (c.min.clamp(r.min, r.max) as f64).min(0.0);
-            let up = if 127.0 - z > 0.0 { hi / (127.0 - z) } else if hi > 0.0 { s } else { 0.0 };
-            let down = if z + 128.0 > 0.0 { -lo / (z + 128.0) } else if lo < 0.0 { s } else { 0.0 };
+            let up = if 127.0 - z > 0.0 {
+                hi / (127.0 - z)
+            } else if hi > 0.0 {
+                s
+            } else {
+                0.0
+            };
+            let down = if z + 128.0 > 0.0 {
+                -lo / (z + 128.0)
+            } else if lo < 0.0 {
+                s
+            } else {
+                0.0
+            };
             let sc = up.max(down).min(s).max(s * CHANNEL_SCALE_FLOOR as f64) as f32;
             QParams {
                 scale: if sc.is_normal() { sc } else { t.scale },
