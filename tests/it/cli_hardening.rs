@@ -195,7 +195,7 @@ fn calibrate_output_never_replaces_an_input_or_a_foreign_file() {
     assert!(o.status.success(), "{}", stderr(&o));
     assert!(std::fs::read_to_string(&notes)
         .unwrap()
-        .contains("ingot.ranges.v1"));
+        .contains("ingot.ranges.v3"));
     // A file ingot wrote may be replaced without --force.
     let r = tmp.path().join("r.json");
     for _ in 0..2 {
