@@ -191,3 +191,29 @@ fn an_average_pool_passes_the_scales_on_and_old_ranges_lower_as_before() {
         serde_json::to_string(&q1).unwrap()
     );
 }
+
+#[test]
+fn per_channel_ranges_round_trip_as_v3_and_are_checked() {
+    let g = net("fused");
+    let r = ranges(&g);
+    let text = r.to_json(&g);
+    let v: serde_json::Value = serde_json::from_str(&text).unwrap();
+    assert_eq!(v["format"], "ingot.ranges.v3");
+    assert_eq!(v["channels"]["a"][1][1], 8.0);
+    let path = std::path::Path::new("r.json");
+    let back = ingot_compiler::calibrate::Ranges::parse(&g, &text, path, None).unwrap();
+    assert_eq!(back, r);
+    // Without per-channel ranges the file is v1, as before.
+    let mut old = r.clone();
+    old.channels.clear();
+    assert!(old.to_json(&g).contains("\"ingot.ranges.v1\""));
+    // `channels` needs v3; one range per channel.
+    let v2 = text.replace("ingot.ranges.v3", "ingot.ranges.v2");
+    let e = ingot_compiler::calibrate::Ranges::parse(&g, &v2, path, None).unwrap_err();
+    assert!(e.to_string().contains("`channels` needs"), "{e}");
+    let mut short = v.clone();
+    short["channels"]["a"].as_array_mut().unwrap().pop();
+    let e = ingot_compiler::calibrate::Ranges::parse(&g, &short.to_string(), path, None)
+        .unwrap_err();
+    assert!(e.to_string().contains("1 per-channel ranges for 2 channels"), "{e}");
+}
