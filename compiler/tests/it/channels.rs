@@ -213,7 +213,11 @@ fn per_channel_ranges_round_trip_as_v3_and_are_checked() {
     assert!(e.to_string().contains("`channels` needs"), "{e}");
     let mut short = v.clone();
     short["channels"]["a"].as_array_mut().unwrap().pop();
-    let e = ingot_compiler::calibrate::Ranges::parse(&g, &short.to_string(), path, None)
-        .unwrap_err();
-    assert!(e.to_string().contains("1 per-channel ranges for 2 channels"), "{e}");
+    let e =
+        ingot_compiler::calibrate::Ranges::parse(&g, &short.to_string(), path, None).unwrap_err();
+    assert!(
+        e.to_string()
+            .contains("1 per-channel ranges for 2 channels"),
+        "{e}"
+    );
 }
