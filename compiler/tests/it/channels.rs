@@ -108,13 +108,13 @@ fn two_channel_conv_gets_its_own_scales_at_one_zero_point() {
         panic!("a is a convolution")
     };
     let s_in = q.map(st.inputs[0]).qp.channel(0);
-    for o in 0..2 {
+    for (o, w) in want.iter().enumerate() {
         let m = ingot_rt::Requant {
             mult: c.requant[o].mult,
             shift: c.requant[o].shift,
         }
         .to_real();
-        let real = s_in.scale as f64 * c.weight_scales[o] as f64 / want[o].scale as f64;
+        let real = s_in.scale as f64 * c.weight_scales[o] as f64 / w.scale as f64;
         assert!((m / real - 1.0).abs() < 1e-6, "channel {o}: {m} vs {real}");
     }
 
