@@ -1,5 +1,6 @@
 //! Calibrated value ranges of every float map, and their file format
-//! `ingot.ranges.v1` (documented in `docs/ranges-format.md`).
+//! `ingot.ranges.v1` (v2 with bias shifts or `equalized`, v3 with
+//! per-channel ranges; documented in `docs/ranges-format.md`).
 //!
 //! A ranges file lets `ingot build` and build scripts reuse a calibration
 //! instead of reading images again. It records which graph it belongs to
@@ -91,7 +92,8 @@ impl Ranges {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RangesFile {
-    /// [`RANGES_V1`], or [`RANGES_V2`] when `bias_shifts` is not empty.
+    /// [`RANGES_V1`], [`RANGES_V2`] when `bias_shifts` is not empty (or
+    /// `equalized`), [`RANGES_V3`] when `channels` is not empty.
     pub format: String,
     /// Graph name.
     pub graph: String,
