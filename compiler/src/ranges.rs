@@ -1,5 +1,6 @@
 //! Calibrated value ranges of every float map, and their file format
-//! `ingot.ranges.v1` (documented in `docs/ranges-format.md`).
+//! `ingot.ranges.v1` (v2 with bias shifts or `equalized`, v3 with
+//! per-channel ranges; documented in `docs/ranges-format.md`).
 //!
 //! A ranges file lets `ingot build` and build scripts reuse a calibration
 //! instead of reading images again. It records which graph it belongs to
@@ -24,6 +25,10 @@ pub const RANGES_V1: &str = "ingot.ranges.v1";
 /// [`RANGES_V1`], so readers of v1 keep reading it and refuse only what
 /// they could not apply.
 pub const RANGES_V2: &str = "ingot.ranges.v2";
+
+/// Format string of ranges files that carry per-channel ranges
+/// (`channels`); files without them keep [`RANGES_V1`] or [`RANGES_V2`].
+pub const RANGES_V3: &str = "ingot.ranges.v3";
 
 /// The real interval `[min, max]` chosen for one map.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -63,6 +68,12 @@ pub struct Ranges {
     /// lowering adds to the layer's bias (after folding batch norm) before
     /// quantizing it. Empty when not corrected.
     pub bias_shifts: BTreeMap<String, Vec<f32>>,
+    /// Observed per-channel ranges, indexed by [`MapId`] (empty, or `None`
+    /// for a map, when not observed): lowering clips them to the map's
+    /// chosen range and may give a convolution's output one scale per
+    /// channel (`docs/quantization.md`). Without them every map is
+    /// quantized per tensor.
+    pub channels: Vec<Option<Vec<MapRange>>>,
 }
 
 impl Ranges {
@@ -70,13 +81,19 @@ impl Ranges {
     pub fn get(&self, m: MapId) -> MapRange {
         self.maps[m.index()]
     }
+
+    /// The observed per-channel ranges of one map, if any.
+    pub fn channel_ranges(&self, m: MapId) -> Option<&[MapRange]> {
+        self.channels.get(m.index())?.as_deref()
+    }
 }
 
 /// The JSON form: maps keyed by name so a file is readable and diffable.
 #[derive(Debug, Clone, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RangesFile {
-    /// [`RANGES_V1`], or [`RANGES_V2`] when `bias_shifts` is not empty.
+    /// [`RANGES_V1`], [`RANGES_V2`] when `bias_shifts` is not empty (or
+    /// `equalized`), [`RANGES_V3`] when `channels` is not empty.
     pub format: String,
     /// Graph name.
     pub graph: String,
@@ -98,6 +115,11 @@ pub struct RangesFile {
     /// graph the same way first. Absent when false.
     #[serde(default, skip_serializing_if = "std::ops::Not::not")]
     pub equalized: bool,
+    /// Observed `[min, max]` of each channel, per map name (see
+    /// [`Ranges::channels`]); needs [`RANGES_V3`], absent when there are
+    /// none.
+    #[serde(default, skip_serializing_if = "BTreeMap::is_empty")]
+    pub channels: BTreeMap<String, Vec<[f32; 2]>>,
 }
 
 /// Why a ranges file could not be used.
@@ -158,8 +180,19 @@ pub fn graph_hash(g: &Graph) -> std::io::Result<String> {
 impl Ranges {
     /// The file form.
     pub fn to_file(&self, g: &Graph) -> RangesFile {
+        let channels: BTreeMap<String, Vec<[f32; 2]>> = (0..g.map_count())
+            .filter_map(|i| {
+                let c = self.channel_ranges(MapId(i as u32))?;
+                Some((
+                    g.map_name(MapId(i as u32)).to_string(),
+                    c.iter().map(|r| [r.min, r.max]).collect(),
+                ))
+            })
+            .collect();
         RangesFile {
-            format: if self.bias_shifts.is_empty() {
+            format: if !channels.is_empty() {
+                RANGES_V3
+            } else if self.bias_shifts.is_empty() {
                 RANGES_V1
             } else {
                 RANGES_V2
@@ -174,6 +207,7 @@ impl Ranges {
                 .collect(),
             bias_shifts: self.bias_shifts.clone(),
             equalized: false,
+            channels,
         }
     }
 
@@ -184,7 +218,9 @@ impl Ranges {
         let mut f = self.to_file(g);
         if equalized {
             f.equalized = true;
-            f.format = RANGES_V2.into();
+            if f.format == RANGES_V1 {
+                f.format = RANGES_V2.into();
+            }
         }
         serde_json::to_string_pretty(&f).expect("ranges serialise") + "\n"
     }
@@ -241,13 +277,19 @@ impl Ranges {
             path: p.clone(),
             message: e.to_string(),
         })?;
-        if f.format != RANGES_V1 && f.format != RANGES_V2 {
+        if f.format != RANGES_V1 && f.format != RANGES_V2 && f.format != RANGES_V3 {
             return Err(RangesError::Format {
                 path: p,
                 message: format!(
-                    "`format` is \"{}\", expected \"{RANGES_V1}\" or \"{RANGES_V2}\"",
+                    "`format` is \"{}\", expected \"{RANGES_V1}\", \"{RANGES_V2}\" or \"{RANGES_V3}\"",
                     f.format
                 ),
+            });
+        }
+        if f.format != RANGES_V3 && !f.channels.is_empty() {
+            return Err(RangesError::Format {
+                path: p,
+                message: format!("`channels` needs `format` \"{RANGES_V3}\""),
             });
         }
         if f.format == RANGES_V1 && f.equalized {
@@ -312,7 +354,44 @@ impl Ranges {
                 });
             }
         }
+        let mut channels: Vec<Option<Vec<MapRange>>> = vec![None; g.map_count()];
+        for (name, list) in &f.channels {
+            let Some(i) = (0..g.map_count()).find(|&i| g.map_name(MapId(i as u32)) == name) else {
+                return Err(RangesError::Map {
+                    path: p,
+                    map: name.clone(),
+                    message: "per-channel ranges for a map that is not in the graph".into(),
+                });
+            };
+            let want = g.shape(MapId(i as u32)).c;
+            let why = if list.len() != want {
+                Some(format!(
+                    "{} per-channel ranges for {want} channels",
+                    list.len()
+                ))
+            } else {
+                list.iter()
+                    .find(|[lo, hi]| !(lo.is_finite() && hi.is_finite() && lo <= hi))
+                    .map(|[lo, hi]| format!("invalid per-channel range [{lo}, {hi}]"))
+            };
+            if let Some(message) = why {
+                return Err(RangesError::Map {
+                    path: p,
+                    map: name.clone(),
+                    message,
+                });
+            }
+            channels[i] = Some(
+                list.iter()
+                    .map(|&[min, max]| MapRange { min, max })
+                    .collect(),
+            );
+        }
+        if channels.iter().all(Option::is_none) {
+            channels.clear();
+        }
         Ok(Ranges {
+            channels,
             graph: f.graph,
             graph_hash: f.graph_hash,
             method: f.method,

@@ -186,6 +186,7 @@ pub fn synthetic(g: &ingot_compiler::Graph) -> Ranges {
             g.map_count()
         ],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     }
 }
 

@@ -242,6 +242,7 @@ pub fn zoo_lowered() -> Vec<QGraph> {
                     g.map_count()
                 ],
                 bias_shifts: Default::default(),
+                channels: Vec::new(),
             };
             let mut q = lower(&g, &r, &LowerOptions::default())
                 .unwrap_or_else(|e| panic!("lowering `{}`: {e}", g.name()));

@@ -147,6 +147,7 @@ impl Net {
             images: 3,
             maps,
             bias_shifts: Default::default(),
+            channels: Vec::new(),
         }
     }
 }

@@ -107,6 +107,7 @@ fn zoo_model(dir: &Path) -> (std::path::PathBuf, std::path::PathBuf) {
         images: 2,
         maps,
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     };
     let path = dir.join("res.ranges.json");
     ranges.save(&g, &path).unwrap();

@@ -61,9 +61,17 @@ fn calibrate_writes_ranges_and_prints_json() {
     assert_eq!(v["layers"].as_array().unwrap().len(), 9);
     let ranges: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
-    assert_eq!(ranges["format"], "ingot.ranges.v1");
+    // Per-channel ranges of the convolution and ReLU outputs make it v3.
+    assert_eq!(ranges["format"], "ingot.ranges.v3");
     assert_eq!(ranges["images"], 16);
     assert_eq!(ranges["maps"]["relu1"]["min"], 0.0);
+    let chans = ranges["channels"]["relu1"].as_array().unwrap();
+    assert!(!chans.is_empty());
+    for c in chans {
+        // Observed after a ReLU: never negative.
+        let (lo, hi) = (c[0].as_f64().unwrap(), c[1].as_f64().unwrap());
+        assert!(lo >= 0.0 && lo <= hi, "{c}");
+    }
 }
 
 #[test]
@@ -277,7 +285,7 @@ fn calibrate_bias_correction_and_sensitivity() {
     assert_eq!(layers, ["conv1", "conv2", "fc"]);
     let ranges: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
-    assert_eq!(ranges["format"], "ingot.ranges.v2");
+    assert_eq!(ranges["format"], "ingot.ranges.v3");
     assert_eq!(ranges["bias_shifts"]["conv1"].as_array().unwrap().len(), 8);
     assert!(std::fs::read_to_string(&svg).unwrap().starts_with("<svg"));
     let built = ingot!()
@@ -350,7 +358,7 @@ fn calibrate_equalize_is_reproduced_by_build() {
     assert!(v["equalization"]["after"]["logit_sqnr_db"].is_number());
     let ranges: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(&out_file).unwrap()).unwrap();
-    assert_eq!(ranges["format"], "ingot.ranges.v2");
+    assert_eq!(ranges["format"], "ingot.ranges.v3");
     assert_eq!(ranges["equalized"], true);
 
     use ingot_compiler::driver::{compile, BuildInputs, RangesSource};

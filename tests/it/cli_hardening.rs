@@ -195,7 +195,7 @@ fn calibrate_output_never_replaces_an_input_or_a_foreign_file() {
     assert!(o.status.success(), "{}", stderr(&o));
     assert!(std::fs::read_to_string(&notes)
         .unwrap()
-        .contains("ingot.ranges.v1"));
+        .contains("ingot.ranges.v3"));
     // A file ingot wrote may be replaced without --force.
     let r = tmp.path().join("r.json");
     for _ in 0..2 {
@@ -406,6 +406,7 @@ fn collapsed_accuracy_fails_the_default_gates() {
             graph.map_count()
         ],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     };
     r.maps[0] = ingot_compiler::calibrate::MapRange {
         min: -1.0,
@@ -455,6 +456,7 @@ fn degenerate_preprocessing_and_ranges_are_refused() {
             images: 1,
             maps: vec![ingot_compiler::calibrate::MapRange { min, max }; graph.map_count()],
             bias_shifts: Default::default(),
+            channels: Vec::new(),
         };
         let rp = tmp.path().join("r.json");
         r.save(&graph, &rp).unwrap();
@@ -561,6 +563,7 @@ fn os_errors_are_printed_once() {
             graph.map_count()
         ],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     };
     let rp = tmp.path().join("r.json");
     r.save(&graph, &rp).unwrap();

@@ -45,8 +45,9 @@ pub struct Mixed<'a> {
     q: &'a QGraph,
     reference: Reference<'a>,
     units: Vec<Unit>,
-    /// Per float map: the unit that rounds it and with which parameters.
-    rounds: Vec<Option<(usize, QParams)>>,
+    /// Per float map: the unit that rounds it and with which parameters
+    /// (one set, or one per channel of a per-channel convolution map).
+    rounds: Vec<Option<(usize, Vec<QParams>)>>,
     /// Per float layer: the unit whose int8 weights it computes with.
     weights_of: Vec<Option<usize>>,
     /// Per unit with weights: its main layer, its pre-activation map
@@ -82,7 +83,7 @@ impl<'a> Mixed<'a> {
             step: None,
         }];
         let mut rounds = vec![None; nm];
-        rounds[MapId::INPUT.index()] = Some((0, q.input_qp()));
+        rounds[MapId::INPUT.index()] = Some((0, vec![q.input_qp()]));
         let mut weights_of = vec![None; graph.layers().len()];
         let mut weighted = vec![None];
         for id in q.step_ids() {
@@ -97,10 +98,14 @@ impl<'a> Mixed<'a> {
                 step: Some(id),
             });
             let out = q.map(s.output);
-            // Only a concatenation (skipped above) writes a per-slice map.
-            if let Some(qp) = out.qp.tensor() {
-                rounds[out.float_map.index()] = Some((u, qp));
-            }
+            // A convolution or pooling may write one scale per channel.
+            rounds[out.float_map.index()] = Some((
+                u,
+                match out.qp.tensor() {
+                    Some(qp) => vec![qp],
+                    None => out.qp.per_channel(out.shape.c),
+                },
+            ));
             let main = s.layers[0];
             // Layers fused before the main one are the pre-activation batch
             // norm (and ReLU): the last of them writes the transformed map.
@@ -110,7 +115,7 @@ impl<'a> Mixed<'a> {
             if let (Some(t), QKernel::Conv2d(c)) = (pre, &s.kernel) {
                 if c.transform.is_some() {
                     let dom = activation_qparams(ranges.maps[t.output().index()]);
-                    rounds[t.output().index()] = Some((u, dom));
+                    rounds[t.output().index()] = Some((u, vec![dom]));
                     in_qp = Some(dom);
                 }
             }
@@ -199,9 +204,12 @@ impl<'a> Mixed<'a> {
         self.reference
             .run_mixed(input, &alt, |m, v| {
                 visit(m, v);
-                if let Some((u, qp)) = self.rounds[m.index()] {
-                    if on(u) {
-                        for x in v.iter_mut() {
+                if let Some((u, qps)) = &self.rounds[m.index()] {
+                    if on(*u) && !qps.is_empty() {
+                        // Float maps are [C, H, W]: channel c is the c-th run.
+                        let per = (v.len() / qps.len()).max(1);
+                        for (i, x) in v.iter_mut().enumerate() {
+                            let qp = qps[(i / per).min(qps.len() - 1)];
                             *x = quant::dequantize(quant::quantize(*x, qp), qp);
                         }
                     }

@@ -33,6 +33,11 @@ pub trait MapSource: Sync {
     fn map_count(&self) -> usize;
     /// Runs one input.
     fn run(&self, input: &[f32], visit: &mut dyn FnMut(MapId, &[f32]));
+    /// Channel count of map `m` when calibration should also observe it
+    /// per channel (`[C, H, W]` values); `None` (the default) for none.
+    fn channels(&self, _m: MapId) -> Option<usize> {
+        None
+    }
 }
 
 impl MapSource for crate::reference::Reference<'_> {
@@ -44,6 +49,26 @@ impl MapSource for crate::reference::Reference<'_> {
         // length always matches and the reference cannot refuse them.
         self.run_with(input, visit)
             .expect("sample has the input's length");
+    }
+    /// The outputs of the layers that may end a step writing a
+    /// per-channel map (`docs/quantization.md`): convolutions, batch
+    /// norms and ReLUs fused after them, and poolings, which pass a
+    /// convolution's per-channel parameters on.
+    fn channels(&self, m: MapId) -> Option<usize> {
+        let g = self.graph();
+        let l = m.producer()?;
+        use crate::graph::Op;
+        matches!(
+            g.layer(l).op,
+            Op::Conv2d(_)
+                | Op::BatchNorm(_)
+                | Op::Relu
+                | Op::Relu6
+                | Op::MaxPool2d(_)
+                | Op::AvgPool2d(_)
+                | Op::GlobalAvgPool
+        )
+        .then(|| g.shape(m).c)
     }
 }
 
@@ -300,6 +325,8 @@ where
 pub struct Observed {
     /// Chosen range per map.
     pub ranges: Vec<MapRange>,
+    /// Observed per-channel ranges ([`Ranges::channels`]).
+    pub channels: Vec<Option<Vec<MapRange>>>,
     /// Statistics per map.
     pub stats: Vec<MapStats>,
     /// Indices of the images observed.
@@ -331,6 +358,7 @@ pub fn run_with_source<S: MapSource + ?Sized>(
             images: o.calibration.len(),
             maps: o.ranges,
             bias_shifts: Default::default(),
+            channels: o.channels,
         },
         stats: o.stats,
         calibration: o.calibration,
@@ -364,8 +392,10 @@ pub fn observe_set<S: MapSource + ?Sized>(
         "calibrating",
     );
 
+    let per_channel: Vec<Option<usize>> =
+        (0..n_maps).map(|i| src.channels(MapId(i as u32))).collect();
     let (ext, bad) = pass(src, images, &cal_all, opts.skip_bad, &pb, || {
-        Extremes::new(n_maps)
+        Extremes::with_channels(n_maps, &per_channel)
     })?;
     let bad_set: std::collections::BTreeSet<usize> = bad.iter().map(|(i, _)| *i).collect();
     let calibration: Vec<usize> = cal_all
@@ -437,7 +467,14 @@ pub fn observe_set<S: MapSource + ?Sized>(
             nonfinite: mm.nonfinite,
         })
         .collect();
+    let channels: Vec<Option<Vec<MapRange>>> = (0..n_maps).map(|i| ext.channel_ranges(i)).collect();
+    let channels = if channels.iter().all(Option::is_none) {
+        Vec::new()
+    } else {
+        channels
+    };
     Ok(Observed {
+        channels,
         ranges,
         stats,
         calibration,

@@ -92,11 +92,16 @@ impl MinMax {
     }
 }
 
-/// Pass-1 state: [`MinMax`] per map.
+/// Pass-1 state: [`MinMax`] per map, and per channel for the maps that
+/// may be quantized per channel.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Extremes {
     /// Indexed by `MapId`.
     pub maps: Vec<MinMax>,
+    /// Per-channel `(min, max)` of finite values, indexed by `MapId`
+    /// (`None`: not observed per channel). Values are `[C, H, W]`, so
+    /// channel `c` is the `c`-th equal run of a map's values.
+    pub channels: Vec<Option<Vec<(f32, f32)>>>,
 }
 
 impl Extremes {
@@ -104,18 +109,65 @@ impl Extremes {
     pub fn new(n: usize) -> Self {
         Extremes {
             maps: vec![MinMax::default(); n],
+            channels: vec![None; n],
         }
+    }
+    /// Nothing seen yet, for `n` maps, also per channel for each map with
+    /// `Some(channel count)` in `per_channel`.
+    pub fn with_channels(n: usize, per_channel: &[Option<usize>]) -> Self {
+        let mut e = Extremes::new(n);
+        for (slot, c) in e.channels.iter_mut().zip(per_channel) {
+            *slot = c
+                .filter(|&c| c > 0)
+                .map(|c| vec![(f32::INFINITY, f32::NEG_INFINITY); c]);
+        }
+        e
     }
     /// Adds one map's values.
     pub fn observe(&mut self, m: MapId, values: &[f32]) {
         self.maps[m.index()].observe(values);
+        if let Some(ch) = self.channels.get_mut(m.index()).and_then(Option::as_mut) {
+            let n = ch.len();
+            if n > 0 && values.len() % n == 0 {
+                for (run, (lo, hi)) in values.chunks(values.len() / n).zip(ch.iter_mut()) {
+                    for &v in run.iter().filter(|v| v.is_finite()) {
+                        *lo = lo.min(v);
+                        *hi = hi.max(v);
+                    }
+                }
+            }
+        }
     }
     /// Combines partial observations.
     pub fn merge(mut self, o: &Extremes) -> Self {
         for (a, b) in self.maps.iter_mut().zip(&o.maps) {
             a.merge(b);
         }
+        for (a, b) in self.channels.iter_mut().zip(&o.channels) {
+            if let (Some(a), Some(b)) = (a.as_mut(), b.as_ref()) {
+                for (x, y) in a.iter_mut().zip(b) {
+                    x.0 = x.0.min(y.0);
+                    x.1 = x.1.max(y.1);
+                }
+            }
+        }
         self
+    }
+    /// The observed per-channel ranges of map `i` (a channel never seen
+    /// finite gets `[0, 0]`).
+    pub fn channel_ranges(&self, i: usize) -> Option<Vec<MapRange>> {
+        let ch = self.channels.get(i)?.as_ref()?;
+        Some(
+            ch.iter()
+                .map(|&(min, max)| {
+                    if min <= max {
+                        MapRange { min, max }
+                    } else {
+                        MapRange { min: 0.0, max: 0.0 }
+                    }
+                })
+                .collect(),
+        )
     }
 }
 

@@ -343,6 +343,9 @@ pub fn ranges_for_with(
         if !cal.ranges.bias_shifts.is_empty() {
             bytes.extend(serde_json::to_vec(&cal.ranges.bias_shifts).unwrap_or_default());
         }
+        if !cal.ranges.channels.is_empty() {
+            bytes.extend(serde_json::to_vec(&cal.ranges.channels).unwrap_or_default());
+        }
         Ok(SourcedRanges {
             hash: format!("{:016x}", codegen::fnv1a(codegen::FNV_BASIS, &bytes)),
             note: format!(
@@ -415,6 +418,7 @@ pub fn ranges_for_with(
                     graph.map_count()
                 ],
                 bias_shifts: Default::default(),
+                channels: Vec::new(),
             },
             hash: String::new(),
             note: "synthetic ranges ([-4, 4] for every map)".into(),

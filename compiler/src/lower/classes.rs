@@ -8,8 +8,8 @@
 //! unless its output joins a shared region.
 
 use super::fusion::Role;
-use super::quant::activation_qparams;
-use super::{LowerError, MapQuant};
+use super::quant::{activation_qparams, DEGENERATE_SCALE};
+use super::{Activation, LowerError, MapQuant, QParams};
 use crate::graph::{Graph, LayerId, MapId, Op};
 use crate::ranges::Ranges;
 
@@ -114,15 +114,39 @@ pub(super) fn map_qparams(
             });
         }
     }
+    let shared: Vec<bool> = (0..nm)
+        .map(|m| {
+            let root = classes.find(m);
+            members[root] > 1 && !sliced[root]
+        })
+        .collect();
+    let per_channel = per_channel_outputs(g, ranges, roles, canon, &stored, &writer, &shared)?;
     let mut qp: Vec<Option<MapQuant>> = vec![None; nm];
     for (m, c) in canon.iter().enumerate() {
         if *c != Some(MapId(m as u32)) {
             continue;
         }
         let root = classes.find(m);
-        let shared = members[root] > 1 && !sliced[root];
+        let shared = shared[m];
         let p = match writer[m] {
             _ if shared => activation_qparams(class_range[root].unwrap_or(ranges.maps[m])).into(),
+            Some(_) if per_channel[m] => channel_qparams(
+                ranges.maps[m],
+                ranges.channel_ranges(MapId(m as u32)).unwrap_or_default(),
+            ),
+            // An average pool of a per-channel map keeps its parameters:
+            // its multiplier `1/taps` is then the same for every channel.
+            Some(l)
+                if matches!(g.layer(l).op, Op::AvgPool2d(_) | Op::GlobalAvgPool)
+                    && qp[stored(g.layer(l).inputs[0], l)?.index()]
+                        .as_ref()
+                        .is_some_and(MapQuant::is_sliced) =>
+            {
+                let src = stored(g.layer(l).inputs[0], l)?;
+                qp[src.index()]
+                    .clone()
+                    .unwrap_or_else(|| activation_qparams(ranges.maps[m]).into())
+            }
             Some(l) if matches!(g.layer(l).op, Op::Concat) => {
                 let mut channels = Vec::new();
                 for &i in &g.layer(l).inputs {
@@ -146,4 +170,145 @@ pub(super) fn map_qparams(
         qp[m] = Some(p);
     }
     Ok(qp)
+}
+
+/// True when a step with main layer `op` (fused input transform: `fused`;
+/// fused activation `act`) writes its output with its input's parameters,
+/// whatever they are per channel: a pooling, whose multiplier
+/// (`s_in/s_out`, or `1/taps`) is then one value for every channel. ReLU6
+/// is excluded: its clamp `z + round(6/s)` would differ per channel.
+fn passes_channels(op: &Op, fused: bool, act: Activation) -> bool {
+    !fused
+        && act != Activation::Relu6
+        && matches!(op, Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool)
+}
+
+/// Which stored maps written by a convolution get one scale per output
+/// channel (one shared zero point).
+///
+/// A convolution's requantization is already one multiplier per output
+/// channel (`s_in·s_w[o]/s_out`), so dividing by a per-channel `s_out[o]`
+/// changes only coefficients; its clamp and output zero point stay
+/// scalar, hence one zero point for all channels and no ReLU6. It pays off
+/// only where every reader folds the per-channel parameters in without a
+/// runtime change: a fused input transform or channel step (per-channel
+/// `mul`/`add`), a concatenation of a per-slice region (a shared region
+/// makes the map shared first), or a pooling that passes them on to its
+/// own output, whose readers must then absorb them in turn. An `add`, a
+/// linear layer or a convolution without a transform reads one parameter
+/// set, and the network's output stays per tensor, so a map read by any
+/// of them stays per tensor. Without per-channel ranges in the ranges file
+/// (older files) nothing changes.
+fn per_channel_outputs(
+    g: &Graph,
+    ranges: &Ranges,
+    roles: &[Role],
+    canon: &[Option<MapId>],
+    stored: &impl Fn(MapId, LayerId) -> Result<MapId, LowerError>,
+    writer: &[Option<LayerId>],
+    shared: &[bool],
+) -> Result<Vec<bool>, LowerError> {
+    let nm = g.map_count();
+    let mut out = vec![false; nm];
+    if ranges.channels.is_empty() {
+        return Ok(out);
+    }
+    // Readers of each stored map: (main layer, absorbs, output if it
+    // passes the parameters on).
+    let mut readers: Vec<Vec<(bool, Option<usize>)>> = vec![Vec::new(); nm];
+    for id in g.layer_ids() {
+        let Role::Step {
+            pre, act, out: o, ..
+        } = &roles[id.index()]
+        else {
+            continue;
+        };
+        let op = &g.layer(id).op;
+        let read: Vec<MapId> = match pre {
+            Some(p) => vec![p.src],
+            None => g.layer(id).inputs.clone(),
+        };
+        let absorbs = absorbs_slices(op, pre.is_some());
+        let passes = passes_channels(op, pre.is_some(), *act).then_some(o.index());
+        for m in read {
+            readers[stored(m, id)?.index()].push((absorbs, passes));
+        }
+    }
+    let output = canon[g.output().index()].map(|m| m.index());
+    // Readers come after writers, so a pass from the last map backwards
+    // settles every map after the maps it passes its parameters to.
+    let mut ok = vec![false; nm];
+    for m in (0..nm).rev() {
+        ok[m] = canon[m] == Some(MapId(m as u32))
+            && Some(m) != output
+            && !shared[m]
+            && readers[m]
+                .iter()
+                .all(|&(absorbs, passes)| absorbs || passes.is_some_and(|p| ok[p]));
+    }
+    for m in 0..nm {
+        let Some(l) = writer[m] else { continue };
+        let Role::Step { act, .. } = &roles[l.index()] else {
+            continue;
+        };
+        out[m] = ok[m]
+            && matches!(g.layer(l).op, Op::Conv2d(_))
+            && *act != Activation::Relu6
+            && ranges
+                .channel_ranges(MapId(m as u32))
+                .is_some_and(|c| c.len() == g.shape(MapId(m as u32)).c);
+    }
+    Ok(out)
+}
+
+/// Smallest scale per channel a conv map may use relative to its
+/// per-tensor scale: a channel (nearly) dead in calibration still gets
+/// `1/64` of the map's step, so a value it did not show in calibration
+/// saturates at 64 times less than the map's range rather than at once.
+const CHANNEL_SCALE_FLOOR: f32 = 1.0 / 64.0;
+
+/// One scale per channel at the map's zero point: the map's range `r`
+/// gives `(S, z)` as per tensor; channel `c`'s observed range, clipped to
+/// `r` (so a clipping method keeps its meaning), gets the smallest scale
+/// that holds it at `z`, `s_c = max(max_c/(127 − z), −min_c/(z + 128))`,
+/// never above `S` and never below `S·CHANNEL_SCALE_FLOOR`. Affine
+/// quantization per Jacob et al. 2018, §2.1, with one scale per channel.
+pub(super) fn channel_qparams(
+    r: crate::ranges::MapRange,
+    chans: &[crate::ranges::MapRange],
+) -> MapQuant {
+    let t = activation_qparams(r);
+    if t.scale == DEGENERATE_SCALE || chans.is_empty() {
+        return t.into();
+    }
+    let r = r.with_zero();
+    let z = t.zero_point as f64;
+    let s = t.scale as f64;
+    let qps: Vec<QParams> = chans
+        .iter()
+        .map(|c| {
+            let hi = (c.max.clamp(r.min, r.max) as f64).max(0.0);
+            let lo = (c.min.clamp(r.min, r.max) as f64).min(0.0);
+            let up = if 127.0 - z > 0.0 {
+                hi / (127.0 - z)
+            } else if hi > 0.0 {
+                s
+            } else {
+                0.0
+            };
+            let down = if z + 128.0 > 0.0 {
+                -lo / (z + 128.0)
+            } else if lo < 0.0 {
+                s
+            } else {
+                0.0
+            };
+            let sc = up.max(down).min(s).max(s * CHANNEL_SCALE_FLOOR as f64) as f32;
+            QParams {
+                scale: if sc.is_normal() { sc } else { t.scale },
+                zero_point: t.zero_point,
+            }
+        })
+        .collect();
+    MapQuant::from_channels(&qps).unwrap_or(t.into())
 }

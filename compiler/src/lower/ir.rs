@@ -50,9 +50,11 @@ pub struct QParams {
 /// Quantization of one stored map: one parameter set, or one per run of
 /// channels.
 ///
-/// A map is per slice only when it is the output of a concatenation whose
+/// A map is per slice when it is the output of a concatenation whose
 /// members keep their own producers' parameters (a concatenation region
-/// whose every reader can absorb per-channel input parameters, see
+/// whose every reader can absorb per-channel input parameters), or the
+/// output of a convolution with one scale per output channel at one zero
+/// point, or of a pooling passing such parameters on (see
 /// `lower/classes.rs`). Every other map, and the network's input and
 /// output, is per tensor. There is no "the" scale of a per-slice map:
 /// [`MapQuant::tensor`] is `None` for it, so a reader that needs one
@@ -547,20 +549,39 @@ impl QGraph {
                     return Err(QGraphError::Slices(m.name.clone()));
                 }
             }
-            // Per-slice maps are written only by a concatenation and read
-            // only where a per-channel transform absorbs their parameters.
-            let concat = matches!(s.kernel, QKernel::Concat);
-            if out.qp.is_sliced() && !concat {
+            // Per-slice maps are written by a concatenation, or, with one
+            // zero point for all channels (the kernels' output zero point
+            // and clamp are scalar), by a convolution (one multiplier per
+            // output channel) or a pooling that keeps its input's
+            // parameters. They are read only where a per-channel transform
+            // absorbs their parameters or a pooling passes them on.
+            let pool = matches!(
+                s.kernel,
+                QKernel::MaxPool(_) | QKernel::AvgPool(_) | QKernel::GlobalAvgPool(_)
+            );
+            let passes = pool && s.inputs.first().is_some_and(|&m| self.map(m).qp == out.qp);
+            let one_zero = out
+                .qp
+                .runs()
+                .windows(2)
+                .all(|w| w[0].zero_point == w[1].zero_point);
+            let writes = match &s.kernel {
+                QKernel::Concat => true,
+                QKernel::Conv2d(_) => one_zero,
+                _ => passes && one_zero,
+            };
+            if out.qp.is_sliced() && !writes {
                 return Err(QGraphError::SlicedAccess {
                     step: s.name.clone(),
                     map: out.name.clone(),
                 });
             }
-            let absorbs = match &s.kernel {
-                QKernel::Concat | QKernel::Channel(_) => true,
-                QKernel::Conv2d(c) => c.transform.is_some(),
-                _ => false,
-            };
+            let absorbs = passes
+                || match &s.kernel {
+                    QKernel::Concat | QKernel::Channel(_) => true,
+                    QKernel::Conv2d(c) => c.transform.is_some(),
+                    _ => false,
+                };
             if let Some(m) = s
                 .inputs
                 .iter()

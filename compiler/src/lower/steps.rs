@@ -108,10 +108,22 @@ impl Builder<'_> {
     ) -> Result<(), LowerError> {
         let g = self.g;
         let layer = g.layer(id);
-        // Only a concatenation writes a per-slice map, and it has no clamp.
+        // A concatenation writes a per-slice map (it has no clamp); a
+        // convolution or pooling may write one scale per channel at one
+        // zero point (`classes::per_channel_outputs`), so its clamp, made
+        // from the zero point alone (no ReLU6 there), is the same for
+        // every channel.
+        let one_zero = out_q
+            .runs()
+            .windows(2)
+            .all(|w| w[0].zero_point == w[1].zero_point);
         let out_qp = match (&out_q, &layer.op) {
             (MapQuant::Tensor(qp), _) => *qp,
             (MapQuant::Slices(_), Op::Concat) => out_q.channel(0),
+            (
+                MapQuant::Slices(_),
+                Op::Conv2d(_) | Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool,
+            ) if one_zero && act != Activation::Relu6 => out_q.channel(0),
             (MapQuant::Slices(_), _) => {
                 return Err(LowerError::Internal(format!(
                     "`{}` would write a per-slice map",
@@ -146,7 +158,12 @@ impl Builder<'_> {
             .first()
             .map(|q| q.per_channel(g.shape(read[0]).c))
             .unwrap_or_default();
-        let absorbs = super::classes::absorbs_slices(&layer.op, pre.is_some());
+        // A pooling passes per-channel parameters on unchanged.
+        let passes = matches!(
+            layer.op,
+            Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool
+        ) && in_q.first() == Some(&out_q);
+        let absorbs = super::classes::absorbs_slices(&layer.op, pre.is_some()) || passes;
         let in_qp: Vec<QParams> = in_q
             .iter()
             .map(|q| match q.tensor() {
@@ -223,7 +240,7 @@ impl Builder<'_> {
                     &qw,
                     &bias,
                     dom,
-                    out_qp,
+                    &out_q,
                     g.shape(read[0]),
                     out_shape,
                 )?;
@@ -264,7 +281,7 @@ impl Builder<'_> {
                     .map_or_else(|| vec![0.0; lin.out_features], |t| t.data.clone());
                 let bias = shifted(ranges, &layer.name, bias);
                 let (bias, requant) =
-                    self.bias_and_requant(id, &qw, &bias, in_qp[0], out_qp, src, out_shape)?;
+                    self.bias_and_requant(id, &qw, &bias, in_qp[0], &out_q, src, out_shape)?;
                 QKernel::Linear(QLinear {
                     out_features: lin.out_features,
                     in_features: lin.in_features,
@@ -409,7 +426,8 @@ impl Builder<'_> {
     }
 
     /// Quantized, zero-point-folded biases and per-row multipliers of a conv
-    /// or linear layer, with the accumulator bound checked.
+    /// or linear layer, with the accumulator bound checked; row `o` is
+    /// requantized to output channel `o`'s scale.
     #[allow(clippy::too_many_arguments)]
     fn bias_and_requant(
         &self,
@@ -417,7 +435,7 @@ impl Builder<'_> {
         qw: &quant::QuantizedWeights,
         bias: &[f32],
         qin: QParams,
-        qout: QParams,
+        qout: &MapQuant,
         in_shape: Shape,
         out_shape: Shape,
     ) -> Result<(Vec<i32>, Vec<Multiplier>), LowerError> {
@@ -454,7 +472,7 @@ impl Builder<'_> {
             requant.push(self.mult(
                 id,
                 format!("output channel {o} multiplier s_in·s_w/s_out"),
-                s_acc / qout.scale as f64,
+                s_acc / qout.channel(o).scale as f64,
             )?);
         }
         Ok((folded, requant))

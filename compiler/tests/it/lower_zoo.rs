@@ -118,6 +118,7 @@ fn fusion_ram_saved_on_zoo_dense_networks() {
             g.map_count()
         ],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     };
     let g = zoo::dense_small(1).build();
     let s = fusion_savings(&lower(&g, &synthetic(&g), &LowerOptions::default()).unwrap());

@@ -5,6 +5,7 @@
 mod bias_correction;
 mod calibrate_zoo;
 mod camera_host;
+mod channels;
 mod check_runners;
 mod codegen;
 mod codegen_camera;

@@ -400,6 +400,7 @@ pub fn calibrate(g: &Graph, images: &[Vec<f32>]) -> Ranges {
         images: images.len(),
         maps: r,
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     }
 }
 
@@ -431,6 +432,7 @@ pub fn minmax_ranges(g: &Graph, inputs: &[Vec<f32>]) -> Ranges {
         images: inputs.len(),
         maps,
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     }
 }
 
@@ -443,5 +445,6 @@ pub fn flat_ranges(g: &Graph, min: f32, max: f32) -> Ranges {
         images: 0,
         maps: vec![MapRange { min, max }; g.map_count()],
         bias_shifts: Default::default(),
+        channels: Vec::new(),
     }
 }
