@@ -24,8 +24,8 @@ mod common;
 use anyhow::{bail, Context, Result};
 use candle_core::{Device, Tensor, Var};
 use common::*;
-use ingot_compiler::frontend::{GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
-use ingot_demo::brackets::{CLASSES, SIZE, TRAIN_SEED};
+use ingot_compiler::frontend::{GraphFile, LayerFile, TensorStore};
+use ingot_demo::brackets::{CLASSES, TRAIN_SEED};
 use ingot_demo::rng::Rng;
 use std::path::PathBuf;
 use std::time::Instant;
@@ -223,22 +223,7 @@ impl Net {
         layers.push(LayerFile::new("final.relu", "relu", "final.bn"));
         layers.push(LayerFile::new("gap", "global_avg_pool", "final.relu"));
         layers.push(LayerFile::linear("fc", "gap", true));
-        let graph = GraphFile {
-            format: FORMAT_V1.into(),
-            name: "brackets".into(),
-            weights: "brackets.safetensors".into(),
-            input: InputFile {
-                name: "image".into(),
-                shape: vec![1, SIZE, SIZE],
-                pixel_scale: Some(1.0 / 255.0),
-                mean: Some(vec![mean]),
-                std: Some(vec![std]),
-                color: Some("gray".into()),
-            },
-            labels: Some(CLASSES.iter().map(|s| s.to_string()).collect()),
-            layers,
-            output: "fc".into(),
-        };
+        let graph = bracket_graph("brackets", "brackets.safetensors".into(), layers, mean, std);
         Ok((graph, store))
     }
 }

@@ -29,8 +29,8 @@ mod common;
 use anyhow::{bail, Context, Result};
 use candle_core::{Tensor, Var};
 use common::*;
-use ingot_compiler::frontend::{GraphFile, InputFile, LayerFile, TensorStore, FORMAT_V1};
-use ingot_demo::brackets::{CLASSES, SIZE, TRAIN_SEED};
+use ingot_compiler::frontend::{GraphFile, LayerFile, TensorStore};
+use ingot_demo::brackets::{CLASSES, TRAIN_SEED};
 use ingot_demo::rng::Rng;
 use std::path::PathBuf;
 use std::time::Instant;
@@ -161,22 +161,7 @@ impl Net {
         self.fc.export(&mut store, "fc")?;
         layers.push(LayerFile::new("pool", "global_avg_pool", &x));
         layers.push(LayerFile::linear("fc", "pool", true));
-        let graph = GraphFile {
-            format: FORMAT_V1.into(),
-            name: name.into(),
-            weights,
-            input: InputFile {
-                name: "image".into(),
-                shape: vec![1, SIZE, SIZE],
-                pixel_scale: Some(1.0 / 255.0),
-                mean: Some(vec![mean]),
-                std: Some(vec![std]),
-                color: Some("gray".into()),
-            },
-            labels: Some(CLASSES.iter().map(|s| s.to_string()).collect()),
-            layers,
-            output: "fc".into(),
-        };
+        let graph = bracket_graph(name, weights, layers, mean, std);
         Ok((graph, store))
     }
 }

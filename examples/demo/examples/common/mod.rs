@@ -748,3 +748,32 @@ pub fn report_and_export(
     );
     Ok(())
 }
+
+/// The graph file of a bracket classifier: 64×64 gray input normalised
+/// with the training set's `mean` and `std`, the four classes, `fc` the
+/// output layer.
+pub fn bracket_graph(
+    name: &str,
+    weights: String,
+    layers: Vec<ingot_compiler::frontend::LayerFile>,
+    mean: f32,
+    std: f32,
+) -> ingot_compiler::frontend::GraphFile {
+    use ingot_demo::brackets::{CLASSES, SIZE};
+    ingot_compiler::frontend::GraphFile {
+        format: ingot_compiler::frontend::FORMAT_V1.into(),
+        name: name.into(),
+        weights,
+        input: ingot_compiler::frontend::InputFile {
+            name: "image".into(),
+            shape: vec![1, SIZE, SIZE],
+            pixel_scale: Some(1.0 / 255.0),
+            mean: Some(vec![mean]),
+            std: Some(vec![std]),
+            color: Some("gray".into()),
+        },
+        labels: Some(CLASSES.iter().map(|s| s.to_string()).collect()),
+        layers,
+        output: "fc".into(),
+    }
+}
