@@ -258,6 +258,9 @@ impl Report {
     }
 }
 
+/// The scale column of a map stored with more than one scale.
+const PER_CHANNEL: &str = "per chan.";
+
 fn pct(x: f64) -> String {
     format!("{:.2}%", 100.0 * x)
 }
@@ -303,7 +306,14 @@ impl fmt::Display for Report {
         )?;
         for r in &self.layers {
             let range = format!("[{:.4}, {:.4}]", r.range.min, r.range.max);
-            let scale = r.scale.map_or(MISSING.into(), |s| format!("{s:.3e}"));
+            // A stored map without one scale holds one per channel (or per
+            // slice of a concatenation region): say so rather than print the
+            // mark of a map that is not stored.
+            let scale = match (r.scale, r.sqnr_db) {
+                (Some(s), _) => format!("{s:.3e}"),
+                (None, Some(_)) => PER_CHANNEL.into(),
+                (None, None) => MISSING.into(),
+            };
             let zp = r.zero_point.map_or(MISSING.into(), |z| z.to_string());
             writeln!(
                 t,
@@ -319,6 +329,16 @@ impl fmt::Display for Report {
             )?;
         }
         f.write_str(&t)?;
+        if self
+            .layers
+            .iter()
+            .any(|r| r.scale.is_none() && r.sqnr_db.is_some())
+        {
+            writeln!(
+                f,
+                "{PER_CHANNEL}: one scale per channel, or per slice of a concatenation region (docs/quantization.md)"
+            )?;
+        }
         match (&self.output, &self.not_evaluated) {
             (Some(o), _) => {
                 writeln!(
@@ -429,4 +449,63 @@ fn write_paired(
         )?;
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn row(name: &str, scale: Option<f32>, sqnr_db: Option<f64>) -> LayerRow {
+        let r = MapRange {
+            min: -1.0,
+            max: 1.0,
+        };
+        LayerRow {
+            map: 0,
+            name: name.into(),
+            op: "conv2d".into(),
+            range: r,
+            observed: r,
+            clipped: 0.0,
+            scale,
+            zero_point: scale.map(|_| 0),
+            sqnr_db,
+        }
+    }
+
+    fn report(layers: Vec<LayerRow>) -> String {
+        Report {
+            graph: "g".into(),
+            method: "minmax".into(),
+            folder: "d".into(),
+            listed: 1,
+            calibration: vec!["a.png".into()],
+            evaluation: vec![],
+            evaluated_on: "calibration".into(),
+            skipped: vec![],
+            ignored: vec![],
+            layers,
+            output: None,
+            not_evaluated: None,
+            bias_correction: None,
+        }
+        .to_string()
+    }
+
+    #[test]
+    fn a_stored_map_with_per_channel_scales_is_not_printed_as_unstored() {
+        let text = report(vec![
+            row("one", Some(0.5), Some(30.0)),
+            row("chan", None, Some(25.0)),
+            row("gone", None, None),
+        ]);
+        let line = |n: &str| text.lines().find(|l| l.contains(n)).unwrap().to_string();
+        assert!(line("one").contains("5.000e-1"), "{text}");
+        assert!(line("chan").contains(PER_CHANNEL), "{text}");
+        assert!(!line("gone").contains(PER_CHANNEL), "{text}");
+        assert!(text.contains("per chan.: one scale per channel"), "{text}");
+        // Without such a map the legend is not printed.
+        let plain = report(vec![row("one", Some(0.5), Some(30.0))]);
+        assert!(!plain.contains(PER_CHANNEL), "{plain}");
+    }
 }
