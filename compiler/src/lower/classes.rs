@@ -7,7 +7,7 @@
 //! shares one parameter set; a max pool keeps its input's parameters
 //! unless its output joins a shared region.
 
-use super::fusion::Role;
+use super::fusion::{is_pool, step_reads, Role};
 use super::quant::{activation_qparams, DEGENERATE_SCALE};
 use super::{Activation, LowerError, MapQuant, QParams};
 use crate::graph::{Graph, LayerId, MapId, Op};
@@ -82,10 +82,7 @@ pub(super) fn map_qparams(
             continue;
         };
         let absorbs = absorbs_slices(&g.layer(id).op, pre.is_some());
-        let read: Vec<MapId> = match pre {
-            Some(p) => vec![p.src],
-            None => g.layer(id).inputs.clone(),
-        };
+        let read = step_reads(&g.layer(id).inputs, pre.as_ref());
         for m in read {
             let m = stored(m, id)?.index();
             if is_concat(m) && !absorbs {
@@ -178,9 +175,7 @@ pub(super) fn map_qparams(
 /// (`s_in/s_out`, or `1/taps`) is then one value for every channel. ReLU6
 /// is excluded: its clamp `z + round(6/s)` would differ per channel.
 fn passes_channels(op: &Op, fused: bool, act: Activation) -> bool {
-    !fused
-        && act != Activation::Relu6
-        && matches!(op, Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool)
+    !fused && act != Activation::Relu6 && is_pool(op)
 }
 
 /// Which stored maps written by a convolution get one scale per output
@@ -224,10 +219,7 @@ fn per_channel_outputs(
             continue;
         };
         let op = &g.layer(id).op;
-        let read: Vec<MapId> = match pre {
-            Some(p) => vec![p.src],
-            None => g.layer(id).inputs.clone(),
-        };
+        let read = step_reads(&g.layer(id).inputs, pre.as_ref());
         let absorbs = absorbs_slices(op, pre.is_some());
         let passes = passes_channels(op, pre.is_some(), *act).then_some(o.index());
         for m in read {

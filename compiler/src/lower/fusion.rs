@@ -15,6 +15,22 @@ pub(super) struct PreAct {
     pub(super) t: MapId,
 }
 
+/// The float maps a step with main layer `inputs` reads: with a fused
+/// pre-activation, the batch norm's input instead of the layer's own.
+pub(super) fn step_reads(inputs: &[MapId], pre: Option<&PreAct>) -> Vec<MapId> {
+    match pre {
+        Some(p) => vec![p.src],
+        None => inputs.to_vec(),
+    }
+}
+
+/// True for the poolings, which can write their output with their input's
+/// per-channel parameters (one multiplier, `s_in/s_out` or `1/taps`, for
+/// every channel).
+pub(super) fn is_pool(op: &Op) -> bool {
+    matches!(op, Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool)
+}
+
 /// What a float layer becomes.
 #[derive(Debug, Clone)]
 pub(super) enum Role {

@@ -2,7 +2,7 @@
 //! folded with the input zero point, multipliers built and the accumulator
 //! bound checked, one [`QStep`] per step role.
 
-use super::fusion::{act_of, PreAct};
+use super::fusion::{act_of, is_pool, step_reads, PreAct};
 use super::quant::{self, activation_clamp, affine_transform, multiplier, quantize_weights};
 use super::*;
 use crate::graph::Shape;
@@ -120,10 +120,13 @@ impl Builder<'_> {
         let out_qp = match (&out_q, &layer.op) {
             (MapQuant::Tensor(qp), _) => *qp,
             (MapQuant::Slices(_), Op::Concat) => out_q.channel(0),
-            (
-                MapQuant::Slices(_),
-                Op::Conv2d(_) | Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool,
-            ) if one_zero && act != Activation::Relu6 => out_q.channel(0),
+            (MapQuant::Slices(_), op)
+                if (matches!(op, Op::Conv2d(_)) || is_pool(op))
+                    && one_zero
+                    && act != Activation::Relu6 =>
+            {
+                out_q.channel(0)
+            }
             (MapQuant::Slices(_), _) => {
                 return Err(LowerError::Internal(format!(
                     "`{}` would write a per-slice map",
@@ -134,10 +137,7 @@ impl Builder<'_> {
         let clamp = activation_clamp(act, out_qp);
         // Inputs as stored; a pre-activation convolution reads the batch
         // norm's input.
-        let read: Vec<MapId> = match pre {
-            Some(p) => vec![p.src],
-            None => layer.inputs.clone(),
-        };
+        let read = step_reads(&layer.inputs, pre.as_ref());
         let inputs = read
             .iter()
             .map(|&m| self.input_map(id, m, canon))
@@ -159,10 +159,7 @@ impl Builder<'_> {
             .map(|q| q.per_channel(g.shape(read[0]).c))
             .unwrap_or_default();
         // A pooling passes per-channel parameters on unchanged.
-        let passes = matches!(
-            layer.op,
-            Op::MaxPool2d(_) | Op::AvgPool2d(_) | Op::GlobalAvgPool
-        ) && in_q.first() == Some(&out_q);
+        let passes = is_pool(&layer.op) && in_q.first() == Some(&out_q);
         let absorbs = super::classes::absorbs_slices(&layer.op, pre.is_some()) || passes;
         let in_qp: Vec<QParams> = in_q
             .iter()
