@@ -21,7 +21,7 @@ pub fn channel_transform(
     t: &InputTransform<'_>,
 ) -> Result<(), Error> {
     let a = check_transform(arena.len(), input, output, *t)?;
-    transform_run(arena, &a);
+    transform_run(arena, &a, 0, usize::MAX);
     Ok(())
 }
 
@@ -68,12 +68,15 @@ pub(crate) const fn check_transform<'a>(
     Ok(TransformArgs { input, output, t })
 }
 
-/// Runs a checked channel transform.
-pub(crate) fn transform_run(arena: &mut [i8], a: &TransformArgs<'_>) {
+/// Runs a checked channel transform for rows `[y0, y1)` (`y1` clipped to
+/// the height).
+pub(crate) fn transform_run(arena: &mut [i8], a: &TransformArgs<'_>, y0: usize, y1: usize) {
     let (input, output, t) = (a.input, a.output, &a.t);
-    for y in 0..input.h {
+    let y1 = if y1 < input.h { y1 } else { input.h };
+    for y in y0..y1 {
+        let (ri, ro) = (input.row(y), output.row(y));
         for x in 0..input.w {
-            let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
+            let (src, dst) = (ri + x * input.stride, ro + x * output.stride);
             for ch in 0..input.c {
                 // Read before write: element-wise, so in place is exact.
                 let Some(&v) = arena.get(src + ch) else {

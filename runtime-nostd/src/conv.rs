@@ -583,15 +583,21 @@ fn check_and_run(
         *p,
         transform.copied(),
     )?;
-    conv_run(arena, &a, patch);
+    conv_run(arena, &a, patch, 0, usize::MAX);
     Ok(())
 }
 
 /// Runs a checked convolution. Every slice is taken with `get`: after
 /// [`check_conv`] none of them can be out of range, and the early returns
 /// (which cannot happen) are what leaves no panic path in the binary.
-pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::ANY }>(arena, a, patch);
+pub(crate) fn conv_run(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::ANY }>(arena, a, patch, y0, y1);
 }
 
 /// [`conv_run`] for the int8 forms only ([`crate::checked::Conv2d`]).
@@ -600,20 +606,38 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
 /// runs a checked call (a generated module would otherwise carry, and
 /// rustc optimise, its own copy of every kernel).
 #[inline(never)]
-pub(crate) fn conv_run_int8(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch);
+pub(crate) fn conv_run_int8(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch, y0, y1);
 }
 
 /// [`conv_run`] for the paired form only.
 #[inline(never)]
-pub(crate) fn conv_run_pairs(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::PAIRS }>(arena, a, patch);
+pub(crate) fn conv_run_pairs(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::PAIRS }>(arena, a, patch, y0, y1);
 }
 
 /// [`conv_run`] for the word form only.
 #[inline(never)]
-pub(crate) fn conv_run_words(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::WORDS }>(arena, a, patch);
+pub(crate) fn conv_run_words(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::WORDS }>(arena, a, patch, y0, y1);
 }
 
 /// Which weight forms a [`conv_run_forms`] instance handles (bit set).
@@ -634,8 +658,22 @@ pub(crate) mod forms {
 /// call type runs the instance of its own forms, so a firmware links the
 /// kernels of the forms its module uses and not the others (the match on
 /// the stored form cannot be decided at link time).
-fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+///
+/// Only output rows `[y0, y1)` are computed (`y1` clipped to the output's
+/// height): a row pipeline calls a step for the rows its consumer needs
+/// next.
+fn conv_run_forms<const F: u8>(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
     let (input, output, p) = (a.input, a.output, &a.p);
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    if y0 >= y1 {
+        return;
+    }
     let transform = a.transform.as_ref();
     let (bias, requant) = (a.bias, a.requant);
     let w = &p.window;
@@ -653,13 +691,13 @@ fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [
     match (a.rows, a.ring) {
         (Rows::Pairs(pw), true) if F & forms::PAIRS != 0 => {
             conv_rows(
-                arena, &input, &output, pw, bias, requant, p, transform, patch,
+                arena, &input, &output, pw, bias, requant, p, transform, patch, y0, y1,
             );
             return;
         }
         (Rows::Words(ww), true) if F & forms::WORDS != 0 => {
             conv_rows(
-                arena, &input, &output, ww, bias, requant, p, transform, patch,
+                arena, &input, &output, ww, bias, requant, p, transform, patch, y0, y1,
             );
             return;
         }
@@ -674,23 +712,23 @@ fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [
     match a.rows {
         Rows::Bytes(wb) if F & forms::BYTES != 0 => {
             if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
-                conv_pixels::<i8, F>(arena, a, x, wv);
+                conv_pixels::<i8, F>(arena, a, x, wv, y0, y1);
             }
         }
         Rows::File(wb) if F & forms::FILE != 0 => {
             if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
-                conv_pixels::<u8, F>(arena, a, x, wv);
+                conv_pixels::<u8, F>(arena, a, x, wv, y0, y1);
             }
         }
         Rows::Pairs(_) if F & forms::PAIRS != 0 => {
             if let Some(x) = patch.get_mut(..seg.div_ceil(2) * 2) {
-                conv_pixels::<u8, F>(arena, a, x, &[]);
+                conv_pixels::<u8, F>(arena, a, x, &[], y0, y1);
             }
         }
         // The word kernels pad the last quad themselves.
         Rows::Words(_) if F & forms::WORDS != 0 => {
             if let Some(x) = patch.get_mut(..seg) {
-                conv_pixels::<u8, F>(arena, a, x, &[]);
+                conv_pixels::<u8, F>(arena, a, x, &[], y0, y1);
             }
         }
         _ => {}
@@ -705,6 +743,8 @@ fn conv_pixels<W: Wt, const F: u8>(
     a: &ConvArgs<'_>,
     patch: &mut [i16],
     weights: &[W],
+    y0: usize,
+    y1: usize,
 ) {
     let (input, output, p) = (a.input, a.output, &a.p);
     let transform = a.transform.as_ref();
@@ -754,7 +794,7 @@ fn conv_pixels<W: Wt, const F: u8>(
     if run == 0 || taps == 0 || (opg == 0 && output.c > 0) {
         return;
     }
-    for oy in 0..output.h {
+    for oy in y0..y1 {
         for ox in 0..output.w {
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
@@ -1138,6 +1178,8 @@ fn conv_rows<T: Packed>(
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
     ring: &mut [i16],
+    y0: usize,
+    y1: usize,
 ) {
     let w = &p.window;
     let c = input.c;
@@ -1172,10 +1214,11 @@ fn conv_rows<T: Packed>(
     ) else {
         return;
     };
-    for oy in 0..output.h {
+    for oy in y0..y1 {
         // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh.
-        // Going down one output row brings in one new input row.
-        let first = if oy == 0 { 0 } else { oy + w.kh - 1 };
+        // Going down one output row brings in one new input row; a call
+        // that starts at row y0 (a row pipeline's) fills all kh first.
+        let first = if oy == y0 { oy } else { oy + w.kh - 1 };
         for yy in first..oy + w.kh {
             let slot = yy % kh;
             let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {

@@ -98,6 +98,10 @@ pub(crate) const fn check_global_pool(
     if let Err(e) = check_pool(arena_len, &input, &output, &q) {
         return Err(e);
     }
+    // The sum walks the pixels as one run: whole maps only.
+    if input.is_ring() || output.is_ring() {
+        return Err(Error::BadParams);
+    }
     if output.h != 1 || output.w != 1 || input.pixels() == 0 {
         return Err(Error::ShapeMismatch);
     }
@@ -145,14 +149,16 @@ pub fn max_pool2d(
     q: &PoolQuant,
 ) -> Result<(), Error> {
     let a = check_window_pool(arena.len(), input, output, *window, *q)?;
-    max_pool_run(arena, &a);
+    max_pool_run(arena, &a, 0, usize::MAX);
     Ok(())
 }
 
-/// Runs a checked max pooling.
-pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs) {
+/// Runs a checked max pooling for output rows `[y0, y1)` (`y1` clipped to
+/// the output's height).
+pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize) {
     let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
-    for oy in 0..output.h {
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    for oy in y0..y1 {
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
             for ch in 0..input.c {
@@ -207,15 +213,17 @@ pub fn avg_pool2d(
     q: &PoolQuant,
 ) -> Result<(), Error> {
     let a = check_window_pool(arena.len(), input, output, *window, *q)?;
-    avg_pool_run(arena, &a);
+    avg_pool_run(arena, &a, 0, usize::MAX);
     Ok(())
 }
 
-/// Runs a checked average pooling.
-pub(crate) fn avg_pool_run(arena: &mut [i8], a: &PoolArgs) {
+/// Runs a checked average pooling for output rows `[y0, y1)` (`y1`
+/// clipped to the output's height).
+pub(crate) fn avg_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize) {
     let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
     let n = w.taps() as i64;
-    for oy in 0..output.h {
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    for oy in y0..y1 {
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
             for ch in 0..input.c {
