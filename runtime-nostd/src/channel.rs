@@ -25,6 +25,20 @@ pub fn channel_transform(
     Ok(())
 }
 
+/// [`channel_transform`] for rows `[rows.0, rows.1)` only (clipped), for
+/// a row pipeline; either map may be a ring.
+pub fn channel_transform_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    t: &InputTransform<'_>,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let a = check_transform(arena.len(), input, output, *t)?;
+    transform_run(arena, &a, rows.0, rows.1);
+    Ok(())
+}
+
 /// A channel transform that passed [`check_transform`]: running it cannot
 /// fail.
 #[derive(Clone, Copy)]

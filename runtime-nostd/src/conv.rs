@@ -481,6 +481,7 @@ pub fn conv2d(
         p,
         transform,
         patch,
+        (0, usize::MAX),
     )
 }
 
@@ -518,6 +519,7 @@ pub fn conv2d_paired(
         p,
         transform,
         patch,
+        (0, usize::MAX),
     )
 }
 
@@ -555,6 +557,73 @@ pub fn conv2d_words(
         p,
         transform,
         patch,
+        (0, usize::MAX),
+    )
+}
+
+/// [`conv2d`] for output rows `[y0, y1)` only (clipped to the output's
+/// height), for a row pipeline: `input` and `output` may be rings
+/// ([`MapRef::ring`]) holding the rows these output rows read and write.
+/// Same bytes in those rows as [`conv2d`].
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[i8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let w = Rows::Bytes(weights);
+    check_and_run(
+        arena, input, output, w, bias, requant, p, transform, patch, rows,
+    )
+}
+
+/// [`conv2d_paired`] for output rows `[rows.0, rows.1)` only, as
+/// [`conv2d_rows`]. With its ring of input rows in `patch`, a call that
+/// starts mid-map fills all `kh` rows of it first.
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_paired_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u32],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let w = Rows::Pairs(weights);
+    check_and_run(
+        arena, input, output, w, bias, requant, p, transform, patch, rows,
+    )
+}
+
+/// [`conv2d_words`] for output rows `[rows.0, rows.1)` only, as
+/// [`conv2d_paired_rows`].
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_words_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let w = Rows::Words(weights);
+    check_and_run(
+        arena, input, output, w, bias, requant, p, transform, patch, rows,
     )
 }
 
@@ -571,6 +640,7 @@ fn check_and_run(
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
+    out_rows: (usize, usize),
 ) -> Result<(), Error> {
     let a = check_conv(
         arena.len(),
@@ -583,7 +653,7 @@ fn check_and_run(
         *p,
         transform.copied(),
     )?;
-    conv_run(arena, &a, patch, 0, usize::MAX);
+    conv_run(arena, &a, patch, out_rows.0, out_rows.1);
     Ok(())
 }
 

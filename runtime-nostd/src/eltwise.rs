@@ -120,6 +120,21 @@ pub fn add(
     Ok(())
 }
 
+/// [`add`] for rows `[rows.0, rows.1)` only (clipped), for a row
+/// pipeline; any of the maps may be a ring.
+pub fn add_rows(
+    arena: &mut [i8],
+    a: MapRef,
+    b: MapRef,
+    output: MapRef,
+    p: &AddParams,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let args = check_add(arena.len(), a, b, output, *p)?;
+    add_run(arena, &args, rows.0, rows.1);
+    Ok(())
+}
+
 /// An addition that passed [`check_add`]: running it cannot fail.
 #[derive(Debug, Clone, Copy)]
 pub(crate) struct AddArgs {

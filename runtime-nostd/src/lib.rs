@@ -201,13 +201,14 @@ mod pool;
 mod requant;
 mod transform;
 
-pub use channel::{channel_transform, copy_channels};
+pub use channel::{channel_transform, channel_transform_rows, copy_channels};
 pub use conv::{
-    conv2d, conv2d_paired, conv2d_words, conv_patch_len, conv_rows_apply, conv_rows_apply_words,
-    conv_rows_len, pair_rows, pair_rows_into, paired_len, window_out_len, word_rows_into,
-    words_len, ConvParams, Padding, Window,
+    conv2d, conv2d_paired, conv2d_paired_rows, conv2d_rows, conv2d_words, conv2d_words_rows,
+    conv_patch_len, conv_rows_apply, conv_rows_apply_words, conv_rows_len, pair_rows,
+    pair_rows_into, paired_len, window_out_len, word_rows_into, words_len, ConvParams, Padding,
+    Window,
 };
-pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
+pub use eltwise::{add, add_rows, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;
 pub use frame::{
     convert_frame, FrameConfig, FrameError, FrameParams, Luma, PixelFormat, Resize, Roi,
@@ -215,7 +216,9 @@ pub use frame::{
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
 pub use linear::linear;
 pub use map::MapRef;
-pub use pool::{avg_pool2d, div_round, global_avg_pool, max_pool2d, PoolQuant};
+pub use pool::{
+    avg_pool2d, avg_pool2d_rows, div_round, global_avg_pool, max_pool2d, max_pool2d_rows, PoolQuant,
+};
 pub use requant::{
     acc_fits, acc_worst_case, sat_i8, OutputQuant, Requant, MAX_TOTAL_SHIFT, MIN_TOTAL_SHIFT,
 };

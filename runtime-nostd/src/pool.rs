@@ -153,6 +153,36 @@ pub fn max_pool2d(
     Ok(())
 }
 
+/// [`max_pool2d`] for output rows `[rows.0, rows.1)` only (clipped), for
+/// a row pipeline; `input` and `output` may be rings.
+pub fn max_pool2d_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    window: &Window,
+    q: &PoolQuant,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
+    max_pool_run(arena, &a, rows.0, rows.1);
+    Ok(())
+}
+
+/// [`avg_pool2d`] for output rows `[rows.0, rows.1)` only (clipped), for
+/// a row pipeline; `input` and `output` may be rings.
+pub fn avg_pool2d_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    window: &Window,
+    q: &PoolQuant,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
+    avg_pool_run(arena, &a, rows.0, rows.1);
+    Ok(())
+}
+
 /// Runs a checked max pooling for output rows `[y0, y1)` (`y1` clipped to
 /// the output's height).
 pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize) {

@@ -1,0 +1,169 @@
+//! Row streaming (`plan::stream`): the planner's choice, the fused
+//! bounds against the goals of issue 17, the verifier on every zoo
+//! network, and the fused schedule in the simulator against the unfused
+//! one, bit for bit.
+
+use ingot_compiler::lower::{lower, LowerOptions, QGraph, SimInput, Simulator};
+use ingot_compiler::plan::{self, Plan, PlanOptions, Schedule};
+use ingot_compiler::ranges::Ranges;
+use ingot_rt::MapRef;
+use ingot_testkit::synth;
+use std::path::Path;
+use std::sync::OnceLock;
+
+fn demo() -> &'static QGraph {
+    static Q: OnceLock<QGraph> = OnceLock::new();
+    Q.get_or_init(|| {
+        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("../examples/demo/model");
+        let g = ingot_compiler::load(&dir.join("brackets.graph.json")).expect("demo graph");
+        let r = Ranges::load(&g, &dir.join("brackets.ranges.json"), None).expect("demo ranges");
+        lower(&g, &r, &LowerOptions::default()).expect("lowered")
+    })
+}
+
+fn zoo() -> &'static [QGraph] {
+    static Z: OnceLock<Vec<QGraph>> = OnceLock::new();
+    Z.get_or_init(synth::zoo_lowered)
+}
+
+fn zoo_net(name: &str) -> &'static QGraph {
+    zoo()
+        .iter()
+        .find(|q| q.name.ends_with(name))
+        .unwrap_or_else(|| panic!("zoo has {name}"))
+}
+
+fn planned(q: &QGraph, stream: bool) -> Plan {
+    let p = plan::plan(
+        q,
+        &PlanOptions {
+            stream,
+            verify: true,
+            ..PlanOptions::default()
+        },
+    )
+    .unwrap_or_else(|e| panic!("{}: {e}", q.name));
+    plan::verify(q, &p).unwrap_or_else(|e| panic!("{}: {e}", q.name));
+    p
+}
+
+/// The goals of issue 17 (`ingot plan` bytes of the arena, rings
+/// included); plans are deterministic, so the figures are exact.
+#[test]
+fn fused_plans_meet_the_goals() {
+    for (q, unfused, goal) in [
+        (demo(), 73_728, 64_000),
+        (zoo_net("inverted_residual"), 138_240, 65_536),
+        (zoo_net("densenet121"), 1_605_632, 1_250_000),
+    ] {
+        let p = planned(q, true);
+        assert_eq!(p.unfused_bound, unfused, "{}", q.name);
+        assert!(!p.pipelines.is_empty(), "{}", q.name);
+        assert!(
+            p.lower_bound <= goal,
+            "{}: {} > {goal}",
+            q.name,
+            p.lower_bound
+        );
+        assert!(
+            p.arena_bytes <= goal,
+            "{}: {} > {goal}",
+            q.name,
+            p.arena_bytes
+        );
+        assert!(p.arena_bytes >= p.lower_bound, "{}", q.name);
+        // Without streaming: today's plan, nothing fused.
+        let off = planned(q, false);
+        assert!(off.pipelines.is_empty());
+        assert_eq!(off.lower_bound, off.unfused_bound);
+        assert_eq!(off.arena_bytes, unfused, "{}", q.name);
+    }
+}
+
+/// Every zoo network and test-set graph plans with streaming and passes
+/// the verifier (rings hold the rows their consumers read), and streaming
+/// never raises the bound.
+#[test]
+fn every_fused_plan_verifies() {
+    for q in zoo().iter().chain(&synth::test_set()) {
+        let p = planned(q, true);
+        assert!(p.lower_bound <= p.unfused_bound, "{}", q.name);
+        for pl in &p.pipelines {
+            assert!(pl.rings.len() < pl.steps.len(), "{}", q.name);
+            for r in &pl.rings {
+                assert!(r.rows < q.map(r.map).shape.h);
+            }
+        }
+    }
+}
+
+/// The verifier refuses a ring one row too small, and calls out of turn.
+#[test]
+fn verifier_catches_short_rings_and_bad_calls() {
+    let q = demo();
+    let p = planned(q, true);
+    let k = p
+        .pipelines
+        .iter()
+        .position(|pl| pl.rings.iter().any(|r| r.rows > 1))
+        .expect("a ring of more than one row");
+    let mut bad = p.clone();
+    for r in &mut bad.pipelines[k].rings {
+        r.rows -= 1;
+    }
+    assert!(plan::verify(q, &bad).is_err());
+    let mut bad = p.clone();
+    bad.pipelines[k].calls.swap(0, 1);
+    assert!(plan::verify(q, &bad).is_err());
+}
+
+/// The simulator's map refs of a plan: rings where it streams.
+fn refs(q: &QGraph, s: &Schedule) -> Vec<MapRef> {
+    q.maps
+        .iter()
+        .enumerate()
+        .map(|(m, map)| {
+            let v = s.views[m];
+            let sh = map.shape;
+            let rows = s
+                .ring_rows(ingot_compiler::lower::QMapId(m as u32))
+                .unwrap_or(sh.h);
+            MapRef::ring(v.offset, sh.h, sh.w, sh.c, v.stride, rows)
+        })
+        .collect()
+}
+
+fn codes(q: &QGraph, seed: u64) -> Vec<i8> {
+    let mut s = seed | 1;
+    (0..q.map(q.input).shape.len())
+        .map(|_| {
+            s ^= s << 13;
+            s ^= s >> 7;
+            s ^= s << 17;
+            (s >> 32) as i8
+        })
+        .collect()
+}
+
+/// Fused = unfused, bit for bit, in the simulator (the `ingot-rt` kernels
+/// themselves), on the demo and every zoo network.
+#[test]
+fn fused_schedule_simulates_bit_identically() {
+    for q in std::iter::once(demo()).chain(zoo()) {
+        let p = planned(q, true);
+        assert!(!p.pipelines.is_empty(), "{} streams nothing", q.name);
+        let s = Schedule::from(&p);
+        let mut fused = Simulator::with_layout(q, refs(q, &s), s.arena_bytes)
+            .expect("layout")
+            .with_program(s.program())
+            .expect("program");
+        let mut plain = Simulator::new(q);
+        let images = if q.name.contains("densenet") { 1 } else { 3 };
+        for seed in 0..images {
+            let x = codes(q, seed + 1);
+            let want = plain.run(SimInput::Codes(&x)).expect("unfused");
+            let got = fused.run(SimInput::Codes(&x)).expect("fused");
+            assert_eq!(got, want, "{} image {seed}", q.name);
+        }
+    }
+}
