@@ -167,3 +167,25 @@ fn fused_schedule_simulates_bit_identically() {
         }
     }
 }
+
+/// The picture draws the demo's ring as a ring, the report prints both
+/// bounds, and JSON carries them.
+#[test]
+fn svg_and_report_show_rings_and_both_bounds() {
+    let q = demo();
+    let p = planned(q, true);
+    let svg = plan::render_svg(q, &p).expect("svg");
+    assert!(svg.contains("ring 2/32 rows"), "ring label");
+    assert!(svg.contains("unfused 72.0 KiB"), "title");
+    let r = plan::report(q, &p, None);
+    let text = r.to_string();
+    assert!(text.contains("unfused           73728 B"), "{text}");
+    assert!(
+        text.contains("`t1.conv` ring 2/32 rows (1536 of 24576 B)"),
+        "{text}"
+    );
+    let json = serde_json::to_value(&r).expect("json");
+    assert_eq!(json["unfused_bound"], 73_728);
+    assert_eq!(json["lower_bound"], p.lower_bound);
+    assert_eq!(json["pipelines"][0]["rings"][0]["rows"], 2);
+}
