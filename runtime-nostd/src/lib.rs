@@ -45,6 +45,18 @@
 //! front ([`MapRef::fits`], [`MapRef::is_disjoint`]) and returns an
 //! [`Error`] instead of writing anything when they are wrong.
 //!
+//! # Rings of rows (row streaming)
+//!
+//! A [`MapRef::ring`] stores only `rows` of its `h` rows, row `y` in slot
+//! `y mod rows`. Convolution (every form), max and average pooling,
+//! [`add`] and [`channel_transform`] compute output rows `[y0, y1)` only
+//! when asked ([`conv2d_rows`], `checked::*::run_rows`), so a producer and
+//! its consumer can run row by row through a ring just large enough for
+//! the consumer's window: the large map between them is never stored
+//! whole. `rows == h` is the whole map, and every call on whole maps is
+//! unchanged. Linear layers, global pooling and the input/output copies
+//! take whole maps only.
+//!
 //! Aliasing rules: convolution, linear and pooling outputs must not share
 //! elements with their inputs (interleaved channel views of one region are
 //! fine; pooling in place is **not** supported). [`add`] may write in place:
