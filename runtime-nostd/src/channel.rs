@@ -88,9 +88,8 @@ pub(crate) fn transform_run(arena: &mut [i8], a: &TransformArgs<'_>, y0: usize, 
     let (input, output, t) = (a.input, a.output, &a.t);
     let y1 = if y1 < input.h { y1 } else { input.h };
     for y in y0..y1 {
-        let (ri, ro) = (input.row(y), output.row(y));
         for x in 0..input.w {
-            let (src, dst) = (ri + x * input.stride, ro + x * output.stride);
+            let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
             for ch in 0..input.c {
                 // Read before write: element-wise, so in place is exact.
                 let Some(&v) = arena.get(src + ch) else {
@@ -151,8 +150,9 @@ pub(crate) fn copy_run(arena: &mut [i8], &(input, output): &(MapRef, MapRef)) {
     }
     let c = input.c;
     for y in 0..input.h {
+        let (ri, ro) = (input.row(y), output.row(y));
         for x in 0..input.w {
-            let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
+            let (src, dst) = (ri + x * input.stride, ro + x * output.stride);
             // The maps share no element ([`check_copy`]), so the pixel
             // that starts later starts after the other one ends: the
             // arena splits there into the source and the destination.

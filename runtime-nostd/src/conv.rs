@@ -865,10 +865,12 @@ fn conv_pixels<W: Wt, const F: u8>(
         return;
     }
     for oy in y0..y1 {
+        // Row bases once per row (a ring's slot costs a division).
+        let (in_row, out_row) = (input.row(oy), output.row(oy));
         for ox in 0..output.w {
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
-                let src = input.pixel(oy, ox);
+                let src = in_row + ox * input.stride;
                 let Some(s) = arena.get(src..src + c_in) else {
                     return;
                 };
@@ -918,7 +920,7 @@ fn conv_pixels<W: Wt, const F: u8>(
                     arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch,
                 );
             }
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             let Some(out) = arena.get_mut(dst..dst + output.c) else {
                 return;
             };
@@ -1284,20 +1286,28 @@ fn conv_rows<T: Packed>(
     ) else {
         return;
     };
+    // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh. A
+    // call (a whole map, or a row pipeline's rows from y0) first fills the
+    // kh − 1 rows above its first output row's last one; then each output
+    // row brings in one new input row (and y0 is not kept in a register
+    // through the loop).
+    for yy in y0..y0 + w.kh - 1 {
+        let slot = yy % kh;
+        let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
+            return;
+        };
+        fill_row(arena, input, w, p.input_zp, transform, yy, dst);
+    }
     for oy in y0..y1 {
-        // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh.
-        // Going down one output row brings in one new input row; a call
-        // that starts at row y0 (a row pipeline's) fills all kh first.
-        let first = if oy == y0 { oy } else { oy + w.kh - 1 };
-        for yy in first..oy + w.kh {
-            let slot = yy % kh;
-            let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
-                return;
-            };
-            fill_row(arena, input, w, p.input_zp, transform, yy, dst);
-        }
+        let yy = oy + w.kh - 1;
+        let slot = yy % kh;
+        let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
+            return;
+        };
+        fill_row(arena, input, w, p.input_zp, transform, yy, dst);
+        let out_row = output.row(oy);
         for ox in 0..output.w {
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             let Some(out) = arena.get_mut(dst..dst + m) else {
                 return;
             };
@@ -1370,8 +1380,9 @@ fn fill_row(
         return;
     };
     tail.fill(pad_value as i16);
+    let base = input.row(iy);
     for (ix, d) in body.chunks_exact_mut(c.max(1)).enumerate() {
-        let src = input.pixel(iy, ix);
+        let src = base + ix * input.stride;
         let Some(s) = arena.get(src..src + c) else {
             return;
         };
@@ -1454,6 +1465,7 @@ fn gather_columns(
     for ky in 0..w.kh {
         let yy = base_y + ky * w.dilation_y;
         let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
+        let row = if row_in { input.row(yy - w.pad.top) } else { 0 };
         for kx in kx0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
@@ -1464,7 +1476,7 @@ fn gather_columns(
                 dst.fill(pad_value as i16);
                 continue;
             }
-            let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
+            let src = row + (xx - w.pad.left) * input.stride;
             let Some(s) = arena.get(src..src + c) else {
                 return;
             };
@@ -1516,7 +1528,7 @@ fn gather(
                 return;
             };
             if row_in {
-                let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
+                let src = input.row(yy - w.pad.top) + (base_x - w.pad.left) * input.stride;
                 let Some(s) = arena.get(src..src + run) else {
                     return;
                 };
@@ -1527,12 +1539,13 @@ fn gather(
             continue;
         }
         // Grouped convolutions (groups > 1).
+        let row = if row_in { input.row(yy - w.pad.top) } else { 0 };
         for kx in 0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
             let inside = row_in && xx >= w.pad.left && xx - w.pad.left < input.w;
             let src = if inside {
-                input.pixel(yy - w.pad.top, xx - w.pad.left)
+                row + (xx - w.pad.left) * input.stride
             } else {
                 0
             };

@@ -189,8 +189,9 @@ pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize)
     let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
     let y1 = if y1 < output.h { y1 } else { output.h };
     for oy in y0..y1 {
+        let out_row = output.row(oy);
         for ox in 0..output.w {
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             for ch in 0..input.c {
                 let mut m: i32 = i32::MIN;
                 for ky in 0..w.kh {
@@ -254,8 +255,9 @@ pub(crate) fn avg_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize)
     let n = w.taps() as i64;
     let y1 = if y1 < output.h { y1 } else { output.h };
     for oy in y0..y1 {
+        let out_row = output.row(oy);
         for ox in 0..output.w {
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             for ch in 0..input.c {
                 let mut s: i32 = 0;
                 for ky in 0..w.kh {
