@@ -189,3 +189,44 @@ fn svg_and_report_show_rings_and_both_bounds() {
     assert_eq!(json["lower_bound"], p.lower_bound);
     assert_eq!(json["pipelines"][0]["rings"][0]["rows"], 2);
 }
+
+/// Prints the pipelines of the 121-layer network (`--nocapture`), for the
+/// documentation; asserts the pipelines the docs name: the stem, two of
+/// the three transitions (the second one's does not lower the live bytes
+/// at its time, so the planner leaves it), and every dense layer's 1×1
+/// bottleneck into its 3×3 convolution (58 layers, Huang et al. 2017,
+/// table 1: 6 + 12 + 24 + 16).
+#[test]
+fn densenet121_streams_its_stem_and_transitions() {
+    let q = zoo_net("densenet121");
+    let p = planned(q, true);
+    let mut stem = false;
+    let mut pools = 0;
+    let mut bottlenecks = 0;
+    for pl in &p.pipelines {
+        let names: Vec<&str> = pl.steps.iter().map(|&s| q.step(s).name.as_str()).collect();
+        let rings: Vec<String> = pl
+            .rings
+            .iter()
+            .map(|r| format!("{}/{}", r.rows, q.map(r.map).shape.h))
+            .collect();
+        println!("{names:?} {rings:?}");
+        let kinds: Vec<&str> = pl.steps.iter().map(|&s| q.step(s).kernel.kind()).collect();
+        if kinds == ["conv2d", "max_pool"] && pl.rings[0].rows == 3 {
+            stem = true;
+        }
+        if kinds.last() == Some(&"avg_pool") {
+            pools += 1;
+        }
+        if kinds == ["pointwise", "conv2d"] && pl.rings[0].rows == 3 {
+            bottlenecks += 1;
+        }
+    }
+    assert!(
+        stem,
+        "the stem's 7×7/2 conv streams into the 3×3/2 max pool"
+    );
+    assert_eq!(pools, 2, "transitions streamed into their average pooling");
+    assert_eq!(bottlenecks, 58);
+    assert_eq!(p.pipelines.len(), 61);
+}
