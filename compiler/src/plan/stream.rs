@@ -24,7 +24,7 @@
 //! position), so every map any of them touches is alive together, a ring
 //! with its `rows · w · c` bytes. The planner keeps an edge when it does
 //! not raise the plan's peak and lowers the live bytes at the pipeline's
-//! time ([`choose`]).
+//! time.
 //!
 //! Not streamed: a paired or word-form convolution that reads its input
 //! through its own ring of `kh > 1` rows in the patch scratch
