@@ -3,6 +3,10 @@
 //! `cargo run --release -p ingot-compiler --example bench_plan [SVG_DIR]`
 //!
 //! With `SVG_DIR`, also writes `<network>.svg` pictures of every plan.
+//!
+//! `unfused bd.` is the lower bound with every map stored whole (the plan
+//! without row streaming); `arena` and `lower bd.` are the fused plan's,
+//! `pipes`/`rings` what it streams.
 
 use ingot_compiler::lower::QGraph;
 use ingot_compiler::plan::{self, PlanOptions};
@@ -33,12 +37,15 @@ fn row(q: &QGraph, svg: Option<&std::path::Path>) {
         .expect("svg written");
     }
     println!(
-        "| {:<20} | {:>4} | {:>5} | {:>10} | {:>10} | {:>6.4} | {:>11} | {:>10} | {:>6.1}% | {:>10} | {:>10} | {:>9.2} |",
+        "| {:<25} | {:>4} | {:>5} | {:>11} | {:>10} | {:>10} | {:>5} | {:>5} | {:>6.4} | {:>11} | {:>10} | {:>6.1}% | {:>10} | {:>10} | {:>9.2} |",
         q.name,
         q.maps.len(),
         q.steps.len(),
+        p.unfused_bound,
         p.arena_bytes,
         p.lower_bound,
+        p.pipelines.len(),
+        p.pipelines.iter().map(|x| x.rings.len()).sum::<usize>(),
         p.ratio(),
         p.naive_bytes,
         p.copying_bytes,
@@ -50,8 +57,8 @@ fn row(q: &QGraph, svg: Option<&std::path::Path>) {
 }
 
 fn main() {
-    println!("| network              | maps | steps |      arena |  lower bd. |  ratio |       naive |    copying | in-pl/cp | peak file  | peak order |   plan ms |");
-    println!("|----------------------|-----:|------:|-----------:|-----------:|-------:|------------:|-----------:|---------:|-----------:|-----------:|----------:|");
+    println!("| network                   | maps | steps | unfused bd. |      arena |  lower bd. | pipes | rings |  ratio |       naive |    copying | in-pl/cp | peak file  | peak order |   plan ms |");
+    println!("|---------------------------|-----:|------:|------------:|-----------:|-----------:|------:|------:|-------:|------------:|-----------:|---------:|-----------:|-----------:|----------:|");
     let svg = std::env::args().nth(1).map(std::path::PathBuf::from);
     for q in synth::zoo_lowered().iter().chain(&synth::test_set()) {
         row(q, svg.as_deref());

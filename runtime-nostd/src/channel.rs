@@ -21,7 +21,21 @@ pub fn channel_transform(
     t: &InputTransform<'_>,
 ) -> Result<(), Error> {
     let a = check_transform(arena.len(), input, output, *t)?;
-    transform_run(arena, &a);
+    transform_run(arena, &a, 0, usize::MAX);
+    Ok(())
+}
+
+/// [`channel_transform`] for rows `[rows.0, rows.1)` only (clipped), for
+/// a row pipeline; either map may be a ring.
+pub fn channel_transform_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    t: &InputTransform<'_>,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let a = check_transform(arena.len(), input, output, *t)?;
+    transform_run(arena, &a, rows.0, rows.1);
     Ok(())
 }
 
@@ -68,10 +82,12 @@ pub(crate) const fn check_transform<'a>(
     Ok(TransformArgs { input, output, t })
 }
 
-/// Runs a checked channel transform.
-pub(crate) fn transform_run(arena: &mut [i8], a: &TransformArgs<'_>) {
+/// Runs a checked channel transform for rows `[y0, y1)` (`y1` clipped to
+/// the height).
+pub(crate) fn transform_run(arena: &mut [i8], a: &TransformArgs<'_>, y0: usize, y1: usize) {
     let (input, output, t) = (a.input, a.output, &a.t);
-    for y in 0..input.h {
+    let y1 = if y1 < input.h { y1 } else { input.h };
+    for y in y0..y1 {
         for x in 0..input.w {
             let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
             for ch in 0..input.c {
@@ -134,8 +150,9 @@ pub(crate) fn copy_run(arena: &mut [i8], &(input, output): &(MapRef, MapRef)) {
     }
     let c = input.c;
     for y in 0..input.h {
+        let (ri, ro) = (input.row(y), output.row(y));
         for x in 0..input.w {
-            let (src, dst) = (input.pixel(y, x), output.pixel(y, x));
+            let (src, dst) = (ri + x * input.stride, ro + x * output.stride);
             // The maps share no element ([`check_copy`]), so the pixel
             // that starts later starts after the other one ends: the
             // arena splits there into the source and the destination.

@@ -104,7 +104,14 @@ impl<'a, const A: usize, const P: usize> Conv2d<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_int8(arena, &self.0, patch);
+        conv_run_int8(arena, &self.0, patch, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail. Rows of a ring input must
+    /// be in their slots.
+    pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
+        conv_run_int8(arena, &self.0, patch, y0, y1);
     }
 }
 
@@ -134,7 +141,14 @@ impl<'a, const A: usize, const P: usize> Conv2dPaired<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_pairs(arena, &self.0, patch);
+        conv_run_pairs(arena, &self.0, patch, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail. Rows of a ring input must
+    /// be in their slots.
+    pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
+        conv_run_pairs(arena, &self.0, patch, y0, y1);
     }
 }
 
@@ -164,7 +178,14 @@ impl<'a, const A: usize, const P: usize> Conv2dWords<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_words(arena, &self.0, patch);
+        conv_run_words(arena, &self.0, patch, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail. Rows of a ring input must
+    /// be in their slots.
+    pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
+        conv_run_words(arena, &self.0, patch, y0, y1);
     }
 }
 
@@ -247,7 +268,13 @@ impl<const A: usize> MaxPool2d<A> {
 
     /// The pooling; cannot fail.
     pub fn run(&self, arena: &mut [i8; A]) {
-        max_pool_run(arena, &self.0);
+        max_pool_run(arena, &self.0, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail.
+    pub fn run_rows(&self, arena: &mut [i8; A], y0: usize, y1: usize) {
+        max_pool_run(arena, &self.0, y0, y1);
     }
 }
 
@@ -272,7 +299,13 @@ impl<const A: usize> AvgPool2d<A> {
 
     /// The pooling; cannot fail.
     pub fn run(&self, arena: &mut [i8; A]) {
-        avg_pool_run(arena, &self.0);
+        avg_pool_run(arena, &self.0, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail.
+    pub fn run_rows(&self, arena: &mut [i8; A], y0: usize, y1: usize) {
+        avg_pool_run(arena, &self.0, y0, y1);
     }
 }
 
@@ -311,7 +344,13 @@ impl<const A: usize> Add<A> {
 
     /// The addition; cannot fail.
     pub fn run(&self, arena: &mut [i8; A]) {
-        add_run(arena, &self.0);
+        add_run(arena, &self.0, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail.
+    pub fn run_rows(&self, arena: &mut [i8; A], y0: usize, y1: usize) {
+        add_run(arena, &self.0, y0, y1);
     }
 }
 
@@ -351,7 +390,13 @@ impl<'a, const A: usize> ChannelTransform<'a, A> {
 
     /// The transform; cannot fail.
     pub fn run(&self, arena: &mut [i8; A]) {
-        transform_run(arena, &self.0);
+        transform_run(arena, &self.0, 0, usize::MAX);
+    }
+
+    /// Output rows `[y0, y1)` only (clipped to the output; nothing when
+    /// empty), for a row pipeline; cannot fail.
+    pub fn run_rows(&self, arena: &mut [i8; A], y0: usize, y1: usize) {
+        transform_run(arena, &self.0, y0, y1);
     }
 }
 

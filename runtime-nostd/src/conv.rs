@@ -481,6 +481,7 @@ pub fn conv2d(
         p,
         transform,
         patch,
+        (0, usize::MAX),
     )
 }
 
@@ -518,6 +519,7 @@ pub fn conv2d_paired(
         p,
         transform,
         patch,
+        (0, usize::MAX),
     )
 }
 
@@ -555,6 +557,73 @@ pub fn conv2d_words(
         p,
         transform,
         patch,
+        (0, usize::MAX),
+    )
+}
+
+/// [`conv2d`] for output rows `[y0, y1)` only (clipped to the output's
+/// height), for a row pipeline: `input` and `output` may be rings
+/// ([`MapRef::ring`]) holding the rows these output rows read and write.
+/// Same bytes in those rows as [`conv2d`].
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[i8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let w = Rows::Bytes(weights);
+    check_and_run(
+        arena, input, output, w, bias, requant, p, transform, patch, rows,
+    )
+}
+
+/// [`conv2d_paired`] for output rows `[rows.0, rows.1)` only, as
+/// [`conv2d_rows`]. With its ring of input rows in `patch`, a call that
+/// starts mid-map fills all `kh` rows of it first.
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_paired_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u32],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let w = Rows::Pairs(weights);
+    check_and_run(
+        arena, input, output, w, bias, requant, p, transform, patch, rows,
+    )
+}
+
+/// [`conv2d_words`] for output rows `[rows.0, rows.1)` only, as
+/// [`conv2d_paired_rows`].
+#[allow(clippy::too_many_arguments)]
+pub fn conv2d_words_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    weights: &[u8],
+    bias: &[i32],
+    requant: &[Requant],
+    p: &ConvParams,
+    transform: Option<&InputTransform<'_>>,
+    patch: &mut [i16],
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let w = Rows::Words(weights);
+    check_and_run(
+        arena, input, output, w, bias, requant, p, transform, patch, rows,
     )
 }
 
@@ -571,6 +640,7 @@ fn check_and_run(
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
     patch: &mut [i16],
+    out_rows: (usize, usize),
 ) -> Result<(), Error> {
     let a = check_conv(
         arena.len(),
@@ -583,15 +653,21 @@ fn check_and_run(
         *p,
         transform.copied(),
     )?;
-    conv_run(arena, &a, patch);
+    conv_run(arena, &a, patch, out_rows.0, out_rows.1);
     Ok(())
 }
 
 /// Runs a checked convolution. Every slice is taken with `get`: after
 /// [`check_conv`] none of them can be out of range, and the early returns
 /// (which cannot happen) are what leaves no panic path in the binary.
-pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::ANY }>(arena, a, patch);
+pub(crate) fn conv_run(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::ANY }>(arena, a, patch, y0, y1);
 }
 
 /// [`conv_run`] for the int8 forms only ([`crate::checked::Conv2d`]).
@@ -600,20 +676,38 @@ pub(crate) fn conv_run(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
 /// runs a checked call (a generated module would otherwise carry, and
 /// rustc optimise, its own copy of every kernel).
 #[inline(never)]
-pub(crate) fn conv_run_int8(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch);
+pub(crate) fn conv_run_int8(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch, y0, y1);
 }
 
 /// [`conv_run`] for the paired form only.
 #[inline(never)]
-pub(crate) fn conv_run_pairs(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::PAIRS }>(arena, a, patch);
+pub(crate) fn conv_run_pairs(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::PAIRS }>(arena, a, patch, y0, y1);
 }
 
 /// [`conv_run`] for the word form only.
 #[inline(never)]
-pub(crate) fn conv_run_words(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
-    conv_run_forms::<{ forms::WORDS }>(arena, a, patch);
+pub(crate) fn conv_run_words(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    conv_run_forms::<{ forms::WORDS }>(arena, a, patch, y0, y1);
 }
 
 /// Which weight forms a [`conv_run_forms`] instance handles (bit set).
@@ -634,8 +728,22 @@ pub(crate) mod forms {
 /// call type runs the instance of its own forms, so a firmware links the
 /// kernels of the forms its module uses and not the others (the match on
 /// the stored form cannot be decided at link time).
-fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [i16]) {
+///
+/// Only output rows `[y0, y1)` are computed (`y1` clipped to the output's
+/// height): a row pipeline calls a step for the rows its consumer needs
+/// next.
+fn conv_run_forms<const F: u8>(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
     let (input, output, p) = (a.input, a.output, &a.p);
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    if y0 >= y1 {
+        return;
+    }
     let transform = a.transform.as_ref();
     let (bias, requant) = (a.bias, a.requant);
     let w = &p.window;
@@ -653,13 +761,13 @@ fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [
     match (a.rows, a.ring) {
         (Rows::Pairs(pw), true) if F & forms::PAIRS != 0 => {
             conv_rows(
-                arena, &input, &output, pw, bias, requant, p, transform, patch,
+                arena, &input, &output, pw, bias, requant, p, transform, patch, y0, y1,
             );
             return;
         }
         (Rows::Words(ww), true) if F & forms::WORDS != 0 => {
             conv_rows(
-                arena, &input, &output, ww, bias, requant, p, transform, patch,
+                arena, &input, &output, ww, bias, requant, p, transform, patch, y0, y1,
             );
             return;
         }
@@ -674,23 +782,23 @@ fn conv_run_forms<const F: u8>(arena: &mut [i8], a: &ConvArgs<'_>, patch: &mut [
     match a.rows {
         Rows::Bytes(wb) if F & forms::BYTES != 0 => {
             if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
-                conv_pixels::<i8, F>(arena, a, x, wv);
+                conv_pixels::<i8, F>(arena, a, x, wv, y0, y1);
             }
         }
         Rows::File(wb) if F & forms::FILE != 0 => {
             if let (Some(x), Some(wv)) = (patch.get_mut(..taps * c_in), wb.get(..n)) {
-                conv_pixels::<u8, F>(arena, a, x, wv);
+                conv_pixels::<u8, F>(arena, a, x, wv, y0, y1);
             }
         }
         Rows::Pairs(_) if F & forms::PAIRS != 0 => {
             if let Some(x) = patch.get_mut(..seg.div_ceil(2) * 2) {
-                conv_pixels::<u8, F>(arena, a, x, &[]);
+                conv_pixels::<u8, F>(arena, a, x, &[], y0, y1);
             }
         }
         // The word kernels pad the last quad themselves.
         Rows::Words(_) if F & forms::WORDS != 0 => {
             if let Some(x) = patch.get_mut(..seg) {
-                conv_pixels::<u8, F>(arena, a, x, &[]);
+                conv_pixels::<u8, F>(arena, a, x, &[], y0, y1);
             }
         }
         _ => {}
@@ -705,6 +813,8 @@ fn conv_pixels<W: Wt, const F: u8>(
     a: &ConvArgs<'_>,
     patch: &mut [i16],
     weights: &[W],
+    y0: usize,
+    y1: usize,
 ) {
     let (input, output, p) = (a.input, a.output, &a.p);
     let transform = a.transform.as_ref();
@@ -754,11 +864,13 @@ fn conv_pixels<W: Wt, const F: u8>(
     if run == 0 || taps == 0 || (opg == 0 && output.c > 0) {
         return;
     }
-    for oy in 0..output.h {
+    for oy in y0..y1 {
+        // Row bases once per row (a ring's slot costs a division).
+        let (in_row, out_row) = (input.row(oy), output.row(oy));
         for ox in 0..output.w {
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
-                let src = input.pixel(oy, ox);
+                let src = in_row + ox * input.stride;
                 let Some(s) = arena.get(src..src + c_in) else {
                     return;
                 };
@@ -808,7 +920,7 @@ fn conv_pixels<W: Wt, const F: u8>(
                     arena, &input, w, p, transform, p.groups, oy, ox, cpg, seg, patch,
                 );
             }
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             let Some(out) = arena.get_mut(dst..dst + output.c) else {
                 return;
             };
@@ -1138,6 +1250,8 @@ fn conv_rows<T: Packed>(
     p: &ConvParams,
     transform: Option<&InputTransform<'_>>,
     ring: &mut [i16],
+    y0: usize,
+    y1: usize,
 ) {
     let w = &p.window;
     let c = input.c;
@@ -1172,19 +1286,28 @@ fn conv_rows<T: Packed>(
     ) else {
         return;
     };
-    for oy in 0..output.h {
-        // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh.
-        // Going down one output row brings in one new input row.
-        let first = if oy == 0 { 0 } else { oy + w.kh - 1 };
-        for yy in first..oy + w.kh {
-            let slot = yy % kh;
-            let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
-                return;
-            };
-            fill_row(arena, input, w, p.input_zp, transform, yy, dst);
-        }
+    // Padded rows oy..oy+kh are needed; row yy lives in slot yy % kh. A
+    // call (a whole map, or a row pipeline's rows from y0) first fills the
+    // kh − 1 rows above its first output row's last one; then each output
+    // row brings in one new input row (and y0 is not kept in a register
+    // through the loop).
+    for yy in y0..y0 + w.kh - 1 {
+        let slot = yy % kh;
+        let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
+            return;
+        };
+        fill_row(arena, input, w, p.input_zp, transform, yy, dst);
+    }
+    for oy in y0..y1 {
+        let yy = oy + w.kh - 1;
+        let slot = yy % kh;
+        let Some(dst) = ring.get_mut(slot * row_len..(slot + 1) * row_len) else {
+            return;
+        };
+        fill_row(arena, input, w, p.input_zp, transform, yy, dst);
+        let out_row = output.row(oy);
         for ox in 0..output.w {
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             let Some(out) = arena.get_mut(dst..dst + m) else {
                 return;
             };
@@ -1257,8 +1380,9 @@ fn fill_row(
         return;
     };
     tail.fill(pad_value as i16);
+    let base = input.row(iy);
     for (ix, d) in body.chunks_exact_mut(c.max(1)).enumerate() {
-        let src = input.pixel(iy, ix);
+        let src = base + ix * input.stride;
         let Some(s) = arena.get(src..src + c) else {
             return;
         };
@@ -1341,6 +1465,7 @@ fn gather_columns(
     for ky in 0..w.kh {
         let yy = base_y + ky * w.dilation_y;
         let row_in = yy >= w.pad.top && yy - w.pad.top < input.h;
+        let row = if row_in { input.row(yy - w.pad.top) } else { 0 };
         for kx in kx0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
@@ -1351,7 +1476,7 @@ fn gather_columns(
                 dst.fill(pad_value as i16);
                 continue;
             }
-            let src = input.pixel(yy - w.pad.top, xx - w.pad.left);
+            let src = row + (xx - w.pad.left) * input.stride;
             let Some(s) = arena.get(src..src + c) else {
                 return;
             };
@@ -1403,7 +1528,7 @@ fn gather(
                 return;
             };
             if row_in {
-                let src = input.pixel(yy - w.pad.top, base_x - w.pad.left);
+                let src = input.row(yy - w.pad.top) + (base_x - w.pad.left) * input.stride;
                 let Some(s) = arena.get(src..src + run) else {
                     return;
                 };
@@ -1414,12 +1539,13 @@ fn gather(
             continue;
         }
         // Grouped convolutions (groups > 1).
+        let row = if row_in { input.row(yy - w.pad.top) } else { 0 };
         for kx in 0..w.kw {
             let t = ky * w.kw + kx;
             let xx = base_x + kx * w.dilation_x;
             let inside = row_in && xx >= w.pad.left && xx - w.pad.left < input.w;
             let src = if inside {
-                input.pixel(yy - w.pad.top, xx - w.pad.left)
+                row + (xx - w.pad.left) * input.stride
             } else {
                 0
             };

@@ -116,7 +116,22 @@ pub fn add(
     p: &AddParams,
 ) -> Result<(), Error> {
     let args = check_add(arena.len(), a, b, output, *p)?;
-    add_run(arena, &args);
+    add_run(arena, &args, 0, usize::MAX);
+    Ok(())
+}
+
+/// [`add`] for rows `[rows.0, rows.1)` only (clipped), for a row
+/// pipeline; any of the maps may be a ring.
+pub fn add_rows(
+    arena: &mut [i8],
+    a: MapRef,
+    b: MapRef,
+    output: MapRef,
+    p: &AddParams,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let args = check_add(arena.len(), a, b, output, *p)?;
+    add_run(arena, &args, rows.0, rows.1);
     Ok(())
 }
 
@@ -162,15 +177,23 @@ pub(crate) const fn check_add(
 
 /// `x == y` for maps, in a `const fn`.
 pub(crate) const fn same(x: &MapRef, y: &MapRef) -> bool {
-    x.offset == y.offset && x.h == y.h && x.w == y.w && x.c == y.c && x.stride == y.stride
+    x.offset == y.offset
+        && x.h == y.h
+        && x.w == y.w
+        && x.c == y.c
+        && x.stride == y.stride
+        && x.rows == y.rows
 }
 
-/// Runs a checked addition.
-pub(crate) fn add_run(arena: &mut [i8], args: &AddArgs) {
+/// Runs a checked addition for rows `[y0, y1)` (`y1` clipped to the
+/// height).
+pub(crate) fn add_run(arena: &mut [i8], args: &AddArgs, y0: usize, y1: usize) {
     let (a, b, output, p) = (args.a, args.b, args.output, &args.p);
-    for y in 0..a.h {
+    let y1 = if y1 < a.h { y1 } else { a.h };
+    for y in y0..y1 {
+        let (ra, rb, ro) = (a.row(y), b.row(y), output.row(y));
         for x in 0..a.w {
-            let (pa, pb, po) = (a.pixel(y, x), b.pixel(y, x), output.pixel(y, x));
+            let (pa, pb, po) = (ra + x * a.stride, rb + x * b.stride, ro + x * output.stride);
             for ch in 0..a.c {
                 let (Some(&va), Some(&vb)) = (arena.get(pa + ch), arena.get(pb + ch)) else {
                     return;

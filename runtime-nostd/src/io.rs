@@ -30,6 +30,10 @@ pub(crate) const fn check_pixels(
     if let Err(e) = output.check(arena_len) {
         return Err(e);
     }
+    // Pixels are addressed as one run: whole maps only.
+    if output.is_ring() {
+        return Err(Error::BadParams);
+    }
     match output.c.checked_mul(256) {
         Some(t) if pixels_len >= output.len() && table.len() >= t => Ok(()),
         _ => Err(Error::BufferTooSmall),
@@ -77,6 +81,10 @@ pub fn copy_in(src: &[i8], arena: &mut [i8], output: MapRef) -> Result<(), Error
 pub(crate) const fn check_io(arena_len: usize, dense_len: usize, map: MapRef) -> Result<(), Error> {
     if let Err(e) = map.check(arena_len) {
         return Err(e);
+    }
+    // Pixels are addressed as one run: whole maps only.
+    if map.is_ring() {
+        return Err(Error::BadParams);
     }
     if dense_len < map.len() {
         return Err(Error::BufferTooSmall);

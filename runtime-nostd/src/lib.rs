@@ -45,6 +45,18 @@
 //! front ([`MapRef::fits`], [`MapRef::is_disjoint`]) and returns an
 //! [`Error`] instead of writing anything when they are wrong.
 //!
+//! # Rings of rows (row streaming)
+//!
+//! A [`MapRef::ring`] stores only `rows` of its `h` rows, row `y` in slot
+//! `y mod rows`. Convolution (every form), max and average pooling,
+//! [`add`] and [`channel_transform`] compute output rows `[y0, y1)` only
+//! when asked ([`conv2d_rows`], `checked::*::run_rows`), so a producer and
+//! its consumer can run row by row through a ring just large enough for
+//! the consumer's window: the large map between them is never stored
+//! whole. `rows == h` is the whole map, and every call on whole maps is
+//! unchanged. Linear layers, global pooling and the input/output copies
+//! take whole maps only.
+//!
 //! Aliasing rules: convolution, linear and pooling outputs must not share
 //! elements with their inputs (interleaved channel views of one region are
 //! fine; pooling in place is **not** supported). [`add`] may write in place:
@@ -201,13 +213,14 @@ mod pool;
 mod requant;
 mod transform;
 
-pub use channel::{channel_transform, copy_channels};
+pub use channel::{channel_transform, channel_transform_rows, copy_channels};
 pub use conv::{
-    conv2d, conv2d_paired, conv2d_words, conv_patch_len, conv_rows_apply, conv_rows_apply_words,
-    conv_rows_len, pair_rows, pair_rows_into, paired_len, window_out_len, word_rows_into,
-    words_len, ConvParams, Padding, Window,
+    conv2d, conv2d_paired, conv2d_paired_rows, conv2d_rows, conv2d_words, conv2d_words_rows,
+    conv_patch_len, conv_rows_apply, conv_rows_apply_words, conv_rows_len, pair_rows,
+    pair_rows_into, paired_len, window_out_len, word_rows_into, words_len, ConvParams, Padding,
+    Window,
 };
-pub use eltwise::{add, AddParams, ADD_LEFT_SHIFT};
+pub use eltwise::{add, add_rows, AddParams, ADD_LEFT_SHIFT};
 pub use error::Error;
 pub use frame::{
     convert_frame, FrameConfig, FrameError, FrameParams, Luma, PixelFormat, Resize, Roi,
@@ -215,7 +228,9 @@ pub use frame::{
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
 pub use linear::linear;
 pub use map::MapRef;
-pub use pool::{avg_pool2d, div_round, global_avg_pool, max_pool2d, PoolQuant};
+pub use pool::{
+    avg_pool2d, avg_pool2d_rows, div_round, global_avg_pool, max_pool2d, max_pool2d_rows, PoolQuant,
+};
 pub use requant::{
     acc_fits, acc_worst_case, sat_i8, OutputQuant, Requant, MAX_TOTAL_SHIFT, MIN_TOTAL_SHIFT,
 };

@@ -76,6 +76,10 @@ pub(crate) const fn check_linear<'a>(
     if let Err(e) = output.check(arena_len) {
         return Err(e);
     }
+    // The input is read as one run of pixels: whole maps only.
+    if input.is_ring() || output.is_ring() {
+        return Err(Error::BadParams);
+    }
     if !input.is_disjoint(&output) {
         return Err(Error::Overlap);
     }

@@ -8,6 +8,12 @@ use crate::Error;
 /// `stride >= c` is the *pixel stride*: the channel count of the region the
 /// map lives in. A plain map has `stride == c`; a view of some channels of a
 /// concatenation region has `stride == C_total` (see the crate docs).
+///
+/// A *ring* ([`MapRef::ring`]) stores only `rows` of its `h` rows: row `y`
+/// lives in slot `y mod rows`, so element `(y, x, ch)` is at
+/// `offset + ((y mod rows) * w + x) * stride + ch`. A producer writes rows
+/// into it just before a consumer that reads a window of a few rows needs
+/// them (row streaming). `rows == h` is the whole map.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub struct MapRef {
     /// Arena index of element `(0, 0, 0)`.
@@ -20,6 +26,8 @@ pub struct MapRef {
     pub c: usize,
     /// Distance in arena elements between two horizontally adjacent pixels.
     pub stride: usize,
+    /// Rows stored (`h` for a whole map, fewer for a ring).
+    pub rows: usize,
 }
 
 impl MapRef {
@@ -31,6 +39,7 @@ impl MapRef {
             w,
             c,
             stride: c,
+            rows: h,
         }
     }
 
@@ -42,7 +51,54 @@ impl MapRef {
             w,
             c,
             stride,
+            rows: h,
         }
+    }
+
+    /// A ring of `rows` rows of an `h`-row map with pixel stride `stride`
+    /// (see the type's docs); `rows >= h` is the whole map.
+    pub const fn ring(
+        offset: usize,
+        h: usize,
+        w: usize,
+        c: usize,
+        stride: usize,
+        rows: usize,
+    ) -> Self {
+        MapRef {
+            offset,
+            h,
+            w,
+            c,
+            stride,
+            rows: if rows < h { rows } else { h },
+        }
+    }
+
+    /// True when the view stores fewer rows than its height.
+    pub const fn is_ring(&self) -> bool {
+        self.rows < self.h
+    }
+
+    /// The stored slot of row `y`: `y` itself below `rows` (every row of a
+    /// whole map, no division), else `y mod rows`.
+    #[inline(always)]
+    pub const fn slot(&self, y: usize) -> usize {
+        if y < self.rows {
+            y
+        } else {
+            match y.checked_rem(self.rows) {
+                Some(r) => r,
+                None => 0,
+            }
+        }
+    }
+
+    /// Arena index of channel 0 of pixel `(y, 0)`: a row's base, computed
+    /// once per row by the kernels.
+    #[inline(always)]
+    pub const fn row(&self, y: usize) -> usize {
+        self.offset + self.slot(y) * self.w * self.stride
     }
 
     /// The view of channels `[first, first + count)` of this map, with the
@@ -55,6 +111,7 @@ impl MapRef {
             w: self.w,
             c: count,
             stride: self.stride,
+            rows: self.rows,
         }
     }
 
@@ -73,9 +130,11 @@ impl MapRef {
         self.len() == 0
     }
 
-    /// Arena index of channel 0 of pixel `(y, x)`.
+    /// Arena index of channel 0 of pixel `(y, x)` (row `y` in its slot for
+    /// a ring).
+    #[inline(always)]
     pub const fn pixel(&self, y: usize, x: usize) -> usize {
-        self.offset + (y * self.w + x) * self.stride
+        self.offset + (self.slot(y) * self.w + x) * self.stride
     }
 
     /// Arena index of element `(y, x, ch)`.
@@ -84,9 +143,14 @@ impl MapRef {
     }
 
     /// One past the largest arena index the view touches (`offset` when
-    /// empty), or `None` on arithmetic overflow.
+    /// empty; the stored rows of a ring), or `None` on arithmetic overflow.
     pub const fn end(&self) -> Option<usize> {
-        let px = match self.h.checked_mul(self.w) {
+        let rows = if self.rows < self.h {
+            self.rows
+        } else {
+            self.h
+        };
+        let px = match rows.checked_mul(self.w) {
             Some(p) => p,
             None => return None,
         };
@@ -103,10 +167,10 @@ impl MapRef {
         }
     }
 
-    /// True when `stride >= c` and every element lies inside an arena of
-    /// `arena_len` elements.
+    /// True when `stride >= c`, a ring stores at least one row, and every
+    /// stored element lies inside an arena of `arena_len` elements.
     pub const fn fits(&self, arena_len: usize) -> bool {
-        if self.stride < self.c {
+        if self.stride < self.c || (self.rows == 0 && self.h > 0) {
             return false;
         }
         match self.end() {
@@ -142,7 +206,8 @@ impl MapRef {
         false
     }
 
-    /// True when both views have the same height, width and channel count.
+    /// True when both views have the same height, width and channel count
+    /// (a ring has the shape of its whole map).
     pub const fn same_shape(&self, other: &MapRef) -> bool {
         self.h == other.h && self.w == other.w && self.c == other.c
     }

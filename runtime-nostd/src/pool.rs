@@ -98,6 +98,10 @@ pub(crate) const fn check_global_pool(
     if let Err(e) = check_pool(arena_len, &input, &output, &q) {
         return Err(e);
     }
+    // The sum walks the pixels as one run: whole maps only.
+    if input.is_ring() || output.is_ring() {
+        return Err(Error::BadParams);
+    }
     if output.h != 1 || output.w != 1 || input.pixels() == 0 {
         return Err(Error::ShapeMismatch);
     }
@@ -145,16 +149,49 @@ pub fn max_pool2d(
     q: &PoolQuant,
 ) -> Result<(), Error> {
     let a = check_window_pool(arena.len(), input, output, *window, *q)?;
-    max_pool_run(arena, &a);
+    max_pool_run(arena, &a, 0, usize::MAX);
     Ok(())
 }
 
-/// Runs a checked max pooling.
-pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs) {
+/// [`max_pool2d`] for output rows `[rows.0, rows.1)` only (clipped), for
+/// a row pipeline; `input` and `output` may be rings.
+pub fn max_pool2d_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    window: &Window,
+    q: &PoolQuant,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
+    max_pool_run(arena, &a, rows.0, rows.1);
+    Ok(())
+}
+
+/// [`avg_pool2d`] for output rows `[rows.0, rows.1)` only (clipped), for
+/// a row pipeline; `input` and `output` may be rings.
+pub fn avg_pool2d_rows(
+    arena: &mut [i8],
+    input: MapRef,
+    output: MapRef,
+    window: &Window,
+    q: &PoolQuant,
+    rows: (usize, usize),
+) -> Result<(), Error> {
+    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
+    avg_pool_run(arena, &a, rows.0, rows.1);
+    Ok(())
+}
+
+/// Runs a checked max pooling for output rows `[y0, y1)` (`y1` clipped to
+/// the output's height).
+pub(crate) fn max_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize) {
     let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
-    for oy in 0..output.h {
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    for oy in y0..y1 {
+        let out_row = output.row(oy);
         for ox in 0..output.w {
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             for ch in 0..input.c {
                 let mut m: i32 = i32::MIN;
                 for ky in 0..w.kh {
@@ -207,17 +244,20 @@ pub fn avg_pool2d(
     q: &PoolQuant,
 ) -> Result<(), Error> {
     let a = check_window_pool(arena.len(), input, output, *window, *q)?;
-    avg_pool_run(arena, &a);
+    avg_pool_run(arena, &a, 0, usize::MAX);
     Ok(())
 }
 
-/// Runs a checked average pooling.
-pub(crate) fn avg_pool_run(arena: &mut [i8], a: &PoolArgs) {
+/// Runs a checked average pooling for output rows `[y0, y1)` (`y1`
+/// clipped to the output's height).
+pub(crate) fn avg_pool_run(arena: &mut [i8], a: &PoolArgs, y0: usize, y1: usize) {
     let (input, output, w, q) = (a.input, a.output, &a.window, &a.q);
     let n = w.taps() as i64;
-    for oy in 0..output.h {
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    for oy in y0..y1 {
+        let out_row = output.row(oy);
         for ox in 0..output.w {
-            let dst = output.pixel(oy, ox);
+            let dst = out_row + ox * output.stride;
             for ch in 0..input.c {
                 let mut s: i32 = 0;
                 for ky in 0..w.kh {

@@ -42,6 +42,9 @@ pub struct Args {
     /// Camera frames in (adds `FRAME_BYTES` and `frame_to_input`).
     #[command(flatten)]
     pub camera: super::camera::CameraArgs,
+    /// Store every map whole: no row streaming (more RAM, to compare).
+    #[arg(long)]
+    pub no_stream: bool,
 }
 
 /// Compiles in memory, then writes all files into `--out` or none.
@@ -56,6 +59,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     req.module = args.module.clone();
     req.weight_form = args.weight_form;
     req.camera = args.camera.camera()?;
+    req.stream = !args.no_stream;
     let c = pipeline::compile(&req)?;
     super::print_warnings(&c.graph);
     output::write_all(&args.out, &c.files(&args.module), args.force)?;

@@ -118,6 +118,9 @@ pub struct Args {
     /// target's `[camera]`).
     #[command(flatten)]
     pub camera: super::camera::CameraArgs,
+    /// Store every map whole: no row streaming (more RAM, to compare).
+    #[arg(long)]
+    pub no_stream: bool,
 }
 
 /// Gates applied when `--max-drop` / `--min-agreement` are not given, so an
@@ -287,6 +290,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     opts.bias_correction = a.bias_correction;
     opts.equalize = a.equalize;
     opts.sensitivity = a.sensitivity;
+    opts.stream = !a.no_stream;
     let mut p = prepare::prepare(graph, images, &opts)?;
     p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)
         .map_err(|e| anyhow::anyhow!("--good: {}: {e}", graph.display()))?;

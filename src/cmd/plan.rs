@@ -40,6 +40,10 @@ pub struct Args {
     /// the --target core, else int8]
     #[arg(long)]
     pub weight_form: Option<WeightForm>,
+    /// Store every map whole: no row streaming (to compare with the fused
+    /// plan).
+    #[arg(long)]
+    pub no_stream: bool,
 }
 
 /// Lowers and plans through the driver, prints; fails when the plan does
@@ -61,7 +65,13 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     // The patch scratch depends on the kernels `build` will use for this
     // target (see `ingot build --weight-form`).
     let weight_form = driver::weight_form_for(args.weight_form, target.as_ref());
-    let (q, p) = driver::lower_and_plan(&g, &ranges, &LowerOptions::default(), weight_form)?;
+    let (q, p) = driver::lower_and_plan(
+        &g,
+        &ranges,
+        &LowerOptions::default(),
+        weight_form,
+        !args.no_stream,
+    )?;
     let report = plan::report(&q, &p, target.as_ref());
     if let Some(svg) = &args.svg {
         let picture = plan::render_svg(&q, &p)?;

@@ -34,13 +34,16 @@ fn plan_prints_and_checks_the_budget() {
         "{}\n{text}",
         String::from_utf8_lossy(&out.stderr)
     );
-    assert!(text.contains("arena            294912 B"), "{text}");
+    // Row streaming: the fused plan (figures of `bench_plan`), and the
+    // bound with every map whole beside it.
+    assert!(text.contains("arena            224256 B"), "{text}");
+    assert!(text.contains("unfused          294912 B"), "{text}");
     assert!(text.contains("ratio 1.0000"), "{text}");
     assert!(text.contains("  fits"), "{text}");
     assert!(std::fs::read_to_string(&svg).unwrap().starts_with("<svg"));
 
     let out = ingot!()
-        .args(["plan", "--json"])
+        .args(["plan", "--json", "--no-stream"])
         .arg(&path)
         .arg("--target")
         .arg(target("rp2040.toml"))
@@ -49,6 +52,8 @@ fn plan_prints_and_checks_the_budget() {
     assert!(!out.status.success());
     let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(json["arena_bytes"], 294912);
+    assert_eq!(json["unfused_bound"], 294912);
+    assert_eq!(json["pipelines"].as_array().map(Vec::len), Some(0));
     assert_eq!(json["budget"]["fits"], false);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(err.contains("RAM over by"), "{err}");

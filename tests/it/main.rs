@@ -13,5 +13,6 @@ mod cli_inspect;
 mod cli_plan;
 mod demo;
 mod demo_slices;
+mod demo_stream;
 mod digits_accuracy;
 mod separable_accuracy;

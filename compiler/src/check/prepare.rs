@@ -137,6 +137,9 @@ pub struct PrepareOptions {
     /// Measure the per-layer sensitivity on the checked images (`check
     /// --sensitivity`).
     pub sensitivity: bool,
+    /// Stream rows through rings where the planner finds it lowers the
+    /// RAM (default true; `check --no-stream` turns it off).
+    pub stream: bool,
 }
 
 impl Default for PrepareOptions {
@@ -151,6 +154,7 @@ impl Default for PrepareOptions {
             bias_correction: false,
             equalize: false,
             sensitivity: false,
+            stream: true,
         }
     }
 }
@@ -220,7 +224,7 @@ pub fn prepare(
     let lower_opts = LowerOptions {
         per_channel: opts.per_channel,
     };
-    let (q, p) = driver::lower_and_plan(&g, &sourced.ranges, &lower_opts, weight_form)
+    let (q, p) = driver::lower_and_plan(&g, &sourced.ranges, &lower_opts, weight_form, opts.stream)
         .map_err(PrepareError::from_driver)?;
     let sensitivity = if opts.sensitivity {
         Some(
@@ -392,7 +396,12 @@ fn compare_data(
                 image: i,
                 step: k,
                 name: q.map(om).name.clone(),
-                data: sim.map_hwc(om),
+                // The module traces a map it stores as a ring as empty.
+                data: if s.ring_rows(om).is_some() {
+                    Vec::new()
+                } else {
+                    sim.map_hwc(om)
+                },
             });
             if let Some(f) = &float_maps[want[k].index()] {
                 let d = sim.map_chw_f32(om);

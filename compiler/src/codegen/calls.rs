@@ -89,7 +89,8 @@ pub struct StepCalls<'a> {
 pub fn map_ref(q: &QGraph, s: &Schedule, m: crate::lower::QMapId) -> MapRef {
     let sh = q.map(m).shape;
     let v = s.views[m.index()];
-    MapRef::strided(v.offset, sh.h, sh.w, sh.c, v.stride)
+    let rows = s.ring_rows(m).unwrap_or(sh.h);
+    MapRef::ring(v.offset, sh.h, sh.w, sh.c, v.stride, rows)
 }
 
 /// `ingot_rt::Requant` of a multiplier.
@@ -332,6 +333,7 @@ pub fn run_call(
     call: &Call<'_>,
     arena: &mut [i8],
     patch: &mut [i16],
+    rows: (usize, usize),
 ) -> Result<(), ingot_rt::Error> {
     match call {
         Call::Conv {
@@ -344,7 +346,7 @@ pub fn run_call(
             let t = conv.transform.as_ref().map(rt_transform);
             let rq: Vec<Requant> = conv.requant.iter().map(|&m| requant(m)).collect();
             if *form == super::WeightForm::Words {
-                return ingot_rt::conv2d_words(
+                return ingot_rt::conv2d_words_rows(
                     arena,
                     *input,
                     *output,
@@ -354,10 +356,11 @@ pub fn run_call(
                     params,
                     t.as_ref(),
                     patch,
+                    rows,
                 );
             }
             if *form == super::WeightForm::Pairs {
-                return ingot_rt::conv2d_paired(
+                return ingot_rt::conv2d_paired_rows(
                     arena,
                     *input,
                     *output,
@@ -367,9 +370,10 @@ pub fn run_call(
                     params,
                     t.as_ref(),
                     patch,
+                    rows,
                 );
             }
-            ingot_rt::conv2d(
+            ingot_rt::conv2d_rows(
                 arena,
                 *input,
                 *output,
@@ -379,6 +383,7 @@ pub fn run_call(
                 params,
                 t.as_ref(),
                 patch,
+                rows,
             )
         }
         Call::Linear {
@@ -395,20 +400,20 @@ pub fn run_call(
             output,
             window,
             q,
-        } => ingot_rt::max_pool2d(arena, *input, *output, window, q),
+        } => ingot_rt::max_pool2d_rows(arena, *input, *output, window, q, rows),
         Call::AvgPool {
             input,
             output,
             window,
             q,
-        } => ingot_rt::avg_pool2d(arena, *input, *output, window, q),
+        } => ingot_rt::avg_pool2d_rows(arena, *input, *output, window, q, rows),
         Call::GlobalAvgPool { input, output, q } => {
             ingot_rt::global_avg_pool(arena, *input, *output, q)
         }
-        Call::Add { a, b, output, p } => ingot_rt::add(arena, *a, *b, *output, p),
+        Call::Add { a, b, output, p } => ingot_rt::add_rows(arena, *a, *b, *output, p, rows),
         Call::Copy { src, dst } => ingot_rt::copy_channels(arena, *src, *dst),
         Call::Channel { input, output, t } => {
-            ingot_rt::channel_transform(arena, *input, *output, &rt_transform(t))
+            ingot_rt::channel_transform_rows(arena, *input, *output, &rt_transform(t), rows)
         }
     }
 }
@@ -425,7 +430,10 @@ pub struct ExecError {
 /// Interprets the schedule through the `ingot-rt` kernels, exactly as the
 /// generated `run` does: copies `input` (HWC, compact) into the input view,
 /// runs every step and returns the compact output map. `trace` sees every
-/// step's output map, compacted, right after the step.
+/// step's output map, compacted, right after the step; the steps of a row
+/// pipeline run as its row calls (`plan::Pipeline::calls`) where its first
+/// step stands and are traced after it, a map stored as a ring as an
+/// empty map (its rows are gone).
 pub fn execute(
     q: &QGraph,
     s: &Schedule,
@@ -438,20 +446,37 @@ pub fn execute(
     let first = calls.first().map(|c| c.step).unwrap_or(StepId(0));
     ingot_rt::copy_in(input, &mut arena, map_ref(q, s, q.input))
         .map_err(|error| ExecError { step: first, error })?;
+    let by_step = |st: StepId| calls.iter().find(|c| c.step == st);
     for sc in calls {
-        for c in &sc.calls {
-            run_call(c, &mut arena, &mut patch).map_err(|error| ExecError {
-                step: sc.step,
-                error,
-            })?;
+        // (step, output rows) calls to make, then the steps to trace.
+        type Rows = Vec<(StepId, (usize, usize))>;
+        let (run, traced): (Rows, Vec<StepId>) =
+            match s.pipelines.iter().find(|p| p.steps.contains(&sc.step)) {
+                Some(p) if p.steps[0] == sc.step => (
+                    p.calls.iter().map(|c| (c.step, (c.y0, c.y1))).collect(),
+                    p.steps.clone(),
+                ),
+                Some(_) => continue,
+                None => (vec![(sc.step, (0, usize::MAX))], vec![sc.step]),
+            };
+        for (st, rows) in run {
+            let Some(stc) = by_step(st) else { continue };
+            for c in &stc.calls {
+                run_call(c, &mut arena, &mut patch, rows)
+                    .map_err(|error| ExecError { step: st, error })?;
+            }
         }
-        let m = map_ref(q, s, q.step(sc.step).output);
-        let mut buf = vec![0i8; m.len()];
-        ingot_rt::copy_out(&arena, m, &mut buf).map_err(|error| ExecError {
-            step: sc.step,
-            error,
-        })?;
-        trace(sc.step, &buf);
+        for st in traced {
+            let m = map_ref(q, s, q.step(st).output);
+            if m.is_ring() {
+                trace(st, &[]);
+                continue;
+            }
+            let mut buf = vec![0i8; m.len()];
+            ingot_rt::copy_out(&arena, m, &mut buf)
+                .map_err(|error| ExecError { step: st, error })?;
+            trace(st, &buf);
+        }
     }
     let m = map_ref(q, s, q.output);
     let mut out = vec![0i8; m.len()];

@@ -27,6 +27,7 @@ pub struct Builder {
     lowered: Option<Box<crate::lower::QGraph>>,
     weight_form: Option<crate::codegen::WeightForm>,
     camera: Option<crate::camera::Camera>,
+    stream: bool,
 }
 
 /// What [`Builder::generate`] wrote.
@@ -86,6 +87,7 @@ impl Builder {
             lowered: None,
             weight_form: None,
             camera: None,
+            stream: true,
         }
     }
 
@@ -142,6 +144,14 @@ impl Builder {
         self
     }
 
+    /// Row streaming (default on): `false` stores every map whole, as
+    /// `ingot build --no-stream` (more RAM; see `docs/memory-plan.md`).
+    /// Generation from a graph file only.
+    pub fn stream(mut self, on: bool) -> Self {
+        self.stream = on;
+        self
+    }
+
     /// Output folder instead of `OUT_DIR`.
     pub fn out_dir(mut self, dir: impl AsRef<Path>) -> Self {
         self.out_dir = Some(dir.as_ref().into());
@@ -158,6 +168,7 @@ impl Builder {
         req.module = self.module.clone();
         req.weight_form = self.weight_form;
         req.camera = self.camera.clone();
+        req.stream = self.stream;
         Ok(req)
     }
 

@@ -87,6 +87,9 @@ pub struct BuildInputs {
     pub weight_form: Option<WeightForm>,
     /// The camera; `None`: the target's `[camera]`, if any.
     pub camera: Option<crate::camera::Camera>,
+    /// Stream rows through rings where the planner finds it lowers the
+    /// RAM (default true; `--no-stream` turns it off).
+    pub stream: bool,
 }
 
 impl BuildInputs {
@@ -100,6 +103,7 @@ impl BuildInputs {
             module: "model".into(),
             weight_form: None,
             camera: None,
+            stream: true,
         }
     }
 }
@@ -522,12 +526,14 @@ pub fn lower_and_plan(
     ranges: &Ranges,
     lower: &LowerOptions,
     weight_form: WeightForm,
+    stream: bool,
 ) -> Result<(QGraph, Plan), PipelineError> {
     let q = crate::lower::lower(graph, ranges, lower)?;
     let plan = crate::plan::plan(
         &q,
         &PlanOptions {
             weight_form,
+            stream,
             ..PlanOptions::default()
         },
     )?;
@@ -614,6 +620,7 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
         &sourced.ranges,
         &LowerOptions::default(),
         weight_form,
+        req.stream,
     )?;
     let schedule = schedule_of(&q, &plan);
     let opt = gen_options(

@@ -41,7 +41,7 @@ pub use ir::{
     QLinear, QMap, QMapId, QParams, QPool, QSlice, QStep, StepId,
 };
 pub use quant::Activation;
-pub use sim::{SimError, SimInput, Simulator};
+pub use sim::{RowCall, SimCall, SimError, SimInput, Simulator};
 
 use crate::graph::{BatchNorm, Conv2d, Graph, LayerId, MapId, Op};
 use crate::ranges::Ranges;

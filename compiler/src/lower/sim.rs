@@ -7,6 +7,11 @@
 //! checked with [`Simulator::with_layout`], which must give identical
 //! results. A concatenation whose inputs already are channel views of its
 //! output costs nothing (the copy kernel sees `input == output`).
+//!
+//! [`Simulator::with_program`] runs steps in a given order and row
+//! pipelines (a memory plan's streamed steps: [`RowCall`]s over maps
+//! stored as rings, `MapRef::ring`), which must again give identical
+//! results.
 
 use super::ir::{QGraph, QKernel, QMapId, StepId};
 use super::quant::{self, to_requant, with_runtime_transform};
@@ -56,6 +61,27 @@ pub enum SimError {
     },
 }
 
+/// One call of a step for its output rows `[y0, y1)`: a row pipeline is a
+/// list of them (see the memory plan's `plan::stream`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize)]
+pub struct RowCall {
+    /// The step.
+    pub step: StepId,
+    /// First output row.
+    pub y0: usize,
+    /// One past the last output row.
+    pub y1: usize,
+}
+
+/// One entry of a simulator program ([`Simulator::with_program`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SimCall {
+    /// The whole step.
+    Step(StepId),
+    /// Some output rows of a step.
+    Rows(RowCall),
+}
+
 /// Runs a lowered graph with the runtime kernels.
 #[derive(Debug, Clone)]
 pub struct Simulator<'q> {
@@ -65,6 +91,9 @@ pub struct Simulator<'q> {
     patch: Vec<i16>,
     /// Runtime multipliers of each conv/linear step.
     requant: Vec<Vec<Requant>>,
+    /// What [`Self::run`] executes (the graph's steps in file order unless
+    /// [`Self::with_program`] set it).
+    program: Vec<SimCall>,
 }
 
 impl<'q> Simulator<'q> {
@@ -137,7 +166,46 @@ impl<'q> Simulator<'q> {
             arena: vec![0; arena_len],
             patch: vec![0; patch_len],
             requant,
+            program: q.step_ids().map(SimCall::Step).collect(),
         }
+    }
+
+    /// Runs `program` instead of the steps in file order: every step once,
+    /// whole or as row calls covering its output rows (a memory plan's
+    /// order and row pipelines). The program is checked for that shape
+    /// here; whether each row call finds its input rows is the plan's
+    /// business (`plan::verify`).
+    pub fn with_program(mut self, program: Vec<SimCall>) -> Result<Self, SimError> {
+        let q = self.q;
+        let mut next_row = vec![0usize; q.steps.len()];
+        let mut whole = vec![false; q.steps.len()];
+        for c in &program {
+            let (s, y0, y1) = match *c {
+                SimCall::Step(s) => (s, 0, usize::MAX),
+                SimCall::Rows(r) => (r.step, r.y0, r.y1),
+            };
+            if s.index() >= q.steps.len() {
+                return Err(SimError::Layout(format!("program: no step {}", s.0)));
+            }
+            let h = q.map(q.step(s).output).shape.h;
+            let y1 = y1.min(h);
+            if whole[s.index()] || y0 != next_row[s.index()] || y1 <= y0 {
+                return Err(SimError::Layout(format!(
+                    "program: step `{}` rows {y0}..{y1} out of turn",
+                    q.step(s).name
+                )));
+            }
+            next_row[s.index()] = y1;
+            whole[s.index()] = y1 == h;
+        }
+        if let Some(s) = whole.iter().position(|w| !w) {
+            return Err(SimError::Layout(format!(
+                "program: step `{}` not run to its last row",
+                q.steps[s].name
+            )));
+        }
+        self.program = program;
+        Ok(self)
     }
 
     /// The graph being simulated.
@@ -188,8 +256,12 @@ impl<'q> Simulator<'q> {
                 ingot_rt::quantize_pixels(v, &mut self.arena, r, &q.pixel_table).map_err(kerr)?;
             }
         }
-        for id in q.step_ids() {
-            self.step(id).map_err(|error| {
+        for k in 0..self.program.len() {
+            let (id, rows) = match self.program[k] {
+                SimCall::Step(s) => (s, (0, usize::MAX)),
+                SimCall::Rows(r) => (r.step, (r.y0, r.y1)),
+            };
+            self.step(id, rows).map_err(|error| {
                 let s = q.step(id);
                 SimError::Kernel {
                     step: id.0,
@@ -202,7 +274,9 @@ impl<'q> Simulator<'q> {
         Ok(self.map_hwc(q.output))
     }
 
-    fn step(&mut self, id: StepId) -> Result<(), ingot_rt::Error> {
+    /// Runs output rows `rows` of a step (`(0, usize::MAX)`: all of it;
+    /// only row-producing kernels are ever given fewer).
+    fn step(&mut self, id: StepId, rows: (usize, usize)) -> Result<(), ingot_rt::Error> {
         let s = self.q.step(id);
         let out = self.refs[s.output.index()];
         let input = self.refs[s.inputs[0].index()];
@@ -224,11 +298,11 @@ impl<'q> Simulator<'q> {
                 let rq = &self.requant[id.index()];
                 let patch = &mut self.patch;
                 match &c.transform {
-                    None => ingot_rt::conv2d(
-                        arena, input, out, &c.weights, &c.bias, rq, &p, None, patch,
+                    None => ingot_rt::conv2d_rows(
+                        arena, input, out, &c.weights, &c.bias, rq, &p, None, patch, rows,
                     ),
                     Some(t) => with_runtime_transform(t, |t| {
-                        ingot_rt::conv2d(
+                        ingot_rt::conv2d_rows(
                             arena,
                             input,
                             out,
@@ -238,6 +312,7 @@ impl<'q> Simulator<'q> {
                             &p,
                             Some(t),
                             patch,
+                            rows,
                         )
                     }),
                 }
@@ -259,9 +334,9 @@ impl<'q> Simulator<'q> {
                     out: oq(p.clamp),
                 };
                 if matches!(s.kernel, QKernel::MaxPool(_)) {
-                    ingot_rt::max_pool2d(arena, input, out, &w, &pq)
+                    ingot_rt::max_pool2d_rows(arena, input, out, &w, &pq, rows)
                 } else {
-                    ingot_rt::avg_pool2d(arena, input, out, &w, &pq)
+                    ingot_rt::avg_pool2d_rows(arena, input, out, &w, &pq, rows)
                 }
             }
             QKernel::GlobalAvgPool(p) => {
@@ -283,7 +358,14 @@ impl<'q> Simulator<'q> {
                     left_shift: a.left_shift,
                     out: oq(a.clamp),
                 };
-                ingot_rt::add(arena, input, self.refs[s.inputs[1].index()], out, &params)
+                ingot_rt::add_rows(
+                    arena,
+                    input,
+                    self.refs[s.inputs[1].index()],
+                    out,
+                    &params,
+                    rows,
+                )
             }
             QKernel::Concat => {
                 let mut c0 = 0;
@@ -294,9 +376,9 @@ impl<'q> Simulator<'q> {
                 }
                 Ok(())
             }
-            QKernel::Channel(t) => {
-                with_runtime_transform(t, |t| ingot_rt::channel_transform(arena, input, out, t))
-            }
+            QKernel::Channel(t) => with_runtime_transform(t, |t| {
+                ingot_rt::channel_transform_rows(arena, input, out, t, rows)
+            }),
         }
     }
 

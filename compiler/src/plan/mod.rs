@@ -18,10 +18,15 @@
 //!    it (same offset and stride, as `ingot_rt::add` allows). Convolution,
 //!    linear and pooling never overwrite their own input: their input and
 //!    output are both alive at the step.
-//! 4. **Placement** ([`place`]): several greedy heuristics, the best kept.
-//! 5. **Lower bound**: the largest total of buffers alive at one step of the
-//!    chosen order; no placement of these buffers can be smaller.
-//! 6. **Verification** ([`verify`]): an independent brute-force check of the
+//! 4. **Row streaming** ([`stream`]): producer → consumer edges whose map
+//!    is then stored as a ring of the rows the consumer's window spans; the
+//!    steps of a pipeline run row by row and share one time of the order.
+//! 5. **Placement** ([`place`]): several greedy heuristics, the best kept.
+//! 6. **Lower bound**: the largest total of buffers alive at one time of
+//!    the chosen order, rings with their ring bytes; no placement of these
+//!    buffers can be smaller. [`Plan::unfused_bound`] is the same without
+//!    streaming.
+//! 7. **Verification** ([`verify`]): an independent brute-force check of the
 //!    result, run on every plan in debug builds (and on request).
 //!
 //! Offsets of buffers are multiples of [`PlanOptions::align`] (4 bytes by
@@ -36,6 +41,7 @@ pub(crate) mod place;
 pub(crate) mod regions;
 pub mod report;
 pub mod schedule;
+pub mod stream;
 mod svg;
 pub mod target;
 mod verify;
@@ -47,6 +53,7 @@ use std::time::Instant;
 pub use form::{patch_bytes, patch_bytes_for, WeightForm};
 pub use report::{report, PlanReport};
 pub use schedule::Schedule;
+pub use stream::{Pipeline, Ring};
 pub use svg::{render as render_svg, SvgError};
 pub use target::{Budget, Target, TargetError};
 pub use verify::{verify, PlanViolation};
@@ -80,6 +87,9 @@ pub struct PlanOptions {
     /// The convolution weight form the module will use: the paired form's
     /// row buffers make the patch scratch larger ([`patch_bytes_for`]).
     pub weight_form: WeightForm,
+    /// Stream rows from producers into consumers through rings where that
+    /// lowers the live bytes ([`stream`]; default true).
+    pub stream: bool,
 }
 
 impl Default for PlanOptions {
@@ -95,6 +105,7 @@ impl Default for PlanOptions {
             verify: cfg!(debug_assertions),
             compare_copying: true,
             weight_form: WeightForm::Int8,
+            stream: true,
         }
     }
 }
@@ -127,6 +138,8 @@ pub struct BufferLife {
     pub first: usize,
     /// Last position at which it is alive (inclusive).
     pub last: usize,
+    /// Rows stored when the buffer is a ring of a streamed map.
+    pub ring_rows: Option<usize>,
 }
 
 /// The memory plan of one network.
@@ -157,8 +170,16 @@ pub struct Plan {
     /// The weight form the patch was sized for (and the flash budget
     /// counts).
     pub weight_form: WeightForm,
-    /// Largest total of (padded) buffers alive at one step of `order`.
+    /// Largest total of (padded) buffers alive at one time of `order`,
+    /// the steps of a pipeline sharing one time and rings counted with
+    /// their ring bytes (the fused bound).
     pub lower_bound: usize,
+    /// The same bound without streaming: every map stored whole, every
+    /// step its own time.
+    pub unfused_bound: usize,
+    /// Row pipelines: consecutive steps of `order` run row by row, the
+    /// maps between them stored as rings.
+    pub pipelines: Vec<Pipeline>,
     /// Sum of all maps, each in its own bytes, no reuse.
     pub naive_bytes: usize,
     /// Arena of the best plan in which every concatenation copies.
@@ -167,7 +188,8 @@ pub struct Plan {
     pub peak_step: usize,
     /// Peak of live bytes in the file order (with the same in-place rules).
     pub order_peak_before: usize,
-    /// Peak of live bytes in the chosen order (equals `lower_bound`).
+    /// Peak of live bytes in the chosen order, unfused (equals
+    /// `unfused_bound`).
     pub order_peak_after: usize,
     /// True when the order search was exhaustive.
     pub order_exact: bool,
@@ -192,6 +214,18 @@ impl Plan {
     /// The view of one map.
     pub fn view(&self, m: QMapId) -> MapView {
         self.map_views[m.index()]
+    }
+
+    /// Rows stored of every map (its height unless streamed as a ring),
+    /// indexed by [`QMapId`].
+    pub fn stored_rows(&self, q: &QGraph) -> Vec<usize> {
+        let mut r: Vec<usize> = q.maps.iter().map(|m| m.shape.h).collect();
+        for p in &self.pipelines {
+            for g in &p.rings {
+                r[g.map.index()] = g.rows;
+            }
+        }
+        r
     }
 
     /// Position of every step in [`Plan::order`], indexed by [`StepId`].
@@ -422,6 +456,42 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
             order = found.order;
         }
     }
+    let (unfused, _) = liveness::peak(&chosen.profile);
+    let mb: Vec<usize> = chosen.slots.iter().map(|s| s.buffer).collect();
+    let streaming = if opts.stream {
+        stream::choose(
+            q,
+            &order,
+            &mb,
+            &chosen.buffers,
+            &chosen.is_region,
+            &chosen.sizes,
+            opts.align,
+            opts.weight_form,
+        )
+    } else {
+        let mut time = vec![0; n];
+        for (p, &s) in order.iter().enumerate() {
+            time[s] = p;
+        }
+        stream::Streaming {
+            pipelines: Vec::new(),
+            time,
+            ring_of_buffer: vec![None; chosen.buffers.len()],
+        }
+    };
+    if !streaming.pipelines.is_empty() {
+        for (b, r) in streaming.ring_of_buffer.iter().enumerate() {
+            if let Some(rows) = r {
+                let sh = q.map(chosen.buffers[b][0]).shape;
+                chosen.bytes[b] = rows * sh.w * sh.c;
+                chosen.sizes[b] = liveness::align_up(chosen.bytes[b], opts.align) as u64;
+            }
+        }
+        let uses = liveness::buffer_uses(q, &mb, chosen.buffers.len());
+        chosen.iv = liveness::intervals(&uses, &streaming.time, n);
+        chosen.profile = liveness::profile(&chosen.iv, &chosen.sizes, n);
+    }
     let (lb, peak_step) = liveness::peak(&chosen.profile);
     let live: Vec<usize> = (0..chosen.buffers.len())
         .filter(|&b| chosen.iv[b].is_some())
@@ -472,6 +542,7 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
                 padded: chosen.sizes[b] as usize,
                 first,
                 last,
+                ring_rows: streaming.ring_of_buffer[b],
             }
         })
         .collect();
@@ -490,11 +561,13 @@ fn plan_core(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> Plan {
         patch_bytes: patch_bytes_for(q, opts.weight_form),
         weight_form: opts.weight_form,
         lower_bound: lb as usize,
+        unfused_bound: unfused as usize,
+        pipelines: streaming.pipelines,
         naive_bytes: naive,
         copying_bytes: 0,
         peak_step,
         order_peak_before: peak_before as usize,
-        order_peak_after: lb as usize,
+        order_peak_after: unfused as usize,
         order_exact: exact,
         heuristic,
         align: opts.align,

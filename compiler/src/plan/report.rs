@@ -37,6 +37,30 @@ pub struct MapRow {
     pub alive: Option<[usize; 2]>,
 }
 
+/// One row pipeline of the plan.
+#[derive(Debug, Clone, Serialize)]
+pub struct PipelineRow {
+    /// Its steps, in order.
+    pub steps: Vec<String>,
+    /// Its rings.
+    pub rings: Vec<RingRow>,
+}
+
+/// One map stored as a ring.
+#[derive(Debug, Clone, Serialize)]
+pub struct RingRow {
+    /// Map name.
+    pub map: String,
+    /// Rows stored.
+    pub rows: usize,
+    /// Rows of the map.
+    pub height: usize,
+    /// Bytes stored (`rows · w · c`).
+    pub bytes: usize,
+    /// Bytes of the whole map.
+    pub map_bytes: usize,
+}
+
 /// Everything `ingot plan` reports.
 #[derive(Debug, Clone, Serialize)]
 pub struct PlanReport {
@@ -48,8 +72,12 @@ pub struct PlanReport {
     pub patch_bytes: usize,
     /// Convolution weight form the patch and flash figures assume.
     pub weight_form: &'static str,
-    /// Lower bound.
+    /// Lower bound of the plan (row pipelines counted with their rings).
     pub lower_bound: usize,
+    /// Lower bound without row streaming (every map stored whole).
+    pub unfused_bound: usize,
+    /// Row pipelines.
+    pub pipelines: Vec<PipelineRow>,
     /// Arena / lower bound.
     pub ratio: f64,
     /// No reuse at all.
@@ -124,6 +152,28 @@ pub fn report(q: &QGraph, plan: &Plan, target: Option<&Target>) -> PlanReport {
         patch_bytes: plan.patch_bytes,
         weight_form: plan.weight_form.name(),
         lower_bound: plan.lower_bound,
+        unfused_bound: plan.unfused_bound,
+        pipelines: plan
+            .pipelines
+            .iter()
+            .map(|p| PipelineRow {
+                steps: p.steps.iter().map(|&s| q.step(s).name.clone()).collect(),
+                rings: p
+                    .rings
+                    .iter()
+                    .map(|r| {
+                        let sh = q.map(r.map).shape;
+                        RingRow {
+                            map: q.map(r.map).name.clone(),
+                            rows: r.rows,
+                            height: sh.h,
+                            bytes: r.rows * sh.w * sh.c,
+                            map_bytes: sh.len(),
+                        }
+                    })
+                    .collect(),
+            })
+            .collect(),
         ratio: plan.ratio(),
         naive_bytes: plan.naive_bytes,
         copying_bytes: plan.copying_bytes,
@@ -182,6 +232,38 @@ impl fmt::Display for PlanReport {
             "lower bound  {:>10} B  ratio {:.4}",
             self.lower_bound, self.ratio
         )?;
+        if !self.pipelines.is_empty() {
+            writeln!(
+                f,
+                "unfused      {:>10} B  (lower bound with every map stored whole; {} row pipelines, {} rings)",
+                self.unfused_bound,
+                self.pipelines.len(),
+                self.pipelines.iter().map(|p| p.rings.len()).sum::<usize>()
+            )?;
+            for (k, p) in self.pipelines.iter().enumerate() {
+                let rings: Vec<String> = p
+                    .rings
+                    .iter()
+                    .map(|r| {
+                        format!(
+                            "`{}` ring {}/{} rows ({} of {} B)",
+                            r.map, r.rows, r.height, r.bytes, r.map_bytes
+                        )
+                    })
+                    .collect();
+                writeln!(
+                    f,
+                    "  pipeline {:>3}  {}: {}",
+                    k + 1,
+                    p.steps
+                        .iter()
+                        .map(|s| format!("`{s}`"))
+                        .collect::<Vec<_>>()
+                        .join(" → "),
+                    rings.join(", ")
+                )?;
+            }
+        }
         writeln!(
             f,
             "naive        {:>10} B  (every map its own bytes)",

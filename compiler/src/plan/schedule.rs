@@ -6,7 +6,7 @@
 //! valid and lets the generator be tested on its own.
 
 use super::{MapView, Plan};
-use crate::lower::{QGraph, QKernel, StepId};
+use crate::lower::{QGraph, QKernel, QMapId, SimCall, StepId};
 
 /// Execution order and memory layout of a [`QGraph`].
 #[derive(Debug, Clone, PartialEq, Eq, serde::Serialize)]
@@ -22,6 +22,12 @@ pub struct Schedule {
     pub arena_bytes: usize,
     /// Convolution patch buffer size in bytes (`i16` elements × 2).
     pub patch_bytes: usize,
+    /// Row pipelines (consecutive steps of `order` run row by row, the
+    /// maps between them stored as rings); empty when nothing streams
+    /// (and then left out of the serialized form, so the hash of a
+    /// schedule without streaming is what it was before streaming).
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub pipelines: Vec<super::Pipeline>,
 }
 
 impl Schedule {
@@ -46,7 +52,33 @@ impl Schedule {
                 .collect(),
             arena_bytes: at,
             patch_bytes: min_patch_bytes(q),
+            pipelines: Vec::new(),
         }
+    }
+
+    /// Rows stored of map `m`: `Some(rows)` when it is a ring.
+    pub fn ring_rows(&self, m: QMapId) -> Option<usize> {
+        self.pipelines
+            .iter()
+            .flat_map(|p| &p.rings)
+            .find(|r| r.map == m)
+            .map(|r| r.rows)
+    }
+
+    /// The order as a simulator program: whole steps, and each pipeline's
+    /// row calls where its first step stands.
+    pub fn program(&self) -> Vec<SimCall> {
+        let mut out = Vec::with_capacity(self.order.len());
+        for &s in &self.order {
+            match self.pipelines.iter().find(|p| p.steps.contains(&s)) {
+                Some(p) if p.steps[0] == s => {
+                    out.extend(p.calls.iter().map(|&c| SimCall::Rows(c)));
+                }
+                Some(_) => {}
+                None => out.push(SimCall::Step(s)),
+            }
+        }
+        out
     }
 }
 
@@ -64,6 +96,7 @@ impl From<&Plan> for Schedule {
             copy_concats: p.copy_concat.clone(),
             arena_bytes: p.arena_bytes,
             patch_bytes: p.patch_bytes,
+            pipelines: p.pipelines.clone(),
         }
     }
 }

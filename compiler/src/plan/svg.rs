@@ -6,10 +6,16 @@
 //! (a member of `c` of `C` channels takes `c/C` of the height, at its channel
 //! position), from the member's write to the region's end, so a dense
 //! block's region is seen filling up. The peak step is a dashed red line.
+//!
+//! A map streamed as a ring (row streaming, [`super::stream`]) is drawn
+//! as its ring: a rectangle of its ring bytes cut into one slot per
+//! stored row, labelled `ring R/H rows`, alive over its pipeline's time;
+//! the unfused lower bound is then a dotted grey line.
 
 use super::Plan;
 use crate::lower::QGraph;
 use plotters::prelude::*;
+use std::fmt::Write as _;
 
 const PALETTE: [RGBColor; 8] = [
     RGBColor(76, 114, 176),
@@ -41,13 +47,22 @@ fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::er
     let width = (640 + 4 * n as u32).min(1800);
     let root = SVGBackend::with_string(out, (width, 620)).into_drawing_area();
     root.fill(&WHITE)?;
-    let title = format!(
+    let mut title = format!(
         "{}: arena {:.1} KiB, lower bound {:.1} KiB, ratio {:.3}",
         q.name,
         kib(plan.arena_bytes),
         kib(plan.lower_bound),
         plan.ratio()
     );
+    let streams = !plan.pipelines.is_empty();
+    if streams {
+        let _ = write!(title, ", unfused {:.1} KiB", kib(plan.unfused_bound));
+    }
+    let top = if streams {
+        top.max(kib(plan.unfused_bound) * 1.04)
+    } else {
+        top
+    };
     let mut chart = ChartBuilder::on(&root)
         .caption(title, ("sans-serif", 20))
         .margin(12)
@@ -100,10 +115,41 @@ fn draw(q: &QGraph, plan: &Plan, out: &mut String) -> Result<(), Box<dyn std::er
                 )))?;
             }
         }
+        if let Some(rows) = b.ring_rows {
+            // One slot per stored row.
+            let h = q.map(b.maps[0]).shape.h;
+            let slot = (y1 - y0) * (b.bytes as f64 / b.padded.max(1) as f64) / rows as f64;
+            let lines = (1..rows).map(|r| {
+                let y = y0 + slot * r as f64;
+                PathElement::new(vec![(x0, y), (x1, y)], c.stroke_width(1))
+            });
+            chart.draw_series(lines)?;
+            chart.draw_series(std::iter::once(Text::new(
+                format!("ring {rows}/{h} rows"),
+                (x0, y1 + top / 120.0),
+                ("sans-serif", 11).into_font().color(&BLACK),
+            )))?;
+        }
         chart.draw_series(std::iter::once(Rectangle::new(
             [(x0, y0), (x1, y1)],
             c.stroke_width(1),
         )))?;
+    }
+    if streams {
+        let ub = kib(plan.unfused_bound);
+        let dots = (0..n * 2).map(|k| {
+            let a = k as f64 / 2.0;
+            PathElement::new(
+                vec![(a, ub), (a + 0.25, ub)],
+                BLACK.mix(0.5).stroke_width(1),
+            )
+        });
+        chart
+            .draw_series(dots)?
+            .label(format!("unfused lower bound {ub:.1} KiB"))
+            .legend(|(x, y)| {
+                PathElement::new(vec![(x, y), (x + 16, y)], BLACK.mix(0.5).stroke_width(1))
+            });
     }
     let peak = plan.peak_step as f64 + 0.5;
     let dashes = (0..40).map(|k| {

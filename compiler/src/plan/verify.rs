@@ -20,12 +20,22 @@
 //!    the step; the input may be an in-place concatenation, whose members
 //!    the output then overwrites.
 //!
+//! 5. row pipelines ([`Plan::pipelines`]): their steps are consecutive in
+//!    the order and share the first one's time (every lifetime above is
+//!    taken in these times); a ring is a map written by one step of the
+//!    pipeline and read by exactly one later step of it, stored as fewer
+//!    rows than its height (only those rows count for 2 and 4); the calls
+//!    compute every row of every step once, in ascending order; and
+//!    replaying them, every call finds each input row it reads in the
+//!    ring (written, not yet overwritten), and never reads a row an
+//!    in-place step of the pipeline already wrote over.
+//!
 //! Overlap is decided exactly, pixel run by pixel run (a brute-force
 //! enumeration over the pixels of one map, with the other map's pixel index
 //! computed arithmetically).
 
 use super::{MapView, Plan};
-use crate::lower::{QGraph, QKernel, QMapId};
+use crate::lower::{QGraph, QKernel, QMapId, StepId};
 
 /// `[start, end)` of the bytes a view spans, or `None` for an empty map.
 fn span(v: MapView, px: usize, c: usize) -> Option<(usize, usize)> {
@@ -129,6 +139,15 @@ pub enum PlanViolation {
         /// The concatenation's view.
         region: MapView,
     },
+    /// A row pipeline is malformed or a call reads a row its ring does not
+    /// hold.
+    #[error("pipeline at step `{step}`: {why}")]
+    Pipeline {
+        /// The step concerned.
+        step: String,
+        /// What is wrong.
+        why: String,
+    },
     /// Two maps alive together share arena bytes.
     #[error(
         "`{a}` (alive {a_from}..={a_to}) and `{b}` (alive {b_from}..={b_to}) share arena bytes"
@@ -163,6 +182,15 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), PlanViolation> {
         }
         pos[s.index()] = i;
     }
+    let rows = pipelines(q, plan, &pos)?;
+    // The steps of a pipeline share one time.
+    let order_pos = pos.clone();
+    for p in &plan.pipelines {
+        let t = order_pos[p.steps[0].index()];
+        for s in &p.steps {
+            pos[s.index()] = t;
+        }
+    }
     let mut def: Vec<Option<usize>> = vec![None; nm];
     def[q.input.index()] = Some(0);
     for (s, st) in q.steps.iter().enumerate() {
@@ -171,8 +199,13 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), PlanViolation> {
     let mut last: Vec<Option<usize>> = def.clone();
     for (s, st) in q.steps.iter().enumerate() {
         for m in &st.inputs {
+            let written = q
+                .steps
+                .iter()
+                .position(|p| p.output == *m)
+                .map(|p| order_pos[p] < order_pos[s]);
             match def[m.index()] {
-                Some(d) if m == &q.input || d < pos[s] => {}
+                Some(_) if m == &q.input || written == Some(true) => {}
                 _ => {
                     return Err(PlanViolation::ReadBeforeWrite {
                         step: st.name.clone(),
@@ -189,7 +222,7 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), PlanViolation> {
     }
     let shape = |m: QMapId| {
         let s = q.map(m).shape;
-        (s.h * s.w, s.c)
+        (rows[m.index()] * s.w, s.c)
     };
     // 2. In the arena.
     for (m, d) in def.iter().enumerate() {
@@ -311,4 +344,118 @@ pub fn verify(q: &QGraph, plan: &Plan) -> Result<(), PlanViolation> {
         }
     }
     Ok(())
+}
+
+/// Checks the row pipelines (5. in the module docs); returns the rows
+/// stored of every map.
+fn pipelines(q: &QGraph, plan: &Plan, pos: &[usize]) -> Result<Vec<usize>, PlanViolation> {
+    let mut rows: Vec<usize> = q.maps.iter().map(|m| m.shape.h).collect();
+    let mut in_pipe = vec![false; q.steps.len()];
+    let bad = |s: StepId, why: String| PlanViolation::Pipeline {
+        step: q.step(s).name.clone(),
+        why,
+    };
+    let readers = |m: QMapId| q.steps.iter().filter(|s| s.inputs.contains(&m)).count();
+    for p in &plan.pipelines {
+        let Some(&first) = p.steps.first() else {
+            return Err(PlanViolation::Lengths);
+        };
+        for (i, &s) in p.steps.iter().enumerate() {
+            if s.index() >= q.steps.len() || pos[s.index()] != pos[first.index()] + i {
+                return Err(bad(s, "steps not consecutive in the order".into()));
+            }
+            if std::mem::replace(&mut in_pipe[s.index()], true) {
+                return Err(bad(s, "step in two pipelines".into()));
+            }
+        }
+        for r in &p.rings {
+            let m = r.map;
+            let h = q.map(m).shape.h;
+            let writer = p.steps.iter().position(|&s| q.step(s).output == m);
+            let reader = p.steps.iter().position(|&s| q.step(s).inputs.contains(&m));
+            let ok = matches!((writer, reader), (Some(w), Some(r)) if w < r)
+                && readers(m) == 1
+                && m != q.input
+                && m != q.output
+                && r.rows >= 1
+                && r.rows < h;
+            if !ok {
+                return Err(bad(first, format!("`{}` cannot be a ring", q.map(m).name)));
+            }
+            rows[m.index()] = r.rows;
+        }
+        // Replay the calls.
+        let mut done: Vec<usize> = vec![0; q.maps.len()]; // rows written
+        let mut clobbered: Vec<usize> = vec![0; q.maps.len()];
+        for c in &p.calls {
+            if !p.steps.contains(&c.step) {
+                return Err(bad(c.step, "call of a step outside the pipeline".into()));
+            }
+            let st = q.step(c.step);
+            let o = st.output;
+            let oh = q.map(o).shape.h;
+            if c.y0 != done[o.index()] || c.y1 <= c.y0 || c.y1 > oh {
+                return Err(bad(c.step, format!("rows {}..{} out of turn", c.y0, c.y1)));
+            }
+            let (sy, top, span) = match &st.kernel {
+                QKernel::Conv2d(cv) => (
+                    cv.stride[0],
+                    cv.padding.top,
+                    (cv.kernel[0] - 1) * cv.dilation[0] + 1,
+                ),
+                QKernel::MaxPool(pl) | QKernel::AvgPool(pl) => {
+                    (pl.stride[0], pl.padding.top, pl.kernel[0])
+                }
+                QKernel::Add(_) | QKernel::Channel(_) => (1, 0, 1),
+                _ => return Err(bad(c.step, "kernel cannot run by rows".into())),
+            };
+            // Element-wise steps read rows y0..y1 of every input (step 1,
+            // no padding, span 1); windows read their one input.
+            for &m in &st.inputs {
+                let h = q.map(m).shape.h;
+                let lo = (c.y0 * sy).saturating_sub(top).min(h);
+                let hi = ((c.y1 - 1) * sy + span).saturating_sub(top).min(h);
+                if lo < clobbered[m.index()] {
+                    return Err(bad(
+                        c.step,
+                        format!(
+                            "reads row {lo} of `{}` after it was written over",
+                            q.map(m).name
+                        ),
+                    ));
+                }
+                let stored = p.rings.iter().any(|r| r.map == m);
+                let made_here = p.steps.iter().any(|&s| q.step(s).output == m);
+                if made_here
+                    && (hi > done[m.index()] || (stored && lo + rows[m.index()] < done[m.index()]))
+                {
+                    return Err(bad(
+                        c.step,
+                        format!(
+                            "rows {lo}..{hi} of `{}` not held (written {}, ring {})",
+                            q.map(m).name,
+                            done[m.index()],
+                            rows[m.index()]
+                        ),
+                    ));
+                }
+            }
+            // An in-place step writes over its input's rows.
+            if plan.in_place.contains(&c.step) {
+                for &m in &st.inputs {
+                    if plan.map_views[m.index()] == plan.map_views[o.index()] {
+                        clobbered[m.index()] = c.y1;
+                    }
+                }
+            }
+            done[o.index()] = c.y1;
+        }
+        for &s in &p.steps {
+            let o = q.step(s).output;
+            if done[o.index()] != q.map(o).shape.h {
+                return Err(bad(s, "not every row computed".into()));
+            }
+        }
+    }
+    Ok(rows)
 }

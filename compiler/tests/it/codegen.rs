@@ -105,7 +105,15 @@ impl Net {
                     .order
                     .iter()
                     .enumerate()
-                    .map(|(i, &st)| ((k, i), sim.map_hwc(self.q.step(st).output)))
+                    .map(|(i, &st)| {
+                        // A map stored as a ring is traced empty.
+                        let m = self.q.step(st).output;
+                        let v = match self.schedule.ring_rows(m) {
+                            Some(_) => Vec::new(),
+                            None => sim.map_hwc(m),
+                        };
+                        ((k, i), v)
+                    })
                     .collect();
                 (out, t)
             })

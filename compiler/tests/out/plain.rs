@@ -118,7 +118,9 @@ pub fn run_traced(
         patch,
         &mut |step, m: ingot_rt::MapRef, a: &[i8]| {
             let name = STEP_MAP_NAMES[step];
-            if m.stride == m.c || m.pixels() <= 1 {
+            if m.rows < m.h {
+                f(step, name, &[]);
+            } else if m.stride == m.c || m.pixels() <= 1 {
                 f(step, name, &a[m.offset..m.offset + m.len()]);
             } else {
                 let b = &mut buf[..m.len()];

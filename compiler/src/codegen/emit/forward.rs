@@ -144,26 +144,124 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
     items
 }
 
-/// The statements of `forward`.
+/// The statements of `forward`: each step's calls in order, `trace` after
+/// each step; a row pipeline as one loop over its last step's output rows
+/// where its first step stands (see [`pipeline_loop`]).
 pub(super) fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
     let mut body = TokenStream::new();
+    let index = |st: StepId| ctx.calls.iter().position(|c| c.step == st);
     for (k, sc) in ctx.calls.iter().enumerate() {
-        let stem = &ctx.stems[sc.step.index()];
-        let n = sc.calls.len();
-        for (j, c) in sc.calls.iter().enumerate() {
-            let kid = call_id(stem, j, n);
-            body.extend(match c {
-                Call::Conv { .. } => quote!(#kid.run(arena, patch);),
-                _ => quote!(#kid.run(arena);),
-            });
+        let traced: Vec<(usize, StepId)> =
+            match ctx.s.pipelines.iter().find(|p| p.steps.contains(&sc.step)) {
+                Some(p) if p.steps[0] == sc.step => {
+                    body.extend(pipeline_loop(ctx, p));
+                    p.steps
+                        .iter()
+                        .filter_map(|&st| Some((index(st)?, st)))
+                        .collect()
+                }
+                Some(_) => continue,
+                None => {
+                    let stem = &ctx.stems[sc.step.index()];
+                    let n = sc.calls.len();
+                    for (j, c) in sc.calls.iter().enumerate() {
+                        let kid = call_id(stem, j, n);
+                        body.extend(match c {
+                            Call::Conv { .. } => quote!(#kid.run(arena, patch);),
+                            _ => quote!(#kid.run(arena);),
+                        });
+                    }
+                    vec![(k, sc.step)]
+                }
+            };
+        for (k, st) in traced {
+            let k = us(k);
+            let out = map_ref(crate::codegen::calls::map_ref(
+                ctx.q,
+                ctx.s,
+                ctx.q.step(st).output,
+            ));
+            body.extend(quote!(trace(#k, #out, arena.as_slice());));
         }
-        let k = us(k);
-        let out = map_ref(crate::codegen::calls::map_ref(
-            ctx.q,
-            ctx.s,
-            ctx.q.step(sc.step).output,
-        ));
-        body.extend(quote!(trace(#k, #out, arena.as_slice());));
     }
     body
+}
+
+/// One row pipeline (a chain of steps, each reading the previous one's
+/// output, the maps between them rings): for every output row `y` of the
+/// last step, step `j` computes its rows from `d_j` (where it stopped) up
+/// to `n_j`, the rows step `j + 1` reads for its rows below `n_{j+1}`
+/// (`plan::stream::need_of`: `min(h, ((n − 1)·step + span) − top)`, all
+/// constants), so each row is computed once, just before it is read. The
+/// same calls, in the same order, as `plan::Pipeline::calls`.
+fn pipeline_loop(ctx: &Ctx<'_>, p: &crate::plan::Pipeline) -> TokenStream {
+    let q = ctx.q;
+    let k = p.steps.len();
+    let last_h = us(q.map(q.step(p.steps[k - 1]).output).shape.h);
+    let d: Vec<Ident> = (0..k).map(|j| id("d", &j.to_string())).collect();
+    let n: Vec<Ident> = (0..k).map(|j| id("n", &j.to_string())).collect();
+    let mut needs = TokenStream::new();
+    let nl = &n[k - 1];
+    needs.extend(quote!(let #nl = y + 1;));
+    for j in (0..k - 1).rev() {
+        let (sy, top, span, h) = crate::plan::stream::row_window(q, p.steps[j + 1]);
+        // max(0, (n − 1)·step + span − top) = max(0, n·step + c), written
+        // without operations on 0 or 1 (the module is linted).
+        let c = span as i64 - sy as i64 - top as i64;
+        let (nj, next) = (&n[j], &n[j + 1]);
+        // A receiver in parentheses only when it is an operation.
+        let m = if sy == 1 {
+            quote!(#next)
+        } else {
+            let sy = us(sy);
+            quote!((#next * #sy))
+        };
+        let v = match c {
+            0 => m,
+            c if c > 0 => {
+                let c = us(c as usize);
+                let m = if sy == 1 {
+                    quote!(#next)
+                } else {
+                    let sy = us(sy);
+                    quote!(#next * #sy)
+                };
+                quote!((#m + #c))
+            }
+            c => {
+                let c = us((-c) as usize);
+                quote!(#m.saturating_sub(#c))
+            }
+        };
+        let h = us(h);
+        needs.extend(quote! {
+            let #nj = if #next == 0 { 0 } else { #v.min(#h) };
+        });
+    }
+    let mut runs = TokenStream::new();
+    for (j, &st) in p.steps.iter().enumerate() {
+        let Some(sc) = ctx.calls.iter().find(|c| c.step == st) else {
+            continue;
+        };
+        let stem = &ctx.stems[st.index()];
+        let (dj, nj) = (&d[j], &n[j]);
+        let cn = sc.calls.len();
+        for (c, call) in sc.calls.iter().enumerate() {
+            let kid = call_id(stem, c, cn);
+            runs.extend(match call {
+                Call::Conv { .. } => quote!(#kid.run_rows(arena, patch, #dj, #nj);),
+                _ => quote!(#kid.run_rows(arena, #dj, #nj);),
+            });
+        }
+        runs.extend(quote!(#dj = #nj;));
+    }
+    quote! {
+        {
+            #(let mut #d = 0usize;)*
+            for y in 0..#last_h {
+                #needs
+                #runs
+            }
+        }
+    }
 }

@@ -5,7 +5,7 @@ use super::blob::{Blob, Elem, Entry, Role};
 use super::calls::{Call, StepCalls};
 use super::names::for_doc;
 use super::{GenOptions, WeightsMode};
-use crate::lower::{ChannelTransform, QGraph, QKernel};
+use crate::lower::{ChannelTransform, QGraph, QKernel, StepId};
 use crate::plan::WeightForm;
 use ingot_rt::{MapRef, OutputQuant, Requant, Window};
 use proc_macro2::{Ident, Literal, Span, TokenStream};
@@ -54,6 +54,10 @@ fn us(v: usize) -> Literal {
 
 fn map_ref(m: MapRef) -> TokenStream {
     let (o, h, w, c, s) = (us(m.offset), us(m.h), us(m.w), us(m.c), us(m.stride));
+    if m.is_ring() {
+        let r = us(m.rows);
+        return quote!(ingot_rt::MapRef::ring(#o, #h, #w, #c, #s, #r));
+    }
     quote!(ingot_rt::MapRef::strided(#o, #h, #w, #c, #s))
 }
 
@@ -157,7 +161,7 @@ pub fn module(ctx: &Ctx<'_>) -> String {
         .calls
         .iter()
         .map(|c| super::calls::map_ref(q, s, q.step(c.step).output))
-        .filter(|m| m.stride != m.c && m.pixels() > 1)
+        .filter(|m| m.stride != m.c && m.pixels() > 1 && !m.is_ring())
         .map(|m| m.len())
         .max()
         .unwrap_or(0));
@@ -282,7 +286,10 @@ pub fn module(ctx: &Ctx<'_>) -> String {
                 let name = STEP_MAP_NAMES[step];
                 // A debug hook: the maps are the schedule's own, so these
                 // panics (the only ones in the module) cannot fire.
-                if m.stride == m.c || m.pixels() <= 1 {
+                // A ring's rows are gone: an empty map.
+                if m.rows < m.h {
+                    f(step, name, &[]);
+                } else if m.stride == m.c || m.pixels() <= 1 {
                     f(step, name, &a[m.offset..m.offset + m.len()]);
                 } else {
                     let b = &mut buf[..m.len()];
