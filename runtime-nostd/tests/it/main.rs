@@ -11,3 +11,4 @@ mod frame_sums;
 mod kernels;
 mod no_std;
 mod requant;
+mod wide;
