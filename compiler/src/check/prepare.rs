@@ -219,6 +219,7 @@ pub fn prepare(
     let weight_form = driver::weight_form_for(opts.weight_form, target.as_ref());
     let lower_opts = LowerOptions {
         per_channel: opts.per_channel,
+        ..LowerOptions::default()
     };
     let (q, p) = driver::lower_and_plan(&g, &sourced.ranges, &lower_opts, weight_form)
         .map_err(PrepareError::from_driver)?;

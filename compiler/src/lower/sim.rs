@@ -7,9 +7,14 @@
 //! checked with [`Simulator::with_layout`], which must give identical
 //! results. A concatenation whose inputs already are channel views of its
 //! output costs nothing (the copy kernel sees `input == output`).
+//!
+//! Wide (int16) maps take two bytes per value (`MapRef::offset` in bytes,
+//! see `ingot_rt::wide`); a step that reads or writes one runs the
+//! `ingot_rt::wide` kernels, every other step the int8 ones.
 
 use super::ir::{QGraph, QKernel, QMapId, StepId};
 use super::quant::{self, to_requant, with_runtime_transform};
+use ingot_rt::wide::{self, TypedMap, WideOut};
 use ingot_rt::{MapRef, OutputQuant, PoolQuant, Requant};
 
 /// An input image in one of the forms the simulator accepts.
@@ -74,9 +79,10 @@ impl<'q> Simulator<'q> {
         let refs = q
             .maps
             .iter()
-            .map(|m| {
+            .enumerate()
+            .map(|(i, m)| {
                 let r = MapRef::new(off, m.shape.h, m.shape.w, m.shape.c);
-                off += m.shape.len();
+                off += m.shape.len() * q.value_bytes(QMapId(i as u32));
                 r
             })
             .collect();
@@ -97,8 +103,12 @@ impl<'q> Simulator<'q> {
                 q.maps.len()
             )));
         }
-        for (r, m) in refs.iter().zip(&q.maps) {
-            if (r.h, r.w, r.c) != (m.shape.h, m.shape.w, m.shape.c) || !r.fits(arena_len) {
+        for (i, (r, m)) in refs.iter().zip(&q.maps).enumerate() {
+            let t = TypedMap {
+                map: *r,
+                elem: q.elem(QMapId(i as u32)),
+            };
+            if (r.h, r.w, r.c) != (m.shape.h, m.shape.w, m.shape.c) || !t.fits(arena_len) {
                 return Err(SimError::Layout(format!(
                     "map `{}` {}: {r:?} does not match it or leaves the arena",
                     m.name, m.shape
@@ -204,6 +214,9 @@ impl<'q> Simulator<'q> {
 
     fn step(&mut self, id: StepId) -> Result<(), ingot_rt::Error> {
         let s = self.q.step(id);
+        if self.q.step_is_wide(s) {
+            return self.wide_step(id);
+        }
         let out = self.refs[s.output.index()];
         let input = self.refs[s.inputs[0].index()];
         // `QGraph::verify` lets only a concatenation write a per-slice map,
@@ -300,8 +313,120 @@ impl<'q> Simulator<'q> {
         }
     }
 
-    /// The codes of a map after the last run, dense HWC.
+    /// A map as the wide kernels address it.
+    fn typed(&self, m: QMapId) -> TypedMap {
+        TypedMap {
+            map: self.refs[m.index()],
+            elem: self.q.elem(m),
+        }
+    }
+
+    /// Runs a step that reads or writes a wide map, with the kernels of
+    /// `ingot_rt::wide`; the parameters are those of the int8 step, the
+    /// clamp of a wide output its [`super::WideMap`]'s.
+    fn wide_step(&mut self, id: StepId) -> Result<(), ingot_rt::Error> {
+        let q = self.q;
+        let s = q.step(id);
+        let (input, output) = (self.typed(s.inputs[0]), self.typed(s.output));
+        let typed: Vec<TypedMap> = s.inputs.iter().map(|&m| self.typed(m)).collect();
+        let in_zp = q.map(s.inputs[0]).qp.channel(0).zero_point;
+        let out_zp = q.map(s.output).qp.channel(0).zero_point;
+        let out = |c: super::Clamp| match q.wide_map(s.output) {
+            Some(w) => WideOut {
+                zero_point: 0,
+                min: w.min,
+                max: w.max,
+            },
+            None => WideOut {
+                zero_point: out_zp,
+                min: c.min as i32,
+                max: c.max as i32,
+            },
+        };
+        let arena = &mut self.arena;
+        match &s.kernel {
+            QKernel::Conv2d(c) => {
+                let p = wide::WideConvParams {
+                    window: c.runtime_window(),
+                    groups: c.groups,
+                    input_zp: c.input_zp,
+                    out: out(c.clamp),
+                };
+                let rq = &self.requant[id.index()];
+                let t = match &c.transform {
+                    None => None,
+                    Some(t) if q.is_wide(s.inputs[0]) => Some(wide::WideTransform::Affine(wide_affine(t)?)),
+                    Some(t) => Some(wide::WideTransform::Int8(t.runtime())),
+                };
+                wide::conv2d_wide(
+                    arena,
+                    input,
+                    output,
+                    &c.weights,
+                    &c.bias,
+                    rq,
+                    &p,
+                    t.as_ref(),
+                    &mut self.patch,
+                )
+            }
+            QKernel::Linear(l) => wide::linear_wide(
+                arena,
+                input,
+                output,
+                &l.weights,
+                &l.bias,
+                &self.requant[id.index()],
+                out(l.clamp),
+            ),
+            QKernel::MaxPool(p) | QKernel::AvgPool(p) | QKernel::GlobalAvgPool(p) => {
+                let kind = match s.kernel {
+                    QKernel::MaxPool(_) => wide::PoolKind::Max,
+                    QKernel::AvgPool(_) => wide::PoolKind::Avg,
+                    _ => wide::PoolKind::Global,
+                };
+                let pq = wide::WidePool {
+                    in_zp,
+                    requant: p.requant.map(to_requant),
+                    out: out(p.clamp),
+                };
+                wide::pool_wide(arena, input, output, kind, &p.runtime_window(), &pq)
+            }
+            QKernel::Add(a) => {
+                let b = typed.get(1).copied().ok_or(ingot_rt::Error::ShapeMismatch)?;
+                let p = wide::WideAdd {
+                    a_zp: in_zp,
+                    b_zp: q.map(s.inputs[1]).qp.channel(0).zero_point,
+                    a_rq: to_requant(a.a),
+                    b_rq: to_requant(a.b),
+                    out_rq: to_requant(a.out),
+                    left_shift: a.left_shift,
+                    out: out(a.clamp),
+                };
+                wide::add_wide(arena, input, b, output, &p)
+            }
+            QKernel::Concat => {
+                let mut c0 = 0;
+                for &r in &typed {
+                    wide::copy_channels_wide(arena, r, output.channels(c0, r.map.c))?;
+                    c0 += r.map.c;
+                }
+                Ok(())
+            }
+            QKernel::Channel(t) => wide::channel_wide(arena, input, output, &wide_affine(t)?),
+        }
+    }
+
+    /// The codes of an int8 map after the last run, dense HWC (a wide
+    /// map's codes saturated to int8; see [`Self::map_values`]).
     pub fn map_hwc(&self, m: QMapId) -> Vec<i8> {
+        if self.q.is_wide(m) {
+            return self
+                .map_values(m)
+                .into_iter()
+                .map(|v| v.clamp(-128, 127) as i8)
+                .collect();
+        }
         let r = self.refs[m.index()];
         let mut v = vec![0; r.len()];
         // The layout was validated on construction, so this cannot fail.
@@ -309,15 +434,52 @@ impl<'q> Simulator<'q> {
         v
     }
 
+    /// The codes of any map (int8 or wide) after the last run, dense HWC.
+    pub fn map_values(&self, m: QMapId) -> Vec<i32> {
+        let t = self.typed(m);
+        let mut v = vec![0i16; t.map.len()];
+        let _ = wide::copy_out_wide(&self.arena, t, &mut v);
+        v.into_iter().map(i32::from).collect()
+    }
+
     /// A map after the last run, dequantized, in the float graph's
-    /// `[C, H, W]` order (for comparison with the float reference).
+    /// `[C, H, W]` order (for comparison with the float reference); wide
+    /// maps with their int16 codes.
     pub fn map_chw_f32(&self, m: QMapId) -> Vec<f32> {
         let map = self.q.map(m);
-        let hwc = self.map_hwc(m);
+        let hwc = self.map_values(m);
         let (c, hw) = (map.shape.c, map.shape.pixels());
         let qps = map.qp.per_channel(c);
         (0..hwc.len())
-            .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], qps[i / hw]))
+            .map(|i| {
+                let qp = qps[i / hw];
+                qp.scale * (hwc[(i % hw) * c + i / hw] - qp.zero_point) as f32
+            })
             .collect()
+    }
+}
+
+/// The int16-input form of an int8-domain affine transform: the same
+/// coefficients, clamp and zero points, evaluated in i64 over int16 codes.
+/// A table has no int16 form (`QGraph::verify` refuses it on a wide input).
+fn wide_affine(t: &super::ChannelTransform) -> Result<wide::WideAffine<'_>, ingot_rt::Error> {
+    match t {
+        super::ChannelTransform::Affine {
+            mul,
+            add,
+            shift,
+            zp_in,
+            zp_out,
+            clamp,
+        } => Ok(wide::WideAffine {
+            mul,
+            add,
+            shift: *shift,
+            zp_in: *zp_in,
+            zp_out: *zp_out,
+            min: clamp.min as i32,
+            max: clamp.max as i32,
+        }),
+        super::ChannelTransform::Table(_) => Err(ingot_rt::Error::BadParams),
     }
 }
