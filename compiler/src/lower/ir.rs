@@ -730,7 +730,9 @@ impl QGraph {
                 Some(qp) if qp.zero_point == 0 => {}
                 _ => return Err(err(w.map, "must be symmetric (zero point 0) per tensor")),
             }
-            if !(-32768..=32767).contains(&w.min) || !(-32768..=32767).contains(&w.max) || w.min > w.max
+            if !(-32768..=32767).contains(&w.min)
+                || !(-32768..=32767).contains(&w.max)
+                || w.min > w.max
             {
                 return Err(err(w.map, "clamp outside int16"));
             }
@@ -742,18 +744,30 @@ impl QGraph {
             let in_wide = s.inputs.first().is_some_and(|&m| self.is_wide(m));
             let ok = match &s.kernel {
                 // A copy keeps codes: one element type on both sides.
-                QKernel::Concat => s.inputs.iter().all(|&m| self.is_wide(m) == self.is_wide(s.output)),
+                QKernel::Concat => s
+                    .inputs
+                    .iter()
+                    .all(|&m| self.is_wide(m) == self.is_wide(s.output)),
                 // The int8 → int8 transforms read an int8 map or, affine,
                 // an int16 one; a channel step writes int8.
                 QKernel::Channel(t) => {
                     !self.is_wide(s.output) && !(in_wide && matches!(t, ChannelTransform::Table(_)))
                 }
-                QKernel::Conv2d(c) => !(in_wide && matches!(c.transform, Some(ChannelTransform::Table(_)))),
+                QKernel::Conv2d(c) => {
+                    !(in_wide && matches!(c.transform, Some(ChannelTransform::Table(_))))
+                }
                 _ => true,
             };
             if !ok {
-                let m = s.inputs.iter().chain([&s.output]).find(|&&m| self.is_wide(m));
-                return Err(err(*m.unwrap_or(&s.output), "read or written by a step that cannot handle it"));
+                let m = s
+                    .inputs
+                    .iter()
+                    .chain([&s.output])
+                    .find(|&&m| self.is_wide(m));
+                return Err(err(
+                    *m.unwrap_or(&s.output),
+                    "read or written by a step that cannot handle it",
+                ));
             }
         }
         Ok(())

@@ -324,6 +324,41 @@ pub fn fold_batch_norm(conv: &Conv2d, bn: &BatchNorm) -> (Vec<f32>, Vec<f32>) {
     (w, b)
 }
 
+/// The wide (int16) maps of `q` as report lines: name, shape, the bytes
+/// int16 adds before memory planning, and why (named with `--wide`, or
+/// widened with the concatenation region of a named layer). Empty for an
+/// all-int8 graph.
+pub fn wide_table(q: &QGraph) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    if q.wide.is_empty() {
+        return s;
+    }
+    let extra: usize = q.wide.iter().map(|w| q.map(w.map).shape.len()).sum();
+    let _ = writeln!(
+        s,
+        "int16 maps (--wide): {} map(s), +{} B before memory planning",
+        q.wide.len(),
+        crate::util::group_digits(extra as u64)
+    );
+    for w in &q.wide {
+        let m = q.map(w.map);
+        let why = if m.name == w.because {
+            "named".to_string()
+        } else {
+            format!("concatenation region of `{}`", w.because)
+        };
+        let _ = writeln!(
+            s,
+            "  {:<18} {:>12}  +{:>7} B  {why}",
+            m.name,
+            m.shape.to_string(),
+            crate::util::group_digits(m.shape.len() as u64)
+        );
+    }
+    s
+}
+
 /// RAM the pre-activation input transforms avoid: the int8 batch-norm(-ReLU)
 /// maps that would otherwise be stored before each fused convolution.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]

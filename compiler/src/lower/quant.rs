@@ -55,6 +55,14 @@ pub fn dequantize(q: i8, qp: QParams) -> f32 {
     qp.scale * (q as i32 - qp.zero_point) as f32
 }
 
+/// A real value rounded to a code of a wide (int16) map and back:
+/// `scale · clamp(round(v / scale) + zero_point, -32768, 32767) − zero_point`.
+pub fn fake_wide(v: f32, qp: QParams) -> f32 {
+    let q = (round_half_up(v as f64 / qp.scale as f64) + qp.zero_point as f64)
+        .clamp(-32768.0, 32767.0) as i32;
+    qp.scale * (q - qp.zero_point) as f32
+}
+
 /// A real multiplier in the runtime's fixed-point form, or `None` when it is
 /// not representable (non-finite or `|m| >= 2^30`).
 ///

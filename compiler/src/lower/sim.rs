@@ -355,7 +355,9 @@ impl<'q> Simulator<'q> {
                 let rq = &self.requant[id.index()];
                 let t = match &c.transform {
                     None => None,
-                    Some(t) if q.is_wide(s.inputs[0]) => Some(wide::WideTransform::Affine(wide_affine(t)?)),
+                    Some(t) if q.is_wide(s.inputs[0]) => {
+                        Some(wide::WideTransform::Affine(wide_affine(t)?))
+                    }
                     Some(t) => Some(wide::WideTransform::Int8(t.runtime())),
                 };
                 wide::conv2d_wide(
@@ -393,7 +395,10 @@ impl<'q> Simulator<'q> {
                 wide::pool_wide(arena, input, output, kind, &p.runtime_window(), &pq)
             }
             QKernel::Add(a) => {
-                let b = typed.get(1).copied().ok_or(ingot_rt::Error::ShapeMismatch)?;
+                let b = typed
+                    .get(1)
+                    .copied()
+                    .ok_or(ingot_rt::Error::ShapeMismatch)?;
                 let p = wide::WideAdd {
                     a_zp: in_zp,
                     b_zp: q.map(s.inputs[1]).qp.channel(0).zero_point,

@@ -185,7 +185,9 @@ impl Builder<'_> {
             .first()
             .map(|q| q.per_channel(g.shape(read[0]).c))
             .unwrap_or_default();
-        let in_wide = inputs.first().is_some_and(|q| self.wide.iter().any(|w| w.map == *q));
+        let in_wide = inputs
+            .first()
+            .is_some_and(|q| self.wide.iter().any(|w| w.map == *q));
         // The largest distance of two input codes (the transforms' bound).
         let span = if in_wide { 65535.0 } else { 255.0 };
         // A pooling passes per-channel parameters on unchanged.
@@ -227,11 +229,11 @@ impl Builder<'_> {
                             span,
                         )
                         .ok_or_else(|| LowerError::Multiplier {
-                                    layer: g.layer(p.bn).name.clone(),
-                                    op: "batch_norm",
-                                    what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
-                                    value: max_ratio(&ab, &in_channels, dom),
-                                })?;
+                            layer: g.layer(p.bn).name.clone(),
+                            op: "batch_norm",
+                            what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
+                            value: max_ratio(&ab, &in_channels, dom),
+                        })?;
                         (Some(t), dom)
                     }
                 };
@@ -313,9 +315,8 @@ impl Builder<'_> {
                     .as_ref()
                     .map_or_else(|| vec![0.0; lin.out_features], |t| t.data.clone());
                 let bias = shifted(ranges, &layer.name, bias);
-                let (bias, requant) = self.bias_and_requant(
-                    id, &qw, &bias, in_qp[0], &out_q, src, out_shape, in_wide,
-                )?;
+                let (bias, requant) = self
+                    .bias_and_requant(id, &qw, &bias, in_qp[0], &out_q, src, out_shape, in_wide)?;
                 QKernel::Linear(QLinear {
                     out_features: lin.out_features,
                     in_features: lin.in_features,
