@@ -33,4 +33,5 @@ mod reference_vs_candle;
 mod sensitivity;
 mod slices;
 mod stats;
+mod wide;
 mod zoo_reference;

@@ -1,0 +1,276 @@
+//! int16 ("wide") layers on the demo network (issue 16 §4): what `--wide`
+//! widens, what it refuses, what the integer simulator then measures
+//! against the float reference on the demo's evaluation images, and how
+//! `auto:N` follows the sensitivity ranking.
+
+use ingot_compiler::agree::mixed::Mixed;
+use ingot_compiler::agree::sensitivity::measure_inputs;
+use ingot_compiler::calibrate::ImageSet;
+use ingot_compiler::codegen::WeightForm;
+use ingot_compiler::driver::{self, WideChoice};
+use ingot_compiler::graph::Graph;
+use ingot_compiler::lower::{lower, LowerError, LowerOptions, QGraph, SimInput, Simulator};
+use ingot_compiler::ranges::Ranges;
+use ingot_compiler::reference::Reference;
+use std::path::PathBuf;
+
+fn demo() -> (Graph, Ranges, PathBuf) {
+    let root = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../examples/demo");
+    let g = ingot_compiler::load(&root.join("model/brackets.graph.json")).unwrap();
+    let r = Ranges::load(&g, &root.join("model/brackets.ranges.json"), None).unwrap();
+    (g, r, root.join("data"))
+}
+
+fn wide(names: &[&str]) -> LowerOptions {
+    LowerOptions {
+        wide: names.iter().map(|s| s.to_string()).collect(),
+        ..LowerOptions::default()
+    }
+}
+
+fn db(sig: f64, noise: f64) -> f64 {
+    10.0 * (sig / noise).log10()
+}
+
+/// Per stored map SQNR (dB), logit SQNR, largest logit error and top-1
+/// hits against labels, of `q` on every `step`-th evaluation image.
+struct Figures {
+    maps: Vec<(String, f64)>,
+    logit_db: f64,
+    max_err: f32,
+    hits: usize,
+    n: usize,
+}
+
+fn figures(g: &Graph, q: &QGraph, dir: &std::path::Path, step: usize) -> Figures {
+    let images = ImageSet::open(&dir.join("eval"), g).unwrap();
+    let reference = Reference::new(g);
+    let mut sim = Simulator::new(q);
+    let mut sums = vec![(0f64, 0f64); q.maps.len()];
+    let (mut logit, mut max_err, mut hits, mut n) = ((0f64, 0f64), 0f32, 0, 0);
+    for i in (0..images.len()).step_by(step) {
+        let s = images.load(i).unwrap();
+        let mut float = vec![Vec::new(); g.map_count()];
+        let out = reference
+            .run_with(&s.input, |m, v| float[m.index()] = v.to_vec())
+            .unwrap();
+        match &s.pixels {
+            Some(p) => sim.run(SimInput::Pixels(p)).unwrap(),
+            None => sim.run(SimInput::Chw(&s.input)).unwrap(),
+        };
+        for (k, m) in q.maps.iter().enumerate() {
+            let x = &float[m.float_map.index()];
+            let y = sim.map_chw_f32(ingot_compiler::lower::QMapId(k as u32));
+            for (a, b) in x.iter().zip(&y) {
+                sums[k].0 += (*a as f64).powi(2);
+                sums[k].1 += (*a as f64 - *b as f64).powi(2);
+            }
+        }
+        let y = sim.map_chw_f32(q.output);
+        for (a, b) in out.iter().zip(&y) {
+            logit.0 += (*a as f64).powi(2);
+            logit.1 += (*a as f64 - *b as f64).powi(2);
+            max_err = max_err.max((a - b).abs());
+        }
+        let top = ingot_compiler::measure::argmax_f32(&y);
+        hits += (s.label == Some(top)) as usize;
+        n += 1;
+    }
+    Figures {
+        maps: q
+            .maps
+            .iter()
+            .zip(&sums)
+            .skip(1)
+            .map(|(m, &(s, e))| (m.name.clone(), db(s, e)))
+            .collect(),
+        logit_db: db(logit.0, logit.1),
+        max_err,
+        hits,
+        n,
+    }
+}
+
+fn sqnr(f: &Figures, name: &str) -> f64 {
+    f.maps.iter().find(|(n, _)| n == name).unwrap().1
+}
+
+/// `--wide t1.conv` (the demo's lowest layer in the README's fidelity
+/// table): only that map becomes int16, symmetric per tensor with
+/// `scale = max|range| / 32767` (Jacob et al. 2018, §2.1 with zero point
+/// 0); its SQNR against float rises and the top-1 accuracy on the
+/// labelled evaluation images does not fall.
+#[test]
+fn widening_the_weakest_layer_raises_its_sqnr_and_keeps_accuracy() {
+    let (g, r, data) = demo();
+    let q8 = lower(&g, &r, &LowerOptions::default()).unwrap();
+    let q16 = lower(&g, &r, &wide(&["t1.conv"])).unwrap();
+    assert!(q8.wide.is_empty());
+    assert_eq!(q16.verify(), Ok(()));
+    assert_eq!(q16.wide.len(), 1);
+    let w = &q16.wide[0];
+    let m = q16.map(w.map);
+    assert_eq!(
+        (m.name.as_str(), w.because.as_str()),
+        ("t1.conv", "t1.conv")
+    );
+    let qp = m.qp.tensor().unwrap();
+    let range = r.maps[m.float_map.index()];
+    assert_eq!(qp.zero_point, 0);
+    let want = range.min.abs().max(range.max.abs()) / 32767.0;
+    assert!(
+        (qp.scale - want).abs() <= want * 1e-6,
+        "{} vs {want}",
+        qp.scale
+    );
+    // No activation after t1.conv: the whole int16 range.
+    assert_eq!((w.min, w.max), (-32768, 32767));
+
+    let (a, b) = (figures(&g, &q8, &data, 2), figures(&g, &q16, &data, 2));
+    let (s8, s16) = (sqnr(&a, "t1.conv"), sqnr(&b, "t1.conv"));
+    eprintln!(
+        "t1.conv {s8:.1} -> {s16:.1} dB; logits {:.1} -> {:.1} dB, max error {:.3} -> {:.3}; top-1 {}/{} -> {}/{}",
+        a.logit_db, b.logit_db, a.max_err, b.max_err, a.hits, a.n, b.hits, b.n
+    );
+    assert!(s16 >= s8 + 1.0, "t1.conv: {s8:.2} -> {s16:.2} dB");
+    assert!(b.logit_db >= a.logit_db - 0.5);
+    assert!(b.hits >= a.hits, "{} -> {} of {}", a.hits, b.hits, a.n);
+}
+
+/// A member of a concatenation region widens the whole region (members and
+/// concatenation outputs), each reported with the layer that caused it; the
+/// graph verifies, the simulator runs it, and the plan sizes the int16
+/// buffers at two bytes a value.
+#[test]
+fn a_region_member_widens_its_region() {
+    let (g, r, data) = demo();
+    let q = lower(&g, &r, &wide(&["b2.l0.conv"])).unwrap();
+    assert_eq!(q.verify(), Ok(()));
+    let names: Vec<&str> = q.wide.iter().map(|w| q.map(w.map).name.as_str()).collect();
+    assert_eq!(
+        names,
+        [
+            "t1.pool",
+            "b2.l0.conv",
+            "b2.cat1",
+            "b2.l1.conv",
+            "b2.cat2",
+            "b2.l2.conv",
+            "b2.cat3",
+            "b2.l3.conv",
+            "b2.cat4"
+        ]
+    );
+    assert!(q.wide.iter().all(|w| w.because == "b2.l0.conv"));
+    // One parameter set for the region (copy-free concatenation).
+    let qps: Vec<_> = q.wide.iter().map(|w| q.map(w.map).qp.clone()).collect();
+    assert!(qps.windows(2).all(|p| p[0] == p[1]));
+    let f = figures(&g, &q, &data, 8);
+    let f8 = figures(
+        &g,
+        &lower(&g, &r, &LowerOptions::default()).unwrap(),
+        &data,
+        8,
+    );
+    for m in ["b2.l0.conv", "b2.l3.conv", "b2.cat4"] {
+        assert!(
+            sqnr(&f, m) > sqnr(&f8, m),
+            "{m}: {} vs {}",
+            sqnr(&f, m),
+            sqnr(&f8, m)
+        );
+    }
+    let (_, p8) =
+        driver::lower_and_plan(&g, &r, &LowerOptions::default(), WeightForm::Int8).unwrap();
+    let (q16, p16) =
+        driver::lower_and_plan(&g, &r, &wide(&["b2.l0.conv"]), WeightForm::Int8).unwrap();
+    assert_eq!(q16.wide.len(), 9);
+    // The region's buffer (56 × 16 × 16 values) doubles to 28,672 B, which
+    // stays below the peak of the first block (73,728 B).
+    assert!(
+        p16.arena_bytes >= p8.arena_bytes,
+        "{} vs {}",
+        p16.arena_bytes,
+        p8.arena_bytes
+    );
+    // t1.conv at int16 (24 × 32 × 32 × 2 = 49,152 B) is live with its
+    // input, the first block's region (48 × 32 × 32 = 49,152 B).
+    let (_, pt) = driver::lower_and_plan(&g, &r, &wide(&["t1.conv"]), WeightForm::Int8).unwrap();
+    assert!(pt.arena_bytes >= 2 * 49_152, "{}", pt.arena_bytes);
+}
+
+/// Names that cannot be widened are refused, naming the layer.
+#[test]
+fn refusals_name_the_layer() {
+    let (g, r, _) = demo();
+    for (name, says) in [
+        ("no.such", "no layer of that name"),
+        ("b1.l0.bn", "no output map of its own"),
+        ("t1.relu", "no output map of its own"),
+        ("fc", "network's output"),
+    ] {
+        let e = lower(&g, &r, &wide(&[name])).unwrap_err();
+        assert!(matches!(e, LowerError::Wide { .. }), "{name}: {e}");
+        let msg = e.to_string();
+        assert!(msg.contains(name) && msg.contains(says), "{name}: {msg}");
+    }
+    assert!("auto:0".parse::<WideChoice>().is_err());
+    assert_eq!("auto:2".parse::<WideChoice>(), Ok(WideChoice::Auto(2)));
+    assert_eq!(
+        "a, b".parse::<WideChoice>(),
+        Ok(WideChoice::Layers(vec!["a".into(), "b".into()]))
+    );
+}
+
+/// `auto:N` takes the first N rows of the sensitivity ranking (lowest
+/// logit SQNR with only that layer in int8), measured on the all-int8
+/// network; the fake-quantized runner with a wide map still tracks the
+/// integer simulator.
+#[test]
+fn auto_takes_the_head_of_the_sensitivity_ranking() {
+    let (g, r, data) = demo();
+    let images = ImageSet::open(&data.join("eval"), &g).unwrap();
+    let inputs: Vec<Vec<f32>> = (0..images.len())
+        .step_by(16)
+        .map(|i| images.load(i).unwrap().input)
+        .collect();
+    let q8 = lower(&g, &r, &LowerOptions::default()).unwrap();
+    let s = measure_inputs(&Mixed::new(&g, &q8, &r), &inputs);
+    let picked = driver::wide_layers(&WideChoice::Auto(2), Some(&s), &q8).unwrap();
+    let head: Vec<String> = s
+        .rows
+        .iter()
+        // The input's quantization and the network's output stay int8.
+        .filter(|r| r.name != "input" && r.name != "fc")
+        .take(2)
+        .map(|r| r.name.clone())
+        .collect();
+    assert_eq!(picked, head, "ranking {:?}", s.rows);
+    let too_many = driver::wide_layers(&WideChoice::Auto(1000), Some(&s), &q8);
+    assert!(too_many.unwrap_err().to_string().contains("auto:1000"));
+    assert!(driver::wide_layers(&WideChoice::Auto(1), None, &q8).is_err());
+
+    let q = lower(&g, &r, &wide(&["t1.conv"])).unwrap();
+    let mixed = Mixed::new(&g, &q, &r);
+    let mut sim = Simulator::new(&q);
+    let (mut to_sim, mut to_float) = ((0f64, 0f64), (0f64, 0f64));
+    let reference = Reference::new(&g);
+    for x in &inputs {
+        sim.run(SimInput::Chw(x)).unwrap();
+        let int = sim.map_chw_f32(q.output);
+        let fake = mixed.run(x, &|_| true, |_, _| {});
+        let float = reference.run_with(x, |_, _| {}).unwrap();
+        for ((a, b), f) in int.iter().zip(&fake).zip(&float) {
+            to_sim = (
+                to_sim.0 + (*a as f64).powi(2),
+                to_sim.1 + (*a as f64 - *b as f64).powi(2),
+            );
+            to_float = (
+                to_float.0 + (*f as f64).powi(2),
+                to_float.1 + (*f as f64 - *a as f64).powi(2),
+            );
+        }
+    }
+    let (sim_db, float_db) = (db(to_sim.0, to_sim.1), db(to_float.0, to_float.1));
+    assert!(sim_db >= float_db + 6.0, "{sim_db:.1} vs {float_db:.1}");
+}
