@@ -751,7 +751,8 @@ impl QGraph {
                 // The int8 → int8 transforms read an int8 map or, affine,
                 // an int16 one; a channel step writes int8.
                 QKernel::Channel(t) => {
-                    !self.is_wide(s.output) && !(in_wide && matches!(t, ChannelTransform::Table(_)))
+                    let table = matches!(t, ChannelTransform::Table(_));
+                    !(self.is_wide(s.output) || in_wide && table)
                 }
                 QKernel::Conv2d(c) => {
                     !(in_wide && matches!(c.transform, Some(ChannelTransform::Table(_))))
