@@ -164,6 +164,11 @@ pub enum CodegenError {
     /// The camera does not fit the network's input or the kernel's limits.
     #[error(transparent)]
     Camera(#[from] crate::camera::CameraError),
+    /// The graph has int16 (`--wide`) maps, which the generator does not
+    /// write yet: the kernels (`ingot_rt::wide`), the lowering and the
+    /// simulator have them, the generated module not.
+    #[error("`{0}` is an int16 (--wide) map: generated modules have no int16 layers yet (calibrate and plan measure them)")]
+    Wide(String),
 }
 
 pub(crate) use crate::util::{fnv1a, FNV_BASIS};
@@ -205,6 +210,9 @@ pub fn is_module_name(s: &str) -> bool {
 pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated, CodegenError> {
     if !is_module_name(&opt.module) {
         return Err(CodegenError::ModuleName(opt.module.clone()));
+    }
+    if let Some(w) = q.wide.first() {
+        return Err(CodegenError::Wide(q.map(w.map).name.clone()));
     }
     if let Some(cam) = &opt.camera {
         camera::params(q, cam)?;

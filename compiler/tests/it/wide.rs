@@ -274,3 +274,14 @@ fn auto_takes_the_head_of_the_sensitivity_ranking() {
     let (sim_db, float_db) = (db(to_sim.0, to_sim.1), db(to_float.0, to_float.1));
     assert!(sim_db >= float_db + 6.0, "{sim_db:.1} vs {float_db:.1}");
 }
+
+/// The generator refuses a graph with int16 maps (it has no int16 calls
+/// yet) rather than writing a module that reads them as int8.
+#[test]
+fn generation_refuses_wide_maps() {
+    let (g, r, _) = demo();
+    let (q, p) = driver::lower_and_plan(&g, &r, &wide(&["t1.conv"]), WeightForm::Int8).unwrap();
+    let opts = driver::gen_options("demo", None, WeightForm::Int8, None, String::new());
+    let e = ingot_compiler::codegen::generate(&q, &driver::schedule_of(&q, &p), &opts).unwrap_err();
+    assert!(e.to_string().contains("t1.conv"), "{e}");
+}
