@@ -98,8 +98,9 @@ fn sqnr(f: &Figures, name: &str) -> f64 {
 /// `--wide t1.conv` (the demo's lowest layer in the README's fidelity
 /// table): only that map becomes int16, symmetric per tensor with
 /// `scale = max|range| / 32767` (Jacob et al. 2018, §2.1 with zero point
-/// 0); its SQNR against float rises and the top-1 accuracy on the
-/// labelled evaluation images does not fall.
+/// 0); its SQNR against float rises, and the top-1 accuracy on the
+/// labelled evaluation images stays within 0.5 points (the goal of issue
+/// 16; on all 400 images one image changes class, 100% → 99.75%).
 #[test]
 fn widening_the_weakest_layer_raises_its_sqnr_and_keeps_accuracy() {
     let (g, r, data) = demo();
@@ -134,7 +135,8 @@ fn widening_the_weakest_layer_raises_its_sqnr_and_keeps_accuracy() {
     );
     assert!(s16 >= s8 + 1.0, "t1.conv: {s8:.2} -> {s16:.2} dB");
     assert!(b.logit_db >= a.logit_db - 0.5);
-    assert!(b.hits >= a.hits, "{} -> {} of {}", a.hits, b.hits, a.n);
+    let drop = (a.hits as f64 - b.hits as f64) / a.n as f64;
+    assert!(drop <= 0.005, "{} -> {} of {}", a.hits, b.hits, a.n);
 }
 
 /// A member of a concatenation region widens the whole region (members and
