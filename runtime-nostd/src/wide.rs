@@ -434,12 +434,46 @@ pub struct WideConvParams {
     pub out: WideOut,
 }
 
+/// Int8 weights as a slice of `i8`, or as the bytes of a weights file
+/// (each the two's complement of a weight), read as they are.
+#[derive(Debug, Clone, Copy)]
+pub enum WideWeights<'a> {
+    /// `i8` weights.
+    I8(&'a [i8]),
+    /// Weights-file bytes.
+    Bytes(&'a [u8]),
+}
+
+impl WideWeights<'_> {
+    const fn len(&self) -> usize {
+        match self {
+            WideWeights::I8(w) => w.len(),
+            WideWeights::Bytes(w) => w.len(),
+        }
+    }
+
+    /// `Σ|w|` over `[from, from + n)` (in range: the caller checked it).
+    const fn abs_sum(&self, from: usize, n: usize) -> i64 {
+        let mut s: i64 = 0;
+        let mut i = from;
+        while i < from + n {
+            let w = match self {
+                WideWeights::I8(w) => w[i] as i64,
+                WideWeights::Bytes(w) => w[i] as i8 as i64,
+            };
+            s += if w < 0 { -w } else { w };
+            i += 1;
+        }
+        s
+    }
+}
+
 /// A [`conv2d_wide`] call that passed its checks.
 #[derive(Debug, Clone, Copy)]
 pub struct WideConvArgs<'a> {
     input: TypedMap,
     output: TypedMap,
-    weights: &'a [i8],
+    weights: WideWeights<'a>,
     bias: &'a [i32],
     requant: &'a [Requant],
     p: WideConvParams,
@@ -462,7 +496,7 @@ pub const fn check_conv_wide<'a>(
     patch_len: usize,
     input: TypedMap,
     output: TypedMap,
-    weights: &'a [i8],
+    weights: WideWeights<'a>,
     bias: &'a [i32],
     requant: &'a [Requant],
     p: WideConvParams,
@@ -510,7 +544,14 @@ pub const fn check_conv_wide<'a>(
             if !a.is_valid_for(ci) || a.zp_out != p.input_zp {
                 return Err(Error::BadParams);
             }
-            32768
+            // The patch holds clamped values and the padding value.
+            let (lo, hi, z) = (
+                a.min.unsigned_abs(),
+                a.max.unsigned_abs(),
+                a.zp_out.unsigned_abs(),
+            );
+            let m = if lo > hi { lo } else { hi };
+            (if m > z { m } else { z }) as i64
         }
     };
     if !Elem::I16.holds(p.input_zp) {
@@ -519,8 +560,9 @@ pub const fn check_conv_wide<'a>(
     let mut acc64 = false;
     let mut o = 0;
     while o < co {
-        let (row, _) = weights.split_at(o * k).1.split_at(k);
-        if wide_acc_worst_case(row, bias[o], in_max) >= 1i64 << 31 {
+        let b = bias[o] as i64;
+        let worst = (if b < 0 { -b } else { b }) + in_max * weights.abs_sum(o * k, k);
+        if worst >= 1i64 << 31 {
             acc64 = true;
         }
         o += 1;
@@ -573,7 +615,7 @@ pub fn conv2d_wide(
         patch.len(),
         input,
         output,
-        weights,
+        WideWeights::I8(weights),
         bias,
         requant,
         *p,
@@ -586,7 +628,7 @@ pub fn conv2d_wide(
 /// The exact `Σ x·w` over `w.len()` terms in i64, as i32 dot products of
 /// at most [`I32_SAFE_TERMS`] terms each.
 #[inline(always)]
-fn dot_i64(x: &[i16], w: &[i8]) -> i64 {
+fn dot_i64<W: crate::dot::Wt>(x: &[i16], w: &[W]) -> i64 {
     let mut s: i64 = 0;
     for (xc, wc) in x.chunks(I32_SAFE_TERMS).zip(w.chunks(I32_SAFE_TERMS)) {
         s += dot_wide(xc, wc) as i64;
@@ -597,6 +639,18 @@ fn dot_i64(x: &[i16], w: &[i8]) -> i64 {
 /// Runs a checked wide convolution.
 #[inline(never)]
 pub fn conv_wide_run(arena: &mut [i8], a: &WideConvArgs<'_>, patch: &mut [i16]) {
+    match a.weights {
+        WideWeights::I8(w) => conv_wide_rows(arena, a, w, patch),
+        WideWeights::Bytes(w) => conv_wide_rows(arena, a, w, patch),
+    }
+}
+
+fn conv_wide_rows<W: crate::dot::Wt>(
+    arena: &mut [i8],
+    a: &WideConvArgs<'_>,
+    weights: &[W],
+    patch: &mut [i16],
+) {
     let (input, output, w) = (&a.input, &a.output, &a.p.window);
     let g = a.p.groups.max(1);
     let (cg, og) = (input.map.c / g, output.map.c / g);
@@ -640,7 +694,7 @@ pub fn conv_wide_run(arena: &mut [i8], a: &WideConvArgs<'_>, patch: &mut [i16]) 
                 for j in 0..og {
                     let o = gi * og + j;
                     let (Some(row), Some(&b), Some(&rq)) = (
-                        a.weights.get(o * k..o * k + k),
+                        weights.get(o * k..o * k + k),
                         a.bias.get(o),
                         a.requant.get(o),
                     ) else {
@@ -752,8 +806,36 @@ pub fn pool_wide(
     window: &Window,
     q: &WidePool,
 ) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
+    let a = check_pool_wide(arena.len(), input, output, kind, *window, *q)?;
+    pool_wide_run(arena, &a);
+    Ok(())
+}
+
+/// A [`pool_wide`] call that passed its checks.
+#[derive(Debug, Clone, Copy)]
+pub struct WidePoolArgs {
+    input: TypedMap,
+    output: TypedMap,
+    kind: PoolKind,
+    window: Window,
+    q: WidePool,
+}
+
+/// The checks of [`pool_wide`].
+pub const fn check_pool_wide(
+    arena_len: usize,
+    input: TypedMap,
+    output: TypedMap,
+    kind: PoolKind,
+    window: Window,
+    q: WidePool,
+) -> Result<WidePoolArgs, Error> {
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
     if !input.is_disjoint(&output) {
         return Err(Error::Overlap);
     }
@@ -767,9 +849,9 @@ pub fn pool_wide(
     if input.map.c != output.map.c {
         return Err(Error::ShapeMismatch);
     }
-    let w = match kind {
+    let window = match kind {
         PoolKind::Global => {
-            if output.map.h != 1 || output.map.w != 1 || input.map.pixels() == 0 {
+            if output.map.h != 1 || output.map.w != 1 || input.map.h * input.map.w == 0 {
                 return Err(Error::ShapeMismatch);
             }
             Window::square(1, 1, 0)
@@ -781,9 +863,22 @@ pub fn pool_wide(
             if !window.matches(input.map.h, input.map.w, output.map.h, output.map.w) {
                 return Err(Error::ShapeMismatch);
             }
-            *window
+            window
         }
     };
+    Ok(WidePoolArgs {
+        input,
+        output,
+        kind,
+        window,
+        q,
+    })
+}
+
+/// Runs a checked wide pooling.
+#[inline(never)]
+pub fn pool_wide_run(arena: &mut [i8], a: &WidePoolArgs) {
+    let (input, output, kind, w, q) = (a.input, a.output, a.kind, a.window, a.q);
     let finish = |v: i64| match q.requant {
         Some(r) => q.out.finish(scale_i64(r, v)),
         None => q.out.finish(v),
@@ -801,7 +896,7 @@ pub fn pool_wide(
             };
             put(arena, &output, output.value(0, 0, ch), v);
         }
-        return Ok(());
+        return;
     }
     let n = w.taps() as i64;
     for oy in 0..output.map.h {
@@ -848,7 +943,6 @@ pub fn pool_wide(
             }
         }
     }
-    Ok(())
 }
 
 /// Parameters of [`add_wide`]: the formula of
@@ -937,26 +1031,62 @@ pub fn channel_wide(
     output: TypedMap,
     t: &WideAffine<'_>,
 ) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
+    let a = check_channel_wide(arena.len(), input, output, *t)?;
+    channel_wide_run(arena, &a);
+    Ok(())
+}
+
+/// A [`channel_wide`] call that passed its checks.
+#[derive(Debug, Clone, Copy)]
+pub struct WideChannelArgs<'a> {
+    input: TypedMap,
+    output: TypedMap,
+    t: WideAffine<'a>,
+}
+
+/// The checks of [`channel_wide`].
+pub const fn check_channel_wide<'a>(
+    arena_len: usize,
+    input: TypedMap,
+    output: TypedMap,
+    t: WideAffine<'a>,
+) -> Result<WideChannelArgs<'a>, Error> {
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
     if !input.map.same_shape(&output.map) {
         return Err(Error::ShapeMismatch);
     }
-    if input != output && !input.is_disjoint(&output) {
+    let same = input.map.offset == output.map.offset
+        && input.map.stride == output.map.stride
+        && matches!(
+            (input.elem, output.elem),
+            (Elem::I8, Elem::I8) | (Elem::I16, Elem::I16)
+        );
+    if !same && !input.is_disjoint(&output) {
         return Err(Error::Overlap);
     }
     if !t.is_valid_for(input.map.c) || !output.elem.holds(t.min) || !output.elem.holds(t.max) {
         return Err(Error::BadParams);
     }
+    Ok(WideChannelArgs { input, output, t })
+}
+
+/// Runs a checked wide channel transform.
+#[inline(never)]
+pub fn channel_wide_run(arena: &mut [i8], a: &WideChannelArgs<'_>) {
+    let (input, output) = (a.input, a.output);
     for y in 0..output.map.h {
         for x in 0..output.map.w {
             for ch in 0..output.map.c {
-                let v = t.apply(ch, get(arena, &input, input.value(y, x, ch)));
+                let v = a.t.apply(ch, get(arena, &input, input.value(y, x, ch)));
                 put(arena, &output, output.value(y, x, ch), v);
             }
         }
     }
-    Ok(())
 }
 
 /// Copies the channels of `input` into `output` (same shape, same element
@@ -966,16 +1096,43 @@ pub fn copy_channels_wide(
     input: TypedMap,
     output: TypedMap,
 ) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
-    if !input.map.same_shape(&output.map) || input.elem != output.elem {
+    let a = check_copy_wide(arena.len(), input, output)?;
+    copy_wide_run(arena, &a);
+    Ok(())
+}
+
+/// The checks of [`copy_channels_wide`]; returns the two maps.
+pub const fn check_copy_wide(
+    arena_len: usize,
+    input: TypedMap,
+    output: TypedMap,
+) -> Result<(TypedMap, TypedMap), Error> {
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
+    let same_elem = matches!(
+        (input.elem, output.elem),
+        (Elem::I8, Elem::I8) | (Elem::I16, Elem::I16)
+    );
+    if !input.map.same_shape(&output.map) || !same_elem {
         return Err(Error::ShapeMismatch);
     }
-    if input == output {
-        return Ok(());
-    }
-    if !input.is_disjoint(&output) {
+    let same = input.map.offset == output.map.offset && input.map.stride == output.map.stride;
+    if !same && !input.is_disjoint(&output) {
         return Err(Error::Overlap);
+    }
+    Ok((input, output))
+}
+
+/// Runs a checked wide channel copy (nothing when input and output are
+/// the same map: a concatenation written in place).
+#[inline(never)]
+pub fn copy_wide_run(arena: &mut [i8], &(input, output): &(TypedMap, TypedMap)) {
+    if input == output {
+        return;
     }
     for y in 0..output.map.h {
         for x in 0..output.map.w {
@@ -985,7 +1142,6 @@ pub fn copy_channels_wide(
             }
         }
     }
-    Ok(())
 }
 
 /// Writes dense HWC int16 values into an int16 map (the network's input,
@@ -1030,4 +1186,131 @@ pub fn argmax_wide(values: &[i16]) -> usize {
         }
     }
     best
+}
+
+/// Checked forms of the int16 kernels for generated modules: each type is
+/// built only by a `const fn` that runs every check of its kernel against
+/// an arena of `A` bytes (and a patch of `P` values), as
+/// [`crate::checked`] does for the int8 kernels, and its `run` cannot fail.
+pub mod checked {
+    use super::*;
+
+    /// A checked [`conv2d_wide`] call.
+    #[derive(Clone, Copy)]
+    pub struct Conv2d<'a, const A: usize, const P: usize>(WideConvArgs<'a>);
+
+    impl<'a, const A: usize, const P: usize> Conv2d<'a, A, P> {
+        /// Runs every check of [`conv2d_wide`] (`i8` weights).
+        #[allow(clippy::too_many_arguments)]
+        pub const fn new(
+            input: TypedMap,
+            output: TypedMap,
+            weights: &'a [i8],
+            bias: &'a [i32],
+            requant: &'a [Requant],
+            p: WideConvParams,
+            transform: Option<WideTransform<'a>>,
+        ) -> Result<Self, Error> {
+            let w = WideWeights::I8(weights);
+            match check_conv_wide(A, P, input, output, w, bias, requant, p, transform) {
+                Ok(a) => Ok(Conv2d(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// [`Conv2d::new`] with the weights as weights-file bytes.
+        #[allow(clippy::too_many_arguments)]
+        pub const fn new_bytes(
+            input: TypedMap,
+            output: TypedMap,
+            weights: &'a [u8],
+            bias: &'a [i32],
+            requant: &'a [Requant],
+            p: WideConvParams,
+            transform: Option<WideTransform<'a>>,
+        ) -> Result<Self, Error> {
+            let w = WideWeights::Bytes(weights);
+            match check_conv_wide(A, P, input, output, w, bias, requant, p, transform) {
+                Ok(a) => Ok(Conv2d(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// True when the call sums in i64 (see the module docs).
+        pub const fn acc64(&self) -> bool {
+            self.0.acc64
+        }
+
+        /// The convolution; cannot fail.
+        pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
+            conv_wide_run(arena, &self.0, patch);
+        }
+    }
+
+    /// A checked [`pool_wide`] call.
+    #[derive(Clone, Copy)]
+    pub struct Pool<const A: usize>(WidePoolArgs);
+
+    impl<const A: usize> Pool<A> {
+        /// Runs every check of [`pool_wide`].
+        pub const fn new(
+            input: TypedMap,
+            output: TypedMap,
+            kind: PoolKind,
+            window: Window,
+            q: WidePool,
+        ) -> Result<Self, Error> {
+            match check_pool_wide(A, input, output, kind, window, q) {
+                Ok(a) => Ok(Pool(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// The pooling; cannot fail.
+        pub fn run(&self, arena: &mut [i8; A]) {
+            pool_wide_run(arena, &self.0);
+        }
+    }
+
+    /// A checked [`channel_wide`] call.
+    #[derive(Clone, Copy)]
+    pub struct Channel<'a, const A: usize>(WideChannelArgs<'a>);
+
+    impl<'a, const A: usize> Channel<'a, A> {
+        /// Runs every check of [`channel_wide`].
+        pub const fn new(
+            input: TypedMap,
+            output: TypedMap,
+            t: WideAffine<'a>,
+        ) -> Result<Self, Error> {
+            match check_channel_wide(A, input, output, t) {
+                Ok(a) => Ok(Channel(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// The transform; cannot fail.
+        pub fn run(&self, arena: &mut [i8; A]) {
+            channel_wide_run(arena, &self.0);
+        }
+    }
+
+    /// A checked [`copy_channels_wide`] call.
+    #[derive(Clone, Copy)]
+    pub struct Copy<const A: usize>((TypedMap, TypedMap));
+
+    impl<const A: usize> Copy<A> {
+        /// Runs every check of [`copy_channels_wide`].
+        pub const fn new(input: TypedMap, output: TypedMap) -> Result<Self, Error> {
+            match check_copy_wide(A, input, output) {
+                Ok(a) => Ok(Copy(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// The copy; cannot fail.
+        pub fn run(&self, arena: &mut [i8; A]) {
+            copy_wide_run(arena, &self.0);
+        }
+    }
 }

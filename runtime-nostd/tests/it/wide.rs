@@ -243,7 +243,7 @@ fn run_conv(cs: &ConvCase, force: Option<(i32, i8)>) -> (Vec<i32>, Vec<i32>, boo
         patch.len(),
         inp.map,
         outp.map,
-        &weights,
+        WideWeights::I8(&weights),
         &bias,
         &rq,
         p,
@@ -671,4 +671,79 @@ fn wide_views_and_refusals() {
         &mut [0; 2],
     );
     assert_eq!(r, Err(ingot_rt::Error::BadParams));
+}
+
+/// The checked forms, built in `static`s as a generated module builds them
+/// (so their checks run while rustc compiles this test), compute what the
+/// `Result`-returning kernels compute; a refused call is an error value.
+#[test]
+fn checked_forms_match_the_kernels() {
+    const A: usize = 64;
+    static W: [i8; 4] = [1, -2, 3, 127];
+    static WB: [u8; 4] = [1, 254, 3, 127];
+    static B: [i32; 2] = [5, -7];
+    static RQ: [Requant; 2] = [Requant::ONE, Requant::ONE];
+    const IN: TypedMap = TypedMap::i16(MapRef::new(0, 2, 2, 2));
+    const OUT: TypedMap = TypedMap::i16(MapRef::new(16, 2, 2, 2));
+    const P: WideConvParams = WideConvParams {
+        window: Window::square(1, 1, 0),
+        groups: 1,
+        input_zp: 0,
+        out: WideOut::linear(0, Elem::I16),
+    };
+    static K: checked::Conv2d<'static, A, 2> =
+        match checked::Conv2d::new(IN, OUT, &W, &B, &RQ, P, None) {
+            Ok(k) => k,
+            Err(e) => e.refuse(),
+        };
+    static KB: checked::Conv2d<'static, A, 2> =
+        match checked::Conv2d::new_bytes(IN, OUT, &WB, &B, &RQ, P, None) {
+            Ok(k) => k,
+            Err(e) => e.refuse(),
+        };
+    const Q: WidePool = WidePool {
+        in_zp: 0,
+        requant: None,
+        out: WideOut::linear(0, Elem::I16),
+    };
+    const POUT: TypedMap = TypedMap::i16(MapRef::new(40, 1, 1, 2));
+    static KP: checked::Pool<A> =
+        match checked::Pool::new(IN, POUT, PoolKind::Max, Window::square(2, 2, 0), Q) {
+            Ok(k) => k,
+            Err(e) => e.refuse(),
+        };
+    static KC: checked::Copy<A> =
+        match checked::Copy::new(IN, TypedMap::i16(MapRef::new(44, 2, 2, 2))) {
+            Ok(k) => k,
+            Err(e) => e.refuse(),
+        };
+    let mut arena = [0i8; A];
+    let mut r = Lcg(3);
+    for i in 0..16 {
+        arena[i] = r.i8();
+    }
+    let mut want = arena;
+    conv2d_wide(&mut want, IN, OUT, &W, &B, &RQ, &P, None, &mut [0; 2]).unwrap();
+    pool_wide(
+        &mut want,
+        IN,
+        POUT,
+        PoolKind::Max,
+        &Window::square(2, 2, 0),
+        &Q,
+    )
+    .unwrap();
+    copy_channels_wide(&mut want, IN, TypedMap::i16(MapRef::new(44, 2, 2, 2))).unwrap();
+    let mut got = arena;
+    K.run(&mut got, &mut [0; 2]);
+    KP.run(&mut got);
+    KC.run(&mut got);
+    assert_eq!(got, want);
+    let mut bytes = arena;
+    KB.run(&mut bytes, &mut [0; 2]);
+    assert_eq!(bytes[16..32], want[16..32]);
+    assert!(!K.acc64());
+    // One byte short of the output: refused.
+    let r = checked::Conv2d::<'static, 31, 2>::new(IN, OUT, &W, &B, &RQ, P, None);
+    assert!(matches!(r, Err(ingot_rt::Error::MapOutOfBounds)));
 }
