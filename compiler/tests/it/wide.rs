@@ -287,3 +287,52 @@ fn generation_refuses_wide_maps() {
     let e = ingot_compiler::codegen::generate(&q, &driver::schedule_of(&q, &p), &opts).unwrap_err();
     assert!(e.to_string().contains("t1.conv"), "{e}");
 }
+
+/// `QGraph::verify` holds the wide maps to their rules, and a graph
+/// without them serializes as before (no `wide` key).
+#[test]
+fn verify_checks_wide_maps_and_int8_graphs_serialize_as_before() {
+    let (g, r, _) = demo();
+    let q8 = lower(&g, &r, &LowerOptions::default()).unwrap();
+    let json = serde_json::to_value(&q8).unwrap();
+    assert!(json.get("wide").is_none());
+    let q = lower(&g, &r, &wide(&["b2.l0.conv"])).unwrap();
+    assert!(serde_json::to_value(&q).unwrap()["wide"].is_array());
+
+    // The whole region moved to zero point 3 (so the concatenations still
+    // agree): not symmetric.
+    let mut bad = q.clone();
+    for w in q.wide.iter() {
+        if let ingot_compiler::lower::MapQuant::Tensor(p) = &mut bad.maps[w.map.index()].qp {
+            p.zero_point = 3;
+        }
+    }
+    assert!(bad
+        .verify()
+        .unwrap_err()
+        .to_string()
+        .contains("zero point 0"));
+
+    let mut bad = q.clone();
+    let first = bad.wide[0].clone();
+    bad.wide.push(first);
+    assert!(bad.verify().unwrap_err().to_string().contains("twice"));
+
+    let mut bad = q.clone();
+    bad.wide[1].max = 40_000;
+    assert!(bad.verify().unwrap_err().to_string().contains("int16"));
+
+    // A concatenation with an int8 input and an int16 output would copy
+    // codes of two widths.
+    let mut bad = q.clone();
+    bad.wide.retain(|w| bad_name(&q, w.map) != "b2.l1.conv");
+    assert!(bad
+        .verify()
+        .unwrap_err()
+        .to_string()
+        .contains("cannot handle"));
+}
+
+fn bad_name(q: &QGraph, m: ingot_compiler::lower::QMapId) -> String {
+    q.map(m).name.clone()
+}
