@@ -726,8 +726,46 @@ pub fn linear_wide(
     requant: &[Requant],
     out: WideOut,
 ) -> Result<(), Error> {
-    input.check(arena.len())?;
-    output.check(arena.len())?;
+    let a = check_linear_wide(
+        arena.len(),
+        input,
+        output,
+        WideWeights::I8(weights),
+        bias,
+        requant,
+        out,
+    )?;
+    linear_wide_run(arena, &a);
+    Ok(())
+}
+
+/// A [`linear_wide`] call that passed its checks.
+#[derive(Debug, Clone, Copy)]
+pub struct WideLinearArgs<'a> {
+    input: TypedMap,
+    output: TypedMap,
+    weights: WideWeights<'a>,
+    bias: &'a [i32],
+    requant: &'a [Requant],
+    out: WideOut,
+}
+
+/// The checks of [`linear_wide`].
+pub const fn check_linear_wide<'a>(
+    arena_len: usize,
+    input: TypedMap,
+    output: TypedMap,
+    weights: WideWeights<'a>,
+    bias: &'a [i32],
+    requant: &'a [Requant],
+    out: WideOut,
+) -> Result<WideLinearArgs<'a>, Error> {
+    if let Err(e) = input.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
+    }
     if !input.is_disjoint(&output) {
         return Err(Error::Overlap);
     }
@@ -738,6 +776,28 @@ pub fn linear_wide(
     if !crate::requant::all_valid(requant, n_out) || !out.is_valid_for(output.elem) {
         return Err(Error::BadParams);
     }
+    Ok(WideLinearArgs {
+        input,
+        output,
+        weights,
+        bias,
+        requant,
+        out,
+    })
+}
+
+/// Runs a checked wide linear layer.
+#[inline(never)]
+pub fn linear_wide_run(arena: &mut [i8], a: &WideLinearArgs<'_>) {
+    match a.weights {
+        WideWeights::I8(w) => linear_wide_rows(arena, a, w),
+        WideWeights::Bytes(w) => linear_wide_rows(arena, a, w),
+    }
+}
+
+fn linear_wide_rows<W: crate::dot::Wt>(arena: &mut [i8], a: &WideLinearArgs<'_>, weights: &[W]) {
+    let (input, output) = (&a.input, &a.output);
+    let (n_in, n_out) = (input.map.len(), output.map.len());
     let iw = input.map.w.max(1);
     let ic = input.map.c.max(1);
     let ow = output.map.w.max(1);
@@ -745,26 +805,25 @@ pub fn linear_wide(
     for o in 0..n_out {
         let (Some(row), Some(&b), Some(&rq)) = (
             weights.get(o * n_in..o * n_in + n_in),
-            bias.get(o),
-            requant.get(o),
+            a.bias.get(o),
+            a.requant.get(o),
         ) else {
-            return Ok(());
+            return;
         };
         let mut s = b as i64;
         for (i, &wv) in row.iter().enumerate() {
             let (px, ch) = (i / ic, i % ic);
-            let x = get(arena, &input, input.value(px / iw, px % iw, ch));
-            s += x as i64 * wv as i64;
+            let x = get(arena, input, input.value(px / iw, px % iw, ch));
+            s += x as i64 * wv.v() as i64;
         }
         let (px, ch) = (o / oc, o % oc);
         put(
             arena,
-            &output,
+            output,
             output.value(px / ow, px % ow, ch),
-            out.finish(scale_i64(rq, s)),
+            a.out.finish(scale_i64(rq, s)),
         );
     }
-    Ok(())
 }
 
 /// Quantization of a wide pooling: as [`PoolQuant`](crate::PoolQuant),
@@ -988,16 +1047,55 @@ pub fn add_wide(
     output: TypedMap,
     p: &WideAdd,
 ) -> Result<(), Error> {
-    for m in [&a, &b, &output] {
-        m.check(arena.len())?;
+    let args = check_add_wide(arena.len(), a, b, output, *p)?;
+    add_wide_run(arena, &args);
+    Ok(())
+}
+
+/// An [`add_wide`] call that passed its checks.
+#[derive(Debug, Clone, Copy)]
+pub struct WideAddArgs {
+    a: TypedMap,
+    b: TypedMap,
+    output: TypedMap,
+    p: WideAdd,
+}
+
+const fn same_typed(x: &TypedMap, y: &TypedMap) -> bool {
+    x.map.offset == y.map.offset
+        && x.map.stride == y.map.stride
+        && x.map.same_shape(&y.map)
+        && matches!(
+            (x.elem, y.elem),
+            (Elem::I8, Elem::I8) | (Elem::I16, Elem::I16)
+        )
+}
+
+/// The checks of [`add_wide`].
+pub const fn check_add_wide(
+    arena_len: usize,
+    a: TypedMap,
+    b: TypedMap,
+    output: TypedMap,
+    p: WideAdd,
+) -> Result<WideAddArgs, Error> {
+    if let Err(e) = a.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = b.check(arena_len) {
+        return Err(e);
+    }
+    if let Err(e) = output.check(arena_len) {
+        return Err(e);
     }
     if !a.map.same_shape(&output.map) || !b.map.same_shape(&output.map) {
         return Err(Error::ShapeMismatch);
     }
-    for i in [&a, &b] {
-        if *i != output && !i.is_disjoint(&output) {
-            return Err(Error::Overlap);
-        }
+    if !same_typed(&a, &output) && !a.is_disjoint(&output) {
+        return Err(Error::Overlap);
+    }
+    if !same_typed(&b, &output) && !b.is_disjoint(&output) {
+        return Err(Error::Overlap);
     }
     if !(a.elem.holds(p.a_zp)
         && b.elem.holds(p.b_zp)
@@ -1009,16 +1107,22 @@ pub fn add_wide(
     {
         return Err(Error::BadParams);
     }
+    Ok(WideAddArgs { a, b, output, p })
+}
+
+/// Runs a checked wide addition.
+#[inline(never)]
+pub fn add_wide_run(arena: &mut [i8], args: &WideAddArgs) {
+    let (a, b, output, p) = (&args.a, &args.b, &args.output, &args.p);
     for y in 0..output.map.h {
         for x in 0..output.map.w {
             for ch in 0..output.map.c {
-                let va = get(arena, &a, a.value(y, x, ch));
-                let vb = get(arena, &b, b.value(y, x, ch));
-                put(arena, &output, output.value(y, x, ch), p.apply(va, vb));
+                let va = get(arena, a, a.value(y, x, ch));
+                let vb = get(arena, b, b.value(y, x, ch));
+                put(arena, output, output.value(y, x, ch), p.apply(va, vb));
             }
         }
     }
-    Ok(())
 }
 
 /// A per-channel affine transform as a step of its own, between maps of
@@ -1244,6 +1348,73 @@ pub mod checked {
         /// The convolution; cannot fail.
         pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
             conv_wide_run(arena, &self.0, patch);
+        }
+    }
+
+    /// A checked [`linear_wide`] call.
+    #[derive(Clone, Copy)]
+    pub struct Linear<'a, const A: usize>(WideLinearArgs<'a>);
+
+    impl<'a, const A: usize> Linear<'a, A> {
+        /// Runs every check of [`linear_wide`] (`i8` weights).
+        pub const fn new(
+            input: TypedMap,
+            output: TypedMap,
+            weights: &'a [i8],
+            bias: &'a [i32],
+            requant: &'a [Requant],
+            out: WideOut,
+        ) -> Result<Self, Error> {
+            let w = WideWeights::I8(weights);
+            match check_linear_wide(A, input, output, w, bias, requant, out) {
+                Ok(a) => Ok(Linear(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// [`Linear::new`] with the weights as weights-file bytes.
+        pub const fn new_bytes(
+            input: TypedMap,
+            output: TypedMap,
+            weights: &'a [u8],
+            bias: &'a [i32],
+            requant: &'a [Requant],
+            out: WideOut,
+        ) -> Result<Self, Error> {
+            let w = WideWeights::Bytes(weights);
+            match check_linear_wide(A, input, output, w, bias, requant, out) {
+                Ok(a) => Ok(Linear(a)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// The layer; cannot fail.
+        pub fn run(&self, arena: &mut [i8; A]) {
+            linear_wide_run(arena, &self.0);
+        }
+    }
+
+    /// A checked [`add_wide`] call.
+    #[derive(Clone, Copy)]
+    pub struct Add<const A: usize>(WideAddArgs);
+
+    impl<const A: usize> Add<A> {
+        /// Runs every check of [`add_wide`].
+        pub const fn new(
+            a: TypedMap,
+            b: TypedMap,
+            output: TypedMap,
+            p: WideAdd,
+        ) -> Result<Self, Error> {
+            match check_add_wide(A, a, b, output, p) {
+                Ok(x) => Ok(Add(x)),
+                Err(e) => Err(e),
+            }
+        }
+
+        /// The addition; cannot fail.
+        pub fn run(&self, arena: &mut [i8; A]) {
+            add_wide_run(arena, &self.0);
         }
     }
 

@@ -74,6 +74,8 @@ pub enum Call<'a> {
         output: MapRef,
         t: &'a ChannelTransform,
     },
+    /// A step reading or writing an int16 map: `ingot_rt::wide`.
+    Wide(super::wide::WideCall<'a>),
 }
 
 /// The calls of one step (empty for an in-place concatenation).
@@ -85,12 +87,13 @@ pub struct StepCalls<'a> {
     pub calls: Vec<Call<'a>>,
 }
 
-/// The arena view of a map.
+/// The arena view of a map (an int16 map's offset in bytes, see
+/// [`super::wide::map_ref`]).
 pub fn map_ref(q: &QGraph, s: &Schedule, m: crate::lower::QMapId) -> MapRef {
-    let sh = q.map(m).shape;
-    let v = s.views[m.index()];
-    MapRef::strided(v.offset, sh.h, sh.w, sh.c, v.stride)
+    super::wide::map_ref(q, s, m)
 }
+
+pub use super::wide::trace_ref;
 
 /// `ingot_rt::Requant` of a multiplier.
 pub fn requant(m: Multiplier) -> Requant {
@@ -173,6 +176,15 @@ pub enum CallError {
     /// An accumulator could overflow `i32`.
     #[error("step `{0}`: an output channel's accumulator can exceed i32")]
     Accumulator(String),
+    /// A step touching an int16 map has parameters the int16 kernels
+    /// cannot take.
+    #[error("step `{step}` (int16): {error:?}")]
+    Wide {
+        /// Step name.
+        step: String,
+        /// What the kernels said.
+        error: ingot_rt::Error,
+    },
 }
 
 /// Gives every convolution the layer form of the module's `form`
@@ -221,6 +233,11 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
     let mut out = Vec::with_capacity(s.order.len());
     for &id in &s.order {
         let st = q.step(id);
+        if q.step_is_wide(st) {
+            let calls = super::wide::calls(q, s, id)?;
+            out.push(StepCalls { step: id, calls });
+            continue;
+        }
         let o = map_ref(q, s, st.output);
         // `QGraph::verify` (run before) lets only a concatenation write a
         // per-slice map, and only concatenations, channel steps and fused
@@ -410,6 +427,7 @@ pub fn run_call(
         Call::Channel { input, output, t } => {
             ingot_rt::channel_transform(arena, *input, *output, &rt_transform(t))
         }
+        Call::Wide(w) => w.run(arena, patch),
     }
 }
 
@@ -445,7 +463,7 @@ pub fn execute(
                 error,
             })?;
         }
-        let m = map_ref(q, s, q.step(sc.step).output);
+        let m = trace_ref(q, s, q.step(sc.step).output);
         let mut buf = vec![0i8; m.len()];
         ingot_rt::copy_out(&arena, m, &mut buf).map_err(|error| ExecError {
             step: sc.step,
@@ -472,7 +490,7 @@ pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), CallError> {
     }
     for (i, m) in q.maps.iter().enumerate() {
         let r = map_ref(q, s, crate::lower::QMapId(i as u32));
-        if !r.fits(s.arena_bytes) {
+        if !super::wide::fits(q, s, crate::lower::QMapId(i as u32), s.arena_bytes) {
             return Err(CallError::OutsideArena {
                 map: m.name.clone(),
                 arena: s.arena_bytes,
@@ -507,6 +525,10 @@ pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), CallError> {
         });
     }
     for st in &q.steps {
+        // The int16 kernels bound their sums themselves (i64 when needed).
+        if q.step_is_wide(st) {
+            continue;
+        }
         let (w, b, per) = match &st.kernel {
             QKernel::Conv2d(c) => (
                 &c.weights,

@@ -33,6 +33,7 @@ pub(crate) mod emit;
 pub(crate) mod names;
 pub mod output;
 pub mod report;
+pub(crate) mod wide;
 
 // The weight form and the schedule are the planner's (it sizes the patch
 // buffer for the form); re-exported under their former paths.
@@ -164,11 +165,6 @@ pub enum CodegenError {
     /// The camera does not fit the network's input or the kernel's limits.
     #[error(transparent)]
     Camera(#[from] crate::camera::CameraError),
-    /// The graph has int16 (`--wide`) maps, which the generator does not
-    /// write yet: the kernels (`ingot_rt::wide`), the lowering and the
-    /// simulator have them, the generated module not.
-    #[error("`{0}` is an int16 (--wide) map: generated modules have no int16 layers yet (calibrate and plan measure them)")]
-    Wide(String),
 }
 
 pub(crate) use crate::util::{fnv1a, FNV_BASIS};
@@ -199,6 +195,15 @@ pub fn interpret(
     calls::execute(q, s, &steps, input, trace).map_err(|e| kernel_error(q, e))
 }
 
+/// Every map's arena view under `s`, as the generated module addresses it
+/// (an int16 map's offset in bytes): the layout for
+/// [`Simulator::with_layout`](crate::lower::Simulator::with_layout).
+pub fn arena_refs(q: &QGraph, s: &Schedule) -> Vec<ingot_rt::MapRef> {
+    (0..q.maps.len())
+        .map(|i| wide::map_ref(q, s, crate::lower::QMapId(i as u32)))
+        .collect()
+}
+
 /// True for `[A-Za-z_][A-Za-z0-9_]*`.
 pub fn is_module_name(s: &str) -> bool {
     let mut c = s.chars();
@@ -210,9 +215,6 @@ pub fn is_module_name(s: &str) -> bool {
 pub fn generate(q: &QGraph, s: &Schedule, opt: &GenOptions) -> Result<Generated, CodegenError> {
     if !is_module_name(&opt.module) {
         return Err(CodegenError::ModuleName(opt.module.clone()));
-    }
-    if let Some(w) = q.wide.first() {
-        return Err(CodegenError::Wide(q.map(w.map).name.clone()));
     }
     if let Some(cam) = &opt.camera {
         camera::params(q, cam)?;

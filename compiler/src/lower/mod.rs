@@ -41,7 +41,7 @@ pub use ir::{
     QLinear, QMap, QMapId, QParams, QPool, QSlice, QStep, StepId, WideMap,
 };
 pub use quant::Activation;
-pub use sim::{SimError, SimInput, Simulator};
+pub use sim::{wide_op, SimError, SimInput, Simulator, WideOp};
 
 use crate::graph::{BatchNorm, Conv2d, Graph, LayerId, MapId, Op};
 use crate::ranges::Ranges;

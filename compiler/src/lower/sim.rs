@@ -322,104 +322,15 @@ impl<'q> Simulator<'q> {
     }
 
     /// Runs a step that reads or writes a wide map, with the kernels of
-    /// `ingot_rt::wide`; the parameters are those of the int8 step, the
-    /// clamp of a wide output its [`super::WideMap`]'s.
+    /// `ingot_rt::wide` and the parameters of [`wide_op`] (which the
+    /// generator's calls use too).
     fn wide_step(&mut self, id: StepId) -> Result<(), ingot_rt::Error> {
         let q = self.q;
         let s = q.step(id);
-        let (input, output) = (self.typed(s.inputs[0]), self.typed(s.output));
-        let typed: Vec<TypedMap> = s.inputs.iter().map(|&m| self.typed(m)).collect();
-        let in_zp = q.map(s.inputs[0]).qp.channel(0).zero_point;
-        let out_zp = q.map(s.output).qp.channel(0).zero_point;
-        let out = |c: super::Clamp| match q.wide_map(s.output) {
-            Some(w) => WideOut {
-                zero_point: 0,
-                min: w.min,
-                max: w.max,
-            },
-            None => WideOut {
-                zero_point: out_zp,
-                min: c.min as i32,
-                max: c.max as i32,
-            },
-        };
-        let arena = &mut self.arena;
-        match &s.kernel {
-            QKernel::Conv2d(c) => {
-                let p = wide::WideConvParams {
-                    window: c.runtime_window(),
-                    groups: c.groups,
-                    input_zp: c.input_zp,
-                    out: out(c.clamp),
-                };
-                let rq = &self.requant[id.index()];
-                let t = match &c.transform {
-                    None => None,
-                    Some(t) if q.is_wide(s.inputs[0]) => {
-                        Some(wide::WideTransform::Affine(wide_affine(t)?))
-                    }
-                    Some(t) => Some(wide::WideTransform::Int8(t.runtime())),
-                };
-                wide::conv2d_wide(
-                    arena,
-                    input,
-                    output,
-                    &c.weights,
-                    &c.bias,
-                    rq,
-                    &p,
-                    t.as_ref(),
-                    &mut self.patch,
-                )
-            }
-            QKernel::Linear(l) => wide::linear_wide(
-                arena,
-                input,
-                output,
-                &l.weights,
-                &l.bias,
-                &self.requant[id.index()],
-                out(l.clamp),
-            ),
-            QKernel::MaxPool(p) | QKernel::AvgPool(p) | QKernel::GlobalAvgPool(p) => {
-                let kind = match s.kernel {
-                    QKernel::MaxPool(_) => wide::PoolKind::Max,
-                    QKernel::AvgPool(_) => wide::PoolKind::Avg,
-                    _ => wide::PoolKind::Global,
-                };
-                let pq = wide::WidePool {
-                    in_zp,
-                    requant: p.requant.map(to_requant),
-                    out: out(p.clamp),
-                };
-                wide::pool_wide(arena, input, output, kind, &p.runtime_window(), &pq)
-            }
-            QKernel::Add(a) => {
-                let b = typed
-                    .get(1)
-                    .copied()
-                    .ok_or(ingot_rt::Error::ShapeMismatch)?;
-                let p = wide::WideAdd {
-                    a_zp: in_zp,
-                    b_zp: q.map(s.inputs[1]).qp.channel(0).zero_point,
-                    a_rq: to_requant(a.a),
-                    b_rq: to_requant(a.b),
-                    out_rq: to_requant(a.out),
-                    left_shift: a.left_shift,
-                    out: out(a.clamp),
-                };
-                wide::add_wide(arena, input, b, output, &p)
-            }
-            QKernel::Concat => {
-                let mut c0 = 0;
-                for &r in &typed {
-                    wide::copy_channels_wide(arena, r, output.channels(c0, r.map.c))?;
-                    c0 += r.map.c;
-                }
-                Ok(())
-            }
-            QKernel::Channel(t) => wide::channel_wide(arena, input, output, &wide_affine(t)?),
-        }
+        let op = wide_op(q, id)?;
+        let inputs: Vec<TypedMap> = s.inputs.iter().map(|&m| self.typed(m)).collect();
+        let output = self.typed(s.output);
+        op.run(&mut self.arena, &inputs, output, &mut self.patch)
     }
 
     /// The codes of an int8 map after the last run, dense HWC (a wide
@@ -462,6 +373,171 @@ impl<'q> Simulator<'q> {
             })
             .collect()
     }
+}
+
+/// The kernel and parameters of a step that reads or writes a wide map:
+/// the parameters of the int8 step, with the clamp of a wide output from
+/// its [`super::WideMap`]. The simulator runs it ([`WideOp::run`]) and the
+/// generator prints it, so the two cannot differ.
+#[derive(Debug, Clone)]
+#[non_exhaustive]
+pub enum WideOp<'q> {
+    /// `ingot_rt::wide::conv2d_wide`.
+    Conv {
+        /// The layer (weights, bias).
+        conv: &'q super::QConv,
+        /// Geometry, padding value, output clamp.
+        params: wide::WideConvParams,
+        /// Runtime multipliers.
+        requant: Vec<Requant>,
+        /// The fused input transform, in its int8 or int16 form.
+        transform: Option<wide::WideTransform<'q>>,
+    },
+    /// `ingot_rt::wide::linear_wide`.
+    Linear {
+        /// The layer (weights, bias).
+        lin: &'q super::QLinear,
+        /// Runtime multipliers.
+        requant: Vec<Requant>,
+        /// Output zero point and clamp.
+        out: WideOut,
+    },
+    /// `ingot_rt::wide::pool_wide`.
+    Pool {
+        /// Max, average or global average.
+        kind: wide::PoolKind,
+        /// The window (ignored for global pooling).
+        window: ingot_rt::Window,
+        /// Quantization.
+        q: wide::WidePool,
+    },
+    /// `ingot_rt::wide::add_wide`.
+    Add(wide::WideAdd),
+    /// `ingot_rt::wide::copy_channels_wide` of every input into its
+    /// channels of the output.
+    Concat,
+    /// `ingot_rt::wide::channel_wide`.
+    Channel(wide::WideAffine<'q>),
+}
+
+impl WideOp<'_> {
+    /// Runs the step on `arena`: `inputs` in the step's order, a
+    /// concatenation's inputs copied to consecutive channels of `output`.
+    pub fn run(
+        &self,
+        arena: &mut [i8],
+        inputs: &[TypedMap],
+        output: TypedMap,
+        patch: &mut [i16],
+    ) -> Result<(), ingot_rt::Error> {
+        let input = *inputs.first().ok_or(ingot_rt::Error::ShapeMismatch)?;
+        match self {
+            WideOp::Conv {
+                conv,
+                params,
+                requant,
+                transform,
+            } => wide::conv2d_wide(
+                arena,
+                input,
+                output,
+                &conv.weights,
+                &conv.bias,
+                requant,
+                params,
+                transform.as_ref(),
+                patch,
+            ),
+            WideOp::Linear { lin, requant, out } => {
+                wide::linear_wide(arena, input, output, &lin.weights, &lin.bias, requant, *out)
+            }
+            WideOp::Pool { kind, window, q } => {
+                wide::pool_wide(arena, input, output, *kind, window, q)
+            }
+            WideOp::Add(p) => {
+                let b = *inputs.get(1).ok_or(ingot_rt::Error::ShapeMismatch)?;
+                wide::add_wide(arena, input, b, output, p)
+            }
+            WideOp::Concat => {
+                let mut c0 = 0;
+                for &r in inputs {
+                    wide::copy_channels_wide(arena, r, output.channels(c0, r.map.c))?;
+                    c0 += r.map.c;
+                }
+                Ok(())
+            }
+            WideOp::Channel(t) => wide::channel_wide(arena, input, output, t),
+        }
+    }
+}
+
+/// The [`WideOp`] of step `id` (which reads or writes a wide map).
+pub fn wide_op(q: &QGraph, id: StepId) -> Result<WideOp<'_>, ingot_rt::Error> {
+    let s = q.step(id);
+    let first = *s.inputs.first().ok_or(ingot_rt::Error::ShapeMismatch)?;
+    let in_zp = q.map(first).qp.channel(0).zero_point;
+    let out_zp = q.map(s.output).qp.channel(0).zero_point;
+    let out = |c: super::Clamp| match q.wide_map(s.output) {
+        Some(w) => WideOut {
+            zero_point: 0,
+            min: w.min,
+            max: w.max,
+        },
+        None => WideOut {
+            zero_point: out_zp,
+            min: c.min as i32,
+            max: c.max as i32,
+        },
+    };
+    Ok(match &s.kernel {
+        QKernel::Conv2d(c) => WideOp::Conv {
+            conv: c,
+            params: wide::WideConvParams {
+                window: c.runtime_window(),
+                groups: c.groups,
+                input_zp: c.input_zp,
+                out: out(c.clamp),
+            },
+            requant: c.requant.iter().map(|&m| to_requant(m)).collect(),
+            transform: match &c.transform {
+                None => None,
+                Some(t) if q.is_wide(first) => Some(wide::WideTransform::Affine(wide_affine(t)?)),
+                Some(t) => Some(wide::WideTransform::Int8(t.runtime())),
+            },
+        },
+        QKernel::Linear(l) => WideOp::Linear {
+            lin: l,
+            requant: l.requant.iter().map(|&m| to_requant(m)).collect(),
+            out: out(l.clamp),
+        },
+        QKernel::MaxPool(p) | QKernel::AvgPool(p) | QKernel::GlobalAvgPool(p) => WideOp::Pool {
+            kind: match s.kernel {
+                QKernel::MaxPool(_) => wide::PoolKind::Max,
+                QKernel::AvgPool(_) => wide::PoolKind::Avg,
+                _ => wide::PoolKind::Global,
+            },
+            window: p.runtime_window(),
+            q: wide::WidePool {
+                in_zp,
+                requant: p.requant.map(to_requant),
+                out: out(p.clamp),
+            },
+        },
+        QKernel::Add(a) => {
+            let second = *s.inputs.get(1).ok_or(ingot_rt::Error::ShapeMismatch)?;
+            WideOp::Add(wide::WideAdd {
+                a_zp: in_zp,
+                b_zp: q.map(second).qp.channel(0).zero_point,
+                a_rq: to_requant(a.a),
+                b_rq: to_requant(a.b),
+                out_rq: to_requant(a.out),
+                left_shift: a.left_shift,
+                out: out(a.clamp),
+            })
+        }
+        QKernel::Concat => WideOp::Concat,
+        QKernel::Channel(t) => WideOp::Channel(wide_affine(t)?),
+    })
 }
 
 /// The int16-input form of an int8-domain affine transform: the same
