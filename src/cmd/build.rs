@@ -42,6 +42,13 @@ pub struct Args {
     /// Camera frames in (adds `FRAME_BYTES` and `frame_to_input`).
     #[command(flatten)]
     pub camera: super::camera::CameraArgs,
+    /// Keep these layers' output maps in int16 (comma-separated layer
+    /// names, or auto:N for the N layers the sensitivity ranking on
+    /// --images puts first); a member of a concatenation region widens the
+    /// region. The module then calls the int16 kernels for every step that
+    /// reads or writes one.
+    #[arg(long, value_name = "LAYER[,LAYER]|auto:N", value_parser = super::calibrate::parse_wide)]
+    pub wide: Option<pipeline::WideChoice>,
 }
 
 /// Compiles in memory, then writes all files into `--out` or none.
@@ -56,6 +63,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     req.module = args.module.clone();
     req.weight_form = args.weight_form;
     req.camera = args.camera.camera()?;
+    req.wide = args.wide.clone().unwrap_or_default();
     let c = pipeline::compile(&req)?;
     super::print_warnings(&c.graph);
     output::write_all(&args.out, &c.files(&args.module), args.force)?;
@@ -86,6 +94,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         c.plan.lower_bound,
         c.plan.naive_bytes
     );
+    if !c.qgraph.wide.is_empty() {
+        print!("{}", ingot_compiler::lower::wide_table(&c.qgraph));
+    }
     if let Some(b) = &c.budget {
         println!(
             "target {}: RAM {} of {} bytes (headroom {}), flash {} of {} bytes (headroom {}); fits: {}",

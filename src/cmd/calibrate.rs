@@ -82,7 +82,7 @@ pub struct Args {
     pub camera: super::camera::CameraArgs,
 }
 
-fn parse_wide(s: &str) -> Result<ingot_compiler::driver::WideChoice, String> {
+pub(super) fn parse_wide(s: &str) -> Result<ingot_compiler::driver::WideChoice, String> {
     s.parse()
 }
 

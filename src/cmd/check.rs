@@ -47,6 +47,13 @@ pub struct Args {
     /// the JSON report, and printed.
     #[arg(long)]
     pub sensitivity: bool,
+    /// Keep these layers' output maps in int16 (comma-separated layer
+    /// names, or auto:N for the N layers the sensitivity ranking puts
+    /// first, ranked on --calib-images, else on the checked images); a
+    /// member of a concatenation region widens the region. The report
+    /// marks their steps `(int16)` and gives the arena with and without.
+    #[arg(long, value_name = "LAYER[,LAYER]|auto:N", value_parser = super::calibrate::parse_wide)]
+    pub wide: Option<driver::WideChoice>,
     /// Target profile (`targets/NAME.toml`): flash and RAM budget.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -287,6 +294,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     opts.bias_correction = a.bias_correction;
     opts.equalize = a.equalize;
     opts.sensitivity = a.sensitivity;
+    opts.wide = a.wide.clone().unwrap_or_default();
     let mut p = prepare::prepare(graph, images, &opts)?;
     p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)
         .map_err(|e| anyhow::anyhow!("--good: {}: {e}", graph.display()))?;
@@ -319,6 +327,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     let mut r = pipeline::run_check(&module, &p.data, &plan)?;
     r.camera = p.camera.clone();
     r.sensitivity = p.sensitivity.take();
+    r.wide = p.wide.clone();
     apply_gates(a, &mut r);
     if let Some(b) = &p.budget {
         r.failures

@@ -79,3 +79,103 @@ fn plan_prints_the_arena_with_and_without_int16_maps() {
         "{e}"
     );
 }
+
+/// A few evaluation images per class of the demo, copied into `dir`.
+fn eval_subset(dir: &std::path::Path, per_class: usize) -> std::path::PathBuf {
+    let out = dir.join("eval");
+    for class in ["ok", "pit", "scratch", "stain"] {
+        let mut files: Vec<_> = std::fs::read_dir(demo("data/eval").join(class))
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .collect();
+        files.sort();
+        std::fs::create_dir_all(out.join(class)).unwrap();
+        for f in files.iter().take(per_class) {
+            std::fs::copy(f, out.join(class).join(f.file_name().unwrap())).unwrap();
+        }
+    }
+    out
+}
+
+/// `ingot check --wide`: the generated module (int16 calls) against the
+/// integer simulator, bit for bit on the outputs and on every traced map,
+/// with the int16 steps marked and the arena with and without them.
+fn check_wide(wide: &str, extra: &[&str]) -> (serde_json::Value, String) {
+    let tmp = tempfile::tempdir().unwrap();
+    let images = eval_subset(tmp.path(), 3);
+    let report = tmp.path().join("report");
+    let o = ingot!()
+        .arg("check")
+        .arg(demo("model/brackets.graph.json"))
+        .arg("--ranges")
+        .arg(demo("model/brackets.ranges.json"))
+        .arg("--images")
+        .arg(&images)
+        .args(["--wide", wide])
+        .arg("--report")
+        .arg(&report)
+        .args(extra)
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&o.stdout).into_owned();
+    assert!(o.status.success(), "{stdout}\n{}", stderr(&o));
+    assert!(stdout.contains("bit-identical:  yes"), "{stdout}");
+    let json: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("report.json")).unwrap())
+            .unwrap();
+    assert_eq!(json["images"], 12);
+    assert!(json["bit_exact"]["mismatched_images"]
+        .as_array()
+        .unwrap()
+        .is_empty());
+    // Every traced map agrees too (int16 maps as their byte pairs).
+    assert!(json["first_differing_layer"].is_null(), "{json}");
+    let md = std::fs::read_to_string(report.join("report.md")).unwrap();
+    assert!(md.contains("## int16 maps (--wide)"), "{md}");
+    let module = std::fs::read_dir(report.join("module"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.extension().is_some_and(|x| x == "rs"))
+        .unwrap();
+    let src = std::fs::read_to_string(module).unwrap();
+    assert!(src.contains("ingot_rt::wide::checked::"), "no int16 call");
+    (json, md)
+}
+
+#[test]
+fn check_wide_module_matches_the_simulator_on_the_host() {
+    let (json, md) = check_wide("t1.conv", &[]);
+    assert_eq!(json["wide"]["maps"][0][0], "t1.conv");
+    // The plan's figures for the same choice (see the test above).
+    assert_eq!(json["wide"]["arena_bytes"], 98304);
+    assert_eq!(json["wide"]["arena_bytes_int8"], 73728);
+    let kinds: Vec<&str> = json["layers"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| l["kind"].as_str().unwrap())
+        .collect();
+    // t1.conv writes the int16 map, t1.pool reads it.
+    assert_eq!(kinds.iter().filter(|k| k.ends_with("(int16)")).count(), 2);
+    assert!(md.contains("(int16)"), "{md}");
+
+    // A widened concatenation region: its members, the copies-free
+    // concatenations and their readers all run the int16 kernels.
+    let (json, _) = check_wide("b2.l0.conv", &[]);
+    let maps = json["wide"]["maps"].as_array().unwrap();
+    assert!(maps.len() > 1, "{maps:?}");
+    assert!(maps.iter().all(|m| m[1] == "b2.l0.conv"), "{maps:?}");
+}
+
+#[test]
+fn check_wide_module_matches_the_simulator_on_the_emulated_m4() {
+    if !ingot_compiler::check::emulation_or_skip(ingot_compiler::check::RunOn::M4) {
+        return;
+    }
+    for wide in ["t1.conv", "b2.l0.conv"] {
+        let (json, _) = check_wide(wide, &["--on", "m4"]);
+        assert!(json["instructions"]["per_inference_mean"].as_u64().unwrap() > 0);
+        let kinds = json["instructions"]["per_kind"].to_string();
+        assert!(kinds.contains("(int16)"), "{kinds}");
+    }
+}

@@ -27,6 +27,7 @@ pub struct Builder {
     lowered: Option<Box<crate::lower::QGraph>>,
     weight_form: Option<crate::codegen::WeightForm>,
     camera: Option<crate::camera::Camera>,
+    wide: pipeline::WideChoice,
 }
 
 /// What [`Builder::generate`] wrote.
@@ -86,6 +87,7 @@ impl Builder {
             lowered: None,
             weight_form: None,
             camera: None,
+            wide: pipeline::WideChoice::Off,
         }
     }
 
@@ -142,6 +144,15 @@ impl Builder {
         self
     }
 
+    /// Keep these layers' output maps in int16 (`ingot build --wide`):
+    /// named layers, or `auto:N` for the `N` layers the sensitivity
+    /// ranking on the [`images`](Self::images) puts first (an error with a
+    /// ranges file). A member of a concatenation region widens its region.
+    pub fn wide(mut self, choice: pipeline::WideChoice) -> Self {
+        self.wide = choice;
+        self
+    }
+
     /// Output folder instead of `OUT_DIR`.
     pub fn out_dir(mut self, dir: impl AsRef<Path>) -> Self {
         self.out_dir = Some(dir.as_ref().into());
@@ -158,6 +169,7 @@ impl Builder {
         req.module = self.module.clone();
         req.weight_form = self.weight_form;
         req.camera = self.camera.clone();
+        req.wide = self.wide.clone();
         Ok(req)
     }
 

@@ -87,6 +87,10 @@ pub struct BuildInputs {
     pub weight_form: Option<WeightForm>,
     /// The camera; `None`: the target's `[camera]`, if any.
     pub camera: Option<crate::camera::Camera>,
+    /// Layers whose output maps stay int16 (`--wide`); `auto:N` ranks
+    /// the layers on the calibration images, so it needs
+    /// [`RangesSource::Images`].
+    pub wide: WideChoice,
 }
 
 impl BuildInputs {
@@ -100,6 +104,7 @@ impl BuildInputs {
             module: "model".into(),
             weight_form: None,
             camera: None,
+            wide: WideChoice::Off,
         }
     }
 }
@@ -199,6 +204,9 @@ pub enum PipelineError {
     /// Generation failed.
     #[error(transparent)]
     Codegen(#[from] CodegenError),
+    /// `--wide auto:N` could not rank the layers.
+    #[error("--wide auto:N: ranking the layers: {0}")]
+    Sensitivity(crate::agree::EvalError),
     /// File system error.
     #[error("{path}: {source}")]
     Io {
@@ -542,6 +550,33 @@ pub fn wide_layers(
     }
 }
 
+/// `base` with the layers of `choice` widened (`--wide` on `build`,
+/// `check` and the build script). `auto:N` ranks the layers of the
+/// all-int8 network ([`sensitivity_on`] with `base`) on `images`, and is
+/// an error without them.
+pub fn wide_options(
+    graph: &Graph,
+    ranges: &Ranges,
+    choice: &WideChoice,
+    images: Option<&ImageSet>,
+    base: &LowerOptions,
+) -> Result<LowerOptions, PipelineError> {
+    if *choice == WideChoice::Off {
+        return Ok(base.clone());
+    }
+    let int8 = crate::lower::lower(graph, ranges, base)?;
+    let ranking = match images {
+        Some(set) if choice.needs_ranking() => {
+            Some(sensitivity_on(graph, set, ranges, base).map_err(PipelineError::Sensitivity)?)
+        }
+        _ => None,
+    };
+    Ok(LowerOptions {
+        wide: wide_layers(choice, ranking.as_ref(), &int8)?,
+        ..base.clone()
+    })
+}
+
 /// `calibrate --equalize`: `graph` equalized ([`crate::graph::equalize`])
 /// and what equalization found.
 pub fn equalized(graph: &Graph) -> (Graph, crate::graph::equalize::Equalization) {
@@ -704,12 +739,20 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
     })?;
     let weight_form = weight_form_for(req.weight_form, target.as_ref());
     let graph = graph_for(&graph, &sourced).into_owned();
-    let (q, plan) = lower_and_plan(
+    // `auto:N` ranks on the calibration images, read as calibration read
+    // them.
+    let ranked_on = match (&req.ranges, req.wide.needs_ranking()) {
+        (RangesSource::Images(dir, _), true) => Some(ImageSet::open(dir, &graph)?),
+        _ => None,
+    };
+    let lower = wide_options(
         &graph,
         &sourced.ranges,
+        &req.wide,
+        ranked_on.as_ref(),
         &LowerOptions::default(),
-        weight_form,
     )?;
+    let (q, plan) = lower_and_plan(&graph, &sourced.ranges, &lower, weight_form)?;
     let schedule = schedule_of(&q, &plan);
     let opt = gen_options(
         &req.module,

@@ -350,6 +350,20 @@ impl<'q> Simulator<'q> {
         v
     }
 
+    /// A map after the last run as a generated module's trace hook sees
+    /// it: int8 codes, or an int16 map's codes as little-endian byte
+    /// pairs, dense HWC.
+    pub fn map_trace(&self, m: QMapId) -> Vec<i8> {
+        if !self.q.is_wide(m) {
+            return self.map_hwc(m);
+        }
+        self.map_values(m)
+            .into_iter()
+            .flat_map(|v| (v as i16).to_le_bytes())
+            .map(|b| b as i8)
+            .collect()
+    }
+
     /// The codes of any map (int8 or wide) after the last run, dense HWC.
     pub fn map_values(&self, m: QMapId) -> Vec<i32> {
         let t = self.typed(m);
