@@ -296,6 +296,10 @@ fn generated_calls_match_the_simulator_bit_for_bit() {
             let opts = driver::gen_options("demo", None, form, None, String::new());
             let gen = ingot_compiler::codegen::generate(&q, &s, &opts).unwrap();
             assert!(gen.module.contains("ingot_rt::wide::checked::Conv2d"));
+            // The naive schedule (every map its own bytes, every
+            // concatenation copying) gives the same codes.
+            let naive = ingot_compiler::codegen::Schedule::naive(&q);
+            ingot_compiler::codegen::generate(&q, &naive, &opts).unwrap();
             let mut sim = Simulator::new(&q);
             let mut planned = Simulator::with_layout(
                 &q,
@@ -313,6 +317,9 @@ fn generated_calls_match_the_simulator_bit_for_bit() {
                 })
                 .unwrap();
                 assert_eq!(got, want, "{names:?} {form:?} image {i}");
+                let naive_out =
+                    ingot_compiler::codegen::interpret(&q, &naive, &codes, &mut |_, _| {}).unwrap();
+                assert_eq!(naive_out, want, "naive {names:?} {form:?} image {i}");
                 assert_eq!(planned.run(SimInput::Codes(&codes)).unwrap(), want);
                 for (st, bytes) in traced {
                     let m = q.step(st).output;
@@ -380,4 +387,48 @@ fn verify_checks_wide_maps_and_int8_graphs_serialize_as_before() {
 
 fn bad_name(q: &QGraph, m: ingot_compiler::lower::QMapId) -> String {
     q.map(m).name.clone()
+}
+
+/// Generated calls = simulator on the zoo's residual and depthwise
+/// networks with int16 maps at an addition, a projection, a depthwise
+/// convolution and a global pooling (kernels the demo does not widen),
+/// planned and naive, on seeded random inputs.
+#[test]
+fn zoo_networks_with_int16_maps_generate_what_the_simulator_computes() {
+    use ingot_testkit::zoo;
+    let nets = [
+        (
+            zoo::residual(&zoo::ResidualConfig::default(), 7),
+            &["block1.add", "block2.shortcut.conv", "pool"][..],
+        ),
+        (
+            zoo::depthwise_separable(&zoo::DepthwiseConfig::default(), 8),
+            &["block2.dw", "block3.pw", "pool"][..],
+        ),
+    ];
+    for (net, names) in nets {
+        let g = net.build();
+        let r = net.minmax_ranges();
+        let (q, p) = match driver::lower_and_plan(&g, &r, &wide(names), WeightForm::Words) {
+            Ok(x) => x,
+            Err(e) => panic!("{}: {e}", g.name()),
+        };
+        assert!(!q.wide.is_empty());
+        let opts = driver::gen_options("zoo", None, WeightForm::Words, None, String::new());
+        let mut sim = Simulator::new(&q);
+        for s in [
+            driver::schedule_of(&q, &p),
+            ingot_compiler::codegen::Schedule::naive(&q),
+        ] {
+            ingot_compiler::codegen::generate(&q, &s, &opts).unwrap();
+            for seed in 0..3 {
+                let x = net.random_input(100 + seed);
+                let want = sim.run(SimInput::Chw(&x)).unwrap();
+                let codes = sim.map_hwc(q.input);
+                let got =
+                    ingot_compiler::codegen::interpret(&q, &s, &codes, &mut |_, _| {}).unwrap();
+                assert_eq!(got, want, "{} seed {seed}", g.name());
+            }
+        }
+    }
 }
