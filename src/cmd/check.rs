@@ -389,6 +389,20 @@ fn summary(
         "  scratch RAM:    {} bytes (arena {} + patch {}); lower bound {} bytes ({} schedule)",
         g.scratch_bytes, g.arena_bytes, g.patch_bytes, p.plan.lower_bound, p.schedule_kind
     );
+    if let Some(w) = &p.wide {
+        let _ = writeln!(
+            s,
+            "  int16 maps:     {} ({}); arena {} bytes with them, {} all int8",
+            w.maps.len(),
+            w.maps
+                .iter()
+                .map(|(m, _)| m.as_str())
+                .collect::<Vec<_>>()
+                .join(", "),
+            w.arena_bytes,
+            w.arena_bytes_int8
+        );
+    }
     if g.weights_flash_bytes == g.weights_bytes {
         let _ = write!(s, "  flash:          weights {} bytes", g.weights_bytes);
     } else {

@@ -198,10 +198,11 @@ fn wide_markdown(w: &WideArena) -> String {
     }
     let _ = writeln!(
         s,
-        "\nArena {} B with the int16 maps, {} B all int8 ({:+} B). Steps that read or write one are marked `(int16)` in the layer table.\n",
+        "\nArena {} B with the int16 maps, {} B all int8 ({}{} B). Steps that read or write one are marked `(int16)` in the layer table.\n",
         thousands(w.arena_bytes as u64),
         thousands(w.arena_bytes_int8 as u64),
-        w.arena_bytes as i64 - w.arena_bytes_int8 as i64
+        if w.arena_bytes >= w.arena_bytes_int8 { "+" } else { "−" },
+        thousands(w.arena_bytes.abs_diff(w.arena_bytes_int8) as u64),
     );
     s
 }
