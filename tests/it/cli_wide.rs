@@ -179,3 +179,50 @@ fn check_wide_module_matches_the_simulator_on_the_emulated_m4() {
         assert!(kinds.contains("(int16)"), "{kinds}");
     }
 }
+
+/// `ingot build --wide`: the module calls the int16 kernels and the build
+/// lists the int16 maps; `auto:N` needs images to rank on, so it is an
+/// error with a ranges file, said as such.
+#[test]
+fn build_writes_int16_calls_and_auto_needs_images() {
+    let tmp = tempfile::tempdir().unwrap();
+    let out = tmp.path().join("out");
+    let o = ingot!()
+        .arg("build")
+        .arg(demo("model/brackets.graph.json"))
+        .arg("--ranges")
+        .arg(demo("model/brackets.ranges.json"))
+        .args(["--wide", "t1.conv", "--out"])
+        .arg(&out)
+        .output()
+        .unwrap();
+    assert!(o.status.success(), "{}", stderr(&o));
+    let text = String::from_utf8(o.stdout).unwrap();
+    assert!(text.contains("int16 maps (--wide): 1 map(s)"), "{text}");
+    let src = std::fs::read_to_string(out.join("model.rs")).unwrap();
+    assert!(
+        src.contains("ingot_rt::wide::checked::Conv2d"),
+        "no int16 conv"
+    );
+    assert!(
+        src.contains("ingot_rt::wide::checked::Pool"),
+        "no int16 pool"
+    );
+    assert!(
+        src.contains("ingot_rt::wide::TypedMap::i16"),
+        "no int16 map"
+    );
+
+    let o = ingot!()
+        .arg("build")
+        .arg(demo("model/brackets.graph.json"))
+        .arg("--ranges")
+        .arg(demo("model/brackets.ranges.json"))
+        .args(["--wide", "auto:2", "--out"])
+        .arg(tmp.path().join("auto"))
+        .output()
+        .unwrap();
+    assert!(!o.status.success());
+    let e = stderr(&o);
+    assert!(e.contains("auto:N") && e.contains("images"), "{e}");
+}

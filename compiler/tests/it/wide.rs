@@ -432,3 +432,35 @@ fn zoo_networks_with_int16_maps_generate_what_the_simulator_computes() {
         }
     }
 }
+
+/// The build script's `Builder::wide` reaches the generator: the module
+/// it writes calls the int16 kernels, and its hash differs from the
+/// all-int8 module's.
+#[test]
+fn builder_wide_writes_int16_calls() {
+    let root = PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("../examples/demo/model");
+    let tmp = tempfile::tempdir().unwrap();
+    let build = |dir: &str, wide: &str| {
+        let out = tmp.path().join(dir);
+        let b = ingot_compiler::build::Builder::new(root.join("brackets.graph.json"))
+            .ranges(root.join("brackets.ranges.json"))
+            .out_dir(&out);
+        let b = if wide.is_empty() {
+            b
+        } else {
+            b.wide(wide.parse::<WideChoice>().unwrap())
+        };
+        b.generate().unwrap();
+        std::fs::read_to_string(out.join("model.rs")).unwrap()
+    };
+    let (plain, wide) = (build("plain", ""), build("wide", "t1.conv"));
+    assert!(!plain.contains("ingot_rt::wide::"));
+    assert!(wide.contains("ingot_rt::wide::checked::Conv2d"));
+    let hash = |s: &str| {
+        s.lines()
+            .find(|l| l.contains("MODEL_HASH"))
+            .unwrap()
+            .to_string()
+    };
+    assert_ne!(hash(&plain), hash(&wide));
+}
