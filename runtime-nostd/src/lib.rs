@@ -194,7 +194,8 @@
 //! [`conv2d`], [`linear`], [`max_pool2d`], [`avg_pool2d`],
 //! [`global_avg_pool`], [`add`], [`channel_transform`], [`copy_channels`], [`quantize_pixels`], [`copy_in`],
 //! [`copy_out`], [`argmax`], [`dequantize`]; camera frames in:
-//! [`convert_frame`] (see [`FrameConfig`]).
+//! [`convert_frame`] (see [`FrameConfig`]). Maps kept at 16 bits (int16
+//! activations of chosen layers) have their own kernels in [`wide`].
 #![no_std]
 #![forbid(unsafe_code)]
 #![deny(missing_docs)]
@@ -212,6 +213,7 @@ mod map;
 mod pool;
 mod requant;
 mod transform;
+pub mod wide;
 
 pub use channel::{channel_transform, channel_transform_rows, copy_channels};
 pub use conv::{

@@ -45,6 +45,13 @@ pub struct Args {
     /// Store every map whole: no row streaming (more RAM, to compare).
     #[arg(long)]
     pub no_stream: bool,
+    /// Keep these layers' output maps in int16 (comma-separated layer
+    /// names, or auto:N for the N layers the sensitivity ranking on
+    /// --images puts first); a member of a concatenation region widens the
+    /// region. The module then calls the int16 kernels for every step that
+    /// reads or writes one.
+    #[arg(long, value_name = "LAYER[,LAYER]|auto:N", value_parser = super::calibrate::parse_wide)]
+    pub wide: Option<pipeline::WideChoice>,
 }
 
 /// Compiles in memory, then writes all files into `--out` or none.
@@ -60,6 +67,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     req.weight_form = args.weight_form;
     req.camera = args.camera.camera()?;
     req.stream = !args.no_stream;
+    req.wide = args.wide.clone().unwrap_or_default();
     let c = pipeline::compile(&req)?;
     super::print_warnings(&c.graph);
     output::write_all(&args.out, &c.files(&args.module), args.force)?;
@@ -90,6 +98,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         c.plan.lower_bound,
         c.plan.naive_bytes
     );
+    if !c.qgraph.wide.is_empty() {
+        print!("{}", ingot_compiler::lower::wide_table(&c.qgraph));
+    }
     if let Some(b) = &c.budget {
         println!(
             "target {}: RAM {} of {} bytes (headroom {}), flash {} of {} bytes (headroom {}); fits: {}",

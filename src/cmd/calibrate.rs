@@ -66,6 +66,13 @@ pub struct Args {
     /// `--sensitivity`).
     #[arg(long, value_name = "FILE")]
     pub sensitivity_svg: Option<PathBuf>,
+    /// Keep these layers' output maps in int16 (comma-separated layer
+    /// names, or auto:N for the N layers the sensitivity ranking puts
+    /// first); a member of a concatenation region widens the region. The
+    /// report's int8 figures are then those of the mixed network, and the
+    /// ranges file is unchanged.
+    #[arg(long, value_name = "LAYER[,LAYER]|auto:N", value_parser = parse_wide)]
+    pub wide: Option<ingot_compiler::driver::WideChoice>,
     /// Target profile (`targets/NAME.toml`): only its `[camera]` is used.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -73,6 +80,10 @@ pub struct Args {
     /// target's `[camera]`).
     #[command(flatten)]
     pub camera: super::camera::CameraArgs,
+}
+
+pub(super) fn parse_wide(s: &str) -> Result<ingot_compiler::driver::WideChoice, String> {
+    s.parse()
 }
 
 /// Runs the command.
@@ -129,7 +140,34 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         args.force,
     )
     .context("cannot write the ranges file")?;
-    let mut report = agree::report(&graph, &images, &cal, &opts, Some(&LowerOptions::default()))?;
+    let wide = args.wide.clone().unwrap_or_default();
+    // `auto:N` ranks on the all-int8 network; the ranking is measured once
+    // and also printed when `--sensitivity` asks for it.
+    let ranking = if args.sensitivity || args.sensitivity_svg.is_some() || wide.needs_ranking() {
+        Some(ingot_compiler::driver::sensitivity(
+            &graph, &images, &cal, &opts,
+        )?)
+    } else {
+        None
+    };
+    let int8 = ingot_compiler::lower::lower(&graph, &cal.ranges, &LowerOptions::default())?;
+    let lower_opts = LowerOptions {
+        wide: ingot_compiler::driver::wide_layers(&wide, ranking.as_ref(), &int8)?,
+        ..LowerOptions::default()
+    };
+    let lowered = ingot_compiler::lower::lower(&graph, &cal.ranges, &lower_opts)?;
+    let wide_maps: Vec<serde_json::Value> = lowered
+        .wide
+        .iter()
+        .map(|w| {
+            serde_json::json!({
+                "map": lowered.map(w.map).name,
+                "because": w.because,
+                "extra_bytes": lowered.map(w.map).shape.len(),
+            })
+        })
+        .collect();
+    let mut report = agree::report(&graph, &images, &cal, &opts, Some(&lower_opts))?;
     report.set_good_classes(&good, graph.labels());
     let equalization = match &found {
         Some(e) => Some(ingot_compiler::driver::equalize_effect(
@@ -138,9 +176,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         None => None,
     };
     let sensitivity = if args.sensitivity || args.sensitivity_svg.is_some() {
-        Some(ingot_compiler::driver::sensitivity(
-            &graph, &images, &cal, &opts,
-        )?)
+        ranking
     } else {
         None
     };
@@ -173,6 +209,9 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         if let Some(e) = &equalization {
             v["equalization"] = serde_json::to_value(e)?;
         }
+        if !wide_maps.is_empty() {
+            v["wide"] = serde_json::Value::Array(wide_maps);
+        }
         println!("{}", serde_json::to_string_pretty(&v)?);
     } else {
         print!("{report}");
@@ -195,6 +234,7 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
         if let Some(e) = &equalization {
             print!("{e}");
         }
+        print!("{}", ingot_compiler::lower::wide_table(&lowered));
         println!("ranges written to {}", out.display());
         if let Some(p) = &args.sensitivity_svg {
             println!("sensitivity chart written to {}", p.display());

@@ -47,6 +47,13 @@ pub struct Args {
     /// the JSON report, and printed.
     #[arg(long)]
     pub sensitivity: bool,
+    /// Keep these layers' output maps in int16 (comma-separated layer
+    /// names, or auto:N for the N layers the sensitivity ranking puts
+    /// first, ranked on --calib-images, else on the checked images); a
+    /// member of a concatenation region widens the region. The report
+    /// marks their steps `(int16)` and gives the arena with and without.
+    #[arg(long, value_name = "LAYER[,LAYER]|auto:N", value_parser = super::calibrate::parse_wide)]
+    pub wide: Option<driver::WideChoice>,
     /// Target profile (`targets/NAME.toml`): flash and RAM budget.
     #[arg(long)]
     pub target: Option<PathBuf>,
@@ -291,6 +298,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     opts.equalize = a.equalize;
     opts.sensitivity = a.sensitivity;
     opts.stream = !a.no_stream;
+    opts.wide = a.wide.clone().unwrap_or_default();
     let mut p = prepare::prepare(graph, images, &opts)?;
     p.data.good_classes = stats::good_classes(&a.good, &p.data.class_names)
         .map_err(|e| anyhow::anyhow!("--good: {}: {e}", graph.display()))?;
@@ -323,6 +331,7 @@ fn run_graph(a: &Args) -> anyhow::Result<()> {
     let mut r = pipeline::run_check(&module, &p.data, &plan)?;
     r.camera = p.camera.clone();
     r.sensitivity = p.sensitivity.take();
+    r.wide = p.wide.clone();
     apply_gates(a, &mut r);
     if let Some(b) = &p.budget {
         r.failures
@@ -384,6 +393,20 @@ fn summary(
         "  scratch RAM:    {} bytes (arena {} + patch {}); lower bound {} bytes ({} schedule)",
         g.scratch_bytes, g.arena_bytes, g.patch_bytes, p.plan.lower_bound, p.schedule_kind
     );
+    if let Some(w) = &p.wide {
+        let _ = writeln!(
+            s,
+            "  int16 maps:     {} ({}); arena {} bytes with them, {} all int8",
+            w.maps.len(),
+            w.maps
+                .iter()
+                .map(|(m, _)| m.as_str())
+                .collect::<Vec<_>>()
+                .join(", "),
+            w.arena_bytes,
+            w.arena_bytes_int8
+        );
+    }
     if g.weights_flash_bytes == g.weights_bytes {
         let _ = write!(s, "  flash:          weights {} bytes", g.weights_bytes);
     } else {

@@ -35,6 +35,12 @@ pub struct Args {
     /// one of the command's inputs).
     #[arg(long)]
     pub force: bool,
+    /// Keep these layers' output maps in int16 (comma-separated layer
+    /// names; a member of a concatenation region widens the region): the
+    /// plan then sizes their buffers at two bytes per value, and the
+    /// report adds the arena without widening and the int16 maps.
+    #[arg(long, value_name = "LAYER[,LAYER]", value_delimiter = ',')]
+    pub wide: Vec<String>,
     /// Convolution weight form the module will use (int8, words or pairs;
     /// words and pairs add row buffers to the patch scratch) [default: by
     /// the --target core, else int8]
@@ -65,14 +71,28 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
     // The patch scratch depends on the kernels `build` will use for this
     // target (see `ingot build --weight-form`).
     let weight_form = driver::weight_form_for(args.weight_form, target.as_ref());
-    let (q, p) = driver::lower_and_plan(
-        &g,
-        &ranges,
-        &LowerOptions::default(),
-        weight_form,
-        !args.no_stream,
-    )?;
+    let lower_opts = LowerOptions {
+        wide: args.wide.clone(),
+        ..LowerOptions::default()
+    };
+    let (q, p) = driver::lower_and_plan(&g, &ranges, &lower_opts, weight_form, !args.no_stream)?;
     let report = plan::report(&q, &p, target.as_ref());
+    // The same plan without widening, for the cost of the int16 maps.
+    let int8_arena = if q.wide.is_empty() {
+        None
+    } else {
+        Some(
+            driver::lower_and_plan(
+                &g,
+                &ranges,
+                &LowerOptions::default(),
+                weight_form,
+                !args.no_stream,
+            )?
+            .1
+            .arena_bytes,
+        )
+    };
     if let Some(svg) = &args.svg {
         let picture = plan::render_svg(&q, &p)?;
         let mut inputs = vec![
@@ -86,12 +106,26 @@ pub fn run(args: &Args) -> anyhow::Result<()> {
             .context("cannot write the picture")?;
     }
     if args.json {
+        let mut v = serde_json::to_value(&report).context("serialising the report")?;
+        if let Some(a) = int8_arena {
+            v["wide"] = serde_json::json!({
+                "maps": q.wide.iter().map(|w| q.map(w.map).name.clone()).collect::<Vec<_>>(),
+                "arena_bytes_without": a,
+            });
+        }
         println!(
             "{}",
-            serde_json::to_string_pretty(&report).context("serialising the report")?
+            serde_json::to_string_pretty(&v).context("serialising the report")?
         );
     } else {
         print!("{report}");
+        if let Some(a) = int8_arena {
+            print!("{}", ingot_compiler::lower::wide_table(&q));
+            println!(
+                "arena with int16 maps: {} B; all int8: {} B",
+                p.arena_bytes, a
+            );
+        }
     }
     if let Some(b) = &report.budget {
         if !b.fits {

@@ -11,6 +11,7 @@ mod cli_hardening;
 mod cli_import;
 mod cli_inspect;
 mod cli_plan;
+mod cli_wide;
 mod demo;
 mod demo_slices;
 mod demo_stream;

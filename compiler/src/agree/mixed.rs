@@ -47,7 +47,8 @@ pub struct Mixed<'a> {
     units: Vec<Unit>,
     /// Per float map: the unit that rounds it and with which parameters
     /// (one set, or one per channel of a per-channel convolution map).
-    rounds: Vec<Option<(usize, Vec<QParams>)>>,
+    /// (and whether it is a wide map, rounded to int16 codes).
+    rounds: Vec<Option<(usize, Vec<QParams>, bool)>>,
     /// Per float layer: the unit whose int8 weights it computes with.
     weights_of: Vec<Option<usize>>,
     /// Per unit with weights: its main layer, its pre-activation map
@@ -83,7 +84,7 @@ impl<'a> Mixed<'a> {
             step: None,
         }];
         let mut rounds = vec![None; nm];
-        rounds[MapId::INPUT.index()] = Some((0, vec![q.input_qp()]));
+        rounds[MapId::INPUT.index()] = Some((0, vec![q.input_qp()], false));
         let mut weights_of = vec![None; graph.layers().len()];
         let mut weighted = vec![None];
         for id in q.step_ids() {
@@ -105,6 +106,7 @@ impl<'a> Mixed<'a> {
                     Some(qp) => vec![qp],
                     None => out.qp.per_channel(out.shape.c),
                 },
+                q.is_wide(s.output),
             ));
             let main = s.layers[0];
             // Layers fused before the main one are the pre-activation batch
@@ -115,7 +117,7 @@ impl<'a> Mixed<'a> {
             if let (Some(t), QKernel::Conv2d(c)) = (pre, &s.kernel) {
                 if c.transform.is_some() {
                     let dom = activation_qparams(ranges.maps[t.output().index()]);
-                    rounds[t.output().index()] = Some((u, vec![dom]));
+                    rounds[t.output().index()] = Some((u, vec![dom], false));
                     in_qp = Some(dom);
                 }
             }
@@ -204,13 +206,17 @@ impl<'a> Mixed<'a> {
         self.reference
             .run_mixed(input, &alt, |m, v| {
                 visit(m, v);
-                if let Some((u, qps)) = &self.rounds[m.index()] {
+                if let Some((u, qps, wide)) = &self.rounds[m.index()] {
                     if on(*u) && !qps.is_empty() {
                         // Float maps are [C, H, W]: channel c is the c-th run.
                         let per = (v.len() / qps.len()).max(1);
                         for (i, x) in v.iter_mut().enumerate() {
                             let qp = qps[(i / per).min(qps.len() - 1)];
-                            *x = quant::dequantize(quant::quantize(*x, qp), qp);
+                            *x = if *wide {
+                                quant::fake_wide(*x, qp)
+                            } else {
+                                quant::dequantize(quant::quantize(*x, qp), qp)
+                            };
                         }
                     }
                 }

@@ -48,9 +48,16 @@ pub fn steps_of(q: &QGraph) -> Vec<StepInfo> {
                 QKernel::Linear(l) => (l.in_features * l.out_features) as u64,
                 _ => 0,
             };
+            // Steps touching an int16 map are a kind of their own, so the
+            // per-kind table shows what the int16 kernels cost.
+            let kind = if q.step_is_wide(s) {
+                format!("{} (int16)", s.kernel.kind())
+            } else {
+                s.kernel.kind().to_string()
+            };
             StepInfo {
                 name: s.name.clone(),
-                kind: s.kernel.kind().to_string(),
+                kind,
                 macs,
             }
         })

@@ -140,6 +140,9 @@ pub struct PrepareOptions {
     /// Stream rows through rings where the planner finds it lowers the
     /// RAM (default true; `check --no-stream` turns it off).
     pub stream: bool,
+    /// Layers whose output maps stay int16 (`check --wide`); `auto:N`
+    /// ranks on the calibration images, else on the checked ones.
+    pub wide: driver::WideChoice,
 }
 
 impl Default for PrepareOptions {
@@ -155,6 +158,7 @@ impl Default for PrepareOptions {
             equalize: false,
             sensitivity: false,
             stream: true,
+            wide: driver::WideChoice::Off,
         }
     }
 }
@@ -186,6 +190,9 @@ pub struct Prepared {
     /// With [`PrepareOptions::sensitivity`]: the per-layer sensitivity on
     /// the checked images (put it in the report's `sensitivity`).
     pub sensitivity: Option<crate::agree::sensitivity::Sensitivity>,
+    /// With int16 maps: which, and the arena with and without them (put
+    /// it in the report's `wide`).
+    pub wide: Option<super::report::WideArena>,
 }
 
 /// Loads, calibrates (or reads ranges), lowers, plans, generates, and runs
@@ -221,11 +228,44 @@ pub fn prepare(
     // says so); the same function as the loaded one.
     let g = driver::graph_for(&g, &sourced).into_owned();
     let weight_form = driver::weight_form_for(opts.weight_form, target.as_ref());
-    let lower_opts = LowerOptions {
+    let int8_opts = LowerOptions {
         per_channel: opts.per_channel,
+        ..LowerOptions::default()
     };
+    // `auto:N` ranks on the calibration images when there are some.
+    let calib_set = match (&opts.ranges, opts.wide.needs_ranking()) {
+        (RangesSource::Images(dir, _), true) => Some(
+            ImageSet::open_camera(dir, &g, camera.as_ref()).map_err(PrepareError::CalibImages)?,
+        ),
+        _ => None,
+    };
+    let lower_opts = driver::wide_options(
+        &g,
+        &sourced.ranges,
+        &opts.wide,
+        Some(calib_set.as_ref().unwrap_or(&set)),
+        &int8_opts,
+    )
+    .map_err(PrepareError::from_driver)?;
     let (q, p) = driver::lower_and_plan(&g, &sourced.ranges, &lower_opts, weight_form, opts.stream)
         .map_err(PrepareError::from_driver)?;
+    let wide = if q.wide.is_empty() {
+        None
+    } else {
+        let int8 =
+            driver::lower_and_plan(&g, &sourced.ranges, &int8_opts, weight_form, opts.stream)
+                .map_err(PrepareError::from_driver)?
+                .1;
+        Some(super::report::WideArena {
+            maps: q
+                .wide
+                .iter()
+                .map(|w| (q.map(w.map).name.clone(), w.because.clone()))
+                .collect(),
+            arena_bytes: p.arena_bytes,
+            arena_bytes_int8: int8.arena_bytes,
+        })
+    };
     let sensitivity = if opts.sensitivity {
         Some(
             driver::sensitivity_on(&g, &set, &sourced.ranges, &lower_opts)
@@ -294,6 +334,7 @@ pub fn prepare(
         image_names: set.entries().iter().map(|e| e.name.clone()).collect(),
         camera: camera_figures,
         sensitivity,
+        wide,
     })
 }
 
@@ -400,7 +441,7 @@ fn compare_data(
                 data: if s.ring_rows(om).is_some() {
                     Vec::new()
                 } else {
-                    sim.map_hwc(om)
+                    sim.map_trace(om)
                 },
             });
             if let Some(f) = &float_maps[want[k].index()] {

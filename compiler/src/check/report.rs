@@ -169,6 +169,42 @@ pub struct CheckReport {
     /// images.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub sensitivity: Option<crate::agree::sensitivity::Sensitivity>,
+    /// With `--wide`: the int16 maps and the arena with and without them.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub wide: Option<WideArena>,
+}
+
+/// The int16 maps of a `--wide` check and what they cost in RAM.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct WideArena {
+    /// `(map, the --wide layer that made it wide)`, in map order.
+    pub maps: Vec<(String, String)>,
+    /// Arena of the checked module, bytes.
+    pub arena_bytes: usize,
+    /// Arena of the same network all int8, bytes.
+    pub arena_bytes_int8: usize,
+}
+
+/// The int16 section of the markdown report.
+fn wide_markdown(w: &WideArena) -> String {
+    let mut s = String::new();
+    let _ = writeln!(s, "## int16 maps (--wide)\n");
+    for (m, because) in &w.maps {
+        if m == because {
+            let _ = writeln!(s, "- `{m}`");
+        } else {
+            let _ = writeln!(s, "- `{m}` (region of `{because}`)");
+        }
+    }
+    let _ = writeln!(
+        s,
+        "\nArena {} B with the int16 maps, {} B all int8 ({}{} B). Steps that read or write one are marked `(int16)` in the layer table.\n",
+        thousands(w.arena_bytes as u64),
+        thousands(w.arena_bytes_int8 as u64),
+        if w.arena_bytes >= w.arena_bytes_int8 { "+" } else { "−" },
+        thousands(w.arena_bytes.abs_diff(w.arena_bytes_int8) as u64),
+    );
+    s
 }
 
 fn pct(x: f64) -> String {
@@ -314,6 +350,9 @@ pub fn markdown(r: &CheckReport) -> String {
     s.push_str(&super::camera::frame_step_markdown(r.frame_step.as_ref()));
     if let Some(sens) = &r.sensitivity {
         s.push_str(&sensitivity_markdown(sens));
+    }
+    if let Some(w) = &r.wide {
+        s.push_str(&wide_markdown(w));
     }
 
     if !r.layers.is_empty() {

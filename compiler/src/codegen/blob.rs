@@ -186,10 +186,13 @@ pub fn build(q: &QGraph, form: WeightForm) -> Blob {
         bytes: Vec::new(),
         entries: Vec::new(),
     };
-    let words =
-        |k: &QKernel| matches!(k, QKernel::Conv2d(c) if form.for_conv(c) == WeightForm::Words);
+    // The int16 kernels read int8 rows: a wide step keeps int8 weights.
+    let words = |s: &crate::lower::QStep| {
+        !q.step_is_wide(s)
+            && matches!(&s.kernel, QKernel::Conv2d(c) if form.for_conv(c) == WeightForm::Words)
+    };
     for (i, s) in q.steps.iter().enumerate() {
-        if let (QKernel::Conv2d(c), true) = (&s.kernel, words(&s.kernel)) {
+        if let (QKernel::Conv2d(c), true) = (&s.kernel, words(s)) {
             let v = super::calls::word_weights(c);
             w.start(
                 Some(i),
@@ -203,7 +206,7 @@ pub fn build(q: &QGraph, form: WeightForm) -> Blob {
     }
     for (i, s) in q.steps.iter().enumerate() {
         match &s.kernel {
-            _ if words(&s.kernel) => {}
+            _ if words(s) => {}
             QKernel::Conv2d(c) => w.i8s(i, Role::Weights, &c.weights, Section::Weights),
             QKernel::Linear(l) => w.i8s(i, Role::Weights, &l.weights, Section::Weights),
             _ => {}

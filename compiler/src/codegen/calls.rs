@@ -74,6 +74,8 @@ pub enum Call<'a> {
         output: MapRef,
         t: &'a ChannelTransform,
     },
+    /// A step reading or writing an int16 map: `ingot_rt::wide`.
+    Wide(super::wide::WideCall<'a>),
 }
 
 /// The calls of one step (empty for an in-place concatenation).
@@ -85,13 +87,13 @@ pub struct StepCalls<'a> {
     pub calls: Vec<Call<'a>>,
 }
 
-/// The arena view of a map.
+/// The arena view of a map (an int16 map's offset in bytes, see
+/// [`super::wide::map_ref`]).
 pub fn map_ref(q: &QGraph, s: &Schedule, m: crate::lower::QMapId) -> MapRef {
-    let sh = q.map(m).shape;
-    let v = s.views[m.index()];
-    let rows = s.ring_rows(m).unwrap_or(sh.h);
-    MapRef::ring(v.offset, sh.h, sh.w, sh.c, v.stride, rows)
+    super::wide::map_ref(q, s, m)
 }
+
+pub use super::wide::trace_ref;
 
 /// `ingot_rt::Requant` of a multiplier.
 pub fn requant(m: Multiplier) -> Requant {
@@ -174,6 +176,15 @@ pub enum CallError {
     /// An accumulator could overflow `i32`.
     #[error("step `{0}`: an output channel's accumulator can exceed i32")]
     Accumulator(String),
+    /// A step touching an int16 map has parameters the int16 kernels
+    /// cannot take.
+    #[error("step `{step}` (int16): {error:?}")]
+    Wide {
+        /// Step name.
+        step: String,
+        /// What the kernels said.
+        error: ingot_rt::Error,
+    },
 }
 
 /// Gives every convolution the layer form of the module's `form`
@@ -222,6 +233,11 @@ pub fn step_calls<'a>(q: &'a QGraph, s: &Schedule) -> Result<Vec<StepCalls<'a>>,
     let mut out = Vec::with_capacity(s.order.len());
     for &id in &s.order {
         let st = q.step(id);
+        if q.step_is_wide(st) {
+            let calls = super::wide::calls(q, s, id)?;
+            out.push(StepCalls { step: id, calls });
+            continue;
+        }
         let o = map_ref(q, s, st.output);
         // `QGraph::verify` (run before) lets only a concatenation write a
         // per-slice map, and only concatenations, channel steps and fused
@@ -415,6 +431,7 @@ pub fn run_call(
         Call::Channel { input, output, t } => {
             ingot_rt::channel_transform_rows(arena, *input, *output, &rt_transform(t), rows)
         }
+        Call::Wide(w) => w.run(arena, patch),
     }
 }
 
@@ -467,7 +484,7 @@ pub fn execute(
             }
         }
         for st in traced {
-            let m = map_ref(q, s, q.step(st).output);
+            let m = trace_ref(q, s, q.step(st).output);
             if m.is_ring() {
                 trace(st, &[]);
                 continue;
@@ -497,7 +514,7 @@ pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), CallError> {
     }
     for (i, m) in q.maps.iter().enumerate() {
         let r = map_ref(q, s, crate::lower::QMapId(i as u32));
-        if !r.fits(s.arena_bytes) {
+        if !super::wide::fits(q, s, crate::lower::QMapId(i as u32), s.arena_bytes) {
             return Err(CallError::OutsideArena {
                 map: m.name.clone(),
                 arena: s.arena_bytes,
@@ -532,6 +549,10 @@ pub fn check_schedule(q: &QGraph, s: &Schedule) -> Result<(), CallError> {
         });
     }
     for st in &q.steps {
+        // The int16 kernels bound their sums themselves (i64 when needed).
+        if q.step_is_wide(st) {
+            continue;
+        }
         let (w, b, per) = match &st.kernel {
             QKernel::Conv2d(c) => (
                 &c.weights,

@@ -33,6 +33,7 @@ pub(crate) mod emit;
 pub(crate) mod names;
 pub mod output;
 pub mod report;
+pub(crate) mod wide;
 
 // The weight form and the schedule are the planner's (it sizes the patch
 // buffer for the form); re-exported under their former paths.
@@ -192,6 +193,15 @@ pub fn interpret(
 ) -> Result<Vec<i8>, CodegenError> {
     let steps = calls::step_calls(q, s)?;
     calls::execute(q, s, &steps, input, trace).map_err(|e| kernel_error(q, e))
+}
+
+/// Every map's arena view under `s`, as the generated module addresses it
+/// (an int16 map's offset in bytes): the layout for
+/// [`Simulator::with_layout`](crate::lower::Simulator::with_layout).
+pub fn arena_refs(q: &QGraph, s: &Schedule) -> Vec<ingot_rt::MapRef> {
+    (0..q.maps.len())
+        .map(|i| wide::map_ref(q, s, crate::lower::QMapId(i as u32)))
+        .collect()
 }
 
 /// True for `[A-Za-z_][A-Za-z0-9_]*`.

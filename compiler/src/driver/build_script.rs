@@ -28,6 +28,7 @@ pub struct Builder {
     weight_form: Option<crate::codegen::WeightForm>,
     camera: Option<crate::camera::Camera>,
     stream: bool,
+    wide: pipeline::WideChoice,
 }
 
 /// What [`Builder::generate`] wrote.
@@ -88,6 +89,7 @@ impl Builder {
             weight_form: None,
             camera: None,
             stream: true,
+            wide: pipeline::WideChoice::Off,
         }
     }
 
@@ -152,6 +154,15 @@ impl Builder {
         self
     }
 
+    /// Keep these layers' output maps in int16 (`ingot build --wide`):
+    /// named layers, or `auto:N` for the `N` layers the sensitivity
+    /// ranking on the [`images`](Self::images) puts first (an error with a
+    /// ranges file). A member of a concatenation region widens its region.
+    pub fn wide(mut self, choice: pipeline::WideChoice) -> Self {
+        self.wide = choice;
+        self
+    }
+
     /// Output folder instead of `OUT_DIR`.
     pub fn out_dir(mut self, dir: impl AsRef<Path>) -> Self {
         self.out_dir = Some(dir.as_ref().into());
@@ -169,6 +180,7 @@ impl Builder {
         req.weight_form = self.weight_form;
         req.camera = self.camera.clone();
         req.stream = self.stream;
+        req.wide = self.wide.clone();
         Ok(req)
     }
 

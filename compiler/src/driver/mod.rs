@@ -90,6 +90,10 @@ pub struct BuildInputs {
     /// Stream rows through rings where the planner finds it lowers the
     /// RAM (default true; `--no-stream` turns it off).
     pub stream: bool,
+    /// Layers whose output maps stay int16 (`--wide`); `auto:N` ranks
+    /// the layers on the calibration images, so it needs
+    /// [`RangesSource::Images`].
+    pub wide: WideChoice,
 }
 
 impl BuildInputs {
@@ -104,6 +108,7 @@ impl BuildInputs {
             weight_form: None,
             camera: None,
             stream: true,
+            wide: WideChoice::Off,
         }
     }
 }
@@ -203,6 +208,9 @@ pub enum PipelineError {
     /// Generation failed.
     #[error(transparent)]
     Codegen(#[from] CodegenError),
+    /// `--wide auto:N` could not rank the layers.
+    #[error("--wide auto:N: ranking the layers: {0}")]
+    Sensitivity(crate::agree::EvalError),
     /// File system error.
     #[error("{path}: {source}")]
     Io {
@@ -451,6 +459,128 @@ pub fn sensitivity(
     )
 }
 
+/// `--wide`: which layers keep their output maps in int16.
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+#[non_exhaustive]
+pub enum WideChoice {
+    /// Every map int8 (no `--wide`).
+    #[default]
+    Off,
+    /// The layers named (`--wide LAYER,…`).
+    Layers(Vec<String>),
+    /// The `n` layers ranked most sensitive (`--wide auto:N`): the lowest
+    /// logit SQNR with only that layer in int8.
+    Auto(usize),
+}
+
+impl std::str::FromStr for WideChoice {
+    type Err = String;
+
+    /// `auto:N` (N ≥ 1) or a comma-separated list of layer names.
+    fn from_str(s: &str) -> Result<Self, String> {
+        if let Some(n) = s.strip_prefix("auto:") {
+            return match n.parse::<usize>() {
+                Ok(n) if n >= 1 => Ok(WideChoice::Auto(n)),
+                _ => Err(format!(
+                    "`auto:{n}`: N must be a whole number of layers, at least 1"
+                )),
+            };
+        }
+        let names: Vec<String> = s
+            .split(',')
+            .map(str::trim)
+            .filter(|n| !n.is_empty())
+            .map(String::from)
+            .collect();
+        if names.is_empty() {
+            return Err("name at least one layer, or auto:N".into());
+        }
+        Ok(WideChoice::Layers(names))
+    }
+}
+
+impl WideChoice {
+    /// True for `auto:N`, which needs a sensitivity ranking.
+    pub fn needs_ranking(&self) -> bool {
+        matches!(self, WideChoice::Auto(_))
+    }
+}
+
+/// The layers `choice` widens. `auto:N` takes the first `N` rows of
+/// `ranking` (measured on the all-int8 network) that can be widened: the
+/// input's quantization and the step writing the network's output stay
+/// int8, and are skipped. A missing ranking for `auto:N`, or fewer such
+/// rows than `N`, is an error naming both counts.
+pub fn wide_layers(
+    choice: &WideChoice,
+    ranking: Option<&crate::agree::sensitivity::Sensitivity>,
+    int8: &QGraph,
+) -> Result<Vec<String>, PipelineError> {
+    match choice {
+        WideChoice::Off => Ok(Vec::new()),
+        WideChoice::Layers(v) => Ok(v.clone()),
+        WideChoice::Auto(n) => {
+            let ranking = ranking.ok_or_else(|| {
+                PipelineError::Unavailable(
+                    "--wide auto:N ranks the layers on images: give images to calibrate or check on".into(),
+                )
+            })?;
+            let out = int8.map(int8.output).name.clone();
+            let eligible: Vec<String> = ranking
+                .rows
+                .iter()
+                .filter(|r| {
+                    r.name != "input" && r.kind != "concat" && r.kind != "channel_transform"
+                })
+                .filter(|r| {
+                    int8.steps
+                        .iter()
+                        .find(|s| s.name == r.name)
+                        .is_some_and(|s| int8.map(s.output).name != out)
+                })
+                .map(|r| r.name.clone())
+                .collect();
+            if eligible.len() < *n {
+                return Err(PipelineError::Lower(LowerError::Wide {
+                    layer: format!("auto:{n}"),
+                    message: format!(
+                        "the ranking has only {} layers that can be widened",
+                        eligible.len()
+                    ),
+                }));
+            }
+            Ok(eligible[..*n].to_vec())
+        }
+    }
+}
+
+/// `base` with the layers of `choice` widened (`--wide` on `build`,
+/// `check` and the build script). `auto:N` ranks the layers of the
+/// all-int8 network ([`sensitivity_on`] with `base`) on `images`, and is
+/// an error without them.
+pub fn wide_options(
+    graph: &Graph,
+    ranges: &Ranges,
+    choice: &WideChoice,
+    images: Option<&ImageSet>,
+    base: &LowerOptions,
+) -> Result<LowerOptions, PipelineError> {
+    if *choice == WideChoice::Off {
+        return Ok(base.clone());
+    }
+    let int8 = crate::lower::lower(graph, ranges, base)?;
+    let ranking = match images {
+        Some(set) if choice.needs_ranking() => {
+            Some(sensitivity_on(graph, set, ranges, base).map_err(PipelineError::Sensitivity)?)
+        }
+        _ => None,
+    };
+    Ok(LowerOptions {
+        wide: wide_layers(choice, ranking.as_ref(), &int8)?,
+        ..base.clone()
+    })
+}
+
 /// `calibrate --equalize`: `graph` equalized ([`crate::graph::equalize`])
 /// and what equalization found.
 pub fn equalized(graph: &Graph) -> (Graph, crate::graph::equalize::Equalization) {
@@ -615,13 +745,20 @@ pub fn compile_unchecked(req: &BuildInputs) -> Result<Compiled, PipelineError> {
     })?;
     let weight_form = weight_form_for(req.weight_form, target.as_ref());
     let graph = graph_for(&graph, &sourced).into_owned();
-    let (q, plan) = lower_and_plan(
+    // `auto:N` ranks on the calibration images, read as calibration read
+    // them.
+    let ranked_on = match (&req.ranges, req.wide.needs_ranking()) {
+        (RangesSource::Images(dir, _), true) => Some(ImageSet::open(dir, &graph)?),
+        _ => None,
+    };
+    let lower = wide_options(
         &graph,
         &sourced.ranges,
+        &req.wide,
+        ranked_on.as_ref(),
         &LowerOptions::default(),
-        weight_form,
-        req.stream,
     )?;
+    let (q, plan) = lower_and_plan(&graph, &sourced.ranges, &lower, weight_form, req.stream)?;
     let schedule = schedule_of(&q, &plan);
     let opt = gen_options(
         &req.module,

@@ -52,13 +52,19 @@ pub(super) fn absorbs_slices(op: &Op, fused: bool) -> bool {
 /// pooling, linear, add or plain convolution, or a region holding the
 /// network's output) every map of the region shares the parameters of the
 /// union of their ranges, as a per-tensor reader needs.
+///
+/// `wide` names, per float map, the `--wide` layer that asks for it to be
+/// stored as int16 (see [`widen`]); the result's second vector says the
+/// same for every map made wide, region members included.
+#[allow(clippy::type_complexity)]
 pub(super) fn map_qparams(
     g: &Graph,
     ranges: &Ranges,
     roles: &[Role],
     canon: &[Option<MapId>],
     stored: impl Fn(MapId, LayerId) -> Result<MapId, LowerError>,
-) -> Result<Vec<Option<MapQuant>>, LowerError> {
+    wide: &[Option<String>],
+) -> Result<(Vec<Option<MapQuant>>, Vec<Option<String>>), LowerError> {
     let nm = g.map_count();
     let mut classes = UnionFind((0..nm).collect());
     // The main layer of the step writing each stored map.
@@ -111,13 +117,42 @@ pub(super) fn map_qparams(
             });
         }
     }
+    // A wide map widens its whole concatenation region (copy-free
+    // concatenation needs one element type per region).
+    let mut wide_root: Vec<Option<String>> = vec![None; nm];
+    for (m, w) in wide.iter().enumerate() {
+        if let Some(w) = w {
+            let root = classes.find(m);
+            wide_root[root].get_or_insert_with(|| w.clone());
+        }
+    }
+    let wide: Vec<Option<String>> = (0..nm)
+        .map(|m| match (&wide[m], canon[m] == Some(MapId(m as u32))) {
+            (Some(w), _) => Some(w.clone()),
+            (None, true) => wide_root[classes.find(m)].clone(),
+            (None, false) => None,
+        })
+        .collect();
     let shared: Vec<bool> = (0..nm)
         .map(|m| {
             let root = classes.find(m);
             members[root] > 1 && !sliced[root]
         })
         .collect();
-    let per_channel = per_channel_outputs(g, ranges, roles, canon, &stored, &writer, &shared)?;
+    let mut per_channel = per_channel_outputs(g, ranges, roles, canon, &stored, &writer, &shared)?;
+    // A pooling writing a wide map has one multiplier: its input is per
+    // tensor.
+    for (m, w) in writer.iter().enumerate() {
+        if let Some(l) = w {
+            if wide[m].is_some() && is_pool(&g.layer(*l).op) {
+                let src = stored(g.layer(*l).inputs[0], *l)?;
+                per_channel[src.index()] = false;
+            }
+        }
+    }
+    let src_wide = |l: LayerId| -> Result<bool, LowerError> {
+        Ok(wide[stored(g.layer(l).inputs[0], l)?.index()].is_some())
+    };
     let mut qp: Vec<Option<MapQuant>> = vec![None; nm];
     for (m, c) in canon.iter().enumerate() {
         if *c != Some(MapId(m as u32)) {
@@ -126,6 +161,14 @@ pub(super) fn map_qparams(
         let root = classes.find(m);
         let shared = shared[m];
         let p = match writer[m] {
+            _ if wide[m].is_some() => {
+                let r = if members[root] > 1 {
+                    class_range[root].unwrap_or(ranges.maps[m])
+                } else {
+                    ranges.maps[m]
+                };
+                wide_qparams(r).into()
+            }
             _ if shared => activation_qparams(class_range[root].unwrap_or(ranges.maps[m])).into(),
             Some(_) if per_channel[m] => channel_qparams(
                 ranges.maps[m],
@@ -135,6 +178,7 @@ pub(super) fn map_qparams(
             // its multiplier `1/taps` is then the same for every channel.
             Some(l)
                 if matches!(g.layer(l).op, Op::AvgPool2d(_) | Op::GlobalAvgPool)
+                    && !src_wide(l)?
                     && qp[stored(g.layer(l).inputs[0], l)?.index()]
                         .as_ref()
                         .is_some_and(MapQuant::is_sliced) =>
@@ -156,7 +200,7 @@ pub(super) fn map_qparams(
                 MapQuant::from_channels(&channels)
                     .ok_or_else(|| LowerError::Internal("concat without channels".into()))?
             }
-            Some(l) if matches!(g.layer(l).op, Op::MaxPool2d(_)) => {
+            Some(l) if matches!(g.layer(l).op, Op::MaxPool2d(_)) && !src_wide(l)? => {
                 let src = stored(g.layer(l).inputs[0], l)?;
                 qp[src.index()].clone().ok_or_else(|| {
                     LowerError::Internal("max pool input not quantized yet".into())
@@ -166,7 +210,23 @@ pub(super) fn map_qparams(
         };
         qp[m] = Some(p);
     }
-    Ok(qp)
+    Ok((qp, wide))
+}
+
+/// Symmetric int16 quantization of a range: `zero_point` 0,
+/// `scale = max(|min|, |max|) / 32767` (a range at 0 alone gets
+/// [`DEGENERATE_SCALE`]).
+pub(super) fn wide_qparams(r: crate::ranges::MapRange) -> QParams {
+    let m = (r.min.abs() as f64).max(r.max.abs() as f64);
+    let scale = (m / 32767.0) as f32;
+    QParams {
+        scale: if scale.is_normal() && scale > 0.0 {
+            scale
+        } else {
+            DEGENERATE_SCALE
+        },
+        zero_point: 0,
+    }
 }
 
 /// True when a step with main layer `op` (fused input transform: `fused`;

@@ -6,6 +6,16 @@ use crate::graph::{Graph, LayerId, Shape};
 /// Why a graph could not be lowered.
 #[derive(Debug, thiserror::Error)]
 pub enum LowerError {
+    /// A `--wide` layer cannot have its output stored as int16: no such
+    /// layer, no output map of its own, or an output no int16 kernel
+    /// writes.
+    #[error("--wide `{layer}`: {message}")]
+    Wide {
+        /// The layer as given.
+        layer: String,
+        /// Why not.
+        message: String,
+    },
     /// The ranges do not cover every map of the graph.
     #[error("no calibrated range for map `{map}` (the ranges have {got} maps, graph `{graph}` has {expected}); recalibrate")]
     MissingRange {

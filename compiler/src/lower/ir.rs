@@ -387,6 +387,29 @@ pub struct QGraph {
     /// True when the float graph ended in a softmax that was dropped: the
     /// module returns the logits before it.
     pub softmax_dropped: bool,
+    /// The maps stored as int16 (`--wide`), in map order; empty (and not
+    /// serialized) for an all-int8 graph.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub wide: Vec<WideMap>,
+}
+
+/// A map stored as int16 ("wide", `--wide`): two bytes per value in the
+/// arena, quantized symmetrically per tensor (`zero_point` 0,
+/// `scale = max(|min|, |max|) / 32767` of its range, or of its
+/// concatenation region's union range). A wide map is never per slice or
+/// per channel. Its producer's clamp in int8 codes ([`Clamp`]) does not
+/// apply; [`WideMap::min`] and [`WideMap::max`] do.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct WideMap {
+    /// The map.
+    pub map: QMapId,
+    /// Smallest int16 code its producer writes (the fused activation).
+    pub min: i32,
+    /// Largest int16 code its producer writes.
+    pub max: i32,
+    /// The layer named with `--wide` that made it wide: its own name, or
+    /// another member of the same concatenation region.
+    pub because: String,
 }
 
 /// The first inconsistency [`QGraph::verify`] found, naming the step or
@@ -461,6 +484,16 @@ pub enum QGraphError {
     /// No step writes the output map.
     #[error("output map is never written")]
     OutputNeverWritten,
+    /// A wide map is listed twice, out of order, is the network's input or
+    /// output, is not symmetric per tensor, has a clamp outside int16, or
+    /// is read or written by a step that cannot handle it.
+    #[error("wide (int16) map `{map}`: {why}")]
+    Wide {
+        /// Map name (or id when out of range).
+        map: String,
+        /// What is wrong.
+        why: &'static str,
+    },
 }
 
 impl QGraph {
@@ -484,6 +517,35 @@ impl QGraph {
     /// One step.
     pub fn step(&self, id: StepId) -> &QStep {
         &self.steps[id.index()]
+    }
+
+    /// The wide (int16) entry of map `m`, if it is wide.
+    pub fn wide_map(&self, m: QMapId) -> Option<&WideMap> {
+        self.wide.iter().find(|w| w.map == m)
+    }
+
+    /// True when map `m` is stored as int16.
+    pub fn is_wide(&self, m: QMapId) -> bool {
+        self.wide_map(m).is_some()
+    }
+
+    /// The element type of map `m` in the arena.
+    pub fn elem(&self, m: QMapId) -> ingot_rt::wide::Elem {
+        if self.is_wide(m) {
+            ingot_rt::wide::Elem::I16
+        } else {
+            ingot_rt::wide::Elem::I8
+        }
+    }
+
+    /// Bytes one value of map `m` takes (2 for a wide map).
+    pub fn value_bytes(&self, m: QMapId) -> usize {
+        self.elem(m).bytes()
+    }
+
+    /// True when step `s` reads or writes a wide map.
+    pub fn step_is_wide(&self, s: &QStep) -> bool {
+        s.inputs.iter().chain([&s.output]).any(|&m| self.is_wide(m))
     }
 
     /// Ids of all steps in schedule order.
@@ -640,6 +702,73 @@ impl QGraph {
         for m in [self.input, self.output] {
             if self.map(m).qp.is_sliced() {
                 return Err(QGraphError::SlicedEnd(self.map(m).name.clone()));
+            }
+        }
+        self.verify_wide()
+    }
+
+    /// The checks of the wide maps (see [`QGraphError::Wide`]).
+    fn verify_wide(&self) -> Result<(), QGraphError> {
+        let err = |m: QMapId, why| QGraphError::Wide {
+            map: self
+                .maps
+                .get(m.index())
+                .map_or_else(|| format!("#{}", m.0), |x| x.name.clone()),
+            why,
+        };
+        for (i, w) in self.wide.iter().enumerate() {
+            if w.map.index() >= self.maps.len() {
+                return Err(err(w.map, "out of range"));
+            }
+            if i > 0 && self.wide[i - 1].map >= w.map {
+                return Err(err(w.map, "listed twice or out of map order"));
+            }
+            if w.map == self.input || w.map == self.output {
+                return Err(err(w.map, "the network's input and output stay int8"));
+            }
+            match self.map(w.map).qp.tensor() {
+                Some(qp) if qp.zero_point == 0 => {}
+                _ => return Err(err(w.map, "must be symmetric (zero point 0) per tensor")),
+            }
+            if !(-32768..=32767).contains(&w.min)
+                || !(-32768..=32767).contains(&w.max)
+                || w.min > w.max
+            {
+                return Err(err(w.map, "clamp outside int16"));
+            }
+        }
+        for s in &self.steps {
+            if !self.step_is_wide(s) {
+                continue;
+            }
+            let in_wide = s.inputs.first().is_some_and(|&m| self.is_wide(m));
+            let ok = match &s.kernel {
+                // A copy keeps codes: one element type on both sides.
+                QKernel::Concat => s
+                    .inputs
+                    .iter()
+                    .all(|&m| self.is_wide(m) == self.is_wide(s.output)),
+                // The int8 → int8 transforms read an int8 map or, affine,
+                // an int16 one; a channel step writes int8.
+                QKernel::Channel(t) => {
+                    let table = matches!(t, ChannelTransform::Table(_));
+                    !(self.is_wide(s.output) || in_wide && table)
+                }
+                QKernel::Conv2d(c) => {
+                    !(in_wide && matches!(c.transform, Some(ChannelTransform::Table(_))))
+                }
+                _ => true,
+            };
+            if !ok {
+                let m = s
+                    .inputs
+                    .iter()
+                    .chain([&s.output])
+                    .find(|&&m| self.is_wide(m));
+                return Err(err(
+                    *m.unwrap_or(&s.output),
+                    "read or written by a step that cannot handle it",
+                ));
             }
         }
         Ok(())

@@ -38,10 +38,10 @@ mod steps;
 pub use error::LowerError;
 pub use ir::{
     ChannelTransform, Clamp, MapQuant, Multiplier, QAdd, QConv, QGraph, QGraphError, QKernel,
-    QLinear, QMap, QMapId, QParams, QPool, QSlice, QStep, StepId,
+    QLinear, QMap, QMapId, QParams, QPool, QSlice, QStep, StepId, WideMap,
 };
 pub use quant::Activation;
-pub use sim::{RowCall, SimCall, SimError, SimInput, Simulator};
+pub use sim::{wide_op, RowCall, SimCall, SimError, SimInput, Simulator, WideOp};
 
 use crate::graph::{BatchNorm, Conv2d, Graph, LayerId, MapId, Op};
 use crate::ranges::Ranges;
@@ -61,16 +61,23 @@ pub const MAX_POOL_TAPS: usize = (1 << 23) - 1;
 pub const MAX_RANGE_ABS: f32 = 1e9;
 
 /// Choices of the lowering.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Clone, PartialEq, Eq)]
 pub struct LowerOptions {
     /// One weight scale per output channel (default) instead of one per
     /// tensor.
     pub per_channel: bool,
+    /// Layers whose output maps are stored as int16 (`--wide`, already
+    /// resolved from `auto:N`); a member of a concatenation region widens
+    /// the whole region. Empty: all int8.
+    pub wide: Vec<String>,
 }
 
 impl Default for LowerOptions {
     fn default() -> Self {
-        LowerOptions { per_channel: true }
+        LowerOptions {
+            per_channel: true,
+            wide: Vec::new(),
+        }
     }
 }
 
@@ -99,7 +106,17 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         })
     };
 
-    let qp = classes::map_qparams(g, ranges, &roles, &canon, stored)?;
+    let asked = wide_requests(g, &roles, &opts.wide)?;
+    let (qp, wide) = classes::map_qparams(g, ranges, &roles, &canon, stored, &asked)?;
+    if let Some(w) = canon[g.output().index()].and_then(|m| wide[m.index()].clone()) {
+        return Err(LowerError::Wide {
+            layer: w,
+            message: format!(
+                "the network's output `{}` stays int8 (it would be widened with its concatenation region)",
+                g.map_name(g.output())
+            ),
+        });
+    }
 
     // Pass 3: maps and steps.
     let mut b = Builder {
@@ -108,6 +125,8 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         maps: Vec::new(),
         steps: Vec::new(),
         qmap: vec![None; nm],
+        wide_of: wide,
+        wide: Vec::new(),
     };
     let in_qp = qp[0]
         .as_ref()
@@ -159,9 +178,61 @@ pub fn lower(g: &Graph, ranges: &Ranges, opts: &LowerOptions) -> Result<QGraph, 
         pixel_table: pixel_table(g, in_qp),
         output,
         softmax_dropped,
+        wide: b.wide,
     };
     debug_assert_eq!(q.verify(), Ok(()), "lowered graph fails verification");
     Ok(q)
+}
+
+/// The `--wide` layers' output maps, per float map: the layer's name where
+/// asked. A layer must exist and write a map of its own as a step that has
+/// an int16 form (convolution, linear, pooling, add); the network's output
+/// is refused later (with its region).
+fn wide_requests(
+    g: &Graph,
+    roles: &[Role],
+    names: &[String],
+) -> Result<Vec<Option<String>>, LowerError> {
+    let mut asked = vec![None; g.map_count()];
+    for name in names {
+        let err = |message: String| LowerError::Wide {
+            layer: name.clone(),
+            message,
+        };
+        let id = g
+            .find_layer(name)
+            .ok_or_else(|| err(format!("no layer of that name in graph `{}`", g.name())))?;
+        match &roles[id.index()] {
+            Role::Step { out, .. } => match g.layer(id).op {
+                Op::Conv2d(_)
+                | Op::Linear(_)
+                | Op::MaxPool2d(_)
+                | Op::AvgPool2d(_)
+                | Op::GlobalAvgPool
+                | Op::Add
+                | Op::Concat => asked[out.index()] = Some(name.clone()),
+                ref op => {
+                    return Err(err(format!(
+                        "a {} step has no int16 output form (widen the convolution, linear, pooling or add before or after it)",
+                        op.kind()
+                    )))
+                }
+            },
+            Role::Absorbed => {
+                return Err(err(
+                    "has no output map of its own: it is folded into a neighbouring layer's step"
+                        .into(),
+                ))
+            }
+            Role::Alias => {
+                return Err(err(
+                    "has no output map of its own: it stores nothing (an alias of its input)"
+                        .into(),
+                ))
+            }
+        }
+    }
+    Ok(asked)
 }
 
 fn check_ranges(g: &Graph, ranges: &Ranges) -> Result<(), LowerError> {
@@ -251,6 +322,41 @@ pub fn fold_batch_norm(conv: &Conv2d, bn: &BatchNorm) -> (Vec<f32>, Vec<f32>) {
         })
         .collect();
     (w, b)
+}
+
+/// The wide (int16) maps of `q` as report lines: name, shape, the bytes
+/// int16 adds before memory planning, and why (named with `--wide`, or
+/// widened with the concatenation region of a named layer). Empty for an
+/// all-int8 graph.
+pub fn wide_table(q: &QGraph) -> String {
+    use std::fmt::Write;
+    let mut s = String::new();
+    if q.wide.is_empty() {
+        return s;
+    }
+    let extra: usize = q.wide.iter().map(|w| q.map(w.map).shape.len()).sum();
+    let _ = writeln!(
+        s,
+        "int16 maps (--wide): {} map(s), +{} B before memory planning",
+        q.wide.len(),
+        crate::util::group_digits(extra as u64)
+    );
+    for w in &q.wide {
+        let m = q.map(w.map);
+        let why = if m.name == w.because {
+            "named".to_string()
+        } else {
+            format!("concatenation region of `{}`", w.because)
+        };
+        let _ = writeln!(
+            s,
+            "  {:<18} {:>12}  +{:>7} B  {why}",
+            m.name,
+            m.shape.to_string(),
+            crate::util::group_digits(m.shape.len() as u64)
+        );
+    }
+    s
 }
 
 /// RAM the pre-activation input transforms avoid: the int8 batch-norm(-ReLU)

@@ -55,6 +55,14 @@ pub fn dequantize(q: i8, qp: QParams) -> f32 {
     qp.scale * (q as i32 - qp.zero_point) as f32
 }
 
+/// A real value rounded to a code of a wide (int16) map and back:
+/// `scale · clamp(round(v / scale) + zero_point, -32768, 32767) − zero_point`.
+pub fn fake_wide(v: f32, qp: QParams) -> f32 {
+    let q = (round_half_up(v as f64 / qp.scale as f64) + qp.zero_point as f64)
+        .clamp(-32768.0, 32767.0) as i32;
+    qp.scale * (q - qp.zero_point) as f32
+}
+
 /// A real multiplier in the runtime's fixed-point form, or `None` when it is
 /// not representable (non-finite or `|m| >= 2^30`).
 ///
@@ -191,11 +199,26 @@ pub(crate) fn quantize_weights(w: &[f32], rows: usize, per_channel: bool) -> Qua
 /// the reduction. Returns `None` when even `shift = 0` cannot hold a
 /// multiplier (one input step worth more than about 2^22 output steps), or
 /// when `qin` has neither one entry nor one per channel.
+#[cfg(test)]
 pub(crate) fn affine_transform(
     ab: &[(f64, f64)],
     qin: &[QParams],
     qout: QParams,
     clamp: Clamp,
+) -> Option<ChannelTransform> {
+    affine_transform_over(ab, qin, qout, clamp, 255.0)
+}
+
+/// The transform described above (`affine_transform`, of an int8 input) of an input whose codes lie `span` apart at most:
+/// 255 for int8, 65535 for an int16 (wide) map. The saturation argument
+/// and the shift bound use `span`; the int16 kernel (`ingot_rt::wide::WideAffine`)
+/// evaluates in i64, so the i32 bound is only kept for uniformity.
+pub(crate) fn affine_transform_over(
+    ab: &[(f64, f64)],
+    qin: &[QParams],
+    qout: QParams,
+    clamp: Clamp,
+    span: f64,
 ) -> Option<ChannelTransform> {
     if qin.len() != 1 && qin.len() != ab.len() {
         return None;
@@ -214,7 +237,7 @@ pub(crate) fn affine_transform(
             let q = qin[if qin.len() == 1 { 0 } else { c }];
             let m = a * q.scale as f64 / so;
             let fold = if shared { 0.0 } else { q.zero_point as f64 * m };
-            let limit = 255.0 * m.abs() + 1024.0;
+            let limit = span * m.abs() + 1024.0;
             (m, (b / so - fold).clamp(-limit, limit))
         })
         .collect();
@@ -223,7 +246,7 @@ pub(crate) fn affine_transform(
     }
     // One unit of margin per term absorbs the rounding of mul and add.
     let worst = reals.iter().fold(0f64, |acc, &(m, a)| {
-        acc.max(255.0 * (m.abs() + 1.0) + a.abs() + 1.0)
+        acc.max(span * (m.abs() + 1.0) + a.abs() + 1.0)
     });
     let limit = (1u64 << 30) as f64;
     let mut shift: i32 = 29;

@@ -12,9 +12,14 @@
 //! pipelines (a memory plan's streamed steps: [`RowCall`]s over maps
 //! stored as rings, `MapRef::ring`), which must again give identical
 //! results.
+//!
+//! Wide (int16) maps take two bytes per value (`MapRef::offset` in bytes,
+//! see `ingot_rt::wide`); a step that reads or writes one runs the
+//! `ingot_rt::wide` kernels, every other step the int8 ones.
 
 use super::ir::{QGraph, QKernel, QMapId, StepId};
 use super::quant::{self, to_requant, with_runtime_transform};
+use ingot_rt::wide::{self, TypedMap, WideOut};
 use ingot_rt::{MapRef, OutputQuant, PoolQuant, Requant};
 
 /// An input image in one of the forms the simulator accepts.
@@ -103,9 +108,10 @@ impl<'q> Simulator<'q> {
         let refs = q
             .maps
             .iter()
-            .map(|m| {
+            .enumerate()
+            .map(|(i, m)| {
                 let r = MapRef::new(off, m.shape.h, m.shape.w, m.shape.c);
-                off += m.shape.len();
+                off += m.shape.len() * q.value_bytes(QMapId(i as u32));
                 r
             })
             .collect();
@@ -126,8 +132,12 @@ impl<'q> Simulator<'q> {
                 q.maps.len()
             )));
         }
-        for (r, m) in refs.iter().zip(&q.maps) {
-            if (r.h, r.w, r.c) != (m.shape.h, m.shape.w, m.shape.c) || !r.fits(arena_len) {
+        for (i, (r, m)) in refs.iter().zip(&q.maps).enumerate() {
+            let t = TypedMap {
+                map: *r,
+                elem: q.elem(QMapId(i as u32)),
+            };
+            if (r.h, r.w, r.c) != (m.shape.h, m.shape.w, m.shape.c) || !t.fits(arena_len) {
                 return Err(SimError::Layout(format!(
                     "map `{}` {}: {r:?} does not match it or leaves the arena",
                     m.name, m.shape
@@ -278,6 +288,9 @@ impl<'q> Simulator<'q> {
     /// only row-producing kernels are ever given fewer).
     fn step(&mut self, id: StepId, rows: (usize, usize)) -> Result<(), ingot_rt::Error> {
         let s = self.q.step(id);
+        if self.q.step_is_wide(s) {
+            return self.wide_step(id);
+        }
         let out = self.refs[s.output.index()];
         let input = self.refs[s.inputs[0].index()];
         // `QGraph::verify` lets only a concatenation write a per-slice map,
@@ -382,8 +395,36 @@ impl<'q> Simulator<'q> {
         }
     }
 
-    /// The codes of a map after the last run, dense HWC.
+    /// A map as the wide kernels address it.
+    fn typed(&self, m: QMapId) -> TypedMap {
+        TypedMap {
+            map: self.refs[m.index()],
+            elem: self.q.elem(m),
+        }
+    }
+
+    /// Runs a step that reads or writes a wide map, with the kernels of
+    /// `ingot_rt::wide` and the parameters of [`wide_op`] (which the
+    /// generator's calls use too).
+    fn wide_step(&mut self, id: StepId) -> Result<(), ingot_rt::Error> {
+        let q = self.q;
+        let s = q.step(id);
+        let op = wide_op(q, id)?;
+        let inputs: Vec<TypedMap> = s.inputs.iter().map(|&m| self.typed(m)).collect();
+        let output = self.typed(s.output);
+        op.run(&mut self.arena, &inputs, output, &mut self.patch)
+    }
+
+    /// The codes of an int8 map after the last run, dense HWC (a wide
+    /// map's codes saturated to int8; see [`Self::map_values`]).
     pub fn map_hwc(&self, m: QMapId) -> Vec<i8> {
+        if self.q.is_wide(m) {
+            return self
+                .map_values(m)
+                .into_iter()
+                .map(|v| v.clamp(-128, 127) as i8)
+                .collect();
+        }
         let r = self.refs[m.index()];
         let mut v = vec![0; r.len()];
         // The layout was validated on construction, so this cannot fail.
@@ -391,15 +432,231 @@ impl<'q> Simulator<'q> {
         v
     }
 
+    /// A map after the last run as a generated module's trace hook sees
+    /// it: int8 codes, or an int16 map's codes as little-endian byte
+    /// pairs, dense HWC.
+    pub fn map_trace(&self, m: QMapId) -> Vec<i8> {
+        if !self.q.is_wide(m) {
+            return self.map_hwc(m);
+        }
+        self.map_values(m)
+            .into_iter()
+            .flat_map(|v| (v as i16).to_le_bytes())
+            .map(|b| b as i8)
+            .collect()
+    }
+
+    /// The codes of any map (int8 or wide) after the last run, dense HWC.
+    pub fn map_values(&self, m: QMapId) -> Vec<i32> {
+        let t = self.typed(m);
+        let mut v = vec![0i16; t.map.len()];
+        let _ = wide::copy_out_wide(&self.arena, t, &mut v);
+        v.into_iter().map(i32::from).collect()
+    }
+
     /// A map after the last run, dequantized, in the float graph's
-    /// `[C, H, W]` order (for comparison with the float reference).
+    /// `[C, H, W]` order (for comparison with the float reference); wide
+    /// maps with their int16 codes.
     pub fn map_chw_f32(&self, m: QMapId) -> Vec<f32> {
         let map = self.q.map(m);
-        let hwc = self.map_hwc(m);
+        let hwc = self.map_values(m);
         let (c, hw) = (map.shape.c, map.shape.pixels());
         let qps = map.qp.per_channel(c);
         (0..hwc.len())
-            .map(|i| quant::dequantize(hwc[(i % hw) * c + i / hw], qps[i / hw]))
+            .map(|i| {
+                let qp = qps[i / hw];
+                qp.scale * (hwc[(i % hw) * c + i / hw] - qp.zero_point) as f32
+            })
             .collect()
+    }
+}
+
+/// The kernel and parameters of a step that reads or writes a wide map:
+/// the parameters of the int8 step, with the clamp of a wide output from
+/// its [`super::WideMap`]. The simulator runs it ([`WideOp::run`]) and the
+/// generator prints it, so the two cannot differ.
+#[derive(Debug, Clone)]
+#[non_exhaustive]
+pub enum WideOp<'q> {
+    /// `ingot_rt::wide::conv2d_wide`.
+    Conv {
+        /// The layer (weights, bias).
+        conv: &'q super::QConv,
+        /// Geometry, padding value, output clamp.
+        params: wide::WideConvParams,
+        /// Runtime multipliers.
+        requant: Vec<Requant>,
+        /// The fused input transform, in its int8 or int16 form.
+        transform: Option<wide::WideTransform<'q>>,
+    },
+    /// `ingot_rt::wide::linear_wide`.
+    Linear {
+        /// The layer (weights, bias).
+        lin: &'q super::QLinear,
+        /// Runtime multipliers.
+        requant: Vec<Requant>,
+        /// Output zero point and clamp.
+        out: WideOut,
+    },
+    /// `ingot_rt::wide::pool_wide`.
+    Pool {
+        /// Max, average or global average.
+        kind: wide::PoolKind,
+        /// The window (ignored for global pooling).
+        window: ingot_rt::Window,
+        /// Quantization.
+        q: wide::WidePool,
+    },
+    /// `ingot_rt::wide::add_wide`.
+    Add(wide::WideAdd),
+    /// `ingot_rt::wide::copy_channels_wide` of every input into its
+    /// channels of the output.
+    Concat,
+    /// `ingot_rt::wide::channel_wide`.
+    Channel(wide::WideAffine<'q>),
+}
+
+impl WideOp<'_> {
+    /// Runs the step on `arena`: `inputs` in the step's order, a
+    /// concatenation's inputs copied to consecutive channels of `output`.
+    pub fn run(
+        &self,
+        arena: &mut [i8],
+        inputs: &[TypedMap],
+        output: TypedMap,
+        patch: &mut [i16],
+    ) -> Result<(), ingot_rt::Error> {
+        let input = *inputs.first().ok_or(ingot_rt::Error::ShapeMismatch)?;
+        match self {
+            WideOp::Conv {
+                conv,
+                params,
+                requant,
+                transform,
+            } => wide::conv2d_wide(
+                arena,
+                input,
+                output,
+                &conv.weights,
+                &conv.bias,
+                requant,
+                params,
+                transform.as_ref(),
+                patch,
+            ),
+            WideOp::Linear { lin, requant, out } => {
+                wide::linear_wide(arena, input, output, &lin.weights, &lin.bias, requant, *out)
+            }
+            WideOp::Pool { kind, window, q } => {
+                wide::pool_wide(arena, input, output, *kind, window, q)
+            }
+            WideOp::Add(p) => {
+                let b = *inputs.get(1).ok_or(ingot_rt::Error::ShapeMismatch)?;
+                wide::add_wide(arena, input, b, output, p)
+            }
+            WideOp::Concat => {
+                let mut c0 = 0;
+                for &r in inputs {
+                    wide::copy_channels_wide(arena, r, output.channels(c0, r.map.c))?;
+                    c0 += r.map.c;
+                }
+                Ok(())
+            }
+            WideOp::Channel(t) => wide::channel_wide(arena, input, output, t),
+        }
+    }
+}
+
+/// The [`WideOp`] of step `id` (which reads or writes a wide map).
+pub fn wide_op(q: &QGraph, id: StepId) -> Result<WideOp<'_>, ingot_rt::Error> {
+    let s = q.step(id);
+    let first = *s.inputs.first().ok_or(ingot_rt::Error::ShapeMismatch)?;
+    let in_zp = q.map(first).qp.channel(0).zero_point;
+    let out_zp = q.map(s.output).qp.channel(0).zero_point;
+    let out = |c: super::Clamp| match q.wide_map(s.output) {
+        Some(w) => WideOut {
+            zero_point: 0,
+            min: w.min,
+            max: w.max,
+        },
+        None => WideOut {
+            zero_point: out_zp,
+            min: c.min as i32,
+            max: c.max as i32,
+        },
+    };
+    Ok(match &s.kernel {
+        QKernel::Conv2d(c) => WideOp::Conv {
+            conv: c,
+            params: wide::WideConvParams {
+                window: c.runtime_window(),
+                groups: c.groups,
+                input_zp: c.input_zp,
+                out: out(c.clamp),
+            },
+            requant: c.requant.iter().map(|&m| to_requant(m)).collect(),
+            transform: match &c.transform {
+                None => None,
+                Some(t) if q.is_wide(first) => Some(wide::WideTransform::Affine(wide_affine(t)?)),
+                Some(t) => Some(wide::WideTransform::Int8(t.runtime())),
+            },
+        },
+        QKernel::Linear(l) => WideOp::Linear {
+            lin: l,
+            requant: l.requant.iter().map(|&m| to_requant(m)).collect(),
+            out: out(l.clamp),
+        },
+        QKernel::MaxPool(p) | QKernel::AvgPool(p) | QKernel::GlobalAvgPool(p) => WideOp::Pool {
+            kind: match s.kernel {
+                QKernel::MaxPool(_) => wide::PoolKind::Max,
+                QKernel::AvgPool(_) => wide::PoolKind::Avg,
+                _ => wide::PoolKind::Global,
+            },
+            window: p.runtime_window(),
+            q: wide::WidePool {
+                in_zp,
+                requant: p.requant.map(to_requant),
+                out: out(p.clamp),
+            },
+        },
+        QKernel::Add(a) => {
+            let second = *s.inputs.get(1).ok_or(ingot_rt::Error::ShapeMismatch)?;
+            WideOp::Add(wide::WideAdd {
+                a_zp: in_zp,
+                b_zp: q.map(second).qp.channel(0).zero_point,
+                a_rq: to_requant(a.a),
+                b_rq: to_requant(a.b),
+                out_rq: to_requant(a.out),
+                left_shift: a.left_shift,
+                out: out(a.clamp),
+            })
+        }
+        QKernel::Concat => WideOp::Concat,
+        QKernel::Channel(t) => WideOp::Channel(wide_affine(t)?),
+    })
+}
+
+/// The int16-input form of an int8-domain affine transform: the same
+/// coefficients, clamp and zero points, evaluated in i64 over int16 codes.
+/// A table has no int16 form (`QGraph::verify` refuses it on a wide input).
+fn wide_affine(t: &super::ChannelTransform) -> Result<wide::WideAffine<'_>, ingot_rt::Error> {
+    match t {
+        super::ChannelTransform::Affine {
+            mul,
+            add,
+            shift,
+            zp_in,
+            zp_out,
+            clamp,
+        } => Ok(wide::WideAffine {
+            mul,
+            add,
+            shift: *shift,
+            zp_in: *zp_in,
+            zp_out: *zp_out,
+            min: clamp.min as i32,
+            max: clamp.max as i32,
+        }),
+        super::ChannelTransform::Table(_) => Err(ingot_rt::Error::BadParams),
     }
 }

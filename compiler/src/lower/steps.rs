@@ -3,7 +3,9 @@
 //! bound checked, one [`QStep`] per step role.
 
 use super::fusion::{act_of, is_pool, step_reads, PreAct};
-use super::quant::{self, activation_clamp, affine_transform, multiplier, quantize_weights};
+use super::quant::{
+    self, activation_clamp, affine_transform_over, multiplier, quantize_weights, round_half_up,
+};
 use super::*;
 use crate::graph::Shape;
 use quant::activation_qparams;
@@ -48,6 +50,21 @@ pub(super) struct Builder<'a> {
     pub(super) steps: Vec<QStep>,
     /// Stored map of each (canonical) float map.
     pub(super) qmap: Vec<Option<QMapId>>,
+    /// Per float map: the `--wide` layer that makes it int16.
+    pub(super) wide_of: Vec<Option<String>>,
+    /// The wide maps made so far.
+    pub(super) wide: Vec<WideMap>,
+}
+
+/// The clamp of activation `act` in int16 codes of a symmetric map of
+/// scale `s`: none `[-32768, 32767]`, ReLU `[0, 32767]`, ReLU6
+/// `[0, min(32767, round(6/s))]`.
+fn wide_clamp(act: Activation, s: f32) -> (i32, i32) {
+    match act {
+        Activation::None => (-32768, 32767),
+        Activation::Relu => (0, 32767),
+        Activation::Relu6 => (0, round_half_up(6.0 / s as f64).min(32767.0) as i32),
+    }
 }
 
 impl Builder<'_> {
@@ -135,6 +152,16 @@ impl Builder<'_> {
             }
         };
         let clamp = activation_clamp(act, out_qp);
+        let out_wide = self.wide_of[out.index()].clone();
+        if out_wide.is_some() && matches!(layer.op, Op::BatchNorm(_) | Op::Relu | Op::Relu6) {
+            return Err(LowerError::Wide {
+                layer: out_wide.unwrap_or_default(),
+                message: format!(
+                    "`{}` would write an int16 map, and a channel step writes int8",
+                    layer.name
+                ),
+            });
+        }
         // Inputs as stored; a pre-activation convolution reads the batch
         // norm's input.
         let read = step_reads(&layer.inputs, pre.as_ref());
@@ -158,6 +185,11 @@ impl Builder<'_> {
             .first()
             .map(|q| q.per_channel(g.shape(read[0]).c))
             .unwrap_or_default();
+        let in_wide = inputs
+            .first()
+            .is_some_and(|q| self.wide.iter().any(|w| w.map == *q));
+        // The largest distance of two input codes (the transforms' bound).
+        let span = if in_wide { 65535.0 } else { 255.0 };
         // A pooling passes per-channel parameters on unchanged.
         let passes = is_pool(&layer.op) && in_q.first() == Some(&out_q);
         let absorbs = super::classes::absorbs_slices(&layer.op, pre.is_some()) || passes;
@@ -189,14 +221,19 @@ impl Builder<'_> {
                             .iter()
                             .map(|&(a, b)| (a as f64, b as f64))
                             .collect();
-                        let t =
-                            affine_transform(&ab, &in_channels, dom, activation_clamp(p.act, dom))
-                                .ok_or_else(|| LowerError::Multiplier {
-                                    layer: g.layer(p.bn).name.clone(),
-                                    op: "batch_norm",
-                                    what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
-                                    value: max_ratio(&ab, &in_channels, dom),
-                                })?;
+                        let t = affine_transform_over(
+                            &ab,
+                            &in_channels,
+                            dom,
+                            activation_clamp(p.act, dom),
+                            span,
+                        )
+                        .ok_or_else(|| LowerError::Multiplier {
+                            layer: g.layer(p.bn).name.clone(),
+                            op: "batch_norm",
+                            what: "input transform multiplier γ·s_in/(σ·s_out)".into(),
+                            value: max_ratio(&ab, &in_channels, dom),
+                        })?;
                         (Some(t), dom)
                     }
                 };
@@ -240,6 +277,7 @@ impl Builder<'_> {
                     &out_q,
                     g.shape(read[0]),
                     out_shape,
+                    in_wide && transform.is_none(),
                 )?;
                 QKernel::Conv2d(QConv {
                     out_channels: conv.out_channels,
@@ -277,8 +315,8 @@ impl Builder<'_> {
                     .as_ref()
                     .map_or_else(|| vec![0.0; lin.out_features], |t| t.data.clone());
                 let bias = shifted(ranges, &layer.name, bias);
-                let (bias, requant) =
-                    self.bias_and_requant(id, &qw, &bias, in_qp[0], &out_q, src, out_shape)?;
+                let (bias, requant) = self
+                    .bias_and_requant(id, &qw, &bias, in_qp[0], &out_q, src, out_shape, in_wide)?;
                 QKernel::Linear(QLinear {
                     out_features: lin.out_features,
                     in_features: lin.in_features,
@@ -374,7 +412,7 @@ impl Builder<'_> {
                     .iter()
                     .map(|&(a, b)| (a as f64, b as f64))
                     .collect();
-                QKernel::Channel(self.transform(id, &ab, &in_channels, out_qp, clamp)?)
+                QKernel::Channel(self.transform(id, &ab, &in_channels, out_qp, clamp, span)?)
             }
             Op::Relu | Op::Relu6 => {
                 let act = act_of(&layer.op).unwrap_or(Activation::None);
@@ -385,6 +423,7 @@ impl Builder<'_> {
                     &in_channels,
                     out_qp,
                     activation_clamp(act, out_qp),
+                    span,
                 )?)
             }
             Op::Dropout | Op::Flatten | Op::Softmax => {
@@ -396,6 +435,15 @@ impl Builder<'_> {
         };
         let stored_shape = out_shape;
         let qid = self.add_map(out, out_q, stored_shape);
+        if let Some(because) = out_wide {
+            let (min, max) = wide_clamp(act, out_qp.scale);
+            self.wide.push(WideMap {
+                map: qid,
+                min,
+                max,
+                because,
+            });
+        }
         self.steps.push(QStep {
             name: layer.name.clone(),
             layers,
@@ -413,8 +461,9 @@ impl Builder<'_> {
         qin: &[QParams],
         qout: QParams,
         clamp: Clamp,
+        span: f64,
     ) -> Result<ChannelTransform, LowerError> {
-        affine_transform(ab, qin, qout, clamp).ok_or_else(|| LowerError::Multiplier {
+        affine_transform_over(ab, qin, qout, clamp, span).ok_or_else(|| LowerError::Multiplier {
             layer: self.g.layer(id).name.clone(),
             op: self.g.layer(id).op.kind(),
             what: "channel transform multiplier a·s_in/s_out".into(),
@@ -435,6 +484,7 @@ impl Builder<'_> {
         qout: &MapQuant,
         in_shape: Shape,
         out_shape: Shape,
+        wide_in: bool,
     ) -> Result<(Vec<i32>, Vec<Multiplier>), LowerError> {
         let layer = self.g.layer(id);
         let rows = qw.scales.len();
@@ -455,7 +505,9 @@ impl Builder<'_> {
                 });
             }
             let f = f as i32;
-            if !ingot_rt::acc_fits(row, f) {
+            // An int16 input is summed in i64 where the i32 bound fails
+            // (`ingot_rt::wide`), so only int8 inputs are bounded here.
+            if !wide_in && !ingot_rt::acc_fits(row, f) {
                 return Err(LowerError::AccumulatorOverflow {
                     layer: layer.name.clone(),
                     op: layer.op.kind(),

@@ -357,7 +357,8 @@ fn finalize(q: &QGraph, st: &regions::Storage, order: &[usize], opts: &PlanOptio
                 let whole = sl.chan == 0
                     && sl.stride == q.map(i).shape.c
                     && st.bytes[b] == q.map(i).shape.len();
-                if b == ob || !whole || q.map(i).shape != q.map(o).shape {
+                // An int8 buffer cannot take an int16 (`--wide`) output.
+                if b == ob || !whole || q.map(i).shape != q.map(o).shape || q.elem(i) != q.elem(o) {
                     continue;
                 }
                 let Some((_, last)) = iv[b] else { continue };

@@ -277,7 +277,7 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
         }
         maps.extend_from_slice(rl);
         buffers.push(maps);
-        bytes.push(q.map(out).shape.len());
+        bytes.push(q.map(out).shape.len() * q.value_bytes(out));
         is_region.push(true);
     }
     for (i, slot) in slots.iter_mut().enumerate() {
@@ -289,7 +289,7 @@ pub(crate) fn analyze(q: &QGraph, opts: &PlanOptions, forced_copy: &[bool]) -> S
                 stride: chans(m),
             });
             buffers.push(vec![m]);
-            bytes.push(q.map(m).shape.len());
+            bytes.push(q.map(m).shape.len() * q.value_bytes(m));
             is_region.push(false);
         }
     }

@@ -36,12 +36,13 @@ impl Schedule {
     pub fn naive(q: &QGraph) -> Schedule {
         let mut views = Vec::with_capacity(q.maps.len());
         let mut at = 0;
-        for m in &q.maps {
+        for (i, m) in q.maps.iter().enumerate() {
             views.push(MapView {
                 offset: at,
                 stride: m.shape.c,
             });
-            at += m.shape.len();
+            // An int16 (`--wide`) map takes two bytes a value.
+            at += m.shape.len() * q.value_bytes(crate::lower::QMapId(i as u32));
         }
         Schedule {
             order: q.step_ids().collect(),

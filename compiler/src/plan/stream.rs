@@ -150,6 +150,12 @@ pub(crate) struct Streaming {
 
 /// Candidate edges of an order (`order[p]` streams into `order[p + 1]`).
 #[allow(clippy::too_many_arguments)]
+/// True when `s` reads or writes an int16 map: the `ingot_rt::wide`
+/// kernels compute whole maps only, so such a step never joins a pipeline.
+fn touches_wide(q: &QGraph, s: &crate::lower::QStep) -> bool {
+    s.inputs.iter().chain([&s.output]).any(|&m| q.is_wide(m))
+}
+
 fn candidates(
     q: &QGraph,
     order: &[usize],
@@ -184,6 +190,8 @@ fn candidates(
             || is_region[b]
             || buffer_maps[b].len() != 1
             || !cons.inputs.contains(&m)
+            || touches_wide(q, prod)
+            || touches_wide(q, cons)
         {
             continue;
         }

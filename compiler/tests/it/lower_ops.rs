@@ -299,7 +299,15 @@ fn per_channel_weights_are_no_worse_than_per_tensor() {
     };
     let r = common::flat_ranges(&g, -1.0, 1.0);
     let get = |per_channel| {
-        let q = lower(&g, &r, &LowerOptions { per_channel }).unwrap();
+        let q = lower(
+            &g,
+            &r,
+            &LowerOptions {
+                per_channel,
+                ..Default::default()
+            },
+        )
+        .unwrap();
         let QKernel::Conv2d(c) = &q.steps[0].kernel else {
             panic!()
         };

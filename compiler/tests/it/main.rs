@@ -34,4 +34,5 @@ mod sensitivity;
 mod slices;
 mod stats;
 mod stream;
+mod wide;
 mod zoo_reference;

@@ -9,6 +9,9 @@
 //! they reach keeps that call alive and fails the link (the "panic never"
 //! technique, common practice in embedded Rust).
 //!
+//! Modules with int16 (`--wide`) maps are held to the same
+//! (`wide_modules_link_without_panic_paths`).
+//!
 //! The 121-layer network is left out by default (it reaches no kernel the
 //! smaller dense network does not, and its module adds tens of seconds of
 //! rustc); `INGOT_PANIC_NEVER_LARGE=1` adds it.
@@ -148,6 +151,81 @@ fn zoo_modules_link_without_panic_paths() {
             let gen = generate(
                 &q,
                 &s,
+                &GenOptions {
+                    module: name.into(),
+                    weight_form: form,
+                    ..GenOptions::default()
+                },
+            )
+            .unwrap();
+            let m = write_module(
+                &out_dir().join(format!("{name}-{triple}")),
+                gen.files(name),
+                name,
+            );
+            assert_links(&m, triple, &cfg);
+        }
+    }
+}
+
+/// Modules with int16 (`--wide`) maps: the demo with both dense blocks
+/// and the transition layer widened (int16 convolution, pooling, channel
+/// transform, in-place concatenation), the residual network with an int16
+/// addition and projection, the depthwise network with an int16
+/// depthwise convolution and a pooling read by the linear layer.
+#[test]
+fn wide_modules_link_without_panic_paths() {
+    if !targets_or_skip() {
+        return;
+    }
+    let cfg = cfg();
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("..");
+    let model = root.join("examples/demo/model");
+    let demo = ingot_compiler::load(&model.join("brackets.graph.json")).unwrap();
+    let demo_ranges =
+        ingot_compiler::ranges::Ranges::load(&demo, &model.join("brackets.ranges.json"), None)
+            .unwrap();
+    let residual = zoo::residual(&zoo::ResidualConfig::default(), 13);
+    let depthwise = zoo::depthwise_separable(&zoo::DepthwiseConfig::default(), 14);
+    let nets = [
+        (
+            "wide_demo",
+            demo,
+            demo_ranges,
+            &["stem", "t1.conv", "t1.pool"][..],
+        ),
+        (
+            "wide_residual",
+            residual.build(),
+            residual.minmax_ranges(),
+            &["block1.add", "block2.shortcut.conv"][..],
+        ),
+        (
+            "wide_depthwise",
+            depthwise.build(),
+            depthwise.minmax_ranges(),
+            &["block2.dw", "pool"][..],
+        ),
+    ];
+    for (name, g, r, wide) in nets {
+        let opts = LowerOptions {
+            wide: wide.iter().map(|s| s.to_string()).collect(),
+            ..LowerOptions::default()
+        };
+        let q = lower(&g, &r, &opts).unwrap();
+        assert!(!q.wide.is_empty());
+        for (triple, form) in TARGETS {
+            let p = plan(
+                &q,
+                &PlanOptions {
+                    weight_form: form,
+                    ..PlanOptions::default()
+                },
+            )
+            .unwrap();
+            let gen = generate(
+                &q,
+                &schedule_of(&q, &p),
                 &GenOptions {
                     module: name.into(),
                     weight_form: form,

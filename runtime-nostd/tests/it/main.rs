@@ -12,3 +12,4 @@ mod kernels;
 mod no_std;
 mod requant;
 mod rows;
+mod wide;

@@ -292,7 +292,7 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
                         a_zp: #az, b_zp: #bz, a_rq: #ar, b_rq: #br, out_rq: #or, left_shift: #ls, out: #o,
                     };));
                 }
-                Call::Linear { .. } | Call::Copy { .. } | Call::Channel { .. } => {}
+                Call::Linear { .. } | Call::Copy { .. } | Call::Channel { .. } | Call::Wide(_) => {}
             }
         }
     }

@@ -118,6 +118,7 @@ pub(super) fn checked_calls(ctx: &Ctx<'_>) -> TokenStream {
                         quote!(ingot_rt::checked::ChannelTransform::new(#i, #o, #t)),
                     )
                 }
+                Call::Wide(w) => super::wide::checked(ctx, stem, w),
             };
             let k = call_id(stem, k, n);
             items.extend(quote! {
@@ -168,6 +169,7 @@ pub(super) fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
                         let kid = call_id(stem, j, n);
                         body.extend(match c {
                             Call::Conv { .. } => quote!(#kid.run(arena, patch);),
+                            Call::Wide(w) => super::wide::run(&kid, w),
                             _ => quote!(#kid.run(arena);),
                         });
                     }
@@ -176,7 +178,7 @@ pub(super) fn forward_body(ctx: &Ctx<'_>) -> TokenStream {
             };
         for (k, st) in traced {
             let k = us(k);
-            let out = map_ref(crate::codegen::calls::map_ref(
+            let out = map_ref(crate::codegen::calls::trace_ref(
                 ctx.q,
                 ctx.s,
                 ctx.q.step(st).output,

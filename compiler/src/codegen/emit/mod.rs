@@ -14,6 +14,7 @@ use std::fmt::Write as _;
 
 mod data;
 mod forward;
+mod wide;
 
 use data::data_module;
 use forward::forward_body;
@@ -160,7 +161,7 @@ pub fn module(ctx: &Ctx<'_>) -> String {
     let trace_bytes = us(ctx
         .calls
         .iter()
-        .map(|c| super::calls::map_ref(q, s, q.step(c.step).output))
+        .map(|c| super::calls::trace_ref(q, s, q.step(c.step).output))
         .filter(|m| m.stride != m.c && m.pixels() > 1 && !m.is_ring())
         .map(|m| m.len())
         .max()
