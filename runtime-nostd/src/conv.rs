@@ -1367,8 +1367,15 @@ impl<T: Packed> RowKernel<'_, T> {
     /// Output row `oy` (its arena base `out_row`) from the rows in `ring`.
     #[inline(never)]
     fn row(&self, arena: &mut [i8], ring: &[i16], oy: usize, out_row: usize) {
-        let (m, kh, row_len, c, run) = (self.m, self.kh, self.row_len, self.c, self.run);
+        let (m, row_len, c, run) = (self.m, self.row_len, self.c, self.run);
+        // Kernel row ky of output row oy reads ring slot (oy + ky) mod kh:
+        // from slot oy mod kh the slots go up by one and wrap once, so a
+        // pixel steps an index instead of dividing per kernel row.
+        let ring_len = self.kh.get() * row_len;
+        let first = (oy % self.kh) * row_len;
         for ox in 0..self.out_w {
+            // `at` of kernel row 0, and the value where `at` wraps.
+            let (at0, wrap) = (first + ox * c, ring_len + ox * c);
             let dst = out_row + ox * self.out_stride;
             let Some(out) = arena.get_mut(dst..dst + m) else {
                 return;
@@ -1389,14 +1396,18 @@ impl<T: Packed> RowKernel<'_, T> {
                     return;
                 };
                 let mut acc = [0i32; 4];
-                for (ky, wk) in block.chunks_exact((4 * self.row_pairs).max(1)).enumerate() {
-                    let at = ((oy + ky) % kh) * row_len + ox * c;
+                let mut at = at0;
+                for wk in block.chunks_exact((4 * self.row_pairs).max(1)) {
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
                     let part = T::dot4(x, wk);
                     for (a, v) in acc.iter_mut().zip(part) {
                         *a = a.wrapping_add(v);
+                    }
+                    at += row_len;
+                    if at >= wrap {
+                        at -= ring_len;
                     }
                 }
                 requantize_into(o, &acc, b, r, self.out_q);
@@ -1405,16 +1416,16 @@ impl<T: Packed> RowKernel<'_, T> {
             if left > 0 {
                 let mut acc = [0i32; 3];
                 let acc = &mut acc[..left];
-                for (ky, wk) in self
-                    .rest
-                    .chunks_exact((left * self.row_pairs).max(1))
-                    .enumerate()
-                {
-                    let at = ((oy + ky) % kh) * row_len + ox * c;
+                let mut at = at0;
+                for wk in self.rest.chunks_exact((left * self.row_pairs).max(1)) {
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
                     T::few(x, wk, acc);
+                    at += row_len;
+                    if at >= wrap {
+                        at -= ring_len;
+                    }
                 }
                 requantize_into(out_left, acc, self.bias_left, self.rq_left, self.out_q);
             }
