@@ -1203,8 +1203,8 @@ trait Packed: Copy {
     const ELEMS: usize;
     /// Stored elements per unit and row.
     const STORE: usize;
-    /// Four rows of a block against the patch `x`.
-    fn dot4(x: &[i16], w: &[Self]) -> [i32; 4];
+    /// Four rows of a block against the patch `x`, added into `acc`.
+    fn dot4(x: &[i16], w: &[Self], acc: &mut [i32; 4]);
     /// The one to three rows of a last block, added into `acc`.
     fn few(x: &[i16], w: &[Self], acc: &mut [i32]);
 }
@@ -1213,8 +1213,10 @@ impl Packed for u32 {
     const ELEMS: usize = 2;
     const STORE: usize = 1;
     #[inline(always)]
-    fn dot4(x: &[i16], w: &[u32]) -> [i32; 4] {
-        dot4_pairs(x, w)
+    fn dot4(x: &[i16], w: &[u32], acc: &mut [i32; 4]) {
+        for (a, v) in acc.iter_mut().zip(dot4_pairs(x, w)) {
+            *a = a.wrapping_add(v);
+        }
     }
     #[inline(always)]
     fn few(x: &[i16], w: &[u32], acc: &mut [i32]) {
@@ -1226,8 +1228,8 @@ impl Packed for u8 {
     const ELEMS: usize = 4;
     const STORE: usize = 4;
     #[inline(always)]
-    fn dot4(x: &[i16], w: &[u8]) -> [i32; 4] {
-        dot4_words(x, w)
+    fn dot4(x: &[i16], w: &[u8], acc: &mut [i32; 4]) {
+        dot4_words(x, w, acc)
     }
     #[inline(always)]
     fn few(x: &[i16], w: &[u8], acc: &mut [i32]) {
@@ -1401,10 +1403,7 @@ impl<T: Packed> RowKernel<'_, T> {
                     let Some(x) = ring.get(at..at + run) else {
                         return;
                     };
-                    let part = T::dot4(x, wk);
-                    for (a, v) in acc.iter_mut().zip(part) {
-                        *a = a.wrapping_add(v);
-                    }
+                    T::dot4(x, wk, &mut acc);
                     at += row_len;
                     if at >= wrap {
                         at -= ring_len;
@@ -1510,7 +1509,8 @@ fn paired_rows<T: Packed>(
         let (Some(block), Some(b), Some(r)) = (blocks.next(), bs.next(), rs.next()) else {
             return;
         };
-        let acc = T::dot4(xw, block);
+        let mut acc = [0i32; 4];
+        T::dot4(xw, block, &mut acc);
         requantize_into(o, &acc, b, r, out_q);
     }
     let left = m % 4;

@@ -303,13 +303,16 @@ fn quad_words(x: &[i16]) -> (u32, u32) {
 /// [`word_rows_into`](crate::word_rows_into)) against the patch `x`: `w` holds, for
 /// every quad `q < ⌈x.len() / 4⌉` of patch elements, one word (four
 /// bytes) of each of the four rows. A last partial quad of `x` is padded
-/// with zeros (its weights are zero there too).
+/// with zeros (its weights are zero there too). Adds the four sums into
+/// `acc`: a caller summing several calls (one per kernel row) then keeps
+/// its accumulators in memory the callee reads and writes once, instead
+/// of copying a returned array back and adding it per call.
 #[inline(never)]
-pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
-    let (mut a, mut b, mut c, mut d) = (0i32, 0i32, 0i32, 0i32);
+pub(crate) fn dot4_words(x: &[i16], w: &[u8], acc: &mut [i32; 4]) {
+    let [mut a, mut b, mut c, mut d] = *acc;
     let full = (x.len() / 4).min(w.len() / 16);
     let (Some(mut xs), Some(mut ws)) = (x.get(..4 * full), w.get(..16 * full)) else {
-        return [0; 4];
+        return;
     };
     // Both slices shrink from the front (one pointer each, one count),
     // and an empty inline-asm statement between the rows keeps LLVM from
@@ -350,7 +353,7 @@ pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
             d = mac_quad(d, x01, x23, word_at(q, 12));
         }
     }
-    [a, b, c, d]
+    *acc = [a, b, c, d];
 }
 
 /// `acc.len()` (1 to 3) rows in the word layout, as [`dot4_words`] with a
