@@ -1414,7 +1414,10 @@ impl<T: Packed> RowKernel<'_, T> {
             let left = self.left;
             if left > 0 {
                 let mut acc = [0i32; 3];
-                let acc = &mut acc[..left];
+                // `left` is a field here, not `m % 4`: `get_mut`, no panic path.
+                let Some(acc) = acc.get_mut(..left) else {
+                    return;
+                };
                 let mut at = at0;
                 for wk in self.rest.chunks_exact((left * self.row_pairs).max(1)) {
                     let Some(x) = ring.get(at..at + run) else {

@@ -531,4 +531,32 @@ mod tests {
             );
         }
     }
+
+    /// `dot4_words` adds each row's sum into what `acc` held: several
+    /// calls (one per kernel row) sum like one over the joined patch. The
+    /// reference is the plain i32 wrapping sum of products (common
+    /// practice); the layout is `word_rows_into`'s, padded quads included.
+    #[test]
+    fn words_add_into_the_accumulators() {
+        for n in [1, 3, 4, 5, 16, 27, 48, 145] {
+            let (x, w) = data(0x9e37_79b9 ^ n as u32);
+            let x = &x[..n];
+            let mut rows = [0i8; 4 * MAX];
+            for (r, row) in w.iter().enumerate() {
+                rows[r * n..(r + 1) * n].copy_from_slice(&row[..n]);
+            }
+            let mut packed = [0u8; 4 * (MAX + 3)];
+            let len = crate::words_len(4, n);
+            crate::word_rows_into(&rows[..4 * n], 4, n, &mut packed[..len]).unwrap();
+            let start = [7, -1_000_000, i32::MAX, i32::MIN];
+            let mut acc = start;
+            dot4_words(x, &packed[..len], &mut acc);
+            for r in 0..4 {
+                let sum = x.iter().zip(&w[r][..n]).fold(start[r], |s, (&a, &b)| {
+                    s.wrapping_add(i32::from(a) * i32::from(b))
+                });
+                assert_eq!(acc[r], sum, "n={n} row {r}");
+            }
+        }
+    }
 }
