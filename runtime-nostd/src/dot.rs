@@ -303,13 +303,16 @@ fn quad_words(x: &[i16]) -> (u32, u32) {
 /// [`word_rows_into`](crate::word_rows_into)) against the patch `x`: `w` holds, for
 /// every quad `q < ⌈x.len() / 4⌉` of patch elements, one word (four
 /// bytes) of each of the four rows. A last partial quad of `x` is padded
-/// with zeros (its weights are zero there too).
+/// with zeros (its weights are zero there too). Adds the four sums into
+/// `acc`: a caller summing several calls (one per kernel row) then keeps
+/// its accumulators in memory the callee reads and writes once, instead
+/// of copying a returned array back and adding it per call.
 #[inline(never)]
-pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
-    let (mut a, mut b, mut c, mut d) = (0i32, 0i32, 0i32, 0i32);
+pub(crate) fn dot4_words(x: &[i16], w: &[u8], acc: &mut [i32; 4]) {
+    let [mut a, mut b, mut c, mut d] = *acc;
     let full = (x.len() / 4).min(w.len() / 16);
     let (Some(mut xs), Some(mut ws)) = (x.get(..4 * full), w.get(..16 * full)) else {
-        return [0; 4];
+        return;
     };
     // Both slices shrink from the front (one pointer each, one count),
     // and an empty inline-asm statement between the rows keeps LLVM from
@@ -350,7 +353,7 @@ pub(crate) fn dot4_words(x: &[i16], w: &[u8]) -> [i32; 4] {
             d = mac_quad(d, x01, x23, word_at(q, 12));
         }
     }
-    [a, b, c, d]
+    *acc = [a, b, c, d];
 }
 
 /// `acc.len()` (1 to 3) rows in the word layout, as [`dot4_words`] with a
@@ -526,6 +529,34 @@ mod tests {
                 dot4_wide([x, x, x, x], [a, b, c, d]),
                 "n={n}"
             );
+        }
+    }
+
+    /// `dot4_words` adds each row's sum into what `acc` held: several
+    /// calls (one per kernel row) sum like one over the joined patch. The
+    /// reference is the plain i32 wrapping sum of products (common
+    /// practice); the layout is `word_rows_into`'s, padded quads included.
+    #[test]
+    fn words_add_into_the_accumulators() {
+        for n in [1, 3, 4, 5, 16, 27, 48, 145] {
+            let (x, w) = data(0x9e37_79b9 ^ n as u32);
+            let x = &x[..n];
+            let mut rows = [0i8; 4 * MAX];
+            for (r, row) in w.iter().enumerate() {
+                rows[r * n..(r + 1) * n].copy_from_slice(&row[..n]);
+            }
+            let mut packed = [0u8; 4 * (MAX + 3)];
+            let len = crate::words_len(4, n);
+            crate::word_rows_into(&rows[..4 * n], 4, n, &mut packed[..len]).unwrap();
+            let start = [7, -1_000_000, i32::MAX, i32::MIN];
+            let mut acc = start;
+            dot4_words(x, &packed[..len], &mut acc);
+            for r in 0..4 {
+                let sum = x.iter().zip(&w[r][..n]).fold(start[r], |s, (&a, &b)| {
+                    s.wrapping_add(i32::from(a) * i32::from(b))
+                });
+                assert_eq!(acc[r], sum, "n={n} row {r}");
+            }
         }
     }
 }
