@@ -120,10 +120,12 @@ impl TypedMap {
         }
     }
 
-    /// One past the map's last byte, `None` on overflow.
+    /// One past the map's last stored byte (a ring stores `rows` rows),
+    /// `None` on overflow.
     pub const fn end(&self) -> Option<usize> {
         let m = &self.map;
-        let px = match m.h.checked_mul(m.w) {
+        let rows = if m.rows < m.h { m.rows } else { m.h };
+        let px = match rows.checked_mul(m.w) {
             Some(p) => p,
             None => return None,
         };
@@ -205,8 +207,12 @@ impl TypedMap {
         (y * self.map.w + x) * self.map.stride + ch
     }
 
+    /// The kernels of this module address whole maps only: a ring (a map
+    /// storing fewer rows than it has, see `MapRef::ring`) is refused.
     const fn check(&self, arena_len: usize) -> Result<(), Error> {
-        if self.fits(arena_len) {
+        if self.map.rows < self.map.h {
+            Err(Error::BadParams)
+        } else if self.fits(arena_len) {
             Ok(())
         } else {
             Err(Error::MapOutOfBounds)
