@@ -391,15 +391,20 @@ pub(super) fn data_module(ctx: &Ctx<'_>, lits: &mut Literals) -> TokenStream {
     }
 }
 
-fn pool_quant(p: &ingot_rt::PoolQuant) -> TokenStream {
-    let z = int(p.in_zp as i64);
-    let r = match &p.requant {
+/// `Some(requant)` or `None`: a pooling's optional rescale, int8 or int16.
+pub(super) fn opt_requant(r: Option<&ingot_rt::Requant>) -> TokenStream {
+    match r {
         Some(r) => {
             let r = requant(r);
             quote!(Some(#r))
         }
         None => quote!(None),
-    };
+    }
+}
+
+fn pool_quant(p: &ingot_rt::PoolQuant) -> TokenStream {
+    let z = int(p.in_zp as i64);
+    let r = opt_requant(p.requant.as_ref());
     let o = out_quant(&p.out);
     quote!(ingot_rt::PoolQuant { in_zp: #z, requant: #r, out: #o })
 }

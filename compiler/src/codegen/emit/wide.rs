@@ -104,13 +104,7 @@ pub(super) fn checked(ctx: &Ctx<'_>, stem: &str, w: &WideCall<'_>) -> (TokenStre
             };
             let win = window(win);
             let z = int(q.in_zp as i64);
-            let r = match &q.requant {
-                Some(r) => {
-                    let r = requant(r);
-                    quote!(Some(#r))
-                }
-                None => quote!(None),
-            };
+            let r = super::data::opt_requant(q.requant.as_ref());
             let out = wide_out(&q.out);
             (
                 quote!(ingot_rt::wide::checked::Pool<#a>),
