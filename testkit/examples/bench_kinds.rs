@@ -3,7 +3,7 @@
 //!
 //! ```text
 //! cargo run --release -p ingot-testkit --example bench_kinds -- \
-//!     [--on m4,m7,m33,m33+dsp,m0plus] [--all] [--weight-form int8|words|pairs] [--images N] [--out DIR]
+//!     [--on m4,m7,m33,m33+dsp,m0plus] [--all] [--weight-form int8|words|pairs] [--no-stream] [--images N] [--out DIR]
 //! ```
 //!
 //! The networks are `depthwise_separable(&DepthwiseConfig::howard2017(0.25))`
@@ -25,7 +25,10 @@
 //! Default `m4`; `--all` is `m4,m7,m33,m33+dsp,m0plus`. `--weight-form`
 //! forces one convolution weight form on every core (default: each
 //! core's, as `ingot check --on CORE` chooses: words on M4/M7, int8
-//! elsewhere); `--images` sets how many pictures are checked (default 2;
+//! elsewhere); `--no-stream` turns row streaming off, as `check
+//! --no-stream` (a row pipeline's instructions count against its first
+//! step, so the per-kind columns are per kind only without streaming;
+//! the whole-inference figure is right either way); `--images` sets how many pictures are checked (default 2;
 //! instruction counts vary little between pictures). Needs the Rust
 //! toolchain, the thumb targets and `qemu-system-arm`
 //! (`.ci/install-emulation.sh`). A bench, not a test: nothing is asserted
@@ -33,8 +36,7 @@
 
 use ingot_compiler::check::runner::{default_build_dir, BuildConfig};
 use ingot_compiler::check::RunOn;
-use ingot_compiler::codegen::WeightForm;
-use ingot_testkit::kinds::{self, KindRow};
+use ingot_testkit::kinds::{self, KindRow, Setup};
 use ingot_testkit::zoo::{
     depthwise_separable, inverted_residual, write_gray_pictures, DepthwiseConfig,
     InvertedResidualConfig, Net,
@@ -47,14 +49,14 @@ const M33_FLAGS: &str = "CARGO_TARGET_THUMBV8M_MAIN_NONE_EABIHF_RUSTFLAGS";
 
 struct Options {
     cores: Vec<String>,
-    weight_form: Option<WeightForm>,
+    setup: Setup,
     images: usize,
     out: PathBuf,
 }
 
 fn usage() -> ! {
     eprintln!(
-        "usage: bench_kinds [--on CORE[,CORE...]] [--all] [--weight-form int8|words|pairs] [--images N] [--out DIR]\n\
+        "usage: bench_kinds [--on CORE[,CORE...]] [--all] [--weight-form int8|words|pairs] [--no-stream] [--images N] [--out DIR]\n\
          cores: host, m0plus, m3, m4, m7, m33, m33+dsp"
     );
     std::process::exit(2)
@@ -63,7 +65,7 @@ fn usage() -> ! {
 fn options() -> Options {
     let mut o = Options {
         cores: vec!["m4".into()],
-        weight_form: None,
+        setup: Setup::default(),
         images: 2,
         out: PathBuf::from(env!("CARGO_MANIFEST_DIR"))
             .join("..")
@@ -83,12 +85,13 @@ fn options() -> Options {
                     .to_vec()
             }
             "--weight-form" => {
-                o.weight_form = Some(
+                o.setup.weight_form = Some(
                     args.next()
                         .and_then(|v| v.parse().ok())
                         .unwrap_or_else(|| usage()),
                 )
             }
+            "--no-stream" => o.setup.stream = false,
             "--images" => {
                 o.images = args
                     .next()
@@ -122,12 +125,7 @@ fn write(net: &Net, dir: &Path, stem: &str, images: usize) -> PathBuf {
 
 /// One network on one core; `m33+dsp` builds with the DSP extension in a
 /// build folder of its own, so the plain M33 build stays cached.
-fn run(
-    graph: &Path,
-    dir: &Path,
-    core: &str,
-    form: Option<WeightForm>,
-) -> Result<KindRow, kinds::BenchError> {
+fn run(graph: &Path, dir: &Path, core: &str, form: Setup) -> Result<KindRow, kinds::BenchError> {
     let images = dir.join("images");
     if core == "m33+dsp" {
         let before = std::env::var_os(M33_FLAGS);
@@ -168,7 +166,7 @@ fn main() {
         let mut rows = Vec::new();
         for core in &o.cores {
             eprintln!("{stem} on {core} ...");
-            match run(&graph, &dir, core, o.weight_form) {
+            match run(&graph, &dir, core, o.setup) {
                 Ok(r) => rows.push(r),
                 Err(e) => {
                     eprintln!("{stem} on {core}: {e}");

@@ -100,23 +100,44 @@ impl std::fmt::Display for BenchError {
 
 impl std::error::Error for BenchError {}
 
+/// What a measurement may change from `ingot check`'s defaults.
+#[derive(Clone, Copy, Debug)]
+pub struct Setup {
+    /// One convolution weight form for every layer (default: the core's).
+    pub weight_form: Option<WeightForm>,
+    /// Row streaming (default on, as `check`; off is `check --no-stream`).
+    /// A row pipeline's instructions are counted against its first step,
+    /// so per-kind figures are only per kind with streaming off.
+    pub stream: bool,
+}
+
+impl Default for Setup {
+    fn default() -> Self {
+        Setup {
+            weight_form: None,
+            stream: true,
+        }
+    }
+}
+
 /// Runs `ingot check` on `on` the way the command line does (ranges by
-/// min/max calibration on `images`, the weight form `weight_form` or else
-/// the core's, no target profile, no accuracy gates), writing the module
-/// under `work`, and condenses the report. `core` names the row.
+/// min/max calibration on `images`, the weight form `setup.weight_form`
+/// or else the core's, no target profile, no accuracy gates), writing the
+/// module under `work`, and condenses the report. `core` names the row.
 pub fn measure(
     graph: &Path,
     images: &Path,
     on: RunOn,
     core: &str,
-    weight_form: Option<WeightForm>,
+    setup: Setup,
     build: BuildConfig,
     work: &Path,
 ) -> Result<KindRow, BenchError> {
     let run_core = (on != RunOn::Host).then(|| on.name());
     let mut opts = PrepareOptions::default();
     opts.ranges = RangesSource::Images(images.to_path_buf(), Method::MinMax);
-    opts.weight_form = driver::weight_form_for_run(weight_form, false, run_core);
+    opts.weight_form = driver::weight_form_for_run(setup.weight_form, false, run_core);
+    opts.stream = setup.stream;
     let p = prepare::prepare(graph, images, &opts)
         .map_err(|e| BenchError(format!("prepare {}: {e}", graph.display())))?;
     let module_name = p.generated.report.module.clone();
@@ -344,7 +365,7 @@ mod tests {
             &images,
             RunOn::Host,
             "host",
-            None,
+            Setup::default(),
             BuildConfig::default(),
             dir.path(),
         )
