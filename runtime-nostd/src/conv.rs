@@ -864,26 +864,20 @@ fn conv_pixels<W: Wt, const F: u8>(
     if run == 0 || taps == 0 || (opg == 0 && output.c > 0) {
         return;
     }
-    // Depthwise 3×3 (the common layers): the pixels whose window lies
-    // inside the map read it directly (`depthwise.rs`) after this loop has
-    // done the border pixels (it needs the patch, which the direct kernel
-    // then takes for its weights).
-    let direct = depthwise
+    // Depthwise 3×3 (the common layers): read the map directly.
+    if depthwise
         && opg == 1
-        && crate::depthwise::applies(w, c_in, transform.is_some(), &input, &output);
-    let (lo, hi) = if direct {
-        crate::depthwise::inner_cols(w, input.w, output.w)
-    } else {
-        (0, 0)
-    };
+        && crate::depthwise::applies(w, c_in, transform.is_some(), &input, &output)
+    {
+        crate::depthwise::run(
+            arena, &input, &output, w, weights, bias, requant, p.out, p.input_zp, patch, y0, y1,
+        );
+        return;
+    }
     for oy in y0..y1 {
         // Row bases once per row (a ring's slot costs a division).
         let (in_row, out_row) = (input.row(oy), output.row(oy));
-        let inner = direct && crate::depthwise::inner_row(w, input.h, oy);
         for ox in 0..output.w {
-            if inner && ox >= lo && ox < hi {
-                continue;
-            }
             if pointwise {
                 // 1×1 fast path: the patch is the input pixel, widened.
                 let src = in_row + ox * input.stride;
@@ -977,11 +971,6 @@ fn conv_pixels<W: Wt, const F: u8>(
                 }
             }
         }
-    }
-    if direct {
-        crate::depthwise::interior(
-            arena, &input, &output, w, weights, bias, requant, p.out, patch, y0, y1,
-        );
     }
 }
 

@@ -82,28 +82,6 @@ fn split_spans(input: &MapRef, output: &MapRef) -> Option<(usize, bool)> {
     }
 }
 
-/// The output columns `[lo, hi)` whose window lies inside an input row of
-/// `in_w` pixels (`lo >= hi` when there are none).
-pub(crate) fn inner_cols(w: &Window, in_w: usize, out_w: usize) -> (usize, usize) {
-    let s = w.step_x;
-    let lo = (w.pad.left + s)
-        .saturating_sub(1)
-        .checked_div(s)
-        .unwrap_or(0);
-    let hi = match (in_w + w.pad.left).checked_sub(3) {
-        Some(n) => n.checked_div(s).unwrap_or(0) + 1,
-        None => 0,
-    };
-    (lo, hi.min(out_w))
-}
-
-/// True when output row `oy` reads three rows inside a map of `in_h`
-/// rows.
-pub(crate) fn inner_row(w: &Window, in_h: usize, oy: usize) -> bool {
-    let y = oy * w.step_y;
-    y >= w.pad.top && y - w.pad.top + 3 <= in_h
-}
-
 /// Order of a block's four channels among one tap's four widened weights:
 /// `(w0, w2)` then `(w1, w3)` for `smlabb`/`smlatt` against the lanes
 /// `sxtb16` makes, in channel order for the plain loop.
@@ -134,12 +112,11 @@ fn widen_weights<W: Wt>(weights: &[W], table: &mut [i16]) {
     }
 }
 
-/// The interior pixels of output rows `[y0, y1)` of a depthwise 3×3
-/// convolution for which [`applies`] holds (the caller computes the
-/// others); `weights` are `[C][9]`, `table` the patch scratch (at least
-/// `9·C` values).
+/// Output rows `[y0, y1)` of a depthwise 3×3 convolution for which
+/// [`applies`] holds: `weights` are `[C][9]`, padded taps read
+/// `input_zp`, `table` is the patch scratch (at least `9·C` values).
 #[allow(clippy::too_many_arguments)]
-pub(crate) fn interior<W: Wt>(
+pub(crate) fn run<W: Wt>(
     arena: &mut [i8],
     input: &MapRef,
     output: &MapRef,
@@ -148,15 +125,12 @@ pub(crate) fn interior<W: Wt>(
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
+    input_zp: i8,
     table: &mut [i16],
     y0: usize,
     y1: usize,
 ) {
     let c = input.c;
-    let (lo, hi) = inner_cols(w, input.w, output.w);
-    if lo >= hi || c == 0 {
-        return;
-    }
     let (Some(table), Some(weights), Some(bias), Some(requant)) = (
         table.get_mut(..TAPS * c),
         weights.get(..TAPS * c),
@@ -186,34 +160,42 @@ pub(crate) fn interior<W: Wt>(
         out_q,
         c,
         s: input.stride,
+        pad: [input_zp; 16],
+        fast: fast_requant(requant, out_q),
+        taps: TAPS,
     };
-    let (sx, sy) = (w.step_x, w.step_y);
+    let geo = RowGeometry {
+        step_x: w.step_x,
+        pad_left: w.pad.left,
+        in_w: input.w,
+        out_stride: output.stride,
+        out_w: output.w,
+    };
     for oy in y0..y1 {
-        if !inner_row(w, input.h, oy) {
-            continue;
-        }
-        let iy = oy * sy - w.pad.top;
-        let rows = [input.row(iy), input.row(iy + 1), input.row(iy + 2)];
+        // The input row of each kernel row (index into `src`), or `None`
+        // for a padding row.
+        let y = oy * w.step_y;
+        let rows: [Option<usize>; 3] = core::array::from_fn(|ky| {
+            let yy = (y + ky).checked_sub(w.pad.top)?;
+            (yy < input.h).then(|| input.row(yy).wrapping_sub(src_base))
+        });
         let Some(out_row) = output.row(oy).checked_sub(dst_base) else {
             return;
         };
-        let Some(in_x) = (lo * sx).checked_sub(w.pad.left) else {
-            return;
-        };
-        let r = rows.map(|r| (r + in_x * input.stride).wrapping_sub(src_base));
-        k.row(
-            src,
-            dst,
-            r,
-            sx * input.stride,
-            out_row + lo * output.stride,
-            output.stride,
-            hi - lo,
-        );
+        k.row(src, dst, rows, &geo, out_row);
     }
 }
 
-/// What every interior pixel of a call shares.
+/// The horizontal geometry every output row shares.
+struct RowGeometry {
+    step_x: usize,
+    pad_left: usize,
+    in_w: usize,
+    out_stride: usize,
+    out_w: usize,
+}
+
+/// What every pixel of a call shares.
 struct Pixels<'a> {
     /// The widened weights ([`widen_weights`]).
     table: &'a [i16],
@@ -223,102 +205,178 @@ struct Pixels<'a> {
     /// Channels, input pixel stride.
     c: usize,
     s: usize,
+    /// What padded taps read (the input zero point).
+    pad: [i8; 16],
+    /// `(zero point, min, max)` of the output when every multiplier
+    /// takes the 32-bit path of [`Requant::apply`] (see [`fast_requant`]).
+    fast: Option<(i32, i32, i32)>,
+    /// [`TAPS`], read from memory where the tap loop needs it (see
+    /// [`Pixels::group`]).
+    taps: usize,
 }
 
 impl Pixels<'_> {
-    /// `n` output pixels of one row, the first at `dst[out]` (then every
-    /// `out_step`), reading the three input rows from `src[rows[k]]` (then
-    /// every `in_step`).
-    #[allow(clippy::too_many_arguments)]
+    /// One output row, its first pixel at `dst[out_row]`, reading the
+    /// input rows `rows` of `src` (`None`: padding).
     #[inline(never)]
     fn row(
         &self,
         src: &[i8],
         dst: &mut [i8],
-        rows: [usize; 3],
-        in_step: usize,
-        out: usize,
-        out_step: usize,
-        n: usize,
+        rows: [Option<usize>; 3],
+        g: &RowGeometry,
+        out_row: usize,
     ) {
         let (c, s) = (self.c, self.s);
-        // One window row: three pixels, the last only up to channel c.
-        let span = 2 * s + c;
-        for i in 0..n {
-            let (at, o) = (i * in_step, out + i * out_step);
-            let (Some(r0), Some(r1), Some(r2), Some(out)) = (
-                src.get(rows[0] + at..rows[0] + at + span),
-                src.get(rows[1] + at..rows[1] + at + span),
-                src.get(rows[2] + at..rows[2] + at + span),
-                dst.get_mut(o..o + c),
-            ) else {
+        for ox in 0..g.out_w {
+            // Where each tap's pixel starts in `src`, `None` if padded.
+            let x = ox * g.step_x;
+            let mut at = [None; TAPS];
+            for kx in 0..3 {
+                let Some(ix) = (x + kx).checked_sub(g.pad_left) else {
+                    continue;
+                };
+                if ix >= g.in_w {
+                    continue;
+                }
+                for (ky, r) in rows.iter().enumerate() {
+                    if let (Some(r), Some(a)) = (r, at.get_mut(3 * ky + kx)) {
+                        *a = Some(r + ix * s);
+                    }
+                }
+            }
+            let o = out_row + ox * g.out_stride;
+            let Some(out) = dst.get_mut(o..o + c) else {
                 return;
             };
-            self.pixel([r0, r1, r2], out);
+            // Sixteen channels at a time, then eight, then four.
+            let (c16, c8) = (c - c % 16, c - c % 8);
+            let Some((out16, rest)) = out.split_at_mut_checked(c16) else {
+                return;
+            };
+            let Some((out8, out4)) = rest.split_at_mut_checked(c8 - c16) else {
+                return;
+            };
+            self.group::<16>(src, &at, 0, out16);
+            self.group::<8>(src, &at, c16, out8);
+            self.group::<4>(src, &at, c8, out4);
         }
     }
 
-    /// One output pixel: its window rows `r` (each `2·s + c` bytes).
+    /// Channels `c0..c0 + out.len()` of one pixel, `G` at a time: the
+    /// `G` bytes of every tap are cut from `src` (or the padding) once,
+    /// so the blocks of four read them without bounds checks.
     #[inline(always)]
-    fn pixel(&self, r: [&[i8]; 3], out: &mut [i8]) {
-        let s = self.s;
-        let (mut blocks, mut bs, mut rs) = (
-            self.table.chunks_exact(BLOCK),
-            self.bias.chunks_exact(4),
-            self.requant.chunks_exact(4),
-        );
-        for (ch, o) in out.chunks_exact_mut(4).enumerate() {
-            no_unroll();
-            let (Some(wt), Some(b), Some(rq)) = (blocks.next(), bs.next(), rs.next()) else {
-                return;
-            };
-            let (Ok(wt), Ok(b), Ok(rq), Ok(o)) = (
-                <&[i16; BLOCK]>::try_from(wt),
-                <&[i32; 4]>::try_from(b),
-                <&[Requant; 4]>::try_from(rq),
-                <&mut [i8; 4]>::try_from(o),
+    fn group<const G: usize>(
+        &self,
+        src: &[i8],
+        at: &[Option<usize>; TAPS],
+        c0: usize,
+        out: &mut [i8],
+    ) {
+        let Some(pad) = self.pad.first_chunk::<G>() else {
+            return;
+        };
+        for (g, og) in out.chunks_exact_mut(G).enumerate() {
+            let ch0 = c0 + g * G;
+            let mut taps: [&[i8; G]; TAPS] = [pad; TAPS];
+            for (tp, a) in taps.iter_mut().zip(at) {
+                if let Some(a) = a {
+                    let i = a + ch0;
+                    let Some(v) = src.get(i..i + G) else {
+                        return;
+                    };
+                    let Ok(v) = <&[i8; G]>::try_from(v) else {
+                        return;
+                    };
+                    *tp = v;
+                }
+            }
+            let (Some(tg), Some(bg), Some(rg)) = (
+                self.table.get(TAPS * ch0..TAPS * (ch0 + G)),
+                self.bias.get(ch0..ch0 + G),
+                self.requant.get(ch0..ch0 + G),
             ) else {
                 return;
             };
-            let b0 = 4 * ch;
-            let mut acc = *b;
-            for (ky, row) in r.iter().enumerate() {
-                for kx in 0..3 {
-                    let i = b0 + kx * s;
-                    let Some(x) = row.get(i..i + 4) else {
+            let blocks = og
+                .chunks_exact_mut(4)
+                .zip(tg.chunks_exact(BLOCK))
+                .zip(bg.chunks_exact(4).zip(rg.chunks_exact(4)));
+            // The taps as a slice of `self.taps` (always nine) elements:
+            // with a length LLVM knows, it unrolls the tap loop below
+            // whatever `no_unroll` says, and then runs one accumulator's
+            // chain at a time over all nine taps, every input word live
+            // at once (spilled to the stack).
+            let Some(taps) = taps.get(..self.taps) else {
+                return;
+            };
+            for (b, ((o, wt), (bb, rq))) in blocks.enumerate() {
+                let mut acc = [0i32; 4];
+                for (j, a) in acc.iter_mut().enumerate() {
+                    *a = bb.get(j).copied().unwrap_or(0);
+                }
+                for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
+                    no_unroll();
+                    let (Some(x), Ok(w)) = (tp.get(4 * b..4 * b + 4), <&[i16; 4]>::try_from(w))
+                    else {
                         return;
                     };
                     let Ok(&x) = <&[i8; 4]>::try_from(x) else {
                         return;
                     };
-                    tap(&mut acc, x, wt, 4 * (3 * ky + kx));
+                    tap(&mut acc, x, w);
                 }
-            }
-            for j in 0..4 {
-                o[j] = rq[j].apply(acc[j], self.out_q);
+                if let Some((zp, lo, hi)) = self.fast {
+                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                        *o = requant_fast(a, r, zp, lo, hi);
+                    }
+                } else {
+                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                        *o = r.apply(a, self.out_q);
+                    }
+                }
             }
         }
     }
 }
 
 /// `acc[j] += x[j] · w[j]` for the four channels of one tap, the weights
-/// at `wt[t..t + 4]` in [`ORDER`].
+/// in [`ORDER`].
 #[inline(always)]
-fn tap(acc: &mut [i32; 4], x: [i8; 4], wt: &[i16; BLOCK], t: usize) {
+fn tap(acc: &mut [i32; 4], x: [i8; 4], w: &[i16; 4]) {
     if ingot_dsp::NATIVE {
         let xv = u32::from_le_bytes(x.map(|v| v as u8));
         let (xe, xo) = (ingot_dsp::sxtb16(xv), ingot_dsp::sxtb16_ror8(xv));
-        let p0 = pair(wt[t], wt[t + 1]);
-        let p1 = pair(wt[t + 2], wt[t + 3]);
+        let (p0, p1) = (pair(w[0], w[1]), pair(w[2], w[3]));
         acc[0] = ingot_dsp::smlabb(xe, p0, acc[0]);
         acc[2] = ingot_dsp::smlatt(xe, p0, acc[2]);
         acc[1] = ingot_dsp::smlabb(xo, p1, acc[1]);
         acc[3] = ingot_dsp::smlatt(xo, p1, acc[3]);
     } else {
         for j in 0..4 {
-            acc[j] = acc[j].wrapping_add((x[j] as i32).wrapping_mul(wt[t + j] as i32));
+            acc[j] = acc[j].wrapping_add((x[j] as i32).wrapping_mul(w[j] as i32));
         }
     }
+}
+
+/// `Some((zero point, min, max))` when [`Requant::apply`] takes its
+/// 32-bit path for every multiplier of `requant` (total shift 32 or more,
+/// zero point in `-128..=127`), so [`requant_fast`] gives its results.
+fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<(i32, i32, i32)> {
+    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
+    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
+    (zp_ok && shifts_ok).then_some((out.zero_point, out.min as i32, out.max as i32))
+}
+
+/// [`Requant::apply`]'s 32-bit path, without its choice of path (the
+/// caller checked [`fast_requant`] once per call): the high word of the
+/// product (`smmul`), one rounding shift, the zero point, the clamp.
+#[inline(always)]
+fn requant_fast(acc: i32, r: &Requant, zp: i32, lo: i32, hi: i32) -> i8 {
+    let h = ((acc as i64 * r.mult as i64) >> 32) as i32;
+    let v = ((h.wrapping_shr(r.shift.wrapping_sub(2) as u32)) + 1) >> 1;
+    (v + zp).max(lo).min(hi) as i8
 }
 
 /// Two 16-bit values in one word, `lo` in the low half.
