@@ -160,7 +160,7 @@ pub(crate) fn run<W: Wt>(
         out_q,
         c,
         s: input.stride,
-        pad: [input_zp; 16],
+        pad: [input_zp; 32],
         fast: fast_requant(requant, out_q),
         taps: TAPS,
     };
@@ -179,10 +179,22 @@ pub(crate) fn run<W: Wt>(
             let yy = (y + ky).checked_sub(w.pad.top)?;
             (yy < input.h).then(|| input.row(yy).wrapping_sub(src_base))
         });
+        // Tap t = 3·ky + kx of the pixel whose window starts at padded
+        // column x reads `src[bases[t] + (x − pad.left)·s]` (wrapping:
+        // the sum is in range whenever the tap's column is), if bit t of
+        // the row's mask and its column are set.
+        let mut bases = [0usize; TAPS];
+        let mut mask = 0u32;
+        for (t, b) in bases.iter_mut().enumerate() {
+            if let Some(Some(r)) = rows.get(t / 3) {
+                *b = r.wrapping_add((t % 3) * input.stride);
+                mask |= 1 << t;
+            }
+        }
         let Some(out_row) = output.row(oy).checked_sub(dst_base) else {
             return;
         };
-        k.row(src, dst, rows, &geo, out_row);
+        k.row(src, dst, &bases, mask, &geo, out_row);
     }
 }
 
@@ -206,7 +218,7 @@ struct Pixels<'a> {
     c: usize,
     s: usize,
     /// What padded taps read (the input zero point).
-    pad: [i8; 16],
+    pad: [i8; 32],
     /// `(zero point, min, max)` of the output when every multiplier
     /// takes the 32-bit path of [`Requant::apply`] (see [`fast_requant`]).
     fast: Option<(i32, i32, i32)>,
@@ -216,61 +228,64 @@ struct Pixels<'a> {
 }
 
 impl Pixels<'_> {
-    /// One output row, its first pixel at `dst[out_row]`, reading the
-    /// input rows `rows` of `src` (`None`: padding).
+    /// One output row, its first pixel at `dst[out_row]`; `bases` and
+    /// `row_mask` say where its taps read `src` (see [`run`]).
     #[inline(never)]
     fn row(
         &self,
         src: &[i8],
         dst: &mut [i8],
-        rows: [Option<usize>; 3],
+        bases: &[usize; TAPS],
+        row_mask: u32,
         g: &RowGeometry,
         out_row: usize,
     ) {
         let (c, s) = (self.c, self.s);
         for ox in 0..g.out_w {
-            // Where each tap's pixel starts in `src`, `None` if padded.
             let x = ox * g.step_x;
-            let mut at = [None; TAPS];
+            // Bit kx: column x + kx lies inside the map.
+            let mut cols = 0u32;
             for kx in 0..3 {
-                let Some(ix) = (x + kx).checked_sub(g.pad_left) else {
-                    continue;
-                };
-                if ix >= g.in_w {
-                    continue;
-                }
-                for (ky, r) in rows.iter().enumerate() {
-                    if let (Some(r), Some(a)) = (r, at.get_mut(3 * ky + kx)) {
-                        *a = Some(r + ix * s);
-                    }
-                }
+                let inside = (x + kx)
+                    .checked_sub(g.pad_left)
+                    .is_some_and(|ix| ix < g.in_w);
+                cols |= (inside as u32) << kx;
             }
+            let mask = row_mask & (cols * 0b001_001_001);
+            let off = x.wrapping_sub(g.pad_left).wrapping_mul(s);
             let o = out_row + ox * g.out_stride;
             let Some(out) = dst.get_mut(o..o + c) else {
                 return;
             };
-            // Sixteen channels at a time, then eight, then four.
-            let (c16, c8) = (c - c % 16, c - c % 8);
-            let Some((out16, rest)) = out.split_at_mut_checked(c16) else {
+            // Thirty-two channels at a time, then sixteen, eight, four.
+            let (c32, c16, c8) = (c - c % 32, c - c % 16, c - c % 8);
+            let Some((out32, rest)) = out.split_at_mut_checked(c32) else {
+                return;
+            };
+            let Some((out16, rest)) = rest.split_at_mut_checked(c16 - c32) else {
                 return;
             };
             let Some((out8, out4)) = rest.split_at_mut_checked(c8 - c16) else {
                 return;
             };
-            self.group::<16>(src, &at, 0, out16);
-            self.group::<8>(src, &at, c16, out8);
-            self.group::<4>(src, &at, c8, out4);
+            let at = (bases, off, mask);
+            self.group::<32>(src, at, 0, out32);
+            self.group::<16>(src, at, c32, out16);
+            self.group::<8>(src, at, c16, out8);
+            self.group::<4>(src, at, c8, out4);
         }
     }
 
     /// Channels `c0..c0 + out.len()` of one pixel, `G` at a time: the
     /// `G` bytes of every tap are cut from `src` (or the padding) once,
-    /// so the blocks of four read them without bounds checks.
+    /// so the blocks of four read them without bounds checks. Tap `t`
+    /// reads `src[bases[t] + off + channel]` when bit `t` of `mask` is
+    /// set, the padding otherwise.
     #[inline(always)]
     fn group<const G: usize>(
         &self,
         src: &[i8],
-        at: &[Option<usize>; TAPS],
+        (bases, off, mask): (&[usize; TAPS], usize, u32),
         c0: usize,
         out: &mut [i8],
     ) {
@@ -279,10 +294,11 @@ impl Pixels<'_> {
         };
         for (g, og) in out.chunks_exact_mut(G).enumerate() {
             let ch0 = c0 + g * G;
+            let at = off.wrapping_add(ch0);
             let mut taps: [&[i8; G]; TAPS] = [pad; TAPS];
-            for (tp, a) in taps.iter_mut().zip(at) {
-                if let Some(a) = a {
-                    let i = a + ch0;
+            for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
+                if mask & (1 << t) != 0 {
+                    let i = b.wrapping_add(at);
                     let Some(v) = src.get(i..i + G) else {
                         return;
                     };
