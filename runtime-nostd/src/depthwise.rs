@@ -7,32 +7,50 @@
 //! multiply-accumulates, set its cost (about 17 instructions per MAC on
 //! the emulated Cortex-M4).
 //!
-//! Here the pixels whose window lies inside the map (all but a one-pixel
-//! frame for the usual padding of 1) read the map itself, four channels
-//! per pass: HWC puts four neighbouring channels of one pixel in one
-//! 32-bit word. On cores with the DSP extension one unaligned word load
-//! gives the four inputs, `sxtb16` and `sxtb16 … ror #8` widen them into
-//! the pairs `(x0, x2)` and `(x1, x3)`, and `smlabb`/`smlatt` meet them
-//! with the matching 16-bit weights: per tap and four channels one input
-//! load, two widenings, one weight load (two words) and four
-//! multiply-accumulates. Elsewhere (Cortex-M0+, M3, plain M33, hosts) the
-//! same loop runs as byte loads and plain multiplies, which those cores
-//! do faster than the instructions' portable twins.
+//! Here every output pixel reads the map itself, four channels per pass:
+//! HWC puts four neighbouring channels of one pixel in one 32-bit word.
+//! On cores with the DSP extension one unaligned word load gives the four
+//! inputs, `sxtb16` and `sxtb16 … ror #8` widen them into the pairs
+//! `(x0, x2)` and `(x1, x3)`, and `smlabb`/`smlatt` meet them with the
+//! matching 16-bit weights: per tap and four channels the loop is twelve
+//! instructions (`arm-none-eabi-objdump -d` of the thumbv7em rlib: the
+//! tap's address, one input load, two widenings, two weight loads, four
+//! multiply-accumulates, the loop step). Elsewhere (Cortex-M0+, M3, plain M33,
+//! hosts) the same loop runs as byte loads and plain multiplies, which
+//! those cores do faster than the instructions' portable twins.
+//!
+//! Bounds checks: a pixel cuts each tap's bytes for 32 (then 16, 8, 4)
+//! channels out of the map once, as fixed-size arrays, and the blocks of
+//! four channels read those arrays with no check. A padded tap (border
+//! pixels) points at an array of the input zero point instead, which is
+//! what the folded bias assumes, so border pixels take the same loop.
+//!
+//! Loop shape: the taps are a rolled loop whose trip count LLVM cannot
+//! see (it is read from memory). With the nine taps written out (or a
+//! loop of a known nine), LLVM computes one accumulator's chain over all
+//! nine taps at a time, every input word live at once, and spills: 13 and
+//! more instructions per MAC on the emulated Cortex-M4, against about six
+//! for the rolled loop.
 //!
 //! The weights reach the kernel as the module stores them (`[C][3][3]`,
-//! int8). Before the interior pixels the kernel widens them once per call
-//! into the convolution's patch scratch (which the gather no longer needs
-//! by then: border pixels run first), four channels per block, tap-major,
-//! so that each tap's four weights are two words ready for the
-//! multiplies. The patch of a 3×3 depthwise convolution holds `9·C`
-//! values, exactly the widened weights; the widening costs about three
-//! instructions per weight per call, against nine MACs per weight per
-//! output pixel.
+//! int8). The kernel widens them once per call into the convolution's
+//! patch scratch, which it does not otherwise need: four channels per
+//! block, tap-major, so that each tap's four weights are two words ready
+//! for the multiplies. The patch of a 3×3 depthwise convolution holds
+//! `9·C` values, exactly the widened weights; the widening costs a few
+//! instructions per weight per call (per row range of a row pipeline),
+//! against nine MACs per weight per output pixel.
 //!
-//! Border pixels, channel counts that are not a multiple of four,
-//! dilation, other kernel sizes, a fused input transform, and inputs that
-//! interleave with the output (channel views of one concatenation region)
-//! keep the gathering path; the results are the same bytes either way
+//! Requantization stays out of the tap loop. [`Requant::apply`] chooses
+//! between its 32-bit and 64-bit paths for every value; when every
+//! multiplier of the call takes the 32-bit one (total shift 32 or more),
+//! the choice is made once per call instead ([`requant_fast`], the same
+//! arithmetic).
+//!
+//! Channel counts that are not a multiple of four, dilation, other kernel
+//! sizes, a fused input transform, and inputs that interleave with the
+//! output (channel views of one concatenation region) keep the gathering
+//! path; the results are the same bytes either way
 //! (`runtime-nostd/tests/it/depthwise.rs`).
 
 use crate::conv::Window;
@@ -44,8 +62,8 @@ const TAPS: usize = 9;
 /// Widened weights of one block of four channels: four per tap.
 const BLOCK: usize = 4 * TAPS;
 
-/// True when the interior pixels of a depthwise convolution (one input
-/// and one output channel per group, `c` channels) can run here: a 3×3
+/// True when a depthwise convolution (one input and one output channel
+/// per group, `c` channels) can run here: a 3×3
 /// kernel without dilation, any step and padding, `c` a nonzero multiple
 /// of four, no fused input transform, and input and output in separate
 /// byte spans of the arena.
