@@ -67,7 +67,7 @@ const BLOCK: usize = 4 * TAPS;
 /// kernel without dilation, any step and padding, `c` a nonzero multiple
 /// of four, no fused input transform, and input and output in separate
 /// byte spans of the arena.
-pub(crate) fn applies(
+pub(crate) const fn applies(
     w: &Window,
     c: usize,
     transform: bool,
@@ -89,8 +89,11 @@ pub(crate) fn applies(
 /// Where to cut the arena so that one side holds the whole input and the
 /// other the whole output: `Some((at, input_first))`, or `None` when
 /// their byte spans overlap (interleaved channel views) or are empty.
-fn split_spans(input: &MapRef, output: &MapRef) -> Option<(usize, bool)> {
-    let (ie, oe) = (input.end()?, output.end()?);
+const fn split_spans(input: &MapRef, output: &MapRef) -> Option<(usize, bool)> {
+    let (ie, oe) = match (input.end(), output.end()) {
+        (Some(i), Some(o)) => (i, o),
+        _ => return None,
+    };
     if ie <= output.offset {
         Some((output.offset, true))
     } else if oe <= input.offset {
