@@ -1,4 +1,4 @@
-//! Depthwise 3×3 convolutions, whose interior pixels read the int8 map
+//! Depthwise 3×3 convolutions, which read the int8 map
 //! directly (`src/depthwise.rs`), against the naive reference
 //! (`common::ref_conv`), bit for bit: interior and border pixels, steps 1
 //! and 2 on each axis, asymmetric padding, 1 to 13 channels (multiples of
