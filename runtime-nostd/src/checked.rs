@@ -45,7 +45,9 @@
 //! binary either (see the crate docs, "No panics").
 
 use crate::channel::{check_copy, check_transform, copy_run, transform_run, TransformArgs};
-use crate::conv::{check_conv, conv_run_int8, conv_run_pairs, conv_run_words, ConvArgs, Rows};
+use crate::conv::{
+    check_conv, conv_run_depthwise, conv_run_int8, conv_run_pairs, conv_run_words, ConvArgs, Rows,
+};
 use crate::eltwise::{add_run, check_add, AddArgs};
 use crate::io::{check_io, check_pixels, copy_in_run, copy_out_run, pixels_run};
 use crate::linear::{check_linear, linear_run, LinearArgs, LinearRows};
@@ -104,14 +106,21 @@ impl<'a, const A: usize, const P: usize> Conv2d<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_int8(arena, &self.0, patch, 0, usize::MAX);
+        self.run_rows(arena, patch, 0, usize::MAX);
     }
 
     /// Output rows `[y0, y1)` only (clipped to the output; nothing when
     /// empty), for a row pipeline; cannot fail. Rows of a ring input must
     /// be in their slots.
+    #[inline(always)]
     pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
-        conv_run_int8(arena, &self.0, patch, y0, y1);
+        // A constant of the call's `static`: a firmware without depthwise
+        // 3×3 calls does not link the direct kernel.
+        if self.0.direct {
+            conv_run_depthwise(arena, &self.0, patch, y0, y1);
+        } else {
+            conv_run_int8(arena, &self.0, patch, y0, y1);
+        }
     }
 }
 

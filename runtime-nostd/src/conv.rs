@@ -346,6 +346,12 @@ pub(crate) struct ConvArgs<'a> {
     pub(crate) transform: Option<InputTransform<'a>>,
     /// Paired weights read from a ring of input rows (see [`conv_rows_len`]).
     pub(crate) ring: bool,
+    /// A depthwise 3×3 convolution the direct kernel runs
+    /// ([`crate::depthwise::applies`]): a checked call's `run` then calls
+    /// [`conv_run_depthwise`], and a firmware none of whose calls has it
+    /// set leaves that kernel out (the flag is a constant of each call's
+    /// `static`).
+    pub(crate) direct: bool,
 }
 
 /// Every check of a convolution call, in a `const fn` so that generated
@@ -430,6 +436,11 @@ pub(crate) const fn check_conv<'a>(
         Rows::Pairs(_) => conv_rows_apply(w, p.groups, input.c),
         Rows::Words(_) => conv_rows_apply_words(w, p.groups, input.c),
     } && patch_len >= conv_rows_len(w, input.w, input.c);
+    let int8 = matches!(rows, Rows::Bytes(_) | Rows::File(_));
+    let direct = int8
+        && p.groups == input.c
+        && output.c == input.c
+        && crate::depthwise::applies(w, input.c, transform.is_some(), &input, &output);
     Ok(ConvArgs {
         input,
         output,
@@ -439,6 +450,7 @@ pub(crate) const fn check_conv<'a>(
         p,
         transform,
         ring,
+        direct,
     })
 }
 
@@ -667,7 +679,11 @@ pub(crate) fn conv_run(
     y0: usize,
     y1: usize,
 ) {
-    conv_run_forms::<{ forms::ANY }>(arena, a, patch, y0, y1);
+    if a.direct {
+        conv_run_depthwise(arena, a, patch, y0, y1);
+    } else {
+        conv_run_forms::<{ forms::ANY }>(arena, a, patch, y0, y1);
+    }
 }
 
 /// [`conv_run`] for the int8 forms only ([`crate::checked::Conv2d`]).
@@ -684,6 +700,35 @@ pub(crate) fn conv_run_int8(
     y1: usize,
 ) {
     conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch, y0, y1);
+}
+
+/// [`conv_run`] for the calls whose `direct` flag is set: the direct
+/// depthwise 3×3 kernel (`depthwise.rs`), with the `9·C` values of
+/// `patch` for its widened weights.
+#[inline(never)]
+pub(crate) fn conv_run_depthwise(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    let (input, output, p) = (&a.input, &a.output, &a.p);
+    let y1 = if y1 < output.h { y1 } else { output.h };
+    let n = 9 * input.c;
+    let Some(table) = patch.get_mut(..n) else {
+        return;
+    };
+    let (b, r, w) = (a.bias, a.requant, &p.window);
+    match a.rows {
+        Rows::Bytes(wb) => crate::depthwise::run(
+            arena, input, output, w, wb, b, r, p.out, p.input_zp, table, y0, y1,
+        ),
+        Rows::File(wb) => crate::depthwise::run(
+            arena, input, output, w, wb, b, r, p.out, p.input_zp, table, y0, y1,
+        ),
+        _ => {}
+    }
 }
 
 /// [`conv_run`] for the paired form only.

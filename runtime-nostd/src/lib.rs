@@ -203,6 +203,7 @@
 mod channel;
 pub mod checked;
 mod conv;
+mod depthwise;
 mod dot;
 mod eltwise;
 mod error;

@@ -5,6 +5,7 @@
 mod checked;
 mod common;
 mod conv;
+mod depthwise;
 mod error_display;
 mod frame;
 mod frame_sums;
