@@ -166,11 +166,10 @@ macro_rules! mac {
         // the sticky Q flag, hence no `preserves_flags`.
         unsafe {
             core::arch::asm!(
-                concat!($op, " {d}, {x}, {y}, {a}"),
-                d = lateout(reg) d,
+                concat!($op, " {a}, {x}, {y}, {a}"),
                 x = in(reg) $x,
                 y = in(reg) $y,
-                a = in(reg) $acc,
+                a = inout(reg) $acc => d,
                 options(pure, nomem, nostack),
             );
         }

@@ -210,6 +210,7 @@ mod frame;
 mod io;
 mod linear;
 mod map;
+mod pointwise;
 mod pool;
 mod requant;
 mod transform;
@@ -230,6 +231,7 @@ pub use frame::{
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
 pub use linear::linear;
 pub use map::MapRef;
+pub use pointwise::{pointwise_applies, pointwise_patch_len};
 pub use pool::{
     avg_pool2d, avg_pool2d_rows, div_round, global_avg_pool, max_pool2d, max_pool2d_rows, PoolQuant,
 };
