@@ -36,7 +36,7 @@ use crate::{InputTransform, OutputQuant, Requant};
 /// its `patch` scratch: four pixels of `C_in` channels, each padded to
 /// whole quads, `16 · ⌈C_in / 4⌉`.
 pub const fn pointwise_patch_len(c_in: usize) -> usize {
-    16 * c_in.div_ceil(4)
+    4 * PIXELS * c_in.div_ceil(4)
 }
 
 /// True when [`conv2d_words`](crate::conv2d_words) runs a window as a
@@ -73,6 +73,9 @@ struct Pass<'a> {
     kq: usize,
 }
 
+/// Pixels per pass of the main kernel.
+const PIXELS: usize = 4;
+
 /// Runs a checked convolution for which [`pointwise_applies`] holds and
 /// whose `patch` holds [`pointwise_patch_len`] elements, word layout,
 /// output rows `[y0, y1)` (`y1` already clipped).
@@ -91,7 +94,7 @@ pub(crate) fn run_words(
         return;
     }
     let (Some(stage), Some(weights), Some(bias), Some(requant)) = (
-        patch.get_mut(..16 * kq),
+        patch.get_mut(..4 * PIXELS * kq),
         weights.get(..m * 4 * kq),
         a.bias.get(..m),
         a.requant.get(..m),
@@ -111,7 +114,7 @@ pub(crate) fn run_words(
     let w = &p.window;
     // (input pixel, output pixel) arena bases of the pixels gathered so
     // far, in order across rows.
-    let mut px = [(0usize, 0usize); 4];
+    let mut px = [(0usize, 0usize); PIXELS];
     let mut n = 0;
     for oy in y0..y1 {
         let (in_row, out_row) = (input.row(oy * w.step_y), output.row(oy));
@@ -121,55 +124,70 @@ pub(crate) fn run_words(
                 *slot = (in_row + ox * in_step, out_row + ox * out_step);
             }
             n += 1;
-            if n == 4 {
-                pass.four(arena, &px, stage);
+            if n == PIXELS {
+                pass.group(arena, &px, stage);
                 n = 0;
             }
         }
     }
-    for &(src, dst) in px.get(..n).unwrap_or(&[]) {
+    // The one to three pixels left: a pair, then one alone.
+    let left = px.get(..n).unwrap_or(&[]);
+    let (pairs, one) = left.as_chunks::<2>();
+    for pair in pairs {
+        pass.group(arena, pair, stage);
+    }
+    if let [(src, dst)] = *one {
         pass.one(arena, src, dst, stage);
     }
 }
 
 impl Pass<'_> {
-    /// Four pixels: stage them, then every output channel.
+    /// `P` pixels: stage them, then every output channel, one weight row
+    /// per call of [`px`].
     #[inline(never)]
-    fn four(&self, arena: &mut [i8], px: &[(usize, usize); 4], stage: &mut [i16]) {
-        let (c, m, kq) = (self.c, self.m, self.kq);
-        for (i, &(src, _)) in px.iter().enumerate() {
+    fn group<const P: usize>(
+        &self,
+        arena: &mut [i8],
+        pixels: &[(usize, usize); P],
+        stage: &mut [i16],
+    ) {
+        let (c, kq) = (self.c, self.kq);
+        for (i, &(src, _)) in pixels.iter().enumerate() {
             let Some(s) = arena.get(src..src + c) else {
                 return;
             };
-            self.stage_pixel(stage, i, s);
+            self.stage_pixel::<P>(stage, i, s);
         }
-        let [d0, d1, d2, d3] = px.map(|(_, d)| d);
+        let Some(x) = stage.get(..4 * P * kq) else {
+            return;
+        };
+        let (x, _) = x.as_chunks::<4>();
+        let (x, _) = x.as_chunks::<P>();
+        let dsts = pixels.map(|(_, d)| d);
         // Rows in blocks of four, a block's rows interleaved word by word
         // (the last block holds the one to three rows left over).
-        let block_len = 16 * kq;
+        let mut start = 0; // the block's first byte
         let mut j = 0;
-        for block in self.weights.chunks(block_len.max(1)) {
-            let rows = (m - j).min(4);
-            for r in 0..rows {
-                let Some(row) = block.get(4 * r..) else {
+        for (bias, requant) in self.bias.chunks(4).zip(self.requant.chunks(4)) {
+            let rows = bias.len();
+            for (r, (&b, rq)) in bias.iter().zip(requant).enumerate() {
+                let Some(w) = self.weights.get(start + 4 * r..) else {
                     return;
                 };
                 let acc = match rows {
-                    4 => px4::<16>(stage, row, kq),
-                    3 => px4::<12>(stage, row, kq),
-                    2 => px4::<8>(stage, row, kq),
-                    _ => px4::<4>(stage, row, kq),
+                    4 => px::<P, 16>(x, w),
+                    3 => px::<P, 12>(x, w),
+                    2 => px::<P, 8>(x, w),
+                    _ => px::<P, 4>(x, w),
                 };
-                let (Some(&b), Some(rq)) = (self.bias.get(j), self.requant.get(j)) else {
-                    return;
-                };
-                for (&acc, dst) in acc.iter().zip([d0, d1, d2, d3]) {
+                for (v, &dst) in requant_row(rq, b, &acc, self.out_q).into_iter().zip(&dsts) {
                     if let Some(o) = arena.get_mut(dst + j) {
-                        *o = rq.apply(b.wrapping_add(acc), self.out_q);
+                        *o = v;
                     }
                 }
                 j += 1;
             }
+            start += 4 * rows * kq;
         }
     }
 
@@ -200,72 +218,132 @@ impl Pass<'_> {
         }
     }
 
-    /// Pixel `s` into lane group `i` of every quad of `stage`
-    /// (`stage[16q + 4i .. 16q + 4i + 4]`), zeros past the last channel
-    /// (they meet zero weights).
+    /// Pixel `s` into lane group `i` of every quad of a `P`-pixel staging
+    /// buffer (`stage[4Pq + 4i .. 4Pq + 4i + 4]`), zeros past the last
+    /// channel (they meet zero weights).
     #[inline(always)]
-    fn stage_pixel(&self, stage: &mut [i16], i: usize, s: &[i8]) {
+    fn stage_pixel<const P: usize>(&self, stage: &mut [i16], i: usize, s: &[i8]) {
         let Some(lanes) = stage.get_mut(4 * i..) else {
             return;
         };
-        for (q, (dst, src)) in lanes.chunks_mut(16).zip(s.chunks(4)).enumerate() {
-            let Some(dst) = dst.get_mut(..4) else {
+        let mut dst = lanes.chunks_mut(4 * P);
+        let mut ch = 0;
+        match self.transform {
+            None => {
+                // Four channels per word: `sxtb16` gives (x0, x2) and
+                // (x1, x3), the pack instructions (x0, x1) and (x2, x3).
+                // Source first: `zip` asks its first iterator first, and a
+                // destination chunk taken for a missing source quad would
+                // be lost to the partial quad after the loop.
+                for (q, d) in s.chunks_exact(4).zip(&mut dst) {
+                    let v = u32::from_le_bytes([q[0] as u8, q[1] as u8, q[2] as u8, q[3] as u8]);
+                    let (even, odd) = (ingot_dsp::sxtb16(v), ingot_dsp::sxtb16_ror8(v));
+                    let lo = ingot_dsp::pkhbt_lsl16(even, odd);
+                    let hi = ingot_dsp::pkhtb_asr16(odd, even);
+                    if let Some(d) = d.get_mut(..4) {
+                        for (d, h) in d.iter_mut().zip([lo, lo >> 16, hi, hi >> 16]) {
+                            *d = h as i16;
+                        }
+                    }
+                    ch += 4;
+                }
+            }
+            Some(InputTransform::Affine(t)) => {
+                // The channels' parameters walked alongside.
+                let (mul, add, rounding) = (t.mul.chunks(4), t.add.chunks(4), t.rounding());
+                for ((d, q), (m, a)) in dst.zip(s.chunks(4)).zip(mul.zip(add)) {
+                    let Some(d) = d.get_mut(..4) else {
+                        return;
+                    };
+                    d.fill(0);
+                    for (((d, &v), &m), &a) in d.iter_mut().zip(q).zip(m).zip(a) {
+                        *d = t.apply_with(m, a, rounding, v) as i16;
+                    }
+                }
+                return;
+            }
+            Some(_) => {}
+        }
+        // A table, and the one to three channels of a last quad.
+        let rest = s.get(ch..).unwrap_or(&[]);
+        for (d, q) in dst.zip(rest.chunks(4)) {
+            let Some(d) = d.get_mut(..4) else {
                 return;
             };
-            dst.fill(0);
-            for (k, (d, &v)) in dst.iter_mut().zip(src).enumerate() {
-                *d = self.value(4 * q + k, v);
+            d.fill(0);
+            for (d, &v) in d.iter_mut().zip(q) {
+                *d = self.value(ch, v);
+                ch += 1;
             }
         }
     }
 }
 
-/// One weight row against four staged pixels: `x` holds `16·kq` values
-/// (`[quad][pixel][4]`), `w` the row from its first word, one word every
-/// `STEP` bytes (the row's block interleaves `STEP / 4` rows), `kq` words.
-/// The four sums, pixel by pixel.
+/// One weight row against `P` staged pixels: `x` holds one unit per quad
+/// of channels (`[pixel][4]`), `w` the weights from the row's first word
+/// on, one word of the row every `STEP` bytes (its block interleaves
+/// `STEP / 4` rows). The `P` sums, pixel by pixel.
+///
+/// The last word of a row in the layer's last block ends the weights, so
+/// the loop takes whole steps and the last quad comes after it. (The same
+/// loop over every quad for the rows that have a whole step after each
+/// word compiled worse: LLVM addressed the staging buffer through an
+/// index and spilled, 31 to 48 instructions per pass instead of 23.) Its
+/// own function: the loop holds two pointers, the count, the widened
+/// weight word, one staged word at a time and `P` accumulators.
 #[inline(never)]
-fn px4<const STEP: usize>(x: &[i16], w: &[u8], kq: usize) -> [i32; 4] {
-    let mut acc = [0i32; 4];
-    if kq == 0 {
-        return acc;
-    }
-    // The last word of a row in the last block has fewer than STEP bytes
-    // after it: the loop takes whole steps, the last quad comes after.
-    let body = kq - 1;
-    let (Some(xb), Some(wb)) = (x.get(..16 * body), w.get(..STEP * body)) else {
+fn px<const P: usize, const STEP: usize>(x: &[[[i16; 4]; P]], w: &[u8]) -> [i32; P] {
+    let mut acc = [0i32; P];
+    let Some(body) = x.len().checked_sub(1) else {
         return acc;
     };
-    let (xq, _) = xb.as_chunks::<16>();
-    let (wq, _) = wb.as_chunks::<STEP>();
-    let [mut a, mut b, mut c, mut d] = acc;
-    for (xq, wq) in xq.iter().zip(wq) {
+    let (Some((xb, xl)), Some(wb)) = (x.split_at_checked(body), w.get(..STEP * body)) else {
+        return acc;
+    };
+    for (xq, wq) in xb.iter().zip(wb.as_chunks::<STEP>().0) {
         no_unroll();
         let wv = u32::from_le_bytes([wq[0], wq[1], wq[2], wq[3]]);
-        (a, b, c, d) = quad(xq, wv, (a, b, c, d));
+        quad(xq, wv, &mut acc);
     }
-    let last = (
-        x.get(16 * body..16 * kq),
-        w.get(STEP * body..STEP * body + 4),
-    );
-    if let (Some(xq), Some(wq)) = last {
-        if let (Ok(xq), Ok(wq)) = (<&[i16; 16]>::try_from(xq), <&[u8; 4]>::try_from(wq)) {
-            (a, b, c, d) = quad(xq, u32::from_le_bytes(*wq), (a, b, c, d));
-        }
+    let last = w.get(STEP * body..STEP * body + 4);
+    if let (Some(xq), Some(Ok(wq))) = (xl.first(), last.map(<&[u8; 4]>::try_from)) {
+        quad(xq, u32::from_le_bytes(*wq), &mut acc);
     }
-    acc = [a, b, c, d];
     acc
 }
 
-/// One quad of four staged pixels against one stored word `wv`
+/// `rq.apply(b + acc[k], out)` for every pixel `k` of one output
+/// channel, with [`Requant::apply`]'s choice of its 32-bit path (a total
+/// shift of 32 or more and a zero point in range, the usual case) made
+/// once for the channel rather than per value: the same formula, the
+/// same bytes, about half the instructions per value.
+#[inline(always)]
+fn requant_row<const P: usize>(rq: &Requant, b: i32, acc: &[i32; P], out: OutputQuant) -> [i8; P] {
+    let s = 30 + rq.shift;
+    if s >= 32 && out.zero_point.wrapping_add(128) as u32 <= 255 {
+        // A valid multiplier has s ≤ 61: the shift below is at most 29.
+        let sh = ((s - 32) & 31) as u32;
+        let (lo, hi) = (out.min as i32, out.max as i32);
+        acc.map(|a| {
+            let h = ((b.wrapping_add(a) as i64 * rq.mult as i64) >> 32) as i32;
+            let r = (((h >> sh) + 1) >> 1) + out.zero_point;
+            // `min <= max` in a valid output (the kernels refuse others):
+            // the same as `apply`'s two comparisons.
+            r.max(lo).min(hi) as i8
+        })
+    } else {
+        acc.map(|a| rq.apply(b.wrapping_add(a), out))
+    }
+}
+
+/// One quad of `P` staged pixels against one stored word `wv`
 /// (`[w0, w2, w1, w3]`): `sxtb16` gives `(w0, w1)`, `sxtb16 … ror #8`
 /// gives `(w2, w3)`, each meeting one word of a pixel's widened values.
 #[inline(always)]
-fn quad(x: &[i16; 16], wv: u32, acc: (i32, i32, i32, i32)) -> (i32, i32, i32, i32) {
+fn quad<const P: usize>(x: &[[i16; 4]; P], wv: u32, acc: &mut [i32; P]) {
     let (lo, hi) = (ingot_dsp::sxtb16(wv), ingot_dsp::sxtb16_ror8(wv));
-    let mac = |s: i32, k: usize| {
-        let s = ingot_dsp::smlad(word(x[k], x[k + 1]), lo, s);
-        ingot_dsp::smlad(word(x[k + 2], x[k + 3]), hi, s)
-    };
-    (mac(acc.0, 0), mac(acc.1, 4), mac(acc.2, 8), mac(acc.3, 12))
+    for (s, v) in acc.iter_mut().zip(x) {
+        *s = ingot_dsp::smlad(word(v[0], v[1]), lo, *s);
+        *s = ingot_dsp::smlad(word(v[2], v[3]), hi, *s);
+    }
 }

@@ -304,3 +304,65 @@ fn extreme_values_by_hand() {
         }
     }
 }
+
+const LA: usize = 2048;
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(300))]
+
+    /// Linear layers (two rows per pass over the input, four int8 values
+    /// per word on cores with the DSP extension and on hosts): odd input
+    /// lengths (a partial last word), odd output counts (a last row
+    /// alone), several output pixels, strided (non-contiguous) inputs,
+    /// extreme values, `i8` weights and the weights file's bytes, against
+    /// the naive i64 sum (common practice).
+    #[test]
+    fn linear_matches_reference(
+        (h, w, c, extra, off) in (1usize..4, 1usize..4, 1usize..23, 0usize..3, 0usize..4),
+        (oh, ow, o) in (1usize..3, 1usize..3, 1usize..10),
+        extreme in 0u64..17,
+        seed in any::<u64>(),
+        zp in any::<i8>(),
+    ) {
+        let mut rng = Lcg(seed);
+        let input = MapRef::strided(off, h, w, c, c + extra);
+        let n_in = h * w * c;
+        let output = MapRef::new(input.end().unwrap() + 1, oh, ow, o);
+        let n_out = output.len();
+        let mut arena = [0i8; LA];
+        for v in arena.iter_mut() {
+            *v = value(&mut rng, extreme);
+        }
+        let weights: Vec<i8> = (0..n_out * n_in).map(|_| value(&mut rng, extreme)).collect();
+        let bytes: Vec<u8> = weights.iter().map(|&v| v as u8).collect();
+        let bias: Vec<i32> = (0..n_out).map(|_| rng.range(-100_000, 100_000) as i32).collect();
+        let rq: Vec<Requant> = (0..n_out)
+            .map(|_| Requant::from_real(0.0005 + (rng.next() % 200) as f64 * 0.0002).unwrap())
+            .collect();
+        let oq = OutputQuant::linear(zp as i32);
+        let mut want = vec![0i8; n_out];
+        for (k, wv) in want.iter_mut().enumerate() {
+            let mut acc = bias[k] as i64;
+            let mut i = 0;
+            for y in 0..h {
+                for x in 0..w {
+                    for ch in 0..c {
+                        acc += weights[k * n_in + i] as i64 * get(&arena, &input, y, x, ch) as i64;
+                        i += 1;
+                    }
+                }
+            }
+            *wv = ref_finish(ref_scale(acc, rq[k]), oq.zero_point, oq.min, oq.max);
+        }
+        let mut a = arena;
+        linear(&mut a, input, output, &weights, &bias, &rq, oq).unwrap();
+        let mut got = vec![0i8; n_out];
+        copy_out(&a, output, &mut got).unwrap();
+        prop_assert_eq!(&got, &want);
+        let mut b = arena;
+        checked::Linear::<LA>::new_bytes(input, output, &bytes, &bias, &rq, oq)
+            .unwrap()
+            .run(&mut b);
+        prop_assert!(a == b, "the weights file's bytes give other bytes");
+    }
+}
