@@ -4,32 +4,42 @@
 //! The per-pixel word kernel ([`conv2d_words`](crate::conv2d_words)'s
 //! general path) runs four weight rows against one widened pixel: every
 //! weight word it loads is widened (`sxtb16`, twice) for four MACs of one
-//! pixel only, so a quarter of its inner loop is widening. Here a weight
-//! row meets four pixels at once: the four input pixels are first widened
-//! (and transformed, with a fused input transform) into a staging buffer,
-//! interleaved per quad of channels (`[quad][pixel][4]`, `i16`), so one
-//! pointer walks them; then each output channel's weight word is loaded
-//! and widened once and feeds eight `smlad` (two per pixel). The staged
-//! values are loaded as words, two per pixel and quad, already in the
-//! lanes the widened weights meet (`(x0, x1)`, `(x2, x3)`: the word
-//! layout's byte order `w0, w2, w1, w3` is the one the patch kernels use,
-//! so no layout of their own is needed).
+//! pixel only. Here a weight row meets four pixels at once: the four
+//! input pixels are first widened into a staging buffer, interleaved per
+//! quad of channels (`[quad][pixel][4]`, `i16`), so one pointer walks
+//! them; then each output channel's weight word is loaded and widened once
+//! and feeds eight `smlad` (two per pixel). The staged values are loaded
+//! as words, two per pixel and quad, already in the lanes the widened
+//! weights meet (`(x0, x1)`, `(x2, x3)`: the word layout's byte order
+//! `w0, w2, w1, w3` is the one the patch kernels use, so no layout of
+//! their own is needed).
 //!
-//! Why four pixels × one row rather than the two × two or two × four
-//! blocks that also reuse each widened input word: a Cortex-M has 13
-//! usable registers in such a loop (r7 holds the frame pointer). Two
-//! pixels × four rows needs eight accumulators, four widened input words,
-//! two widened weight halves and three pointers (17): it spills. Four
-//! pixels × one row needs four accumulators, two weight halves, the two
-//! words of the pixel being added and three pointers (11), with the input
-//! words reloaded from the staging buffer (`ldrd`, one instruction per
-//! pixel and quad). The pixels are taken in order across output rows, so
-//! a whole map leaves at most three pixels, which run the per-pixel word
-//! kernel.
+//! Why four pixels × one row rather than two × two or two × four, which
+//! would also keep each widened input word in a register for several
+//! rows: a Cortex-M has 13 usable registers in such a loop (r7 holds the
+//! frame pointer). Two pixels × four rows needs eight accumulators, four
+//! widened input words, two widened weight halves and three pointers
+//! (17): it spills. Four pixels × one row needs four accumulators, two
+//! weight halves, one staged word at a time and three pointers, and
+//! compiles to 23 instructions per 16 MACs (`arm-none-eabi-objdump -d`
+//! of the thumbv7em rlib: one weight load, two `sxtb16`, eight loads of
+//! staged words, eight `smlad`, three of loop step). The staged words are
+//! loaded one at a time: the patch is an `i16` slice, so the compiler
+//! cannot assume the 4-byte alignment `ldrd` needs (with it, 19). Six
+//! pixels (30 per 24 MACs on paper) spilled one accumulator and the loop
+//! counter (33 to 35). So the loop is about as long per MAC as the
+//! per-pixel kernel's (24 per 16); what the four pixels save is the
+//! per-output work around it for small input channel counts, where the
+//! per-pixel kernel's calls dominate. The pixels are taken in order
+//! across output rows, so a call leaves at most three pixels, which run
+//! the per-pixel word kernel.
+//!
+//! With a fused input transform the kernel is not used: the ring of
+//! transformed rows measured faster on the demo's transition.
 
 use crate::conv::{paired_rows, ConvArgs, Window};
 use crate::dot::no_unroll;
-use crate::{InputTransform, OutputQuant, Requant};
+use crate::{OutputQuant, Requant};
 
 /// Length (in `i16` elements) of the staging buffer the four-pixel
 /// pointwise kernel of [`conv2d_words`](crate::conv2d_words) takes from
@@ -41,8 +51,8 @@ pub const fn pointwise_patch_len(c_in: usize) -> usize {
 
 /// True when [`conv2d_words`](crate::conv2d_words) runs a window as a
 /// pointwise convolution four pixels at a time (given a `patch` of at
-/// least [`pointwise_patch_len`] elements): a 1×1 kernel without padding
-/// and one group (any step).
+/// least [`pointwise_patch_len`] elements and no input transform): a 1×1
+/// kernel without padding and one group (any step).
 pub const fn pointwise_applies(w: &Window, groups: usize) -> bool {
     w.kh == 1
         && w.kw == 1
@@ -66,7 +76,6 @@ struct Pass<'a> {
     bias: &'a [i32],
     requant: &'a [Requant],
     out_q: OutputQuant,
-    transform: Option<&'a InputTransform<'a>>,
     /// Input and output channels, quads per weight row.
     c: usize,
     m: usize,
@@ -106,7 +115,6 @@ pub(crate) fn run_words(
         bias,
         requant,
         out_q: p.out,
-        transform: a.transform.as_ref(),
         c,
         m,
         kq,
@@ -130,13 +138,8 @@ pub(crate) fn run_words(
             }
         }
     }
-    // The one to three pixels left: a pair, then one alone.
-    let left = px.get(..n).unwrap_or(&[]);
-    let (pairs, one) = left.as_chunks::<2>();
-    for pair in pairs {
-        pass.group(arena, pair, stage);
-    }
-    if let [(src, dst)] = *one {
+    // The one to three pixels left, one at a time.
+    for &(src, dst) in px.get(..n).unwrap_or(&[]) {
         pass.one(arena, src, dst, stage);
     }
 }
@@ -199,8 +202,8 @@ impl Pass<'_> {
         let (Some(x), Some(s)) = (stage.get_mut(..c), arena.get(src..src + c)) else {
             return;
         };
-        for (ch, (d, &v)) in x.iter_mut().zip(s).enumerate() {
-            *d = self.value(ch, v);
+        for (d, &v) in x.iter_mut().zip(s) {
+            *d = v as i16;
         }
         let Some(out) = arena.get_mut(dst..dst + self.m) else {
             return;
@@ -208,72 +211,39 @@ impl Pass<'_> {
         paired_rows(x, self.weights, self.bias, self.requant, self.out_q, out);
     }
 
-    /// Channel `ch`'s value `v` as the kernel multiplies it: transformed
-    /// if there is a transform, widened.
-    #[inline(always)]
-    fn value(&self, ch: usize, v: i8) -> i16 {
-        match self.transform {
-            None => v as i16,
-            Some(t) => t.apply(ch, v) as i16,
-        }
-    }
-
     /// Pixel `s` into lane group `i` of every quad of a `P`-pixel staging
-    /// buffer (`stage[4Pq + 4i .. 4Pq + 4i + 4]`), zeros past the last
-    /// channel (they meet zero weights).
+    /// buffer (`stage[4Pq + 4i .. 4Pq + 4i + 4]`), widened, zeros past the
+    /// last channel (they meet zero weights).
     #[inline(always)]
     fn stage_pixel<const P: usize>(&self, stage: &mut [i16], i: usize, s: &[i8]) {
         let Some(lanes) = stage.get_mut(4 * i..) else {
             return;
         };
         let mut dst = lanes.chunks_mut(4 * P);
-        let mut ch = 0;
-        match self.transform {
-            None => {
-                // Four channels per word: `sxtb16` gives (x0, x2) and
-                // (x1, x3), the pack instructions (x0, x1) and (x2, x3).
-                // Source first: `zip` asks its first iterator first, and a
-                // destination chunk taken for a missing source quad would
-                // be lost to the partial quad after the loop.
-                for (q, d) in s.chunks_exact(4).zip(&mut dst) {
-                    let v = u32::from_le_bytes([q[0] as u8, q[1] as u8, q[2] as u8, q[3] as u8]);
-                    let (even, odd) = (ingot_dsp::sxtb16(v), ingot_dsp::sxtb16_ror8(v));
-                    let lo = ingot_dsp::pkhbt_lsl16(even, odd);
-                    let hi = ingot_dsp::pkhtb_asr16(odd, even);
-                    if let Some(d) = d.get_mut(..4) {
-                        for (d, h) in d.iter_mut().zip([lo, lo >> 16, hi, hi >> 16]) {
-                            *d = h as i16;
-                        }
-                    }
-                    ch += 4;
+        let src = s.chunks_exact(4);
+        let rest = src.remainder();
+        // Four channels per word: `sxtb16` gives (x0, x2) and (x1, x3),
+        // the pack instructions (x0, x1) and (x2, x3). Source first: `zip`
+        // asks its first iterator first, and a destination chunk taken for
+        // a missing source quad would be lost to the partial quad below.
+        for (q, d) in src.zip(&mut dst) {
+            let v = u32::from_le_bytes([q[0] as u8, q[1] as u8, q[2] as u8, q[3] as u8]);
+            let (even, odd) = (ingot_dsp::sxtb16(v), ingot_dsp::sxtb16_ror8(v));
+            let lo = ingot_dsp::pkhbt_lsl16(even, odd);
+            let hi = ingot_dsp::pkhtb_asr16(odd, even);
+            if let Some(d) = d.get_mut(..4) {
+                for (d, h) in d.iter_mut().zip([lo, lo >> 16, hi, hi >> 16]) {
+                    *d = h as i16;
                 }
             }
-            Some(InputTransform::Affine(t)) => {
-                // The channels' parameters walked alongside.
-                let (mul, add, rounding) = (t.mul.chunks(4), t.add.chunks(4), t.rounding());
-                for ((d, q), (m, a)) in dst.zip(s.chunks(4)).zip(mul.zip(add)) {
-                    let Some(d) = d.get_mut(..4) else {
-                        return;
-                    };
-                    d.fill(0);
-                    for (((d, &v), &m), &a) in d.iter_mut().zip(q).zip(m).zip(a) {
-                        *d = t.apply_with(m, a, rounding, v) as i16;
-                    }
-                }
-                return;
-            }
-            Some(_) => {}
         }
-        // A table, and the one to three channels of a last quad.
-        let rest = s.get(ch..).unwrap_or(&[]);
-        for (d, q) in dst.zip(rest.chunks(4)) {
-            let Some(d) = d.get_mut(..4) else {
-                return;
-            };
-            d.fill(0);
-            for (d, &v) in d.iter_mut().zip(q) {
-                *d = self.value(ch, v);
-                ch += 1;
+        // The one to three channels of a last quad.
+        if let (Some(d), false) = (dst.next(), rest.is_empty()) {
+            if let Some(d) = d.get_mut(..4) {
+                d.fill(0);
+                for (d, &v) in d.iter_mut().zip(rest) {
+                    *d = v as i16;
+                }
             }
         }
     }

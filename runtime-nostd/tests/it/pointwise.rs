@@ -9,8 +9,9 @@
 //! block, pixel counts that leave one to three pixels after the groups of
 //! four (odd widths, strides, row ranges that cut the map), inputs at odd
 //! byte offsets with a pixel stride wider than the channels, the extreme
-//! values ±127 and −128 in inputs and weights, and the fused input
-//! transforms. Rings (input and output stored as a few rows) are held to
+//! values ±127 and −128 in inputs and weights. With a fused input
+//! transform the kernel steps aside (the ring of rows or the per-pixel
+//! patch runs); those cases hold the fallback to the reference. Rings (input and output stored as a few rows) are held to
 //! the whole-map run by `rows.rs`, which runs 1×1 word convolutions with
 //! a patch large enough for this kernel.
 
