@@ -231,12 +231,18 @@ fn dot2_words<W: Wt>(x: &[i8], w0: &[W], w1: &[W]) -> [i32; 2] {
     let (Some(w0), Some(w1)) = (w0.get(..n), w1.get(..n)) else {
         return [0; 2];
     };
-    let (xq, xr) = x.as_chunks::<4>();
-    let (aq, ar) = w0.as_chunks::<4>();
-    let (bq, br) = w1.as_chunks::<4>();
+    let (xq, aq, bq) = (x.chunks_exact(4), w0.chunks_exact(4), w1.chunks_exact(4));
+    let (xr, ar, br) = (xq.remainder(), aq.remainder(), bq.remainder());
     let (mut s0, mut s1) = (0i32, 0i32);
-    for ((xq, aq), bq) in xq.iter().zip(aq).zip(bq) {
+    for ((xq, aq), bq) in xq.zip(aq).zip(bq) {
         no_unroll();
+        let (Some(xq), Some(aq), Some(bq)) = (
+            xq.first_chunk::<4>(),
+            aq.first_chunk::<4>(),
+            bq.first_chunk::<4>(),
+        ) else {
+            break;
+        };
         let xv = word4(xq);
         let (xe, xo) = (ingot_dsp::sxtb16(xv), ingot_dsp::sxtb16_ror8(xv));
         let av = word4(aq);

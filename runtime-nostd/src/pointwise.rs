@@ -148,24 +148,17 @@ impl Pass<'_> {
     /// `P` pixels: stage them, then every output channel, one weight row
     /// per call of [`px`].
     #[inline(never)]
-    fn group<const P: usize>(
-        &self,
-        arena: &mut [i8],
-        pixels: &[(usize, usize); P],
-        stage: &mut [i16],
-    ) {
+    fn group(&self, arena: &mut [i8], pixels: &[(usize, usize); PIXELS], stage: &mut [i16]) {
         let (c, kq) = (self.c, self.kq);
         for (i, &(src, _)) in pixels.iter().enumerate() {
             let Some(s) = arena.get(src..src + c) else {
                 return;
             };
-            self.stage_pixel::<P>(stage, i, s);
+            self.stage_pixel(stage, i, s);
         }
-        let Some(x) = stage.get(..4 * P * kq) else {
+        let Some(x) = stage.get(..4 * PIXELS * kq) else {
             return;
         };
-        let (x, _) = x.as_chunks::<4>();
-        let (x, _) = x.as_chunks::<P>();
         let dsts = pixels.map(|(_, d)| d);
         // Rows in blocks of four, a block's rows interleaved word by word
         // (the last block holds the one to three rows left over).
@@ -178,10 +171,10 @@ impl Pass<'_> {
                     return;
                 };
                 let acc = match rows {
-                    4 => px::<P, 16>(x, w),
-                    3 => px::<P, 12>(x, w),
-                    2 => px::<P, 8>(x, w),
-                    _ => px::<P, 4>(x, w),
+                    4 => px::<16>(x, w),
+                    3 => px::<12>(x, w),
+                    2 => px::<8>(x, w),
+                    _ => px::<4>(x, w),
                 };
                 for (v, &dst) in requant_row(rq, b, &acc, self.out_q).into_iter().zip(&dsts) {
                     if let Some(o) = arena.get_mut(dst + j) {
@@ -215,11 +208,11 @@ impl Pass<'_> {
     /// buffer (`stage[4Pq + 4i .. 4Pq + 4i + 4]`), widened, zeros past the
     /// last channel (they meet zero weights).
     #[inline(always)]
-    fn stage_pixel<const P: usize>(&self, stage: &mut [i16], i: usize, s: &[i8]) {
+    fn stage_pixel(&self, stage: &mut [i16], i: usize, s: &[i8]) {
         let Some(lanes) = stage.get_mut(4 * i..) else {
             return;
         };
-        let mut dst = lanes.chunks_mut(4 * P);
+        let mut dst = lanes.chunks_mut(4 * PIXELS);
         let src = s.chunks_exact(4);
         let rest = src.remainder();
         // Four channels per word: `sxtb16` gives (x0, x2) and (x1, x3),
@@ -252,7 +245,7 @@ impl Pass<'_> {
 /// One weight row against `P` staged pixels: `x` holds one unit per quad
 /// of channels (`[pixel][4]`), `w` the weights from the row's first word
 /// on, one word of the row every `STEP` bytes (its block interleaves
-/// `STEP / 4` rows). The `P` sums, pixel by pixel.
+/// `STEP / 4` rows). The four sums, pixel by pixel.
 ///
 /// The last word of a row in the layer's last block ends the weights, so
 /// the loop takes whole steps and the last quad comes after it. (The same
@@ -260,23 +253,29 @@ impl Pass<'_> {
 /// word compiled worse: LLVM addressed the staging buffer through an
 /// index and spilled, 31 to 48 instructions per pass instead of 23.) Its
 /// own function: the loop holds two pointers, the count, the widened
-/// weight word, one staged word at a time and `P` accumulators.
+/// weight word, one staged word at a time and four accumulators.
 #[inline(never)]
-fn px<const P: usize, const STEP: usize>(x: &[[[i16; 4]; P]], w: &[u8]) -> [i32; P] {
-    let mut acc = [0i32; P];
-    let Some(body) = x.len().checked_sub(1) else {
+fn px<const STEP: usize>(x: &[i16], w: &[u8]) -> [i32; PIXELS] {
+    let mut acc = [0i32; PIXELS];
+    let Some(body) = (x.len() / 16).checked_sub(1) else {
         return acc;
     };
-    let (Some((xb, xl)), Some(wb)) = (x.split_at_checked(body), w.get(..STEP * body)) else {
+    let (Some(xb), Some(xl), Some(wb)) = (
+        x.get(..16 * body),
+        x.get(16 * body..16 * body + 16),
+        w.get(..STEP * body),
+    ) else {
         return acc;
     };
-    for (xq, wq) in xb.iter().zip(wb.as_chunks::<STEP>().0) {
+    for (xq, wq) in xb.chunks_exact(16).zip(wb.chunks_exact(STEP)) {
         no_unroll();
-        let wv = u32::from_le_bytes([wq[0], wq[1], wq[2], wq[3]]);
-        quad(xq, wv, &mut acc);
+        let (Ok(xq), Some(wq)) = (<&[i16; 16]>::try_from(xq), wq.first_chunk::<4>()) else {
+            break;
+        };
+        quad(xq, u32::from_le_bytes(*wq), &mut acc);
     }
     let last = w.get(STEP * body..STEP * body + 4);
-    if let (Some(xq), Some(Ok(wq))) = (xl.first(), last.map(<&[u8; 4]>::try_from)) {
+    if let (Ok(xq), Some(Ok(wq))) = (<&[i16; 16]>::try_from(xl), last.map(<&[u8; 4]>::try_from)) {
         quad(xq, u32::from_le_bytes(*wq), &mut acc);
     }
     acc
@@ -310,9 +309,9 @@ fn requant_row<const P: usize>(rq: &Requant, b: i32, acc: &[i32; P], out: Output
 /// (`[w0, w2, w1, w3]`): `sxtb16` gives `(w0, w1)`, `sxtb16 … ror #8`
 /// gives `(w2, w3)`, each meeting one word of a pixel's widened values.
 #[inline(always)]
-fn quad<const P: usize>(x: &[[i16; 4]; P], wv: u32, acc: &mut [i32; P]) {
+fn quad(x: &[i16; 16], wv: u32, acc: &mut [i32; PIXELS]) {
     let (lo, hi) = (ingot_dsp::sxtb16(wv), ingot_dsp::sxtb16_ror8(wv));
-    for (s, v) in acc.iter_mut().zip(x) {
+    for (s, v) in acc.iter_mut().zip(x.chunks_exact(4)) {
         *s = ingot_dsp::smlad(word(v[0], v[1]), lo, *s);
         *s = ingot_dsp::smlad(word(v[2], v[3]), hi, *s);
     }
