@@ -163,14 +163,16 @@ macro_rules! mac {
         // SAFETY: one register-only multiply-accumulate of the DSP
         // extension, present on every core `cfg(ingot_dsp)` is set for:
         // no memory, no stack, result from the inputs only. It may set
-        // the sticky Q flag, hence no `preserves_flags`.
+        // the sticky Q flag, hence no `preserves_flags`. The accumulator
+        // is read and written in one register (`inout`): with a separate
+        // output register the allocator sometimes chose another one and
+        // closed a kernel's loop with a register copy per accumulator.
         unsafe {
             core::arch::asm!(
-                concat!($op, " {d}, {x}, {y}, {a}"),
-                d = lateout(reg) d,
+                concat!($op, " {a}, {x}, {y}, {a}"),
                 x = in(reg) $x,
                 y = in(reg) $y,
-                a = in(reg) $acc,
+                a = inout(reg) $acc => d,
                 options(pure, nomem, nostack),
             );
         }

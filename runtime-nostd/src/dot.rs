@@ -31,6 +31,8 @@ pub(crate) use scalar::{dot2_wide, dot4_wide, dot_wide};
 pub(crate) trait Wt: Copy {
     /// The weight's value.
     fn v(self) -> i32;
+    /// The weight's byte (two's complement), for word loads.
+    fn byte(self) -> u8;
 }
 
 impl Wt for i8 {
@@ -38,12 +40,20 @@ impl Wt for i8 {
     fn v(self) -> i32 {
         self as i32
     }
+    #[inline(always)]
+    fn byte(self) -> u8 {
+        self as u8
+    }
 }
 
 impl Wt for u8 {
     #[inline(always)]
     fn v(self) -> i32 {
         self as i8 as i32
+    }
+    #[inline(always)]
+    fn byte(self) -> u8 {
+        self
     }
 }
 

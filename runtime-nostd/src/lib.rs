@@ -140,13 +140,18 @@
 //!   several `SMLAD`s.
 //!
 //! Special paths: 1×1 pointwise (stride 1, no padding, one group) skips the
-//! window logic (the patch is the input pixel, widened); dense kernel rows
+//! window logic (the patch is the input pixel, widened); with the word
+//! layout and room for [`pointwise_patch_len`] values a 1×1 convolution
+//! (any step, no padding, one group) runs four output pixels per pass
+//! over each weight row instead (module `pointwise`); dense kernel rows
 //! inside the map are copied as one run of `kw·C_in` values; depthwise
 //! (`groups == C_in`, any channel multiplier) gathers the window tap-major
 //! like a dense convolution and lets each output channel walk its input
 //! channel's column. [`linear`] reads the input straight from the arena
 //! with an all-int8 dot product (each weight is used once, so there is
-//! nothing to amortize a widening over).
+//! nothing to amortize a widening over); on cores with the DSP extension
+//! (and on hosts) four int8 values per word, widened in registers with
+//! `sxtb16`, two weight rows per pass.
 //!
 //! # No panics
 //!
@@ -211,6 +216,7 @@ mod frame;
 mod io;
 mod linear;
 mod map;
+mod pointwise;
 mod pool;
 mod requant;
 mod transform;
@@ -231,6 +237,7 @@ pub use frame::{
 pub use io::{argmax, copy_in, copy_out, dequantize, quantize_pixels};
 pub use linear::linear;
 pub use map::MapRef;
+pub use pointwise::{pointwise_applies, pointwise_patch_len};
 pub use pool::{
     avg_pool2d, avg_pool2d_rows, div_round, global_avg_pool, max_pool2d, max_pool2d_rows, PoolQuant,
 };

@@ -142,7 +142,9 @@ pub fn patch_bytes(q: &QGraph) -> usize {
 /// [`patch_bytes`] for a weight form: with paired weights or words, a
 /// convolution that can run from whole input rows
 /// (`ingot_rt::conv_rows_apply`, `conv_rows_apply_words`) gets room for
-/// `ingot_rt::conv_rows_len` elements instead.
+/// `ingot_rt::conv_rows_len` elements instead; with words, a 1×1
+/// convolution (`ingot_rt::pointwise_applies`) room for four staged
+/// pixels (`ingot_rt::pointwise_patch_len`).
 pub fn patch_bytes_for(q: &QGraph, form: WeightForm) -> usize {
     q.steps
         .iter()
@@ -161,7 +163,14 @@ pub fn patch_bytes_for(q: &QGraph, form: WeightForm) -> usize {
                 } else {
                     0
                 };
-                Some(2 * patch.max(rows))
+                // Words: 1×1 convolutions stage four input pixels at a time.
+                let four = if form == WeightForm::Words && ingot_rt::pointwise_applies(&w, c.groups)
+                {
+                    ingot_rt::pointwise_patch_len(input.c)
+                } else {
+                    0
+                };
+                Some(2 * patch.max(rows).max(four))
             }
             _ => None,
         })

@@ -11,6 +11,7 @@ mod frame;
 mod frame_sums;
 mod kernels;
 mod no_std;
+mod pointwise;
 mod requant;
 mod rows;
 mod wide;
