@@ -758,6 +758,9 @@ fn conv_run_forms<const F: u8>(
     if seg == 0 {
         return;
     }
+    if crate::stem::applies(a) && crate::stem::run(arena, a, y0, y1) {
+        return;
+    }
     match (a.rows, a.ring) {
         (Rows::Pairs(pw), true) if F & forms::PAIRS != 0 => {
             conv_rows(

@@ -212,6 +212,7 @@ mod linear;
 mod map;
 mod pool;
 mod requant;
+mod stem;
 mod transform;
 pub mod wide;
 

@@ -12,4 +12,5 @@ mod kernels;
 mod no_std;
 mod requant;
 mod rows;
+mod stem;
 mod wide;
