@@ -3,22 +3,24 @@
 //! kernel), so the general kernel's per-pixel costs (gathering a patch,
 //! splitting the weight blocks, one call per block of rows) outweigh the
 //! few multiply-accumulates. Here each output pixel's taps are packed into
-//! 16-bit pairs once, kept in registers, and every output channel meets
-//! them with one dual multiply-accumulate (`smlad`) per pair against
-//! weights widened once per call into a small table on the stack, the
-//! channel's bias and requantization beside its weights.
+//! 16-bit pairs once and every output channel meets them with one dual
+//! multiply-accumulate (`smlad`) per pair, against weights widened once
+//! per call into a small table on the stack that also holds each
+//! channel's bias and requantization. 3×3 windows (the stem of every zoo
+//! network) take the fast path: taps read straight from three input rows,
+//! 16 pixels at a time, four channels per pass ([`quad`]); other windows
+//! up to 32 taps go pixel by pixel, one channel at a time.
 //!
 //! Used on cores with the DSP extension (`ingot_dsp::NATIVE`) and on
 //! hosts; on the Arm cores without it the dual multiply-accumulate is a
 //! portable twin that costs more than the plain loops, so those keep them.
 
 use crate::conv::{ConvArgs, Rows};
-use crate::OutputQuant;
 
-/// Words of the weight table: one entry of `pairs + 3` words per output
-/// channel (the tap pairs, bias, multiplier, shift); a call whose channels
-/// do not all fit runs in blocks of channels (2 KiB of stack at most would
-/// be too much on the small cores: 512 B).
+/// Words of the weight table of windows other than 3×3: one entry of
+/// `pairs + 4` words per output channel (the tap pairs, bias, multiplier,
+/// rounding term, shift; see [`finish`]); a call whose channels do not all
+/// fit runs in blocks of channels (512 B of stack).
 const TABLE: usize = 128;
 
 /// Most tap pairs a stem kernel takes (32 taps, e.g. 5×5).
@@ -51,56 +53,94 @@ pub(crate) fn applies(a: &ConvArgs<'_>) -> bool {
 #[inline(never)]
 pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> bool {
     let m = a.output.c;
-    let (Some(bias), Some(requant)) = (a.bias.get(..m), a.requant.get(..m)) else {
+    let (Some(_), Some(requant)) = (a.bias.get(..m), a.requant.get(..m)) else {
         return false;
     };
-    if requant.iter().any(|r| r.shift < 2) {
+    let zp = a.p.out.zero_point;
+    if requant.iter().any(|r| round_term(r.shift, zp).is_none()) {
         return false;
     }
     let w = &a.p.window;
     let taps = w.taps();
     let pairs = taps.div_ceil(2);
-    let e = pairs + 3;
+    let e = pairs + 4;
     let block = TABLE / e;
     if block == 0 || m == 0 {
         return true;
     }
-    let mut table = [0u32; TABLE];
     let mut c0 = 0;
+    if pairs == P3 {
+        // Up to sixteen channels at a time, in quads.
+        let mut quads = [Quad::ZERO; 4];
+        while c0 < m {
+            let n = if m - c0 < 16 { m - c0 } else { 16 };
+            let Some(qs) = quads.get_mut(..n.div_ceil(4)) else {
+                return true;
+            };
+            for (i, q) in qs.iter_mut().enumerate() {
+                *q = Quad::ZERO;
+                for lane in 0..4 {
+                    let j = 4 * i + lane;
+                    if j >= n {
+                        break;
+                    }
+                    let mut e = [0u32; P3 + 4];
+                    fill_entry(a, c0 + j, &mut e);
+                    for (wq, &v) in q.w.iter_mut().zip(&e) {
+                        wq[lane] = v;
+                    }
+                    q.bias[lane] = e[P3] as i32;
+                    q.mult[lane] = e[P3 + 1];
+                    q.k[lane] = e[P3 + 2];
+                    q.sh[lane] = e[P3 + 3] & 31;
+                }
+            }
+            rows3(arena, a, qs, n, c0, y0, y1);
+            c0 += n;
+        }
+        return true;
+    }
+    let mut table = [0u32; TABLE];
     while c0 < m {
         let n = if m - c0 < block { m - c0 } else { block };
         let Some(t) = table.get_mut(..n * e) else {
             return true;
         };
         for (j, entry) in t.chunks_exact_mut(e.max(1)).enumerate() {
-            let o = c0 + j;
-            let (Some(&b), Some(r)) = (bias.get(o), requant.get(o)) else {
-                return true;
-            };
-            for (p, v) in entry.iter_mut().take(pairs).enumerate() {
-                let lo = weight(a.rows, m, taps, o, 2 * p);
-                let hi = if 2 * p + 1 < taps {
-                    weight(a.rows, m, taps, o, 2 * p + 1)
-                } else {
-                    0
-                };
-                *v = ingot_dsp::portable::pack(lo as i16, hi as i16);
-            }
-            if let Some([vb, vm, vs]) = entry.get_mut(pairs..pairs + 3) {
-                *vb = b as u32;
-                *vm = r.mult as u32;
-                // The total shift less 32 (see `finish`).
-                *vs = (r.shift - 2) as u32;
-            }
+            fill_entry(a, c0 + j, entry);
         }
-        if pairs == P3 {
-            rows3(arena, a, t, c0, y0, y1);
-        } else {
-            rows_any(arena, a, t, pairs, c0, y0, y1);
-        }
+        rows_any(arena, a, t, pairs, c0, y0, y1);
         c0 += n;
     }
     true
+}
+
+/// The table entry of output channel `o`: its weights as tap pairs, then
+/// bias, multiplier, rounding term and shift (see [`finish`]).
+fn fill_entry(a: &ConvArgs<'_>, o: usize, entry: &mut [u32]) {
+    let (m, taps) = (a.output.c, a.p.window.taps());
+    let pairs = taps.div_ceil(2);
+    let (Some(&b), Some(r)) = (a.bias.get(o), a.requant.get(o)) else {
+        return;
+    };
+    for (p, v) in entry.iter_mut().take(pairs).enumerate() {
+        let lo = weight(a.rows, m, taps, o, 2 * p);
+        let hi = if 2 * p + 1 < taps {
+            weight(a.rows, m, taps, o, 2 * p + 1)
+        } else {
+            0
+        };
+        *v = ingot_dsp::portable::pack(lo as i16, hi as i16);
+    }
+    if let (Some([vb, vm, vk, vs]), Some(k)) = (
+        entry.get_mut(pairs..pairs + 4),
+        round_term(r.shift, a.p.out.zero_point),
+    ) {
+        *vb = b as u32;
+        *vm = r.mult as u32;
+        *vk = k as u32;
+        *vs = (r.shift - 1) as u32;
+    }
 }
 
 /// Weight `t` (flattened `[ky][kx]`) of output channel `o`, from any
@@ -115,7 +155,10 @@ fn weight(rows: Rows<'_>, m: usize, k: usize, o: usize, t: usize) -> i32 {
         Rows::File(w) => w.get(o * k + t).map_or(0, |&v| v as i8 as i32),
         Rows::Pairs(w) => {
             let kp = k.div_ceil(2);
-            let v = w.get(r0 * kp + (t / 2) * b + (o - r0)).copied().unwrap_or(0);
+            let v = w
+                .get(r0 * kp + (t / 2) * b + (o - r0))
+                .copied()
+                .unwrap_or(0);
             let half = if t % 2 == 0 { v } else { v >> 16 };
             half as u16 as i16 as i32
         }
@@ -129,40 +172,45 @@ fn weight(rows: Rows<'_>, m: usize, k: usize, o: usize, t: usize) -> i32 {
     }
 }
 
-/// `clamp(z_out + round(acc · M))` for a total shift `32 + sh`: the 32-bit
-/// path of [`crate::Requant::apply`], the same result bit for bit.
-#[inline(always)]
-fn finish(acc: i32, mult: u32, sh: u32, q: OutputQuant) -> i8 {
-    let hi = ((acc as i64 * mult as i32 as i64) >> 32) as i32;
-    let r = ((hi.wrapping_shr(sh) + 1) >> 1) + q.zero_point;
-    if r < q.min as i32 {
-        q.min
-    } else if r > q.max as i32 {
-        q.max
-    } else {
-        r as i8
+/// The rounding term of [`finish`] for a multiplier's `shift` and the
+/// output zero point, or `None` when the total shift is below 32 (the
+/// 64-bit path of [`crate::Requant::apply`]) or the term does not fit.
+///
+/// With `h` the high word of `acc · mult` and `s = shift - 2` (the total
+/// shift less 32), `Requant::apply` computes
+/// `((h >> s) + 1 >> 1) + zp`, which is `(h + ((1 + 2·zp) << s)) >> (s + 1)`
+/// (adding a multiple of `2^s` commutes with the floor of the shift, and
+/// `zp = 2·zp / 2`): one addition and one shift. `|h| <= 2^30`, so the sum
+/// cannot overflow while the term stays below `2^30` in magnitude.
+const fn round_term(shift: i32, zp: i32) -> Option<i32> {
+    if shift < 2 || shift > 32 || zp < -128 || zp > 127 {
+        return None;
     }
+    let k = (1 + 2 * zp as i64) << (shift - 2);
+    if k >= 1 << 30 || k <= -(1 << 30) {
+        return None;
+    }
+    Some(k as i32)
 }
 
-/// One pixel's channels of a table block: `x` the pixel's tap pairs,
-/// `table` entries of `E = P + 3` words.
+/// `clamp(z_out + round(acc · M), lo, hi)` from a table entry's
+/// multiplier, rounding term and shift (see [`round_term`]): the same
+/// result as [`crate::Requant::apply`] bit for bit. With `FULL` the upper
+/// bound is 127 (no activation, ReLU): one saturation (`ssat`) and one
+/// comparison with `lo`, and `hi` unused.
 #[inline(always)]
-fn channels<const P: usize, const E: usize>(
-    x: &[u32; P],
-    table: &[u32],
-    q: OutputQuant,
-    out: &mut [i8],
-) {
-    let mut entries = table.chunks_exact(E);
-    for o in out.iter_mut() {
-        let Some(Ok(e)) = entries.next().map(<&[u32; E]>::try_from) else {
-            return;
-        };
-        let mut acc = e[P] as i32;
-        for p in 0..P {
-            acc = ingot_dsp::smlad(x[p], e[p], acc);
-        }
-        *o = finish(acc, e[P + 1], e[P + 2], q);
+fn finish<const FULL: bool>(acc: i32, mult: u32, k: u32, sh: u32, lo: i32, hi: i32) -> i8 {
+    let h = ((acc as i64 * mult as i32 as i64) >> 32) as i32;
+    let r = (h + k as i32).wrapping_shr(sh);
+    if FULL {
+        let r = r.clamp(-128, 127);
+        (if r < lo { lo } else { r }) as i8
+    } else if r < lo {
+        lo as i8
+    } else if r > hi {
+        hi as i8
+    } else {
+        r as i8
     }
 }
 
@@ -206,14 +254,26 @@ fn pair(lo: i8, hi: i8) -> u32 {
     ingot_dsp::pkhbt_lsl16(lo as i32 as u32, hi as i32 as u32)
 }
 
+/// Output pixels whose tap pairs [`rows3`] builds before running their
+/// channels (on the stack: `16 · 5` words).
+const CHUNK: usize = 16;
+
 /// A 3×3 stem over output rows `[y0, y1)`, channels `c0..` of the table
-/// block `t`. Pixels whose window lies inside the map (and a map with
-/// dense pixels) read their nine taps straight from the three input rows
-/// into five registers; the others gather with padding.
-fn rows3(arena: &mut [i8], a: &ConvArgs<'_>, t: &[u32], c0: usize, y0: usize, y1: usize) {
+/// block `t`. The tap pairs of up to [`CHUNK`] pixels of a row are built
+/// first (pixels whose window lies inside a map of dense pixels read
+/// their nine taps straight from the three input rows; the others gather
+/// with padding), then [`pixels`] runs their channels.
+fn rows3(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    t: &[Quad],
+    n: usize,
+    c0: usize,
+    y0: usize,
+    y1: usize,
+) {
     let (input, output, w) = (&a.input, &a.output, &a.p.window);
-    let n = t.len() / (P3 + 3);
-    let q = a.p.out;
+    let (lo, hi) = (a.p.out.min as i32, a.p.out.max as i32);
     let (sx, pl) = (w.step_x, w.pad.left);
     // Output columns whose window is inside the map horizontally.
     let ox_lo = pl.div_ceil(sx.max(1));
@@ -222,6 +282,7 @@ fn rows3(arena: &mut [i8], a: &ConvArgs<'_>, t: &[u32], c0: usize, y0: usize, y1
     } else {
         0
     };
+    let mut xs = [[0u32; P3]; CHUNK];
     for oy in y0..y1 {
         let yy = oy * w.step_y;
         let rows_in = w.kh == 3
@@ -229,47 +290,165 @@ fn rows3(arena: &mut [i8], a: &ConvArgs<'_>, t: &[u32], c0: usize, y0: usize, y1
             && yy >= w.pad.top
             && yy - w.pad.top + 3 <= input.h
             && input.stride == 1;
+        let (r0, r1, r2) = if rows_in {
+            let iy = yy - w.pad.top;
+            (input.row(iy), input.row(iy + 1), input.row(iy + 2))
+        } else {
+            (0, 0, 0)
+        };
         let out_row = output.row(oy);
-        let mut ox = 0;
-        while ox < output.w {
-            let dst = out_row + ox * output.stride + c0;
-            if rows_in && ox >= ox_lo && ox < ox_hi {
-                // Interior run of the row: three row slices, stepped.
-                let iy = yy - w.pad.top;
-                let (r0, r1, r2) = (input.row(iy), input.row(iy + 1), input.row(iy + 2));
-                let mut xs = [0u32; P3];
-                let mut ix = ox * sx - pl;
-                while ox < ox_hi {
-                    let (Some(&[a0, a1, a2]), Some(&[b0, b1, b2]), Some(&[c0_, c1, c2])) = (
-                        arena.get(r0 + ix..r0 + ix + 3),
-                        arena.get(r1 + ix..r1 + ix + 3),
-                        arena.get(r2 + ix..r2 + ix + 3),
-                    ) else {
-                        return;
-                    };
-                    xs[0] = pair(a0, a1);
-                    xs[1] = pair(a2, b0);
-                    xs[2] = pair(b1, b2);
-                    xs[3] = pair(c0_, c1);
-                    xs[4] = c2 as i32 as u32;
-                    let dst = out_row + ox * output.stride + c0;
-                    let Some(out) = arena.get_mut(dst..dst + n) else {
-                        return;
-                    };
-                    channels::<P3, { P3 + 3 }>(&xs, t, q, out);
-                    ox += 1;
-                    ix += sx;
-                }
-                continue;
-            }
-            let mut xs = [0u32; P3];
-            gather(a, arena, oy, ox, &mut xs);
-            let Some(out) = arena.get_mut(dst..dst + n) else {
+        let mut ox0 = 0;
+        while ox0 < output.w {
+            let cnt = if output.w - ox0 < CHUNK {
+                output.w - ox0
+            } else {
+                CHUNK
+            };
+            let Some(chunk) = xs.get_mut(..cnt) else {
                 return;
             };
-            channels::<P3, { P3 + 3 }>(&xs, t, q, out);
-            ox += 1;
+            // Interior pixels of the chunk: [i0, i1) (empty when the rows
+            // are not all inside).
+            let (i0, i1) = if rows_in {
+                let i0 = ox_lo.clamp(ox0, ox0 + cnt);
+                (i0, ox_hi.clamp(i0, ox0 + cnt))
+            } else {
+                (ox0, ox0)
+            };
+            for ox in (ox0..i0).chain(i1..ox0 + cnt) {
+                if let Some(x) = chunk.get_mut(ox - ox0) {
+                    gather(a, arena, oy, ox, x);
+                }
+            }
+            if i0 < i1 {
+                let ix = i0 * sx - pl;
+                let span = (i1 - i0 - 1) * sx + 3;
+                let (Some(s0), Some(s1), Some(s2), Some(x)) = (
+                    arena.get(r0 + ix..r0 + ix + span),
+                    arena.get(r1 + ix..r1 + ix + span),
+                    arena.get(r2 + ix..r2 + ix + span),
+                    chunk.get_mut(i0 - ox0..i1 - ox0),
+                ) else {
+                    return;
+                };
+                taps3(s0, s1, s2, sx, x);
+            }
+            let dst = out_row + ox0 * output.stride + c0;
+            if hi == 127 {
+                pixels::<true>(arena, dst, output.stride, chunk, t, n, lo, hi);
+            } else {
+                pixels::<false>(arena, dst, output.stride, chunk, t, n, lo, hi);
+            }
+            ox0 += cnt;
         }
+    }
+}
+
+/// The tap pairs of `xs.len()` pixels of a 3×3 window stepping `sx`
+/// along three input rows (`s0`, `s1`, `s2`, each starting at the first
+/// pixel's window), in [`gather`]'s order.
+#[inline(never)]
+fn taps3(s0: &[i8], s1: &[i8], s2: &[i8], sx: usize, xs: &mut [[u32; P3]]) {
+    // One length for the three rows, one comparison per pixel: the nine
+    // reads below are then in bounds, and the optimiser drops their checks.
+    let len = s0.len();
+    if s1.len() != len || s2.len() != len {
+        return;
+    }
+    let mut i = 0;
+    for x in xs.iter_mut() {
+        match len.checked_sub(i) {
+            Some(r) if r >= 3 => {}
+            _ => return,
+        }
+        let at = |s: &[i8], k: usize| s.get(i + k).copied().unwrap_or(0);
+        *x = [
+            pair(at(s0, 0), at(s0, 1)),
+            pair(at(s0, 2), at(s1, 0)),
+            pair(at(s1, 1), at(s1, 2)),
+            pair(at(s2, 0), at(s2, 1)),
+            at(s2, 2) as i32 as u32,
+        ];
+        i += sx;
+    }
+}
+
+/// Four output channels of a 3×3 stem: per tap pair the four channels'
+/// weights side by side, so one loaded pair of taps feeds four `smlad`
+/// (the shape of the paired dot products in `dot.rs`), then the four
+/// channels' bias and requantization (see [`finish`]).
+#[derive(Clone, Copy)]
+struct Quad {
+    w: [[u32; 4]; P3],
+    bias: [i32; 4],
+    mult: [u32; 4],
+    k: [u32; 4],
+    sh: [u32; 4],
+}
+
+impl Quad {
+    /// No weights, no bias (a last quad's unused lanes).
+    const ZERO: Quad = Quad {
+        w: [[0; 4]; P3],
+        bias: [0; 4],
+        mult: [0; 4],
+        k: [0; 4],
+        sh: [0; 4],
+    };
+}
+
+/// The four output codes of a quad for one pixel's tap pairs `x`,
+/// packed little-endian in a word: `Σ_p x[p] · w[p][j]` (dual 16-bit
+/// lanes) from the bias, then [`finish`]. A loop over the pairs rather
+/// than five unrolled steps: unrolled, LLVM loads all twenty weights
+/// first and spills.
+#[inline(never)]
+fn quad<const FULL: bool>(x: &[u32], q: &Quad, lo: i32, hi: i32) -> u32 {
+    let [mut a, mut b, mut c, mut d] = q.bias;
+    for (&xv, w) in x.iter().zip(&q.w) {
+        crate::dot::no_unroll();
+        a = ingot_dsp::smlad(xv, w[0], a);
+        b = ingot_dsp::smlad(xv, w[1], b);
+        c = ingot_dsp::smlad(xv, w[2], c);
+        d = ingot_dsp::smlad(xv, w[3], d);
+    }
+    let y = |j: usize, s: i32| finish::<FULL>(s, q.mult[j], q.k[j], q.sh[j], lo, hi) as u8;
+    u32::from_le_bytes([y(0, a), y(1, b), y(2, c), y(3, d)])
+}
+
+/// The `n` channels of the quads `t` for the pixels whose tap pairs are
+/// `xs`, the first written at arena index `dst`, the next `stride`
+/// further on.
+#[allow(clippy::too_many_arguments)]
+#[inline(never)]
+fn pixels<const FULL: bool>(
+    arena: &mut [i8],
+    dst: usize,
+    stride: usize,
+    xs: &[[u32; P3]],
+    t: &[Quad],
+    n: usize,
+    lo: i32,
+    hi: i32,
+) {
+    // The pair count, opaque: a constant would unroll `quad`.
+    let pairs = core::hint::black_box(P3);
+    let mut d = dst;
+    for x in xs {
+        let (Some(out), Some(x)) = (arena.get_mut(d..d + n), x.get(..pairs)) else {
+            return;
+        };
+        for (o, q) in out.chunks_mut(4).zip(t) {
+            let v = quad::<FULL>(x, q, lo, hi).to_le_bytes();
+            if let Ok(o) = <&mut [i8; 4]>::try_from(&mut *o) {
+                *o = v.map(|b| b as i8);
+            } else {
+                for (y, &b) in o.iter_mut().zip(&v) {
+                    *y = b as i8;
+                }
+            }
+        }
+        d += stride;
     }
 }
 
@@ -283,8 +462,9 @@ fn rows_any(
     y0: usize,
     y1: usize,
 ) {
-    let (output, q) = (&a.output, a.p.out);
-    let e = pairs + 3;
+    let output = &a.output;
+    let (lo, hi) = (a.p.out.min as i32, a.p.out.max as i32);
+    let e = pairs + 4;
     let n = t.len() / e.max(1);
     let mut xs = [0u32; MAX_PAIRS];
     let Some(x) = xs.get_mut(..pairs) else {
@@ -303,7 +483,8 @@ fn rows_any(
                 let Some(en) = entries.next() else {
                     return;
                 };
-                let (Some(wv), Some(&[b, mult, sh])) = (en.get(..pairs), en.get(pairs..pairs + 3))
+                let (Some(wv), Some(&[b, mult, k, sh])) =
+                    (en.get(..pairs), en.get(pairs..pairs + 4))
                 else {
                     return;
                 };
@@ -311,7 +492,7 @@ fn rows_any(
                 for (&xv, &wv) in x.iter().zip(wv) {
                     acc = ingot_dsp::smlad(xv, wv, acc);
                 }
-                *o = finish(acc, mult, sh, q);
+                *o = finish::<false>(acc, mult, k, sh, lo, hi);
             }
         }
     }
