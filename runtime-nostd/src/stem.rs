@@ -64,7 +64,7 @@ pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> b
     let taps = w.taps();
     let pairs = taps.div_ceil(2);
     let e = pairs + 4;
-    let block = TABLE / e;
+    let block = TABLE / e.max(1);
     if block == 0 || m == 0 {
         return true;
     }
@@ -310,8 +310,9 @@ fn rows3(
             // Interior pixels of the chunk: [i0, i1) (empty when the rows
             // are not all inside).
             let (i0, i1) = if rows_in {
-                let i0 = ox_lo.clamp(ox0, ox0 + cnt);
-                (i0, ox_hi.clamp(i0, ox0 + cnt))
+                // By hand, not `clamp` (its bound check is a panic path).
+                let i0 = ox_lo.max(ox0).min(ox0 + cnt);
+                (i0, ox_hi.max(i0).min(ox0 + cnt))
             } else {
                 (ox0, ox0)
             };
@@ -402,7 +403,7 @@ impl Quad {
 /// lanes) from the bias, then [`finish`]. A loop over the pairs rather
 /// than five unrolled steps: unrolled, LLVM loads all twenty weights
 /// first and spills.
-#[inline(never)]
+#[inline(always)]
 fn quad<const FULL: bool>(x: &[u32], q: &Quad, lo: i32, hi: i32) -> u32 {
     let [mut a, mut b, mut c, mut d] = q.bias;
     for (&xv, w) in x.iter().zip(&q.w) {
@@ -418,7 +419,7 @@ fn quad<const FULL: bool>(x: &[u32], q: &Quad, lo: i32, hi: i32) -> u32 {
 
 /// The `n` channels of the quads `t` for the pixels whose tap pairs are
 /// `xs`, the first written at arena index `dst`, the next `stride`
-/// further on.
+/// further on: quad by quad, every pixel of the chunk.
 #[allow(clippy::too_many_arguments)]
 #[inline(never)]
 fn pixels<const FULL: bool>(
@@ -431,21 +432,62 @@ fn pixels<const FULL: bool>(
     lo: i32,
     hi: i32,
 ) {
-    // The pair count, opaque: a constant would unroll `quad`.
+    let cnt = xs.len();
+    if cnt == 0 || n == 0 {
+        return;
+    }
+    let Some(region) = arena.get_mut(dst..dst + (cnt - 1) * stride + n) else {
+        return;
+    };
+    // The pair count, opaque: a constant would unroll the pair loop.
     let pairs = core::hint::black_box(P3);
-    let mut d = dst;
+    for (i, q) in t.iter().enumerate() {
+        let w = if n - 4 * i < 4 { n - 4 * i } else { 4 };
+        quad_pixels::<FULL>(
+            region.get_mut(4 * i..).unwrap_or(&mut []),
+            stride,
+            xs,
+            pairs,
+            q,
+            w,
+            lo,
+            hi,
+        );
+    }
+}
+
+/// One quad of [`pixels`]: its `w` (1 to 4) channels for every pixel of
+/// `xs`, written from `out[0]` on, `stride` apart.
+#[allow(clippy::too_many_arguments)]
+#[inline(never)]
+fn quad_pixels<const FULL: bool>(
+    out: &mut [i8],
+    stride: usize,
+    xs: &[[u32; P3]],
+    pairs: usize,
+    q: &Quad,
+    w: usize,
+    lo: i32,
+    hi: i32,
+) {
+    let mut d = 0;
     for x in xs {
-        let (Some(out), Some(x)) = (arena.get_mut(d..d + n), x.get(..pairs)) else {
+        let Some(x) = x.get(..pairs) else {
             return;
         };
-        for (o, q) in out.chunks_mut(4).zip(t) {
-            let v = quad::<FULL>(x, q, lo, hi).to_le_bytes();
-            if let Ok(o) = <&mut [i8; 4]>::try_from(&mut *o) {
-                *o = v.map(|b| b as i8);
-            } else {
-                for (y, &b) in o.iter_mut().zip(&v) {
-                    *y = b as i8;
+        // Opaque, so that the quad is read where it is used rather than
+        // copied to the stack once and reloaded from there (single loads
+        // instead of pairs).
+        let v = quad::<FULL>(x, core::hint::black_box(q), lo, hi);
+        if w == 4 {
+            if let Some(o) = out.get_mut(d..d + 4) {
+                if let Ok(o) = <&mut [i8; 4]>::try_from(o) {
+                    *o = v.to_le_bytes().map(|b| b as i8);
                 }
+            }
+        } else if let Some(o) = out.get_mut(d..d + w) {
+            for (y, b) in o.iter_mut().zip(v.to_le_bytes()) {
+                *y = b as i8;
             }
         }
         d += stride;
