@@ -148,7 +148,8 @@
 //! group, no dilation or input transform, at most 32 taps) has a kernel of
 //! its own on DSP cores and hosts (`stem.rs`): each pixel's taps packed
 //! into 16-bit pairs once, weights widened per call into a table on the
-//! stack (at most about 1 KiB), four channels per pass of `SMLAD`.
+//! stack (its frame about 1.1 KiB on the M4), four channels per pass of
+//! `SMLAD`.
 //! [`linear`] reads the input straight from the arena
 //! with an all-int8 dot product (each weight is used once, so there is
 //! nothing to amortize a widening over).
