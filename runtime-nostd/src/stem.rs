@@ -258,11 +258,11 @@ fn pair(lo: i8, hi: i8) -> u32 {
 /// channels (on the stack: `16 · 5` words).
 const CHUNK: usize = 16;
 
-/// A 3×3 stem over output rows `[y0, y1)`, channels `c0..` of the table
-/// block `t`. The tap pairs of up to [`CHUNK`] pixels of a row are built
-/// first (pixels whose window lies inside a map of dense pixels read
-/// their nine taps straight from the three input rows; the others gather
-/// with padding), then [`pixels`] runs their channels.
+/// A window of nine or ten taps over output rows `[y0, y1)`, the `n`
+/// channels `c0..` held in the quads `t`. The tap pairs of up to [`CHUNK`] pixels of a row are built
+/// first (3×3 windows inside a map of dense pixels read their nine taps
+/// straight from the three input rows; the others gather with padding),
+/// then [`pixels`] runs their channels.
 fn rows3(
     arena: &mut [i8],
     a: &ConvArgs<'_>,
