@@ -117,6 +117,7 @@ pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> b
 
 /// The table entry of output channel `o`: its weights as tap pairs, then
 /// bias, multiplier, rounding term and shift (see [`finish`]).
+#[inline(never)]
 fn fill_entry(a: &ConvArgs<'_>, o: usize, entry: &mut [u32]) {
     let (m, taps) = (a.output.c, a.p.window.taps());
     let pairs = taps.div_ceil(2);
@@ -145,6 +146,7 @@ fn fill_entry(a: &ConvArgs<'_>, o: usize, entry: &mut [u32]) {
 
 /// Weight `t` (flattened `[ky][kx]`) of output channel `o`, from any
 /// stored form (`k` weights a row, `m` rows).
+#[inline(never)]
 fn weight(rows: Rows<'_>, m: usize, k: usize, o: usize, t: usize) -> i32 {
     // The packed forms store rows in blocks of four: block `r0` holds its
     // `b` rows' units interleaved.
@@ -217,6 +219,7 @@ fn finish<const FULL: bool>(acc: i32, mult: u32, k: u32, sh: u32, lo: i32, hi: i
 /// The taps of output pixel `(oy, ox)` as pairs (flattened `[ky][kx]`
 /// order, padded taps at the input zero point, a zero after an odd last
 /// tap), for any pixel of any window [`applies`] to.
+#[inline(never)]
 fn gather(a: &ConvArgs<'_>, arena: &[i8], oy: usize, ox: usize, x: &mut [u32]) {
     let (input, w) = (&a.input, &a.p.window);
     let pad = a.p.input_zp as i16;
@@ -263,6 +266,7 @@ const CHUNK: usize = 16;
 /// first (3×3 windows inside a map of dense pixels read their nine taps
 /// straight from the three input rows; the others gather with padding),
 /// then [`pixels`] runs their channels.
+#[inline(never)]
 fn rows3(
     arena: &mut [i8],
     a: &ConvArgs<'_>,
@@ -495,6 +499,9 @@ fn quad_pixels<const FULL: bool>(
 }
 
 /// Any other window [`applies`] to: every pixel gathered, `pairs` pairs.
+/// (Not inlined, like [`weight`] and [`gather`]: the stem's code is
+/// flash that every firmware with a stem links.)
+#[inline(never)]
 fn rows_any(
     arena: &mut [i8],
     a: &ConvArgs<'_>,
