@@ -803,6 +803,9 @@ fn conv_run_forms<const F: u8>(
     if seg == 0 {
         return;
     }
+    if crate::stem::applies(a) && crate::stem::run(arena, a, y0, y1) {
+        return;
+    }
     // 1×1 word convolutions without an input transform: four pixels per
     // pass (see `pointwise`). With a transform the ring of rows measured
     // faster (the demo's transition: 3.81 against 4.36 instructions per MAC).

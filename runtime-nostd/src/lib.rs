@@ -147,7 +147,13 @@
 //! inside the map are copied as one run of `kw·C_in` values; depthwise
 //! (`groups == C_in`, any channel multiplier) gathers the window tap-major
 //! like a dense convolution and lets each output channel walk its input
-//! channel's column. [`linear`] reads the input straight from the arena
+//! channel's column; one input channel (the stem on a gray picture, one
+//! group, no dilation or input transform, at most 32 taps) has a kernel of
+//! its own on DSP cores and hosts (`stem.rs`): each pixel's taps packed
+//! into 16-bit pairs once, weights widened per call into a table on the
+//! stack (its frame about 1.1 KiB on the M4), four channels per pass of
+//! `SMLAD`.
+//! [`linear`] reads the input straight from the arena
 //! with an all-int8 dot product (each weight is used once, so there is
 //! nothing to amortize a widening over); on cores with the DSP extension
 //! (and on hosts) four int8 values per word, widened in registers with
@@ -219,6 +225,7 @@ mod map;
 mod pointwise;
 mod pool;
 mod requant;
+mod stem;
 mod transform;
 pub mod wide;
 

@@ -14,4 +14,5 @@ mod no_std;
 mod pointwise;
 mod requant;
 mod rows;
+mod stem;
 mod wide;
