@@ -46,7 +46,8 @@
 
 use crate::channel::{check_copy, check_transform, copy_run, transform_run, TransformArgs};
 use crate::conv::{
-    check_conv, conv_run_depthwise, conv_run_int8, conv_run_pairs, conv_run_words, ConvArgs, Rows,
+    check_conv, conv_run_depthwise, conv_run_int8, conv_run_pairs, conv_run_pointwise,
+    conv_run_stem, conv_run_words, ConvArgs, Kernel, Rows,
 };
 use crate::eltwise::{add_run, check_add, AddArgs};
 use crate::io::{check_io, check_pixels, copy_in_run, copy_out_run, pixels_run};
@@ -114,12 +115,12 @@ impl<'a, const A: usize, const P: usize> Conv2d<'a, A, P> {
     /// be in their slots.
     #[inline(always)]
     pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
-        // A constant of the call's `static`: a firmware without depthwise
-        // 3×3 calls does not link the direct kernel.
-        if self.0.direct {
-            conv_run_depthwise(arena, &self.0, patch, y0, y1);
-        } else {
-            conv_run_int8(arena, &self.0, patch, y0, y1);
+        // A constant of the call's `static`: a firmware links only the
+        // kernels its calls choose.
+        match self.0.kernel {
+            Kernel::Depthwise => conv_run_depthwise(arena, &self.0, patch, y0, y1),
+            Kernel::Stem => conv_run_stem(arena, &self.0, y0, y1),
+            _ => conv_run_int8(arena, &self.0, patch, y0, y1),
         }
     }
 }
@@ -150,14 +151,19 @@ impl<'a, const A: usize, const P: usize> Conv2dPaired<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_pairs(arena, &self.0, patch, 0, usize::MAX);
+        self.run_rows(arena, patch, 0, usize::MAX);
     }
 
     /// Output rows `[y0, y1)` only (clipped to the output; nothing when
     /// empty), for a row pipeline; cannot fail. Rows of a ring input must
     /// be in their slots.
+    #[inline(always)]
     pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
-        conv_run_pairs(arena, &self.0, patch, y0, y1);
+        // A constant of the call's `static` (see `Conv2d::run_rows`).
+        match self.0.kernel {
+            Kernel::Stem => conv_run_stem(arena, &self.0, y0, y1),
+            _ => conv_run_pairs(arena, &self.0, patch, y0, y1),
+        }
     }
 }
 
@@ -187,14 +193,20 @@ impl<'a, const A: usize, const P: usize> Conv2dWords<'a, A, P> {
 
     /// The convolution; cannot fail.
     pub fn run(&self, arena: &mut [i8; A], patch: &mut [i16; P]) {
-        conv_run_words(arena, &self.0, patch, 0, usize::MAX);
+        self.run_rows(arena, patch, 0, usize::MAX);
     }
 
     /// Output rows `[y0, y1)` only (clipped to the output; nothing when
     /// empty), for a row pipeline; cannot fail. Rows of a ring input must
     /// be in their slots.
+    #[inline(always)]
     pub fn run_rows(&self, arena: &mut [i8; A], patch: &mut [i16; P], y0: usize, y1: usize) {
-        conv_run_words(arena, &self.0, patch, y0, y1);
+        // A constant of the call's `static` (see `Conv2d::run_rows`).
+        match self.0.kernel {
+            Kernel::Stem => conv_run_stem(arena, &self.0, y0, y1),
+            Kernel::Pointwise => conv_run_pointwise(arena, &self.0, patch, y0, y1),
+            _ => conv_run_words(arena, &self.0, patch, y0, y1),
+        }
     }
 }
 

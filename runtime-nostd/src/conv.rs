@@ -346,12 +346,27 @@ pub(crate) struct ConvArgs<'a> {
     pub(crate) transform: Option<InputTransform<'a>>,
     /// Paired weights read from a ring of input rows (see [`conv_rows_len`]).
     pub(crate) ring: bool,
-    /// A depthwise 3×3 convolution the direct kernel runs
-    /// ([`crate::depthwise::applies`]): a checked call's `run` then calls
-    /// [`conv_run_depthwise`], and a firmware none of whose calls has it
-    /// set leaves that kernel out (the flag is a constant of each call's
-    /// `static`).
-    pub(crate) direct: bool,
+    /// The kernel that runs the call, chosen once by [`check_conv`].
+    pub(crate) kernel: Kernel,
+}
+
+/// The kernel a checked convolution runs. A checked call's `run`
+/// dispatches on it where it is inlined, and the value is a constant of
+/// each call's `static`, so a firmware links only the kernels its calls
+/// use (the demo, with no depthwise or plain 1×1 convolution, leaves
+/// those two out: 4 to 9 kB of thumbv7em code each).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub(crate) enum Kernel {
+    /// [`conv_run_forms`]: the patch and ring-of-rows kernels of the
+    /// call's weight form.
+    Forms,
+    /// The direct depthwise 3×3 kernel ([`crate::depthwise::applies`]).
+    Depthwise,
+    /// The one-input-channel kernel ([`crate::stem::applies`]).
+    Stem,
+    /// The four-pixel 1×1 word kernel ([`crate::pointwise_applies`], no
+    /// input transform, a patch of [`crate::pointwise_patch_len`]).
+    Pointwise,
 }
 
 /// Every check of a convolution call, in a `const fn` so that generated
@@ -437,10 +452,33 @@ pub(crate) const fn check_conv<'a>(
         Rows::Words(_) => conv_rows_apply_words(w, p.groups, input.c),
     } && patch_len >= conv_rows_len(w, input.w, input.c);
     let int8 = matches!(rows, Rows::Bytes(_) | Rows::File(_));
-    let direct = int8
+    let kernel = if int8
         && p.groups == input.c
         && output.c == input.c
-        && crate::depthwise::applies(w, input.c, transform.is_some(), &input, &output);
+        && crate::depthwise::applies(w, input.c, transform.is_some(), &input, &output)
+    {
+        Kernel::Depthwise
+    } else if crate::stem::applies(
+        w,
+        input.c,
+        p.groups,
+        transform.is_some(),
+        requant,
+        output.c,
+        p.out.zero_point,
+    ) {
+        Kernel::Stem
+    } else if matches!(rows, Rows::Words(_))
+        && crate::pointwise_applies(w, p.groups)
+        && transform.is_none()
+        && patch_len >= crate::pointwise_patch_len(input.c)
+    {
+        // With a transform the ring of rows measured faster (the demo's
+        // transition: 3.81 against 4.36 instructions per MAC).
+        Kernel::Pointwise
+    } else {
+        Kernel::Forms
+    };
     Ok(ConvArgs {
         input,
         output,
@@ -450,7 +488,7 @@ pub(crate) const fn check_conv<'a>(
         p,
         transform,
         ring,
-        direct,
+        kernel,
     })
 }
 
@@ -679,10 +717,37 @@ pub(crate) fn conv_run(
     y0: usize,
     y1: usize,
 ) {
-    if a.direct {
-        conv_run_depthwise(arena, a, patch, y0, y1);
-    } else {
-        conv_run_forms::<{ forms::ANY }>(arena, a, patch, y0, y1);
+    match a.kernel {
+        Kernel::Forms => conv_run_forms::<{ forms::ANY }>(arena, a, patch, y0, y1),
+        Kernel::Depthwise => conv_run_depthwise(arena, a, patch, y0, y1),
+        Kernel::Stem => conv_run_stem(arena, a, y0, y1),
+        Kernel::Pointwise => conv_run_pointwise(arena, a, patch, y0, y1),
+    }
+}
+
+/// [`conv_run`] for the calls of [`Kernel::Stem`]: the one-input-channel
+/// kernel (`stem.rs`), every weight form.
+#[inline(never)]
+pub(crate) fn conv_run_stem(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) {
+    let y1 = if y1 < a.output.h { y1 } else { a.output.h };
+    if y0 < y1 {
+        crate::stem::run(arena, a, y0, y1);
+    }
+}
+
+/// [`conv_run`] for the calls of [`Kernel::Pointwise`]: four pixels per
+/// pass over each weight row (`pointwise.rs`).
+#[inline(never)]
+pub(crate) fn conv_run_pointwise(
+    arena: &mut [i8],
+    a: &ConvArgs<'_>,
+    patch: &mut [i16],
+    y0: usize,
+    y1: usize,
+) {
+    let y1 = if y1 < a.output.h { y1 } else { a.output.h };
+    if let (Rows::Words(ww), true) = (a.rows, y0 < y1) {
+        crate::pointwise::run_words(arena, a, ww, patch, y0, y1);
     }
 }
 
@@ -802,21 +867,6 @@ fn conv_run_forms<const F: u8>(
     let seg = taps * cpg;
     if seg == 0 {
         return;
-    }
-    if crate::stem::applies(a) && crate::stem::run(arena, a, y0, y1) {
-        return;
-    }
-    // 1×1 word convolutions without an input transform: four pixels per
-    // pass (see `pointwise`). With a transform the ring of rows measured
-    // faster (the demo's transition: 3.81 against 4.36 instructions per MAC).
-    if let (Rows::Words(ww), true) = (a.rows, F & forms::WORDS != 0) {
-        if crate::pointwise_applies(w, p.groups)
-            && transform.is_none()
-            && patch.len() >= crate::pointwise_patch_len(c_in)
-        {
-            crate::pointwise::run_words(arena, a, ww, patch, y0, y1);
-            return;
-        }
     }
     match (a.rows, a.ring) {
         (Rows::Pairs(pw), true) if F & forms::PAIRS != 0 => {

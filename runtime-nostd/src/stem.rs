@@ -16,6 +16,7 @@
 //! portable twin that costs more than the plain loops, so those keep them.
 
 use crate::conv::{ConvArgs, Rows};
+use crate::{Requant, Window};
 
 /// Words of the weight table of windows other than 3×3: one entry of
 /// `pairs + 4` words per output channel (the tap pairs, bias, multiplier,
@@ -33,32 +34,49 @@ const P3: usize = 5;
 /// group, no dilation, no input transform, at most `2·MAX_PAIRS` taps, on
 /// a core with the DSP extension or a host (not Arm: there the portable
 /// twins are cheap, and the tests run this path).
-#[inline(always)]
-pub(crate) fn applies(a: &ConvArgs<'_>) -> bool {
-    let w = &a.p.window;
-    (ingot_dsp::NATIVE || !cfg!(target_arch = "arm"))
-        && a.input.c == 1
-        && a.p.groups == 1
-        && a.transform.is_none()
+/// Every one of the first `m` multipliers must take the 32-bit path of
+/// [`crate::Requant::apply`] (a total shift of 32 or more, see
+/// [`round_term`]); [`crate::conv::check_conv`] decides it at compile
+/// time for a checked call, so [`run`] never meets another.
+#[allow(clippy::too_many_arguments)]
+pub(crate) const fn applies(
+    w: &Window,
+    c_in: usize,
+    groups: usize,
+    transform: bool,
+    requant: &[Requant],
+    m: usize,
+    zp: i32,
+) -> bool {
+    if !((ingot_dsp::NATIVE || !cfg!(target_arch = "arm"))
+        && c_in == 1
+        && groups == 1
+        && !transform
         && w.dilation_y == 1
         && w.dilation_x == 1
         && w.taps() > 0
         && w.taps() <= 2 * MAX_PAIRS
+        && m <= requant.len())
+    {
+        return false;
+    }
+    let mut i = 0;
+    while i < m {
+        if round_term(requant[i].shift, zp).is_none() {
+            return false;
+        }
+        i += 1;
+    }
+    true
 }
 
-/// Output rows `[y0, y1)` of a checked convolution that [`applies`].
-/// Returns false (nothing written) when a channel's requantization takes
-/// the 64-bit path of [`crate::Requant::apply`] (a total shift below 32),
-/// which the caller's general kernel then runs.
+/// Output rows `[y0, y1)` of a checked convolution that [`applies`]
+/// (`y0 < y1 <= output height`).
 #[inline(never)]
-pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> bool {
+pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) {
     let m = a.output.c;
-    let (Some(_), Some(requant)) = (a.bias.get(..m), a.requant.get(..m)) else {
-        return false;
-    };
-    let zp = a.p.out.zero_point;
-    if requant.iter().any(|r| round_term(r.shift, zp).is_none()) {
-        return false;
+    if a.bias.len() < m || a.requant.len() < m {
+        return;
     }
     let w = &a.p.window;
     let taps = w.taps();
@@ -66,7 +84,7 @@ pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> b
     let e = pairs + 4;
     let block = TABLE / e.max(1);
     if block == 0 || m == 0 {
-        return true;
+        return;
     }
     let mut c0 = 0;
     if pairs == P3 {
@@ -75,7 +93,7 @@ pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> b
         while c0 < m {
             let n = if m - c0 < 16 { m - c0 } else { 16 };
             let Some(qs) = quads.get_mut(..n.div_ceil(4)) else {
-                return true;
+                return;
             };
             for (i, q) in qs.iter_mut().enumerate() {
                 *q = Quad::ZERO;
@@ -98,13 +116,13 @@ pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> b
             rows3(arena, a, qs, n, c0, y0, y1);
             c0 += n;
         }
-        return true;
+        return;
     }
     let mut table = [0u32; TABLE];
     while c0 < m {
         let n = if m - c0 < block { m - c0 } else { block };
         let Some(t) = table.get_mut(..n * e) else {
-            return true;
+            return;
         };
         for (j, entry) in t.chunks_exact_mut(e.max(1)).enumerate() {
             fill_entry(a, c0 + j, entry);
@@ -112,7 +130,6 @@ pub(crate) fn run(arena: &mut [i8], a: &ConvArgs<'_>, y0: usize, y1: usize) -> b
         rows_any(arena, a, t, pairs, c0, y0, y1);
         c0 += n;
     }
-    true
 }
 
 /// The table entry of output channel `o`: its weights as tap pairs, then
