@@ -207,7 +207,7 @@ pub(crate) fn widen_into(dst: &mut [i16], src: &[i8]) {
 /// Two `i16` values as one word, the first in the low half (one unaligned
 /// 32-bit load on Cortex-M4/M7; the halves feed `smlabb`/`smlatt`).
 #[inline(always)]
-fn word(lo: i16, hi: i16) -> u32 {
+pub(crate) fn word(lo: i16, hi: i16) -> u32 {
     (lo as u16 as u32) | ((hi as u16 as u32) << 16)
 }
 

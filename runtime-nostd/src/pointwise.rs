@@ -38,7 +38,7 @@
 //! transformed rows measured faster on the demo's transition.
 
 use crate::conv::{paired_rows, ConvArgs, Window};
-use crate::dot::no_unroll;
+use crate::dot::{no_unroll, word};
 use crate::{OutputQuant, Requant};
 
 /// Length (in `i16` elements) of the staging buffer the four-pixel
@@ -61,13 +61,6 @@ pub const fn pointwise_applies(w: &Window, groups: usize) -> bool {
         && w.pad.left == 0
         && w.pad.bottom == 0
         && w.pad.right == 0
-}
-
-/// Two `i16` values as one word, the first in the low half (adjacent in
-/// the staging buffer: one load).
-#[inline(always)]
-fn word(lo: i16, hi: i16) -> u32 {
-    (lo as u16 as u32) | ((hi as u16 as u32) << 16)
 }
 
 /// What every pass of one call shares.
@@ -320,6 +313,7 @@ fn quad(x: &[i16; 16], wv: u32, acc: &mut [i32; PIXELS]) {
         // A barrier between pixels: without it the scheduler loads ahead
         // and, in the firmware's build, spills one staged word per pass.
         no_unroll();
+        // Adjacent in the staging buffer: one load each.
         *s = ingot_dsp::smlad(word(v[0], v[1]), lo, *s);
         *s = ingot_dsp::smlad(word(v[2], v[3]), hi, *s);
     }

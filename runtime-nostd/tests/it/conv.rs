@@ -158,42 +158,8 @@ fn run_case(c: &Case) -> Option<(Vec<i8>, Vec<i8>)> {
     let bias: Vec<i32> = (0..c.cout)
         .map(|_| rng.range(-2_000_000, 2_000_000) as i32)
         .collect();
-    let table: Vec<i8> = (0..256 * c.cin).map(|_| rng.i8()).collect();
-    let mul: Vec<i32> = (0..c.cin)
-        .map(|_| rng.range(-70000, 70000) as i32)
-        .collect();
-    let addv: Vec<i32> = (0..c.cin)
-        .map(|_| rng.range(-1 << 24, 1 << 24) as i32)
-        .collect();
-    let zp_in = rng.range(-128, 127) as i32;
-    let shift = rng.range(0, 16) as u32;
-    let (rt, tr) = match c.transform {
-        1 => (
-            Some(RefTransform::Affine {
-                mul: mul.clone(),
-                add: addv.clone(),
-                shift,
-                zp_in,
-                zp_out: p.pad_value as i32,
-                lo: p.pad_value,
-                hi: 127,
-            }),
-            Some(InputTransform::Affine(AffineTransform {
-                mul: &mul,
-                add: &addv,
-                shift,
-                zp_in,
-                zp_out: p.pad_value as i32,
-                min: p.pad_value,
-                max: 127,
-            })),
-        ),
-        2 => (
-            Some(RefTransform::Table(table.clone())),
-            Some(InputTransform::Table(&table)),
-        ),
-        _ => (None, None),
-    };
+    let data = RandTransform::new(&mut rng, c.cin, Lcg::i8);
+    let (rt, tr) = data.pair(c.transform, p.pad_value);
     let want = ref_conv(
         &arena,
         &input,

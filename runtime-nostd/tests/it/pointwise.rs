@@ -121,44 +121,8 @@ fn run_case(c: &Case) -> Result<(), TestCaseError> {
         1 => (c.zp_out, 127),
         _ => (c.zp_out, c.zp_out.saturating_add(40)),
     };
-    let table: Vec<i8> = (0..256 * c.cin)
-        .map(|_| value(&mut rng, c.extreme))
-        .collect();
-    let mul: Vec<i32> = (0..c.cin)
-        .map(|_| rng.range(-70000, 70000) as i32)
-        .collect();
-    let add: Vec<i32> = (0..c.cin)
-        .map(|_| rng.range(-1 << 24, 1 << 24) as i32)
-        .collect();
-    let zp_in = rng.range(-128, 127) as i32;
-    let shift = rng.range(0, 16) as u32;
-    let (rt, tr) = match c.transform {
-        1 => (
-            Some(RefTransform::Affine {
-                mul: mul.clone(),
-                add: add.clone(),
-                shift,
-                zp_in,
-                zp_out: pad_value as i32,
-                lo: pad_value,
-                hi: 127,
-            }),
-            Some(InputTransform::Affine(AffineTransform {
-                mul: &mul,
-                add: &add,
-                shift,
-                zp_in,
-                zp_out: pad_value as i32,
-                min: pad_value,
-                max: 127,
-            })),
-        ),
-        2 => (
-            Some(RefTransform::Table(table.clone())),
-            Some(InputTransform::Table(&table)),
-        ),
-        _ => (None, None),
-    };
+    let data = RandTransform::new(&mut rng, c.cin, |r| value(r, c.extreme));
+    let (rt, tr) = data.pair(c.transform, pad_value);
     let rp = RefConv {
         kh: 1,
         kw: 1,

@@ -2,7 +2,7 @@
 //! i64/i128 arithmetic, explicit padding. Shared by the integration tests.
 #![allow(dead_code)]
 
-use ingot_rt::{MapRef, Requant};
+use ingot_rt::{AffineTransform, InputTransform, MapRef, Requant};
 
 /// Reference requantization: round(acc · mult / 2^t), ties toward +∞,
 /// computed with i128 and floor division.
@@ -154,4 +154,67 @@ pub fn ref_conv(
         }
     }
     out
+}
+
+/// The data of a random fused input transform for `c` channels, drawn in
+/// one order for every test: table bytes from `byte`, then the affine
+/// multipliers, offsets, input zero point and shift.
+pub struct RandTransform {
+    pub table: Vec<i8>,
+    pub mul: Vec<i32>,
+    pub add: Vec<i32>,
+    pub zp_in: i32,
+    pub shift: u32,
+}
+
+impl RandTransform {
+    pub fn new(rng: &mut Lcg, c: usize, mut byte: impl FnMut(&mut Lcg) -> i8) -> Self {
+        let table = (0..256 * c).map(|_| byte(rng)).collect();
+        let mul = (0..c).map(|_| rng.range(-70000, 70000) as i32).collect();
+        let add = (0..c)
+            .map(|_| rng.range(-1 << 24, 1 << 24) as i32)
+            .collect();
+        let zp_in = rng.range(-128, 127) as i32;
+        let shift = rng.range(0, 16) as u32;
+        RandTransform {
+            table,
+            mul,
+            add,
+            zp_in,
+            shift,
+        }
+    }
+
+    /// The reference and the kernel's form of transform `kind` (0 none,
+    /// 1 affine clamped to `[pad, 127]` with output zero point `pad`, 2
+    /// table).
+    pub fn pair(&self, kind: u8, pad: i8) -> (Option<RefTransform>, Option<InputTransform<'_>>) {
+        match kind {
+            1 => (
+                Some(RefTransform::Affine {
+                    mul: self.mul.clone(),
+                    add: self.add.clone(),
+                    shift: self.shift,
+                    zp_in: self.zp_in,
+                    zp_out: pad as i32,
+                    lo: pad,
+                    hi: 127,
+                }),
+                Some(InputTransform::Affine(AffineTransform {
+                    mul: &self.mul,
+                    add: &self.add,
+                    shift: self.shift,
+                    zp_in: self.zp_in,
+                    zp_out: pad as i32,
+                    min: pad,
+                    max: 127,
+                })),
+            ),
+            2 => (
+                Some(RefTransform::Table(self.table.clone())),
+                Some(InputTransform::Table(&self.table)),
+            ),
+            _ => (None, None),
+        }
+    }
 }
