@@ -148,9 +148,7 @@ pub fn max_pool2d(
     window: &Window,
     q: &PoolQuant,
 ) -> Result<(), Error> {
-    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
-    max_pool_run(arena, &a, 0, usize::MAX);
-    Ok(())
+    max_pool2d_rows(arena, input, output, window, q, (0, usize::MAX))
 }
 
 /// [`max_pool2d`] for output rows `[rows.0, rows.1)` only (clipped), for
@@ -243,9 +241,7 @@ pub fn avg_pool2d(
     window: &Window,
     q: &PoolQuant,
 ) -> Result<(), Error> {
-    let a = check_window_pool(arena.len(), input, output, *window, *q)?;
-    avg_pool_run(arena, &a, 0, usize::MAX);
-    Ok(())
+    avg_pool2d_rows(arena, input, output, window, q, (0, usize::MAX))
 }
 
 /// Runs a checked average pooling for output rows `[y0, y1)` (`y1`

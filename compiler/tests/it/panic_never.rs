@@ -24,8 +24,9 @@ use ingot_compiler::check::runner::{require_rust_target, BuildConfig};
 use ingot_compiler::check::ModuleFiles;
 use ingot_compiler::codegen::{generate, GenOptions, WeightForm};
 use ingot_compiler::driver::{compile, schedule_of, BuildInputs, RangesSource};
+use ingot_compiler::lower::QGraph;
 use ingot_compiler::lower::{lower, LowerOptions};
-use ingot_compiler::plan::{plan, PlanOptions};
+use ingot_compiler::plan::{plan, PlanOptions, Schedule};
 use ingot_testkit::zoo;
 use std::path::{Path, PathBuf};
 
@@ -104,6 +105,34 @@ fn assert_links(module: &ModuleFiles, triple: &str, cfg: &BuildConfig) {
     }
 }
 
+/// Generates `name` with weight form `form`, writes it and asserts that it
+/// links for `triple` without a panic path.
+fn generate_and_link(
+    name: &str,
+    q: &QGraph,
+    s: &Schedule,
+    form: WeightForm,
+    triple: &str,
+    cfg: &BuildConfig,
+) {
+    let gen = generate(
+        q,
+        s,
+        &GenOptions {
+            module: name.into(),
+            weight_form: form,
+            ..GenOptions::default()
+        },
+    )
+    .unwrap();
+    let m = write_module(
+        &out_dir().join(format!("{name}-{triple}")),
+        gen.files(name),
+        name,
+    );
+    assert_links(&m, triple, cfg);
+}
+
 fn cfg() -> BuildConfig {
     BuildConfig {
         build_dir: out_dir().join("build"),
@@ -148,22 +177,7 @@ fn zoo_modules_link_without_panic_paths() {
         let p = plan(&q, &PlanOptions::default()).unwrap();
         let s = schedule_of(&q, &p);
         for (triple, form) in TARGETS {
-            let gen = generate(
-                &q,
-                &s,
-                &GenOptions {
-                    module: name.into(),
-                    weight_form: form,
-                    ..GenOptions::default()
-                },
-            )
-            .unwrap();
-            let m = write_module(
-                &out_dir().join(format!("{name}-{triple}")),
-                gen.files(name),
-                name,
-            );
-            assert_links(&m, triple, &cfg);
+            generate_and_link(name, &q, &s, form, triple, &cfg);
         }
     }
 }
@@ -223,22 +237,7 @@ fn wide_modules_link_without_panic_paths() {
                 },
             )
             .unwrap();
-            let gen = generate(
-                &q,
-                &schedule_of(&q, &p),
-                &GenOptions {
-                    module: name.into(),
-                    weight_form: form,
-                    ..GenOptions::default()
-                },
-            )
-            .unwrap();
-            let m = write_module(
-                &out_dir().join(format!("{name}-{triple}")),
-                gen.files(name),
-                name,
-            );
-            assert_links(&m, triple, &cfg);
+            generate_and_link(name, &q, &schedule_of(&q, &p), form, triple, &cfg);
         }
     }
 }
