@@ -767,7 +767,7 @@ pub(crate) fn conv_run_int8(
     conv_run_forms::<{ forms::BYTES | forms::FILE }>(arena, a, patch, y0, y1);
 }
 
-/// [`conv_run`] for the calls whose `direct` flag is set: the direct
+/// [`conv_run`] for the calls of [`Kernel::Depthwise`]: the direct
 /// depthwise 3×3 kernel (`depthwise.rs`), with the `9·C` values of
 /// `patch` for its widened weights.
 #[inline(never)]

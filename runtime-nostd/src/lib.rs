@@ -142,11 +142,14 @@
 //! Special paths: 1×1 pointwise (stride 1, no padding, one group) skips the
 //! window logic (the patch is the input pixel, widened); with the word
 //! layout and room for [`pointwise_patch_len`] values a 1×1 convolution
-//! (any step, no padding, one group) runs four output pixels per pass
-//! over each weight row instead (module `pointwise`); dense kernel rows
-//! inside the map are copied as one run of `kw·C_in` values; depthwise
-//! (`groups == C_in`, any channel multiplier) gathers the window tap-major
-//! like a dense convolution and lets each output channel walk its input
+//! (any step, no padding, one group, no input transform) runs four output
+//! pixels per pass over each weight row instead (module `pointwise`);
+//! dense kernel rows inside the map are copied as one run of `kw·C_in`
+//! values; a depthwise 3×3 convolution (a multiple of four channels, no
+//! dilation or input transform) reads the int8 map in place, four
+//! channels a word (module `depthwise`), and other depthwise ones
+//! (`groups == C_in`, any channel multiplier) gather the window tap-major
+//! like a dense convolution and let each output channel walk its input
 //! channel's column; one input channel (the stem on a gray picture, one
 //! group, no dilation or input transform, at most 32 taps) has a kernel of
 //! its own on DSP cores and hosts (`stem.rs`): each pixel's taps packed
