@@ -22,6 +22,7 @@ use std::env;
 
 fn main() {
     println!("cargo::rustc-check-cfg=cfg(ingot_dsp)");
+    println!("cargo::rustc-check-cfg=cfg(ingot_v6m)");
     println!("cargo::rerun-if-env-changed=INGOT_DSP");
     println!("cargo::rerun-if-changed=build.rs");
     let arch = env::var("CARGO_CFG_TARGET_ARCH").unwrap_or_default();
@@ -38,6 +39,11 @@ fn main() {
         && (target.starts_with("thumbv7em") || plus || reported.split(',').any(|f| f == "dsp"));
     if on {
         println!("cargo::rustc-cfg=ingot_dsp");
+    }
+    // ARMv6-M (Cortex-M0/M0+/M1) has no 32×32→64 multiply: an `i64`
+    // product is a call to `__aeabi_lmul` (about 40 instructions there).
+    if arch == "arm" && target.starts_with("thumbv6m") {
+        println!("cargo::rustc-cfg=ingot_v6m");
     }
 }
 

@@ -64,6 +64,14 @@
 /// wrappers are the portable twins.
 pub const NATIVE: bool = cfg!(ingot_dsp);
 
+/// `true` when the core multiplies two 32-bit values into a 64-bit
+/// product in one instruction (`smull`: every Arm M-profile core from
+/// ARMv7-M on, and every host); `false` on ARMv6-M (Cortex-M0/M0+,
+/// `thumbv6m-*`), where an `i64` product is a library call and a product's
+/// high word is cheaper from four 16-bit multiplies. Set by the build
+/// script (`cfg(ingot_v6m)`), which reads the target triple.
+pub const LONG_MULTIPLY: bool = !cfg!(ingot_v6m);
+
 /// The portable definitions: plain Rust, the same result as the
 /// instruction bit for bit. Used on every core without the DSP extension
 /// and by the tests as the reference for the wrappers.

@@ -94,7 +94,11 @@ impl Requant {
         if s < 32 || out.zero_point.wrapping_add(128) as u32 > 255 {
             return out.finish(self.scale(acc));
         }
-        let hi = ((acc as i64 * self.mult as i64) >> 32) as i32;
+        let hi = if ingot_dsp::LONG_MULTIPLY {
+            ((acc as i64 * self.mult as i64) >> 32) as i32
+        } else {
+            mul_hi(acc, self.mult)
+        };
         // |hi| < 2^30 (see `scale`), so neither step overflows.
         let r = (((hi >> (s - 32)) + 1) >> 1) + out.zero_point;
         if r < out.min as i32 {
@@ -261,6 +265,23 @@ impl OutputQuant {
     }
 }
 
+/// The high word of the 64-bit product `a·b`: `(a·b) >> 32` (arithmetic
+/// shift), from four 16-bit multiplies with 32-bit intermediates (Warren,
+/// "Hacker's Delight", 2nd ed. 2012, section 8-2, `mulhs`). Used where the
+/// core has no 32×32→64 multiply (see `ingot_dsp::LONG_MULTIPLY`); exact
+/// for every pair of `i32`.
+#[inline(always)]
+pub(crate) const fn mul_hi(a: i32, b: i32) -> i32 {
+    let (a0, a1) = (a & 0xffff, a >> 16);
+    let (b0, b1) = (b & 0xffff, b >> 16);
+    // a0, b0 in [0, 2^16); a1, b1 in [-2^15, 2^15): no step below
+    // leaves i32 (the largest is 32,767·65,535 + 65,535 < 2^31).
+    let w0 = ((a0 as u32) * (b0 as u32)) >> 16;
+    let t = a1 * b0 + w0 as i32;
+    let w1 = a0 * b1 + (t & 0xffff);
+    a1 * b1 + (t >> 16) + (w1 >> 16)
+}
+
 /// Saturate an i64 to the int8 range.
 #[inline(always)]
 pub const fn sat_i8(v: i64) -> i8 {
@@ -296,4 +317,51 @@ pub const fn acc_worst_case(weight_row: &[i8], bias: i32) -> i64 {
 /// this channel can never overflow.
 pub const fn acc_fits(weight_row: &[i8], bias: i32) -> bool {
     acc_worst_case(weight_row, bias) < (1i64 << 31)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::mul_hi;
+    use proptest::prelude::*;
+
+    /// The reference is the high word of the exact 64-bit product (the
+    /// definition of `smull`'s high register; common practice).
+    fn reference(a: i32, b: i32) -> i32 {
+        ((a as i64 * b as i64) >> 32) as i32
+    }
+
+    #[test]
+    fn mul_hi_on_the_edges() {
+        let edges = [
+            i32::MIN,
+            i32::MIN + 1,
+            -(1 << 30),
+            -65_536,
+            -65_535,
+            -32_769,
+            -32_768,
+            -1,
+            0,
+            1,
+            32_767,
+            32_768,
+            65_535,
+            65_536,
+            1 << 30,
+            i32::MAX - 1,
+            i32::MAX,
+        ];
+        for a in edges {
+            for b in edges {
+                assert_eq!(mul_hi(a, b), reference(a, b), "{a} · {b}");
+            }
+        }
+    }
+
+    proptest! {
+        #[test]
+        fn mul_hi_is_the_high_word_of_the_product(a in any::<i32>(), b in any::<i32>()) {
+            prop_assert_eq!(mul_hi(a, b), reference(a, b));
+        }
+    }
 }
