@@ -103,17 +103,28 @@ const fn split_spans(input: &MapRef, output: &MapRef) -> Option<(usize, bool)> {
     }
 }
 
+/// True where the taps run in pairs ([`tap_pair`]): on cores with the DSP
+/// extension, and on hosts (through the instructions' portable twins, so
+/// the host tests run the same loop and table). Cortex-M0+, M3 and plain
+/// M33 keep one tap at a time with plain multiplies ([`tap`]), which they
+/// run faster than the twins.
+const PAIRED: bool = ingot_dsp::NATIVE || !cfg!(target_arch = "arm");
+
+/// Tap pairs of the paired loop (taps `2i`, `2i + 1`); the last tap runs
+/// alone.
+const PAIRS: usize = TAPS / 2;
+
 /// Order of a block's four channels among one tap's four widened weights:
 /// `(w0, w2)` then `(w1, w3)` for `smlabb`/`smlatt` against the lanes
-/// `sxtb16` makes, in channel order for the plain loop.
-const ORDER: [usize; 4] = if ingot_dsp::NATIVE {
-    [0, 2, 1, 3]
-} else {
-    [0, 1, 2, 3]
-};
+/// `sxtb16` makes, in channel order for the plain loop. The paired loop
+/// uses the same order for its weight words (channel 0, 2, 1, 3).
+const ORDER: [usize; 4] = if PAIRED { [0, 2, 1, 3] } else { [0, 1, 2, 3] };
 
-/// Widens the weights `[C][9]` into `table`: per block of four channels,
-/// per tap, the four weights in [`ORDER`].
+/// Widens the weights `[C][9]` into `table`, per block of four channels.
+/// One tap at a time: per tap, the four weights in [`ORDER`]. Paired:
+/// per tap pair `(t, u) = (2i, 2i + 1)`, for each channel `j` in
+/// [`ORDER`] the word `(w[j][t], w[j][u])` (low half first), then the
+/// last tap as one tap at a time.
 fn widen_weights<W: Wt>(weights: &[W], table: &mut [i16]) {
     for (src, dst) in weights
         .chunks_exact(BLOCK)
@@ -125,9 +136,22 @@ fn widen_weights<W: Wt>(weights: &[W], table: &mut [i16]) {
         ) else {
             return;
         };
-        for t in 0..TAPS {
+        let w = |j: usize, t: usize| src[j * TAPS + t].v() as i16;
+        if PAIRED {
+            for i in 0..PAIRS {
+                for (k, &j) in ORDER.iter().enumerate() {
+                    dst[8 * i + 2 * k] = w(j, 2 * i);
+                    dst[8 * i + 2 * k + 1] = w(j, 2 * i + 1);
+                }
+            }
             for (k, &j) in ORDER.iter().enumerate() {
-                dst[4 * t + k] = src[j * TAPS + t].v() as i16;
+                dst[8 * PAIRS + k] = w(j, 2 * PAIRS);
+            }
+        } else {
+            for t in 0..TAPS {
+                for (k, &j) in ORDER.iter().enumerate() {
+                    dst[4 * t + k] = w(j, t);
+                }
             }
         }
     }
@@ -184,6 +208,7 @@ pub(crate) fn run<W: Wt>(
         pad: [input_zp; 32],
         fast: fast_requant(requant, out_q),
         taps: TAPS,
+        pairs: PAIRS,
     };
     let geo = RowGeometry {
         step_x: w.step_x,
@@ -243,9 +268,10 @@ struct Pixels<'a> {
     /// `(zero point, min, max)` of the output when every multiplier
     /// takes the 32-bit path of [`Requant::apply`] (see [`fast_requant`]).
     fast: Option<(i32, i32, i32)>,
-    /// [`TAPS`], read from memory where the tap loop needs it (see
-    /// [`Pixels::group`]).
+    /// [`TAPS`] and [`PAIRS`], read from memory where the tap loops
+    /// need them (see [`Pixels::group`]).
     taps: usize,
+    pairs: usize,
 }
 
 impl Pixels<'_> {
@@ -336,6 +362,13 @@ impl Pixels<'_> {
             ) else {
                 return;
             };
+            // The tap pairs with a length LLVM cannot bound: with at most
+            // four pairs (or any count up to eight) it unrolls the pair
+            // loop whatever `no_unroll` says, loads ahead and spills.
+            let Some(pairs) = taps.get(..2 * self.pairs) else {
+                return;
+            };
+            let pairs = core::hint::black_box(pairs);
             let blocks = og
                 .chunks_exact_mut(4)
                 .zip(tg.chunks_exact(BLOCK))
@@ -353,16 +386,41 @@ impl Pixels<'_> {
                 for (j, a) in acc.iter_mut().enumerate() {
                     *a = bb.get(j).copied().unwrap_or(0);
                 }
-                for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
-                    no_unroll();
-                    let (Some(x), Ok(w)) = (tp.get(4 * b..4 * b + 4), <&[i16; 4]>::try_from(w))
-                    else {
+                let word = |tp: &[i8; G]| -> Option<[i8; 4]> {
+                    tp.get(4 * b..4 * b + 4)?.try_into().ok()
+                };
+                if PAIRED {
+                    let (Some(last), Some(wl), Some(wp)) = (
+                        taps.get(2 * self.pairs),
+                        wt.get(8 * self.pairs..8 * self.pairs + 4),
+                        self.table.get(TAPS * (ch0 + 4 * b)..),
+                    ) else {
                         return;
                     };
-                    let Ok(&x) = <&[i8; 4]>::try_from(x) else {
+                    for (tp, w) in pairs.chunks_exact(2).zip(wp.chunks_exact(8)) {
+                        no_unroll();
+                        let (Some(&t0), Some(&t1), Ok(w)) =
+                            (tp.first(), tp.get(1), <&[i16; 8]>::try_from(w))
+                        else {
+                            return;
+                        };
+                        let (Some(x0), Some(x1)) = (word(t0), word(t1)) else {
+                            return;
+                        };
+                        tap_pair(&mut acc, x0, x1, w);
+                    }
+                    let (Some(x), Ok(w)) = (word(last), <&[i16; 4]>::try_from(wl)) else {
                         return;
                     };
                     tap(&mut acc, x, w);
+                } else {
+                    for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
+                        no_unroll();
+                        let (Some(x), Ok(w)) = (word(tp), <&[i16; 4]>::try_from(w)) else {
+                            return;
+                        };
+                        tap(&mut acc, x, w);
+                    }
                 }
                 if let Some((zp, lo, hi)) = self.fast {
                     for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
@@ -378,11 +436,34 @@ impl Pixels<'_> {
     }
 }
 
+/// `acc[j] += x0[j] · w0[j] + x1[j] · w1[j]` for the four channels of a
+/// pair of taps (inputs `x0`, `x1`), `w` the pair's four weight words of
+/// [`widen_weights`]. `sxtb16` widens channels 0 and 2 of each tap (and
+/// with `ror #8` channels 1 and 3), `pkhbt`/`pkhtb` put one channel's two
+/// taps into one word, and one `smlad` meets that word with the
+/// channel's two weights: per pair and four channels two input loads,
+/// four widenings, four packs, four weight words and four `smlad`.
+#[inline(always)]
+fn tap_pair(acc: &mut [i32; 4], x0: [i8; 4], x1: [i8; 4], w: &[i16; 8]) {
+    use ingot_dsp::{pkhbt_lsl16, pkhtb_asr16, smlad, sxtb16, sxtb16_ror8};
+    let (x0, x1) = (
+        u32::from_le_bytes(x0.map(|v| v as u8)),
+        u32::from_le_bytes(x1.map(|v| v as u8)),
+    );
+    let (e0, e1) = (sxtb16(x0), sxtb16(x1));
+    // (channel 0 of tap 0, of tap 1), (channel 2 of tap 0, of tap 1).
+    acc[0] = smlad(pkhbt_lsl16(e0, e1), pair(w[0], w[1]), acc[0]);
+    acc[2] = smlad(pkhtb_asr16(e1, e0), pair(w[2], w[3]), acc[2]);
+    let (o0, o1) = (sxtb16_ror8(x0), sxtb16_ror8(x1));
+    acc[1] = smlad(pkhbt_lsl16(o0, o1), pair(w[4], w[5]), acc[1]);
+    acc[3] = smlad(pkhtb_asr16(o1, o0), pair(w[6], w[7]), acc[3]);
+}
+
 /// `acc[j] += x[j] · w[j]` for the four channels of one tap, the weights
 /// in [`ORDER`].
 #[inline(always)]
 fn tap(acc: &mut [i32; 4], x: [i8; 4], w: &[i16; 4]) {
-    if ingot_dsp::NATIVE {
+    if PAIRED {
         let xv = u32::from_le_bytes(x.map(|v| v as u8));
         let (xe, xo) = (ingot_dsp::sxtb16(xv), ingot_dsp::sxtb16_ror8(xv));
         let (p0, p1) = (pair(w[0], w[1]), pair(w[2], w[3]));
