@@ -103,28 +103,17 @@ const fn split_spans(input: &MapRef, output: &MapRef) -> Option<(usize, bool)> {
     }
 }
 
-/// True where the taps run in pairs ([`tap_pair`]): on cores with the DSP
-/// extension, and on hosts (through the instructions' portable twins, so
-/// the host tests run the same loop and table). Cortex-M0+, M3 and plain
-/// M33 keep one tap at a time with plain multiplies ([`tap`]), which they
-/// run faster than the twins.
-const PAIRED: bool = ingot_dsp::NATIVE || !cfg!(target_arch = "arm");
-
-/// Tap pairs of the paired loop (taps `2i`, `2i + 1`); the last tap runs
-/// alone.
-const PAIRS: usize = TAPS / 2;
-
 /// Order of a block's four channels among one tap's four widened weights:
 /// `(w0, w2)` then `(w1, w3)` for `smlabb`/`smlatt` against the lanes
-/// `sxtb16` makes, in channel order for the plain loop. The paired loop
-/// uses the same order for its weight words (channel 0, 2, 1, 3).
-const ORDER: [usize; 4] = if PAIRED { [0, 2, 1, 3] } else { [0, 1, 2, 3] };
+/// `sxtb16` makes, in channel order for the plain loop.
+const ORDER: [usize; 4] = if ingot_dsp::NATIVE {
+    [0, 2, 1, 3]
+} else {
+    [0, 1, 2, 3]
+};
 
-/// Widens the weights `[C][9]` into `table`, per block of four channels.
-/// One tap at a time: per tap, the four weights in [`ORDER`]. Paired:
-/// per tap pair `(t, u) = (2i, 2i + 1)`, for each channel `j` in
-/// [`ORDER`] the word `(w[j][t], w[j][u])` (low half first), then the
-/// last tap as one tap at a time.
+/// Widens the weights `[C][9]` into `table`: per block of four channels,
+/// per tap, the four weights in [`ORDER`].
 fn widen_weights<W: Wt>(weights: &[W], table: &mut [i16]) {
     for (src, dst) in weights
         .chunks_exact(BLOCK)
@@ -136,22 +125,9 @@ fn widen_weights<W: Wt>(weights: &[W], table: &mut [i16]) {
         ) else {
             return;
         };
-        let w = |j: usize, t: usize| src[j * TAPS + t].v() as i16;
-        if PAIRED {
-            for i in 0..PAIRS {
-                for (k, &j) in ORDER.iter().enumerate() {
-                    dst[8 * i + 2 * k] = w(j, 2 * i);
-                    dst[8 * i + 2 * k + 1] = w(j, 2 * i + 1);
-                }
-            }
+        for t in 0..TAPS {
             for (k, &j) in ORDER.iter().enumerate() {
-                dst[8 * PAIRS + k] = w(j, 2 * PAIRS);
-            }
-        } else {
-            for t in 0..TAPS {
-                for (k, &j) in ORDER.iter().enumerate() {
-                    dst[4 * t + k] = w(j, t);
-                }
+                dst[4 * t + k] = src[j * TAPS + t].v() as i16;
             }
         }
     }
@@ -208,7 +184,6 @@ pub(crate) fn run<W: Wt>(
         pad: [input_zp; 32],
         fast: fast_requant(requant, out_q),
         taps: TAPS,
-        pairs: PAIRS,
     };
     let geo = RowGeometry {
         step_x: w.step_x,
@@ -268,15 +243,15 @@ struct Pixels<'a> {
     /// `(zero point, min, max)` of the output when every multiplier
     /// takes the 32-bit path of [`Requant::apply`] (see [`fast_requant`]).
     fast: Option<(i32, i32, i32)>,
-    /// [`TAPS`] and [`PAIRS`], read from memory where the tap loops
-    /// need them (see [`Pixels::group`]).
+    /// [`TAPS`], read from memory where the tap loop needs it (see
+    /// [`Pixels::group`]).
     taps: usize,
-    pairs: usize,
 }
 
 impl Pixels<'_> {
     /// One output row, its first pixel at `dst[out_row]`; `bases` and
-    /// `row_mask` say where its taps read `src` (see [`run`]).
+    /// `row_mask` say where its taps read `src` (see [`run`]). Pixels go
+    /// two at a time (see [`Pixels::group`]); an odd last one alone.
     #[inline(never)]
     fn row(
         &self,
@@ -287,72 +262,102 @@ impl Pixels<'_> {
         g: &RowGeometry,
         out_row: usize,
     ) {
-        let (c, s) = (self.c, self.s);
-        for ox in 0..g.out_w {
-            let x = ox * g.step_x;
-            // Bit kx: column x + kx lies inside the map.
-            let mut cols = 0u32;
-            for kx in 0..3 {
-                let inside = (x + kx)
-                    .checked_sub(g.pad_left)
-                    .is_some_and(|ix| ix < g.in_w);
-                cols |= (inside as u32) << kx;
-            }
-            let mask = row_mask & (cols * 0b001_001_001);
-            let off = x.wrapping_sub(g.pad_left).wrapping_mul(s);
+        let c = self.c;
+        let mut ox = 0;
+        while ox + 1 < g.out_w {
             let o = out_row + ox * g.out_stride;
-            let Some(out) = dst.get_mut(o..o + c) else {
+            let Some((da, db)) = dst.split_at_mut_checked(o + g.out_stride) else {
                 return;
             };
-            // Thirty-two channels at a time, then sixteen, eight, four.
-            let (c32, c16, c8) = (c - c % 32, c - c % 16, c - c % 8);
-            let Some((out32, rest)) = out.split_at_mut_checked(c32) else {
+            let (Some(a), Some(b)) = (da.get_mut(o..o + c), db.get_mut(..c)) else {
                 return;
             };
-            let Some((out16, rest)) = rest.split_at_mut_checked(c16 - c32) else {
+            let px = [self.at(ox, g, row_mask), self.at(ox + 1, g, row_mask)];
+            self.channels(src, bases, px, [a, b]);
+            ox += 2;
+        }
+        if ox < g.out_w {
+            let o = out_row + ox * g.out_stride;
+            let Some(a) = dst.get_mut(o..o + c) else {
                 return;
             };
-            let Some((out8, out4)) = rest.split_at_mut_checked(c8 - c16) else {
-                return;
-            };
-            let at = (bases, off, mask);
-            self.group::<32>(src, at, 0, out32);
-            self.group::<16>(src, at, c32, out16);
-            self.group::<8>(src, at, c16, out8);
-            self.group::<4>(src, at, c8, out4);
+            self.channels(src, bases, [self.at(ox, g, row_mask)], [a]);
         }
     }
 
-    /// Channels `c0..c0 + out.len()` of one pixel, `G` at a time: the
-    /// `G` bytes of every tap are cut from `src` (or the padding) once,
-    /// so the blocks of four read them without bounds checks. Tap `t`
-    /// reads `src[bases[t] + off + channel]` when bit `t` of `mask` is
-    /// set, the padding otherwise.
+    /// Where output pixel `ox` of a row reads: `(offset, mask)`, its taps
+    /// at `src[bases[t] + offset + channel]` for every bit `t` set in the
+    /// mask, the padding for the others.
     #[inline(always)]
-    fn group<const G: usize>(
+    fn at(&self, ox: usize, g: &RowGeometry, row_mask: u32) -> (usize, u32) {
+        let x = ox * g.step_x;
+        // Bit kx: column x + kx lies inside the map.
+        let mut cols = 0u32;
+        for kx in 0..3 {
+            let inside = (x + kx)
+                .checked_sub(g.pad_left)
+                .is_some_and(|ix| ix < g.in_w);
+            cols |= (inside as u32) << kx;
+        }
+        let mask = row_mask & (cols * 0b001_001_001);
+        (x.wrapping_sub(g.pad_left).wrapping_mul(self.s), mask)
+    }
+
+    /// All channels of `N` pixels (`out[p]` holds pixel `p`'s `c`
+    /// values): thirty-two at a time, then sixteen, eight, four.
+    #[inline(always)]
+    fn channels<const N: usize>(
         &self,
         src: &[i8],
-        (bases, off, mask): (&[usize; TAPS], usize, u32),
-        c0: usize,
-        out: &mut [i8],
+        bases: &[usize; TAPS],
+        px: [(usize, u32); N],
+        mut out: [&mut [i8]; N],
+    ) {
+        let c = self.c;
+        let (c32, c16, c8) = (c - c % 32, c - c % 16, c - c % 8);
+        self.group::<32, N>(src, bases, px, (0, c32), &mut out);
+        self.group::<16, N>(src, bases, px, (c32, c16), &mut out);
+        self.group::<8, N>(src, bases, px, (c16, c8), &mut out);
+        self.group::<4, N>(src, bases, px, (c8, c), &mut out);
+    }
+
+    /// Channels `c0..c1` of `N` pixels, `G` at a time: the `G` bytes of
+    /// every pixel's every tap are cut from `src` (or the padding) once,
+    /// so the blocks of four read them without bounds checks. Pixel `p`'s
+    /// tap `t` reads `src[bases[t] + px[p].0 + channel]` when bit `t` of
+    /// `px[p].1` is set, the padding otherwise.
+    ///
+    /// With two pixels (`N = 2`) the block's set-up (weights, bias,
+    /// multipliers, bounds) serves both; each pixel runs the tap loop with
+    /// its own four accumulators (eight at once do not fit the registers).
+    #[inline(always)]
+    fn group<const G: usize, const N: usize>(
+        &self,
+        src: &[i8],
+        bases: &[usize; TAPS],
+        px: [(usize, u32); N],
+        (c0, c1): (usize, usize),
+        out: &mut [&mut [i8]; N],
     ) {
         let Some(pad) = self.pad.first_chunk::<G>() else {
             return;
         };
-        for (g, og) in out.chunks_exact_mut(G).enumerate() {
-            let ch0 = c0 + g * G;
-            let at = off.wrapping_add(ch0);
-            let mut taps: [&[i8; G]; TAPS] = [pad; TAPS];
-            for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
-                if mask & (1 << t) != 0 {
-                    let i = b.wrapping_add(at);
-                    let Some(v) = src.get(i..i + G) else {
-                        return;
-                    };
-                    let Ok(v) = <&[i8; G]>::try_from(v) else {
-                        return;
-                    };
-                    *tp = v;
+        let mut ch0 = c0;
+        while ch0 + G <= c1 {
+            let mut taps: [[&[i8; G]; TAPS]; N] = [[pad; TAPS]; N];
+            for (taps, &(off, mask)) in taps.iter_mut().zip(&px) {
+                let at = off.wrapping_add(ch0);
+                for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
+                    if mask & (1 << t) != 0 {
+                        let i = b.wrapping_add(at);
+                        let Some(v) = src.get(i..i + G) else {
+                            return;
+                        };
+                        let Ok(v) = <&[i8; G]>::try_from(v) else {
+                            return;
+                        };
+                        *tp = v;
+                    }
                 }
             }
             let (Some(tg), Some(bg), Some(rg)) = (
@@ -362,108 +367,63 @@ impl Pixels<'_> {
             ) else {
                 return;
             };
-            // The tap pairs with a length LLVM cannot bound: with at most
-            // four pairs (or any count up to eight) it unrolls the pair
-            // loop whatever `no_unroll` says, loads ahead and spills.
-            let Some(pairs) = taps.get(..2 * self.pairs) else {
-                return;
-            };
-            let pairs = core::hint::black_box(pairs);
-            let blocks = og
-                .chunks_exact_mut(4)
-                .zip(tg.chunks_exact(BLOCK))
+            let mut og = out.each_mut().map(|o| o.get_mut(ch0..ch0 + G));
+            let blocks = tg
+                .chunks_exact(BLOCK)
                 .zip(bg.chunks_exact(4).zip(rg.chunks_exact(4)));
-            // The taps as a slice of `self.taps` (always nine) elements:
-            // with a length LLVM knows, it unrolls the tap loop below
-            // whatever `no_unroll` says, and then runs one accumulator's
-            // chain at a time over all nine taps, every input word live
-            // at once (spilled to the stack).
-            let Some(taps) = taps.get(..self.taps) else {
-                return;
-            };
-            for (b, ((o, wt), (bb, rq))) in blocks.enumerate() {
-                let mut acc = [0i32; 4];
-                for (j, a) in acc.iter_mut().enumerate() {
-                    *a = bb.get(j).copied().unwrap_or(0);
-                }
-                let word = |tp: &[i8; G]| -> Option<[i8; 4]> {
-                    tp.get(4 * b..4 * b + 4)?.try_into().ok()
+            for (b, (wt, (bb, rq))) in blocks.enumerate() {
+                let Ok(&bb) = <&[i32; 4]>::try_from(bb) else {
+                    return;
                 };
-                if PAIRED {
-                    let (Some(last), Some(wl), Some(wp)) = (
-                        taps.get(2 * self.pairs),
-                        wt.get(8 * self.pairs..8 * self.pairs + 4),
-                        self.table.get(TAPS * (ch0 + 4 * b)..),
-                    ) else {
+                // One pixel after the other, each with its own four
+                // accumulators: the block's weights, bias and multipliers
+                // are found once for both.
+                for (o, taps) in og.iter_mut().zip(&taps) {
+                    // The taps as a slice of `self.taps` (always nine)
+                    // elements: with a length LLVM knows, it unrolls the
+                    // tap loop below whatever `no_unroll` says, and then
+                    // runs one accumulator's chain at a time over all nine
+                    // taps, every input word live at once (spilled).
+                    let Some(taps) = taps.get(..self.taps) else {
                         return;
                     };
-                    for (tp, w) in pairs.chunks_exact(2).zip(wp.chunks_exact(8)) {
+                    let mut acc = bb;
+                    for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
                         no_unroll();
-                        let (Some(&t0), Some(&t1), Ok(w)) =
-                            (tp.first(), tp.get(1), <&[i16; 8]>::try_from(w))
+                        let (Some(x), Ok(w)) =
+                            (tp.get(4 * b..4 * b + 4), <&[i16; 4]>::try_from(w))
                         else {
                             return;
                         };
-                        let (Some(x0), Some(x1)) = (word(t0), word(t1)) else {
-                            return;
-                        };
-                        tap_pair(&mut acc, x0, x1, w);
-                    }
-                    let (Some(x), Ok(w)) = (word(last), <&[i16; 4]>::try_from(wl)) else {
-                        return;
-                    };
-                    tap(&mut acc, x, w);
-                } else {
-                    for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
-                        no_unroll();
-                        let (Some(x), Ok(w)) = (word(tp), <&[i16; 4]>::try_from(w)) else {
+                        let Ok(&x) = <&[i8; 4]>::try_from(x) else {
                             return;
                         };
                         tap(&mut acc, x, w);
                     }
-                }
-                if let Some((zp, lo, hi)) = self.fast {
-                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
-                        *o = requant_fast(a, r, zp, lo, hi);
-                    }
-                } else {
-                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
-                        *o = r.apply(a, self.out_q);
+                    let Some(o) = o.as_mut().and_then(|o| o.get_mut(4 * b..4 * b + 4)) else {
+                        return;
+                    };
+                    if let Some((zp, lo, hi)) = self.fast {
+                        for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                            *o = requant_fast(a, r, zp, lo, hi);
+                        }
+                    } else {
+                        for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                            *o = r.apply(a, self.out_q);
+                        }
                     }
                 }
             }
+            ch0 += G;
         }
     }
-}
-
-/// `acc[j] += x0[j] · w0[j] + x1[j] · w1[j]` for the four channels of a
-/// pair of taps (inputs `x0`, `x1`), `w` the pair's four weight words of
-/// [`widen_weights`]. `sxtb16` widens channels 0 and 2 of each tap (and
-/// with `ror #8` channels 1 and 3), `pkhbt`/`pkhtb` put one channel's two
-/// taps into one word, and one `smlad` meets that word with the
-/// channel's two weights: per pair and four channels two input loads,
-/// four widenings, four packs, four weight words and four `smlad`.
-#[inline(always)]
-fn tap_pair(acc: &mut [i32; 4], x0: [i8; 4], x1: [i8; 4], w: &[i16; 8]) {
-    use ingot_dsp::{pkhbt_lsl16, pkhtb_asr16, smlad, sxtb16, sxtb16_ror8};
-    let (x0, x1) = (
-        u32::from_le_bytes(x0.map(|v| v as u8)),
-        u32::from_le_bytes(x1.map(|v| v as u8)),
-    );
-    let (e0, e1) = (sxtb16(x0), sxtb16(x1));
-    // (channel 0 of tap 0, of tap 1), (channel 2 of tap 0, of tap 1).
-    acc[0] = smlad(pkhbt_lsl16(e0, e1), pair(w[0], w[1]), acc[0]);
-    acc[2] = smlad(pkhtb_asr16(e1, e0), pair(w[2], w[3]), acc[2]);
-    let (o0, o1) = (sxtb16_ror8(x0), sxtb16_ror8(x1));
-    acc[1] = smlad(pkhbt_lsl16(o0, o1), pair(w[4], w[5]), acc[1]);
-    acc[3] = smlad(pkhtb_asr16(o1, o0), pair(w[6], w[7]), acc[3]);
 }
 
 /// `acc[j] += x[j] · w[j]` for the four channels of one tap, the weights
 /// in [`ORDER`].
 #[inline(always)]
 fn tap(acc: &mut [i32; 4], x: [i8; 4], w: &[i16; 4]) {
-    if PAIRED {
+    if ingot_dsp::NATIVE {
         let xv = u32::from_le_bytes(x.map(|v| v as u8));
         let (xe, xo) = (ingot_dsp::sxtb16(xv), ingot_dsp::sxtb16_ror8(xv));
         let (p0, p1) = (pair(w[0], w[1]), pair(w[2], w[3]));
