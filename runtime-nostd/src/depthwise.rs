@@ -240,9 +240,9 @@ struct Pixels<'a> {
     s: usize,
     /// What padded taps read (the input zero point).
     pad: [i8; 32],
-    /// `(zero point, min, max)` of the output when every multiplier
-    /// takes the 32-bit path of [`Requant::apply`] (see [`fast_requant`]).
-    fast: Option<(i32, i32, i32)>,
+    /// The output's finish when every multiplier takes the 32-bit path
+    /// of [`Requant::apply`] (see [`fast_requant`]).
+    fast: Option<Fast>,
     /// [`TAPS`], read from memory where the tap loop needs it (see
     /// [`Pixels::group`]).
     taps: usize,
@@ -250,8 +250,7 @@ struct Pixels<'a> {
 
 impl Pixels<'_> {
     /// One output row, its first pixel at `dst[out_row]`; `bases` and
-    /// `row_mask` say where its taps read `src` (see [`run`]). Pixels go
-    /// two at a time (see [`Pixels::group`]); an odd last one alone.
+    /// `row_mask` say where its taps read `src` (see [`run`]).
     #[inline(never)]
     fn row(
         &self,
@@ -262,102 +261,72 @@ impl Pixels<'_> {
         g: &RowGeometry,
         out_row: usize,
     ) {
-        let c = self.c;
-        let mut ox = 0;
-        while ox + 1 < g.out_w {
+        let (c, s) = (self.c, self.s);
+        for ox in 0..g.out_w {
+            let x = ox * g.step_x;
+            // Bit kx: column x + kx lies inside the map.
+            let mut cols = 0u32;
+            for kx in 0..3 {
+                let inside = (x + kx)
+                    .checked_sub(g.pad_left)
+                    .is_some_and(|ix| ix < g.in_w);
+                cols |= (inside as u32) << kx;
+            }
+            let mask = row_mask & (cols * 0b001_001_001);
+            let off = x.wrapping_sub(g.pad_left).wrapping_mul(s);
             let o = out_row + ox * g.out_stride;
-            let Some((da, db)) = dst.split_at_mut_checked(o + g.out_stride) else {
+            let Some(out) = dst.get_mut(o..o + c) else {
                 return;
             };
-            let (Some(a), Some(b)) = (da.get_mut(o..o + c), db.get_mut(..c)) else {
+            // Thirty-two channels at a time, then sixteen, eight, four.
+            let (c32, c16, c8) = (c - c % 32, c - c % 16, c - c % 8);
+            let Some((out32, rest)) = out.split_at_mut_checked(c32) else {
                 return;
             };
-            let px = [self.at(ox, g, row_mask), self.at(ox + 1, g, row_mask)];
-            self.channels(src, bases, px, [a, b]);
-            ox += 2;
-        }
-        if ox < g.out_w {
-            let o = out_row + ox * g.out_stride;
-            let Some(a) = dst.get_mut(o..o + c) else {
+            let Some((out16, rest)) = rest.split_at_mut_checked(c16 - c32) else {
                 return;
             };
-            self.channels(src, bases, [self.at(ox, g, row_mask)], [a]);
+            let Some((out8, out4)) = rest.split_at_mut_checked(c8 - c16) else {
+                return;
+            };
+            let at = (bases, off, mask);
+            self.group::<32>(src, at, 0, out32);
+            self.group::<16>(src, at, c32, out16);
+            self.group::<8>(src, at, c16, out8);
+            self.group::<4>(src, at, c8, out4);
         }
     }
 
-    /// Where output pixel `ox` of a row reads: `(offset, mask)`, its taps
-    /// at `src[bases[t] + offset + channel]` for every bit `t` set in the
-    /// mask, the padding for the others.
+    /// Channels `c0..c0 + out.len()` of one pixel, `G` at a time: the
+    /// `G` bytes of every tap are cut from `src` (or the padding) once,
+    /// so the blocks of four read them without bounds checks. Tap `t`
+    /// reads `src[bases[t] + off + channel]` when bit `t` of `mask` is
+    /// set, the padding otherwise.
     #[inline(always)]
-    fn at(&self, ox: usize, g: &RowGeometry, row_mask: u32) -> (usize, u32) {
-        let x = ox * g.step_x;
-        // Bit kx: column x + kx lies inside the map.
-        let mut cols = 0u32;
-        for kx in 0..3 {
-            let inside = (x + kx)
-                .checked_sub(g.pad_left)
-                .is_some_and(|ix| ix < g.in_w);
-            cols |= (inside as u32) << kx;
-        }
-        let mask = row_mask & (cols * 0b001_001_001);
-        (x.wrapping_sub(g.pad_left).wrapping_mul(self.s), mask)
-    }
-
-    /// All channels of `N` pixels (`out[p]` holds pixel `p`'s `c`
-    /// values): thirty-two at a time, then sixteen, eight, four.
-    #[inline(always)]
-    fn channels<const N: usize>(
+    fn group<const G: usize>(
         &self,
         src: &[i8],
-        bases: &[usize; TAPS],
-        px: [(usize, u32); N],
-        mut out: [&mut [i8]; N],
-    ) {
-        let c = self.c;
-        let (c32, c16, c8) = (c - c % 32, c - c % 16, c - c % 8);
-        self.group::<32, N>(src, bases, px, (0, c32), &mut out);
-        self.group::<16, N>(src, bases, px, (c32, c16), &mut out);
-        self.group::<8, N>(src, bases, px, (c16, c8), &mut out);
-        self.group::<4, N>(src, bases, px, (c8, c), &mut out);
-    }
-
-    /// Channels `c0..c1` of `N` pixels, `G` at a time: the `G` bytes of
-    /// every pixel's every tap are cut from `src` (or the padding) once,
-    /// so the blocks of four read them without bounds checks. Pixel `p`'s
-    /// tap `t` reads `src[bases[t] + px[p].0 + channel]` when bit `t` of
-    /// `px[p].1` is set, the padding otherwise.
-    ///
-    /// With two pixels (`N = 2`) the block's set-up (weights, bias,
-    /// multipliers, bounds) serves both; each pixel runs the tap loop with
-    /// its own four accumulators (eight at once do not fit the registers).
-    #[inline(always)]
-    fn group<const G: usize, const N: usize>(
-        &self,
-        src: &[i8],
-        bases: &[usize; TAPS],
-        px: [(usize, u32); N],
-        (c0, c1): (usize, usize),
-        out: &mut [&mut [i8]; N],
+        (bases, off, mask): (&[usize; TAPS], usize, u32),
+        c0: usize,
+        out: &mut [i8],
     ) {
         let Some(pad) = self.pad.first_chunk::<G>() else {
             return;
         };
-        let mut ch0 = c0;
-        while ch0 + G <= c1 {
-            let mut taps: [[&[i8; G]; TAPS]; N] = [[pad; TAPS]; N];
-            for (taps, &(off, mask)) in taps.iter_mut().zip(&px) {
-                let at = off.wrapping_add(ch0);
-                for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
-                    if mask & (1 << t) != 0 {
-                        let i = b.wrapping_add(at);
-                        let Some(v) = src.get(i..i + G) else {
-                            return;
-                        };
-                        let Ok(v) = <&[i8; G]>::try_from(v) else {
-                            return;
-                        };
-                        *tp = v;
-                    }
+        for (g, og) in out.chunks_exact_mut(G).enumerate() {
+            let ch0 = c0 + g * G;
+            let at = off.wrapping_add(ch0);
+            let mut taps: [&[i8; G]; TAPS] = [pad; TAPS];
+            for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
+                if mask & (1 << t) != 0 {
+                    let i = b.wrapping_add(at);
+                    let Some(v) = src.get(i..i + G) else {
+                        return;
+                    };
+                    let Ok(v) = <&[i8; G]>::try_from(v) else {
+                        return;
+                    };
+                    *tp = v;
                 }
             }
             let (Some(tg), Some(bg), Some(rg)) = (
@@ -367,54 +336,49 @@ impl Pixels<'_> {
             ) else {
                 return;
             };
-            let mut og = out.each_mut().map(|o| o.get_mut(ch0..ch0 + G));
-            let blocks = tg
-                .chunks_exact(BLOCK)
+            let blocks = og
+                .chunks_exact_mut(4)
+                .zip(tg.chunks_exact(BLOCK))
                 .zip(bg.chunks_exact(4).zip(rg.chunks_exact(4)));
-            for (b, (wt, (bb, rq))) in blocks.enumerate() {
-                let Ok(&bb) = <&[i32; 4]>::try_from(bb) else {
-                    return;
-                };
-                // One pixel after the other, each with its own four
-                // accumulators: the block's weights, bias and multipliers
-                // are found once for both.
-                for (o, taps) in og.iter_mut().zip(&taps) {
-                    // The taps as a slice of `self.taps` (always nine)
-                    // elements: with a length LLVM knows, it unrolls the
-                    // tap loop below whatever `no_unroll` says, and then
-                    // runs one accumulator's chain at a time over all nine
-                    // taps, every input word live at once (spilled).
-                    let Some(taps) = taps.get(..self.taps) else {
+            // The taps as a slice of `self.taps` (always nine) elements:
+            // with a length LLVM knows, it unrolls the tap loop below
+            // whatever `no_unroll` says, and then runs one accumulator's
+            // chain at a time over all nine taps, every input word live
+            // at once (spilled to the stack).
+            let Some(taps) = taps.get(..self.taps) else {
+                return;
+            };
+            for (b, ((o, wt), (bb, rq))) in blocks.enumerate() {
+                let mut acc = [0i32; 4];
+                for (j, a) in acc.iter_mut().enumerate() {
+                    *a = bb.get(j).copied().unwrap_or(0);
+                }
+                for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
+                    no_unroll();
+                    let (Some(x), Ok(w)) = (tp.get(4 * b..4 * b + 4), <&[i16; 4]>::try_from(w))
+                    else {
                         return;
                     };
-                    let mut acc = bb;
-                    for (tp, w) in taps.iter().zip(wt.chunks_exact(4)) {
-                        no_unroll();
-                        let (Some(x), Ok(w)) =
-                            (tp.get(4 * b..4 * b + 4), <&[i16; 4]>::try_from(w))
-                        else {
-                            return;
-                        };
-                        let Ok(&x) = <&[i8; 4]>::try_from(x) else {
-                            return;
-                        };
-                        tap(&mut acc, x, w);
+                    let Ok(&x) = <&[i8; 4]>::try_from(x) else {
+                        return;
+                    };
+                    tap(&mut acc, x, w);
+                }
+                if let Some(Fast::Full { k }) = self.fast {
+                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                        // Constant bounds: one `ssat` with the halving.
+                        *o = requant_fast(a, r, k).max(-128).min(127) as i8;
                     }
-                    let Some(o) = o.as_mut().and_then(|o| o.get_mut(4 * b..4 * b + 4)) else {
-                        return;
-                    };
-                    if let Some((zp, lo, hi)) = self.fast {
-                        for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
-                            *o = requant_fast(a, r, zp, lo, hi);
-                        }
-                    } else {
-                        for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
-                            *o = r.apply(a, self.out_q);
-                        }
+                } else if let Some(Fast::Clamp { k, lo, hi }) = self.fast {
+                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                        *o = requant_fast(a, r, k).max(lo).min(hi) as i8;
+                    }
+                } else {
+                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                        *o = r.apply(a, self.out_q);
                     }
                 }
             }
-            ch0 += G;
         }
     }
 }
@@ -438,23 +402,45 @@ fn tap(acc: &mut [i32; 4], x: [i8; 4], w: &[i16; 4]) {
     }
 }
 
-/// `Some((zero point, min, max))` when [`Requant::apply`] takes its
-/// 32-bit path for every multiplier of `requant` (total shift 32 or more,
-/// zero point in `-128..=127`), so [`requant_fast`] gives its results.
-fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<(i32, i32, i32)> {
-    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
-    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
-    (zp_ok && shifts_ok).then_some((out.zero_point, out.min as i32, out.max as i32))
+/// How a call's outputs are finished when [`Requant::apply`] takes its
+/// 32-bit path for every multiplier (total shift 32 or more, zero point
+/// in `-128..=127`; see [`fast_requant`]).
+#[derive(Clone, Copy)]
+enum Fast {
+    /// The output bounds are the whole int8 range (no activation, or a
+    /// ReLU6 whose range was calibrated to `[0, max]`): the clamp is one
+    /// saturation (`ssat`, which also does the final halving).
+    Full { k: i32 },
+    /// Other bounds `(lo, hi)`: two comparisons.
+    Clamp { k: i32, lo: i32, hi: i32 },
 }
 
-/// [`Requant::apply`]'s 32-bit path, without its choice of path (the
-/// caller checked [`fast_requant`] once per call): the high word of the
-/// product (`smmul`), one rounding shift, the zero point, the clamp.
+/// The 32-bit finish of the call ([`Fast`]), or `None` when some
+/// multiplier or the zero point needs [`Requant::apply`]'s choice per
+/// value. `k = 1 + 2·zp` is the rounding term and the zero point in one
+/// (see [`requant_fast`]).
+fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<Fast> {
+    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
+    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
+    let k = 1 + 2 * out.zero_point;
+    let (lo, hi) = (out.min as i32, out.max as i32);
+    (zp_ok && shifts_ok).then_some(if (lo, hi) == (-128, 127) {
+        Fast::Full { k }
+    } else {
+        Fast::Clamp { k, lo, hi }
+    })
+}
+
+/// [`Requant::apply`]'s 32-bit path before its clamp, without its choice
+/// of path (the caller checked [`fast_requant`] once per call): with `h`
+/// the high word of the product (`smmul`) and `s` the total shift less
+/// 32, `((h >> s) + 1 >> 1) + zp`, computed as `(h >> s) + k >> 1` with
+/// `k = 1 + 2·zp` (adding `2·zp` before the halving adds `zp` after it,
+/// exactly; `|h| < 2^30`, so the sum cannot overflow).
 #[inline(always)]
-fn requant_fast(acc: i32, r: &Requant, zp: i32, lo: i32, hi: i32) -> i8 {
+fn requant_fast(acc: i32, r: &Requant, k: i32) -> i32 {
     let h = ((acc as i64 * r.mult as i64) >> 32) as i32;
-    let v = ((h.wrapping_shr(r.shift.wrapping_sub(2) as u32)) + 1) >> 1;
-    (v + zp).max(lo).min(hi) as i8
+    (h.wrapping_shr(r.shift.wrapping_sub(2) as u32) + k) >> 1
 }
 
 /// Two 16-bit values in one word, `lo` in the low half.
