@@ -41,11 +41,26 @@
 //! instructions per weight per call (per row range of a row pipeline),
 //! against nine MACs per weight per output pixel.
 //!
+//! One pixel and four channels per pass, nine taps of four MACs each: two
+//! pixels per pass (eight accumulators, each pair of weight words read
+//! once for eight MACs) do not fit the thirteen free registers, and LLVM
+//! spilled accumulators in the tap loop (26 to 32 instructions per eight
+//! MACs against 24); two pixels sharing a block's set-up, each with its
+//! own tap loop, measured the same as one pixel for 6.5 kB more code;
+//! taps in pairs (one `smlad` per channel for two taps, packed with
+//! `pkhbt`/`pkhtb`) were 22 to 23 per eight MACs in the library but 24
+//! to 34 in the firmware (`docs/kernels.md`).
+//!
 //! Requantization stays out of the tap loop. [`Requant::apply`] chooses
 //! between its 32-bit and 64-bit paths for every value; when every
 //! multiplier of the call takes the 32-bit one (total shift 32 or more),
 //! the choice is made once per call instead ([`requant_fast`], the same
-//! arithmetic).
+//! arithmetic), with the zero point folded into the rounding term. When
+//! the output bounds are the whole int8 range (no activation, or a ReLU6
+//! calibrated to `[0, max]`) the clamp is one `ssat`, which also does the
+//! final halving: eight instructions per output value on the Cortex-M4
+//! (the multiplier and shift, the shift's range, `smmul`, the shift, the
+//! zero point, `ssat`, the store) instead of fourteen.
 //!
 //! Channel counts that are not a multiple of four, dilation, other kernel
 //! sizes, a fused input transform, and inputs that interleave with the
