@@ -76,6 +76,12 @@ use crate::{MapRef, OutputQuant, Requant};
 const TAPS: usize = 9;
 /// The tap mask of a pixel whose nine taps all lie inside the map.
 const INSIDE: u32 = (1 << TAPS) - 1;
+/// True where such pixels cut their taps without the mask (see
+/// [`Pixels::group`]): on cores with the DSP extension and on hosts. On
+/// the Cortex-M0+ the extra path measured slower (19.53 instructions per
+/// MAC for the Howard et al. (2017) layout's depthwise layers against
+/// 19.18).
+const INTERIOR_CUT: bool = ingot_dsp::NATIVE || !cfg!(target_arch = "arm");
 /// Widened weights of one block of four channels: four per tap.
 const BLOCK: usize = 4 * TAPS;
 
@@ -333,12 +339,14 @@ impl Pixels<'_> {
         for (g, og) in out.chunks_exact_mut(G).enumerate() {
             let ch0 = c0 + g * G;
             let at = off.wrapping_add(ch0);
-            let cut = |b: usize| src.get(b.wrapping_add(at)..)?.first_chunk::<G>();
             let mut taps: [&[i8; G]; TAPS] = [pad; TAPS];
-            if mask == INSIDE {
-                // No padded tap: no mask test per tap.
+            if INTERIOR_CUT && mask == INSIDE {
+                // No padded tap: no mask test per tap, and a check of
+                // each tap's start and length (no end that could
+                // overflow).
                 for (tp, &b) in taps.iter_mut().zip(bases) {
-                    let Some(v) = cut(b) else {
+                    let Some(v) = src.get(b.wrapping_add(at)..).and_then(|v| v.first_chunk())
+                    else {
                         return;
                     };
                     *tp = v;
@@ -346,7 +354,11 @@ impl Pixels<'_> {
             } else {
                 for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
                     if mask & (1 << t) != 0 {
-                        let Some(v) = cut(b) else {
+                        let i = b.wrapping_add(at);
+                        let Some(v) = src.get(i..i + G) else {
+                            return;
+                        };
+                        let Ok(v) = <&[i8; G]>::try_from(v) else {
                             return;
                         };
                         *tp = v;
