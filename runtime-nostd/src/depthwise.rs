@@ -59,8 +59,9 @@
 //! the output bounds are the whole int8 range (no activation, or a ReLU6
 //! calibrated to `[0, max]`) the clamp is one `ssat`, which also does the
 //! final halving: eight instructions per output value on the Cortex-M4
-//! (the multiplier and shift, the shift's range, `smmul`, the shift, the
-//! zero point, `ssat`, the store) instead of fourteen.
+//! (one `ldrd` of the multiplier and shift, two to bring the shift into
+//! range, `smmul`, the shift, the zero point, `ssat`, the store) instead
+//! of fourteen.
 //!
 //! Channel counts that are not a multiple of four, dilation, other kernel
 //! sizes, a fused input transform, and inputs that interleave with the
