@@ -41,11 +41,27 @@
 //! instructions per weight per call (per row range of a row pipeline),
 //! against nine MACs per weight per output pixel.
 //!
+//! One pixel and four channels per pass, nine taps of four MACs each: two
+//! pixels per pass (eight accumulators, each pair of weight words read
+//! once for eight MACs) do not fit the thirteen free registers, and LLVM
+//! spilled accumulators in the tap loop (26 to 32 instructions per eight
+//! MACs against 24); two pixels sharing a block's set-up, each with its
+//! own tap loop, measured the same as one pixel for 6.5 kB more code;
+//! taps in pairs (one `smlad` per channel for two taps, packed with
+//! `pkhbt`/`pkhtb`) were 22 to 23 per eight MACs in the library but 24
+//! to 34 in the firmware (`docs/kernels.md`).
+//!
 //! Requantization stays out of the tap loop. [`Requant::apply`] chooses
 //! between its 32-bit and 64-bit paths for every value; when every
 //! multiplier of the call takes the 32-bit one (total shift 32 or more),
 //! the choice is made once per call instead ([`requant_fast`], the same
-//! arithmetic).
+//! arithmetic), with the zero point folded into the rounding term. When
+//! the output bounds are the whole int8 range (no activation, or a ReLU6
+//! calibrated to `[0, max]`) the clamp is one `ssat`, which also does the
+//! final halving: eight instructions per output value on the Cortex-M4
+//! (one `ldrd` of the multiplier and shift, two to bring the shift into
+//! range, `smmul`, the shift, the zero point, `ssat`, the store) instead
+//! of fourteen.
 //!
 //! Channel counts that are not a multiple of four, dilation, other kernel
 //! sizes, a fused input transform, and inputs that interleave with the
@@ -59,6 +75,14 @@ use crate::{MapRef, OutputQuant, Requant};
 
 /// Taps of the kernel this module handles (3×3).
 const TAPS: usize = 9;
+/// The tap mask of a pixel whose nine taps all lie inside the map.
+const INSIDE: u32 = (1 << TAPS) - 1;
+/// True where such pixels cut their taps without the mask (see
+/// [`Pixels::group`]): on cores with the DSP extension and on hosts. On
+/// the Cortex-M0+ the extra path measured slower (19.53 instructions per
+/// MAC for the Howard et al. (2017) layout's depthwise layers against
+/// 19.18).
+const INTERIOR_CUT: bool = ingot_dsp::NATIVE || !cfg!(target_arch = "arm");
 /// Widened weights of one block of four channels: four per tap.
 const BLOCK: usize = 4 * TAPS;
 
@@ -240,9 +264,9 @@ struct Pixels<'a> {
     s: usize,
     /// What padded taps read (the input zero point).
     pad: [i8; 32],
-    /// `(zero point, min, max)` of the output when every multiplier
-    /// takes the 32-bit path of [`Requant::apply`] (see [`fast_requant`]).
-    fast: Option<(i32, i32, i32)>,
+    /// The output's finish when every multiplier takes the 32-bit path
+    /// of [`Requant::apply`] (see [`fast_requant`]).
+    fast: Option<Fast>,
     /// [`TAPS`], read from memory where the tap loop needs it (see
     /// [`Pixels::group`]).
     taps: usize,
@@ -317,16 +341,29 @@ impl Pixels<'_> {
             let ch0 = c0 + g * G;
             let at = off.wrapping_add(ch0);
             let mut taps: [&[i8; G]; TAPS] = [pad; TAPS];
-            for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
-                if mask & (1 << t) != 0 {
-                    let i = b.wrapping_add(at);
-                    let Some(v) = src.get(i..i + G) else {
-                        return;
-                    };
-                    let Ok(v) = <&[i8; G]>::try_from(v) else {
+            if INTERIOR_CUT && mask == INSIDE {
+                // No padded tap: no mask test per tap, and a check of
+                // each tap's start and length (no end that could
+                // overflow).
+                for (tp, &b) in taps.iter_mut().zip(bases) {
+                    let Some(v) = src.get(b.wrapping_add(at)..).and_then(|v| v.first_chunk())
+                    else {
                         return;
                     };
                     *tp = v;
+                }
+            } else {
+                for (t, (tp, &b)) in taps.iter_mut().zip(bases).enumerate() {
+                    if mask & (1 << t) != 0 {
+                        let i = b.wrapping_add(at);
+                        let Some(v) = src.get(i..i + G) else {
+                            return;
+                        };
+                        let Ok(v) = <&[i8; G]>::try_from(v) else {
+                            return;
+                        };
+                        *tp = v;
+                    }
                 }
             }
             let (Some(tg), Some(bg), Some(rg)) = (
@@ -364,9 +401,15 @@ impl Pixels<'_> {
                     };
                     tap(&mut acc, x, w);
                 }
-                if let Some((zp, lo, hi)) = self.fast {
+                if let Some(Fast::Full { k }) = self.fast {
                     for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
-                        *o = requant_fast(a, r, zp, lo, hi);
+                        // Constant bounds (no panic path): one `ssat`
+                        // with the halving.
+                        *o = requant_fast(a, r, k).clamp(-128, 127) as i8;
+                    }
+                } else if let Some(Fast::Clamp { k, lo, hi }) = self.fast {
+                    for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
+                        *o = requant_fast(a, r, k).max(lo).min(hi) as i8;
                     }
                 } else {
                     for ((o, &a), r) in o.iter_mut().zip(&acc).zip(rq) {
@@ -397,23 +440,45 @@ fn tap(acc: &mut [i32; 4], x: [i8; 4], w: &[i16; 4]) {
     }
 }
 
-/// `Some((zero point, min, max))` when [`Requant::apply`] takes its
-/// 32-bit path for every multiplier of `requant` (total shift 32 or more,
-/// zero point in `-128..=127`), so [`requant_fast`] gives its results.
-fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<(i32, i32, i32)> {
-    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
-    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
-    (zp_ok && shifts_ok).then_some((out.zero_point, out.min as i32, out.max as i32))
+/// How a call's outputs are finished when [`Requant::apply`] takes its
+/// 32-bit path for every multiplier (total shift 32 or more, zero point
+/// in `-128..=127`; see [`fast_requant`]).
+#[derive(Clone, Copy)]
+enum Fast {
+    /// The output bounds are the whole int8 range (no activation, or a
+    /// ReLU6 whose range was calibrated to `[0, max]`): the clamp is one
+    /// saturation (`ssat`, which also does the final halving).
+    Full { k: i32 },
+    /// Other bounds `(lo, hi)`: two comparisons.
+    Clamp { k: i32, lo: i32, hi: i32 },
 }
 
-/// [`Requant::apply`]'s 32-bit path, without its choice of path (the
-/// caller checked [`fast_requant`] once per call): the high word of the
-/// product (`smmul`), one rounding shift, the zero point, the clamp.
+/// The 32-bit finish of the call ([`Fast`]), or `None` when some
+/// multiplier or the zero point needs [`Requant::apply`]'s choice per
+/// value. `k = 1 + 2·zp` is the rounding term and the zero point in one
+/// (see [`requant_fast`]).
+fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<Fast> {
+    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
+    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
+    let k = 1 + 2 * out.zero_point;
+    let (lo, hi) = (out.min as i32, out.max as i32);
+    (zp_ok && shifts_ok).then_some(if (lo, hi) == (-128, 127) {
+        Fast::Full { k }
+    } else {
+        Fast::Clamp { k, lo, hi }
+    })
+}
+
+/// [`Requant::apply`]'s 32-bit path before its clamp, without its choice
+/// of path (the caller checked [`fast_requant`] once per call): with `h`
+/// the high word of the product (`smmul`) and `s` the total shift less
+/// 32, `((h >> s) + 1 >> 1) + zp`, computed as `(h >> s) + k >> 1` with
+/// `k = 1 + 2·zp` (adding `2·zp` before the halving adds `zp` after it,
+/// exactly; `|h| < 2^30`, so the sum cannot overflow).
 #[inline(always)]
-fn requant_fast(acc: i32, r: &Requant, zp: i32, lo: i32, hi: i32) -> i8 {
+fn requant_fast(acc: i32, r: &Requant, k: i32) -> i32 {
     let h = ((acc as i64 * r.mult as i64) >> 32) as i32;
-    let v = ((h.wrapping_shr(r.shift.wrapping_sub(2) as u32)) + 1) >> 1;
-    (v + zp).max(lo).min(hi) as i8
+    (h.wrapping_shr(r.shift.wrapping_sub(2) as u32) + k) >> 1
 }
 
 /// Two 16-bit values in one word, `lo` in the low half.
