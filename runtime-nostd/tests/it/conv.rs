@@ -523,3 +523,68 @@ fn conv2d_agrees_with_float_within_half_lsb() {
         }
     }
 }
+
+/// The row-ring path of the word and paired forms with a fused input
+/// transform: channel counts on both sides of the transform's block of
+/// 32 channels (`affine_row` builds its table per block), odd and even
+/// widths, 1×1 and 3×3 windows with and without padding, strided and
+/// interleaved (dense-block) inputs. `run_case` holds the ring (room for
+/// whole rows) against `conv2d`'s per-pixel patch and `conv2d` against
+/// the naive reference.
+fn arb_ring_case() -> impl Strategy<Value = Case> {
+    (
+        (1usize..4, 1usize..8, 1usize..19, 1usize..10),
+        (prop_oneof![Just(1usize), Just(3)], 0usize..2, 0usize..4),
+        (arb_zp(), arb_zp(), prop::collection::vec(arb_requant(), 10)),
+        (0usize..3, any::<bool>(), any::<u64>()),
+    )
+        .prop_map(|(s, k, q, l)| {
+            let (h, w, quads, cout) = s;
+            let (kk, pad, kind) = k;
+            let (pad_value, zp_out, rq) = q;
+            let (in_extra, same_region, seed) = l;
+            // Transform kind 1 (affine) twice as often as none or table.
+            let transform = [0u8, 1, 1, 2][kind];
+            Case {
+                h,
+                w,
+                cin: 4 * quads,
+                cout,
+                groups: 1,
+                p: RefConv {
+                    kh: kk,
+                    kw: kk,
+                    sy: 1,
+                    sx: 1,
+                    dy: 1,
+                    dx: 1,
+                    pt: pad,
+                    pl: pad,
+                    pb: pad,
+                    pr: pad,
+                    groups: 1,
+                    pad_value,
+                    zp_out: zp_out as i32,
+                    lo: -128,
+                    hi: 127,
+                },
+                in_extra,
+                in_c0: in_extra.min(1),
+                same_region,
+                seed,
+                rq,
+                transform,
+            }
+        })
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(300))]
+    #[test]
+    fn ring_rows_with_transform_match_reference(c in arb_ring_case()) {
+        let r = run_case(&c);
+        prop_assume!(r.is_some());
+        let (got, want) = r.unwrap();
+        prop_assert_eq!(got, want);
+    }
+}
