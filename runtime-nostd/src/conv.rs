@@ -1596,13 +1596,14 @@ const AFFINE_BLOCK: usize = 32;
 /// multiplier and additive term go into a stack table side by side, the
 /// input zero point and the rounding folded into the term
 /// (`(x − zp_in)·m + add + r = x·m + (add + r − zp_in·m)`, exact: the
-/// transform's validity keeps every term below 2^30), so a value costs
-/// the pair's two loads, the input load, a multiply-accumulate, the
-/// shift, the zero point, the clamp and a store, with the shared
-/// parameters in registers: 14 instructions in the loop on the
-/// Cortex-M4 (`arm-none-eabi-objdump -d` of the thumbv7em rlib). Pixel
-/// by pixel, reading `mul`, `add` and five shared values per value, the
-/// loop ran out of registers and spilled (25).
+/// transform's validity keeps every term below 2^30), and the output
+/// zero point too where it fits, so a value costs the pair's two loads,
+/// the input load, a multiply-accumulate, the shift, the clamp and a
+/// store, with the shared parameters in registers: 14 instructions in
+/// the loop on the Cortex-M4 (`arm-none-eabi-objdump -d` of the thumbv7em
+/// rlib, and QEMU's execution log of the demo's LTO firmware). Pixel by
+/// pixel, reading `mul`, `add` and five shared values per value, the loop
+/// ran out of registers and spilled (25).
 #[inline(never)]
 fn affine_row(
     dst: &mut [i16],
@@ -1613,6 +1614,16 @@ fn affine_row(
 ) {
     let rounding = a.rounding();
     let (shift, zp_out, lo, hi) = (a.shift, a.zp_out, a.min as i32, a.max as i32);
+    // `(v >> s) + zp == (v + zp·2^s) >> s` (floor division by 2^s), so
+    // the output zero point joins the additive term when `zp·2^s` is
+    // small: with `|v| < 2^30 + 2^22` (the validity bound) the sum stays
+    // inside i32, and the loop saves its add.
+    let fold = (zp_out.unsigned_abs() as u64) << shift < 1 << 29;
+    let (zp_term, zp_add) = if fold {
+        (zp_out.wrapping_shl(shift), 0)
+    } else {
+        (0, zp_out)
+    };
     let mut table = [(0i32, 0i32); AFFINE_BLOCK];
     let mut c0 = 0;
     while c0 < c {
@@ -1628,7 +1639,8 @@ fn affine_row(
             *t = (
                 m,
                 ad.wrapping_add(rounding)
-                    .wrapping_sub(a.zp_in.wrapping_mul(m)),
+                    .wrapping_sub(a.zp_in.wrapping_mul(m))
+                    .wrapping_add(zp_term),
             );
         }
         let tab = &*tab;
@@ -1637,13 +1649,34 @@ fn affine_row(
             let (Some(s), Some(d)) = (src.get(s0..s0 + n), d.get_mut(c0..c0 + n)) else {
                 return;
             };
-            for ((d, &x), &(m, k)) in d.iter_mut().zip(s).zip(tab) {
-                crate::dot::no_unroll();
-                let r = ((x as i32).wrapping_mul(m).wrapping_add(k) >> shift) + zp_out;
-                *d = r.max(lo).min(hi) as i16;
+            if fold {
+                affine_values::<false>(d, s, tab, shift, zp_add, lo, hi);
+            } else {
+                affine_values::<true>(d, s, tab, shift, zp_add, lo, hi);
             }
         }
         c0 += n;
+    }
+}
+
+/// The values of one pixel's channel block for [`affine_row`]: `ZP`
+/// adds the output zero point `zp` after the shift (when it could not be
+/// folded into the table's additive terms).
+#[inline(always)]
+fn affine_values<const ZP: bool>(
+    d: &mut [i16],
+    s: &[i8],
+    tab: &[(i32, i32)],
+    shift: u32,
+    zp: i32,
+    lo: i32,
+    hi: i32,
+) {
+    for ((d, &x), &(m, k)) in d.iter_mut().zip(s).zip(tab) {
+        crate::dot::no_unroll();
+        let t = (x as i32).wrapping_mul(m).wrapping_add(k) >> shift;
+        let r = if ZP { t + zp } else { t };
+        *d = r.max(lo).min(hi) as i16;
     }
 }
 

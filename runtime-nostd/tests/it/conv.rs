@@ -588,3 +588,107 @@ proptest! {
         prop_assert_eq!(got, want);
     }
 }
+
+/// The ring's row transform folds the output zero point into its
+/// additive terms only while `|zp_out|·2^shift` is small; the random
+/// transforms above (shift below 16) always fold. Shifts up to the
+/// largest valid one (29), zero points at both ends and multipliers and
+/// offsets near the validity bound (`255·|mul| + |add| + 2^(shift-1) <
+/// 2^30`) take both branches; the ring (word and paired forms) must give
+/// `conv2d`'s bytes, whose per-pixel patch applies the transform value by
+/// value (`AffineTransform::apply`, the definition).
+#[test]
+fn ring_transform_with_large_shifts_matches_conv2d() {
+    let (h, w, cin, cout) = (3, 5, 36, 5);
+    let mut rng = Lcg(0x5eed_0015);
+    let input = MapRef::new(0, h, w, cin);
+    let output = MapRef::new(input.len(), h, w, cout);
+    let arena0: Vec<i8> = (0..input.len() + output.len()).map(|_| rng.i8()).collect();
+    let weights: Vec<i8> = (0..cout * 9 * cin).map(|_| rng.i8()).collect();
+    let bias: Vec<i32> = (0..cout)
+        .map(|_| rng.range(-50_000, 50_000) as i32)
+        .collect();
+    let rq = vec![Requant::new(1 << 30, 12).unwrap(); cout];
+    let mut pairs = vec![0u32; paired_len(cout, 9 * cin)];
+    pair_rows_into(&weights, cout, 9 * cin, &mut pairs).unwrap();
+    let mut words = vec![0u8; words_len(cout, 9 * cin)];
+    word_rows_into(&weights, cout, 9 * cin, &mut words).unwrap();
+    let win = Window::square(3, 1, 1);
+    let mut folded = [false; 2];
+    for shift in [0u32, 7, 16, 20, 22, 26, 29] {
+        for zp_out in [-128i32, -1, 0, 127] {
+            // Near the bound: |mul| up to (2^30 - 2^29 - rounding) / 255.
+            let room = (1i64 << 30) - (1 << 29) - if shift > 0 { 1i64 << (shift - 1) } else { 0 };
+            let mul: Vec<i32> = (0..cin)
+                .map(|_| rng.range(-room / 255, room / 255) as i32)
+                .collect();
+            let add: Vec<i32> = (0..cin)
+                .map(|_| rng.range(-(1 << 29) + 1, (1 << 29) - 1) as i32)
+                .collect();
+            let t = InputTransform::Affine(AffineTransform {
+                mul: &mul,
+                add: &add,
+                shift,
+                zp_in: rng.range(-128, 127) as i32,
+                zp_out,
+                min: zp_out.max(-128) as i8,
+                max: 127,
+            });
+            assert!(
+                t.is_valid_for(cin, zp_out as i8),
+                "shift {shift} zp {zp_out}"
+            );
+            folded[usize::from((zp_out.unsigned_abs() as u64) << shift < 1 << 29)] = true;
+            let p = ConvParams {
+                window: win,
+                groups: 1,
+                input_zp: zp_out as i8,
+                out: OutputQuant::clamped(3, -128, 127),
+            };
+            let mut want = arena0.clone();
+            let mut patch = vec![0i16; conv_patch_len(3, 3, cin)];
+            conv2d(
+                &mut want,
+                input,
+                output,
+                &weights,
+                &bias,
+                &rq,
+                &p,
+                Some(&t),
+                &mut patch,
+            )
+            .unwrap();
+            let mut ring = vec![0i16; conv_rows_len(&win, w, cin)];
+            let mut got = arena0.clone();
+            conv2d_words(
+                &mut got,
+                input,
+                output,
+                &words,
+                &bias,
+                &rq,
+                &p,
+                Some(&t),
+                &mut ring,
+            )
+            .unwrap();
+            assert_eq!(got, want, "words, shift {shift} zp {zp_out}");
+            let mut got = arena0.clone();
+            conv2d_paired(
+                &mut got,
+                input,
+                output,
+                &pairs,
+                &bias,
+                &rq,
+                &p,
+                Some(&t),
+                &mut ring,
+            )
+            .unwrap();
+            assert_eq!(got, want, "pairs, shift {shift} zp {zp_out}");
+        }
+    }
+    assert_eq!(folded, [true, true], "both branches of the fold were taken");
+}
