@@ -523,3 +523,172 @@ fn conv2d_agrees_with_float_within_half_lsb() {
         }
     }
 }
+
+/// The row-ring path of the word and paired forms with a fused input
+/// transform: channel counts on both sides of the transform's block of
+/// 32 channels (`affine_row` builds its table per block), odd and even
+/// widths, 1×1 and 3×3 windows with and without padding, strided and
+/// interleaved (dense-block) inputs. `run_case` holds the ring (room for
+/// whole rows) against `conv2d`'s per-pixel patch and `conv2d` against
+/// the naive reference.
+fn arb_ring_case() -> impl Strategy<Value = Case> {
+    (
+        (1usize..4, 1usize..8, 1usize..19, 1usize..10),
+        (prop_oneof![Just(1usize), Just(3)], 0usize..2, 0usize..4),
+        (arb_zp(), arb_zp(), prop::collection::vec(arb_requant(), 10)),
+        (0usize..3, any::<bool>(), any::<u64>()),
+    )
+        .prop_map(|(s, k, q, l)| {
+            let (h, w, quads, cout) = s;
+            let (kk, pad, kind) = k;
+            let (pad_value, zp_out, rq) = q;
+            let (in_extra, same_region, seed) = l;
+            // Transform kind 1 (affine) twice as often as none or table.
+            let transform = [0u8, 1, 1, 2][kind];
+            Case {
+                h,
+                w,
+                cin: 4 * quads,
+                cout,
+                groups: 1,
+                p: RefConv {
+                    kh: kk,
+                    kw: kk,
+                    sy: 1,
+                    sx: 1,
+                    dy: 1,
+                    dx: 1,
+                    pt: pad,
+                    pl: pad,
+                    pb: pad,
+                    pr: pad,
+                    groups: 1,
+                    pad_value,
+                    zp_out: zp_out as i32,
+                    lo: -128,
+                    hi: 127,
+                },
+                in_extra,
+                in_c0: in_extra.min(1),
+                same_region,
+                seed,
+                rq,
+                transform,
+            }
+        })
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(300))]
+    #[test]
+    fn ring_rows_with_transform_match_reference(c in arb_ring_case()) {
+        let r = run_case(&c);
+        prop_assume!(r.is_some());
+        let (got, want) = r.unwrap();
+        prop_assert_eq!(got, want);
+    }
+}
+
+/// The ring's row transform folds the output zero point into its
+/// additive terms only while `|zp_out|·2^shift` is small; the random
+/// transforms above (shift below 16) always fold. Shifts up to the
+/// largest valid one (29), zero points at both ends and multipliers and
+/// offsets near the validity bound (`255·|mul| + |add| + 2^(shift-1) <
+/// 2^30`) take both branches; the ring (word and paired forms) must give
+/// `conv2d`'s bytes, whose per-pixel patch applies the transform value by
+/// value (`AffineTransform::apply`, the definition).
+#[test]
+fn ring_transform_with_large_shifts_matches_conv2d() {
+    let (h, w, cin, cout) = (3, 5, 36, 5);
+    let mut rng = Lcg(0x5eed_0015);
+    let input = MapRef::new(0, h, w, cin);
+    let output = MapRef::new(input.len(), h, w, cout);
+    let arena0: Vec<i8> = (0..input.len() + output.len()).map(|_| rng.i8()).collect();
+    let weights: Vec<i8> = (0..cout * 9 * cin).map(|_| rng.i8()).collect();
+    let bias: Vec<i32> = (0..cout)
+        .map(|_| rng.range(-50_000, 50_000) as i32)
+        .collect();
+    let rq = vec![Requant::new(1 << 30, 12).unwrap(); cout];
+    let mut pairs = vec![0u32; paired_len(cout, 9 * cin)];
+    pair_rows_into(&weights, cout, 9 * cin, &mut pairs).unwrap();
+    let mut words = vec![0u8; words_len(cout, 9 * cin)];
+    word_rows_into(&weights, cout, 9 * cin, &mut words).unwrap();
+    let win = Window::square(3, 1, 1);
+    let mut folded = [false; 2];
+    for shift in [0u32, 7, 16, 20, 22, 26, 29] {
+        for zp_out in [-128i32, -1, 0, 127] {
+            // Near the bound: |mul| up to (2^30 - 2^29 - rounding) / 255.
+            let room = (1i64 << 30) - (1 << 29) - if shift > 0 { 1i64 << (shift - 1) } else { 0 };
+            let mul: Vec<i32> = (0..cin)
+                .map(|_| rng.range(-room / 255, room / 255) as i32)
+                .collect();
+            let add: Vec<i32> = (0..cin)
+                .map(|_| rng.range(-(1 << 29) + 1, (1 << 29) - 1) as i32)
+                .collect();
+            let t = InputTransform::Affine(AffineTransform {
+                mul: &mul,
+                add: &add,
+                shift,
+                zp_in: rng.range(-128, 127) as i32,
+                zp_out,
+                min: zp_out.max(-128) as i8,
+                max: 127,
+            });
+            assert!(
+                t.is_valid_for(cin, zp_out as i8),
+                "shift {shift} zp {zp_out}"
+            );
+            folded[usize::from((zp_out.unsigned_abs() as u64) << shift < 1 << 29)] = true;
+            let p = ConvParams {
+                window: win,
+                groups: 1,
+                input_zp: zp_out as i8,
+                out: OutputQuant::clamped(3, -128, 127),
+            };
+            let mut want = arena0.clone();
+            let mut patch = vec![0i16; conv_patch_len(3, 3, cin)];
+            conv2d(
+                &mut want,
+                input,
+                output,
+                &weights,
+                &bias,
+                &rq,
+                &p,
+                Some(&t),
+                &mut patch,
+            )
+            .unwrap();
+            let mut ring = vec![0i16; conv_rows_len(&win, w, cin)];
+            let mut got = arena0.clone();
+            conv2d_words(
+                &mut got,
+                input,
+                output,
+                &words,
+                &bias,
+                &rq,
+                &p,
+                Some(&t),
+                &mut ring,
+            )
+            .unwrap();
+            assert_eq!(got, want, "words, shift {shift} zp {zp_out}");
+            let mut got = arena0.clone();
+            conv2d_paired(
+                &mut got,
+                input,
+                output,
+                &pairs,
+                &bias,
+                &rq,
+                &p,
+                Some(&t),
+                &mut ring,
+            )
+            .unwrap();
+            assert_eq!(got, want, "pairs, shift {shift} zp {zp_out}");
+        }
+    }
+    assert_eq!(folded, [true, true], "both branches of the fold were taken");
+}
