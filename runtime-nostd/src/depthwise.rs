@@ -477,7 +477,7 @@ fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<Fast> {
 /// exactly; `|h| < 2^30`, so the sum cannot overflow).
 #[inline(always)]
 fn requant_fast(acc: i32, r: &Requant, k: i32) -> i32 {
-    let h = ((acc as i64 * r.mult as i64) >> 32) as i32;
+    let h = crate::requant::high_word(acc, r.mult);
     (h.wrapping_shr(r.shift.wrapping_sub(2) as u32) + k) >> 1
 }
 

@@ -292,7 +292,7 @@ fn requant_row<const P: usize>(rq: &Requant, b: i32, acc: &[i32; P], out: Output
         let sh = ((s - 32) & 31) as u32;
         let (lo, hi) = (out.min as i32, out.max as i32);
         acc.map(|a| {
-            let h = ((b.wrapping_add(a) as i64 * rq.mult as i64) >> 32) as i32;
+            let h = crate::requant::high_word(b.wrapping_add(a), rq.mult);
             let r = (((h >> sh) + 1) >> 1) + out.zero_point;
             // `min <= max` in a valid output (the kernels refuse others):
             // the same as `apply`'s two comparisons.

@@ -94,11 +94,7 @@ impl Requant {
         if s < 32 || out.zero_point.wrapping_add(128) as u32 > 255 {
             return out.finish(self.scale(acc));
         }
-        let hi = if ingot_dsp::LONG_MULTIPLY {
-            ((acc as i64 * self.mult as i64) >> 32) as i32
-        } else {
-            mul_hi(acc, self.mult)
-        };
+        let hi = high_word(acc, self.mult);
         // |hi| < 2^30 (see `scale`), so neither step overflows.
         let r = (((hi >> (s - 32)) + 1) >> 1) + out.zero_point;
         if r < out.min as i32 {
@@ -262,6 +258,19 @@ impl OutputQuant {
         } else {
             r as i8
         }
+    }
+}
+
+/// The high word of the 64-bit product `a·b`, the way the core computes it
+/// best: one `smull` where it has one, [`mul_hi`] on ARMv6-M (see
+/// `ingot_dsp::LONG_MULTIPLY`). Every kernel's 32-bit requantization
+/// path takes its product here, so none of them calls `__aeabi_lmul`.
+#[inline(always)]
+pub(crate) const fn high_word(a: i32, b: i32) -> i32 {
+    if ingot_dsp::LONG_MULTIPLY {
+        ((a as i64 * b as i64) >> 32) as i32
+    } else {
+        mul_hi(a, b)
     }
 }
 
