@@ -5,6 +5,7 @@ use crate::dot::{
     dot2_wide, dot4_pairs, dot4_wide, dot4_words, dot_pairs_few, dot_wide, dot_words_few,
     tail_wide, widen_into, Wt,
 };
+use crate::requant::{fast_requant, finish_one, requant_fast, Fast};
 use crate::{Error, InputTransform, MapRef, OutputQuant, Requant};
 use core::num::NonZeroUsize;
 
@@ -974,6 +975,7 @@ fn conv_pixels<W: Wt, const F: u8>(
     if run == 0 || taps == 0 || (opg == 0 && output.c > 0) {
         return;
     }
+    let fast = fast_requant(requant, p.out);
     for oy in y0..y1 {
         // Row bases once per row (a ring's slot costs a division).
         let (in_row, out_row) = (input.row(oy), output.row(oy));
@@ -1035,7 +1037,7 @@ fn conv_pixels<W: Wt, const F: u8>(
                 return;
             };
             if depthwise && opg == 1 {
-                depthwise_channels(patch, weights, taps, c_in, bias, requant, p.out, out);
+                depthwise_channels(patch, weights, taps, c_in, bias, requant, p.out, out, fast);
             } else if depthwise {
                 // By hand, not `zip`: see `conv_rows`.
                 let mut rows = weights.chunks_exact(taps.max(1));
@@ -1050,12 +1052,12 @@ fn conv_pixels<W: Wt, const F: u8>(
                     for (x, &wv) in col.iter().step_by(c_in.max(1)).zip(row) {
                         acc = acc.wrapping_add((*x as i32).wrapping_mul(wv.v()));
                     }
-                    *y = rq.apply(acc, p.out);
+                    *y = finish_one(fast, acc, rq, p.out);
                 }
             } else if let (Rows::Pairs(pw), true) = (a.rows, F & forms::PAIRS != 0) {
-                paired_rows(patch, pw, bias, requant, p.out, out);
+                paired_rows(patch, pw, bias, requant, p.out, out, fast);
             } else if let (Rows::Words(ww), true) = (a.rows, F & forms::WORDS != 0) {
-                paired_rows(patch, ww, bias, requant, p.out, out);
+                paired_rows(patch, ww, bias, requant, p.out, out, fast);
             } else if int8 {
                 for (g, xw) in patch.chunks_exact(seg.max(1)).enumerate() {
                     let o0 = g * opg;
@@ -1067,7 +1069,7 @@ fn conv_pixels<W: Wt, const F: u8>(
                     ) else {
                         return;
                     };
-                    channel_rows(xw, wg, bg, rg, p.out, og);
+                    channel_rows(xw, wg, bg, rg, p.out, og, fast);
                 }
             }
         }
@@ -1084,6 +1086,7 @@ fn channel_rows<W: Wt>(
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
+    fast: Option<Fast>,
 ) {
     let seg = xw.len();
     if seg == 0 {
@@ -1102,7 +1105,7 @@ fn channel_rows<W: Wt>(
             for (&x, &w) in xw.iter().zip(row) {
                 acc = acc.wrapping_add((x as i32).wrapping_mul(w.v()));
             }
-            *o = rq.apply(acc, out_q);
+            *o = finish_one(fast, acc, rq, out_q);
         }
         return;
     }
@@ -1132,7 +1135,7 @@ fn channel_rows<W: Wt>(
                 }
             }
         }
-        requantize_into(o, &acc, b, r, out_q);
+        requantize_into(o, &acc, b, r, out_q, fast);
     }
     let rest = quads.remainder();
     let out = outs.into_remainder();
@@ -1152,10 +1155,15 @@ fn channel_rows<W: Wt>(
                 acc[1] = acc[1].wrapping_add(tail_wide(xt, bt));
             }
         }
-        requantize_into(o, &acc, b, r, out_q);
+        requantize_into(o, &acc, b, r, out_q, fast);
     }
     if let ([o], [b], [r]) = (outs.into_remainder(), bp.remainder(), rp.remainder()) {
-        *o = r.apply(b.wrapping_add(dot_wide(xw, pairs.remainder())), out_q);
+        *o = finish_one(
+            fast,
+            b.wrapping_add(dot_wide(xw, pairs.remainder())),
+            r,
+            out_q,
+        );
     }
 }
 
@@ -1177,6 +1185,7 @@ fn depthwise_channels<W: Wt>(
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
+    fast: Option<Fast>,
 ) {
     if taps == 0 || c == 0 {
         return;
@@ -1195,7 +1204,7 @@ fn depthwise_channels<W: Wt>(
         // (constant offsets), so nothing spills.
         if let (Ok(w9), Some(xs)) = (<&[W; 36]>::try_from(w), patch.get(ch..)) {
             let acc = depthwise4_3x3(xs, c, w9);
-            requantize_into(o, &acc, b, r, out_q);
+            requantize_into(o, &acc, b, r, out_q, fast);
             ch += 4;
             continue;
         }
@@ -1214,7 +1223,7 @@ fn depthwise_channels<W: Wt>(
             return;
         };
         let acc = depthwise4(xs, c, w0, w1, w2, w3);
-        requantize_into(o, &acc, b, r, out_q);
+        requantize_into(o, &acc, b, r, out_q, fast);
         ch += 4;
     }
     // The last one to three channels: one strided walk each.
@@ -1232,7 +1241,7 @@ fn depthwise_channels<W: Wt>(
         for (x, &wv) in col.iter().step_by(c.max(1)).zip(row) {
             acc = acc.wrapping_add((*x as i32).wrapping_mul(wv.v()));
         }
-        *o = r.apply(acc, out_q);
+        *o = finish_one(fast, acc, r, out_q);
         ch += 1;
     }
 }
@@ -1289,7 +1298,9 @@ fn load_pixel(dst: &mut [i16], src: &[i8], transform: Option<&InputTransform<'_>
 }
 
 /// `out[j] = clamp(z_out + requant[j].scale(bias[j] + acc[j]))` for the
-/// `acc.len()` channels given.
+/// `acc.len()` channels given: [`Requant::apply`], or with `fast` (made
+/// by [`fast_requant`] once per call for multipliers that include these)
+/// its 32-bit path without the choice per value, the same bytes.
 #[inline(always)]
 fn requantize_into(
     out: &mut [i8],
@@ -1297,9 +1308,26 @@ fn requantize_into(
     bias: &[i32],
     requant: &[Requant],
     out_q: OutputQuant,
+    fast: Option<Fast>,
 ) {
-    for (((o, &a), &b), rq) in out.iter_mut().zip(acc).zip(bias).zip(requant) {
-        *o = rq.apply(b.wrapping_add(a), out_q);
+    let values = out.iter_mut().zip(acc).zip(bias).zip(requant);
+    match fast {
+        Some(Fast::Full { k }) => {
+            for (((o, &a), &b), rq) in values {
+                // Constant bounds: one `ssat` with the halving.
+                *o = requant_fast(b.wrapping_add(a), rq, k).clamp(-128, 127) as i8;
+            }
+        }
+        Some(Fast::Clamp { k, lo, hi }) => {
+            for (((o, &a), &b), rq) in values {
+                *o = requant_fast(b.wrapping_add(a), rq, k).max(lo).min(hi) as i8;
+            }
+        }
+        None => {
+            for (((o, &a), &b), rq) in values {
+                *o = rq.apply(b.wrapping_add(a), out_q);
+            }
+        }
     }
 }
 
@@ -1406,6 +1434,7 @@ fn conv_rows<T: Packed>(
         rq4,
         rq_left,
         out_q: p.out,
+        fast: fast_requant(requant, p.out),
         out_w: output.w,
         out_stride: output.stride,
         m,
@@ -1458,6 +1487,8 @@ struct RowKernel<'a, T> {
     rq4: &'a [Requant],
     rq_left: &'a [Requant],
     out_q: OutputQuant,
+    /// The call's 32-bit finish, when every multiplier takes it.
+    fast: Option<Fast>,
     /// Output pixels per row, pixel stride and channels of the output.
     out_w: usize,
     out_stride: usize,
@@ -1519,7 +1550,7 @@ impl<T: Packed> RowKernel<'_, T> {
                         at -= ring_len;
                     }
                 }
-                requantize_into(o, &acc, b, r, self.out_q);
+                requantize_into(o, &acc, b, r, self.out_q, self.fast);
             }
             let left = self.left;
             if left > 0 {
@@ -1539,7 +1570,14 @@ impl<T: Packed> RowKernel<'_, T> {
                         at -= ring_len;
                     }
                 }
-                requantize_into(out_left, acc, self.bias_left, self.rq_left, self.out_q);
+                requantize_into(
+                    out_left,
+                    acc,
+                    self.bias_left,
+                    self.rq_left,
+                    self.out_q,
+                    self.fast,
+                );
             }
         }
     }
@@ -1690,6 +1728,7 @@ pub(crate) fn paired_rows<T: Packed>(
     requant: &[Requant],
     out_q: OutputQuant,
     out: &mut [i8],
+    fast: Option<Fast>,
 ) {
     let kp = xw.len().div_ceil(T::ELEMS) * T::STORE;
     let m = out.len();
@@ -1724,14 +1763,14 @@ pub(crate) fn paired_rows<T: Packed>(
         };
         let mut acc = [0i32; 4];
         T::dot4(xw, block, &mut acc);
-        requantize_into(o, &acc, b, r, out_q);
+        requantize_into(o, &acc, b, r, out_q, fast);
     }
     let left = m % 4;
     if left > 0 {
         let mut acc = [0i32; 3];
         let acc = &mut acc[..left];
         T::few(xw, rest, acc);
-        requantize_into(out_left, acc, bias_left, rq_left, out_q);
+        requantize_into(out_left, acc, bias_left, rq_left, out_q, fast);
     }
 }
 

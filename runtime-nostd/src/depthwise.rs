@@ -55,7 +55,8 @@
 //! between its 32-bit and 64-bit paths for every value; when every
 //! multiplier of the call takes the 32-bit one (total shift 32 or more),
 //! the choice is made once per call instead ([`requant_fast`], the same
-//! arithmetic), with the zero point folded into the rounding term. When
+//! arithmetic, shared with the other kernels in `requant.rs`), with the
+//! zero point folded into the rounding term. When
 //! the output bounds are the whole int8 range (no activation, or a ReLU6
 //! calibrated to `[0, max]`) the clamp is one `ssat`, which also does the
 //! final halving: eight instructions per output value on the Cortex-M4
@@ -71,6 +72,7 @@
 
 use crate::conv::Window;
 use crate::dot::{no_unroll, Wt};
+use crate::requant::{fast_requant, requant_fast, Fast};
 use crate::{MapRef, OutputQuant, Requant};
 
 /// Taps of the kernel this module handles (3×3).
@@ -438,47 +440,6 @@ fn tap(acc: &mut [i32; 4], x: [i8; 4], w: &[i16; 4]) {
             acc[j] = acc[j].wrapping_add((x[j] as i32).wrapping_mul(w[j] as i32));
         }
     }
-}
-
-/// How a call's outputs are finished when [`Requant::apply`] takes its
-/// 32-bit path for every multiplier (total shift 32 or more, zero point
-/// in `-128..=127`; see [`fast_requant`]).
-#[derive(Clone, Copy)]
-enum Fast {
-    /// The output bounds are the whole int8 range (no activation, or a
-    /// ReLU6 whose range was calibrated to `[0, max]`): the clamp is one
-    /// saturation (`ssat`, which also does the final halving).
-    Full { k: i32 },
-    /// Other bounds `(lo, hi)`: two comparisons.
-    Clamp { k: i32, lo: i32, hi: i32 },
-}
-
-/// The 32-bit finish of the call ([`Fast`]), or `None` when some
-/// multiplier or the zero point needs [`Requant::apply`]'s choice per
-/// value. `k = 1 + 2·zp` is the rounding term and the zero point in one
-/// (see [`requant_fast`]).
-fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<Fast> {
-    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
-    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
-    let k = 1 + 2 * out.zero_point;
-    let (lo, hi) = (out.min as i32, out.max as i32);
-    (zp_ok && shifts_ok).then_some(if (lo, hi) == (-128, 127) {
-        Fast::Full { k }
-    } else {
-        Fast::Clamp { k, lo, hi }
-    })
-}
-
-/// [`Requant::apply`]'s 32-bit path before its clamp, without its choice
-/// of path (the caller checked [`fast_requant`] once per call): with `h`
-/// the high word of the product (`smmul`) and `s` the total shift less
-/// 32, `((h >> s) + 1 >> 1) + zp`, computed as `(h >> s) + k >> 1` with
-/// `k = 1 + 2·zp` (adding `2·zp` before the halving adds `zp` after it,
-/// exactly; `|h| < 2^30`, so the sum cannot overflow).
-#[inline(always)]
-fn requant_fast(acc: i32, r: &Requant, k: i32) -> i32 {
-    let h = crate::requant::high_word(acc, r.mult);
-    (h.wrapping_shr(r.shift.wrapping_sub(2) as u32) + k) >> 1
 }
 
 /// Two 16-bit values in one word, `lo` in the low half.

@@ -1,6 +1,7 @@
 //! Fully connected layer.
 
 use crate::dot::{dot_i8, no_unroll, Wt};
+use crate::requant::{fast_requant, finish_one};
 use crate::{Error, MapRef, OutputQuant, Requant};
 
 /// Fully connected layer over a map flattened in HWC order.
@@ -135,6 +136,7 @@ fn linear_rows<W: Wt>(arena: &mut [i8], a: &LinearArgs<'_>, weights: &[W]) {
     // a call that divides by the chunk size, a division-by-zero panic path.
     let mut rows = weights.chunks_exact(n_in.max(1));
     let mut params = a.bias.iter().zip(a.requant);
+    let fast = fast_requant(a.requant, a.out);
     for oy in 0..output.h {
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
@@ -160,7 +162,7 @@ fn linear_rows<W: Wt>(arena: &mut [i8], a: &LinearArgs<'_>, weights: &[W]) {
                 let Some(d) = arena.get_mut(dst + oc) else {
                     return;
                 };
-                *d = rq.apply(acc, a.out);
+                *d = finish_one(fast, acc, rq, a.out);
             }
         }
     }
@@ -184,6 +186,7 @@ fn linear_words<W: Wt>(arena: &mut [i8], a: &LinearArgs<'_>, weights: &[W]) {
     let n = input.len();
     let mut rows = weights.chunks_exact(n.max(1));
     let mut params = a.bias.iter().zip(a.requant);
+    let fast = fast_requant(a.requant, a.out);
     for oy in 0..output.h {
         for ox in 0..output.w {
             let dst = output.pixel(oy, ox);
@@ -200,11 +203,11 @@ fn linear_words<W: Wt>(arena: &mut [i8], a: &LinearArgs<'_>, weights: &[W]) {
                         return;
                     };
                     let [s0, s1] = dot2_words(x, r0, r1);
-                    (s0, Some(q1.apply(b1.wrapping_add(s1), a.out)))
+                    (s0, Some(finish_one(fast, b1.wrapping_add(s1), q1, a.out)))
                 } else {
                     (dot2_words(x, r0, r0)[0], None)
                 };
-                let first = q0.apply(b0.wrapping_add(s0), a.out);
+                let first = finish_one(fast, b0.wrapping_add(s0), q0, a.out);
                 if let Some(d) = arena.get_mut(dst + oc) {
                     *d = first;
                 }

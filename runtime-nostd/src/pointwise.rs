@@ -39,6 +39,7 @@
 
 use crate::conv::{paired_rows, ConvArgs, Window};
 use crate::dot::{no_unroll, word};
+use crate::requant::{fast_requant, requant_fast, Fast};
 use crate::{OutputQuant, Requant};
 
 /// Length (in `i16` elements) of the staging buffer the four-pixel
@@ -69,6 +70,8 @@ struct Pass<'a> {
     bias: &'a [i32],
     requant: &'a [Requant],
     out_q: OutputQuant,
+    /// The call's 32-bit finish, when every multiplier takes it.
+    fast: Option<Fast>,
     /// Input and output channels, quads per weight row.
     c: usize,
     m: usize,
@@ -108,6 +111,7 @@ pub(crate) fn run_words(
         bias,
         requant,
         out_q: p.out,
+        fast: fast_requant(requant, p.out),
         c,
         m,
         kq,
@@ -174,7 +178,10 @@ impl Pass<'_> {
                     2 => px::<8>(x, w),
                     _ => px::<4>(x, w),
                 };
-                for (v, &dst) in requant_row(rq, b, &acc, self.out_q).into_iter().zip(&dsts) {
+                for (v, &dst) in requant_row(rq, b, &acc, self.out_q, self.fast)
+                    .into_iter()
+                    .zip(&dsts)
+                {
                     if let Some(o) = arena.get_mut(dst + j) {
                         *o = v;
                     }
@@ -199,7 +206,15 @@ impl Pass<'_> {
         let Some(out) = arena.get_mut(dst..dst + self.m) else {
             return;
         };
-        paired_rows(x, self.weights, self.bias, self.requant, self.out_q, out);
+        paired_rows(
+            x,
+            self.weights,
+            self.bias,
+            self.requant,
+            self.out_q,
+            out,
+            self.fast,
+        );
     }
 
     /// Pixel `s` into lane group `i` of every quad of a `P`-pixel staging
@@ -280,26 +295,27 @@ fn px<const STEP: usize>(x: &[i16], w: &[u8]) -> [i32; PIXELS] {
 }
 
 /// `rq.apply(b + acc[k], out)` for every pixel `k` of one output
-/// channel, with [`Requant::apply`]'s choice of its 32-bit path (a total
-/// shift of 32 or more and a zero point in range, the usual case) made
-/// once for the channel rather than per value: the same formula, the
-/// same bytes, about half the instructions per value.
+/// channel: with `fast` (made by [`fast_requant`] once per call, when
+/// every multiplier takes [`Requant::apply`]'s 32-bit path and the zero
+/// point is in range, the usual case) that path without the choice per
+/// value, the zero point folded into the rounding term and, for the
+/// whole int8 range, one saturation: the same bytes.
 #[inline(always)]
-fn requant_row<const P: usize>(rq: &Requant, b: i32, acc: &[i32; P], out: OutputQuant) -> [i8; P] {
-    let s = 30 + rq.shift;
-    if s >= 32 && out.zero_point.wrapping_add(128) as u32 <= 255 {
-        // A valid multiplier has s ≤ 61: the shift below is at most 29.
-        let sh = ((s - 32) & 31) as u32;
-        let (lo, hi) = (out.min as i32, out.max as i32);
-        acc.map(|a| {
-            let h = crate::requant::high_word(b.wrapping_add(a), rq.mult);
-            let r = (((h >> sh) + 1) >> 1) + out.zero_point;
-            // `min <= max` in a valid output (the kernels refuse others):
-            // the same as `apply`'s two comparisons.
-            r.max(lo).min(hi) as i8
-        })
-    } else {
-        acc.map(|a| rq.apply(b.wrapping_add(a), out))
+fn requant_row<const P: usize>(
+    rq: &Requant,
+    b: i32,
+    acc: &[i32; P],
+    out: OutputQuant,
+    fast: Option<Fast>,
+) -> [i8; P] {
+    match fast {
+        Some(Fast::Full { k }) => {
+            acc.map(|a| requant_fast(b.wrapping_add(a), rq, k).clamp(-128, 127) as i8)
+        }
+        Some(Fast::Clamp { k, lo, hi }) => {
+            acc.map(|a| requant_fast(b.wrapping_add(a), rq, k).max(lo).min(hi) as i8)
+        }
+        None => acc.map(|a| rq.apply(b.wrapping_add(a), out)),
     }
 }
 

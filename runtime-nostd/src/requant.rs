@@ -261,6 +261,83 @@ impl OutputQuant {
     }
 }
 
+/// How a call's outputs are finished when [`Requant::apply`] takes its
+/// 32-bit path for every multiplier of the call (total shift 32 or more,
+/// zero point in `-128..=127`; see [`fast_requant`]). The kernels decide
+/// this once per call and then finish every value with [`requant_fast`]:
+/// the same bytes as `apply`, without its choice of path per value.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub(crate) enum Fast {
+    /// The output bounds are the whole int8 range (no activation, or a
+    /// ReLU6 whose range was calibrated to `[0, max]`): the clamp is one
+    /// saturation (`ssat`, which also does the final halving).
+    Full {
+        /// `1 + 2·zp`, see [`requant_fast`].
+        k: i32,
+    },
+    /// Other bounds `(lo, hi)`: two comparisons.
+    Clamp {
+        /// `1 + 2·zp`, see [`requant_fast`].
+        k: i32,
+        /// Lower bound.
+        lo: i32,
+        /// Upper bound.
+        hi: i32,
+    },
+}
+
+impl Fast {
+    /// `Requant::apply(acc, out)` for one multiplier of the call this
+    /// finish was made for (see [`fast_requant`]).
+    #[inline(always)]
+    pub(crate) fn finish(self, acc: i32, r: &Requant) -> i8 {
+        match self {
+            // Constant bounds (no panic path): one `ssat` with the halving.
+            Fast::Full { k } => requant_fast(acc, r, k).clamp(-128, 127) as i8,
+            Fast::Clamp { k, lo, hi } => requant_fast(acc, r, k).max(lo).min(hi) as i8,
+        }
+    }
+}
+
+/// `r.apply(acc, out)` by `fast` when there is one (see [`fast_requant`]):
+/// for kernels that finish values one at a time.
+#[inline(always)]
+pub(crate) fn finish_one(fast: Option<Fast>, acc: i32, r: &Requant, out: OutputQuant) -> i8 {
+    match fast {
+        Some(f) => f.finish(acc, r),
+        None => r.apply(acc, out),
+    }
+}
+
+/// The 32-bit finish of a call ([`Fast`]), or `None` when some
+/// multiplier or the zero point needs [`Requant::apply`]'s choice per
+/// value. `k = 1 + 2·zp` is the rounding term and the zero point in one
+/// (see [`requant_fast`]). The multipliers must be valid and `out.min <=
+/// out.max` (the kernels refuse others).
+pub(crate) fn fast_requant(requant: &[Requant], out: OutputQuant) -> Option<Fast> {
+    let zp_ok = out.zero_point.wrapping_add(128) as u32 <= 255;
+    let shifts_ok = requant.iter().all(|r| r.shift >= 2);
+    let k = 1 + 2 * out.zero_point;
+    let (lo, hi) = (out.min as i32, out.max as i32);
+    (zp_ok && shifts_ok).then_some(if (lo, hi) == (-128, 127) {
+        Fast::Full { k }
+    } else {
+        Fast::Clamp { k, lo, hi }
+    })
+}
+
+/// [`Requant::apply`]'s 32-bit path before its clamp, without its choice
+/// of path (the caller checked [`fast_requant`] once per call): with `h`
+/// the high word of the product (`smmul`) and `s` the total shift less
+/// 32, `((h >> s) + 1 >> 1) + zp`, computed as `(h >> s) + k >> 1` with
+/// `k = 1 + 2·zp` (adding `2·zp` before the halving adds `zp` after it,
+/// exactly; `|h| < 2^30`, so the sum cannot overflow).
+#[inline(always)]
+pub(crate) fn requant_fast(acc: i32, r: &Requant, k: i32) -> i32 {
+    let h = high_word(acc, r.mult);
+    (h.wrapping_shr(r.shift.wrapping_sub(2) as u32) + k) >> 1
+}
+
 /// The high word of the 64-bit product `a·b`, the way the core computes it
 /// best: one `smull` where it has one, [`mul_hi`] on ARMv6-M (see
 /// `ingot_dsp::LONG_MULTIPLY`). Every kernel's 32-bit requantization
@@ -330,8 +407,39 @@ pub const fn acc_fits(weight_row: &[i8], bias: i32) -> bool {
 
 #[cfg(test)]
 mod tests {
-    use super::mul_hi;
+    use super::{fast_requant, finish_one, mul_hi, Fast, OutputQuant, Requant};
     use proptest::prelude::*;
+
+    /// A valid multiplier: zero, or a mantissa of either sign with
+    /// `|mult|` in `[2^30, 2^31)`; any total shift in `1..=62`, most of
+    /// them in the 32-bit path's `33..=62` (the usual case).
+    fn multiplier() -> impl Strategy<Value = Requant> {
+        let mult = prop_oneof![
+            1 => Just(0i32),
+            4 => (1i32 << 30)..=i32::MAX,
+            4 => (i32::MIN + 1)..=-(1i32 << 30),
+        ];
+        let shift = prop_oneof![1 => -30i32..=1, 4 => 2i32..=31];
+        (mult, shift).prop_map(|(mult, shift)| Requant { mult, shift })
+    }
+
+    /// A valid output: zero point in int8, `min <= max`, the whole range
+    /// often (the `ssat` finish).
+    fn output() -> impl Strategy<Value = OutputQuant> {
+        (-128i32..=127, any::<i8>(), any::<i8>(), any::<bool>()).prop_map(|(zp, a, b, full)| {
+            if full {
+                OutputQuant::linear(zp)
+            } else {
+                OutputQuant::clamped(zp, a.min(b), a.max(b))
+            }
+        })
+    }
+
+    /// An accumulator: anywhere in i32, or near zero where the rounding
+    /// ties and the clamp bounds are.
+    fn accumulator() -> impl Strategy<Value = i32> {
+        prop_oneof![any::<i32>(), -(1i32 << 20)..(1 << 20)]
+    }
 
     /// The reference is the high word of the exact 64-bit product (the
     /// definition of `smull`'s high register; common practice).
@@ -371,6 +479,33 @@ mod tests {
         #[test]
         fn mul_hi_is_the_high_word_of_the_product(a in any::<i32>(), b in any::<i32>()) {
             prop_assert_eq!(mul_hi(a, b), reference(a, b));
+        }
+    }
+
+    proptest! {
+        /// The fast finish gives the bytes of `Requant::apply` (the
+        /// project's own reference, itself checked against the real-number
+        /// rounding in `tests/it/requant.rs`), and is offered exactly when
+        /// every multiplier takes the 32-bit path.
+        #[test]
+        fn fast_finish_is_apply(
+            rqs in proptest::collection::vec(multiplier(), 1..4),
+            out in output(),
+            accs in proptest::collection::vec(accumulator(), 4),
+        ) {
+            prop_assert!(rqs.iter().all(Requant::is_valid));
+            let fast = fast_requant(&rqs, out);
+            // `apply`'s 32-bit path: `30 + shift >= 32`.
+            prop_assert_eq!(fast.is_some(), rqs.iter().all(|r| r.shift >= 2));
+            if let Some(f) = fast {
+                let full = (out.min, out.max) == (i8::MIN, i8::MAX);
+                prop_assert_eq!(matches!(f, Fast::Full { .. }), full);
+            }
+            for r in &rqs {
+                for &a in &accs {
+                    prop_assert_eq!(finish_one(fast, a, r, out), r.apply(a, out), "{:?} {:?} {}", r, out, a);
+                }
+            }
         }
     }
 }
